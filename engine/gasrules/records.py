@@ -1,0 +1,971 @@
+"""Decision records: an append-only, hash-chained JSON Lines log of interpretations.
+
+One line per entry. A decision entry holds::
+
+    record_format 1 · kind "decision" · seq (1-based) · time (UTC, ISO 8601, "Z")
+    input   the case, with identifier keys in its context kept, masked or dropped (context_policy)
+    result  the result as given (trace included); its echoed ``context`` gets the same policy
+    rulebook {id, version, sha256} · engine_version · context_policy
+    input_sha256 / output_sha256   sha256 of canonical JSON of ``input`` / ``result`` as logged
+    prev           the previous entry's entry_sha256 (64 zeros for the first)
+    entry_sha256   sha256 of canonical JSON of the entry without this field
+
+A repair entry (kind "repair") is chained the same way and records what :func:`repair_log` did.
+Beside the log, ``LOG.anchor`` holds ``{count, last_sha256, log_size}``; it is replaced atomically
+(temp file, fsync, os.replace, fsync of the directory) after every append.
+
+Canonical JSON (one encoder, used everywhere): ``json.dumps(obj, sort_keys=True,
+separators=(",", ":"), ensure_ascii=False, allow_nan=False)`` encoded as UTF-8. orjson was
+measured and rejected for hashing: its float text differs from the standard library's for
+exponent forms (``1e-05`` vs ``0.00001``, ``4e-08`` vs ``4e-8``; values such as [H+] in mol/L
+hit this), it writes NaN as null and it refuses integers beyond 64 bits. The standard-library
+form is reproducible by an auditor with nothing but Python. Large parts (input, result) are
+encoded once and spliced into the entry (:func:`_compose`), which yields the same bytes.
+
+Identifier masking: each configured key (case-insensitive, at any depth inside ``context``) gets
+``"hmac-sha256:" + the first mask_chars hex digits of HMAC-SHA256(salt, canonical JSON of the
+value)``. The same value under the same salt always masks alike, so cases stay linkable.
+``drop`` removes those keys. A context that is not an object is masked or dropped whole.
+
+Torn tail (our design): appends write one whole line, fsync, then the anchor. A crash can leave
+(a) a partial last line without newline: ``torn_tail``; the writer refuses to append until
+:func:`repair_log` moves the torn bytes to ``LOG.torn-<seq>-<time>`` (kept as evidence), truncates
+the log to the last complete line and appends a chained repair entry saying so; or (b) a complete
+last line the anchor does not count yet: ``anchor_lag`` (a warning); the next writer refreshes
+the anchor. Repair never touches a broken chain: that stays visible; start a new log instead.
+A log that is shorter than its anchor, or has no anchor, is only re-anchored when the operator
+passes ``acknowledge_anchor=True``, and that too is recorded in a repair entry.
+
+Limits: the chain detects edits, deletions and reordering by anyone who does not recompute all
+later hashes. Someone able to rewrite the whole file and its anchor is caught only by a copy of
+``last_sha256`` kept elsewhere: pass it to :func:`verify_log` as ``witness``.
+
+Verification codes (stable; never reused):
+
+=====================  ========  =====================================================
+code                   severity  meaning
+=====================  ========  =====================================================
+log_missing            error     the log file does not exist
+malformed_line         error     a complete line is not a JSON object
+malformed_entry        error     a field is missing or has the wrong type
+entry_hash_mismatch    error     entry_sha256 does not match the entry (entry modified)
+input_hash_mismatch    error     input_sha256 does not match the logged input
+output_hash_mismatch   error     output_sha256 does not match the logged result
+chain_break            error     prev is not the previous line's entry_sha256 (reordered,
+                                 duplicated or replaced entry)
+seq_gap                error     seq jumps forward: entries are missing (deleted)
+torn_tail              error     last line incomplete (no newline): a crash mid-write
+truncated              error     the log holds fewer entries than the anchor says
+anchor_missing         error     a non-empty log without its anchor file
+anchor_malformed       error     the anchor file is not {count, last_sha256, log_size}
+anchor_mismatch        error     the log's end does not match the anchor (edited
+                                 without the anchor)
+anchor_lag             warning   one complete entry beyond the anchor (crash between the
+                                 append and the anchor update; healed by the next writer)
+witness_missing        error     the witnessed entry_sha256 is not in the chain
+=====================  ========  =====================================================
+"""
+
+from __future__ import annotations
+
+import fcntl
+import hashlib
+import hmac
+import json
+import math
+import os
+import threading
+from bisect import bisect_left
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Callable, Iterator, Mapping
+
+from .errors import EngineError
+
+RECORD_FORMAT = 1
+ZERO_SHA = "0" * 64
+CONTEXT_POLICIES = ("keep", "mask", "drop")
+DEFAULT_IDENTIFIER_KEYS: tuple[str, ...] = (
+    "record_number", "patient_id", "mrn", "name", "patient_name", "given_name", "family_name",
+    "birth_date", "date_of_birth", "dob", "address", "phone", "email", "insurance_number",
+)
+SEVERITY: dict[str, str] = {
+    "log_missing": "error", "malformed_line": "error", "malformed_entry": "error",
+    "entry_hash_mismatch": "error", "input_hash_mismatch": "error",
+    "output_hash_mismatch": "error", "chain_break": "error", "seq_gap": "error",
+    "torn_tail": "error", "truncated": "error", "anchor_missing": "error",
+    "anchor_malformed": "error", "anchor_mismatch": "error", "anchor_lag": "warning",
+    "witness_missing": "error",
+}
+_ENTRY_FIELDS = {"record_format": int, "kind": str, "seq": int, "time": str,
+                 "engine_version": str, "prev": str, "entry_sha256": str}
+_DECISION_FIELDS = {"input": object, "result": dict, "rulebook": dict, "context_policy": str,
+                    "input_sha256": str, "output_sha256": str}
+
+
+class RecordError(EngineError):
+    """A decision record could not be written, or a log cannot be appended to or repaired."""
+
+    def __init__(self, code: str, message: str, *, path: str = "", line: int | None = None,
+                 field: str = "", accepted: str = ""):
+        self.code, self.path, self.line, self.field, self.accepted = code, path, line, field, accepted
+        where = f"{path}:{line}: " if path and line else (f"{path}: " if path else "")
+        extra = f" (field {field}; accepted: {accepted})" if field else ""
+        super().__init__(f"{where}{code}: {message}{extra}")
+
+
+# ---------------------------------------------------------------- canonical JSON and hashing
+
+def canonical_json(obj: Any, where: str = "") -> bytes:
+    """The one canonical encoding (see the module docstring)."""
+    try:
+        return json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=False,
+                          allow_nan=False).encode("utf-8")
+    except (TypeError, ValueError) as exc:
+        raise RecordError("record.not_json", f"cannot encode as canonical JSON: {exc}",
+                          field=where or "<value>",
+                          accepted="JSON values: finite numbers, strings, lists, objects "
+                                   "with string keys") from exc
+
+
+def sha256_hex(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
+def _compose(parts: Mapping[str, bytes]) -> bytes:
+    """Canonical JSON of an object whose member values are already canonical bytes."""
+    items = (json.dumps(k, ensure_ascii=False).encode("utf-8") + b":" + v
+             for k, v in sorted(parts.items()))
+    return b"{" + b",".join(items) + b"}"
+
+
+def _require_str_keys(obj: Any, where: str) -> None:
+    # json.dumps turns int keys into strings, so a re-read entry would hash differently.
+    if isinstance(obj, dict):
+        for k, v in obj.items():
+            if not isinstance(k, str):
+                raise RecordError("record.not_json", f"object key {k!r} is not a string",
+                                  field=where, accepted="string keys only")
+            _require_str_keys(v, f"{where}.{k}")
+    elif isinstance(obj, (list, tuple)):
+        for i, v in enumerate(obj):
+            _require_str_keys(v, f"{where}[{i}]")
+
+
+def entry_hash(entry: Mapping[str, Any]) -> str:
+    """entry_sha256 of an entry: sha256 of its canonical JSON without ``entry_sha256``."""
+    return sha256_hex(_compose({k: canonical_json(v, k) for k, v in entry.items()
+                                if k != "entry_sha256"}))
+
+
+# ---------------------------------------------------------------- configuration and masking
+
+@dataclass(frozen=True)
+class RecordConfig:
+    """How decision records are written. ``clock`` returns an aware datetime (tests pin it)."""
+
+    context_policy: str = "drop"
+    identifier_keys: tuple[str, ...] = DEFAULT_IDENTIFIER_KEYS
+    salt: str = ""
+    mask_chars: int = 16
+    fsync: bool = True
+    clock: Callable[[], datetime] | None = None
+
+    def __post_init__(self) -> None:
+        if self.context_policy not in CONTEXT_POLICIES:
+            raise RecordError("record.bad_config", f"unknown policy {self.context_policy!r}",
+                              field="context_policy", accepted=" | ".join(CONTEXT_POLICIES))
+        if self.context_policy == "mask" and len(self.salt) < 16:
+            raise RecordError("record.bad_config", "masking needs a secret salt",
+                              field="salt", accepted="a string of at least 16 characters")
+        if not 8 <= self.mask_chars <= 64:
+            raise RecordError("record.bad_config", f"mask_chars is {self.mask_chars}",
+                              field="mask_chars", accepted="an integer from 8 to 64")
+        if any(not isinstance(k, str) or not k for k in self.identifier_keys):
+            raise RecordError("record.bad_config", "identifier keys must be non-empty strings",
+                              field="identifier_keys", accepted="a list of key names")
+
+    @classmethod
+    def from_mapping(cls, data: Mapping[str, Any]) -> "RecordConfig":
+        """Build from a configuration section (keys as the field names; no clock)."""
+        known = {"context_policy", "identifier_keys", "salt", "mask_chars", "fsync"}
+        unknown = sorted(set(data) - known)
+        if unknown:
+            raise RecordError("record.bad_config", f"unknown setting {unknown[0]!r}",
+                              field=unknown[0], accepted=", ".join(sorted(known)))
+        kwargs = dict(data)
+        if "identifier_keys" in kwargs:
+            kwargs["identifier_keys"] = tuple(kwargs["identifier_keys"])
+        return cls(**kwargs)
+
+
+def mask_value(value: Any, salt: str, chars: int = 16) -> str:
+    digest = hmac.new(salt.encode("utf-8"), canonical_json(value), hashlib.sha256).hexdigest()
+    return "hmac-sha256:" + digest[:chars]
+
+
+def _apply(obj: Any, cfg: RecordConfig, keys: frozenset[str], path: str,
+           touched: list[str]) -> Any:
+    if isinstance(obj, dict):
+        out: dict[str, Any] = {}
+        for k, v in obj.items():
+            here = f"{path}/{k}"
+            if isinstance(k, str) and k.lower() in keys:
+                touched.append(here)
+                if cfg.context_policy == "mask":
+                    out[k] = mask_value(v, cfg.salt, cfg.mask_chars)
+                continue  # drop
+            out[k] = _apply(v, cfg, keys, here, touched)
+        return out
+    if isinstance(obj, list):
+        return [_apply(v, cfg, keys, f"{path}/{i}", touched) for i, v in enumerate(obj)]
+    return obj
+
+
+def apply_context_policy(record: Any, cfg: RecordConfig) -> tuple[Any, list[str]]:
+    """A copy of a case or result with identifiers in ``context`` treated per the policy.
+
+    Returns the copy and the JSON-pointer paths of the values masked or dropped. Anything but
+    ``context`` is left untouched; a record that is not an object is returned as is.
+    """
+    if cfg.context_policy == "keep" or not isinstance(record, dict) or "context" not in record:
+        return record, []
+    out = dict(record)
+    ctx = record["context"]
+    if not isinstance(ctx, dict):
+        if cfg.context_policy == "mask":
+            out["context"] = mask_value(ctx, cfg.salt, cfg.mask_chars)
+        else:
+            del out["context"]
+        return out, ["/context"]
+    touched: list[str] = []
+    out["context"] = _apply(ctx, cfg, frozenset(k.lower() for k in cfg.identifier_keys),
+                            "/context", touched)
+    return out, touched
+
+
+# ---------------------------------------------------------------- anchor and tail reading
+
+def anchor_path(log: str | os.PathLike[str]) -> Path:
+    return Path(str(log) + ".anchor")
+
+
+def _read_anchor(path: Path) -> tuple[dict[str, Any] | None, str]:
+    """(anchor, problem): problem is "" or "anchor_missing" or "anchor_malformed"."""
+    try:
+        data = json.loads(path.read_bytes())
+    except FileNotFoundError:
+        return None, "anchor_missing"
+    except (OSError, ValueError):
+        return None, "anchor_malformed"
+    ok = (isinstance(data, dict) and isinstance(data.get("count"), int)
+          and isinstance(data.get("log_size"), int) and isinstance(data.get("last_sha256"), str))
+    return (data, "") if ok else (None, "anchor_malformed")
+
+
+def _write_anchor(path: Path, count: int, last: str, size: int, do_fsync: bool) -> None:
+    tmp = path.with_name(f"{path.name}.tmp{os.getpid()}")
+    data = canonical_json({"count": count, "last_sha256": last, "log_size": size}) + b"\n"
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
+    try:
+        os.write(fd, data)
+        if do_fsync:
+            os.fsync(fd)
+    finally:
+        os.close(fd)
+    os.replace(tmp, path)
+    if do_fsync:
+        _fsync_dir(path.parent)
+
+
+def _fsync_dir(directory: Path) -> None:
+    fd = os.open(directory, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+@dataclass(frozen=True)
+class _Tail:
+    """The end of a log: last complete line, where complete lines end, and torn bytes."""
+
+    size: int
+    good_end: int
+    last_line: bytes | None
+    torn: bytes
+
+
+def _read_tail(fd: int, size: int) -> _Tail:
+    buf, pos = b"", size
+    while True:
+        nl = buf.rfind(b"\n")
+        if (nl >= 0 and buf.rfind(b"\n", 0, nl) >= 0) or pos == 0:
+            break
+        step = min(1 << 16, pos)
+        pos -= step
+        buf = os.pread(fd, step, pos) + buf
+    nl = buf.rfind(b"\n")
+    if nl < 0:
+        return _Tail(size, 0, None, buf)
+    start = buf.rfind(b"\n", 0, nl) + 1
+    return _Tail(size, pos + nl + 1, buf[start:nl], buf[nl + 1:])
+
+
+def _anchor_verdict(anchor: Mapping[str, Any], last_seq: int, last_sha: str, last_prev: str,
+                    last_len: int, good_end: int) -> tuple[str, str]:
+    """Compare the anchor with the log's last complete entry: ("", "") when consistent."""
+    a_count, a_sha, a_size = anchor["count"], anchor["last_sha256"], anchor["log_size"]
+    if (a_count, a_sha, a_size) == (last_seq, last_sha, good_end):
+        return "", ""
+    if (a_count == last_seq - 1 and a_sha == last_prev and a_size == good_end - last_len):
+        return "anchor_lag", (f"entry {last_seq} is complete but the anchor still counts "
+                              f"{a_count} (crash between append and anchor update)")
+    if last_seq < a_count:
+        return "truncated", (f"the anchor says {a_count} entries and {a_size} bytes; the log "
+                             f"ends at entry {last_seq} and {good_end} bytes")
+    return "anchor_mismatch", (f"the anchor says entry {a_count} {a_sha[:12]}… at {a_size} bytes; "
+                               f"the log ends with entry {last_seq} {last_sha[:12]}… at "
+                               f"{good_end} bytes")
+
+
+# ---------------------------------------------------------------- writer
+
+@dataclass(frozen=True)
+class AppendReceipt:
+    seq: int
+    entry_sha256: str
+    time: str
+
+
+class _Store:
+    """An open log file: lock, tail state, raw chained append. Used by the writer and repair."""
+
+    def __init__(self, path: str | os.PathLike[str], do_fsync: bool):
+        self.path = Path(path)
+        self.anchor = anchor_path(self.path)
+        self.do_fsync = do_fsync
+        existed = self.path.exists()
+        self.fd = os.open(self.path, os.O_RDWR | os.O_APPEND | os.O_CREAT, 0o644)
+        self._tlock = threading.Lock()
+        self._cache: tuple[int, int, str] | None = None  # (size, count, last_sha)
+        if not existed and do_fsync:
+            _fsync_dir(self.path.parent)
+
+    def close(self) -> None:
+        if self.fd >= 0:
+            os.close(self.fd)
+            self.fd = -1
+
+    @contextmanager
+    def locked(self) -> Iterator[None]:
+        with self._tlock:
+            fcntl.flock(self.fd, fcntl.LOCK_EX)
+            try:
+                yield
+            finally:
+                fcntl.flock(self.fd, fcntl.LOCK_UN)
+
+    def state(self, *, heal_lag: bool = True) -> tuple[int, str, int]:
+        """(count, last_sha256, size) of a log fit for appending, else LogStateError."""
+        size = os.fstat(self.fd).st_size
+        if self._cache and self._cache[0] == size:
+            return self._cache[1], self._cache[2], size
+        tail = _read_tail(self.fd, size)
+        where = str(self.path)
+        if tail.torn:
+            raise RecordError("torn_tail", f"the last {len(tail.torn)} bytes are an incomplete "
+                              "line (crash mid-write); run repair_log() on this log", path=where)
+        anchor, problem = _read_anchor(self.anchor)
+        if tail.last_line is None:  # empty log: new, or emptied
+            fresh = anchor is not None and (anchor["count"], anchor["log_size"]) == (0, 0)
+            if problem == "anchor_missing" or fresh:
+                if not fresh:
+                    _write_anchor(self.anchor, 0, ZERO_SHA, 0, self.do_fsync)
+                self._cache = (0, 0, ZERO_SHA)
+                return 0, ZERO_SHA, 0
+            raise RecordError(problem or "truncated", "the log is empty but its anchor is "
+                              + ("unreadable" if problem else f"at entry {anchor['count']}")
+                              + "; run verify_log()", path=where)
+        try:
+            last = json.loads(tail.last_line or b"")
+            seq, sha, prev = last["seq"], last["entry_sha256"], last["prev"]
+            good = entry_hash(last) == sha
+        except (ValueError, KeyError, TypeError, RecordError):
+            raise RecordError("malformed_line", "the last entry cannot be read; run verify_log()",
+                              path=where) from None
+        if not good:
+            raise RecordError("entry_hash_mismatch", f"the last entry (seq {seq}) does not "
+                              "match its entry_sha256; run verify_log()", path=where)
+        if problem:
+            raise RecordError(problem, f"{self.anchor.name}: {problem.replace('_', ' ')}; "
+                              "run repair_log(acknowledge_anchor=True) after checking", path=where)
+        assert anchor is not None
+        code, why = _anchor_verdict(anchor, seq, sha, prev, len(tail.last_line or b"") + 1, size)
+        if code == "anchor_lag" and heal_lag:
+            _write_anchor(self.anchor, seq, sha, size, self.do_fsync)
+        elif code:
+            raise RecordError(code, why + "; run verify_log()", path=where)
+        self._cache = (size, seq, sha)
+        return seq, sha, size
+
+    def append(self, parts: dict[str, bytes], count: int, last: str) -> tuple[int, str]:
+        """Chain and write one entry (caller holds the lock); returns (seq, entry_sha256)."""
+        seq = count + 1
+        parts = {**parts, "seq": str(seq).encode(), "prev": canonical_json(last),
+                 "record_format": str(RECORD_FORMAT).encode()}
+        sha = sha256_hex(_compose(parts))
+        line = _compose({**parts, "entry_sha256": canonical_json(sha)}) + b"\n"
+        before = os.fstat(self.fd).st_size
+        try:
+            view = memoryview(line)
+            while view:
+                view = view[os.write(self.fd, view):]
+            if self.do_fsync:
+                os.fsync(self.fd)
+        except BaseException:
+            try:  # leave no torn line behind if we still can
+                os.ftruncate(self.fd, before)
+            finally:
+                self._cache = None
+            raise
+        size = before + len(line)
+        self._cache = (size, seq, sha)
+        _write_anchor(self.anchor, seq, sha, size, self.do_fsync)
+        return seq, sha
+
+
+def _now(clock: Callable[[], datetime] | None) -> str:
+    t = clock() if clock else datetime.now(timezone.utc)
+    if t.tzinfo is None:
+        raise RecordError("record.bad_clock", "the clock returned a naive datetime",
+                          field="clock", accepted="a timezone-aware datetime")
+    return t.astimezone(timezone.utc).isoformat(timespec="microseconds").replace("+00:00", "Z")
+
+
+def _engine_version() -> str:
+    from . import __version__  # late: the package __init__ may import this module
+    return str(__version__)
+
+
+def _rulebook_ref(rulebook: Any, result: Any) -> dict[str, Any]:
+    if rulebook is not None and not isinstance(rulebook, Mapping):
+        ref = {k: getattr(rulebook, k, None) for k in ("id", "version", "sha256")}
+    else:
+        ref = dict(rulebook if rulebook is not None else
+                   (result.get("rulebook") if isinstance(result, dict) else None) or {})
+    if not all(isinstance(ref.get(k), str) and ref.get(k) for k in ("id", "version", "sha256")):
+        raise RecordError("record.no_rulebook", "no rulebook id, version and sha256 given",
+                          field="rulebook", accepted="a CompiledRulebook or {id, version, "
+                          "sha256}, or a result carrying them")
+    return {k: ref[k] for k in ("id", "version", "sha256")}
+
+
+class DecisionLog:
+    """Appends decision records to one log. Safe across threads and processes (flock).
+
+    Opening checks the log's end and refuses (RecordError with a verification code) a torn
+    tail, a truncated log or a missing or disagreeing anchor. Use as a context manager.
+    """
+
+    def __init__(self, path: str | os.PathLike[str], config: RecordConfig | None = None):
+        self.config = config or RecordConfig()
+        self._store = _Store(path, self.config.fsync)
+        try:
+            with self._store.locked():
+                self._store.state()
+        except BaseException:
+            self._store.close()
+            raise
+
+    @property
+    def path(self) -> Path:
+        return self._store.path
+
+    def append(self, case: Any, result: Mapping[str, Any], *, rulebook: Any = None,
+               engine_version: str | None = None) -> AppendReceipt:
+        """Record one interpretation; the rulebook and engine version default to the result's."""
+        cfg = self.config
+        logged_case, _ = apply_context_policy(case, cfg)
+        logged_result, _ = apply_context_policy(dict(result), cfg)
+        _require_str_keys(logged_case, "input")
+        _require_str_keys(logged_result, "result")
+        input_b = canonical_json(logged_case, "input")
+        result_b = canonical_json(logged_result, "result")
+        version = engine_version or result.get("engine_version") or _engine_version()
+        parts = {
+            "kind": b'"decision"', "input": input_b, "result": result_b,
+            "rulebook": canonical_json(_rulebook_ref(rulebook, result)),
+            "engine_version": canonical_json(str(version)),
+            "context_policy": canonical_json(cfg.context_policy),
+            "input_sha256": canonical_json(sha256_hex(input_b)),
+            "output_sha256": canonical_json(sha256_hex(result_b)),
+        }
+        with self._store.locked():
+            count, last, _ = self._store.state()
+            time = _now(cfg.clock)
+            parts["time"] = canonical_json(time)
+            seq, sha = self._store.append(parts, count, last)
+        return AppendReceipt(seq, sha, time)
+
+    def close(self) -> None:
+        self._store.close()
+
+    def __enter__(self) -> "DecisionLog":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+# ---------------------------------------------------------------- verification
+
+@dataclass(frozen=True)
+class LogIssue:
+    code: str
+    message: str
+    line: int | None = None
+    seq: int | None = None
+
+    @property
+    def severity(self) -> str:
+        return SEVERITY[self.code]
+
+    def render(self, path: str = "") -> str:
+        where = f"{path}:{self.line}" if self.line else path
+        seq = f" (seq {self.seq})" if self.seq is not None else ""
+        return f"{where}: {self.code}{seq}: {self.message}"
+
+
+@dataclass(frozen=True)
+class VerifyReport:
+    path: str
+    entries: int                                # complete lines read
+    issues: tuple[LogIssue, ...]                # in line order, anchor checks last
+    anchor: dict[str, Any] | None
+    last_sha256: str
+    repairs: tuple[tuple[int, str], ...] = ()   # (seq, actions) of repair entries
+
+    @property
+    def errors(self) -> tuple[LogIssue, ...]:
+        return tuple(i for i in self.issues if i.severity == "error")
+
+    @property
+    def warnings(self) -> tuple[LogIssue, ...]:
+        return tuple(i for i in self.issues if i.severity == "warning")
+
+    @property
+    def ok(self) -> bool:
+        return not self.errors
+
+    @property
+    def first_problem(self) -> LogIssue | None:
+        return self.errors[0] if self.errors else None
+
+
+def _field_problem(entry: Mapping[str, Any]) -> str:
+    kind = entry.get("kind")
+    wanted = dict(_ENTRY_FIELDS)
+    wanted.update(_DECISION_FIELDS if kind == "decision" else {"repair": dict})
+    if kind not in ("decision", "repair"):
+        return f"unknown kind {kind!r}"
+    for name, typ in wanted.items():
+        if name not in entry:
+            return f"field {name!r} is missing"
+        value = entry[name]
+        if typ is int and type(value) is not int or typ not in (int, object) \
+                and not isinstance(value, typ):
+            return f"field {name!r} is not of type {typ.__name__}"
+    return ""
+
+
+@dataclass
+class _Seen:
+    line: int
+    seq: int | None
+    sha: str | None
+    prev: str | None
+    length: int
+
+
+def _scan(f: Any, size: int, witness: str | None) -> tuple[list[_Seen], list[LogIssue],
+                                                            bytes, list[tuple[int, str]], bool]:
+    """Read complete lines up to ``size``: per-line facts and per-entry issues."""
+    seen: list[_Seen] = []
+    issues: list[LogIssue] = []
+    repairs: list[tuple[int, str]] = []
+    offset, torn, witnessed = 0, b"", False
+    for raw in f:
+        raw = raw[: size - offset]
+        if not raw:
+            break
+        offset += len(raw)
+        if not raw.endswith(b"\n"):
+            torn = raw
+            break
+        number = len(seen) + 1
+        rec = _Seen(number, None, None, None, len(raw))
+        seen.append(rec)
+        try:
+            entry = json.loads(raw)
+        except ValueError as exc:
+            issues.append(LogIssue("malformed_line", f"not JSON: {exc}", number))
+            continue
+        if not isinstance(entry, dict):
+            issues.append(LogIssue("malformed_line", "not a JSON object", number))
+            continue
+        seq = entry.get("seq") if type(entry.get("seq")) is int else None
+        problem = _field_problem(entry)
+        if problem:
+            issues.append(LogIssue("malformed_entry", problem, number, seq))
+            continue
+        rec.seq, rec.sha, rec.prev = seq, entry["entry_sha256"], entry["prev"]
+        witnessed = witnessed or rec.sha == witness
+        try:
+            parts = {k: canonical_json(v, k) for k, v in entry.items() if k != "entry_sha256"}
+        except RecordError as exc:
+            issues.append(LogIssue("malformed_entry", str(exc), number, seq))
+            continue
+        if sha256_hex(_compose(parts)) != rec.sha:
+            issues.append(LogIssue("entry_hash_mismatch", "the entry was modified: its content "
+                                   "does not hash to its entry_sha256", number, seq))
+        elif entry["kind"] == "repair":
+            repairs.append((seq or 0, ",".join(map(str, entry["repair"].get("actions", [])))))
+        else:
+            for key, part in (("input", "input"), ("output", "result")):
+                if sha256_hex(parts[part]) != entry[f"{key}_sha256"]:
+                    issues.append(LogIssue(f"{key}_hash_mismatch", f"{key}_sha256 does not "
+                                           f"match the logged {part}", number, seq))
+    return seen, issues, torn, repairs, witnessed
+
+
+def _chain_issues(seen: list[_Seen]) -> list[LogIssue]:
+    issues: list[LogIssue] = []
+    present = sorted({r.seq for r in seen if r.seq is not None})
+    prev_seq, prev_sha, known = 0, ZERO_SHA, True
+    for rec in seen:
+        if rec.seq is None or rec.sha is None:
+            known = False  # cannot chain across an unreadable line; its own issue says why
+            continue
+        expected = prev_seq + 1
+        if known and (rec.seq != expected or rec.prev != prev_sha):
+            elsewhere = bisect_left(present, rec.seq) - bisect_left(present, expected)
+            if rec.seq > expected and elsewhere <= 0:
+                last = f"–{rec.seq - 1}" if rec.seq - 1 > expected else ""
+                issues.append(LogIssue("seq_gap", f"seq jumps from {prev_seq} to {rec.seq}: "
+                                       f"entry {expected}{last} missing (deleted)",
+                                       rec.line, rec.seq))
+            elif rec.seq == expected:
+                issues.append(LogIssue("chain_break", f"prev does not match the entry_sha256 "
+                                       f"of line {rec.line - 1}: that entry was replaced or "
+                                       "re-hashed, or logs were spliced", rec.line, rec.seq))
+            else:
+                issues.append(LogIssue("chain_break", f"seq {rec.seq} found where {expected} "
+                                       "was expected: entries reordered or duplicated",
+                                       rec.line, rec.seq))
+        prev_seq, prev_sha, known = rec.seq, rec.sha, True
+    return issues
+
+
+def _verify_open(f: Any, size: int, anchor: dict[str, Any] | None, anchor_problem: str,
+                 witness: str | None, path: str) -> VerifyReport:
+    seen, issues, torn, repairs, witnessed = _scan(f, size, witness)
+    issues += _chain_issues(seen)
+    issues.sort(key=lambda i: i.line or 0)
+    last = seen[-1] if seen else None
+    last_seq = last.seq if last and last.seq is not None else len(seen)
+    last_sha = (last.sha or "") if last else ZERO_SHA
+    if torn:
+        issues.append(LogIssue("torn_tail", f"{len(torn)} bytes after line {len(seen)} lack a "
+                               "newline (crash mid-write); run repair_log()",
+                               len(seen) + 1, last_seq + 1))
+    good_end = size - len(torn)
+    if anchor_problem == "anchor_missing":
+        if seen or torn:
+            issues.append(LogIssue("anchor_missing", f"{anchor_path(path).name} not found"))
+    elif anchor_problem:
+        issues.append(LogIssue(anchor_problem, f"{anchor_path(path).name} is not "
+                               "{count, last_sha256, log_size}"))
+    elif anchor is not None:
+        code, why = _anchor_verdict(anchor, last_seq, last_sha,
+                                    (last.prev or "") if last else ZERO_SHA,
+                                    last.length if last else 0, good_end)
+        if code == "truncated":
+            issues.append(LogIssue(code, why, len(seen) + 1, last_seq + 1))
+        elif code:
+            issues.append(LogIssue(code, why, len(seen) or None, last_seq if seen else None))
+    if witness and not witnessed:
+        issues.append(LogIssue("witness_missing", f"no entry has entry_sha256 {witness}"))
+    return VerifyReport(path, len(seen), tuple(issues), anchor, last_sha, tuple(repairs))
+
+
+def verify_log(path: str | os.PathLike[str], *, witness: str | None = None) -> VerifyReport:
+    """Check every entry's hashes, the chain, seq continuity and the anchor; never raises on
+    a damaged log. ``witness``: an entry_sha256 kept elsewhere that must be in the chain."""
+    p = Path(path)
+    try:
+        f = open(p, "rb")
+    except FileNotFoundError:
+        return VerifyReport(str(p), 0, (LogIssue("log_missing", f"{p} not found"),), None, "")
+    with f:
+        fcntl.flock(f.fileno(), fcntl.LOCK_SH)  # a consistent (size, anchor) snapshot
+        try:
+            size = os.fstat(f.fileno()).st_size
+            anchor, problem = _read_anchor(anchor_path(p))
+        finally:
+            fcntl.flock(f.fileno(), fcntl.LOCK_UN)
+        return _verify_open(f, size, anchor, problem, witness, str(p))
+
+
+# ---------------------------------------------------------------- repair
+
+@dataclass(frozen=True)
+class RepairReport:
+    path: str
+    actions: tuple[str, ...]       # truncated_torn_tail, reanchored, anchor_refreshed
+    removed_bytes: int = 0
+    saved_to: str = ""             # where the torn bytes were kept
+    note_seq: int | None = None    # seq of the repair entry written
+
+
+_ANCHOR_CODES = {"truncated", "anchor_missing", "anchor_malformed", "anchor_mismatch"}
+
+
+def repair_log(path: str | os.PathLike[str], *, acknowledge_anchor: bool = False,
+               clock: Callable[[], datetime] | None = None, fsync: bool = True) -> RepairReport:
+    """Make a crashed log appendable again, recording what was done in a chained entry.
+
+    Cuts a torn tail (kept in ``LOG.torn-<seq>-<time>``); with ``acknowledge_anchor`` also
+    re-anchors a log whose anchor is missing, unreadable or disagrees. Refuses (RecordError)
+    when any entry or the chain is damaged: that log is evidence, start a new one.
+    """
+    p = Path(path)
+    if not p.exists():
+        raise RecordError("log_missing", "no log to repair", path=str(p))
+    store = _Store(p, fsync)
+    try:
+        with store.locked():
+            size = os.fstat(store.fd).st_size
+            anchor, problem = _read_anchor(store.anchor)
+            with open(p, "rb") as f:
+                report = _verify_open(f, size, anchor, problem, None, str(p))
+            hard = [i for i in report.errors if i.code not in _ANCHOR_CODES | {"torn_tail"}]
+            if hard:
+                raise RecordError(hard[0].code, "repair refused, entries are damaged: "
+                                  f"{hard[0].message}; keep this log as evidence and start a "
+                                  "new one", path=str(p), line=hard[0].line)
+            anchor_codes = sorted({i.code for i in report.errors} & _ANCHOR_CODES)
+            if anchor_codes and not acknowledge_anchor:
+                raise RecordError(anchor_codes[0], "repair refused: the anchor disagrees with "
+                                  "the log; check why, then pass acknowledge_anchor=True",
+                                  path=str(p))
+            actions: list[str] = []
+            tail = _read_tail(store.fd, size)
+            time = _now(clock)
+            saved = ""
+            if tail.torn:
+                stamp = time.replace("-", "").replace(":", "").split(".")[0] + "Z"
+                saved = f"{p.name}.torn-{report.entries + 1}-{stamp}"
+                _write_new_file(p.with_name(saved), tail.torn, fsync)
+                os.ftruncate(store.fd, tail.good_end)
+                if fsync:
+                    os.fsync(store.fd)
+                actions.append("truncated_torn_tail")
+            if anchor_codes:
+                actions.append("reanchored")
+            if not actions:
+                if report.warnings:
+                    store.state(heal_lag=True)
+                    return RepairReport(str(p), ("anchor_refreshed",))
+                return RepairReport(str(p), ())
+            last_line = _read_tail(store.fd, tail.good_end).last_line
+            count = json.loads(last_line)["seq"] if last_line else 0
+            note = {"actions": actions, "anchor_before": anchor,
+                    "problems": [i.code for i in report.issues],
+                    "removed_bytes": len(tail.torn), "removed_sha256": sha256_hex(tail.torn),
+                    "saved_to": saved}
+            parts = {"kind": b'"repair"', "time": canonical_json(time),
+                     "engine_version": canonical_json(_engine_version()),
+                     "repair": canonical_json(note)}
+            store._cache = None
+            seq, _ = store.append(parts, count, report.last_sha256 if report.entries else ZERO_SHA)
+            return RepairReport(str(p), tuple(actions), len(tail.torn), saved, seq)
+    finally:
+        store.close()
+
+
+def _write_new_file(path: Path, data: bytes, do_fsync: bool) -> None:
+    with open(path, "xb") as out:
+        out.write(data)
+        out.flush()
+        if do_fsync:
+            os.fsync(out.fileno())
+
+
+# ---------------------------------------------------------------- replay
+
+@dataclass(frozen=True)
+class Difference:
+    field: str          # status, disorders, qualifiers.<d>, findings, values.<name>, errors
+    logged: Any
+    replayed: Any
+
+
+def _codes(items: Any, *keys: str) -> list[Any]:
+    out = []
+    for item in items or []:
+        if isinstance(item, Mapping):
+            out.append(item.get(keys[0]) if len(keys) == 1 else tuple(item.get(k) for k in keys))
+    return sorted(out, key=repr)
+
+
+def _same_number(a: Any, b: Any, rel_tol: float) -> bool:
+    if isinstance(a, (int, float)) and isinstance(b, (int, float)) \
+            and not isinstance(a, bool) and not isinstance(b, bool):
+        return math.isclose(a, b, rel_tol=rel_tol, abs_tol=rel_tol)
+    return bool(a == b)
+
+
+def compare_results(logged: Mapping[str, Any], replayed: Mapping[str, Any], *,
+                    rel_tol: float = 1e-9) -> tuple[Difference, ...]:
+    """What differs in the conclusions of two results. Pure.
+
+    Compares status, disorders (as a set), qualifiers, finding codes (as a multiset), values
+    (numbers within ``rel_tol``) and error (field, code) pairs; ignores trace, text, timing,
+    context and versions.
+    """
+    diffs: list[Difference] = []
+    if logged.get("status") != replayed.get("status"):
+        diffs.append(Difference("status", logged.get("status"), replayed.get("status")))
+    a, b = sorted(set(logged.get("disorders") or [])), sorted(set(replayed.get("disorders") or []))
+    if a != b:
+        diffs.append(Difference("disorders", a, b))
+    qa, qb = logged.get("qualifiers") or {}, replayed.get("qualifiers") or {}
+    for name in sorted(set(qa) | set(qb)):
+        if qa.get(name) != qb.get(name):
+            diffs.append(Difference(f"qualifiers.{name}", qa.get(name), qb.get(name)))
+    fa, fb = _codes(logged.get("findings"), "code"), _codes(replayed.get("findings"), "code")
+    if fa != fb:
+        diffs.append(Difference("findings", fa, fb))
+    va, vb = logged.get("values") or {}, replayed.get("values") or {}
+    for name in sorted(set(va) | set(vb)):
+        if name not in va or name not in vb or not _same_number(va[name], vb[name], rel_tol):
+            diffs.append(Difference(f"values.{name}", va.get(name), vb.get(name)))
+    ea = _codes(logged.get("errors"), "field", "code")
+    eb = _codes(replayed.get("errors"), "field", "code")
+    if ea != eb:
+        diffs.append(Difference("errors", ea, eb))
+    return tuple(diffs)
+
+
+REPLAY_OUTCOMES = ("same", "differs", "rulebook_missing", "rulebook_mismatch", "error",
+                   "unreadable")
+
+
+@dataclass(frozen=True)
+class ReplayOutcome:
+    line: int
+    seq: int | None
+    outcome: str                                   # one of REPLAY_OUTCOMES
+    rulebook_sha256: str = ""
+    differences: tuple[Difference, ...] = ()
+    message: str = ""
+
+
+@dataclass(frozen=True)
+class ReplayReport:
+    path: str
+    counts: dict[str, int]                         # outcome -> number of decision entries
+    outcomes: tuple[ReplayOutcome, ...]            # every outcome but "same"
+
+    @property
+    def ok(self) -> bool:
+        return not self.outcomes
+
+
+_MISSING = (LookupError, FileNotFoundError)
+
+
+def replay_log(path: str | os.PathLike[str], load_rulebook_by_sha256: Callable[[str], Any],
+               interpret: Callable[[Any, Any], Mapping[str, Any]], *,
+               rel_tol: float = 1e-9) -> ReplayReport:
+    """Re-run every decision entry with the rulebook it names and report changed results.
+
+    ``load_rulebook_by_sha256(sha)`` returns the archived rulebook, or None / raises
+    LookupError or FileNotFoundError when it is not archived (reported per entry). Run
+    :func:`verify_log` first: replay trusts the entries it reads.
+    """
+    counts = {o: 0 for o in REPLAY_OUTCOMES}
+    outcomes: list[ReplayOutcome] = []
+    cache: dict[str, tuple[Any, str]] = {}
+
+    def note(o: ReplayOutcome) -> None:
+        counts[o.outcome] += 1
+        if o.outcome != "same":
+            outcomes.append(o)
+
+    with open(path, "rb") as f:
+        for number, raw in enumerate(f, 1):
+            try:
+                entry = json.loads(raw) if raw.endswith(b"\n") else None
+            except ValueError:
+                entry = None
+            if not isinstance(entry, dict) or _field_problem(entry):
+                note(ReplayOutcome(number, None, "unreadable", message="not a readable entry"))
+                continue
+            if entry["kind"] != "decision":
+                continue
+            seq, sha = entry["seq"], str(entry["rulebook"].get("sha256", ""))
+            if sha not in cache:
+                cache[sha] = _fetch(load_rulebook_by_sha256, sha)
+            rulebook, why = cache[sha]
+            if why:
+                kind = "rulebook_missing" if rulebook is None else "rulebook_mismatch"
+                note(ReplayOutcome(number, seq, kind, sha, message=why))
+                continue
+            try:
+                fresh = interpret(rulebook, entry["input"])
+            except Exception as exc:  # a replay reports, never stops
+                note(ReplayOutcome(number, seq, "error", sha,
+                                   message=f"{type(exc).__name__}: {exc}"))
+                continue
+            diffs = compare_results(entry["result"], fresh, rel_tol=rel_tol)
+            note(ReplayOutcome(number, seq, "differs" if diffs else "same", sha, diffs))
+    return ReplayReport(str(path), counts, tuple(outcomes))
+
+
+def _fetch(load: Callable[[str], Any], sha: str) -> tuple[Any, str]:
+    try:
+        rulebook = load(sha)
+    except _MISSING as exc:
+        return None, f"rulebook {sha[:12]}… not in the archive ({exc})"
+    if rulebook is None:
+        return None, f"rulebook {sha[:12]}… not in the archive"
+    got = getattr(rulebook, "sha256", None)
+    if got is None and isinstance(rulebook, Mapping):
+        got = rulebook.get("sha256")
+    if got is not None and got != sha:
+        return rulebook, f"the archive returned rulebook {str(got)[:12]}… for {sha[:12]}…"
+    return rulebook, ""
+
+
+# ---------------------------------------------------------------- text for the CLI
+
+def render_verify(report: VerifyReport) -> str:
+    head = (f"{report.path}: {'ok' if report.ok else 'FAILED'}, {report.entries} entries, "
+            f"last {report.last_sha256[:16] or '-'}")
+    lines = [head] + [f"  {i.severity}: {i.render(report.path)}" for i in report.issues]
+    lines += [f"  repair entry seq {seq}: {actions}" for seq, actions in report.repairs]
+    return "\n".join(lines)
+
+
+def render_replay(report: ReplayReport) -> str:
+    counts = ", ".join(f"{n} {o}" for o, n in report.counts.items() if n)
+    lines = [f"{report.path}: {counts or 'no decision entries'}"]
+    for o in report.outcomes:
+        lines.append(f"  line {o.line} (seq {o.seq}): {o.outcome}" + (f": {o.message}"
+                                                                        if o.message else ""))
+        lines += [f"    {d.field}: {d.logged!r} -> {d.replayed!r}" for d in o.differences]
+    return "\n".join(lines)
