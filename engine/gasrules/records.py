@@ -134,24 +134,53 @@ def sha256_hex(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
 
 
+_KEYS: dict[str, bytes] = {}
+
+
 def _compose(parts: Mapping[str, bytes]) -> bytes:
     """Canonical JSON of an object whose member values are already canonical bytes."""
-    items = (json.dumps(k, ensure_ascii=False).encode("utf-8") + b":" + v
-             for k, v in sorted(parts.items()))
+    items = []
+    for k, v in sorted(parts.items()):
+        key = _KEYS.get(k)
+        if key is None:
+            key = json.dumps(k, ensure_ascii=False).encode("utf-8")
+            if len(_KEYS) < 256:  # entry field names; a bound against odd tampered logs
+                _KEYS[k] = key
+        items.append(key + b":" + v)
     return b"{" + b",".join(items) + b"}"
 
 
 def _require_str_keys(obj: Any, where: str) -> None:
-    # json.dumps turns int keys into strings, so a re-read entry would hash differently.
+    """Reject non-string object keys: json.dumps would turn them into strings, and the entry
+    read back would hash differently. Fast walk first; paths are built only on failure."""
+    stack = [obj]
+    while stack:
+        o = stack.pop()
+        if type(o) is dict:
+            for k, v in o.items():
+                if type(k) is not str:
+                    raise RecordError("record.not_json", f"object key {k!r} is not a string",
+                                      field=_path_to(obj, k, where), accepted="string keys only")
+                if type(v) in (dict, list, tuple):
+                    stack.append(v)
+        elif type(o) in (list, tuple):
+            stack.extend(v for v in o if type(v) in (dict, list, tuple))
+
+
+def _path_to(obj: Any, bad: Any, where: str) -> str:
     if isinstance(obj, dict):
-        for k, v in obj.items():
-            if not isinstance(k, str):
-                raise RecordError("record.not_json", f"object key {k!r} is not a string",
-                                  field=where, accepted="string keys only")
-            _require_str_keys(v, f"{where}.{k}")
+        if bad in obj and not isinstance(bad, str):
+            return where
+        items: Any = obj.items()
     elif isinstance(obj, (list, tuple)):
-        for i, v in enumerate(obj):
-            _require_str_keys(v, f"{where}[{i}]")
+        items = ((f"[{i}]", v) for i, v in enumerate(obj))
+    else:
+        return ""
+    for k, v in items:
+        found = _path_to(v, bad, f"{where}{k}" if str(k).startswith("[") else f"{where}.{k}")
+        if found:
+            return found
+    return ""
 
 
 def entry_hash(entry: Mapping[str, Any]) -> str:
@@ -575,8 +604,9 @@ def _field_problem(entry: Mapping[str, Any]) -> str:
         if name not in entry:
             return f"field {name!r} is missing"
         value = entry[name]
-        if typ is int and type(value) is not int or typ not in (int, object) \
-                and not isinstance(value, typ):
+        wrong = type(value) is not int if typ is int else \
+            typ is not object and not isinstance(value, typ)
+        if wrong:
             return f"field {name!r} is not of type {typ.__name__}"
     return ""
 
