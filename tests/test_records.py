@@ -7,11 +7,13 @@ log machinery, not the clinical conclusions.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import multiprocessing
 import shutil
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 import pytest
@@ -125,14 +127,14 @@ def test_an_unencodable_result_names_the_field(tmp_path: Path) -> None:
     case = make_case(1)
     result = winter_interpret(RULEBOOK_V1, case)
     result["values"] = {1: 2.0}
-    with DecisionLog(tmp_path / "l.jsonl", RecordConfig(fsync=False)) as log:
-        with pytest.raises(RecordError) as err:
-            log.append(case, result)
+    with DecisionLog(tmp_path / "l.jsonl", RecordConfig(fsync=False)) as log, \
+            pytest.raises(RecordError) as err:
+        log.append(case, result)
     assert err.value.code == "record.not_json" and err.value.field == "result.values"
     result["values"] = {"x": float("nan")}
-    with DecisionLog(tmp_path / "l.jsonl", RecordConfig(fsync=False)) as log:
-        with pytest.raises(RecordError, match="field result"):
-            log.append(case, result)
+    with DecisionLog(tmp_path / "l.jsonl", RecordConfig(fsync=False)) as log, \
+            pytest.raises(RecordError, match="field result"):
+        log.append(case, result)
 
 
 # ---------------------------------------------------------------- a clean log
@@ -156,7 +158,7 @@ def test_entries_carry_the_required_fields_and_chain(log200: Path) -> None:
     assert e["time"] == "2026-01-02T03:04:06.000000Z"
     assert e["rulebook"] == RULEBOOK_V1 and e["engine_version"] == "0.1.0"
     assert e["entry_sha256"] == entry_hash(e)
-    assert e["input_sha256"] == __import__("hashlib").sha256(canonical_json(e["input"])).hexdigest()
+    assert e["input_sha256"] == hashlib.sha256(canonical_json(e["input"])).hexdigest()
     assert e["result"]["trace"][0]["op"] == "fired"  # the result is kept as given
 
 
@@ -186,7 +188,7 @@ def test_an_edited_and_rehashed_entry_breaks_the_chain_at_the_next_line(log200: 
     lines[56] = canonical_json(entry) + b"\n"
     set_lines(log200, lines)
     assert first(log200) == ("output_hash_mismatch", 57, 57)
-    entry["output_sha256"] = __import__("hashlib").sha256(
+    entry["output_sha256"] = hashlib.sha256(
         canonical_json(entry["result"])).hexdigest()
     entry["entry_sha256"] = entry_hash(entry)
     lines[56] = canonical_json(entry) + b"\n"
@@ -235,7 +237,7 @@ def test_a_log_edited_without_the_anchor_is_an_anchor_mismatch(log200: Path) -> 
     lines = lines_of(log200)
     entry = json.loads(lines[-1])
     entry["result"]["status"] = "partial"
-    entry["output_sha256"] = __import__("hashlib").sha256(
+    entry["output_sha256"] = hashlib.sha256(
         canonical_json(entry["result"])).hexdigest()
     entry["entry_sha256"] = entry_hash(entry)
     lines[-1] = canonical_json(entry) + b"\n"
@@ -306,6 +308,42 @@ def test_repair_refuses_a_damaged_chain(log200: Path) -> None:
     with pytest.raises(RecordError) as err:
         repair_log(log200, acknowledge_anchor=True, fsync=False)
     assert err.value.code == "seq_gap" and err.value.line == 11
+
+
+def test_the_writer_refuses_a_log_without_anchor_or_with_a_bad_last_line(log200: Path) -> None:
+    anchor_path(log200).unlink()
+    with pytest.raises(RecordError) as err:
+        DecisionLog(log200, RecordConfig(fsync=False))
+    assert err.value.code == "anchor_missing"
+    assert repair_log(log200, acknowledge_anchor=True, fsync=False).actions == ("reanchored",)
+    assert verify_log(log200).ok
+    with open(log200, "ab") as f:
+        f.write(b"not json\n")
+    with pytest.raises(RecordError) as err:
+        DecisionLog(log200, RecordConfig(fsync=False))
+    assert err.value.code == "malformed_line"
+    assert first(log200) == ("malformed_line", 202, None)
+
+
+def test_every_entry_is_written_with_rulebook_time_and_no_temp_files(tmp_path: Path) -> None:
+    path = tmp_path / "x.jsonl"
+    compiled = SimpleNamespace(id="gasrules-default", version="1.0.0", sha256="c4" * 32)
+    case = make_case(1)
+    result = winter_interpret(RULEBOOK_V1, case)
+    with DecisionLog(path, RecordConfig(fsync=True, clock=TickClock())) as log:
+        receipt = log.append(case, result, rulebook=compiled, engine_version="9.9")
+        log.append([1, 2], {"status": "rejected", "rulebook": RULEBOOK_V1})  # kept, never lost
+        with pytest.raises(RecordError) as err:
+            log.append(case, {"status": "rejected"})
+        assert err.value.field == "rulebook"
+    entry = json.loads(lines_of(path)[0])
+    assert entry["rulebook"]["sha256"] == "c4" * 32 and entry["engine_version"] == "9.9"
+    assert receipt.seq == 1 and receipt.entry_sha256 == entry["entry_sha256"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["x.jsonl", "x.jsonl.anchor"]
+    naive = RecordConfig(fsync=False, clock=lambda: datetime(2026, 1, 1))
+    with DecisionLog(path, naive) as log, pytest.raises(RecordError, match="clock"):
+        log.append(case, result)
+    assert verify_log(path).ok and verify_log(path).entries == 2
 
 
 # ---------------------------------------------------------------- identifiers in context

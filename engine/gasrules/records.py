@@ -18,8 +18,9 @@ Canonical JSON (one encoder, used everywhere): ``json.dumps(obj, sort_keys=True,
 separators=(",", ":"), ensure_ascii=False, allow_nan=False)`` encoded as UTF-8. orjson was
 measured and rejected for hashing: its float text differs from the standard library's for
 exponent forms (``1e-05`` vs ``0.00001``, ``4e-08`` vs ``4e-8``; values such as [H+] in mol/L
-hit this), it writes NaN as null and it refuses integers beyond 64 bits. The standard-library
-form is reproducible by an auditor with nothing but Python. Large parts (input, result) are
+hit this), it writes NaN as null and it refuses integers beyond 64 bits; its decoder silently
+turns integers of 2**64 and above into floats, so it is not used for reading either. The
+standard-library form is reproducible by an auditor with nothing but Python. Large parts (input, result) are
 encoded once and spliced into the entry (:func:`_compose`), which yields the same bytes.
 
 Identifier masking: each configured key (case-insensitive, at any depth inside ``context``) gets
@@ -64,6 +65,10 @@ anchor_lag             warning   one complete entry beyond the anchor (crash bet
                                  append and the anchor update; healed by the next writer)
 witness_missing        error     the witnessed entry_sha256 is not in the chain
 =====================  ========  =====================================================
+
+Writer errors are :class:`RecordError` with ``code`` one of the codes above (the writer refuses
+a log in that state) or ``record.not_json`` (a value canonical JSON cannot hold; ``field`` names
+where), ``record.bad_config``, ``record.bad_clock``, ``record.no_rulebook``.
 """
 
 from __future__ import annotations
@@ -77,7 +82,7 @@ import os
 import threading
 from bisect import bisect_left
 from contextlib import contextmanager
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Callable, Iterator, Mapping
@@ -91,14 +96,11 @@ DEFAULT_IDENTIFIER_KEYS: tuple[str, ...] = (
     "record_number", "patient_id", "mrn", "name", "patient_name", "given_name", "family_name",
     "birth_date", "date_of_birth", "dob", "address", "phone", "email", "insurance_number",
 )
-SEVERITY: dict[str, str] = {
-    "log_missing": "error", "malformed_line": "error", "malformed_entry": "error",
-    "entry_hash_mismatch": "error", "input_hash_mismatch": "error",
-    "output_hash_mismatch": "error", "chain_break": "error", "seq_gap": "error",
-    "torn_tail": "error", "truncated": "error", "anchor_missing": "error",
-    "anchor_malformed": "error", "anchor_mismatch": "error", "anchor_lag": "warning",
-    "witness_missing": "error",
-}
+LOG_CODES = ("log_missing", "malformed_line", "malformed_entry", "entry_hash_mismatch",
+             "input_hash_mismatch", "output_hash_mismatch", "chain_break", "seq_gap", "torn_tail",
+             "truncated", "anchor_missing", "anchor_malformed", "anchor_mismatch", "anchor_lag",
+             "witness_missing")
+WARNING_CODES = frozenset({"anchor_lag"})
 _ENTRY_FIELDS = {"record_format": int, "kind": str, "seq": int, "time": str,
                  "engine_version": str, "prev": str, "entry_sha256": str}
 _DECISION_FIELDS = {"input": object, "result": dict, "rulebook": dict, "context_policy": str,
@@ -110,7 +112,8 @@ class RecordError(EngineError):
 
     def __init__(self, code: str, message: str, *, path: str = "", line: int | None = None,
                  field: str = "", accepted: str = ""):
-        self.code, self.path, self.line, self.field, self.accepted = code, path, line, field, accepted
+        self.code, self.path, self.line = code, path, line
+        self.field, self.accepted = field, accepted
         where = f"{path}:{line}: " if path and line else (f"{path}: " if path else "")
         extra = f" (field {field}; accepted: {accepted})" if field else ""
         super().__init__(f"{where}{code}: {message}{extra}")
@@ -168,16 +171,13 @@ def _require_str_keys(obj: Any, where: str) -> None:
 
 
 def _path_to(obj: Any, bad: Any, where: str) -> str:
-    if isinstance(obj, dict):
-        if bad in obj and not isinstance(bad, str):
-            return where
-        items: Any = obj.items()
-    elif isinstance(obj, (list, tuple)):
-        items = ((f"[{i}]", v) for i, v in enumerate(obj))
-    else:
-        return ""
-    for k, v in items:
-        found = _path_to(v, bad, f"{where}{k}" if str(k).startswith("[") else f"{where}.{k}")
+    """The path of the first object holding key ``bad`` (only called after a failed check)."""
+    if isinstance(obj, dict) and any(k is bad for k in obj):
+        return where
+    kids = obj.items() if isinstance(obj, dict) else \
+        enumerate(obj) if isinstance(obj, (list, tuple)) else ()
+    for k, v in kids:
+        found = _path_to(v, bad, f"{where}[{k}]" if isinstance(k, int) else f"{where}.{k}")
         if found:
             return found
     return ""
@@ -217,7 +217,7 @@ class RecordConfig:
                               field="identifier_keys", accepted="a list of key names")
 
     @classmethod
-    def from_mapping(cls, data: Mapping[str, Any]) -> "RecordConfig":
+    def from_mapping(cls, data: Mapping[str, Any]) -> RecordConfig:
         """Build from a configuration section (keys as the field names; no clock)."""
         known = {"context_policy", "identifier_keys", "salt", "mask_chars", "fsync"}
         unknown = sorted(set(data) - known)
@@ -355,9 +355,9 @@ def _anchor_verdict(anchor: Mapping[str, Any], last_seq: int, last_sha: str, las
     if last_seq < a_count:
         return "truncated", (f"the anchor says {a_count} entries and {a_size} bytes; the log "
                              f"ends at entry {last_seq} and {good_end} bytes")
-    return "anchor_mismatch", (f"the anchor says entry {a_count} {a_sha[:12]}… at {a_size} bytes; "
-                               f"the log ends with entry {last_seq} {last_sha[:12]}… at "
-                               f"{good_end} bytes")
+    return "anchor_mismatch", (f"the anchor says entry {a_count} {a_sha[:12]}... at {a_size} "
+                               f"bytes; the log ends with entry {last_seq} {last_sha[:12]}... "
+                               f"at {good_end} bytes")
 
 
 # ---------------------------------------------------------------- writer
@@ -398,7 +398,7 @@ class _Store:
                 fcntl.flock(self.fd, fcntl.LOCK_UN)
 
     def state(self, *, heal_lag: bool = True) -> tuple[int, str, int]:
-        """(count, last_sha256, size) of a log fit for appending, else LogStateError."""
+        """(count, last_sha256, size) of a log fit for appending, else RecordError."""
         size = os.fstat(self.fd).st_size
         if self._cache and self._cache[0] == size:
             return self._cache[1], self._cache[2], size
@@ -415,9 +415,9 @@ class _Store:
                     _write_anchor(self.anchor, 0, ZERO_SHA, 0, self.do_fsync)
                 self._cache = (0, 0, ZERO_SHA)
                 return 0, ZERO_SHA, 0
-            raise RecordError(problem or "truncated", "the log is empty but its anchor is "
-                              + ("unreadable" if problem else f"at entry {anchor['count']}")
-                              + "; run verify_log()", path=where)
+            state = "unreadable" if anchor is None else f"at entry {anchor['count']}"
+            raise RecordError(problem or "truncated", f"the log is empty but its anchor is "
+                              f"{state}; run verify_log()", path=where)
         try:
             last = json.loads(tail.last_line or b"")
             seq, sha, prev = last["seq"], last["entry_sha256"], last["prev"]
@@ -542,7 +542,7 @@ class DecisionLog:
     def close(self) -> None:
         self._store.close()
 
-    def __enter__(self) -> "DecisionLog":
+    def __enter__(self) -> DecisionLog:
         return self
 
     def __exit__(self, *exc: object) -> None:
@@ -560,7 +560,7 @@ class LogIssue:
 
     @property
     def severity(self) -> str:
-        return SEVERITY[self.code]
+        return "warning" if self.code in WARNING_CODES else "error"
 
     def render(self, path: str = "") -> str:
         where = f"{path}:{self.line}" if self.line else path
@@ -683,7 +683,7 @@ def _chain_issues(seen: list[_Seen]) -> list[LogIssue]:
         if known and (rec.seq != expected or rec.prev != prev_sha):
             elsewhere = bisect_left(present, rec.seq) - bisect_left(present, expected)
             if rec.seq > expected and elsewhere <= 0:
-                last = f"–{rec.seq - 1}" if rec.seq - 1 > expected else ""
+                last = f"-{rec.seq - 1}" if rec.seq - 1 > expected else ""
                 issues.append(LogIssue("seq_gap", f"seq jumps from {prev_seq} to {rec.seq}: "
                                        f"entry {expected}{last} missing (deleted)",
                                        rec.line, rec.seq))
@@ -735,11 +735,9 @@ def verify_log(path: str | os.PathLike[str], *, witness: str | None = None) -> V
     """Check every entry's hashes, the chain, seq continuity and the anchor; never raises on
     a damaged log. ``witness``: an entry_sha256 kept elsewhere that must be in the chain."""
     p = Path(path)
-    try:
-        f = open(p, "rb")
-    except FileNotFoundError:
+    if not p.exists():
         return VerifyReport(str(p), 0, (LogIssue("log_missing", f"{p} not found"),), None, "")
-    with f:
+    with open(p, "rb") as f:
         fcntl.flock(f.fileno(), fcntl.LOCK_SH)  # a consistent (size, anchor) snapshot
         try:
             size = os.fstat(f.fileno()).st_size
@@ -970,14 +968,14 @@ def _fetch(load: Callable[[str], Any], sha: str) -> tuple[Any, str]:
     try:
         rulebook = load(sha)
     except _MISSING as exc:
-        return None, f"rulebook {sha[:12]}… not in the archive ({exc})"
+        return None, f"rulebook {sha[:12]}... not in the archive ({exc})"
     if rulebook is None:
-        return None, f"rulebook {sha[:12]}… not in the archive"
+        return None, f"rulebook {sha[:12]}... not in the archive"
     got = getattr(rulebook, "sha256", None)
     if got is None and isinstance(rulebook, Mapping):
         got = rulebook.get("sha256")
     if got is not None and got != sha:
-        return rulebook, f"the archive returned rulebook {str(got)[:12]}… for {sha[:12]}…"
+        return rulebook, f"the archive returned rulebook {str(got)[:12]}... for {sha[:12]}..."
     return rulebook, ""
 
 
