@@ -395,14 +395,17 @@ def test_bad_record_settings_name_the_field_and_the_accepted_form() -> None:
 
 # ---------------------------------------------------------------- two processes, one log
 
-def _append_many(path: str, start: int, n: int) -> None:
+def _append_many(path: str, start: int, n: int, go: Any) -> None:
+    go.wait(30)  # both writers start together, so their appends overlap
     write_log(Path(path), n, start=start)
 
 
 def test_two_processes_appending_produce_one_valid_chain(tmp_path: Path) -> None:
     path = tmp_path / "shared.jsonl"
+    DecisionLog(path, RecordConfig(fsync=False)).close()  # both open an existing log
     ctx = multiprocessing.get_context("fork")
-    procs = [ctx.Process(target=_append_many, args=(str(path), s, 60)) for s in (1, 1001)]
+    go = ctx.Barrier(2)
+    procs = [ctx.Process(target=_append_many, args=(str(path), s, 60, go)) for s in (1, 1001)]
     for p in procs:
         p.start()
     for p in procs:
@@ -411,6 +414,8 @@ def test_two_processes_appending_produce_one_valid_chain(tmp_path: Path) -> None
     report = verify_log(path)
     assert report.ok and report.issues == () and report.entries == 120
     ids = [json.loads(line)["input"]["case_id"] for line in lines_of(path)]
+    second = [int(i.split("-")[1]) > 1000 for i in ids]
+    assert any(a != b for a, b in zip(second, second[1:])), "the writers did not overlap"
     for start in (1, 1001):  # each writer's own entries stay in its order
         mine = [int(i.split("-")[1]) for i in ids if int(i.split("-")[1]) >= start
                 and int(i.split("-")[1]) < start + 60]
