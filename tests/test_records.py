@@ -8,6 +8,7 @@ log machinery, not the clinical conclusions.
 from __future__ import annotations
 
 import hashlib
+import itertools
 import json
 import multiprocessing
 import shutil
@@ -317,12 +318,34 @@ def test_the_writer_refuses_a_log_without_anchor_or_with_a_bad_last_line(log200:
     assert err.value.code == "anchor_missing"
     assert repair_log(log200, acknowledge_anchor=True, fsync=False).actions == ("reanchored",)
     assert verify_log(log200).ok
-    with open(log200, "ab") as f:
-        f.write(b"not json\n")
+    lines = lines_of(log200)
+    lines[4] = b"not json\n"  # damage after the fact, in the middle: not crash-shaped
+    set_lines(log200, lines)
+    assert first(log200) == ("malformed_line", 5, None)
+    with pytest.raises(RecordError) as err:
+        repair_log(log200, acknowledge_anchor=True, fsync=False)
+    assert err.value.code == "malformed_line"
+
+
+def test_an_unreadable_last_line_the_anchor_never_counted_is_a_torn_tail(log200: Path) -> None:
+    last = lines_of(log200)[-1]
+    with open(log200, "ab") as f:  # a crash that left half a line and then a newline
+        f.write(last[: len(last) // 2] + b"\n")
+    assert [i.code for i in verify_log(log200).issues] == ["torn_tail"]
     with pytest.raises(RecordError) as err:
         DecisionLog(log200, RecordConfig(fsync=False))
-    assert err.value.code == "malformed_line"
-    assert first(log200) == ("malformed_line", 202, None)
+    assert err.value.code == "torn_tail"
+    fixed = repair_log(log200, fsync=False)
+    assert fixed.removed_bytes == len(last) // 2 + 1 and fixed.note_seq == 201
+    assert verify_log(log200).ok
+    # the same bytes at the end of a log whose anchor counts them are damage, not a crash
+    lines = lines_of(log200)
+    lines[-1] = lines[-1][:40] + b"\n"
+    set_lines(log200, lines)
+    anchor = json.loads(anchor_path(log200).read_text())
+    anchor["log_size"] = log200.stat().st_size
+    anchor_path(log200).write_text(json.dumps(anchor))
+    assert first(log200) == ("malformed_line", 201, None)
 
 
 def test_every_entry_is_written_with_rulebook_time_and_no_temp_files(tmp_path: Path) -> None:
@@ -415,7 +438,7 @@ def test_two_processes_appending_produce_one_valid_chain(tmp_path: Path) -> None
     assert report.ok and report.issues == () and report.entries == 120
     ids = [json.loads(line)["input"]["case_id"] for line in lines_of(path)]
     second = [int(i.split("-")[1]) > 1000 for i in ids]
-    assert any(a != b for a, b in zip(second, second[1:])), "the writers did not overlap"
+    assert any(a != b for a, b in itertools.pairwise(second)), "the writers did not overlap"
     for start in (1, 1001):  # each writer's own entries stay in its order
         mine = [int(i.split("-")[1]) for i in ids if int(i.split("-")[1]) >= start
                 and int(i.split("-")[1]) < start + 60]

@@ -20,8 +20,8 @@ measured and rejected for hashing: its float text differs from the standard libr
 exponent forms (``1e-05`` vs ``0.00001``, ``4e-08`` vs ``4e-8``; values such as [H+] in mol/L
 hit this), it writes NaN as null and it refuses integers beyond 64 bits; its decoder silently
 turns integers of 2**64 and above into floats, so it is not used for reading either. The
-standard-library form is reproducible by an auditor with nothing but Python. Large parts (input, result) are
-encoded once and spliced into the entry (:func:`_compose`), which yields the same bytes.
+standard-library form is reproducible by an auditor with nothing but Python. Large parts
+(input, result) are encoded once and spliced into the entry (:func:`_compose`): same bytes.
 
 Identifier masking: each configured key (case-insensitive, at any depth inside ``context``) gets
 ``"hmac-sha256:" + the first mask_chars hex digits of HMAC-SHA256(salt, canonical JSON of the
@@ -29,7 +29,8 @@ value)``. The same value under the same salt always masks alike, so cases stay l
 ``drop`` removes those keys. A context that is not an object is masked or dropped whole.
 
 Torn tail (our design): appends write one whole line, fsync, then the anchor. A crash can leave
-(a) a partial last line without newline: ``torn_tail``; the writer refuses to append until
+(a) a partial last line: no trailing newline, or an unreadable last line that the anchor never
+counted (the anchor ends where that line begins): ``torn_tail``; the writer refuses to append until
 :func:`repair_log` moves the torn bytes to ``LOG.torn-<seq>-<time>`` (kept as evidence), truncates
 the log to the last complete line and appends a chained repair entry saying so; or (b) a complete
 last line the anchor does not count yet: ``anchor_lag`` (a warning); the next writer refreshes
@@ -55,7 +56,8 @@ output_hash_mismatch   error     output_sha256 does not match the logged result
 chain_break            error     prev is not the previous line's entry_sha256 (reordered,
                                  duplicated or replaced entry)
 seq_gap                error     seq jumps forward: entries are missing (deleted)
-torn_tail              error     last line incomplete (no newline): a crash mid-write
+torn_tail              error     last line incomplete (no newline, or unreadable and not
+                                 yet counted by the anchor): a crash mid-write
 truncated              error     the log holds fewer entries than the anchor says
 anchor_missing         error     a non-empty log without its anchor file
 anchor_malformed       error     the anchor file is not {count, last_sha256, log_size}
@@ -423,6 +425,10 @@ class _Store:
             seq, sha, prev = last["seq"], last["entry_sha256"], last["prev"]
             good = entry_hash(last) == sha
         except (ValueError, KeyError, TypeError, RecordError):
+            if anchor is not None and anchor["log_size"] == size - len(tail.last_line or b"") - 1:
+                raise RecordError("torn_tail", "the last line is unreadable and the anchor never "
+                                  "counted it (crash mid-write); run repair_log() on this log",
+                                  path=where) from None
             raise RecordError("malformed_line", "the last entry cannot be read; run verify_log()",
                               path=where) from None
         if not good:
@@ -576,6 +582,7 @@ class VerifyReport:
     anchor: dict[str, Any] | None
     last_sha256: str
     repairs: tuple[tuple[int, str], ...] = ()   # (seq, actions) of repair entries
+    torn_bytes: int = 0                         # length of a torn tail, if any
 
     @property
     def errors(self) -> tuple[LogIssue, ...]:
@@ -621,19 +628,19 @@ class _Seen:
 
 
 def _scan(f: Any, size: int, witness: str | None) -> tuple[list[_Seen], list[LogIssue],
-                                                            bytes, list[tuple[int, str]], bool]:
+                                                            int, list[tuple[int, str]], bool]:
     """Read complete lines up to ``size``: per-line facts and per-entry issues."""
     seen: list[_Seen] = []
     issues: list[LogIssue] = []
     repairs: list[tuple[int, str]] = []
-    offset, torn, witnessed = 0, b"", False
+    offset, torn, witnessed = 0, 0, False
     for raw in f:
         raw = raw[: size - offset]
         if not raw:
             break
         offset += len(raw)
         if not raw.endswith(b"\n"):
-            torn = raw
+            torn = len(raw)
             break
         number = len(seen) + 1
         rec = _Seen(number, None, None, None, len(raw))
@@ -702,16 +709,21 @@ def _chain_issues(seen: list[_Seen]) -> list[LogIssue]:
 def _verify_open(f: Any, size: int, anchor: dict[str, Any] | None, anchor_problem: str,
                  witness: str | None, path: str) -> VerifyReport:
     seen, issues, torn, repairs, witnessed = _scan(f, size, witness)
+    if not torn and seen and seen[-1].sha is None and anchor is not None \
+            and anchor["log_size"] == size - seen[-1].length:
+        # an unreadable last line the anchor never counted: also left by a crash
+        torn = seen.pop().length
+        issues = [i for i in issues if i.line != len(seen) + 1]
     issues += _chain_issues(seen)
     issues.sort(key=lambda i: i.line or 0)
     last = seen[-1] if seen else None
     last_seq = last.seq if last and last.seq is not None else len(seen)
     last_sha = (last.sha or "") if last else ZERO_SHA
     if torn:
-        issues.append(LogIssue("torn_tail", f"{len(torn)} bytes after line {len(seen)} lack a "
-                               "newline (crash mid-write); run repair_log()",
+        issues.append(LogIssue("torn_tail", f"the last {torn} bytes are an incomplete line the "
+                               "anchor never counted (crash mid-write); run repair_log()",
                                len(seen) + 1, last_seq + 1))
-    good_end = size - len(torn)
+    good_end = size - torn
     if anchor_problem == "anchor_missing":
         if seen or torn:
             issues.append(LogIssue("anchor_missing", f"{anchor_path(path).name} not found"))
@@ -728,7 +740,7 @@ def _verify_open(f: Any, size: int, anchor: dict[str, Any] | None, anchor_proble
             issues.append(LogIssue(code, why, len(seen) or None, last_seq if seen else None))
     if witness and not witnessed:
         issues.append(LogIssue("witness_missing", f"no entry has entry_sha256 {witness}"))
-    return VerifyReport(path, len(seen), tuple(issues), anchor, last_sha, tuple(repairs))
+    return VerifyReport(path, len(seen), tuple(issues), anchor, last_sha, tuple(repairs), torn)
 
 
 def verify_log(path: str | os.PathLike[str], *, witness: str | None = None) -> VerifyReport:
@@ -790,14 +802,15 @@ def repair_log(path: str | os.PathLike[str], *, acknowledge_anchor: bool = False
                                   "the log; check why, then pass acknowledge_anchor=True",
                                   path=str(p))
             actions: list[str] = []
-            tail = _read_tail(store.fd, size)
+            good_end = size - report.torn_bytes
+            torn = os.pread(store.fd, report.torn_bytes, good_end)
             time = _now(clock)
             saved = ""
-            if tail.torn:
+            if torn:
                 stamp = time.replace("-", "").replace(":", "").split(".")[0] + "Z"
                 saved = f"{p.name}.torn-{report.entries + 1}-{stamp}"
-                _write_new_file(p.with_name(saved), tail.torn, fsync)
-                os.ftruncate(store.fd, tail.good_end)
+                _write_new_file(p.with_name(saved), torn, fsync)
+                os.ftruncate(store.fd, good_end)
                 if fsync:
                     os.fsync(store.fd)
                 actions.append("truncated_torn_tail")
@@ -808,18 +821,18 @@ def repair_log(path: str | os.PathLike[str], *, acknowledge_anchor: bool = False
                     store.state(heal_lag=True)
                     return RepairReport(str(p), ("anchor_refreshed",))
                 return RepairReport(str(p), ())
-            last_line = _read_tail(store.fd, tail.good_end).last_line
+            last_line = _read_tail(store.fd, good_end).last_line
             count = json.loads(last_line)["seq"] if last_line else 0
             note = {"actions": actions, "anchor_before": anchor,
                     "problems": [i.code for i in report.issues],
-                    "removed_bytes": len(tail.torn), "removed_sha256": sha256_hex(tail.torn),
+                    "removed_bytes": len(torn), "removed_sha256": sha256_hex(torn),
                     "saved_to": saved}
             parts = {"kind": b'"repair"', "time": canonical_json(time),
                      "engine_version": canonical_json(_engine_version()),
                      "repair": canonical_json(note)}
             store._cache = None
             seq, _ = store.append(parts, count, report.last_sha256 if report.entries else ZERO_SHA)
-            return RepairReport(str(p), tuple(actions), len(tail.torn), saved, seq)
+            return RepairReport(str(p), tuple(actions), len(torn), saved, seq)
     finally:
         store.close()
 
