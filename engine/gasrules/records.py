@@ -91,6 +91,13 @@ from typing import Any, Callable, Iterator, Mapping
 
 from .errors import EngineError
 
+__all__ = [
+    "AppendReceipt", "DecisionLog", "Difference", "LogIssue", "RecordConfig", "RecordError",
+    "RepairReport", "ReplayOutcome", "ReplayReport", "VerifyReport", "anchor_path",
+    "apply_context_policy", "canonical_json", "compare_results", "entry_hash", "mask_value",
+    "render_replay", "render_verify", "repair_log", "replay_log", "verify_log",
+]
+
 RECORD_FORMAT = 1
 ZERO_SHA = "0" * 64
 CONTEXT_POLICIES = ("keep", "mask", "drop")
