@@ -89,8 +89,8 @@ MIXES: dict[str, dict[str, float]] = {
     "hospital": {"ICU": 0.35, "ED": 0.40, "WARD": 0.25},
     "icu": {"ICU": 1.0}, "ed": {"ED": 1.0}, "ward": {"WARD": 1.0},
 }
-_METABOLIC_WEIGHTS = (0.30, 0.22, 0.12, 0.12, 0.12, 0.12)      # per METABOLIC_SETS entry
-_RESP_WEIGHTS = (0.45, 0.30, 0.25)                             # per RESPIRATORY entry
+_METABOLIC_WEIGHTS = (0.38, 0.18, 0.10, 0.12, 0.10, 0.12)      # per METABOLIC_SETS entry
+_RESP_WEIGHTS = (0.50, 0.27, 0.23)                             # per RESPIRATORY entry
 _ALBUMIN_BY_WARD = {"ICU": (27.0, 6.0), "ED": (38.0, 5.0), "WARD": (33.0, 6.0)}
 _SHARE_INCONSISTENT = 0.01
 _SHARE_CHILD = 0.01
@@ -102,6 +102,8 @@ _SHARE_ALBUMIN_GDL = 0.15
 _SHARE_FIO2_PERCENT = 0.30
 _EPOCH = date(2026, 3, 2).toordinal()          # invented collection period start
 _PH_NOISE = 0.008
+_HHMM = tuple(f"{m // 60:02d}:{m % 60:02d}" for m in range(1440))
+_SS = tuple(f"{sec:02d}" for sec in range(60))
 _S, _PK, _LN10 = 0.0307, 6.1, math.log(10.0)
 
 
@@ -158,18 +160,14 @@ def generate_labelled(n: int, seed: int = 0, *, mix: str = "hospital",
     clock = 7 * 3600 + _below(u, 3600)
     dates: dict[int, str] = {}
     for i in range(start, start + n):
-        clock += _below(u, 20, 400)
+        clock += 20 + int(380 * u())
         day, secs = divmod(clock, 86400)
         if day not in dates:
             dates[day] = date.fromordinal(_EPOCH + day).isoformat()
-        h, rem = divmod(secs, 3600)
         ctx = {"ward": _pick(rng, wards),
-               "collected_at": f"{dates[day]}T{h:02d}:{rem // 60:02d}:{rem % 60:02d}Z",
-               "record_number": f"DEMO{_below(u, 10_000_000):07d}"}
-        scenario, values = _draw(rng, ctx["ward"])
-        case: dict[str, Any] = {"case_id": f"D{i:06d}", "context": ctx}
-        case.update(values)
-        yield scenario, case
+               "collected_at": f"{dates[day]}T{_HHMM[secs // 60]}:{_SS[secs % 60]}Z",
+               "record_number": "DEMO%07d" % int(10_000_000 * u())}
+        yield _draw(rng, "D%06d" % i, ctx)
 
 
 def generate_cases(n: int, seed: int = 0, *, mix: str = "hospital",
@@ -318,8 +316,10 @@ def _acid_base(rng: random.Random, resp: str, chronic: bool, metabolic: tuple[st
     return _clamp(hco3, 3.5, 50.0), _clamp(pco2, 12.0, 110.0), gap_excess, kind
 
 
-def _draw(rng: random.Random, ward: str) -> tuple[Scenario, dict[str, Any]]:
+def _draw(rng: random.Random, case_id: str, ctx: dict[str, str]
+          ) -> tuple[Scenario, dict[str, Any]]:
     u = rng.random
+    ward = ctx["ward"]
     venous_share, vent_share, fio2_share = _WARDS[ward][1:]
     r = u()
     out_of_scope = ("child" if r < _SHARE_CHILD else
@@ -350,7 +350,8 @@ def _draw(rng: random.Random, ward: str) -> tuple[Scenario, dict[str, Any]]:
             break
     ph = round(ph_exact + _PH_NOISE * (2.0 * u() - 1.0), 2)
 
-    v: dict[str, Any] = {"sample_type": "venous" if venous else "arterial"}
+    v: dict[str, Any] = {"case_id": case_id, "context": ctx,
+                         "sample_type": "venous" if venous else "arterial"}
     if resp != "none" and u() < 0.6:
         v["chronicity"] = ("chronic" if chronic else "acute") if u() < 0.85 else "unknown"
     v["ph"], v["pco2"], v["hco3"] = ph, pco2_out, hco3
@@ -393,13 +394,13 @@ def _oxygen(rng: random.Random, v: dict[str, Any], ward: str, venous: bool, vent
                      else fio2)
     if venous:
         po2 = 25.0 + 25.0 * u()
-        so2 = 0.45 + 0.35 * u()
     else:
         alveolar = max(fio2, 0.21) * 713.0 - pco2_mm * 1.25
         po2 = max(45.0, alveolar - (5.0 + (0.15 + 0.45 * u()) * alveolar * u()))
-        so2 = 1.0 / (23400.0 / (po2 ** 3 + 150.0 * po2) + 1.0)   # Severinghaus 1979, eq. 1
     v["po2"] = _quantity("po2", po2, kpa)[0]
     if u() < 0.6:
+        so2 = (0.45 + 0.35 * u() if venous     # Severinghaus 1979, eq. 1 for arterial
+               else 1.0 / (23400.0 / (po2 * po2 * po2 + 150.0 * po2) + 1.0))
         v["so2"] = ({"value": round(so2 * 100), "unit": "%"} if u() < 0.3
                     else round(min(so2, 1.0), 2))
     if ventilated:
@@ -434,21 +435,19 @@ def _chemistry(rng: random.Random, v: dict[str, Any], ward: str, metabolic: tupl
     if u() < 0.7 or kind == "lactic":
         v["lactate"] = round(1.0 + gap_excess * (0.6 + 0.4 * u()) if kind == "lactic"
                              else 0.6 + 1.3 * u(), 1)
-    glucose = 18.0 + 17.0 * u() if kind == "keto" else _clamp(_normal(u, 6.5, 1.5), 3.5, 14.0)
     renal = kind == "renal"
     toxic = kind != "" and ward == "ED" and u() < 0.1
     osm = toxic or (ward == "ED" and u() < 0.08)
-    if osm or u() < 0.6 or kind == "keto":
+    glucose = urea = 0.0
+    if osm or kind == "keto" or u() < 0.6:
+        glucose = 18.0 + 17.0 * u() if kind == "keto" else 5.0 + 3.0 * (u() + u())
         v["glucose"] = ({"value": round(glucose / 0.0555062), "unit": "mg/dL"} if u() < 0.1
                         else round(glucose, 1))
-    urea = 25.0 + 20.0 * u() if renal else _clamp(_normal(u, 6.0, 2.0), 2.0, 15.0)
     if osm or renal or u() < 0.5:
+        urea = 25.0 + 20.0 * u() if renal else 2.5 + 4.0 * (u() + u())
         v["urea"] = round(urea, 1)
-        v["creatinine"] = round(400.0 + 500.0 * u() if renal
-                                else _clamp(_normal(u, 85.0, 20.0), 40.0, 160.0))
+        v["creatinine"] = round(400.0 + 500.0 * u() if renal else 50.0 + 45.0 * (u() + u()))
     if osm and "na" in v:
-        v.setdefault("glucose", round(glucose, 1))
-        v.setdefault("urea", round(urea, 1))
         calc = 2.0 * v["na"] + glucose + urea
         v["osmolality"] = round(calc + (25.0 + 35.0 * u() if toxic else -4.0 + 12.0 * u()))
     if ward == "ED" and u() < 0.05:
@@ -456,7 +455,7 @@ def _chemistry(rng: random.Random, v: dict[str, Any], ward: str, metabolic: tupl
     if u() < 0.6:
         v["hb"] = round(_clamp(_normal(u, 12.5, 2.0), 6.0, 18.0), 1)
     if u() < 0.6:   # analyser SBE, Van Slyke form as in methods.md 2.4 (synthesis)
-        v["base_excess"] = round(0.93 * (hco3 - 24.4 + 14.83 * (ph - 7.40)), 1)
+        v["base_excess"] = round(0.93 * (hco3 - 24.4 + 14.83 * (ph - 7.40)), 1) + 0.0
     if u() < 0.15:
         v["tco2"] = round(hco3 + min(0.03 * pco2_mm, 1.5) + 0.6 * u() - 0.3, 1)
     if ward == "ICU" and u() < 0.3:
@@ -476,7 +475,7 @@ def _make_inconsistent(rng: random.Random, v: dict[str, Any], pco2_mm: float) ->
     if mode == "ph_digits_swapped":
         digits = f"{ph:.2f}"
         swapped = float(digits[:-2] + digits[-1] + digits[-2])
-        if abs(swapped - ph) >= 0.05:
+        if abs(swapped - ph) >= 0.05 and 6.6 <= swapped <= 7.9:
             v["ph"] = swapped
             return mode
         mode = "ph_slip"
