@@ -194,7 +194,7 @@ DEMO_WANTS: tuple[_Want, ...] = (
      and "urine_cl" in c),
     ("venous sample", lambda s, c: _clean(s) and s.sample_type == "venous" and s.electrolytes),
     ("high-gap acidosis, albumin missing", lambda s, c: _plain(s) and s.electrolytes
-     and not s.albumin and HAGMA in s.metabolic),
+     and not s.albumin and s.combination == f"none+{HAGMA}"),
     ("ventilated ICU patient", lambda s, c: _clean(s) and s.ventilated and s.electrolytes
      and s.sample_type == "arterial"),
     ("inconsistent values (transcription-like error)",

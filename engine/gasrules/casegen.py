@@ -286,7 +286,7 @@ def _acid_base(rng: random.Random, resp: str, chronic: bool, metabolic: tuple[st
                ) -> tuple[float, float, float, str]:
     """(HCO3, PCO2 mmHg, gap excess, high-gap kind) before rounding. Synthesis only."""
     u = rng.random
-    hco3 = 24.0 + _normal(u, 0.0, 1.2)
+    hco3 = 24.0 + _normal(u, 0.0, 0.6)
     gap_excess, kind = 0.0, ""
     if HAGMA in metabolic:
         gap_excess = 6.0 + 16.0 * u()
@@ -299,11 +299,11 @@ def _acid_base(rng: random.Random, resp: str, chronic: bool, metabolic: tuple[st
         hco3 += 6.0 + 12.0 * u()
     hco3 = max(hco3, 4.0)
     if hco3 < 22.5:
-        pco2 = 1.5 * hco3 + 8.0 + 4.0 * u() - 2.0
+        pco2 = 1.5 * hco3 + 8.0 + 3.0 * u() - 1.5
     elif hco3 > 25.5:
-        pco2 = 40.0 + 0.7 * (hco3 - 24.0) + 4.0 * u() - 2.0
+        pco2 = 40.0 + 0.7 * (hco3 - 24.0) + 3.0 * u() - 1.5
     else:
-        pco2 = 40.0 + _normal(u, 0.0, 1.8)
+        pco2 = 40.0 + _normal(u, 0.0, 1.2)
     if resp == "respiratory_acidosis":
         dp = 12.0 + (23.0 if chronic else 33.0) * u()
         pco2 += dp
