@@ -469,13 +469,15 @@ def _chemistry(rng: random.Random, v: dict[str, Any], ward: str, metabolic: tupl
 
 
 def _make_inconsistent(rng: random.Random, v: dict[str, Any], pco2_mm: float) -> str:
-    """Apply a transcription-like error so pH is >= 0.05 away from Henderson-Hasselbalch."""
+    """Apply a transcription-like error so pH is >= 0.08 away from Henderson-Hasselbalch
+    (well beyond a 0.03 pH or a 10 % [H+] consistency tolerance)."""
     ph, hco3 = v["ph"], v["hco3"]
+    expected = hh_ph(hco3, pco2_mm)
     mode = rng.choice(("ph_digits_swapped", "ph_slip", "hco3_from_other_sample"))
     if mode == "ph_digits_swapped":
         digits = f"{ph:.2f}"
         swapped = float(digits[:-2] + digits[-1] + digits[-2])
-        if abs(swapped - ph) >= 0.05 and 6.6 <= swapped <= 7.9:
+        if abs(swapped - expected) >= 0.08 and 6.6 <= swapped <= 7.9:
             v["ph"] = swapped
             return mode
         mode = "ph_slip"
