@@ -244,8 +244,14 @@ class CaseBuilder:
         self.issues.append(Issue(path, code, message, severity))
 
     # -- status (FHIR words; the HL7 reader maps table 0085 onto them first)
-    def status_allows(self, status: str | None, path: str, name: str) -> bool:
-        """True if a result with this status may be used; reports every other status."""
+    def status_allows(self, status: str | None, path: str, name: str,
+                      shown: str | None = None) -> bool:
+        """True if a result with this status may be used; reports every other status.
+
+        ``status`` is a FHIR Observation.status word; ``shown`` is the status as the message
+        wrote it when that differs (HL7 table 0085 code), for the messages.
+        """
+        said = f"{status} ({shown})" if shown and shown != status else status
         if status in ("final", "amended", "corrected"):
             return True
         if status == "preliminary":
@@ -254,20 +260,21 @@ class CaseBuilder:
                            f"preliminary result used for {name}", "warning")
                 return True
             self.issue(path, "status.not_final",
-                       f"{name} is preliminary and was left out; final, amended or corrected "
+                       f"{name} is {said} and was left out; final, amended or corrected "
                        "results are used (allow preliminary results to include it)", "warning")
             return False
         if status in ("entered-in-error", "cancelled"):
-            self.issue(path, "status.skipped", f"{name} is {status} and was skipped", "notice")
+            self.issue(path, "status.skipped", f"{name} is {said} and was skipped", "notice")
             return False
         if status in ("registered", "unknown", None, ""):
-            shown = status or "missing"
+            said = said or "missing"
             self.issue(path, "status.missing",
-                       f"{name}: status {shown!r} does not say the result is released; "
+                       f"{name}: status {said!r} does not say the result is released; "
                        "accepted: final, amended, corrected", "warning" if status else "error")
             return False
         self.issue(path, "status.missing",
-                   f"{name}: unknown status {status!r}; accepted: final, amended, corrected")
+                   f"{name}: unknown status {shown or status!r}; "
+                   "accepted: final, amended, corrected")
         return False
 
     # -- units
