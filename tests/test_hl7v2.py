@@ -11,10 +11,14 @@ from pathlib import Path
 
 import pytest
 
+from hypothesis import example, given
+from hypothesis import strategies as st
+
 from gasrules.hl7v2 import (
-    Encoding, case_from_hl7, cases_from_hl7, iter_messages, parse_message, unescape,
+    Encoding, case_from_hl7, cases_from_hl7, escape, iter_messages, parse_message,
+    result_to_oru, unescape,
 )
-from test_fhir import CATALOG
+from test_fhir import CATALOG, RESULT
 
 DATA = Path(__file__).parent / "data" / "hl7"
 DEMO = Path(__file__).parents[1] / "tools" / "demo" / "hl7"
@@ -328,3 +332,41 @@ def test_message_without_obx() -> None:
     read = case_from_hl7("\r".join(lines), CATALOG)
     assert [i.code for i in read.issues] == ["value.missing"]
     assert not read.ok
+
+
+# ----------------------------------------------------------------------------- writing
+def test_interpretation_as_oru_round_trips_through_the_reader() -> None:
+    result = {**RESULT, "headline": "Acidosis | with ^ odd ~ characters & a \\ slash"}
+    text = result_to_oru(result, control_id="OUT-1", message_time="203103140825",
+                         patient_id="DEMO-000121")
+    msg, issues = parse_message(text)
+    assert issues == [] and msg is not None
+    assert [s.name for s in msg.segments] == (
+        ["MSH", "PID", "OBR"] + ["OBX"] * 7 + ["NTE"] * 3)
+    first = msg.all("OBX")[0]
+    assert msg.get(first, 5) == result["headline"]
+    assert {msg.get(s, 11) for s in msg.all("OBX")} == {"P"}          # preliminary
+    disorder = msg.all("OBX")[1]
+    assert msg.get(disorder, 5) == "metabolic_acidosis_high_anion_gap"
+    acid = msg.all("OBX")[2]
+    assert (msg.get(acid, 3), msg.get(acid, 8)) == ("acidaemia", "A")
+    gap = msg.all("OBX")[5]
+    assert (msg.get(gap, 3), msg.get(gap, 5), msg.get(gap, 6)) == ("anion_gap", "12.8", "mmol/L")
+    notes = [msg.get(s, 3) for s in msg.all("NTE")]
+    assert notes[0].startswith("Rulebook adult-default 1.0.0 sha256:abab")
+    assert notes[-1] == "Supports, never replaces, clinical judgement."
+    read = case_from_hl7(text, CATALOG)   # our own output holds no LOINC: all ignored
+    assert read.case == {"case_id": "OUT-1"}
+    assert {i.code for i in read.issues} == {"code.not_loinc"}
+
+
+def test_oru_needs_an_hl7_timestamp() -> None:
+    with pytest.raises(ValueError, match="expected YYYYMMDD"):
+        result_to_oru(RESULT, control_id="X", message_time="2031-03-14")
+
+
+@given(st.text(alphabet=st.characters(blacklist_characters="\r\x00"), max_size=60))
+@example("|^~\\&")          # every separator and the escape character itself
+@example("\\F\\ is literal")   # text that looks like an escape sequence
+def test_escape_then_unescape_gives_the_text_back(text: str) -> None:
+    assert unescape(escape(text), Encoding()) == text

@@ -474,3 +474,67 @@ def cases_from_hl7(text: str, catalog: Catalog, *,
     """One result per message of a file or stream, in order; bad messages give errors."""
     for message in iter_messages(text):
         yield case_from_hl7(message, catalog, allow_preliminary=allow_preliminary)
+
+
+# ============================================================================ writing
+LOCAL_SYSTEM = "99GRS"   # HL7 table 0396 local coding system (99zzz): our own codes
+_FLAG = {"critical": "AA", "warning": "A"}
+
+
+def escape(text: str, enc: Encoding = Encoding()) -> str:
+    """Escape the separators in a text value (inverse of :func:`unescape`; newlines to .br)."""
+    out = text.replace(enc.escape, "\x00E")
+    for ch, code in ((enc.field, "F"), (enc.component, "S"), (enc.subcomponent, "T"),
+                     (enc.repetition, "R")):
+        out = out.replace(ch, f"\x00{code}")
+    out = re.sub(r"\r\n|\r|\n", "\x00.br", out)
+    return re.sub("\x00(F|S|T|R|E|\\.br)", lambda m: f"{enc.escape}{m[1]}{enc.escape}", out)
+
+
+def result_to_oru(result: dict[str, Any], *, control_id: str, message_time: str,
+                  patient_id: str | None = None, placer_order: str | None = None) -> str:
+    """One engine result as an ORU^R01 (v2.5.1) carrying the interpretation, segments
+    joined by CR. Every OBX is marked preliminary (P): a clinician confirms it.
+
+    ``message_time`` is an HL7 timestamp (YYYYMMDDHHMM[SS]); ``control_id`` goes to MSH-10.
+    """
+    if not _TS.fullmatch(message_time):
+        raise ValueError(f"message_time {message_time!r}: expected YYYYMMDD[HHMM[SS]]")
+    rulebook = result.get("rulebook") or {}
+    segs = [f"MSH|^~\\&|GASRULES|{escape(str(rulebook.get('id', '')))}|||{message_time}||"
+            f"ORU^R01^ORU_R01|{escape(control_id)}|P|2.5.1"]
+    if patient_id:
+        segs.append(f"PID|1||{escape(patient_id)}")
+    report = f"blood-gas-interpretation^Blood gas interpretation^{LOCAL_SYSTEM}"
+    segs.append(f"OBR|1|{escape(placer_order or '')}||{report}|||{message_time}"
+                + "|" * 18 + "P")
+    obx: list[tuple[str, str, str, str, str]] = [
+        ("ST", report, escape(str(result.get("headline") or "")), "", "")]
+    qualifiers = result.get("qualifiers") or {}
+    for d in result.get("disorders") or []:
+        label = d.replace("_", " ") + (f" ({qualifiers[d]})" if d in qualifiers else "")
+        obx.append(("CWE", f"disorder^Disorder^{LOCAL_SYSTEM}",
+                    f"{escape(d)}^{escape(label)}^{LOCAL_SYSTEM}", "", ""))
+    for f in result.get("findings") or []:
+        obx.append(("ST", f"{escape(str(f['code']))}^^{LOCAL_SYSTEM}",
+                    escape(str(f.get("text") or "")), "",
+                    _FLAG.get(str(f.get("severity")), "")))
+    units = result.get("units") or {}
+    for name, value in (result.get("values") or {}).items():
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or value != value:
+            continue
+        unit = units.get(name) or ""
+        obx.append(("NM", f"{escape(name)}^^{LOCAL_SYSTEM}", repr(value),
+                    f"{escape(unit)}^^UCUM" if unit else "", ""))
+    for n, (vtype, ident, value, unit, flag) in enumerate(obx, 1):
+        segs.append(f"OBX|{n}|{vtype}|{ident}||{value}|{unit}||{flag}|||P")
+    notes = [f"Rulebook {rulebook.get('id')} {rulebook.get('version')} sha256:"
+             f"{rulebook.get('sha256')}; engine {result.get('engine_version')}; "
+             f"status {result.get('status')}"]
+    notes += [f"Input error in {e.get('field')}: {e.get('message')}"
+              for e in result.get("errors") or []]
+    notes += [f"Not assessed: {n.get('what')} ({n.get('why')})"
+              for n in result.get("not_assessed") or []]
+    notes += [str(c) for c in result.get("cautions") or []]
+    segs += [f"NTE|{i}|L|{escape(t)}" for i, t in enumerate(notes, 1)]
+    return "\r".join(segs) + "\r"
