@@ -18,7 +18,7 @@ from gasrules.hl7v2 import (
     Encoding, case_from_hl7, cases_from_hl7, escape, iter_messages, parse_message,
     result_to_oru, unescape,
 )
-from test_fhir import CATALOG, RESULT
+from test_fhir import CATALOG, RESULT, _engine
 
 DATA = Path(__file__).parent / "data" / "hl7"
 DEMO = Path(__file__).parents[1] / "tools" / "demo" / "hl7"
@@ -370,3 +370,20 @@ def test_oru_needs_an_hl7_timestamp() -> None:
 @example("\\F\\ is literal")   # text that looks like an escape sequence
 def test_escape_then_unescape_gives_the_text_back(text: str) -> None:
     assert unescape(escape(text), Encoding()) == text
+
+
+# ----------------------------------------------------------------------------- shipped rulebook
+@pytest.mark.parametrize("name", ["arterial_panel.hl7", "venous_panel_lf.hl7",
+                                  "kpa_panel_crlf.hl7"])
+def test_shipped_rulebook_reads_interprets_and_writes_back(name: str) -> None:
+    gasrules = _engine()
+    rulebook = gasrules.load_rulebook()
+    read = case_from_hl7(read_text(DATA / name), rulebook.inputs)
+    assert read.issues == (), messages_of(read.issues)
+    result = gasrules.interpret(rulebook, read.case)
+    assert result["errors"] == [] and result["status"] != "rejected"
+    text = result_to_oru(result, control_id=f"R-{read.control_id}",
+                         message_time="203103140825", patient_id=read.patient_id)
+    msg, issues = parse_message(text)
+    assert issues == [] and msg is not None
+    assert msg.get(msg.all("OBX")[0], 5) == result["headline"]
