@@ -10,15 +10,20 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
-
 from hypothesis import example, given
 from hypothesis import strategies as st
+from test_fhir import CATALOG, RESULT, _engine
 
 from gasrules.hl7v2 import (
-    Encoding, case_from_hl7, cases_from_hl7, escape, iter_messages, parse_message,
-    result_to_oru, unescape,
+    Encoding,
+    case_from_hl7,
+    cases_from_hl7,
+    escape,
+    iter_messages,
+    parse_message,
+    result_to_oru,
+    unescape,
 )
-from test_fhir import CATALOG, RESULT, _engine
 
 DATA = Path(__file__).parent / "data" / "hl7"
 DEMO = Path(__file__).parents[1] / "tools" / "demo" / "hl7"

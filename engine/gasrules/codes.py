@@ -20,9 +20,10 @@ the builder reports the conflict and leaves the input out: it never picks one.
 
 from __future__ import annotations
 
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from datetime import date
-from typing import Any, Iterable, Mapping, Protocol
+from typing import Any, Protocol
 
 __all__ = [
     "ISSUE_CODES", "PANEL_SPECIMEN", "SAMPLE_DEFINING_INPUTS", "SPECIMEN_BY_HL70487",

@@ -26,13 +26,23 @@ from __future__ import annotations
 
 import json
 import uuid
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from datetime import date, datetime, timezone
-from typing import Any, Mapping
+from datetime import UTC, date, datetime
+from typing import Any
 
 from .codes import (
-    PANEL_SPECIMEN, SAMPLE_DEFINING_INPUTS, SPECIMEN_BY_LOINC, UCUM_SYSTEM, CaseBuilder,
-    Catalog, Issue, accepted_units, completed_years, loinc_index, specimen_from_code,
+    PANEL_SPECIMEN,
+    SAMPLE_DEFINING_INPUTS,
+    SPECIMEN_BY_LOINC,
+    UCUM_SYSTEM,
+    CaseBuilder,
+    Catalog,
+    Issue,
+    accepted_units,
+    completed_years,
+    loinc_index,
+    specimen_from_code,
 )
 
 __all__ = ["FhirReadResult", "case_from_fhir", "result_to_fhir", "CODE_SYSTEM_BASE"]
@@ -343,10 +353,10 @@ def case_from_fhir(resource: Any, catalog: Catalog, *,
     reader = _Reader(catalog, builder, loinc_index(catalog))
     items, case_id = _items(resource, builder)
     refs = [reader.register(path, res, url) for path, res, url in items]
-    for (path, res, _), ref in zip(items, refs):
+    for (path, res, _), ref in zip(items, refs, strict=True):
         if res.get("resourceType") == "Patient":
             reader.patients.append((path, ref, res))
-    for (path, res, _), ref in zip(items, refs):
+    for (path, res, _), ref in zip(items, refs, strict=True):
         if res.get("resourceType") == "Observation":
             reader.observation(path, res, ref)
     reader.age_from_birth_date()
@@ -369,8 +379,8 @@ def case_from_fhir(resource: Any, catalog: Catalog, *,
 def _items(resource: Any, builder: CaseBuilder,
            ) -> tuple[list[tuple[str, dict[str, Any], str | None]], str | None]:
     """(path, resource, fullUrl) for every resource to read, and the case id."""
+    out: list[tuple[str, dict[str, Any], str | None]] = []
     if isinstance(resource, list):
-        out = []
         for i, res in enumerate(resource):
             if isinstance(res, dict):
                 out.append((f"{res.get('resourceType', 'Resource')}[{i}]", res, None))
@@ -394,7 +404,6 @@ def _items(resource: Any, builder: CaseBuilder,
                       f"Bundle.type {resource.get('type')!r} is not read; accepted: "
                       f"{', '.join(BUNDLE_TYPES)}")
         return [], case_id
-    out = []
     for i, entry in enumerate(resource.get("entry") or []):
         res = entry.get("resource") if isinstance(entry, dict) else None
         if isinstance(res, dict):
@@ -438,7 +447,7 @@ def result_to_fhir(result: Mapping[str, Any], case_inputs_refs: Mapping[str, str
         if claimed.get(key) not in (None, rulebook[key]):
             raise ValueError(f"rulebook_info {key} {rulebook[key]!r} differs from the "
                              f"result's rulebook {key} {claimed[key]!r}")
-    issued = issued or datetime.now(timezone.utc).replace(microsecond=0).isoformat()
+    issued = issued or datetime.now(UTC).replace(microsecond=0).isoformat()
     engine_version = str(result.get("engine_version") or "unknown")
     refs = list(dict.fromkeys(case_inputs_refs.values()))
     seed = json.dumps([{k: v for k, v in result.items() if k != "trace"}, refs, rulebook],
@@ -516,7 +525,9 @@ def result_to_fhir(result: Mapping[str, Any], case_inputs_refs: Mapping[str, str
 
 
 def _rulebook_fields(info: Any) -> dict[str, str]:
-    get = info.get if isinstance(info, Mapping) else (lambda k: getattr(info, k, None))
+    def get(key: str) -> Any:
+        return info.get(key) if isinstance(info, Mapping) else getattr(info, key, None)
+
     out = {k: get(k) for k in ("id", "version", "sha256")}
     missing = [k for k, v in out.items() if not v]
     if missing:

@@ -25,13 +25,22 @@ each one, so a bad message gives a result with errors and never stops the batch.
 from __future__ import annotations
 
 import re
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from datetime import date
-from typing import Any, Iterator
+from typing import Any
 
 from .codes import (
-    PANEL_SPECIMEN, SAMPLE_DEFINING_INPUTS, SPECIMEN_BY_LOINC, CaseBuilder, Catalog, Issue,
-    accepted_units, completed_years, loinc_index, specimen_from_code,
+    PANEL_SPECIMEN,
+    SAMPLE_DEFINING_INPUTS,
+    SPECIMEN_BY_LOINC,
+    CaseBuilder,
+    Catalog,
+    Issue,
+    accepted_units,
+    completed_years,
+    loinc_index,
+    specimen_from_code,
 )
 
 __all__ = ["Hl7ReadResult", "Message", "Segment", "case_from_hl7", "cases_from_hl7",
@@ -255,7 +264,7 @@ class _Reader:
         self.observations.append(record)
         if name is None:
             return
-        status = record["status"]
+        status = self.msg.get(seg, 11)
         fhir_status = STATUS_0085.get(status, "" if not status else "?")
         if fhir_status == "?":
             self.issue(seg.at(11), "status.missing",
@@ -273,8 +282,8 @@ class _Reader:
             self.coded(seg, name, vtype)
         if name in SAMPLE_DEFINING_INPUTS and code is not None:
             self.builder.claim_specimen(SPECIMEN_BY_LOINC.get(code), seg.at(3), "loinc")
-            if record["observed_at"]:
-                self.times.append((seg.at(14), record["observed_at"]))
+            if self.msg.get(seg, 14):
+                self.times.append((seg.at(14), self.msg.get(seg, 14)))
 
     def identify(self, seg: Segment) -> tuple[str | None, str | None]:
         """(LOINC code, input name); reports codes that are not LOINC or feed no input."""
