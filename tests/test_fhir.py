@@ -12,6 +12,7 @@ through ``gasrules.load_rulebook`` when the engine is present.
 from __future__ import annotations
 
 import copy
+import functools
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -484,6 +485,27 @@ def test_specimen_table_knows_every_gas_code_the_shipped_rulebook_declares() -> 
                for code in inputs.get(name, {}).get("loinc", [])
                if code not in SPECIMEN_BY_LOINC and code not in UNSPECIFIED_BLOOD}
     assert unknown == {}
+
+
+@functools.cache
+def shipped_catalog() -> dict[str, FakeInput]:
+    """The shipped rulebook's inputs read straight from its YAML (no engine needed)."""
+    import yaml
+    inputs = yaml.safe_load(RULEBOOK_YAML.read_text())["inputs"]
+    return {name: FakeInput(
+        name, str(spec.get("unit", "")), spec.get("kind", "number"),
+        tuple(spec.get("loinc", ())),
+        {u: (float(a["factor"]), float(a.get("offset", 0.0)))
+         for u, a in (spec.get("alternatives") or {}).items()},
+        tuple(spec.get("codes", ()))) for name, spec in inputs.items()}
+
+
+@pytest.mark.parametrize("path", sorted(DATA.glob("*.json")) + sorted(DEMO.glob("*.json")),
+                         ids=lambda p: f"{p.parent.parent.name}/{p.name}")
+def test_every_panel_reads_cleanly_with_the_shipped_rulebook_inputs(path: Path) -> None:
+    read = case_from_fhir(json.loads(path.read_text()), shipped_catalog())
+    assert read.issues == (), [str(i) for i in read.issues]
+    assert {"ph", "pco2", "hco3", "sample_type", "age"} <= set(read.case)
 
 
 def _engine() -> Any:

@@ -12,7 +12,7 @@ from pathlib import Path
 import pytest
 from hypothesis import example, given
 from hypothesis import strategies as st
-from test_fhir import CATALOG, RESULT, _engine
+from test_fhir import CATALOG, RESULT, _engine, shipped_catalog
 
 from gasrules.hl7v2 import (
     Encoding,
@@ -378,6 +378,16 @@ def test_escape_then_unescape_gives_the_text_back(text: str) -> None:
 
 
 # ----------------------------------------------------------------------------- shipped rulebook
+@pytest.mark.parametrize("path", sorted(DATA.glob("*.hl7")) + sorted(DEMO.glob("*.hl7")),
+                         ids=lambda p: f"{p.parent.parent.name}/{p.name}")
+def test_every_message_reads_cleanly_with_the_shipped_rulebook_inputs(path: Path) -> None:
+    reads = list(cases_from_hl7(read_text(path), shipped_catalog()))
+    assert reads
+    for read in reads:
+        assert read.issues == (), messages_of(read.issues)
+        assert {"ph", "pco2", "hco3", "sample_type", "age"} <= set(read.case)
+
+
 @pytest.mark.parametrize("name", ["arterial_panel.hl7", "venous_panel_lf.hl7",
                                   "kpa_panel_crlf.hl7"])
 def test_shipped_rulebook_reads_interprets_and_writes_back(name: str) -> None:
