@@ -1,0 +1,201 @@
+"""Stage 2b: resolve the `extends` chain into one rulebook, guarding the base's bounds.
+
+A site overlay may override parameter values (inside the base's guard-rail bounds, or among
+its choices), add inputs, parameters, derived values and rules with new ids, suspend base rules
+with a reason, and set display units and presentation entries. Every item remembers which file
+(and where in it) defined it, and every parameter which file set its value.
+"""
+
+from __future__ import annotations
+
+import copy
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from .errors import Location, Problem
+from .loader import Document, load_document
+from .schema import validate_document
+
+
+@dataclass(frozen=True)
+class Ref:
+    """A place in a loaded document."""
+
+    doc: Document
+    path: tuple[Any, ...]
+
+    def loc(self, *sub: Any) -> Location:
+        return self.doc.locate(self.path + sub)
+
+
+@dataclass
+class Resolved:
+    metadata: dict[str, Any]
+    metadata_ref: Ref
+    inputs: dict[str, tuple[dict[str, Any], Ref]] = field(default_factory=dict)
+    parameters: dict[str, tuple[dict[str, Any], Ref]] = field(default_factory=dict)
+    param_set_by: dict[str, Ref] = field(default_factory=dict)
+    derived: dict[str, tuple[dict[str, Any], Ref]] = field(default_factory=dict)
+    rules: list[tuple[dict[str, Any], Ref]] = field(default_factory=list)
+    steps: dict[str, tuple[dict[str, Any], Ref]] = field(default_factory=dict)
+    presentation: dict[str, Any] = field(default_factory=dict)
+    display_units: dict[str, Any] = field(default_factory=dict)
+    suspensions: list[tuple[str, str, Ref]] = field(default_factory=list)
+    documents: list[Document] = field(default_factory=list)
+    base_ids: list[str] = field(default_factory=list)
+
+
+def load_chain(path: str | Path) -> tuple[list[Document], list[Problem]]:
+    """Load a rulebook and everything it extends, base first. Each is schema-checked."""
+    docs: list[Document] = []
+    problems: list[Problem] = []
+    seen: set[Path] = set()
+    current: Path | None = Path(path)
+    referrer: Location | None = None
+    while current is not None:
+        real = current.resolve()
+        if real in seen:
+            problems.append(Problem("RB-E004", f"extends cycle back to {current}", referrer or Location(str(current)),
+                                    "a chain of overlays ending in a base rulebook"))
+            break
+        seen.add(real)
+        doc, probs = load_document(current, _display(current))
+        if doc is None and referrer is not None:
+            problems.append(Problem("RB-E004", f"extends names a file that cannot be read: {current}", referrer,
+                                    "a path relative to the overlay file"))
+        problems.extend(probs)
+        if doc is None or probs:
+            break
+        schema_problems = validate_document(doc)
+        problems.extend(schema_problems)
+        docs.append(doc)
+        if schema_problems or not isinstance(doc.data, dict):
+            break
+        ext = doc.data.get("extends")
+        if ext:
+            referrer = doc.locate(("extends",))
+            current = current.parent / ext
+        else:
+            current = None
+    docs.reverse()
+    return docs, problems
+
+
+def _display(path: Path) -> str:
+    try:
+        return str(path.resolve().relative_to(Path.cwd().resolve()))
+    except ValueError:
+        return str(path)
+
+
+def resolve(docs: list[Document]) -> tuple[Resolved, list[Problem]]:
+    base = docs[0]
+    problems: list[Problem] = []
+    res = Resolved(metadata=copy.deepcopy(base.data["metadata"]), metadata_ref=Ref(base, ("metadata",)))
+    res.documents = list(docs)
+    _take_base(res, base)
+    for overlay in docs[1:]:
+        res.base_ids.append(f"{res.metadata['id']}@{res.metadata['version']}")
+        problems.extend(_apply_overlay(res, overlay))
+    return res, problems
+
+
+def _take_base(res: Resolved, doc: Document) -> None:
+    data = doc.data
+    for section in ("inputs", "parameters", "derived", "steps"):
+        target = getattr(res, section)
+        for name, body in (data.get(section) or {}).items():
+            target[name] = (copy.deepcopy(body), Ref(doc, (section, name)))
+    for name in res.parameters:
+        res.param_set_by[name] = Ref(doc, ("parameters", name))
+    for i, rule in enumerate(data.get("rules") or []):
+        res.rules.append((copy.deepcopy(rule), Ref(doc, ("rules", i))))
+    res.presentation = copy.deepcopy(data.get("presentation") or {})
+    res.display_units = copy.deepcopy(data.get("display_units") or {})
+    for i, s in enumerate(data.get("suspend") or []):
+        res.suspensions.append((s["rule"], s["reason"], Ref(doc, ("suspend", i))))
+
+
+def _apply_overlay(res: Resolved, doc: Document) -> list[Problem]:
+    data = doc.data
+    problems: list[Problem] = []
+    res.metadata = copy.deepcopy(data["metadata"])
+    res.metadata_ref = Ref(doc, ("metadata",))
+    for section in ("inputs", "derived", "steps"):
+        target = getattr(res, section)
+        for name, body in (data.get(section) or {}).items():
+            if name in target:
+                problems.append(Problem("RB-E044", f"overlay redefines base {section[:-1] if section != 'derived' else 'derived value'} '{name}'",
+                                        doc.locate((section, name)), "a new name; only parameters can be overridden"))
+                continue
+            target[name] = (copy.deepcopy(body), Ref(doc, (section, name)))
+    for name, body in (data.get("parameters") or {}).items():
+        ref = Ref(doc, ("parameters", name))
+        if name not in res.parameters:
+            res.parameters[name] = (copy.deepcopy(body), ref)
+            res.param_set_by[name] = ref
+            continue
+        problems.extend(_override(res, name, body, ref))
+    base_ids = {r.get("id") for r, _ in res.rules}
+    for i, rule in enumerate(data.get("rules") or []):
+        if rule.get("id") in base_ids:
+            problems.append(Problem("RB-E044", f"overlay redefines base rule '{rule['id']}'",
+                                    doc.locate(("rules", i, "id")), "a new rule id (suspend the base rule instead)"))
+            continue
+        res.rules.append((copy.deepcopy(rule), Ref(doc, ("rules", i))))
+    for i, s in enumerate(data.get("suspend") or []):
+        res.suspensions.append((s["rule"], s["reason"], Ref(doc, ("suspend", i))))
+    for key, value in (data.get("presentation") or {}).items():
+        if isinstance(value, dict):
+            res.presentation.setdefault(key, {}).update(value)
+        else:
+            res.presentation[key] = value
+    res.display_units.update(data.get("display_units") or {})
+    return problems
+
+
+def _override(res: Resolved, name: str, body: dict[str, Any], ref: Ref) -> list[Problem]:
+    base, base_ref = res.parameters[name]
+    problems: list[Problem] = []
+    for key in ("unit", "bounds", "choices"):
+        if key in body and body[key] != base.get(key):
+            problems.append(Problem("RB-E041", f"overlay may not change the {key} of parameter '{name}'",
+                                    ref.loc(key), f"{key} as in the base ({base.get(key)})"))
+    if "by" in body and body["by"].get("input") != (base.get("by") or {}).get("input"):
+        problems.append(Problem("RB-E041", f"overlay may not change which input selects parameter '{name}'",
+                                ref.loc("by", "input"), f"by.input {((base.get('by') or {}).get('input'))}"))
+    merged = copy.deepcopy(base)
+    if "value" in body:
+        problems.extend(_guard(name, body["value"], base, base_ref, ref.loc("value")))
+        merged["value"] = body["value"]
+    if "by" in body:
+        for key, value in (body["by"].get("values") or {}).items():
+            problems.extend(_guard(name, value, base, base_ref, ref.loc("by", "values", key)))
+        merged.setdefault("by", {"input": body["by"]["input"], "values": {}})
+        merged["by"]["values"].update(body["by"].get("values") or {})
+    for key in ("rationale", "source", "label"):
+        if key in body:
+            merged[key] = body[key]
+    if not problems:
+        res.parameters[name] = (merged, base_ref)
+        res.param_set_by[name] = ref
+    return problems
+
+
+def _guard(name: str, value: Any, base: dict[str, Any], base_ref: Ref, where: Location) -> list[Problem]:
+    if "choices" in base:
+        if value not in base["choices"]:
+            return [Problem("RB-E042", f"'{value}' is not a choice of parameter '{name}'", where,
+                            "one of " + ", ".join(base["choices"]))]
+        return []
+    bounds = base.get("bounds")
+    if isinstance(value, str) or isinstance(value, bool):
+        return [Problem("RB-E041", f"parameter '{name}' takes a number, not {value!r}", where, "a number")]
+    if bounds and not bounds["min"] <= value <= bounds["max"]:
+        bl = base_ref.loc("bounds")
+        return [Problem("RB-E040",
+                        f"override of '{name}' to {value:g} is outside the base guard rails "
+                        f"[{bounds['min']:g}, {bounds['max']:g}] set at {bl}",
+                        where, f"a value from {bounds['min']:g} to {bounds['max']:g}")]
+    return []
