@@ -372,7 +372,20 @@ def runtime_globals() -> dict[str, Any]:
     for fname, fn in FUNCTIONS.items():
         g["_" + fname] = fn
     g["_ERR"] = (ArithmeticError, ValueError)
+    g.update(_set=set, _float=float, _bool=bool, _describe=describe_error)
     return g
+
+
+def describe_error(exc: BaseException) -> str:
+    """A calculation error in words a reader understands."""
+    text = str(exc)
+    if isinstance(exc, ZeroDivisionError):
+        return "division by zero"
+    if text == "math domain error":
+        return "outside the domain of the function (log or square root of zero or a negative number)"
+    if isinstance(exc, OverflowError):
+        return "result too large"
+    return text or type(exc).__name__
 
 
 def round_at(x: float, scale: float) -> float:

@@ -146,3 +146,9 @@ class CompiledRulebook:
         state["_function"] = None
         state["_static"] = None
         return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+        from .compiler import link  # re-generate the function (it is not pickled)
+
+        link(self)

@@ -1,0 +1,693 @@
+"""Stage 3: check the resolved rulebook's meaning and compile it into one Python function.
+
+Input: a :class:`~gasrules.overlay.Resolved` rulebook. Output: a
+:class:`~gasrules.model.CompiledRulebook` whose generated function evaluates every derived
+value and rule of one case in a fixed order. Every name, placeholder, step, disorder code and
+unit is checked here, and every problem is collected with its file, line and column.
+"""
+
+from __future__ import annotations
+
+import ast
+import hashlib
+import heapq
+import json
+import re
+from typing import Any, Iterable
+
+from . import __version__
+from .errors import Location, Problem, RulebookError
+from .expressions import CutPoint, Expr, NameInfo, parse, runtime_globals, to_python
+from .model import (CompiledRulebook, DerivedSpec, FindingSpec, InputSpec, ParamSpec, RuleSpec,
+                    StepSpec)
+from .overlay import Ref, Resolved
+
+# Outcome codes the generated function writes per rule (the trace names them).
+FIRED, NOT_FIRED, SKIPPED, HALTED, SUSPENDED, ERROR = range(6)
+OUTCOMES = ("fired", "not_fired", "skipped_missing_input", "halted", "suspended", "error")
+# State codes per derived value.
+COMPUTED, MISSING, NOT_APPLICABLE, CALC_ERROR = range(4)
+
+PLACEHOLDER = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)\}")
+DISORDER_CODES = ("respiratory_acidosis", "respiratory_alkalosis", "metabolic_acidosis_high_anion_gap",
+                  "metabolic_acidosis_normal_anion_gap", "metabolic_acidosis", "metabolic_alkalosis")
+# Literals that are not clinical numbers (identity, sign, percentages of a whole).
+_HARMLESS_LITERALS = {0.0, 1.0, -1.0}
+
+
+# ----------------------------------------------------------------------------- building specs
+
+def build(res: Resolved) -> CompiledRulebook:
+    """Check and compile. Raises RulebookError with every problem found (warnings included)."""
+    problems: list[Problem] = []
+    steps = {n: StepSpec(n, b.get("label", n), bool(b.get("core", False))) for n, (b, _) in res.steps.items()}
+    inputs = {n: _input_spec(n, b, ref) for n, (b, ref) in res.inputs.items()}
+    params = {n: _param_spec(n, b, ref, res.param_set_by[n]) for n, (b, ref) in res.parameters.items()}
+    problems += _check_params(params, inputs)
+    derived: dict[str, DerivedSpec] = {}
+    for name, (body, ref) in res.derived.items():
+        spec, probs = _derived_spec(name, body, ref)
+        problems += probs
+        if spec is not None:
+            derived[name] = spec
+    _clash(inputs, params, derived, res, problems)
+    suspended = {rule: (reason, ref) for rule, reason, ref in res.suspensions}
+    rules: list[RuleSpec] = []
+    seen_ids: dict[str, Location] = {}
+    for body, ref in res.rules:
+        if body.get("status") == "retired":
+            continue
+        spec, probs = _rule_spec(body, ref, suspended)
+        problems += probs
+        if spec is None:
+            continue
+        if spec.id in seen_ids:
+            problems.append(Problem("RB-E030", f"duplicate rule id '{spec.id}' (first at {seen_ids[spec.id]})",
+                                    ref.loc("id"), "a unique, stable rule id"))
+            continue
+        seen_ids[spec.id] = spec.location
+        rules.append(spec)
+    known_ids = {b.get("id") for b, _ in res.rules}
+    for rule_id, (_, ref) in suspended.items():
+        if rule_id not in known_ids:
+            problems.append(Problem("RB-E043", f"suspension names unknown rule '{rule_id}'", ref.loc("rule"),
+                                    "the id of a rule in this rulebook or its base"))
+    presentation = res.presentation
+    problems += _check_names(inputs, params, derived, rules)
+    problems += _check_rules(rules, steps, inputs, params, derived, presentation)
+    problems += _check_units(inputs, params, derived, rules)
+    problems += _warnings(params, derived, rules)
+    plan, order_problems = _order(derived, rules)
+    problems += order_problems
+    if any(not p.is_warning for p in problems):
+        raise RulebookError(problems)
+    display = _display_units(res.display_units)
+    sha = identity_hash(res)
+    cutpoints = tuple(_cutpoints(derived, rules, inputs, params))
+    source, value_names = generate(plan, inputs, params, derived, rules, cutpoints)
+    compiled = CompiledRulebook(
+        metadata=res.metadata, inputs=inputs, parameters=params, derived=derived, rules=rules,
+        steps=steps, presentation=presentation, display_units=display, plan=plan,
+        value_names=value_names, source=source, sha256=sha,
+        files=tuple(d.file for d in res.documents), cutpoints=cutpoints,
+        warnings=tuple(p for p in problems if p.is_warning), engine_version=__version__)
+    link(compiled)
+    return compiled
+
+
+def _input_spec(name: str, b: dict[str, Any], ref: Ref) -> InputSpec:
+    plaus = b.get("plausible") or {}
+    alts = {u: (float(a.get("factor", 1.0)), float(a.get("offset", 0.0))) for u, a in (b.get("alternatives") or {}).items()}
+    return InputSpec(name=name, label=b.get("label", name), kind=b.get("kind", "number"), unit=b.get("unit", ""),
+                     precision=int(b.get("precision", 0)), plausible_min=plaus.get("min"), plausible_max=plaus.get("max"),
+                     alternatives=alts, loinc=tuple(b.get("loinc") or ()), codes=tuple(b.get("codes") or ()),
+                     default=b.get("default"), location=ref.loc())
+
+
+def _param_spec(name: str, b: dict[str, Any], ref: Ref, set_by: Ref) -> ParamSpec:
+    bounds = b.get("bounds")
+    by = b.get("by") or {}
+    return ParamSpec(name=name, value=_num(b.get("value")), unit=b.get("unit", ""),
+                     bounds=(bounds["min"], bounds["max"]) if bounds else None,
+                     choices=tuple(b["choices"]) if "choices" in b else None,
+                     by_input=by.get("input"), by_values={k: _num(v) for k, v in (by.get("values") or {}).items()},
+                     rationale=b.get("rationale", ""), source=dict(b.get("source") or {}),
+                     label=b.get("label", name), location=ref.loc(), set_by=set_by.loc("value"))
+
+
+def _num(value: Any) -> Any:
+    """Numbers are floats everywhere (in code, trace and reports); other values stay as they are."""
+    if isinstance(value, (int, float)) and not isinstance(value, bool):
+        return float(value)
+    return value
+
+
+def _check_params(params: dict[str, ParamSpec], inputs: dict[str, InputSpec]) -> list[Problem]:
+    out = []
+    for p in params.values():
+        if p.choices is not None:
+            if p.value not in p.choices:
+                out.append(Problem("RB-E042", f"'{p.value}' is not a choice of parameter '{p.name}'", p.set_by,
+                                   "one of " + ", ".join(p.choices)))
+            continue
+        if not isinstance(p.value, (int, float)) or isinstance(p.value, bool):
+            out.append(Problem("RB-E010", f"parameter '{p.name}' has no numeric value", p.location,
+                               "value: a number, or choices with a value among them"))
+            continue
+        values = [p.value] + list(p.by_values.values())
+        if p.bounds:
+            lo, hi = p.bounds
+            for v in values:
+                if not lo <= v <= hi:
+                    out.append(Problem("RB-E045", f"parameter '{p.name}' = {v:g} lies outside its own bounds [{lo:g}, {hi:g}]",
+                                       p.set_by, f"a value from {lo:g} to {hi:g}"))
+        if p.by_input is not None:
+            spec = inputs.get(p.by_input)
+            if spec is None or spec.kind != "code":
+                out.append(Problem("RB-E022", f"parameter '{p.name}' is selected by '{p.by_input}', which is not a coded input",
+                                   p.location, "the name of an input with kind: code"))
+            else:
+                for key in p.by_values:
+                    if key not in spec.codes:
+                        out.append(Problem("RB-E042", f"'{key}' is not a code of input '{p.by_input}'", p.location,
+                                           "one of " + ", ".join(spec.codes)))
+    return out
+
+
+def _derived_spec(name: str, b: dict[str, Any], ref: Ref) -> tuple[DerivedSpec | None, list[Problem]]:
+    expr, probs = parse(str(b["expr"]), ref.loc("expr"))
+    when = None
+    if b.get("when") is not None:
+        when, more = parse(str(b["when"]), ref.loc("when"))
+        probs += more
+    if expr is None or probs:
+        return None, probs
+    return DerivedSpec(name=name, label=b.get("label", name), expr=expr, when=when, unit=b["unit"],
+                       precision=int(b["precision"]), report=bool(b.get("report", True)), location=ref.loc()), []
+
+
+def _rule_spec(b: dict[str, Any], ref: Ref, suspended: dict[str, tuple[str, Ref]]) -> tuple[RuleSpec | None, list[Problem]]:
+    problems: list[Problem] = []
+    when = None
+    if b.get("when") is not None:
+        when, problems = parse(str(b["when"]), ref.loc("when"))
+    if problems:
+        return None, problems
+    status = b.get("status", "active")
+    reason = b.get("suspended_reason", "")
+    if b["id"] in suspended:
+        status, reason = "suspended", suspended[b["id"]][0]
+    findings = tuple(FindingSpec(code=f["code"], category=f["category"], severity=f["severity"], text=f["text"],
+                                 headline=f.get("headline", ""), caution=bool(f.get("caution", False)))
+                     for f in b.get("findings") or [])
+    needs = frozenset(b.get("needs") or ()) | (when.needs if when else frozenset())
+    return RuleSpec(id=b["id"], status=status, step=b["step"], title=b.get("title", b["id"]), when=when,
+                    needs=needs, stop=bool(b.get("stop", False)), always=bool(b.get("always", False)),
+                    result_status=b.get("result_status"), disorders=tuple(b.get("disorders") or ()),
+                    qualifiers=dict(b.get("qualifiers") or {}), findings=findings, doc=dict(b.get("doc") or {}),
+                    location=ref.loc(), suspended_reason=reason), []
+
+
+def _clash(inputs: dict[str, Any], params: dict[str, Any], derived: dict[str, Any], res: Resolved,
+           problems: list[Problem]) -> None:
+    """One name, one meaning: an input, parameter and derived value may not share a name."""
+    owners: dict[str, str] = {}
+    for kind, table, refs in (("input", inputs, res.inputs), ("parameter", params, res.parameters),
+                              ("derived value", derived, res.derived)):
+        for name in table:
+            if name in owners:
+                problems.append(Problem("RB-E030", f"'{name}' is both a {owners[name]} and a {kind}",
+                                        refs[name][1].loc(), "each name declared once"))
+            owners.setdefault(name, kind)
+
+
+# ----------------------------------------------------------------------------- semantic checks
+
+def _exprs(derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> Iterable[tuple[str, str, Expr]]:
+    for d in derived.values():
+        yield d.name, "expr", d.expr
+        if d.when:
+            yield d.name, "when", d.when
+    for r in rules:
+        if r.when:
+            yield r.id, "when", r.when
+
+
+def _check_names(inputs: dict[str, InputSpec], params: dict[str, ParamSpec], derived: dict[str, DerivedSpec],
+                 rules: list[RuleSpec]) -> list[Problem]:
+    out: list[Problem] = []
+    declared = set(inputs) | set(params) | set(derived)
+    asserted = {c for r in rules for c in r.asserts}
+    for owner, _field, expr in _exprs(derived, rules):
+        for name in sorted(expr.reads - declared):
+            out.append(Problem("RB-E022", f"unknown name '{name}' in {owner}", expr.location,
+                               "an input, parameter or derived value declared in the rulebook"))
+        for code in sorted(expr.has_codes - asserted):
+            out.append(Problem("RB-E025", f"has(\"{code}\") names a code no rule asserts", expr.location,
+                               "a finding or disorder code asserted by some rule"))
+        out += _check_strings(expr, inputs, params)
+    return out
+
+
+def _check_strings(expr: Expr, inputs: dict[str, InputSpec], params: dict[str, ParamSpec]) -> list[Problem]:
+    out = []
+    for left, _op, right in expr.compares:
+        for a, b in ((left, right), (right, left)):
+            if isinstance(a, ast.Constant) and isinstance(a.value, str):
+                target = b.id if isinstance(b, ast.Name) else None
+                allowed: tuple[str, ...] | None = None
+                if target in inputs and inputs[target].kind == "code":
+                    allowed = inputs[target].codes
+                elif target in params and params[target].choices is not None:
+                    allowed = params[target].choices
+                if allowed is None:
+                    out.append(Problem("RB-E026", f"'{a.value}' is compared with something that is not a coded input or choice",
+                                       expr.location, "a coded input or a choice parameter on the other side"))
+                elif a.value not in allowed:
+                    out.append(Problem("RB-E042", f"'{a.value}' is not a code of '{target}'", expr.location,
+                                       "one of " + ", ".join(allowed)))
+    return out
+
+
+def _check_rules(rules: list[RuleSpec], steps: dict[str, StepSpec], inputs: dict[str, InputSpec],
+                 params: dict[str, ParamSpec], derived: dict[str, DerivedSpec], presentation: dict[str, Any]) -> list[Problem]:
+    out: list[Problem] = []
+    disorders = set(presentation.get("disorder_labels") or DISORDER_CODES)
+    qualifiers = set(presentation.get("qualifier_labels") or ())
+    names = set(inputs) | set(params) | set(derived)
+    first_finding: dict[str, tuple[str, str, Location]] = {}
+    for r in rules:
+        if r.step not in steps:
+            out.append(Problem("RB-E034", f"rule '{r.id}' names undeclared step '{r.step}'", r.location,
+                               "one of " + ", ".join(steps)))
+        for name in sorted(r.needs - set(inputs) - set(derived)):
+            if name not in params:
+                out.append(Problem("RB-E032", f"rule '{r.id}' needs undeclared input '{name}'", r.location,
+                                   "an input or derived value declared in the rulebook"))
+        for code in r.disorders:
+            if code not in disorders:
+                out.append(Problem("RB-E035", f"rule '{r.id}' asserts unknown disorder '{code}'", r.location,
+                                   "one of " + ", ".join(sorted(disorders))))
+        for code, qual in r.qualifiers.items():
+            if code not in disorders or (qualifiers and qual not in qualifiers):
+                out.append(Problem("RB-E035", f"rule '{r.id}' qualifies '{code}' as '{qual}'", r.location,
+                                   "a disorder code and a qualifier from presentation.qualifier_labels"))
+        for i, f in enumerate(r.findings):
+            for name in PLACEHOLDER.findall(f.text):
+                if name not in names:
+                    out.append(Problem("RB-E033", f"unknown placeholder '{{{name}}}' in finding '{f.code}'",
+                                       r.location, "an input, parameter or derived value name"))
+            prev = first_finding.get(f.code)
+            if prev is None:
+                first_finding[f.code] = (f.category, f.severity, r.location)
+            elif prev[:2] != (f.category, f.severity):
+                out.append(Problem("RB-E037", f"finding '{f.code}' is {f.category}/{f.severity} here but "
+                                   f"{prev[0]}/{prev[1]} at {prev[2]}", r.location, "one category and severity per code"))
+        if r.result_status is not None and not r.stop:
+            pass  # allowed: a status without halting
+    return out
+
+
+def _unit_of(name: str, inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
+             derived: dict[str, DerivedSpec]) -> str | None:
+    if name in inputs:
+        return inputs[name].unit if inputs[name].kind == "number" else None
+    if name in params:
+        return None if params[name].choices is not None else (params[name].unit or None)
+    if name in derived:
+        return derived[name].unit
+    return None
+
+
+def _check_units(inputs: dict[str, InputSpec], params: dict[str, ParamSpec], derived: dict[str, DerivedSpec],
+                 rules: list[RuleSpec]) -> list[Problem]:
+    """Where both sides of a comparison are plain names with units, the units must agree."""
+    out = []
+    for owner, _field, expr in _exprs(derived, rules):
+        for left, op, right in expr.compares:
+            if isinstance(left, ast.Name) and isinstance(right, ast.Name):
+                lu = _unit_of(left.id, inputs, params, derived)
+                ru = _unit_of(right.id, inputs, params, derived)
+                if lu and ru and lu != ru:
+                    out.append(Problem("RB-E036", f"{owner} compares {left.id} [{lu}] {op} {right.id} [{ru}]",
+                                       expr.location, f"both sides in {lu}"))
+    return out
+
+
+def _warnings(params: dict[str, ParamSpec], derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> list[Problem]:
+    out = []
+    used: set[str] = set()
+    for _owner, _field, expr in _exprs(derived, rules):
+        used |= expr.reads
+    for r in rules:
+        for f in r.findings:
+            used |= set(PLACEHOLDER.findall(f.text))
+    used |= {p.by_input for p in params.values() if p.by_input}
+    for p in params.values():
+        if p.name not in used:
+            out.append(Problem("RB-W101", f"parameter '{p.name}' is never used", p.location, "remove it or use it"))
+    for d in derived.values():
+        if not d.report and d.name not in used:
+            out.append(Problem("RB-W103", f"derived value '{d.name}' is never used nor reported", d.location))
+    for r in rules:
+        if r.when:
+            for lit in r.when.literals:
+                if lit not in _HARMLESS_LITERALS:
+                    out.append(Problem("RB-W102", f"rule '{r.id}' compares with the literal {lit:g}", r.when.location,
+                                       "a named parameter with unit, bounds and source"))
+    return out
+
+
+# ----------------------------------------------------------------------------- ordering
+
+def _order(derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> tuple[list[tuple[str, str]], list[Problem]]:
+    """A stable topological order of derived values and rules.
+
+    Rules keep their declared order unless a dependency forces otherwise; each derived value
+    is placed just before its first consumer. Dependencies: names read, and has() codes
+    (on every rule that asserts the code)."""
+    asserted_by: dict[str, list[str]] = {}
+    for r in rules:
+        for code in r.asserts:
+            asserted_by.setdefault(code, []).append(r.id)
+    nodes: dict[tuple[str, str], set[tuple[str, str]]] = {}
+    for d in derived.values():
+        deps = {("derived", n) for n in (d.expr.reads | (d.when.reads if d.when else frozenset())) if n in derived}
+        for e in (d.expr, d.when):
+            if e is not None:
+                deps |= {("rule", rid) for c in e.has_codes for rid in asserted_by.get(c, ())}
+        nodes[("derived", d.name)] = deps
+    for r in rules:
+        reads = (r.when.reads if r.when else frozenset()) | r.needs
+        for f in r.findings:
+            reads |= set(PLACEHOLDER.findall(f.text))
+        deps = {("derived", n) for n in reads if n in derived}
+        if r.when:
+            deps |= {("rule", rid) for c in r.when.has_codes for rid in asserted_by.get(c, ()) if rid != r.id}
+        nodes[("rule", r.id)] = deps
+    # Priority: rules by declaration; a derived value takes its earliest consumer's priority.
+    prio: dict[tuple[str, str], float] = {("rule", r.id): float(i) for i, r in enumerate(rules)}
+    consumers: dict[tuple[str, str], list[tuple[str, str]]] = {k: [] for k in nodes}
+    for node, deps in nodes.items():
+        for dep in deps:
+            consumers[dep].append(node)
+
+    def derived_prio(node: tuple[str, str], seen: frozenset[tuple[str, str]] = frozenset()) -> float:
+        if node in prio:
+            return prio[node]
+        if node in seen:
+            return float("inf")
+        best = min((derived_prio(c, seen | {node}) for c in consumers[node]), default=float(len(rules)))
+        prio[node] = best - 0.5
+        return prio[node]
+
+    decl = {k: i for i, k in enumerate(nodes)}
+    for node in nodes:
+        derived_prio(node)
+    indeg = {k: len(v) for k, v in nodes.items()}
+    heap = [(prio[k], decl[k], k) for k, n in indeg.items() if n == 0]
+    heapq.heapify(heap)
+    plan: list[tuple[str, str]] = []
+    while heap:
+        _, _, node = heapq.heappop(heap)
+        plan.append(node)
+        for c in consumers[node]:
+            indeg[c] -= 1
+            if indeg[c] == 0:
+                heapq.heappush(heap, (prio[c], decl[c], c))
+    if len(plan) < len(nodes):
+        stuck = sorted(k for k, n in indeg.items() if n > 0)
+        loc = {("derived", d.name): d.location for d in derived.values()}
+        loc.update({("rule", r.id): r.location for r in rules})
+        first = stuck[0]
+        return plan, [Problem("RB-E031", "cycle among " + ", ".join(f"{k}:{n}" for k, n in stuck[:8]),
+                              loc[first], "derived values and has() dependencies that form no loop")]
+    return plan, []
+
+
+# ----------------------------------------------------------------------------- identity
+
+def canonical_content(res: Resolved) -> dict[str, Any]:
+    """What the identity hash covers: resolved clinical content, not lifecycle metadata."""
+    rules = []
+    for body, _ in res.rules:
+        r = dict(body)
+        if r.get("id") in {s for s, _, _ in res.suspensions}:
+            r["status"] = "suspended"
+        rules.append(r)
+    return {"id": res.metadata["id"], "version": str(res.metadata["version"]),
+            "inputs": {k: b for k, (b, _) in res.inputs.items()},
+            "parameters": {k: b for k, (b, _) in res.parameters.items()},
+            "derived": {k: b for k, (b, _) in res.derived.items()},
+            "rules": rules,
+            "suspensions": [{"rule": s, "reason": why} for s, why, _ in res.suspensions]}
+
+
+def canonical_json(data: Any) -> bytes:
+    return json.dumps(data, sort_keys=True, separators=(",", ":"), ensure_ascii=False, default=str).encode("utf-8")
+
+
+def identity_hash(res: Resolved) -> str:
+    return hashlib.sha256(canonical_json(canonical_content(res))).hexdigest()
+
+
+def _display_units(raw: dict[str, Any]) -> dict[str, tuple[str, int | None]]:
+    out: dict[str, tuple[str, int | None]] = {}
+    for unit, target in raw.items():
+        if isinstance(target, dict):
+            out[unit] = (target["unit"], target.get("precision"))
+        else:
+            out[unit] = (str(target), None)
+    return out
+
+
+# ----------------------------------------------------------------------------- cut-points
+
+def _cutpoints(derived: dict[str, DerivedSpec], rules: list[RuleSpec], inputs: dict[str, InputSpec],
+               params: dict[str, ParamSpec]) -> Iterable[CutPoint]:
+    def kind(node: ast.AST) -> tuple[str, str] | None:
+        if isinstance(node, ast.Name):
+            n = node.id
+            if n in params:
+                return ("parameter", n) if params[n].choices is None else None
+            if n in derived:
+                return ("derived", n)
+            if n in inputs and inputs[n].kind == "number":
+                return ("input", n)
+            return None
+        if isinstance(node, ast.Constant) and isinstance(node.value, (int, float)) and not isinstance(node.value, bool):
+            return ("constant", repr(float(node.value)))
+        if isinstance(node, ast.UnaryOp) and isinstance(node.op, ast.USub) and isinstance(node.operand, ast.Constant):
+            return ("constant", repr(-float(node.operand.value)))
+        return None
+
+    flip = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
+    for owner, field, expr in _exprs(derived, rules):
+        for left, op, right in expr.compares:
+            lk, rk = kind(left), kind(right)
+            if lk is None or rk is None:
+                continue
+            # the quantity is the measured side; the threshold is the parameter/constant side
+            if lk[0] in ("parameter", "constant") and rk[0] in ("input", "derived"):
+                lk, rk, op = rk, lk, flip[op]
+            if lk[0] in ("parameter", "constant"):
+                continue
+            yield CutPoint(owner=owner, field=field, quantity=lk[1], op=op, threshold=rk[1],
+                           threshold_kind=rk[0], location=expr.location)
+
+
+def list_cutpoints(compiled: CompiledRulebook) -> list[dict[str, Any]]:
+    """Every numeric cut-point of every condition, with the threshold's current value."""
+    out = []
+    for c in compiled.cutpoints:
+        value: Any = None
+        if c.threshold_kind == "parameter":
+            value = compiled.parameters[c.threshold].value
+        elif c.threshold_kind == "constant":
+            value = float(c.threshold)
+        out.append({"owner": c.owner, "field": c.field, "quantity": c.quantity, "op": c.op,
+                    "threshold": c.threshold, "threshold_kind": c.threshold_kind, "value": value,
+                    "location": str(c.location)})
+    return out
+
+
+# ----------------------------------------------------------------------------- code generation
+
+def _name_infos(inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
+                derived: dict[str, DerivedSpec]) -> dict[str, NameInfo]:
+    infos: dict[str, NameInfo] = {}
+    for n, i in inputs.items():
+        infos[n] = NameInfo("input", i.kind)
+    for n, p in params.items():
+        vk = "choice" if p.choices is not None else "number"
+        infos[n] = NameInfo("parameter", vk, None if p.by_input else p.value)
+    for n in derived:
+        infos[n] = NameInfo("derived", "number")
+    return infos
+
+
+def _rounded_names(inputs: dict[str, InputSpec], derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> set[str]:
+    out: set[str] = set()
+    for _owner, _field, expr in _exprs(derived, rules):
+        for left, _op, right in expr.compares:
+            for side in (left, right):
+                for n in ast.walk(side):
+                    if isinstance(n, ast.Name) and (n.id in derived or (n.id in inputs and inputs[n.id].kind == "number")):
+                        out.add(n.id)
+    return out
+
+
+def _round_src(var: str, precision: int) -> str:
+    s = repr(float(10 ** precision))
+    return (f"((_floor({var} * {s} + 0.5 + 1e-9) / {s} + 0.0) if {var} >= 0 "
+            f"else (-_floor(-{var} * {s} + 0.5 + 1e-9) / {s} + 0.0))")
+
+
+def _available(names: Iterable[str], inputs: dict[str, InputSpec], derived: dict[str, DerivedSpec]) -> str:
+    tests = [f"v_{n} is not None" for n in sorted(names) if n in inputs or n in derived]
+    return " and ".join(tests) if tests else "True"
+
+
+def generate(plan: list[tuple[str, str]], inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
+             derived: dict[str, DerivedSpec], rules: list[RuleSpec],
+             cutpoints: tuple[CutPoint, ...] = ()) -> tuple[str, tuple[str, ...]]:
+    """Python source of one function ``evaluate(I) -> (values, states, errors, outcomes, codes)``.
+
+    ``I`` maps every input name to its canonical value (None when missing). ``values`` and
+    ``states`` follow ``value_names`` (the derived values in plan order); ``outcomes`` follows
+    the rule order of the plan; ``errors`` maps a name to the calculation error's text."""
+    infos = _name_infos(inputs, params, derived)
+    rounded = _rounded_names(inputs, derived, rules)
+    by_rule = {r.id: r for r in rules}
+    lines = ["def evaluate(I, T=None):", "    F = _set()", "    E = {}", "    O = []", "    H = False"]
+    for n, i in inputs.items():
+        lines.append(f"    v_{n} = I[{n!r}]")
+        if n in rounded:
+            lines.append(f"    r_{n} = None if v_{n} is None else {_round_src(f'v_{n}', i.precision)}")
+    for n, p in params.items():
+        if p.by_input:
+            default = repr(p.value) if isinstance(p.value, str) else repr(float(p.value))
+            lines.append(f"    p_{n} = _BY_{n}.get(v_{p.by_input}, {default})")
+    value_names: list[str] = []
+    for kind, name in plan:
+        if kind == "derived":
+            d = derived[name]
+            value_names.append(name)
+            lines.append(f"    # derived {name}")
+            avail = _available(d.needs, inputs, derived)
+            lines.append(f"    v_{name} = None")
+            lines.append(f"    if not ({avail}):")
+            lines.append(f"        S_{name} = {MISSING}")
+            if d.when is not None:
+                lines.append(f"    elif not ({to_python(d.when.node, infos)}):")
+                lines.append(f"        S_{name} = {NOT_APPLICABLE}")
+            lines.append("    else:")
+            lines.append("        try:")
+            lines.append(f"            v_{name} = _float({to_python(d.expr.node, infos)})")
+            lines.append(f"            S_{name} = {COMPUTED}")
+            lines.append("        except _ERR as exc:")
+            lines.append(f"            S_{name} = {CALC_ERROR}")
+            lines.append(f"            E[{name!r}] = _describe(exc)")
+            if name in rounded:
+                lines.append(f"    r_{name} = None if v_{name} is None else {_round_src(f'v_{name}', d.precision)}")
+        else:
+            r = by_rule[name]
+            lines.append(f"    # rule {r.id}")
+            if r.status == "suspended":
+                lines.append(f"    O.append({SUSPENDED})")
+                lines += _trace_code(r, inputs, params, derived, cutpoints, rounded)
+                continue
+            codes = sorted(r.asserts)
+            fire = [f"O.append({FIRED})"]
+            if codes:
+                fire.append(f"F.update({tuple(codes)!r})")
+            if r.stop:
+                fire.append("H = True")
+            avail = _available(r.needs, inputs, derived)
+            if r.always:
+                lines.append(f"    if not ({avail}):")
+            else:
+                lines.append("    if H:")
+                lines.append(f"        O.append({HALTED})")
+                lines.append(f"    elif not ({avail}):")
+            lines.append(f"        O.append({SKIPPED})")
+            lines.append("    else:")
+            lines.append("        try:")
+            cond = to_python(r.when.node, infos) if r.when is not None else "True"
+            lines.append(f"            c = _bool({cond})")
+            lines.append("        except _ERR as exc:")
+            lines.append("            c = None")
+            lines.append(f"            E[{r.id!r}] = _describe(exc)")
+            lines.append("        if c is None:")
+            lines.append(f"            O.append({ERROR})")
+            lines.append("        elif c:")
+            for stmt in fire:
+                lines.append(f"            {stmt}")
+            lines.append("        else:")
+            lines.append(f"            O.append({NOT_FIRED})")
+            lines += _trace_code(r, inputs, params, derived, cutpoints, rounded)
+    vals = ", ".join(f"v_{n}" for n in value_names)
+    states = ", ".join(f"S_{n}" for n in value_names)
+    lines.append(f"    return ({vals}{',' if len(value_names) == 1 else ''}), ({states}{',' if len(value_names) == 1 else ''}), E, O, F")
+    return "\n".join(lines) + "\n", tuple(value_names)
+
+
+def _trace_code(r: RuleSpec, inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
+                derived: dict[str, DerivedSpec], cutpoints: tuple[CutPoint, ...], rounded: set[str]) -> list[str]:
+    """Source that appends this rule's trace event to T (see gasrules.trace.TraceEvent)."""
+    head = f'"rule": {r.id!r}, "step": {r.step!r}, "title": {r.title!r}'
+    out = ["    if T is not None:"]
+    if r.status == "suspended":
+        out.append(f'        T.append({{{head}, "outcome": "suspended", "reason": {r.suspended_reason!r}}})')
+        return out
+    reads = set(r.when.reads) if r.when else set()
+    reads |= set(r.needs)
+    values = [n for n in sorted(reads) if n in inputs or n in derived]
+    out.append("        o = O[-1]")
+    out.append(f'        ev = {{{head}, "outcome": _OUT[o]}}')
+    out.append(f"        if o != {HALTED}:")
+    out.append("            ev['reads'] = {" + ", ".join(f"{n!r}: v_{n}" for n in values) + "}")
+    prm = []
+    for n in sorted(reads):
+        p = params.get(n)
+        if p is None:
+            continue
+        if p.by_input:
+            prm.append(f'{n!r}: {{"value": p_{n}, "unit": {p.unit!r}, "set_by": {str(p.set_by)!r}, '
+                       f'"selected_by": {p.by_input + "="!r} + _str(v_{p.by_input})}}')
+        else:
+            prm.append(f"{n!r}: _PE[{n!r}]")
+    if prm:
+        out.append("            ev['parameters'] = {" + ", ".join(prm) + "}")
+    needs = [n for n in sorted(r.needs) if n in inputs or n in derived]
+    if needs:
+        pairs = ", ".join(f"({n!r}, v_{n})" for n in needs)
+        out.append(f"            if o == {SKIPPED}:")
+        out.append(f"                ev['missing'] = [n for n, v in ({pairs},) if v is None]")
+    out.append(f"            if o == {ERROR}:")
+    out.append(f"                ev['reason'] = E.get({r.id!r}, '')")
+    comps = []
+    for c in cutpoints:
+        if c.owner != r.id or c.field != "when" or c.quantity not in rounded:
+            continue
+        if c.threshold_kind == "parameter":
+            p = params[c.threshold]
+            tv = f"p_{c.threshold}" if p.by_input else repr(float(p.value))
+        elif c.threshold_kind == "constant":
+            tv = c.threshold
+        elif c.threshold in rounded:
+            tv = f"r_{c.threshold}"
+        else:
+            tv = f"v_{c.threshold}"
+        comps.append(f"_cmp({c.quantity!r}, v_{c.quantity}, r_{c.quantity}, {c.op!r}, {c.threshold!r}, {tv})")
+    if comps:
+        out.append(f"            if o <= {NOT_FIRED}:")
+        out.append("                ev['comparisons'] = [" + ", ".join(comps) + "]")
+    if r.asserts:
+        out.append(f"            if o == {FIRED}:")
+        out.append(f"                ev['asserted'] = {sorted(r.asserts)!r}")
+    out.append("        T.append(ev)")
+    return out
+
+
+def _cmp(quantity: str, value: Any, compared: Any, op: str, threshold: str, tvalue: Any) -> dict[str, Any]:
+    margin = None if compared is None or tvalue is None else round(compared - tvalue, 9)
+    return {"quantity": quantity, "value": value, "compared": compared, "op": op, "threshold": threshold,
+            "threshold_value": tvalue, "margin": margin}
+
+
+def link(compiled: CompiledRulebook) -> None:
+    """Turn the generated source into a function (also after unpickling from the cache)."""
+    g = runtime_globals()
+    for n, p in compiled.parameters.items():
+        if p.by_input:
+            g[f"_BY_{n}"] = {k: (v if isinstance(v, str) else float(v)) for k, v in p.by_values.items()}
+    g["_PE"] = {n: {"value": p.value, "unit": p.unit, "set_by": str(p.set_by)}
+                for n, p in compiled.parameters.items() if not p.by_input}
+    g.update(_OUT=OUTCOMES, _cmp=_cmp, _str=str)
+    code = compile(compiled.source, f"<rulebook {compiled.id}@{compiled.version}>", "exec")
+    exec(code, g)  # noqa: S102 - source generated from checked syntax trees; no builtins
+    compiled._function = g["evaluate"]
+    from .evaluator import prepare  # the evaluator's per-rulebook tables
+
+    compiled._static = prepare(compiled)

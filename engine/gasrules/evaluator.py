@@ -1,0 +1,379 @@
+"""Stage 4: evaluate one case with a compiled rulebook. A pure function of (rulebook, case).
+
+read the input record -> convert units -> check plausibility -> run the generated function
+-> assemble the result contract (schemas/result.schema.json) with its trace.
+A bad input rejects the whole case with errors naming each field; a missing input only makes
+the rules that need it skip; a calculation error only makes that value not assessable.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any, Mapping
+
+from . import units as U
+from .compiler import CALC_ERROR, COMPUTED, FIRED, HALTED, MISSING, PLACEHOLDER, SKIPPED
+from .errors import INPUT_CODES
+from .expressions import round_at
+from .model import CompiledRulebook
+from .trace import RuleTrace
+
+SCHEMA_VERSION = "1.0"
+NOT_ANALYTES = ("case_id", "context")
+_TRUE = {"true", "yes", "1", "y"}
+_FALSE = {"false", "no", "0", "n"}
+
+
+@dataclass
+class Static:
+    """Per-rulebook tables, built once when the rulebook is linked."""
+
+    input_names: tuple[str, ...]
+    blank: dict[str, Any]
+    identity: dict[str, str]
+    rule_traces: list[RuleTrace]
+    value_index: dict[str, int]
+    reported: tuple[tuple[int, str, float, str], ...]       # (index, name, scale, unit)
+    step_rules: dict[str, list[int]]
+    conversions: dict[tuple[str, str], tuple[float, float]]
+    known_units: frozenset[str]
+    accepted_keys: str
+    finding_order: dict[int, int] = field(default_factory=dict)
+
+
+def prepare(rb: CompiledRulebook) -> Static:
+    rule_order = [name for kind, name in rb.plan if kind == "rule"]
+    by_id = {r.id: r for r in rb.rules}
+    value_index = {n: i for i, n in enumerate(rb.value_names)}
+    traces = [RuleTrace.of(by_id[rid], rb) for rid in rule_order]
+    reported = tuple((value_index[n], n, 10.0 ** d.precision, d.unit)
+                     for n, d in rb.derived.items() if d.report and n in value_index)
+    reported = tuple(sorted(reported))
+    step_rules: dict[str, list[int]] = {}
+    for i, rid in enumerate(rule_order):
+        step_rules.setdefault(by_id[rid].step, []).append(i)
+    conversions: dict[tuple[str, str], tuple[float, float]] = {}
+    for spec in rb.inputs.values():
+        for alt, (factor, offset) in spec.alternatives.items():
+            conversions[(spec.unit, alt)] = (factor, offset)
+    known = frozenset(U.UCUM_CODES) | {s.unit for s in rb.inputs.values()} | {
+        a for s in rb.inputs.values() for a in s.alternatives}
+    blank = {n: (s.default if s.kind != "number" else None) for n, s in rb.inputs.items()}
+    return Static(input_names=tuple(rb.inputs), blank=blank, identity=rb.identity, rule_traces=traces,
+                  value_index=value_index, reported=reported, step_rules=step_rules, conversions=conversions,
+                  known_units=known, accepted_keys=", ".join(sorted(rb.inputs)))
+
+
+# ----------------------------------------------------------------------------- reading a case
+
+def _error(field_: str, code: str, message: str, accepted: str) -> dict[str, str]:
+    return {"field": field_, "code": code, "message": message, "accepted": accepted}
+
+
+def read_case(rb: CompiledRulebook, case: Any) -> tuple[dict[str, Any], list[dict[str, str]], Any, Any]:
+    """(canonical inputs, errors, case_id, context). Inputs not given are None (or their default)."""
+    static: Static = rb._static
+    values = dict(static.blank)
+    if not isinstance(case, Mapping):
+        return values, [_error("", "input.not_an_object", f"a case must be a JSON object, not {type(case).__name__}",
+                               "an object of input names to values")], None, None
+    errors: list[dict[str, str]] = []
+    case_id = case.get("case_id")
+    if case_id is not None and not isinstance(case_id, str):
+        errors.append(_error("case_id", "input.bad_case_id", f"case_id must be a string, not {type(case_id).__name__}",
+                             "a string"))
+    context = case.get("context")
+    if context is not None and not isinstance(context, Mapping):
+        errors.append(_error("context", "input.bad_context", "context must be an object", "a JSON object"))
+    for key, raw in case.items():
+        if key in NOT_ANALYTES:
+            continue
+        spec = rb.inputs.get(key)
+        if spec is None:
+            errors.append(_error(str(key), "input.unknown_key", f"'{key}' is not an input of rulebook {rb.id}",
+                                 "one of " + static.accepted_keys + ", case_id, context"))
+            continue
+        if raw is None:
+            continue
+        if spec.kind == "code":
+            text = raw.strip().lower() if isinstance(raw, str) else raw
+            if text in spec.codes:
+                values[key] = text
+            else:
+                errors.append(_error(key, "input.unknown_code", f"{key} = {raw!r} is not an accepted code",
+                                     "one of " + ", ".join(spec.codes)))
+            continue
+        if spec.kind == "flag":
+            flag = _flag(raw)
+            if flag is None:
+                errors.append(_error(key, "input.bad_flag", f"{key} = {raw!r} is not true or false", "true or false"))
+            else:
+                values[key] = flag
+            continue
+        value, err = _number(rb, spec, key, raw)
+        if err is not None:
+            errors.append(err)
+        else:
+            values[key] = value
+    return values, errors, case_id, context
+
+
+def _flag(raw: Any) -> bool | None:
+    if isinstance(raw, bool):
+        return raw
+    if isinstance(raw, (int, float)) and raw in (0, 1):
+        return bool(raw)
+    if isinstance(raw, str):
+        t = raw.strip().lower()
+        if t in _TRUE:
+            return True
+        if t in _FALSE:
+            return False
+    return None
+
+
+def _number(rb: CompiledRulebook, spec: Any, key: str, raw: Any) -> tuple[float | None, dict[str, str] | None]:
+    static: Static = rb._static
+    unit = spec.unit
+    accepted_units = ", ".join([spec.unit] + list(spec.alternatives))
+    if isinstance(raw, Mapping):
+        if "value" not in raw or set(raw) - {"value", "unit"}:
+            return None, _error(key, "input.bad_form", f"{key} must be a number or {{value, unit}}",
+                                f'a number in {spec.unit}, or {{"value": x, "unit": one of {accepted_units}}}')
+        given = raw.get("unit")
+        raw = raw["value"]
+        if given is not None:
+            if not isinstance(given, str):
+                return None, _error(key, "input.unknown_unit", f"unit of {key} must be text", accepted_units)
+            code = U.normalise(given)
+            if code is None or (code not in static.known_units):
+                return None, _error(key, "input.unknown_unit", f"unit '{given}' of {key} is not a known unit",
+                                    "one of " + accepted_units)
+            if code != spec.unit and code not in spec.alternatives:
+                return None, _error(key, "input.unit_mismatch", f"unit '{given}' does not fit {key}",
+                                    "one of " + accepted_units)
+            unit = code
+    if isinstance(raw, bool) or not isinstance(raw, (int, float, str)):
+        return None, _error(key, "input.not_a_number", f"{key} = {raw!r} is not a number", f"a number in {spec.unit}")
+    if isinstance(raw, str):
+        try:
+            raw = float(raw.strip())
+        except ValueError:
+            return None, _error(key, "input.not_a_number", f"{key} = {raw!r} is not a number", f"a number in {spec.unit}")
+    value = float(raw)
+    if not math.isfinite(value):
+        return None, _error(key, "input.not_finite", f"{key} is {value}", "a finite number")
+    if unit != spec.unit:
+        factor, offset = spec.alternatives[unit]
+        value = value * factor + offset
+    lo, hi = spec.plausible_min, spec.plausible_max
+    if (lo is not None and value < lo) or (hi is not None and value > hi):
+        shown = f"{value:g} {U.label(spec.unit)}".strip()
+        return None, _error(key, "input.out_of_range", f"{key} = {shown} is outside the plausible range",
+                            f"{lo:g} to {hi:g} {U.label(spec.unit)}".strip())
+    return value, None
+
+
+# ----------------------------------------------------------------------------- evaluating
+
+def interpret(rb: CompiledRulebook, case: Any, trace: bool = True) -> dict[str, Any]:
+    """The result contract for one case. Never raises for bad input: it is rejected with errors."""
+    static: Static = rb._static
+    inputs, errors, case_id, context = read_case(rb, case)
+    result: dict[str, Any] = {
+        "schema_version": SCHEMA_VERSION, "case_id": case_id if isinstance(case_id, str) else None,
+        "context": dict(context) if isinstance(context, Mapping) else {},
+        "rulebook": dict(static.identity), "engine_version": rb.engine_version,
+    }
+    pres = rb.presentation
+    if errors:
+        result.update(status="rejected", headline=pres.get("headline", {}).get("rejected", "Input rejected"),
+                      errors=errors, inputs={}, values={}, units={}, findings=[], disorders=[], qualifiers={},
+                      not_assessed=[{"what": "interpretation", "why": "input rejected: " + "; ".join(
+                          e["message"] for e in errors)}],
+                      cautions=list(pres.get("cautions", [])), trace=[])
+        return result
+    events: list[Any] | None = [] if trace else None
+    vals, states, calc_errors, outcomes, _codes = rb._function(inputs, events)
+    return assemble(rb, result, inputs, vals, states, calc_errors, outcomes, events)
+
+
+def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any], vals: tuple[Any, ...],
+             states: tuple[int, ...], calc_errors: dict[str, str], outcomes: list[int],
+             events: list[Any] | None) -> dict[str, Any]:
+    static: Static = rb._static
+    pres = rb.presentation
+    values: dict[str, float] = {}
+    units: dict[str, str] = {}
+    for i, name, scale, unit in static.reported:
+        v = vals[i]
+        if v is not None:
+            values[name] = _round(v, scale)
+            units[name] = unit
+    rule_traces = static.rule_traces
+    findings: list[dict[str, Any]] = []
+    disorders: list[str] = []
+    qualifiers: dict[str, str] = {}
+    conflicts: dict[str, list[str]] = {}
+    headlines: list[tuple[int, str, str]] = []
+    caution_texts: list[str] = []
+    status = "interpreted"
+    lookup = _Lookup(rb, inputs, vals, static.value_index)
+    for i, outcome in enumerate(outcomes):
+        if outcome != FIRED:
+            continue
+        rt = rule_traces[i]
+        rule = rt.rule
+        if rule.result_status:
+            status = rule.result_status
+        for code in rule.disorders:
+            if code not in disorders:
+                disorders.append(code)
+        for code, qual in rule.qualifiers.items():
+            if code in qualifiers and qualifiers[code] != qual:
+                conflicts.setdefault(code, [qualifiers[code]]).append(qual)
+            qualifiers.setdefault(code, qual)
+        for f in rule.findings:
+            text = PLACEHOLDER.sub(lookup.render, f.text) if "{" in f.text else f.text
+            findings.append({"code": f.code, "category": f.category, "severity": f.severity, "text": text,
+                             "rule": rule.id})
+            if f.headline:
+                headlines.append((0 if f.severity == "critical" else 1, f.category, f.headline))
+            if f.caution:
+                caution_texts.append(text)
+    not_assessed = _not_assessed(rb, static, outcomes, states, vals, calc_errors, inputs)
+    for code, quals in conflicts.items():
+        qualifiers.pop(code, None)
+        not_assessed.append({"what": f"qualifier of {code}",
+                             "why": "eval.conflict: rules asserted " + " and ".join(sorted(set(quals)))})
+    if status == "inconsistent":
+        disorders, qualifiers = [], {}
+    elif status == "interpreted" and any(n.get("core") for n in not_assessed):
+        status = "partial"
+    for n in not_assessed:
+        n.pop("core", None)
+    findings.sort(key=lambda f: 0 if f["severity"] == "critical" else 1)
+    result.update(status=status, headline=_headline(pres, status, disorders, qualifiers, headlines), errors=[],
+                  inputs={k: v for k, v in inputs.items() if v is not None}, values=values, units=units,
+                  findings=findings, disorders=disorders, qualifiers=qualifiers, not_assessed=not_assessed,
+                  cautions=caution_texts + list(pres.get("cautions", [])),
+                  trace=events if events is not None else [])
+    return result
+
+
+def _round(v: float, scale: float) -> float:
+    return round_at(v, scale)
+
+
+class _Lookup:
+    """Renders {name} placeholders: the value at its precision, in display units, with its unit."""
+
+    def __init__(self, rb: CompiledRulebook, inputs: dict[str, Any], vals: tuple[Any, ...], index: dict[str, int]):
+        self.rb, self.inputs, self.vals, self.index = rb, inputs, vals, index
+
+    def render(self, m: Any) -> str:
+        name = m.group(1)
+        rb = self.rb
+        if name in self.index:
+            d = rb.derived[name]
+            return format_quantity(rb, self.vals[self.index[name]], d.unit, d.precision)
+        if name in rb.inputs:
+            spec = rb.inputs[name]
+            v = self.inputs.get(name)
+            if spec.kind != "number":
+                return "not given" if v is None else str(v).replace("_", " ")
+            return format_quantity(rb, v, spec.unit, spec.precision)
+        p = rb.parameters[name]
+        if p.by_input:
+            value = p.value_for(self.inputs.get(p.by_input))
+        else:
+            value = p.value
+        if isinstance(value, str):
+            return value.replace("_", " ")
+        return format_quantity(rb, value, p.unit, _precision_of(value))
+
+
+def _precision_of(value: float) -> int:
+    text = f"{float(value):.6f}".rstrip("0")
+    return len(text.split(".")[1]) if "." in text else 0
+
+
+def to_display(rb: CompiledRulebook, value: float, unit: str, precision: int) -> tuple[float, str, int]:
+    """A canonical value in the unit the rulebook displays (e.g. mm[Hg] -> kPa)."""
+    target = rb.display_units.get(unit)
+    if target is None:
+        return value, unit, precision
+    to_unit, to_prec = target
+    conv = rb._static.conversions.get((unit, to_unit))
+    if conv is None:
+        return value, unit, precision
+    factor, offset = conv
+    if to_prec is None:
+        to_prec = max(0, precision + round(math.log10(abs(factor)))) if factor else precision
+    return (value - offset) / factor, to_unit, to_prec
+
+
+def format_quantity(rb: CompiledRulebook, value: Any, unit: str, precision: int) -> str:
+    if value is None:
+        return "not available"
+    v, u, p = to_display(rb, float(value), unit, precision)
+    text = f"{round_at(v, 10.0 ** p):.{p}f}"
+    lab = U.label(u)
+    return f"{text} {lab}" if lab else text
+
+
+def _not_assessed(rb: CompiledRulebook, static: Static, outcomes: list[int], states: tuple[int, ...],
+                  vals: tuple[Any, ...], calc_errors: dict[str, str], inputs: dict[str, Any]) -> list[dict[str, Any]]:
+    out: list[dict[str, Any]] = []
+    traces = static.rule_traces
+    halted: list[str] = []
+    for step, idx in static.step_rules.items():
+        live = [i for i in idx if outcomes[i] not in (4,)]  # suspended rules do not count
+        if not live:
+            continue
+        if all(outcomes[i] == HALTED for i in live):
+            halted.append(rb.steps[step].label)
+            continue
+        if all(outcomes[i] in (SKIPPED, HALTED) for i in live):
+            missing = sorted({n for i in live if outcomes[i] == SKIPPED
+                              for n in traces[i].missing(inputs, vals, static.value_index)})
+            out.append({"what": rb.steps[step].label, "why": "needs " + ", ".join(missing),
+                        "core": rb.steps[step].core})
+    if halted:
+        stoppers = [traces[i].rule.id for i, o in enumerate(outcomes) if o == FIRED and traces[i].rule.stop]
+        out.insert(0, {"what": ", ".join(halted), "core": False,
+                       "why": "not evaluated: rule " + ", ".join(stoppers) + " stopped the interpretation"})
+    for name, err in calc_errors.items():
+        what = rb.derived[name].label if name in rb.derived else f"rule {name}"
+        out.append({"what": what, "why": f"eval.calculation_error: {err}", "core": False})
+    return out
+
+
+def _headline(pres: dict[str, Any], status: str, disorders: list[str], qualifiers: dict[str, str],
+              headlines: list[tuple[int, str, str]]) -> str:
+    """Critical phrases first, then the pH state, the disorders, then other phrases (e.g. hypoxaemia).
+    A phrase already said by a disorder's label is not repeated."""
+    words = pres.get("headline", {})
+    critical = [h for s, c, h in headlines if s == 0]
+    if status == "inconsistent":
+        critical = [h for s, c, h in headlines if s == 0 and c == "critical"]
+        return "; ".join(_unique(critical + [words.get("inconsistent", "Values inconsistent")]))
+    labels = pres.get("disorder_labels", {})
+    qlabels = pres.get("qualifier_labels", {})
+    parts = []
+    for code in disorders:
+        text = labels.get(code, code)
+        if code in qualifiers:
+            text += f" ({qlabels.get(qualifiers[code], qualifiers[code])})"
+        parts.append(text)
+    said = " ".join(parts).lower()
+    state = [h for s, c, h in headlines if s == 1 and c == "ph_state"]
+    others = [h for s, c, h in headlines if s == 1 and c != "ph_state" and h.lower() not in said]
+    main = " + ".join(parts) if parts else words.get("no_disorder", "No acid-base disorder identified")
+    return "; ".join(_unique(critical + state + [main] + others))
+
+
+def _unique(items: list[str]) -> list[str]:
+    seen: set[str] = set()
+    return [x for x in items if not (x in seen or seen.add(x))]  # type: ignore[func-returns-value]

@@ -1,0 +1,150 @@
+"""The decision trace: one typed event per rule, in evaluation order.
+
+Each event says what the rule is, its outcome (fired, not_fired, skipped_missing_input,
+halted, suspended, error), what it read (inputs and derived values with their values,
+parameters with their value and the file:line that set them), and for every comparison
+that decided it, the value as compared (at its reported precision), the threshold and the
+margin between them. Events are plain JSON-ready dicts described by :class:`TraceEvent`;
+reading them aloud is :func:`gasrules.reporters.render_trace`'s job.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, TypedDict
+
+from .compiler import ERROR, FIRED, NOT_FIRED, OUTCOMES, SKIPPED, SUSPENDED
+from .expressions import round_at
+from .model import CompiledRulebook, RuleSpec
+
+
+class Comparison(TypedDict):
+    quantity: str
+    value: float | None          # full value
+    compared: float | None       # the value at its reported precision (what the rule compared)
+    op: str
+    threshold: str               # a parameter name or a literal
+    threshold_value: float | None
+    margin: float | None         # compared - threshold_value
+
+
+class TraceEvent(TypedDict, total=False):
+    rule: str
+    step: str
+    title: str
+    outcome: str                 # one of OUTCOMES
+    reads: dict[str, Any]        # input and derived names -> value (None when unavailable)
+    parameters: dict[str, dict[str, Any]]   # name -> {value, unit, set_by}
+    comparisons: list[Comparison]
+    missing: list[str]           # skipped_missing_input: the needed names that were unavailable
+    reason: str                  # suspended: why; error: the calculation error
+    asserted: list[str]          # fired: the finding and disorder codes it asserted
+
+
+@dataclass
+class RuleTrace:
+    """What the trace needs to know about one rule, computed once per rulebook."""
+
+    rule: RuleSpec
+    head: dict[str, str]
+    value_reads: tuple[tuple[str, bool], ...]     # (name, is_input)
+    needs: tuple[tuple[str, bool], ...]
+    parameters: dict[str, dict[str, Any]]
+    by_params: tuple[tuple[str, str, Any], ...]   # (param, selecting input, ParamSpec)
+    comparisons: tuple[tuple[str, bool, float, str, str, str, float], ...]  # (quantity, is_input, scale, op, threshold, kind, scale)
+    asserted: list[str]
+
+    @classmethod
+    def of(cls, rule: RuleSpec, rb: CompiledRulebook) -> "RuleTrace":
+        reads = set(rule.when.reads) if rule.when else set()
+        reads |= set(rule.needs)
+        value_reads = tuple((n, n in rb.inputs) for n in sorted(reads) if n in rb.inputs or n in rb.derived)
+        needs = tuple((n, n in rb.inputs) for n in sorted(rule.needs) if n in rb.inputs or n in rb.derived)
+        params: dict[str, dict[str, Any]] = {}
+        by_params = []
+        for n in sorted(reads):
+            p = rb.parameters.get(n)
+            if p is None:
+                continue
+            if p.by_input:
+                by_params.append((n, p.by_input, p))
+            params[n] = {"value": p.value, "unit": p.unit, "set_by": str(p.set_by)}
+        comps = []
+        for c in rb.cutpoints:
+            if c.owner != rule.id or c.field != "when":
+                continue
+            comps.append((c.quantity, c.quantity in rb.inputs, _scale(rb, c.quantity), c.op, c.threshold,
+                          c.threshold_kind, _scale(rb, c.threshold)))
+        head = {"rule": rule.id, "step": rule.step, "title": rule.title}
+        return cls(rule, head, value_reads, needs, params, tuple(by_params), tuple(comps), sorted(rule.asserts))
+
+    def missing(self, inputs: dict[str, Any], vals: tuple[Any, ...], index: dict[str, int]) -> list[str]:
+        out = []
+        for name, is_input in self.needs:
+            v = inputs.get(name) if is_input else vals[index[name]]
+            if v is None:
+                out.append(name)
+        return out
+
+
+def _scale(rb: CompiledRulebook, name: str) -> float:
+    if name in rb.inputs:
+        return 10.0 ** rb.inputs[name].precision
+    if name in rb.derived:
+        return 10.0 ** rb.derived[name].precision
+    return 1.0
+
+
+def _value(name: str, is_input: bool, inputs: dict[str, Any], vals: tuple[Any, ...], index: dict[str, int]) -> Any:
+    return inputs.get(name) if is_input else vals[index[name]]
+
+
+def build_trace(traces: list[RuleTrace], outcomes: list[int], inputs: dict[str, Any], vals: tuple[Any, ...],
+                index: dict[str, int], calc_errors: dict[str, str]) -> list[TraceEvent]:
+    events: list[TraceEvent] = []
+    for rt, outcome in zip(traces, outcomes):
+        ev: TraceEvent = dict(rt.head)  # type: ignore[assignment]
+        ev["outcome"] = OUTCOMES[outcome]
+        if outcome == SUSPENDED:
+            ev["reason"] = rt.rule.suspended_reason
+            events.append(ev)
+            continue
+        ev["reads"] = {n: _value(n, i, inputs, vals, index) for n, i in rt.value_reads}
+        if rt.parameters:
+            params = dict(rt.parameters)
+            for name, selector, spec in rt.by_params:
+                p = dict(params[name])
+                p["value"] = spec.value_for(inputs.get(selector))
+                p["selected_by"] = f"{selector}={inputs.get(selector)}"
+                params[name] = p
+            ev["parameters"] = params
+        if outcome == SKIPPED:
+            ev["missing"] = rt.missing(inputs, vals, index)
+        elif outcome == ERROR:
+            ev["reason"] = calc_errors.get(rt.rule.id, "")
+        elif outcome in (FIRED, NOT_FIRED) and rt.comparisons:
+            ev["comparisons"] = _comparisons(rt, ev, inputs, vals, index)
+        if outcome == FIRED:
+            ev["asserted"] = rt.asserted
+        events.append(ev)
+    return events
+
+
+def _comparisons(rt: RuleTrace, ev: TraceEvent, inputs: dict[str, Any], vals: tuple[Any, ...],
+                 index: dict[str, int]) -> list[Comparison]:
+    out: list[Comparison] = []
+    params = ev.get("parameters", {})
+    for quantity, is_input, scale, op, threshold, kind, tscale in rt.comparisons:
+        v = _value(quantity, is_input, inputs, vals, index)
+        if kind == "parameter":
+            tvalue = params[threshold]["value"]
+        elif kind == "constant":
+            tvalue = float(threshold)
+        else:
+            tv = _value(threshold, kind == "input", inputs, vals, index)
+            tvalue = None if tv is None else round_at(tv, tscale)
+        compared = None if v is None else round_at(v, scale)
+        margin = None if compared is None or tvalue is None else round(compared - tvalue, 9)
+        out.append({"quantity": quantity, "value": v, "compared": compared, "op": op, "threshold": threshold,
+                    "threshold_value": tvalue, "margin": margin})
+    return out
