@@ -13,7 +13,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any, TypedDict
 
-from .compiler import ERROR, FIRED, NOT_FIRED, OUTCOMES, SKIPPED, SUSPENDED
+from .compiler import ERROR, FIRED, HALTED, NOT_FIRED, OUTCOMES, SKIPPED, SUSPENDED
 from .expressions import round_at
 from .model import CompiledRulebook, RuleSpec
 
@@ -107,6 +107,7 @@ def build_trace(traces: list[RuleTrace], outcomes: list[int], inputs: dict[str, 
         ev["outcome"] = OUTCOMES[outcome]
         if outcome == SUSPENDED:
             ev["reason"] = rt.rule.suspended_reason
+        if outcome in (SUSPENDED, HALTED):
             events.append(ev)
             continue
         ev["reads"] = {n: _value(n, i, inputs, vals, index) for n, i in rt.value_reads}
