@@ -1,0 +1,1 @@
+"""One module per gasrules command; each exposes a typer app named `app`."""
