@@ -1,0 +1,135 @@
+"""`gasrules interpret`: one case from a file, stdin or flags; or many from JSON Lines.
+
+    gasrules interpret case.json
+    gasrules interpret cases.jsonl --json
+    gasrules interpret --ph 7.26 --pco2 25 --hco3 11 --na 140 --cl 104
+    gasrules interpret --ph 7.21 --pco2 8.7kPa --hco3 26 --set sample_type=arterial
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import sys
+from pathlib import Path
+from typing import Any, Iterator, List, Optional
+
+import typer
+
+from .. import exitcodes
+
+app = typer.Typer(add_completion=False)
+
+_VALUE = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(\S.*)?$")
+
+
+def parse_value(text: str) -> Any:
+    """'8.7kPa' -> {'value': 8.7, 'unit': 'kPa'}; '7.26' -> 7.26; 'arterial' -> 'arterial'."""
+    m = _VALUE.match(text)
+    if not m:
+        return text.strip()
+    number = float(m.group(1))
+    return {"value": number, "unit": m.group(2).strip()} if m.group(2) else number
+
+
+def read_cases(source: str) -> Iterator[Any]:
+    """Cases from a .json file (an object or a list), JSON Lines, or '-' for stdin."""
+    if source == "-":
+        text = sys.stdin.read()
+        name = "<stdin>"
+    else:
+        path = Path(source)
+        try:
+            text = path.read_text(encoding="utf-8")
+        except OSError as exc:
+            raise typer.BadParameter(f"cannot read {source}: {exc.strerror}") from None
+        name = source
+    stripped = text.lstrip()
+    if not stripped:
+        raise typer.BadParameter(f"{name} is empty; expected a JSON object, a JSON list or JSON Lines")
+    if stripped[0] == "[" or (stripped[0] == "{" and not _looks_like_jsonl(stripped)):
+        try:
+            data = json.loads(text)
+        except json.JSONDecodeError as exc:
+            raise typer.BadParameter(f"{name}:{exc.lineno}:{exc.colno}: invalid JSON: {exc.msg}") from None
+        yield from (data if isinstance(data, list) else [data])
+        return
+    for lineno, line in enumerate(text.splitlines(), 1):
+        if not line.strip():
+            continue
+        try:
+            yield json.loads(line)
+        except json.JSONDecodeError as exc:
+            # a bad line is a rejected case, never a lost one
+            yield {"__unreadable__": f"{name}:{lineno}:{exc.colno}: invalid JSON: {exc.msg}"}
+
+
+def _looks_like_jsonl(text: str) -> bool:
+    lines = [ln for ln in text.splitlines() if ln.strip()]
+    if len(lines) < 2:
+        return False
+    try:
+        json.loads(lines[0])
+        return True
+    except json.JSONDecodeError:
+        return False
+
+
+@app.command()
+def interpret(
+    case_file: Optional[str] = typer.Argument(None, help="Case file (.json object or list, .jsonl), or '-' for stdin."),
+    rulebook: Optional[Path] = typer.Option(None, "--rulebook", "-r", help="Rulebook YAML (default: the shipped adult rulebook)."),
+    as_json: bool = typer.Option(False, "--json", help="Print the result contract as JSON (JSON Lines for several cases)."),
+    trace: bool = typer.Option(False, "--trace", help="Add the readable trace of every rule."),
+    ph: Optional[str] = typer.Option(None, "--ph", help="pH."),
+    pco2: Optional[str] = typer.Option(None, "--pco2", help="PCO2 in mmHg, or with a unit: 8.7kPa."),
+    po2: Optional[str] = typer.Option(None, "--po2", help="PO2 in mmHg, or with a unit: 10.2kPa."),
+    hco3: Optional[str] = typer.Option(None, "--hco3", help="HCO3 in mmol/L."),
+    na: Optional[str] = typer.Option(None, "--na", help="Sodium in mmol/L."),
+    k: Optional[str] = typer.Option(None, "--k", help="Potassium in mmol/L."),
+    cl: Optional[str] = typer.Option(None, "--cl", help="Chloride in mmol/L."),
+    albumin: Optional[str] = typer.Option(None, "--albumin", help="Albumin in g/L, or 3.1g/dL."),
+    lactate: Optional[str] = typer.Option(None, "--lactate", help="Lactate in mmol/L."),
+    fio2: Optional[str] = typer.Option(None, "--fio2", help="FiO2 as a fraction (0.21) or 40%."),
+    age: Optional[str] = typer.Option(None, "--age", help="Age in years."),
+    sample_type: Optional[str] = typer.Option(None, "--sample-type", help="arterial, venous, capillary, mixed_venous or unknown."),
+    chronicity: Optional[str] = typer.Option(None, "--chronicity", help="acute, chronic or unknown."),
+    set_: List[str] = typer.Option([], "--set", help="Any input: NAME=VALUE[UNIT], e.g. --set urea=7.1 --set temperature=38.5Cel."),
+) -> None:
+    """Interpret blood gas cases. Exit 0 interpreted or partial, 3 inconsistent, 4 rejected, 5 broken rulebook."""
+    from .. import interpret_many, load_rulebook
+    from ..errors import RulebookError
+    from ..reporters import render_problems, render_result
+
+    flags = {"ph": ph, "pco2": pco2, "po2": po2, "hco3": hco3, "na": na, "k": k, "cl": cl, "albumin": albumin,
+             "lactate": lactate, "fio2": fio2, "age": age, "sample_type": sample_type, "chronicity": chronicity}
+    given = {name: parse_value(v) for name, v in flags.items() if v is not None}
+    for item in set_:
+        name, sep, value = item.partition("=")
+        if not sep or not name.strip():
+            raise typer.BadParameter(f"--set {item!r}: expected NAME=VALUE, e.g. --set urea=7.1")
+        given[name.strip()] = parse_value(value)
+    if case_file is None and not given:
+        raise typer.BadParameter("give a case file, '-' for stdin, or analyte flags such as --ph 7.26 --pco2 25 --hco3 11")
+    if case_file is not None and given:
+        raise typer.BadParameter("give either a case file or analyte flags, not both")
+    try:
+        rb = load_rulebook(rulebook)
+    except RulebookError as exc:
+        typer.echo(render_problems(exc.problems, str(rulebook or "default rulebook")), err=True)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+    cases: Any = [given] if case_file is None else read_cases(case_file)
+    worst = exitcodes.OK
+    first = True
+    for result in interpret_many(rb, cases, trace=as_json or trace):
+        if as_json:
+            if not trace and not as_json:
+                result.pop("trace", None)
+            typer.echo(json.dumps(result, ensure_ascii=False))
+        else:
+            if not first:
+                typer.echo("\n" + "-" * 72 + "\n")
+            typer.echo(render_result(rb, result, trace=trace))
+        first = False
+        worst = max(worst, {"inconsistent": exitcodes.INCONSISTENT, "rejected": exitcodes.REJECTED}.get(result["status"], 0))
+    raise typer.Exit(worst)
