@@ -64,6 +64,7 @@ INPUT_CODES: dict[str, str] = {
     "input.bad_flag": "flag value is not true or false",
     "input.bad_case_id": "case_id must be a string",
     "input.bad_context": "context must be an object",
+    "input.unreadable": "the row or line could not be parsed at all",
 }
 
 # Codes of problems found while evaluating one case (never abort the case).

@@ -21,6 +21,9 @@ from .trace import RuleTrace
 
 SCHEMA_VERSION = "1.0"
 NOT_ANALYTES = ("case_id", "context")
+# A reader that could not parse a row passes {UNREADABLE: "file:line: what was wrong"} (plus
+# case_id when known) so that the row becomes a rejected result instead of disappearing.
+UNREADABLE = "__unreadable__"
 _TRUE = {"true", "yes", "1", "y"}
 _FALSE = {"false", "no", "0", "n"}
 
@@ -79,6 +82,9 @@ def read_case(rb: CompiledRulebook, case: Any) -> tuple[dict[str, Any], list[dic
         return values, [_error("", "input.not_an_object", f"a case must be a JSON object, not {type(case).__name__}",
                                "an object of input names to values")], None, None
     errors: list[dict[str, str]] = []
+    if UNREADABLE in case:
+        return values, [_error("", "input.unreadable", str(case[UNREADABLE]), "a JSON object per case")], \
+            case.get("case_id"), None
     case_id = case.get("case_id")
     if case_id is not None and not isinstance(case_id, str):
         errors.append(_error("case_id", "input.bad_case_id", f"case_id must be a string, not {type(case_id).__name__}",
@@ -367,11 +373,15 @@ def _headline(pres: dict[str, Any], status: str, disorders: list[str], qualifier
         if code in qualifiers:
             text += f" ({qlabels.get(qualifiers[code], qualifiers[code])})"
         parts.append(text)
-    said = " ".join(parts).lower()
+    said = set(_words(" ".join(parts)))
     state = [h for s, c, h in headlines if s == 1 and c == "ph_state"]
-    others = [h for s, c, h in headlines if s == 1 and c != "ph_state" and h.lower() not in said]
+    others = [h for s, c, h in headlines if s == 1 and c != "ph_state" and not set(_words(h)) <= said]
     main = " + ".join(parts) if parts else words.get("no_disorder", "No acid-base disorder identified")
     return "; ".join(_unique(critical + state + [main] + others))
+
+
+def _words(text: str) -> list[str]:
+    return [w for w in "".join(ch if ch.isalnum() else " " for ch in text.lower()).split() if w]
 
 
 def _unique(items: list[str]) -> list[str]:
