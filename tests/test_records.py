@@ -19,10 +19,12 @@ from typing import Any
 
 import pytest
 
+from gasrules.audit import (
+    Difference, compare_results, render_replay, render_verify, repair_log, replay_log, verify_log,
+)
 from gasrules.records import (
-    ZERO_SHA, DecisionLog, Difference, RecordConfig, RecordError, anchor_path,
-    apply_context_policy, canonical_json, compare_results, entry_hash, mask_value,
-    render_replay, render_verify, repair_log, replay_log, verify_log, _compose,
+    ZERO_SHA, DecisionLog, RecordConfig, RecordError, anchor_path, apply_context_policy,
+    canonical_json, entry_hash, mask_value, _compose,
 )
 
 SALT = "test-salt-0123456789abcdef"

@@ -12,7 +12,8 @@ import tempfile
 import time
 from pathlib import Path
 
-from gasrules.records import DecisionLog, RecordConfig, replay_log, verify_log
+from gasrules.audit import replay_log, verify_log
+from gasrules.records import DecisionLog, RecordConfig
 
 RULEBOOK = {"id": "bench", "version": "1.0.0", "sha256": "c3" * 32}
 
