@@ -573,9 +573,10 @@ def generate(plan: list[tuple[str, str]], inputs: dict[str, InputSpec], params: 
         else:
             r = by_rule[name]
             lines.append(f"    # rule {r.id}")
+            ev = _TraceSource(r, inputs, params, derived, cutpoints, rounded)
             if r.status == "suspended":
                 lines.append(f"    O.append({SUSPENDED})")
-                lines += _trace_code(r, inputs, params, derived, cutpoints, rounded)
+                lines.append(f"    if T is not None: T.append({ev.event('suspended')})")
                 continue
             codes = sorted(r.asserts)
             fire = [f"O.append({FIRED})"]
@@ -589,8 +590,10 @@ def generate(plan: list[tuple[str, str]], inputs: dict[str, InputSpec], params: 
             else:
                 lines.append("    if H:")
                 lines.append(f"        O.append({HALTED})")
+                lines.append(f"        if T is not None: T.append({ev.event('halted')})")
                 lines.append(f"    elif not ({avail}):")
             lines.append(f"        O.append({SKIPPED})")
+            lines.append(f"        if T is not None: T.append({ev.event('skipped_missing_input')})")
             lines.append("    else:")
             lines.append("        try:")
             cond = to_python(r.when.node, infos) if r.when is not None else "True"
@@ -600,74 +603,80 @@ def generate(plan: list[tuple[str, str]], inputs: dict[str, InputSpec], params: 
             lines.append(f"            E[{r.id!r}] = _describe(exc)")
             lines.append("        if c is None:")
             lines.append(f"            O.append({ERROR})")
+            lines.append(f"            if T is not None: T.append({ev.event('error')})")
             lines.append("        elif c:")
             for stmt in fire:
                 lines.append(f"            {stmt}")
+            lines.append(f"            if T is not None: T.append({ev.event('fired')})")
             lines.append("        else:")
             lines.append(f"            O.append({NOT_FIRED})")
-            lines += _trace_code(r, inputs, params, derived, cutpoints, rounded)
+            lines.append(f"            if T is not None: T.append({ev.event('not_fired')})")
     vals = ", ".join(f"v_{n}" for n in value_names)
     states = ", ".join(f"S_{n}" for n in value_names)
     lines.append(f"    return ({vals}{',' if len(value_names) == 1 else ''}), ({states}{',' if len(value_names) == 1 else ''}), E, O, F")
     return "\n".join(lines) + "\n", tuple(value_names)
 
 
-def _trace_code(r: RuleSpec, inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
-                derived: dict[str, DerivedSpec], cutpoints: tuple[CutPoint, ...], rounded: set[str]) -> list[str]:
-    """Source that appends this rule's trace event to T (see gasrules.trace.TraceEvent)."""
-    head = f'"rule": {r.id!r}, "step": {r.step!r}, "title": {r.title!r}'
-    out = ["    if T is not None:"]
-    if r.status == "suspended":
-        out.append(f'        T.append({{{head}, "outcome": "suspended", "reason": {r.suspended_reason!r}}})')
-        return out
-    reads = set(r.when.reads) if r.when else set()
-    reads |= set(r.needs)
-    values = [n for n in sorted(reads) if n in inputs or n in derived]
-    out.append("        o = O[-1]")
-    out.append(f'        ev = {{{head}, "outcome": _OUT[o]}}')
-    out.append(f"        if o != {HALTED}:")
-    out.append("            ev['reads'] = {" + ", ".join(f"{n!r}: v_{n}" for n in values) + "}")
-    prm = []
-    for n in sorted(reads):
-        p = params.get(n)
-        if p is None:
-            continue
-        if p.by_input:
-            prm.append(f'{n!r}: {{"value": p_{n}, "unit": {p.unit!r}, "set_by": {str(p.set_by)!r}, '
-                       f'"selected_by": {p.by_input + "="!r} + _str(v_{p.by_input})}}')
-        else:
-            prm.append(f"{n!r}: _PE[{n!r}]")
-    if prm:
-        out.append("            ev['parameters'] = {" + ", ".join(prm) + "}")
-    needs = [n for n in sorted(r.needs) if n in inputs or n in derived]
-    if needs:
+class _TraceSource:
+    """Source text of one rule's trace event for each outcome (see gasrules.trace.TraceEvent).
+    Events are dict literals built in the branch that decided the outcome."""
+
+    def __init__(self, r: RuleSpec, inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
+                 derived: dict[str, DerivedSpec], cutpoints: tuple[CutPoint, ...], rounded: set[str]):
+        self.r = r
+        self.head = f'"rule": {r.id!r}, "step": {r.step!r}, "title": {r.title!r}'
+        reads = set(r.when.reads) if r.when else set()
+        reads |= set(r.needs)
+        self.reads = "{" + ", ".join(f"{n!r}: v_{n}" for n in sorted(reads) if n in inputs or n in derived) + "}"
+        prm = []
+        for n in sorted(reads):
+            p = params.get(n)
+            if p is None:
+                continue
+            if p.by_input:
+                prm.append(f'{n!r}: {{"value": p_{n}, "unit": {p.unit!r}, "set_by": {str(p.set_by)!r}, '
+                           f'"selected_by": {p.by_input + "="!r} + _str(v_{p.by_input})}}')
+            else:
+                prm.append(f"{n!r}: _PE[{n!r}]")
+        self.params = ("{" + ", ".join(prm) + "}") if prm else ""
+        needs = [n for n in sorted(r.needs) if n in inputs or n in derived]
         pairs = ", ".join(f"({n!r}, v_{n})" for n in needs)
-        out.append(f"            if o == {SKIPPED}:")
-        out.append(f"                ev['missing'] = [n for n, v in ({pairs},) if v is None]")
-    out.append(f"            if o == {ERROR}:")
-    out.append(f"                ev['reason'] = E.get({r.id!r}, '')")
-    comps = []
-    for c in cutpoints:
-        if c.owner != r.id or c.field != "when" or c.quantity not in rounded:
-            continue
-        if c.threshold_kind == "parameter":
-            p = params[c.threshold]
-            tv = f"p_{c.threshold}" if p.by_input else repr(float(p.value))
-        elif c.threshold_kind == "constant":
-            tv = c.threshold
-        elif c.threshold in rounded:
-            tv = f"r_{c.threshold}"
-        else:
-            tv = f"v_{c.threshold}"
-        comps.append(f"_cmp({c.quantity!r}, v_{c.quantity}, r_{c.quantity}, {c.op!r}, {c.threshold!r}, {tv})")
-    if comps:
-        out.append(f"            if o <= {NOT_FIRED}:")
-        out.append("                ev['comparisons'] = [" + ", ".join(comps) + "]")
-    if r.asserts:
-        out.append(f"            if o == {FIRED}:")
-        out.append(f"                ev['asserted'] = {sorted(r.asserts)!r}")
-    out.append("        T.append(ev)")
-    return out
+        self.missing = f"[n for n, v in ({pairs},) if v is None]" if needs else "[]"
+        comps = []
+        for c in cutpoints:
+            if c.owner != r.id or c.field != "when" or c.quantity not in rounded:
+                continue
+            if c.threshold_kind == "parameter":
+                p = params[c.threshold]
+                tv = f"p_{c.threshold}" if p.by_input else repr(float(p.value))
+            elif c.threshold_kind == "constant":
+                tv = c.threshold
+            elif c.threshold in rounded:
+                tv = f"r_{c.threshold}"
+            else:
+                tv = f"v_{c.threshold}"
+            comps.append(f"_cmp({c.quantity!r}, v_{c.quantity}, r_{c.quantity}, {c.op!r}, {c.threshold!r}, {tv})")
+        self.comparisons = ("[" + ", ".join(comps) + "]") if comps else ""
+        self.asserted = repr(sorted(r.asserts)) if r.asserts else ""
+
+    def event(self, outcome: str) -> str:
+        parts = [self.head, f'"outcome": {outcome!r}']
+        if outcome == "suspended":
+            parts.append(f'"reason": {self.r.suspended_reason!r}')
+        if outcome in ("suspended", "halted"):
+            return "{" + ", ".join(parts) + "}"
+        parts.append(f'"reads": {self.reads}')
+        if self.params:
+            parts.append(f'"parameters": {self.params}')
+        if outcome == "skipped_missing_input":
+            parts.append(f'"missing": {self.missing}')
+        elif outcome == "error":
+            parts.append(f'"reason": E.get({self.r.id!r}, "")')
+        elif self.comparisons:
+            parts.append(f'"comparisons": {self.comparisons}')
+        if outcome == "fired" and self.asserted:
+            parts.append(f'"asserted": {self.asserted}')
+        return "{" + ", ".join(parts) + "}"
 
 
 def _cmp(quantity: str, value: Any, compared: Any, op: str, threshold: str, tvalue: Any) -> dict[str, Any]:

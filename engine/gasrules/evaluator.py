@@ -9,6 +9,7 @@ the rules that need it skip; a calculation error only makes that value not asses
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass, field
 from typing import Any, Mapping
 
@@ -42,7 +43,7 @@ class Static:
     conversions: dict[tuple[str, str], tuple[float, float]]
     known_units: frozenset[str]
     accepted_keys: str
-    finding_order: dict[int, int] = field(default_factory=dict)
+    templates: dict[tuple[str, int], tuple[Any, ...]] = field(default_factory=dict)
 
 
 def prepare(rb: CompiledRulebook) -> Static:
@@ -63,9 +64,84 @@ def prepare(rb: CompiledRulebook) -> Static:
     known = frozenset(U.UCUM_CODES) | {s.unit for s in rb.inputs.values()} | {
         a for s in rb.inputs.values() for a in s.alternatives}
     blank = {n: (s.default if s.kind != "number" else None) for n, s in rb.inputs.items()}
-    return Static(input_names=tuple(rb.inputs), blank=blank, identity=rb.identity, rule_traces=traces,
-                  value_index=value_index, reported=reported, step_rules=step_rules, conversions=conversions,
-                  known_units=known, accepted_keys=", ".join(sorted(rb.inputs)))
+    static = Static(input_names=tuple(rb.inputs), blank=blank, identity=rb.identity, rule_traces=traces,
+                    value_index=value_index, reported=reported, step_rules=step_rules, conversions=conversions,
+                    known_units=known, accepted_keys=", ".join(sorted(rb.inputs)))
+    for r in rb.rules:
+        for j, f in enumerate(r.findings):
+            static.templates[(r.id, j)] = _template(rb, static, f.text)
+    return static
+
+
+def _template(rb: CompiledRulebook, static: Static, text: str) -> tuple[Any, ...]:
+    """A finding text split into literal strings and placeholder renderers, built once.
+    A renderer is ("v", index, ...) for a derived value, ("i", name, ...) for an input, or a
+    literal string (a parameter without `by`, rendered now)."""
+    parts: list[Any] = []
+    pos = 0
+    for m in PLACEHOLDER.finditer(text):
+        parts.append(text[pos:m.start()])
+        pos = m.end()
+        name = m.group(1)
+        if name in static.value_index:
+            d = rb.derived[name]
+            parts.append(("v", static.value_index[name]) + _display_spec(rb, static, d.unit, d.precision))
+        elif name in rb.inputs:
+            spec = rb.inputs[name]
+            if spec.kind != "number":
+                parts.append(("c", name))
+            else:
+                parts.append(("i", name) + _display_spec(rb, static, spec.unit, spec.precision))
+        else:
+            p = rb.parameters[name]
+            if p.by_input:
+                parts.append(("p", p))
+            else:
+                parts.append(_param_text(rb, static, p, p.value))
+    parts.append(text[pos:])
+    return tuple(x for x in parts if x != "")
+
+
+def _display_spec(rb: CompiledRulebook, static: Static, unit: str, precision: int) -> tuple[float, float, float, int, str]:
+    """(factor, offset, scale, precision, label) turning a canonical value into displayed text."""
+    target = rb.display_units.get(unit)
+    factor, offset, to_unit, to_prec = 1.0, 0.0, unit, precision
+    if target is not None and (unit, target[0]) in static.conversions:
+        factor, offset = static.conversions[(unit, target[0])]
+        to_unit = target[0]
+        to_prec = target[1] if target[1] is not None else max(0, precision + round(math.log10(abs(factor))))
+    lab = U.label(to_unit)
+    return (factor, offset, 10.0 ** to_prec, to_prec, (" " + lab) if lab else "")
+
+
+def _param_text(rb: CompiledRulebook, static: Static, p: Any, value: Any) -> str:
+    if isinstance(value, str):
+        return value.replace("_", " ")
+    factor, offset, scale, prec, lab = _display_spec(rb, static, p.unit, _precision_of(value))
+    return f"{round_at((value - offset) / factor, scale):.{prec}f}{lab}"
+
+
+def _render(rb: CompiledRulebook, parts: tuple[Any, ...], inputs: dict[str, Any], vals: tuple[Any, ...]) -> str:
+    out = []
+    for part in parts:
+        if part.__class__ is str:
+            out.append(part)
+            continue
+        kind = part[0]
+        if kind == "v" or kind == "i":
+            v = vals[part[1]] if kind == "v" else inputs.get(part[1])
+            if v is None:
+                out.append("not available")
+            else:
+                _k, _n, factor, offset, scale, prec, lab = part
+                out.append(f"{round_at((v - offset) / factor, scale):.{prec}f}{lab}")
+        elif kind == "c":
+            v = inputs.get(part[1])
+            out.append("not given" if v is None else str(v).replace("_", " "))
+        else:
+            p = part[1]
+            out.append(_param_text(rb, rb._static, p, p.value_for(inputs.get(p.by_input))))
+    return "".join(out)
 
 
 # ----------------------------------------------------------------------------- reading a case
@@ -140,6 +216,12 @@ def _flag(raw: Any) -> bool | None:
 
 
 def _number(rb: CompiledRulebook, spec: Any, key: str, raw: Any) -> tuple[float | None, dict[str, str] | None]:
+    cls = raw.__class__
+    if cls is float or cls is int:  # the common case: a plain number in the canonical unit
+        value = float(raw)
+        lo, hi = spec.plausible_min, spec.plausible_max
+        if value == value and (lo is None or value >= lo) and (hi is None or value <= hi) and value - value == 0:
+            return value, None
     static: Static = rb._static
     unit = spec.unit
     accepted_units = ", ".join([spec.unit] + list(spec.alternatives))
@@ -225,7 +307,7 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
     headlines: list[tuple[int, str, str]] = []
     caution_texts: list[str] = []
     status = "interpreted"
-    lookup = _Lookup(rb, inputs, vals, static.value_index)
+    templates = static.templates
     for i, outcome in enumerate(outcomes):
         if outcome != FIRED:
             continue
@@ -240,8 +322,8 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
             if code in qualifiers and qualifiers[code] != qual:
                 conflicts.setdefault(code, [qualifiers[code]]).append(qual)
             qualifiers.setdefault(code, qual)
-        for f in rule.findings:
-            text = PLACEHOLDER.sub(lookup.render, f.text) if "{" in f.text else f.text
+        for j, f in enumerate(rule.findings):
+            text = _render(rb, templates[(rule.id, j)], inputs, vals)
             findings.append({"code": f.code, "category": f.category, "severity": f.severity, "text": text,
                              "rule": rule.id})
             if f.headline:
@@ -270,34 +352,6 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
 
 def _round(v: float, scale: float) -> float:
     return round_at(v, scale)
-
-
-class _Lookup:
-    """Renders {name} placeholders: the value at its precision, in display units, with its unit."""
-
-    def __init__(self, rb: CompiledRulebook, inputs: dict[str, Any], vals: tuple[Any, ...], index: dict[str, int]):
-        self.rb, self.inputs, self.vals, self.index = rb, inputs, vals, index
-
-    def render(self, m: Any) -> str:
-        name = m.group(1)
-        rb = self.rb
-        if name in self.index:
-            d = rb.derived[name]
-            return format_quantity(rb, self.vals[self.index[name]], d.unit, d.precision)
-        if name in rb.inputs:
-            spec = rb.inputs[name]
-            v = self.inputs.get(name)
-            if spec.kind != "number":
-                return "not given" if v is None else str(v).replace("_", " ")
-            return format_quantity(rb, v, spec.unit, spec.precision)
-        p = rb.parameters[name]
-        if p.by_input:
-            value = p.value_for(self.inputs.get(p.by_input))
-        else:
-            value = p.value
-        if isinstance(value, str):
-            return value.replace("_", " ")
-        return format_quantity(rb, value, p.unit, _precision_of(value))
 
 
 def _precision_of(value: float) -> int:
@@ -335,7 +389,9 @@ def _not_assessed(rb: CompiledRulebook, static: Static, outcomes: list[int], sta
     traces = static.rule_traces
     halted: list[str] = []
     for step, idx in static.step_rules.items():
-        live = [i for i in idx if outcomes[i] not in (4,)]  # suspended rules do not count
+        if any(outcomes[i] < 2 or outcomes[i] == 5 for i in idx):  # some rule in the step was decided
+            continue
+        live = [i for i in idx if outcomes[i] != 4]  # suspended rules do not count
         if not live:
             continue
         if all(outcomes[i] == HALTED for i in live):
@@ -380,8 +436,11 @@ def _headline(pres: dict[str, Any], status: str, disorders: list[str], qualifier
     return "; ".join(_unique(critical + state + [main] + others))
 
 
+_WORD = re.compile(r"[a-z0-9]+")
+
+
 def _words(text: str) -> list[str]:
-    return [w for w in "".join(ch if ch.isalnum() else " " for ch in text.lower()).split() if w]
+    return _WORD.findall(text.lower())
 
 
 def _unique(items: list[str]) -> list[str]:
