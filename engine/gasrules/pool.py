@@ -1,0 +1,138 @@
+"""An ordered worker pool over processes, for streams of chunks (batch, impact replay).
+
+    from gasrules.pool import OrderedPool, chunked
+
+    def work(rulebook, rows):                    # a module-level function: (payload, chunk) -> result
+        return [interpret_row(rulebook, r) for r in rows]
+
+    with OrderedPool(work, payload=rb, workers=2) as pool:
+        for results in pool.map(chunked(rows, 500)):   # results in input order, chunk by chunk
+            ...
+
+Guarantees:
+
+* **order**: results come back in the order the chunks went in, whatever finishes first;
+* **same answer for 1 and N workers**: ``workers=1`` calls ``fn`` in this process with the same
+  payload; N workers call the same ``fn`` on an unpickled copy (a CompiledRulebook relinks
+  itself when unpickled), so a pure ``fn`` gives identical results;
+* **payload sent once**: the payload is pickled once per worker process when it starts, never
+  per chunk;
+* **bounded memory**: at most ``window`` chunks (default 2 x workers + 2) are in flight or
+  waiting to be consumed; the input iterator is read only as fast as results are taken;
+* **failures surface**: an exception in ``fn`` is raised from :meth:`OrderedPool.map` at that
+  chunk's place in the order; a worker that dies raises :class:`PoolError`.
+
+Workers start with the ``spawn`` method by default (safe when the parent has threads, as a
+Dask client or a progress thread does); the caller's ``__main__`` must be import-safe.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from concurrent.futures import Future, ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
+from itertools import islice
+from typing import Any, Callable, Generic, Iterable, Iterator, TypeVar
+
+__all__ = ["OrderedPool", "PoolError", "chunked", "imap_ordered"]
+
+P = TypeVar("P")
+C = TypeVar("C")
+R = TypeVar("R")
+
+_PAYLOAD: Any = None
+
+
+class PoolError(RuntimeError):
+    """A worker process died (killed, out of memory) before returning its chunk."""
+
+
+def _init_worker(payload: Any) -> None:
+    global _PAYLOAD
+    _PAYLOAD = payload
+
+
+def _call(fn: Callable[[Any, Any], Any], chunk: Any) -> Any:
+    return fn(_PAYLOAD, chunk)
+
+
+def chunked(items: Iterable[C], size: int) -> Iterator[list[C]]:
+    """Consecutive lists of ``size`` items (the last may be shorter), read lazily."""
+    if size < 1:
+        raise ValueError(f"chunk size must be 1 or more, got {size}")
+    it = iter(items)
+    while True:
+        chunk = list(islice(it, size))
+        if not chunk:
+            return
+        yield chunk
+
+
+class OrderedPool(Generic[P, C, R]):
+    """Apply ``fn(payload, chunk)`` to a stream of chunks on ``workers`` processes, in order."""
+
+    def __init__(self, fn: Callable[[P, C], R], payload: P = None, workers: int = 1, *,
+                 window: int | None = None, start_method: str = "spawn") -> None:
+        if workers < 1:
+            raise ValueError(f"workers must be 1 or more, got {workers}")
+        self.fn, self.payload, self.workers = fn, payload, int(workers)
+        self.window = window if window is not None else 2 * self.workers + 2
+        if self.window < 1:
+            raise ValueError(f"window must be 1 or more, got {self.window}")
+        self.start_method = start_method
+        self._executor: ProcessPoolExecutor | None = None
+
+    def __enter__(self) -> "OrderedPool[P, C, R]":
+        self.start()
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+    def start(self) -> None:
+        if self.workers > 1 and self._executor is None:
+            import multiprocessing as mp
+
+            self._executor = ProcessPoolExecutor(
+                self.workers, mp_context=mp.get_context(self.start_method),
+                initializer=_init_worker, initargs=(self.payload,))
+
+    def close(self) -> None:
+        if self._executor is not None:
+            self._executor.shutdown(wait=True, cancel_futures=True)
+            self._executor = None
+
+    def map(self, chunks: Iterable[C]) -> Iterator[R]:
+        """Results of ``fn`` per chunk, in input order."""
+        if self.workers == 1:
+            for chunk in chunks:
+                yield self.fn(self.payload, chunk)
+            return
+        self.start()
+        assert self._executor is not None
+        pending: deque[Future[R]] = deque()
+        try:
+            for chunk in chunks:
+                pending.append(self._executor.submit(_call, self.fn, chunk))
+                if len(pending) >= self.window:
+                    yield self._result(pending.popleft())
+            while pending:
+                yield self._result(pending.popleft())
+        finally:
+            for f in pending:
+                f.cancel()
+
+    @staticmethod
+    def _result(future: "Future[R]") -> R:
+        try:
+            return future.result()
+        except BrokenProcessPool as exc:
+            raise PoolError("a worker process died before returning its chunk "
+                            "(killed or out of memory); no partial output was kept") from exc
+
+
+def imap_ordered(fn: Callable[[P, C], R], chunks: Iterable[C], payload: P = None,
+                 workers: int = 1, **options: Any) -> Iterator[R]:
+    """One-shot form of :class:`OrderedPool`: start, map in order, shut down."""
+    with OrderedPool(fn, payload, workers, **options) as pool:
+        yield from pool.map(chunks)
