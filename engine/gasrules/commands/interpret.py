@@ -121,7 +121,9 @@ def interpret(
     cases: Any = [given] if case_file is None else read_cases(case_file)
     worst = exitcodes.OK
     first = True
+    counts: dict[str, int] = {}
     for result in interpret_many(rb, cases, trace=as_json or trace):
+        counts[result["status"]] = counts.get(result["status"], 0) + 1
         if as_json:
             if not trace and not as_json:
                 result.pop("trace", None)
@@ -132,4 +134,9 @@ def interpret(
             typer.echo(render_result(rb, result, trace=trace))
         first = False
         worst = max(worst, {"inconsistent": exitcodes.INCONSISTENT, "rejected": exitcodes.REJECTED}.get(result["status"], 0))
-    raise typer.Exit(worst)
+    total = sum(counts.values())
+    if total == 1:
+        raise typer.Exit(worst)  # one case: the exit code tells its status
+    # several cases: each status is in the output; the run itself succeeded
+    summary = ", ".join(f"{n} {s}" for s, n in sorted(counts.items()))
+    typer.echo(f"{total} cases: {summary}", err=True)
