@@ -75,6 +75,31 @@ def _looks_like_jsonl(text: str) -> bool:
         return False
 
 
+def _runtime(settings_file: Optional[Path], rulebook: Optional[Path]) -> Any:
+    """A Runtime when site settings apply (a --settings file or GASRULES_* variables), else None,
+    so that the plain path imports nothing more than the engine."""
+    import os
+
+    if settings_file is None and not any(k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in os.environ):
+        return None
+    from ..errors import RulebookError
+    from ..reporters import render_problems
+    from ..runtime import Runtime, RuntimeRefusal
+    from ..settings import SettingsError, load_settings
+
+    try:
+        return Runtime.from_settings(load_settings(settings_file), rulebook)
+    except RulebookError as exc:
+        typer.echo(render_problems(exc.problems, str(rulebook or "rulebook")), err=True)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+    except RuntimeRefusal as exc:
+        typer.echo(f"gasrules: {exc}", err=True)
+        raise typer.Exit(exitcodes.REFUSED)
+    except SettingsError as exc:
+        typer.echo(f"gasrules: {exc}", err=True)
+        raise typer.Exit(exitcodes.USAGE)
+
+
 @app.command()
 def interpret(
     case_file: Optional[str] = typer.Argument(None, help="Case file (.json object or list, .jsonl), or '-' for stdin."),
@@ -95,6 +120,7 @@ def interpret(
     sample_type: Optional[str] = typer.Option(None, "--sample-type", help="arterial, venous, capillary, mixed_venous or unknown."),
     chronicity: Optional[str] = typer.Option(None, "--chronicity", help="acute, chronic or unknown."),
     set_: List[str] = typer.Option([], "--set", help="Any input: NAME=VALUE[UNIT], e.g. --set urea=7.1 --set temperature=38.5Cel."),
+    settings: Optional[Path] = typer.Option(None, "--settings", help="Site settings (strict mode, decision log, shadow candidate); GASRULES_* variables also apply."),
 ) -> None:
     """Interpret blood gas cases. Exit 0 interpreted or partial, 3 inconsistent, 4 rejected, 5 broken rulebook."""
     from .. import interpret_many, load_rulebook
@@ -113,16 +139,22 @@ def interpret(
         raise typer.BadParameter("give a case file, '-' for stdin, or analyte flags such as --ph 7.26 --pco2 25 --hco3 11")
     if case_file is not None and given:
         raise typer.BadParameter("give either a case file or analyte flags, not both")
-    try:
-        rb = load_rulebook(rulebook)
-    except RulebookError as exc:
-        typer.echo(render_problems(exc.problems, str(rulebook or "default rulebook")), err=True)
-        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
     cases: Any = [given] if case_file is None else read_cases(case_file)
+    runtime = _runtime(settings, rulebook)
+    if runtime is not None:
+        rb = runtime.rulebook
+        results = runtime.interpret_many(cases, trace=as_json or trace)
+    else:
+        try:
+            rb = load_rulebook(rulebook)
+        except RulebookError as exc:
+            typer.echo(render_problems(exc.problems, str(rulebook or "default rulebook")), err=True)
+            raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+        results = interpret_many(rb, cases, trace=as_json or trace)
     worst = exitcodes.OK
     first = True
     counts: dict[str, int] = {}
-    for result in interpret_many(rb, cases, trace=as_json or trace):
+    for result in results:
         counts[result["status"]] = counts.get(result["status"], 0) + 1
         if as_json:
             if not trace and not as_json:
@@ -134,6 +166,8 @@ def interpret(
             typer.echo(render_result(rb, result, trace=trace))
         first = False
         worst = max(worst, {"inconsistent": exitcodes.INCONSISTENT, "rejected": exitcodes.REJECTED}.get(result["status"], 0))
+    if runtime is not None:
+        runtime.close()
     total = sum(counts.values())
     if total == 1:
         raise typer.Exit(worst)  # one case: the exit code tells its status
