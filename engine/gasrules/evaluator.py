@@ -26,6 +26,7 @@ NOT_ANALYTES = ("case_id", "context")
 # case_id when known) so that the row becomes a rejected result instead of disappearing.
 UNREADABLE = "__unreadable__"
 _TRUE = {"true", "yes", "1", "y"}
+_STATUS_RANK = {"interpreted": 0, "partial": 1, "inconsistent": 2}
 _FALSE = {"false", "no", "0", "n"}
 
 
@@ -44,6 +45,7 @@ class Static:
     known_units: frozenset[str]
     accepted_keys: str
     templates: dict[tuple[str, int], tuple[Any, ...]] = field(default_factory=dict)
+    value_needs: tuple[tuple[int, str, tuple[str, ...], tuple[str, ...]], ...] = ()  # (index, name, inputs, derived)
 
 
 def prepare(rb: CompiledRulebook) -> Static:
@@ -70,6 +72,20 @@ def prepare(rb: CompiledRulebook) -> Static:
     for r in rb.rules:
         for j, f in enumerate(r.findings):
             static.templates[(r.id, j)] = _template(rb, static, f.text)
+    closure: dict[str, set[str]] = {}
+
+    def inputs_of(name: str, seen: frozenset[str] = frozenset()) -> set[str]:
+        if name not in closure:
+            acc: set[str] = set()
+            for n in rb.derived[name].needs:
+                if n in rb.inputs:
+                    acc.add(n)
+                elif n in rb.derived and n not in seen:
+                    acc |= inputs_of(n, seen | {name})
+            closure[name] = acc
+        return closure[name]
+
+    static.value_needs = tuple((i, name, tuple(sorted(inputs_of(name))), ()) for i, name, _s, _u in reported)
     return static
 
 
@@ -313,7 +329,7 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
             continue
         rt = rule_traces[i]
         rule = rt.rule
-        if rule.result_status:
+        if rule.result_status and _STATUS_RANK[rule.result_status] > _STATUS_RANK[status]:
             status = rule.result_status
         for code in rule.disorders:
             if code not in disorders:
@@ -402,6 +418,15 @@ def _not_assessed(rb: CompiledRulebook, static: Static, outcomes: list[int], sta
                               for n in traces[i].missing(inputs, vals, static.value_index)})
             out.append({"what": rb.steps[step].label, "why": "needs " + ", ".join(missing),
                         "core": rb.steps[step].core})
+    groups: dict[str, list[str]] = {}
+    for i, name, need_inputs, need_derived in static.value_needs:
+        if states[i] != MISSING:
+            continue
+        missing = [n for n in need_inputs if inputs.get(n) is None]
+        groups.setdefault(", ".join(missing), []).append(name)
+    for why, names in groups.items():
+        out.append({"what": ", ".join(names), "core": False,
+                    "why": "needs " + why if why else "a value it depends on does not apply to this case"})
     if halted:
         stoppers = [traces[i].rule.id for i, o in enumerate(outcomes) if o == FIRED and traces[i].rule.stop]
         out.insert(0, {"what": ", ".join(halted), "core": False,
