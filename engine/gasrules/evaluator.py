@@ -320,6 +320,8 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
     disorders: list[str] = []
     qualifiers: dict[str, str] = {}
     conflicts: dict[str, list[str]] = {}
+    qual_from: dict[str, str] = {}
+    qual_where: dict[str, Any] = {}
     headlines: list[tuple[int, str, str]] = []
     caution_texts: list[str] = []
     status = "interpreted"
@@ -336,8 +338,10 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
                 disorders.append(code)
         for code, qual in rule.qualifiers.items():
             if code in qualifiers and qualifiers[code] != qual:
-                conflicts.setdefault(code, [qualifiers[code]]).append(qual)
-            qualifiers.setdefault(code, qual)
+                conflicts.setdefault(code, [f"{qualifiers[code]} ({qual_from[code]}, {qual_where[code]})"]).append(
+                    f"{qual} ({rule.id}, {rule.location})")
+            if code not in qualifiers:
+                qualifiers[code], qual_from[code], qual_where[code] = qual, rule.id, rule.location
         for j, f in enumerate(rule.findings):
             text = _render(rb, templates[(rule.id, j)], inputs, vals)
             findings.append({"code": f.code, "category": f.category, "severity": f.severity, "text": text,
@@ -350,7 +354,7 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
     for code, quals in conflicts.items():
         qualifiers.pop(code, None)
         not_assessed.append({"what": f"qualifier of {code}",
-                             "why": "eval.conflict: rules asserted " + " and ".join(sorted(set(quals)))})
+                             "why": "eval.conflict: rules asserted " + " and ".join(quals)})
     if status == "inconsistent":
         disorders, qualifiers = [], {}
     elif status == "interpreted" and any(n.get("core") for n in not_assessed):
