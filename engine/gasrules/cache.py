@@ -13,6 +13,7 @@ import hashlib
 import os
 import pickle
 import re
+import sys
 import tempfile
 from pathlib import Path
 
@@ -34,7 +35,7 @@ def cache_dir() -> Path:
 
 
 def cache_key(path: str | Path) -> str | None:
-    h = hashlib.sha256(__version__.encode())
+    h = hashlib.sha256(__version__.encode() + sys.version.encode())  # marshalled code is per Python
     here = Path(__file__).resolve().parent
     try:
         for name in _SHAPERS:

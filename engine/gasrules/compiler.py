@@ -12,6 +12,7 @@ import ast
 import hashlib
 import heapq
 import json
+import marshal
 import re
 from typing import Any, Iterable
 
@@ -694,7 +695,15 @@ def link(compiled: CompiledRulebook) -> None:
     g["_PE"] = {n: {"value": p.value, "unit": p.unit, "set_by": str(p.set_by)}
                 for n, p in compiled.parameters.items() if not p.by_input}
     g.update(_OUT=OUTCOMES, _cmp=_cmp, _str=str)
-    code = compile(compiled.source, f"<rulebook {compiled.id}@{compiled.version}>", "exec")
+    code = None
+    if compiled._code is not None:
+        try:
+            code = marshal.loads(compiled._code)
+        except (ValueError, EOFError, TypeError):
+            code = None
+    if code is None:
+        code = compile(compiled.source, f"<rulebook {compiled.id}@{compiled.version}>", "exec")
+        compiled._code = marshal.dumps(code)
     exec(code, g)  # noqa: S102 - source generated from checked syntax trees; no builtins
     compiled._function = g["evaluate"]
     from .evaluator import prepare  # the evaluator's per-rulebook tables

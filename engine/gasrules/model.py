@@ -128,6 +128,7 @@ class CompiledRulebook:
     engine_version: str = ""
     _function: Callable[..., Any] | None = field(default=None, repr=False)
     _static: Any = field(default=None, repr=False)
+    _code: bytes | None = field(default=None, repr=False)   # marshalled code of `source` (same Python only)
 
     @property
     def id(self) -> str:
