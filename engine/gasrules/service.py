@@ -1,0 +1,589 @@
+"""`gasrules serve`: the HTTP service (standard library only: http.server, threads).
+
+Endpoints (all JSON; errors are ``{"error": {"code", "message", "field"?}}``):
+
+* ``POST /interpret``: one case in, the result contract out. A FHIR body (a Bundle, an
+  Observation or a list of resources) or ``?fhir=1`` gives a FHIR Bundle out (the interpretation
+  Observation, DiagnosticReport, Device, Provenance, and an OperationOutcome with any reading
+  issue). ``?trace=0`` leaves the trace out.
+* ``POST /interpret/batch``: a JSON array, or JSON Lines (``application/x-ndjson``); N cases in,
+  N results out in the same order and format; a row that is not JSON, or not reached before the
+  timeout, comes back as a rejected result naming the line and the problem.
+* ``GET /health``: rulebook id, version and sha256, engine version, settings in force.
+* ``GET /openapi.json``: the OpenAPI 3.1 description (:mod:`gasrules.openapi`).
+* ``GET /cds-services``, ``POST /cds-services/{id}``, ``POST /cds-services/{id}/feedback``:
+  CDS Hooks (:mod:`gasrules.cdshooks`), guarded by the JWT check of :mod:`gasrules.cdsauth`
+  when a key configuration is given.
+
+Limits: bodies above ``max_body`` bytes get 413 (before they are read); a body not received
+within ``timeout`` seconds gets 408; a batch above ``max_batch`` cases gets 413; a batch still
+running at ``timeout`` answers the remaining rows as rejected (N in, N out). Status codes: 400
+bad JSON or request, 401/403 bearer check, 404 unknown path or CDS service, 405 method, 411 no
+Content-Length, 412 CDS prefetch missing, 413 too large, 415 content type, 500 internal.
+
+Interpretation goes through an :class:`Interpreter`: the plain engine today; the change-control
+``Runtime`` (strict mode, decision records, shadow mode) plugs in at :func:`make_interpreter`.
+"""
+
+from __future__ import annotations
+
+import sys
+import threading
+import time
+import traceback
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, timedelta
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from typing import Any, Protocol
+from urllib.parse import parse_qs, urlsplit
+
+import orjson
+
+from . import __version__, cdshooks
+from .cdsauth import AuthError, TokenVerifier
+
+__all__ = ["App", "EngineInterpreter", "Interpreter", "Response", "ServiceConfig",
+           "make_interpreter", "make_server"]
+
+JSON = "application/json"
+FHIR_JSON = "application/fhir+json"
+NDJSON = "application/x-ndjson"
+LINES_TYPES = (NDJSON, "application/jsonl", "application/jsonlines", "application/json-lines")
+DRAIN_LIMIT = 16 * 1024 * 1024   # an oversized body up to this size is read and dropped
+
+
+@dataclass
+class ServiceConfig:
+    host: str = "127.0.0.1"
+    port: int = 8080
+    rulebook: str | None = None
+    cds_keys: str | None = None
+    max_body: int = 1_048_576
+    timeout: float = 10.0
+    max_batch: int = 10_000
+    feedback_log: str = "cds-feedback.jsonl"
+    access_log: bool = True
+    cds_window_minutes: float = 0.0
+
+
+@dataclass
+class Response:
+    status: int
+    body: bytes
+    content_type: str = JSON
+    headers: dict[str, str] = field(default_factory=dict)
+
+
+class HttpError(Exception):
+    def __init__(self, status: int, code: str, message: str, field: str = "",
+                 headers: Mapping[str, str] | None = None) -> None:
+        super().__init__(message)
+        self.status, self.code, self.message, self.field = status, code, message, field
+        self.headers = dict(headers or {})
+
+
+# ============================================================================ interpretation
+class Interpreter(Protocol):
+    """What the service needs from the engine (the seam for the change-control Runtime)."""
+
+    rulebook: Any
+
+    def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]: ...
+
+    def describe(self) -> dict[str, Any]: ...
+
+
+class EngineInterpreter:
+    """The plain engine: no strict mode, no decision records, no shadow rulebook."""
+
+    def __init__(self, rulebook: Any) -> None:
+        self.rulebook = rulebook
+
+    def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
+        from .evaluator import interpret
+
+        return interpret(self.rulebook, case, trace)
+
+    def describe(self) -> dict[str, Any]:
+        return {"mode": "engine", "strict": False, "decision_records": False, "shadow": None}
+
+
+def make_interpreter(config: ServiceConfig) -> Interpreter:
+    """The interpreter for a configuration. Raises RulebookError for a broken rulebook."""
+    import gasrules
+
+    return EngineInterpreter(gasrules.load_rulebook(config.rulebook))
+
+
+# ============================================================================ helpers
+def dumps(obj: Any) -> bytes:
+    return orjson.dumps(obj, option=orjson.OPT_SERIALIZE_NUMPY)
+
+
+def _error_body(status: int, code: str, message: str, field: str = "",
+                cds: bool = False) -> bytes:
+    err: dict[str, Any] = {"code": code, "message": message}
+    if field:
+        err["field"] = field
+    body: dict[str, Any] = {"error": err}
+    if cds:   # CDS Hooks 3.0: an OperationOutcome on non-2xx responses
+        issue: dict[str, Any] = {"severity": "error",
+                                 "code": _OUTCOME_CODES.get(status, "processing"),
+                                 "details": {"text": message}, "diagnostics": code}
+        if field:
+            issue["expression"] = [field]
+        body["operationOutcome"] = {"resourceType": "OperationOutcome", "issue": [issue]}
+    return dumps(body)
+
+
+_OUTCOME_CODES = {400: "invalid", 401: "login", 403: "forbidden", 404: "not-found",
+                  405: "not-supported", 408: "timeout", 411: "structure", 412: "incomplete",
+                  413: "too-long", 415: "not-supported", 500: "exception", 503: "transient"}
+
+
+def _media_type(headers: Mapping[str, str]) -> tuple[str, str | None]:
+    raw = headers.get("content-type") or ""
+    kind, _, params = raw.partition(";")
+    charset = None
+    for p in params.split(";"):
+        k, _, v = p.strip().partition("=")
+        if k.lower() == "charset":
+            charset = v.strip().strip('"').lower()
+    return kind.strip().lower(), charset
+
+
+def _require_type(headers: Mapping[str, str], accepted: tuple[str, ...]) -> str:
+    kind, charset = _media_type(headers)
+    if kind not in accepted:
+        raise HttpError(415, "http.content_type",
+                        f"Content-Type {kind or '(none)'!r} is not accepted here; send one of: "
+                        f"{', '.join(accepted)}", "Content-Type")
+    if charset not in (None, "utf-8", "utf8"):
+        raise HttpError(415, "http.charset", f"charset {charset!r} is not accepted; use utf-8",
+                        "Content-Type")
+    return kind
+
+
+def _parse_json(body: bytes, where: str = "body") -> Any:
+    try:
+        return orjson.loads(body)
+    except orjson.JSONDecodeError as exc:
+        raise HttpError(400, "json.invalid", f"{where} is not valid JSON: {exc.msg} at line "
+                        f"{exc.lineno} column {exc.colno}", where) from None
+
+
+def _flag(query: Mapping[str, list[str]], name: str, default: bool) -> bool:
+    values = query.get(name)
+    if not values:
+        return default
+    value = values[-1].lower()
+    if value in ("1", "true", "yes", "on", ""):
+        return True
+    if value in ("0", "false", "no", "off"):
+        return False
+    raise HttpError(400, "http.query", f"query parameter {name}={values[-1]!r} must be 1 or 0",
+                    name)
+
+
+def _is_fhir(body: Any) -> bool:
+    if isinstance(body, dict):
+        return "resourceType" in body
+    return isinstance(body, list) and bool(body) and all(
+        isinstance(r, dict) and "resourceType" in r for r in body)
+
+
+# ============================================================================ the application
+Handler = Callable[["App", "Request"], Response]
+
+
+@dataclass
+class Request:
+    method: str
+    path: str
+    query: dict[str, list[str]]
+    headers: dict[str, str]        # lower-case names
+    body: bytes
+    params: dict[str, str] = field(default_factory=dict)
+    started: float = field(default_factory=time.monotonic)
+
+
+class App:
+    """Routing and handlers; independent of the socket layer (``handle`` is a plain call)."""
+
+    def __init__(self, config: ServiceConfig, interpreter: Interpreter, *,
+                 verifier: TokenVerifier | None = None) -> None:
+        self.config = config
+        self.interpreter = interpreter
+        self.rulebook = interpreter.rulebook
+        self.verifier = verifier
+        self.started_at = time.time()
+        self.cards = cdshooks.CardStore()
+        self.feedback_log = cdshooks.FeedbackLog(config.feedback_log)
+        for rec in self.feedback_log.cards(self.cards.limit):
+            self.cards.put(rec)
+        from .evaluator import interpret as _engine_interpret
+
+        # template for rows that never reach the interpreter (not JSON, past the deadline)
+        self._rejected = _engine_interpret(self.rulebook, "", False)
+        self._openapi: bytes | None = None
+        self._lock = threading.Lock()
+
+    # -- routing
+    ROUTES: tuple[tuple[tuple[str, ...], dict[str, str]], ...] = (
+        (("interpret",), {"POST": "interpret"}),
+        (("interpret", "batch"), {"POST": "batch"}),
+        (("health",), {"GET": "health"}),
+        (("openapi.json",), {"GET": "openapi"}),
+        (("cds-services",), {"GET": "cds_discovery"}),
+        (("cds-services", "{id}"), {"POST": "cds_service"}),
+        (("cds-services", "{id}", "feedback"), {"POST": "cds_feedback"}),
+    )
+
+    def route(self, path: str) -> tuple[dict[str, str], dict[str, str]] | None:
+        parts = tuple(p for p in path.split("/") if p)
+        for pattern, methods in self.ROUTES:
+            if len(pattern) != len(parts):
+                continue
+            params = {}
+            for want, got in zip(pattern, parts, strict=True):
+                if want.startswith("{"):
+                    params[want.strip("{}")] = got
+                elif want != got:
+                    break
+            else:
+                return methods, params
+        return None
+
+    def handle(self, req: Request) -> Response:
+        cds = req.path.startswith("/cds-services")
+        try:
+            found = self.route(req.path)
+            if found is None:
+                raise HttpError(404, "http.not_found", f"no endpoint at {req.path}; see "
+                                "/openapi.json", "path")
+            methods, req.params = found
+            name = methods.get(req.method)
+            if name is None:
+                raise HttpError(405, "http.method", f"{req.method} is not allowed on {req.path}; "
+                                f"allowed: {', '.join(methods)}", "method",
+                                {"Allow": ", ".join(methods)})
+            return getattr(self, f"h_{name}")(req)
+        except HttpError as exc:
+            return Response(exc.status, _error_body(exc.status, exc.code, exc.message, exc.field,
+                                                    cds), headers=exc.headers)
+        except cdshooks.CdsError as exc:
+            return Response(exc.status, _error_body(exc.status, exc.code, exc.message,
+                                                    exc.field, True))
+        except AuthError as exc:
+            headers = {"WWW-Authenticate": f'Bearer error="invalid_token", '
+                                           f'error_description="{exc.code}"'} \
+                if exc.status == 401 else {}
+            if exc.status == 503:
+                headers["Retry-After"] = "5"
+            return Response(exc.status, _error_body(exc.status, exc.code, exc.message, "",
+                                                    True), headers=headers)
+        except Exception:  # noqa: BLE001 - any bug becomes a JSON 500, the trace goes to the log
+            traceback.print_exc(file=sys.stderr)
+            return Response(500, _error_body(500, "internal", "internal error; the service "
+                                             "log has the details", "", cds))
+
+    # -- JSON API
+    def h_interpret(self, req: Request) -> Response:
+        _require_type(req.headers, (JSON, FHIR_JSON))
+        body = _parse_json(req.body)
+        trace = _flag(req.query, "trace", True)
+        want_fhir = _flag(req.query, "fhir", False)
+        if _is_fhir(body):
+            return self._interpret_fhir(body, trace, _flag(req.query, "preliminary", False))
+        if isinstance(body, list):
+            raise HttpError(400, "request.not_a_case", "expected one case (a JSON object) or a "
+                            "FHIR Bundle; send lists of cases to /interpret/batch", "body")
+        result = self.interpreter.interpret(body, trace)
+        if want_fhir:
+            bundle = self._fhir_bundle(result, {}, None, None, ())
+            return Response(200, dumps(bundle), FHIR_JSON)
+        return Response(200, dumps(result))
+
+    def _interpret_fhir(self, body: Any, trace: bool, preliminary: bool) -> Response:
+        from .fhir import case_from_fhir
+
+        read = case_from_fhir(body, self.rulebook.inputs, allow_preliminary=preliminary)
+        result = self.interpreter.interpret(read.case, trace)
+        refs = {k: v for k, v in read.sources.items() if "/" in v or v.startswith("urn:")}
+        bundle = self._fhir_bundle(result, refs, read.subject, read.effective, read.issues)
+        return Response(200, dumps(bundle), FHIR_JSON)
+
+    def _fhir_bundle(self, result: dict[str, Any], refs: Mapping[str, str], subject: str | None,
+                     effective: str | None, issues: Any) -> dict[str, Any]:
+        from .fhir import result_to_fhir
+
+        bundle = result_to_fhir(result, refs, rulebook_info=result.get("rulebook") or
+                                self.rulebook, subject=subject, effective=effective)
+        if issues:
+            severity = {"error": "error", "warning": "warning", "notice": "information"}
+            bundle["entry"].append({"fullUrl": f"urn:uuid:{_uuid()}", "resource": {
+                "resourceType": "OperationOutcome",
+                "issue": [{"severity": severity[i.severity],
+                           "code": "not-supported" if i.code.startswith("code.") else "invalid",
+                           "details": {"text": i.message}, "diagnostics": i.code,
+                           "expression": [i.path]} for i in issues]}})
+        return bundle
+
+    def h_batch(self, req: Request) -> Response:
+        kind = _require_type(req.headers, (JSON,) + LINES_TYPES)
+        trace = _flag(req.query, "trace", True)
+        deadline = req.started + self.config.timeout
+        if kind == JSON:
+            rows = _parse_json(req.body)
+            if not isinstance(rows, list):
+                raise HttpError(400, "request.not_a_list", "expected a JSON array of cases (or "
+                                f"JSON Lines with Content-Type {NDJSON})", "body")
+            self._check_batch_size(len(rows))
+            results = [self._batch_row(row, None, trace, deadline) for row in rows]
+            return Response(200, dumps(results))
+        lines = [(n, line) for n, line in enumerate(req.body.split(b"\n"), 1) if line.strip()]
+        self._check_batch_size(len(lines))
+        out = bytearray()
+        for n, line in lines:
+            try:
+                row: Any = orjson.loads(line)
+                problem = None
+            except orjson.JSONDecodeError as exc:
+                row, problem = None, (f"line {n} is not valid JSON: {exc.msg} at column "
+                                      f"{exc.colno}")
+            out += dumps(self._batch_row(row, problem, trace, deadline, n)) + b"\n"
+        return Response(200, bytes(out), NDJSON)
+
+    def _check_batch_size(self, n: int) -> None:
+        if n > self.config.max_batch:
+            raise HttpError(413, "request.batch_too_large", f"batch of {n} cases exceeds the "
+                            f"limit of {self.config.max_batch}; split it", "body")
+
+    def _batch_row(self, row: Any, problem: str | None, trace: bool, deadline: float,
+                   line: int | None = None) -> dict[str, Any]:
+        if problem is not None:
+            return self._unread(f"line {line}", "input.not_json", problem, "a JSON object per line")
+        if time.monotonic() > deadline:
+            where = f"line {line}" if line else "case"
+            return self._unread(where, "service.timeout", f"not interpreted: the request "
+                                f"reached its {self.config.timeout:g} s time limit",
+                                "a smaller batch", row)
+        return self.interpreter.interpret(row, trace)
+
+    def _unread(self, where: str, code: str, message: str, accepted: str,
+                row: Any = None) -> dict[str, Any]:
+        result = orjson.loads(dumps(self._rejected))
+        if isinstance(row, dict):
+            if isinstance(row.get("case_id"), str):
+                result["case_id"] = row["case_id"]
+            if isinstance(row.get("context"), dict):
+                result["context"] = row["context"]
+        result["errors"] = [{"field": where, "code": code, "message": message,
+                             "accepted": accepted}]
+        result["not_assessed"] = [{"what": "interpretation", "why": message}]
+        return result
+
+    def h_health(self, req: Request) -> Response:
+        return Response(200, dumps({
+            "status": "ok", "rulebook": dict(self.rulebook.identity),
+            "engine_version": __version__,
+            "uptime_seconds": round(time.time() - self.started_at, 1),
+            "runtime": self.interpreter.describe(),
+            "cds_auth": "jwt" if self.verifier else "off",
+            "limits": {"max_body_bytes": self.config.max_body,
+                       "timeout_seconds": self.config.timeout,
+                       "max_batch_cases": self.config.max_batch}}))
+
+    def h_openapi(self, req: Request) -> Response:
+        with self._lock:
+            if self._openapi is None:
+                from .openapi import openapi_document
+
+                self._openapi = dumps(openapi_document(self.rulebook))
+        return Response(200, self._openapi)
+
+    # -- CDS Hooks
+    def _auth(self, req: Request, service: str | None) -> dict[str, Any] | None:
+        if self.verifier is None:
+            return None
+        if service is None and not self.verifier.config.protect_discovery:
+            return None
+        return self.verifier.verify(req.headers.get("authorization"), req.path, service)
+
+    def _service(self, req: Request) -> cdshooks.ServiceDef:
+        sid = req.params["id"]
+        service = cdshooks.SERVICES_BY_ID.get(sid)
+        if service is None:
+            raise HttpError(404, "cds.unknown_service", f"no CDS service {sid!r}; see "
+                            "/cds-services", "id")
+        return service
+
+    def h_cds_discovery(self, req: Request) -> Response:
+        self._auth(req, None)
+        return Response(200, dumps(cdshooks.discovery(self.rulebook)))
+
+    def h_cds_service(self, req: Request) -> Response:
+        service = self._service(req)
+        self._auth(req, service.id)
+        _require_type(req.headers, (JSON, FHIR_JSON))
+        body = _parse_json(req.body)
+        context = cdshooks.read_request(body, service)
+        window = timedelta(minutes=self.config.cds_window_minutes)
+        selection = cdshooks.gather_prefetch(body, context["patientId"], self.rulebook, window)
+        if selection is None:
+            return Response(200, dumps({"cards": []}))
+        read = cdshooks.case_for(selection, context, str(body["hookInstance"]), self.rulebook)
+        result = self.interpreter.interpret(read.case, True)
+        card = cdshooks.build_card(result, read, selection, self.rulebook, context["patientId"])
+        record = cdshooks.card_record(card, result, service, str(body["hookInstance"]),
+                                      datetime.now(UTC))
+        self.feedback_log.append([record])
+        self.cards.put(record)
+        return Response(200, dumps({"cards": [card]}))
+
+    def h_cds_feedback(self, req: Request) -> Response:
+        service = self._service(req)
+        claims = self._auth(req, service.id)
+        _require_type(req.headers, (JSON,))
+        body = _parse_json(req.body)
+        records = cdshooks.feedback_records(body, service, self.cards, claims, datetime.now(UTC))
+        self.feedback_log.append(records)
+        return Response(200, dumps({"recorded": len(records),
+                                    "rules": sorted({r for rec in records for r in rec["rules"]})}))
+
+
+def _uuid() -> str:
+    import uuid
+
+    return str(uuid.uuid4())
+
+
+# ============================================================================ the socket layer
+class _Handler(BaseHTTPRequestHandler):
+    protocol_version = "HTTP/1.1"
+    server_version = f"gasrules/{__version__}"
+    app: App                      # set on the subclass made by make_server
+    access_log: bool = True
+
+    def _dispatch(self) -> None:
+        split = urlsplit(self.path)
+        headers = {k.lower(): v for k, v in self.headers.items()}
+        body = b""
+        if self.command in ("POST", "PUT", "PATCH"):
+            body_or_response = self._read_body(headers)
+            if isinstance(body_or_response, Response):
+                self._send(body_or_response, split.path)
+                return
+            body = body_or_response
+        req = Request(self.command, split.path, parse_qs(split.query, keep_blank_values=True),
+                      headers, body)
+        self._send(self.app.handle(req), split.path)
+
+    def _read_body(self, headers: Mapping[str, str]) -> bytes | Response:
+        cds = self.path.startswith("/cds-services")
+        if "chunked" in headers.get("transfer-encoding", "").lower():
+            self.close_connection = True
+            return Response(411, _error_body(411, "http.length_required", "chunked bodies are "
+                                             "not accepted; send Content-Length",
+                                             "Content-Length", cds))
+        raw = headers.get("content-length")
+        try:
+            length = int(raw) if raw is not None else -1
+        except ValueError:
+            length = -1
+        if length < 0:
+            self.close_connection = True
+            return Response(411, _error_body(411, "http.length_required", "Content-Length is "
+                                             "required (a whole number of bytes)",
+                                             "Content-Length", cds))
+        limit = self.app.config.max_body
+        if length > limit:
+            self.close_connection = True
+            if length <= DRAIN_LIMIT:
+                self._drain(length)
+            return Response(413, _error_body(413, "http.too_large", f"body of {length} bytes "
+                                             f"exceeds the limit of {limit} bytes",
+                                             "Content-Length", cds))
+        try:
+            body = self.rfile.read(length)
+        except TimeoutError:
+            body = b""
+        if len(body) < length:
+            self.close_connection = True
+            return Response(408, _error_body(408, "http.timeout", f"body not received within "
+                                             f"{self.app.config.timeout:g} s ({len(body)} of "
+                                             f"{length} bytes)", "body", cds))
+        return body
+
+    def _drain(self, length: int) -> None:
+        try:
+            while length > 0:
+                chunk = self.rfile.read(min(length, 65536))
+                if not chunk:
+                    return
+                length -= len(chunk)
+        except (TimeoutError, OSError):
+            return
+
+    def _send(self, resp: Response, path: str) -> None:
+        started = getattr(self, "_t0", None)
+        self.send_response(resp.status)
+        self.send_header("Content-Type", resp.content_type)
+        self.send_header("Content-Length", str(len(resp.body)))
+        self.send_header("Cache-Control", "no-store")
+        for k, v in resp.headers.items():
+            self.send_header(k, v)
+        if self.close_connection:
+            self.send_header("Connection", "close")
+        self.end_headers()
+        if self.command != "HEAD":
+            self.wfile.write(resp.body)
+        if self.access_log and started is not None:
+            ms = (time.perf_counter() - started) * 1000
+            sys.stderr.write(f"{self.address_string()} {self.command} {path} {resp.status} "
+                             f"{len(resp.body)}B {ms:.1f}ms\n")
+
+    def handle_one_request(self) -> None:
+        self._t0 = time.perf_counter()
+        super().handle_one_request()
+
+    def send_error(self, code: int, message: str | None = None, explain: str | None = None) -> None:
+        """http.server's own errors (bad request line, headers too long) as JSON too."""
+        self.close_connection = True
+        text = message or self.responses.get(code, ("error",))[0]
+        try:
+            self._send(Response(code, _error_body(code, "http.protocol", text)), "-")
+        except OSError:
+            pass
+
+    def log_message(self, format: str, *args: Any) -> None:  # noqa: A002 - http.server's name
+        pass  # access lines are written by _send
+
+    do_GET = do_POST = do_PUT = do_DELETE = do_PATCH = do_OPTIONS = _dispatch
+
+
+class GasrulesServer(ThreadingHTTPServer):
+    daemon_threads = True
+    allow_reuse_address = True
+    request_queue_size = 128
+
+
+def make_server(app: App, host: str | None = None, port: int | None = None) -> GasrulesServer:
+    """A bound server (port 0 picks a free port: read ``server.server_address``)."""
+    handler = type("GasrulesHandler", (_Handler,), {
+        "app": app, "timeout": app.config.timeout, "access_log": app.config.access_log})
+    return GasrulesServer((host or app.config.host,
+                           app.config.port if port is None else port), handler)
+
+
+def build_app(config: ServiceConfig, interpreter: Interpreter | None = None) -> App:
+    """The app for a configuration: rulebook (or the given interpreter) and CDS key check."""
+    interpreter = interpreter or make_interpreter(config)
+    verifier = None
+    if config.cds_keys:
+        from .cdsauth import load_config
+
+        default_aud = f"http://{config.host}:{config.port}"
+        verifier = TokenVerifier(load_config(config.cds_keys), default_aud)
+    return App(config, interpreter, verifier=verifier)
