@@ -285,9 +285,10 @@ class Table:
     fmt: str
 
     def __init__(self, path: Path, fmt: str, analytes: Mapping[str, Sequence[str]],
-                 mapping: ColumnMapping | None, start: int = 0) -> None:
+                 mapping: ColumnMapping | None, start: int = 0,
+                 row_groups: Sequence[int] | None = None) -> None:
         self.path, self.fmt, self.analytes, self.mapping = path, fmt, analytes, mapping
-        self.start = start
+        self.start, self.row_groups = start, row_groups
         self.passthrough_types = {}
         self._close: list[Any] = []
         self._rows: Iterator[Row]
@@ -471,8 +472,12 @@ class Table:
         targets = resolve_header(headers, str(files[0]), self.analytes, self.mapping)
         self.passthrough = [h for h, t in zip(headers, targets) if t.role == "pass"]
         self.passthrough_types = {h: schema.field(h).type for h in self.passthrough}
-        total = sum(pq.ParquetFile(f).metadata.num_rows for f in files) if len(files) > 1 \
-            else first.metadata.num_rows
+        if self.row_groups is not None and len(files) > 1:
+            raise TableError(str(self.path), "row groups can be chosen in a single file only")
+        meta = first.metadata
+        total = sum(pq.ParquetFile(f).metadata.num_rows for f in files) if len(files) > 1 else (
+            meta.num_rows if self.row_groups is None else
+            sum(meta.row_group(i).num_rows for i in self.row_groups))
         done = [0]
         self._progress = lambda: min(done[0] / max(total, 1), 1.0)
         self._rows = self._parquet_rows(files, first, headers, targets, done)
@@ -491,8 +496,10 @@ class Table:
                     raise TableError(str(path), "its columns differ from the first file's "
                                      f"({files[0].name})", ", ".join(headers))
             label = path.name if len(files) == 1 else str(path.relative_to(self.path))
-            at = 0
-            for batch in pf.iter_batches(batch_size=READ_BATCH):
+            at, groups = 0, self.row_groups
+            if groups is not None:           # row numbers stay those of the whole file
+                at = sum(pf.metadata.row_group(i).num_rows for i in range(min(groups, default=0)))
+            for batch in pf.iter_batches(batch_size=READ_BATCH, row_groups=groups):
                 for rec in batch.to_pylist():
                     at += 1
                     yield self._parquet_row(index, f"{label}:row {at}", rec, plan)
@@ -510,8 +517,8 @@ class Table:
             if role == "pass":
                 passthrough[h] = value
                 context[h] = json_safe(value)
-            elif value is None or (isinstance(value, float) and math.isnan(value)):
-                continue
+            elif value is None or value == "" or (isinstance(value, float) and math.isnan(value)):
+                continue                      # not measured (null, empty text or NaN)
             elif role == "input":
                 case[key] = {"value": value, "unit": unit} if unit else value
             else:
@@ -521,16 +528,17 @@ class Table:
 
 def open_table(path: str | Path, analytes: Mapping[str, Sequence[str]], *,
                mapping: ColumnMapping | None = None, fmt: str | None = None,
-               start: int = 0) -> Table:
+               start: int = 0, row_groups: Sequence[int] | None = None) -> Table:
     """Open an input for streaming. ``analytes``: input name -> accepted units
-    (:func:`analytes_of`). ``start`` is the index of the first row (for partitions)."""
+    (:func:`analytes_of`). ``start`` is the index of the first row (for partitions);
+    ``row_groups`` reads only those row groups of one Parquet file (contiguous, ascending)."""
     p = Path(path)
     kind = detect_format(p, fmt)
     if not p.exists():
         raise TableError(str(p), "no such file or directory")
     if p.is_dir() and kind != "parquet":
         raise TableError(str(p), "a directory can only be read as partitioned Parquet")
-    return Table(p, kind, analytes, mapping, start)
+    return Table(p, kind, analytes, mapping, start, row_groups)
 
 
 def json_safe(value: Any) -> Any:

@@ -1,0 +1,158 @@
+"""`gasrules batch IN [OUT]`: interpret a CSV, JSON Lines or Parquet table row by row.
+
+    gasrules batch gases.csv results.csv --workers 2
+    gasrules batch gases.csv results.parquet --mapping lab-columns.yaml --full-json
+    gasrules batch warehouse/gases/ warehouse/results/ --dask tcp://scheduler:8786
+    gasrules batch gases.parquet results/ --dask-local 2
+
+One result row per input row, in order, errors inline; the output is written to a temporary
+file and renamed at the end. The summary (counts by status and by disorder) goes to stderr,
+with a progress bar when stderr is a terminal. Exit codes: 0 the run completed (rejected rows
+are in the output), 2 unusable input, header, mapping or options, 5 broken rulebook, 6 refused
+in strict mode.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+from pathlib import Path
+from typing import Any, Optional
+
+import typer
+
+from .. import exitcodes
+
+app = typer.Typer(add_completion=False)
+
+
+def _fail(code: int, message: str) -> typer.Exit:
+    typer.echo(f"gasrules batch: {message}", err=True)
+    return typer.Exit(code)
+
+
+def _settings_in_use(settings_file: Optional[Path]) -> bool:
+    return settings_file is not None or any(
+        k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in os.environ)
+
+
+def runtime_hooks(settings_file: Optional[Path], rulebook: Optional[Path], strict: bool) -> Any:
+    """RunHooks from the site settings (strict mode, decision records, shadow mode), or None
+    when no settings apply. Raises typer.Exit with the documented code when refused."""
+    if not _settings_in_use(settings_file) and not strict:
+        return None
+    from ..batch import RunHooks
+    from ..errors import RulebookError
+    from ..reporters import render_problems
+    from ..runtime import Runtime, RuntimeRefusal
+    from ..settings import SettingsError, load_settings
+
+    try:
+        settings = load_settings(settings_file)
+        if strict and not settings.strict:
+            import dataclasses
+
+            settings = dataclasses.replace(settings, strict=True)
+        rt = Runtime.from_settings(settings, rulebook)
+    except RulebookError as exc:
+        typer.echo(render_problems(exc.problems, str(rulebook or "rulebook")), err=True)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+    except RuntimeRefusal as exc:
+        raise _fail(exitcodes.REFUSED, str(exc))
+    except SettingsError as exc:
+        raise _fail(exitcodes.USAGE, str(exc))
+    logging = getattr(rt, "_log", None) is not None
+    shadow = getattr(rt, "_shadow", None) is not None
+    notes = []
+    if rt.admission.suspended_rules:
+        notes.append("suspended rules: " + ", ".join(f"{r} ({why})" for r, why in rt.admission.suspended_rules))
+    if logging:
+        notes.append(f"decision records appended to {settings.decision_log}")
+
+    def observe(case: Any, result: dict[str, Any], other: Any) -> None:
+        rt._after(case, result, other, False)  # the runtime's own record/shadow step
+
+    def close() -> None:
+        if shadow:
+            notes.append(f"shadow candidate disagreed on {rt.disagreements:,} cases")
+        rt.close()
+
+    return RunHooks(rulebook=rt.rulebook, candidate=rt.candidate if shadow else None, trace=logging,
+                    observe=observe if (logging or shadow) else None, close=close, notes=notes)
+
+
+def _terminate(signum: int, frame: Any) -> None:
+    raise SystemExit(128 + signum)  # unwinds, so the writer removes its temporary file
+
+
+@app.command()
+def batch(
+    source: Path = typer.Argument(..., help="Input: .csv, .jsonl or .parquet file (a directory: partitioned Parquet)."),
+    target: str = typer.Argument("-", help="Output file (format from its suffix), a directory with --dask, or - for stdout."),
+    workers: int = typer.Option(1, "--workers", "-w", min=1, help="Worker processes."),
+    mapping: Optional[Path] = typer.Option(None, "--mapping", "-m", help="YAML/JSON file mapping column names to inputs and units."),
+    rulebook: Optional[Path] = typer.Option(None, "--rulebook", "-r", help="Rulebook YAML (default: the shipped adult rulebook)."),
+    out_format: Optional[str] = typer.Option(None, "--format", "-f", help="Output format: csv, jsonl or parquet (default: from OUT's suffix)."),
+    in_format: Optional[str] = typer.Option(None, "--in-format", help="Input format when the suffix does not tell: csv, jsonl or parquet."),
+    full_json: bool = typer.Option(False, "--full-json", help="Add a 'result' column with the whole result and its trace."),
+    values: Optional[str] = typer.Option(None, "--values", help="Comma-separated key values to output (default: every reported value)."),
+    chunk_size: int = typer.Option(500, "--chunk-size", min=1, help="Rows sent to a worker at a time."),
+    dask: Optional[str] = typer.Option(None, "--dask", help="Run on a Dask cluster: scheduler address (tcp://host:8786)."),
+    dask_local: Optional[int] = typer.Option(None, "--dask-local", min=1, help="Run on a local Dask cluster of N worker processes."),
+    settings_file: Optional[Path] = typer.Option(None, "--settings", help="Site settings file (strict mode, decision records, shadow)."),
+    strict: bool = typer.Option(False, "--strict", help="Refuse a rulebook that matches no approved release."),
+    summary_json: Optional[Path] = typer.Option(None, "--summary-json", help="Also write the summary as JSON to this file."),
+    progress: Optional[bool] = typer.Option(None, "--progress/--no-progress", help="Progress bar (default: only on a terminal)."),
+) -> None:
+    """Interpret every row of IN; one result row per input row, in order, errors inline."""
+    from ..batch import BatchOptions, run_batch
+    from ..tabular import FORMATS, TableError, load_mapping
+
+    for name, fmt in (("--format", out_format), ("--in-format", in_format)):
+        if fmt is not None and fmt not in FORMATS:
+            raise _fail(exitcodes.USAGE, f"{name} '{fmt}' is not one of {', '.join(FORMATS)}")
+    if dask and dask_local:
+        raise _fail(exitcodes.USAGE, "give --dask SCHEDULER or --dask-local N, not both")
+    hooks = runtime_hooks(settings_file, rulebook, strict)
+    rb = hooks.rulebook if hooks is not None else _load(rulebook)
+    try:
+        options = BatchOptions(
+            workers=workers, chunk_size=chunk_size, full_json=full_json,
+            values=tuple(v.strip() for v in values.split(",") if v.strip()) if values else None,
+            in_format=in_format, out_format=out_format,
+            mapping=load_mapping(mapping) if mapping else None, progress=progress)
+        previous = signal.signal(signal.SIGTERM, _terminate)
+        try:
+            if dask or dask_local:
+                from ..distributed import run_distributed
+
+                if hooks is not None and hooks.observe is not None:
+                    raise _fail(exitcodes.USAGE, "decision records and shadow mode need a single-machine run "
+                                "(drop --dask, or turn them off in the settings)")
+                try:
+                    summary = run_distributed(rb, source, target, options, scheduler=dask, local_workers=dask_local)
+                finally:
+                    if hooks is not None and hooks.close is not None:
+                        hooks.close()
+            else:
+                summary = run_batch(rb, source, target, options, hooks)
+        finally:
+            signal.signal(signal.SIGTERM, previous)
+    except TableError as exc:
+        raise _fail(exitcodes.USAGE, str(exc))
+    typer.echo(summary.render(), err=True)
+    if summary_json is not None:
+        summary_json.write_text(json.dumps(summary.as_dict(), indent=2) + "\n", encoding="utf-8")
+
+
+def _load(rulebook: Optional[Path]) -> Any:
+    from .. import load_rulebook
+    from ..errors import RulebookError
+    from ..reporters import render_problems
+
+    try:
+        return load_rulebook(rulebook)
+    except RulebookError as exc:
+        typer.echo(render_problems(exc.problems, str(rulebook or "rulebook")), err=True)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
