@@ -176,6 +176,25 @@ class Runtime:
         for case, result, other in zip(c, active, shadow):
             yield self._after(case, result, other, trace)
 
+    def observe(self, case: Any, result: dict[str, Any], candidate_result: dict[str, Any] | None = None) -> None:
+        """For callers that evaluate themselves (worker pools, batch): log ``result`` (evaluated
+        with :attr:`rulebook`, traced) and compare it with the candidate's, if shadowing."""
+        self._after(case, result, candidate_result, True)
+
+    @property
+    def records_decisions(self) -> bool:
+        return self._log is not None
+
+    @property
+    def shadowing(self) -> bool:
+        return self._shadow is not None
+
+    def record(self, case: Any, result: dict[str, Any]) -> None:
+        """Log a result built outside the engine (e.g. the rejected result of an unreadable row),
+        so the decision log still holds one entry per row. No shadow comparison."""
+        if self._log is not None:
+            self._log.append(case, result, rulebook=self.rulebook)
+
     def _after(self, case: Any, result: dict[str, Any], other: dict[str, Any] | None, trace: bool) -> dict[str, Any]:
         if self._log is not None:
             self._log.append(case, result, rulebook=self.rulebook)

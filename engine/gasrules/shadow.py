@@ -104,9 +104,11 @@ class ShadowSummary:
     transitions: Counter[tuple[str, str]] = field(default_factory=Counter)
     examples: dict[tuple[str, str], list[str]] = field(default_factory=dict)
     rulebooks: Counter[tuple[str, str]] = field(default_factory=Counter)
+    same_disorders: int = 0            # disagreements on findings, values or status only
 
     def as_dict(self) -> dict[str, Any]:
-        return {"path": self.path, "disagreements": self.disagreements, "unreadable_lines": self.unreadable_lines,
+        return {"path": self.path, "disagreements": self.disagreements,
+                "same_disorders": self.same_disorders, "unreadable_lines": self.unreadable_lines,
                 "by_field": dict(self.by_field.most_common()),
                 "transitions": [{"active": a, "candidate": c, "count": n, "examples": self.examples[(a, c)]}
                                 for (a, c), n in self.transitions.most_common()],
@@ -139,10 +141,13 @@ def summarize(path: str | os.PathLike[str]) -> ShadowSummary:
             summary.disagreements += 1
             summary.by_field.update(f.split(".")[0] for f in fields)
             key = (_label(active), _label(candidate))
-            summary.transitions[key] += 1
-            examples = summary.examples.setdefault(key, [])
-            if len(examples) < EXAMPLES_PER_TRANSITION:
-                examples.append(str(rec.get("case_id") or f"line {number}"))
+            if key[0] == key[1]:
+                summary.same_disorders += 1
+            else:
+                summary.transitions[key] += 1
+                examples = summary.examples.setdefault(key, [])
+                if len(examples) < EXAMPLES_PER_TRANSITION:
+                    examples.append(str(rec.get("case_id") or f"line {number}"))
             summary.rulebooks[(_name(active), _name(candidate))] += 1
     return summary
 
@@ -156,6 +161,8 @@ def render_summary(summary: ShadowSummary) -> str:
         lines.append(f"  active {a} vs candidate {c}: {n}")
     if summary.by_field:
         lines.append("  differing: " + ", ".join(f"{k} {n}" for k, n in summary.by_field.most_common()))
+    if summary.same_disorders:
+        lines.append(f"  same disorders, other differences: {summary.same_disorders}")
     if summary.transitions:
         lines.append("  disorder transitions (active -> candidate):")
         for (a, c), n in summary.transitions.most_common():
