@@ -1,0 +1,86 @@
+"""`gasrules impact OLD NEW CORPUS`: replay a corpus under two rulebooks; report what would change.
+
+Exit 0 when the replay completed (rejected rows are counted and listed, never a failure by
+themselves), 1 when an expected-transitions file is given and a transition is not in it (or
+is above its ceiling), 2 when the corpus or the expected-transitions file cannot be used,
+5 when either rulebook cannot be loaded.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+from enum import Enum
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from .. import exitcodes
+
+app = typer.Typer(add_completion=False)
+
+
+class Format(str, Enum):
+    text = "text"
+    json = "json"
+    html = "html"
+
+
+def _default_workers() -> int:
+    return max(1, min(2, os.cpu_count() or 1))
+
+
+@app.command()
+def impact(old: Path = typer.Argument(..., help="The current rulebook (or overlay) YAML."),
+           new: Path = typer.Argument(..., help="The proposed rulebook (or overlay) YAML."),
+           corpus: Path = typer.Argument(..., help="Past cases: CSV, JSON Lines or Parquet (file or directory)."),
+           expected: Optional[Path] = typer.Option(None, "--expected", "-e",
+                                                   help="YAML/JSON file of expected transitions; others exit 1."),
+           fmt: Format = typer.Option(Format.text, "--format", "-f", help="text, json or html."),
+           output: Optional[Path] = typer.Option(None, "--output", "-o", help="Write the report to this file."),
+           workers: int = typer.Option(_default_workers(), "--workers", "-w", min=1, help="Worker processes."),
+           chunk: int = typer.Option(250, "--chunk", min=1, help="Rows per chunk sent to a worker."),
+           mapping: Optional[Path] = typer.Option(None, "--mapping", help="Column mapping file (as for batch)."),
+           input_format: Optional[str] = typer.Option(None, "--input-format", help="csv, jsonl or parquet (default: by suffix)."),
+           progress: Optional[bool] = typer.Option(None, "--progress/--no-progress",
+                                                   help="Progress bar (default: only on a terminal).")) -> None:
+    """Interpret every case of the corpus under both rulebooks and report the cases whose
+    disorders or findings change, the transitions between disorder sets with examples, the
+    rules responsible, and the cases now close to a changed threshold."""
+    from .. import load_rulebook
+    from ..batch import Progress
+    from ..errors import RulebookError
+    from ..impact import RENDERERS, ExpectedError, load_expected, replay
+    from ..reporters import render_problems
+    from ..tabular import TableError, load_mapping
+
+    try:
+        rb_old, rb_new = load_rulebook(old), load_rulebook(new)
+    except RulebookError as exc:
+        typer.echo(render_problems(exc.problems, ""), err=True)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+    try:
+        wanted = load_expected(expected) if expected is not None else None
+        cols = load_mapping(mapping) if mapping is not None else None
+        bar = Progress(sys.stderr, lambda: 0.0, progress)
+
+        def on_progress(rows: int, share: float) -> None:
+            bar.share = lambda: share
+            bar.update(rows)
+
+        report = replay(rb_old, rb_new, corpus, workers=workers, chunk_size=chunk, mapping=cols, fmt=input_format,
+                        expected=wanted, expected_file=str(expected or ""), on_progress=on_progress)
+        bar.finish(report.rows)
+    except (ExpectedError, TableError) as exc:
+        typer.echo(f"gasrules impact: {exc}", err=True)
+        raise typer.Exit(exitcodes.USAGE)
+    text = RENDERERS[fmt.value](report)
+    if output is not None:
+        output.write_text(text + "\n", encoding="utf-8")
+    else:
+        typer.echo(text)
+    if report.unexpected:
+        typer.echo(f"gasrules impact: {len(report.unexpected)} unexpected transition(s), "
+                   f"{sum(t.count for t in report.unexpected):,} case(s)", err=True)
+        raise typer.Exit(exitcodes.FAILED)
