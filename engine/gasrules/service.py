@@ -42,6 +42,7 @@ import orjson
 
 from . import __version__, cdshooks
 from .cdsauth import AuthError, TokenVerifier
+from .evaluator import UNREADABLE
 
 __all__ = ["App", "EngineInterpreter", "Interpreter", "Response", "ServiceConfig",
            "make_interpreter", "make_server"]
@@ -222,10 +223,6 @@ class App:
         self.feedback_log = cdshooks.FeedbackLog(config.feedback_log)
         for rec in self.feedback_log.cards(self.cards.limit):
             self.cards.put(rec)
-        from .evaluator import interpret as _engine_interpret
-
-        # template for rows that never reach the interpreter (not JSON, past the deadline)
-        self._rejected = _engine_interpret(self.rulebook, "", False)
         self._openapi: bytes | None = None
         self._lock = threading.Lock()
 
@@ -340,7 +337,7 @@ class App:
                 raise HttpError(400, "request.not_a_list", "expected a JSON array of cases (or "
                                 f"JSON Lines with Content-Type {NDJSON})", "body")
             self._check_batch_size(len(rows))
-            results = [self._batch_row(row, None, trace, deadline) for row in rows]
+            results = [self._batch_row(row, trace, deadline) for row in rows]
             return Response(200, dumps(results))
         lines = [(n, line) for n, line in enumerate(req.body.split(b"\n"), 1) if line.strip()]
         self._check_batch_size(len(lines))
@@ -348,11 +345,9 @@ class App:
         for n, line in lines:
             try:
                 row: Any = orjson.loads(line)
-                problem = None
             except orjson.JSONDecodeError as exc:
-                row, problem = None, (f"line {n} is not valid JSON: {exc.msg} at column "
-                                      f"{exc.colno}")
-            out += dumps(self._batch_row(row, problem, trace, deadline, n)) + b"\n"
+                row = {UNREADABLE: f"line {n}: not valid JSON: {exc.msg} at column {exc.colno}"}
+            out += dumps(self._batch_row(row, trace, deadline, n)) + b"\n"
         return Response(200, bytes(out), NDJSON)
 
     def _check_batch_size(self, n: int) -> None:
@@ -360,29 +355,25 @@ class App:
             raise HttpError(413, "request.batch_too_large", f"batch of {n} cases exceeds the "
                             f"limit of {self.config.max_batch}; split it", "body")
 
-    def _batch_row(self, row: Any, problem: str | None, trace: bool, deadline: float,
+    def _batch_row(self, row: Any, trace: bool, deadline: float,
                    line: int | None = None) -> dict[str, Any]:
-        if problem is not None:
-            return self._unread(f"line {line}", "input.not_json", problem, "a JSON object per line")
+        """One row's result; an engine failure on a row becomes that row's rejection."""
         if time.monotonic() > deadline:
-            where = f"line {line}" if line else "case"
-            return self._unread(where, "service.timeout", f"not interpreted: the request "
-                                f"reached its {self.config.timeout:g} s time limit",
-                                "a smaller batch", row)
-        return self.interpreter.interpret(row, trace)
+            raise HttpError(503, "service.timeout", f"the batch did not finish within "
+                            f"{self.config.timeout:g} s; nothing was returned: send it in "
+                            "smaller parts", "body", {"Retry-After": "1"})
+        try:
+            return self.interpreter.interpret(row, trace)
+        except Exception as exc:  # noqa: BLE001 - a row is never lost, even to an engine bug
+            traceback.print_exc(file=sys.stderr)
+            from .evaluator import interpret as engine_interpret
 
-    def _unread(self, where: str, code: str, message: str, accepted: str,
-                row: Any = None) -> dict[str, Any]:
-        result = orjson.loads(dumps(self._rejected))
-        if isinstance(row, dict):
-            if isinstance(row.get("case_id"), str):
-                result["case_id"] = row["case_id"]
-            if isinstance(row.get("context"), dict):
-                result["context"] = row["context"]
-        result["errors"] = [{"field": where, "code": code, "message": message,
-                             "accepted": accepted}]
-        result["not_assessed"] = [{"what": "interpretation", "why": message}]
-        return result
+            where = f"line {line}" if line else "row"
+            stand_in: dict[str, Any] = {UNREADABLE: f"{where}: the engine failed on this row "
+                                                    f"({type(exc).__name__})"}
+            if isinstance(row, dict) and isinstance(row.get("case_id"), str):
+                stand_in["case_id"] = row["case_id"]
+            return engine_interpret(self.rulebook, stand_in, trace)
 
     def h_health(self, req: Request) -> Response:
         return Response(200, dumps({
