@@ -74,6 +74,7 @@ class Suite:
     cases: list[Case]
     superseded: list[dict[str, str]] = field(default_factory=list)   # {case, reason, by}
     files: list[str] = field(default_factory=list)
+    unreachable: list[dict[str, Any]] = field(default_factory=list)  # stated coverage exceptions
 
 
 def rulebook_chain(path: str | Path) -> list[Path]:
@@ -126,6 +127,7 @@ def load_suite(rulebook_path: str | Path, cases_dir: str | Path | None = None) -
             suite.files.append(str(f))
             if depth == 0:
                 supersedes += [dict(s, by=str(f)) for s in data.get("supersedes") or []]
+                suite.unreachable += [dict(u, file=str(f)) for u in data.get("unreachable") or []]
                 own += cases
             else:
                 inherited += cases
@@ -277,18 +279,24 @@ def _readers(rb: CompiledRulebook, name: str) -> list[str]:
 
 # ----------------------------------------------------------------------------- rule coverage
 
-def rule_coverage(rb: CompiledRulebook, results: list[CaseResult]) -> dict[str, Any]:
+def rule_coverage(rb: CompiledRulebook, results: list[CaseResult],
+                  unreachable: Iterable[dict[str, Any]] = ()) -> dict[str, Any]:
     counts = {r.id: {"fired": 0, "not_fired": 0} for r in rb.rules if r.status == "active"}
     for cr in results:
         for ev in (cr.result or {}).get("trace", []):
             c = counts.get(ev["rule"])
             if c is not None and ev["outcome"] in c:
                 c[ev["outcome"]] += 1
-    never_fired = sorted(r for r, c in counts.items() if not c["fired"])
-    never_not_fired = sorted(r for r, c in counts.items() if not c["not_fired"])
-    full = sum(1 for c in counts.values() if c["fired"] and c["not_fired"])
+    excuses = {(u["rule"], u["outcome"]): u["reason"] for u in unreachable if "rule" in u}
+    missing = [(r, o) for r, c in counts.items() for o in ("fired", "not_fired") if not c[o]]
+    excused = [{"rule": r, "outcome": o, "reason": excuses[(r, o)]} for r, o in missing if (r, o) in excuses]
+    stale = [{"rule": r, "outcome": o} for (r, o) in excuses if (r, o) not in missing]
+    missing = [(r, o) for r, o in missing if (r, o) not in excuses]
+    full = sum(1 for r, c in counts.items() if all(c[o] or (r, o) in excuses for o in c))
     return {"rules": len(counts), "both": full, "percent": _pct(full, len(counts)),
-            "never_fired": never_fired, "never_not_fired": never_not_fired,
+            "never_fired": sorted(r for r, o in missing if o == "fired"),
+            "never_not_fired": sorted(r for r, o in missing if o == "not_fired"),
+            "excused": excused, "stale_excuses": stale,
             "suspended": sorted(r.id for r in rb.rules if r.status == "suspended"), "counts": counts}
 
 
@@ -455,7 +463,9 @@ def _known_value(rb: CompiledRulebook, result: dict[str, Any], name: str) -> flo
     return None
 
 
-def threshold_coverage(rb: CompiledRulebook, results: list[CaseResult]) -> dict[str, Any]:
+def threshold_coverage(rb: CompiledRulebook, results: list[CaseResult],
+                       unreachable: Iterable[dict[str, Any]] = ()) -> dict[str, Any]:
+    excuses = {(u["cutpoint"], side): u["reason"] for u in unreachable if "cutpoint" in u for side in u["sides"]}
     rows = []
     for cp in unique_cutpoints(rb):
         step = step_of(rb, cp)
@@ -467,13 +477,21 @@ def threshold_coverage(rb: CompiledRulebook, results: list[CaseResult]) -> dict[
             side = side_of(margin, tval, step)
             if side is not None and decisive(rb, cr.result, cp)[0]:
                 found[side].append(cr.case.id)
-        rows.append({"cutpoint": cutpoint_key(cp), "owner": cp["owner"], "quantity": cp["quantity"], "op": cp["op"],
+        key = cutpoint_key(cp)
+        rows.append({"cutpoint": key, "owner": cp["owner"], "quantity": cp["quantity"], "op": cp["op"],
                      "threshold": cp["threshold"], "threshold_kind": cp["threshold_kind"], "value": cp["value"],
-                     "step": step, "cases": found, "missing": [s for s in SIDES if not found[s]]})
-    needed = 3 * len(rows)
-    have = sum(3 - len(r["missing"]) for r in rows)
+                     "step": step, "cases": found,
+                     "missing": [s for s in SIDES if not found[s] and (key, s) not in excuses],
+                     "excused": [s for s in SIDES if not found[s] and (key, s) in excuses]})
+    keys = {r["cutpoint"]: r for r in rows}
+    excused = [{"cutpoint": k, "side": s, "reason": why} for (k, s), why in excuses.items()
+               if k in keys and s in keys[k]["excused"]]
+    stale = [{"cutpoint": k, "side": s} for (k, s) in excuses if k not in keys or s not in keys[k]["excused"]]
+    needed = 3 * len(rows) - len(excused)
+    have = sum(3 - len(r["missing"]) - len(r["excused"]) for r in rows)
     return {"cutpoints": len(rows), "probes_needed": needed, "probes_found": have, "percent": _pct(have, needed),
-            "rows": rows, "missing": [{"cutpoint": r["cutpoint"], "sides": r["missing"]} for r in rows if r["missing"]]}
+            "rows": rows, "excused": excused, "stale_excuses": stale,
+            "missing": [{"cutpoint": r["cutpoint"], "sides": r["missing"]} for r in rows if r["missing"]]}
 
 
 # ----------------------------------------------------------------------------- probe suggestion

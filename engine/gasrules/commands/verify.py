@@ -47,8 +47,8 @@ def verify(rulebook: Optional[Path] = typer.Argument(None, help="Rulebook YAML (
         typer.echo(render_problems(name_problems, str(path)), err=True)
         raise typer.Exit(exitcodes.FAILED)
     results = S.run_suite(rb, suite)
-    rules = S.rule_coverage(rb, results)
-    thresholds = S.threshold_coverage(rb, results)
+    rules = S.rule_coverage(rb, results, suite.unreachable)
+    thresholds = S.threshold_coverage(rb, results, suite.unreachable)
     report: dict[str, Any] = {"rulebook": rb.identity, "summary": S.summary(suite, results),
                               "failures": [_failure_json(r) for r in results if r.outcome == "failed"],
                               "superseded": suite.superseded,
@@ -65,7 +65,7 @@ def verify(rulebook: Optional[Path] = typer.Argument(None, help="Rulebook YAML (
     else:
         typer.echo(_text(rb, results, report))
     code = exitcodes.OK
-    if report["summary"]["failed"]:
+    if report["summary"]["failed"] or rules["stale_excuses"] or thresholds["stale_excuses"]:
         code = exitcodes.FAILED
     if min_rule is not None and rules["percent"] < min_rule:
         code = exitcodes.FAILED
@@ -103,11 +103,22 @@ def _text(rb: Any, results: list[Any], report: dict[str, Any]) -> str:
         lines.append("  never fired: " + ", ".join(rc["never_fired"]))
     if rc["never_not_fired"]:
         lines.append("  never not fired: " + ", ".join(rc["never_not_fired"]))
+    for e in rc["excused"]:
+        lines.append(f"  unreachable ({e['outcome'].replace('_', ' ')}): {e['rule']}: {e['reason']}")
+    for e in rc["stale_excuses"]:
+        lines.append(f"  stated unreachable but covered ({e['outcome'].replace('_', ' ')}): {e['rule']}")
     tc = report["threshold_coverage"]
     lines.append(f"Threshold coverage: {tc['probes_found']}/{tc['probes_needed']} sides of {tc['cutpoints']} "
                  f"cut-points ({tc['percent']}%)")
     for m in tc["missing"]:
         lines.append(f"  missing {'/'.join(m['sides'])}: {m['cutpoint']}")
+    grouped: dict[str, list[str]] = {}
+    for e in tc["excused"]:
+        grouped.setdefault(f"{e['cutpoint']}: {e['reason']}", []).append(e["side"])
+    for text, sides in grouped.items():
+        lines.append(f"  unreachable {'/'.join(sides)}: {text}")
+    for e in tc["stale_excuses"]:
+        lines.append(f"  stated unreachable but covered (or no such cut-point): {e['side']} of {e['cutpoint']}")
     for p in report.get("suggestions", []):
         agree = "" if p["engine_agrees"] else "  [ENGINE DISAGREES with the rule's definition]"
         lines.append(f"  suggest {p['id']}: {json.dumps(p['input'])}  -> {json.dumps(p['want'])}{agree}")
