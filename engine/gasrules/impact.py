@@ -80,12 +80,12 @@ class Job:
     near: tuple[NearSpec, ...]
 
 
-def _interpret(rb: CompiledRulebook, row: Row) -> dict[str, Any]:
+def _interpret(rb: CompiledRulebook, row: Row, trace: bool) -> dict[str, Any]:
     """interpret_row, or a rejected result naming the row if the engine itself fails (never a lost row)."""
     from .tabular import interpret_row, rejected_result
 
     try:
-        return interpret_row(rb, row, True)
+        return interpret_row(rb, row, trace)
     except Exception as exc:  # noqa: BLE001 - a row is never lost, even to an engine bug
         broken = Row(row.index, row.where, row.case, row.passthrough, [{
             "field": "", "code": "input.unreadable", "accepted": "a case the engine can evaluate (please report it)",
@@ -95,6 +95,11 @@ def _interpret(rb: CompiledRulebook, row: Row) -> dict[str, Any]:
 
 def _fired(result: dict[str, Any]) -> set[str]:
     return {ev["rule"] for ev in result.get("trace") or [] if ev["outcome"] == "fired"}
+
+
+def _said(result: dict[str, Any]) -> tuple[Any, ...]:
+    return (result["status"], sorted(result["disorders"]), sorted(result["qualifiers"].items()),
+            sorted({f["code"] for f in result["findings"]}))
 
 
 def _near(result: dict[str, Any], specs: Sequence[NearSpec]) -> tuple[tuple[int, float], ...]:
@@ -115,11 +120,24 @@ def _near(result: dict[str, Any], specs: Sequence[NearSpec]) -> tuple[tuple[int,
 
 
 def replay_chunk(job: Job, rows: list[Row]) -> list[Outcome]:
-    """Worker: each row under both rulebooks, reduced to an :data:`Outcome`."""
+    """Worker: each row under both rulebooks, reduced to an :data:`Outcome`.
+
+    The trace is what costs: the new rulebook is traced only when there are changed thresholds
+    to measure margins against, and both are traced (old re-run) only for a case whose
+    conclusion (status, disorders, qualifiers, finding codes) differs. Rules responsible are
+    therefore the rules whose fired / not-fired outcome differs in a changed case.
+    """
     out: list[Outcome] = []
     for row in rows:
-        a, b = _interpret(job.old, row), _interpret(job.new, row)
-        fa, fb = _fired(a), _fired(b)
+        a, b = _interpret(job.old, row, False), _interpret(job.new, row, bool(job.near))
+        only_a: tuple[str, ...] = ()
+        only_b: tuple[str, ...] = ()
+        if _said(a) != _said(b):
+            a = _interpret(job.old, row, True)
+            if not job.near:
+                b = _interpret(job.new, row, True)
+            fa, fb = _fired(a), _fired(b)
+            only_a, only_b = tuple(sorted(fa - fb)), tuple(sorted(fb - fa))
         errors: tuple[tuple[str, str, str], ...] = ()
         if a["status"] == "rejected" or b["status"] == "rejected":
             errs = a["errors"] if a["status"] == "rejected" else b["errors"]
@@ -128,7 +146,7 @@ def replay_chunk(job: Job, rows: list[Row]) -> list[Outcome]:
         out.append((row.index, row.where, str(case_id), a["status"], b["status"],
                     tuple(sorted(a["disorders"])), tuple(sorted(b["disorders"])),
                     tuple(sorted({f["code"] for f in a["findings"]})), tuple(sorted({f["code"] for f in b["findings"]})),
-                    tuple(sorted(fa - fb)), tuple(sorted(fb - fa)), _near(b, job.near), errors))
+                    only_a, only_b, _near(b, job.near), errors))
     return out
 
 
