@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import ast
 import math
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable
@@ -86,7 +87,7 @@ def rulebook_chain(path: str | Path) -> list[Path]:
         with open(current, encoding="utf-8") as fh:
             data = yaml.load(fh, Loader=getattr(yaml, "CSafeLoader", yaml.SafeLoader)) or {}
         ext = data.get("extends") if isinstance(data, dict) else None
-        current = current.parent / ext if ext else None
+        current = Path(os.path.normpath(current.parent / ext)) if ext else None
     return chain
 
 
