@@ -473,3 +473,19 @@ def test_summary_is_cut_at_a_clause_under_140_characters() -> None:
     assert headline.startswith(summary[:-1])
     assert summary[:-1].endswith("words")
     assert cdshooks.summary_of("Short one") == "Short one"
+
+
+def test_cds_calls_are_decision_records_without_the_patient_id(tmp_path: Path) -> None:
+    log = tmp_path / "decisions.jsonl"
+    srv = start(tmp_path, {"GASRULES_DECISION_LOG": str(log), "GASRULES_LOG_FSYNC": "0"})
+    try:
+        body = request_body(searchset(PANEL))
+        status, out = srv.json("POST", f"/cds-services/{SERVICE}", body)
+        assert status == 200 and out["cards"]
+    finally:
+        srv.close()
+        srv.app.close()
+    [entry] = [json.loads(x) for x in log.read_text().splitlines()]
+    text = json.dumps(entry)
+    assert body["hookInstance"] in text       # the card can be traced to its decision record
+    assert PATIENT not in text                # patient_id dropped by the default context policy

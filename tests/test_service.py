@@ -62,10 +62,11 @@ class Server:
         return status, json.loads(data)
 
 
-def start(tmp: Path, **config: Any) -> Server:
+def start(tmp: Path, environ: dict[str, str] | None = None, **config: Any) -> Server:
+    """A server in a thread; site settings only from ``environ`` (never the developer's own)."""
     cfg = ServiceConfig(port=0, feedback_log=str(tmp / "feedback.jsonl"), access_log=False,
                         **config)
-    return Server(build_app(cfg))
+    return Server(build_app(cfg, environ=environ or {}))
 
 
 @pytest.fixture(scope="module")
@@ -373,6 +374,56 @@ def test_every_status_the_service_answers_is_documented(server: Server) -> None:
     assert {"200", "400", "405", "408", "411", "413", "415", "500"} <= documented
     cds = set(doc["paths"]["/cds-services/{id}"]["post"]["responses"])
     assert {"401", "403", "404", "412"} <= cds
+
+
+# ============================================================================ site settings
+def _approve(release_dir: Path, rb: Any) -> None:
+    """A minimal intact release manifest (the release gate is tested in test_release.py)."""
+    from gasrules import registry
+    registry.write_manifest(release_dir, {"format": registry.MANIFEST_FORMAT,
+                                          "rulebook": rb.identity, "date": "2026-01-05T10:00:00Z"})
+
+
+def test_strict_mode_and_decision_records_go_through_the_runtime(tmp_path: Path,
+                                                                 rulebook: Any) -> None:
+    from gasrules.audit import verify_log
+
+    releases, log = tmp_path / "releases", tmp_path / "decisions.jsonl"
+    _approve(releases, rulebook)
+    env = {"GASRULES_RELEASE_DIR": str(releases), "GASRULES_DECISION_LOG": str(log),
+           "GASRULES_LOG_FSYNC": "0"}
+    srv = start(tmp_path, env, strict=True)
+    try:
+        health = srv.json("GET", "/health")[1]
+        assert health["runtime"]["mode"] == "runtime" and health["runtime"]["strict"] is True
+        assert health["runtime"]["decision_records"] is True
+        assert health["runtime"]["release_manifest"]
+        status, body = srv.json("POST", "/interpret?trace=0", DEMO_CASE)
+        assert status == 200 and body["trace"] == []
+        assert body == json.loads(json.dumps(gasrules.interpret(rulebook, DEMO_CASE,
+                                                                trace=False)))
+        lines = (json.dumps(DEMO_ROWS[0]) + "\n{broken\n" + json.dumps(DEMO_ROWS[1])).encode()
+        status, _, data = srv.call("POST", "/interpret/batch", lines,
+                                   ctype="application/x-ndjson")
+        assert status == 200 and len(data.splitlines()) == 3
+    finally:
+        srv.close()
+        srv.app.close()
+    report = verify_log(log)
+    assert report.errors == () and report.entries == 4   # 1 + 3 rows, the broken one too
+
+
+def test_strict_mode_refuses_to_serve_an_unapproved_rulebook(tmp_path: Path) -> None:
+    from typer.testing import CliRunner
+
+    from gasrules.commands.serve import app
+
+    (tmp_path / "releases").mkdir()
+    result = CliRunner().invoke(app, ["--strict", "--port", "0", "--feedback-log",
+                                      str(tmp_path / "f.jsonl")],
+                                env={"GASRULES_RELEASE_DIR": str(tmp_path / "releases")})
+    assert result.exit_code == 6
+    assert "strict.not_approved" in result.output
 
 
 # ============================================================================ the command

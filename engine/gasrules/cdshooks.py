@@ -260,9 +260,9 @@ def case_for(selection: Selection, context: Mapping[str, Any], hook_instance: st
     read = case_from_fhir(selection.resources, rulebook.inputs)
     case = dict(read.case)
     case["case_id"] = f"cds-{hook_instance}"
-    case["context"] = {"source": "cds-hooks", "hookInstance": hook_instance,
-                       **{k: context[k] for k in ("patientId", "encounterId", "userId")
-                          if isinstance(context.get(k), str)}}
+    # snake_case keys, so that decision records mask or drop patient_id like any other context
+    case["context"] = {"source": "cds-hooks", "hook_instance": hook_instance,
+                       "patient_id": str(context["patientId"])}
     return FhirReadResult(case, read.issues, read.sources, read.subject, read.effective)
 
 

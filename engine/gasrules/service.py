@@ -66,6 +66,8 @@ class ServiceConfig:
     feedback_log: str = "cds-feedback.jsonl"
     access_log: bool = True
     cds_window_minutes: float = 0.0
+    settings: str | None = None      # site settings file (strict mode, decision records, shadow)
+    strict: bool = False             # turn strict mode on whatever the settings say
 
 
 @dataclass
@@ -86,13 +88,17 @@ class HttpError(Exception):
 
 # ============================================================================ interpretation
 class Interpreter(Protocol):
-    """What the service needs from the engine (the seam for the change-control Runtime)."""
+    """What the service needs from the engine: the plain engine or the change-control Runtime."""
 
     rulebook: Any
 
     def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]: ...
 
+    def record(self, case: Any, result: dict[str, Any]) -> None: ...
+
     def describe(self) -> dict[str, Any]: ...
+
+    def close(self) -> None: ...
 
 
 class EngineInterpreter:
@@ -106,15 +112,77 @@ class EngineInterpreter:
 
         return interpret(self.rulebook, case, trace)
 
+    def record(self, case: Any, result: dict[str, Any]) -> None:
+        return None
+
     def describe(self) -> dict[str, Any]:
         return {"mode": "engine", "strict": False, "decision_records": False, "shadow": None}
 
+    def close(self) -> None:
+        return None
 
-def make_interpreter(config: ServiceConfig) -> Interpreter:
-    """The interpreter for a configuration. Raises RulebookError for a broken rulebook."""
-    import gasrules
 
-    return EngineInterpreter(gasrules.load_rulebook(config.rulebook))
+class RuntimeInterpreter:
+    """The change-control :class:`~gasrules.runtime.Runtime`: strict mode (checked once, when
+    it is opened), suspensions, decision records and the shadow candidate. Shadow comparison
+    keeps counters, so calls are serialised while shadowing; decision logs lock themselves."""
+
+    def __init__(self, runtime: Any) -> None:
+        self.runtime = runtime
+        self.rulebook = runtime.rulebook
+        self._lock = threading.Lock() if runtime.shadowing else None
+
+    def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
+        if self._lock is None:
+            result = self.runtime.interpret(case, trace)
+        else:
+            with self._lock:
+                result = self.runtime.interpret(case, trace)
+        if "trace" not in result:   # the result contract always has the key
+            result = {**result, "trace": []}
+        return result
+
+    def record(self, case: Any, result: dict[str, Any]) -> None:
+        self.runtime.record(case, result)
+
+    def describe(self) -> dict[str, Any]:
+        rt, settings = self.runtime, self.runtime.settings
+        adm = rt.admission
+        cand = rt.candidate
+        return {"mode": "runtime", "strict": settings.strict,
+                "decision_records": rt.records_decisions,
+                "shadow": dict(cand.identity) if cand is not None else None,
+                "approved_sha256": adm.approved_sha256,
+                "release_manifest": adm.manifest.name if adm.manifest else None,
+                "suspended_rules": [rule for rule, _ in adm.suspended_rules],
+                "settings_from": list(settings.sources)}
+
+    def close(self) -> None:
+        self.runtime.close()
+
+
+def _settings_apply(config: "ServiceConfig", environ: Mapping[str, str]) -> bool:
+    return config.settings is not None or config.strict or any(
+        k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in environ)
+
+
+def make_interpreter(config: ServiceConfig, environ: Mapping[str, str] | None = None
+                     ) -> Interpreter:
+    """The Runtime when site settings apply (``config.settings``, ``config.strict`` or GASRULES_*
+    variables), else the plain engine. Raises RulebookError, RuntimeRefusal, SettingsError."""
+    import os
+
+    environ = os.environ if environ is None else environ
+    if not _settings_apply(config, environ):
+        import gasrules
+
+        return EngineInterpreter(gasrules.load_rulebook(config.rulebook))
+    from .runtime import Runtime
+    from .settings import load_settings
+
+    settings = load_settings(config.settings, env=environ,
+                             strict=True if config.strict else None)
+    return RuntimeInterpreter(Runtime.from_settings(settings, config.rulebook))
 
 
 # ============================================================================ helpers
@@ -225,6 +293,9 @@ class App:
             self.cards.put(rec)
         self._openapi: bytes | None = None
         self._lock = threading.Lock()
+
+    def close(self) -> None:
+        self.interpreter.close()
 
     # -- routing
     ROUTES: tuple[tuple[tuple[str, ...], dict[str, str]], ...] = (
@@ -373,7 +444,9 @@ class App:
                                                     f"({type(exc).__name__})"}
             if isinstance(row, dict) and isinstance(row.get("case_id"), str):
                 stand_in["case_id"] = row["case_id"]
-            return engine_interpret(self.rulebook, stand_in, trace)
+            result = engine_interpret(self.rulebook, stand_in, True)
+            self.interpreter.record(stand_in, result)
+            return result if trace else {**result, "trace": []}
 
     def h_health(self, req: Request) -> Response:
         return Response(200, dumps({
@@ -569,9 +642,11 @@ def make_server(app: App, host: str | None = None, port: int | None = None) -> G
                            app.config.port if port is None else port), handler)
 
 
-def build_app(config: ServiceConfig, interpreter: Interpreter | None = None) -> App:
-    """The app for a configuration: rulebook (or the given interpreter) and CDS key check."""
-    interpreter = interpreter or make_interpreter(config)
+def build_app(config: ServiceConfig, interpreter: Interpreter | None = None, *,
+              environ: Mapping[str, str] | None = None) -> App:
+    """The app for a configuration: the interpreter (engine or Runtime, see
+    :func:`make_interpreter`; ``environ`` defaults to os.environ) and the CDS key check."""
+    interpreter = interpreter or make_interpreter(config, environ)
     verifier = None
     if config.cds_keys:
         from .cdsauth import load_config

@@ -8,7 +8,7 @@ from typing import Optional
 
 import typer
 
-from ..exitcodes import BROKEN_RULEBOOK, OK, USAGE
+from ..exitcodes import BROKEN_RULEBOOK, OK, REFUSED, USAGE
 
 app = typer.Typer(add_completion=False, help="HTTP service with a JSON API and CDS Hooks.")
 
@@ -39,17 +39,25 @@ def serve(
                                           "time only)."),
     access_log: bool = typer.Option(True, "--access-log/--no-access-log",
                                     help="One line per request on stderr."),
+    settings: Optional[Path] = typer.Option(None, "--settings", help="Site settings (strict "
+                                            "mode, decision records, shadow candidate); "
+                                            "GASRULES_* variables also apply."),
+    strict: bool = typer.Option(False, "--strict", help="Refuse to start unless the rulebook "
+                                "matches an approved release."),
 ) -> None:
     """Serve POST /interpret, POST /interpret/batch, GET /health, GET /openapi.json and the
     CDS Hooks endpoints under /cds-services."""
     from ..cdsauth import ConfigError
     from ..errors import RulebookError
+    from ..runtime import RuntimeRefusal
     from ..service import ServiceConfig, build_app, make_server
+    from ..settings import SettingsError
 
     config = ServiceConfig(host=host, port=port, rulebook=str(rulebook) if rulebook else None,
                            cds_keys=str(cds_keys) if cds_keys else None, max_body=max_body,
                            timeout=timeout, max_batch=max_batch, feedback_log=str(feedback_log),
-                           access_log=access_log, cds_window_minutes=cds_window)
+                           access_log=access_log, cds_window_minutes=cds_window,
+                           settings=str(settings) if settings else None, strict=strict)
     try:
         service = build_app(config)
     except RulebookError as exc:
@@ -57,12 +65,16 @@ def serve(
             typer.echo(problem.render(), err=True)
         typer.echo(f"gasrules serve: the rulebook did not load: {exc}", err=True)
         raise typer.Exit(BROKEN_RULEBOOK) from None
-    except ConfigError as exc:
+    except RuntimeRefusal as exc:
+        typer.echo(f"gasrules serve: {exc}", err=True)
+        raise typer.Exit(REFUSED) from None
+    except (ConfigError, SettingsError) as exc:
         typer.echo(f"gasrules serve: {exc}", err=True)
         raise typer.Exit(USAGE) from None
     try:
         server = make_server(service)
     except OSError as exc:
+        service.close()
         typer.echo(f"gasrules serve: cannot listen on {host}:{port}: {exc.strerror}", err=True)
         raise typer.Exit(USAGE) from None
     bound_host, bound_port = server.server_address[:2]
@@ -73,9 +85,17 @@ def serve(
         auth = "CDS endpoints open (no --cds-keys)"
     typer.echo(f"gasrules serve: listening on http://{bound_host}:{bound_port} "
                f"(rulebook {rb.id} {rb.version} sha256:{rb.sha256[:12]}; {auth})")
+    mode = service.interpreter.describe()
+    if mode["mode"] == "runtime":
+        typer.echo(f"settings: strict {'on' if mode['strict'] else 'off'}, decision records "
+                   f"{'on' if mode['decision_records'] else 'off'}, shadow "
+                   f"{'on' if mode['shadow'] else 'off'}")
     typer.echo(_CAUTION)
     sys.stdout.flush()
-    _run(server)
+    try:
+        _run(server)
+    finally:
+        service.close()
     raise typer.Exit(OK)
 
 
