@@ -61,13 +61,14 @@ class BatchOptions:
 class RunHooks:
     """What the runtime settings add to a run. ``rulebook`` replaces the one given (after
     admission: strict mode, suspended rules); ``candidate`` is also run on every case (shadow
-    mode); ``observe(case, result, candidate_result)`` sees every result in input order (decision
-    records, shadow disagreements); ``trace`` asks workers for traced results; ``close`` ends."""
+    mode); ``observe(case, result, candidate_result, unreadable)`` sees every result in input
+    order (decision records, shadow disagreements); ``trace`` asks workers for traced results;
+    ``close`` ends the run (it is called once, also after a failure)."""
 
     rulebook: Any = None
     candidate: Any = None
     trace: bool = False
-    observe: Callable[[Any, dict[str, Any], dict[str, Any] | None], None] | None = None
+    observe: Callable[[Any, dict[str, Any], dict[str, Any] | None, bool], None] | None = None
     close: Callable[[], None] | None = None
     notes: list[str] = field(default_factory=list)
 
@@ -200,7 +201,7 @@ def interpret_chunk(job: _Job, rows: list[Row]) -> list[tuple[Any, ...]]:
         extra = None
         if job.keep:
             other = _safe(job.candidate, row, False) if job.candidate is not None else None
-            extra = (row.case, result, other)
+            extra = (row.case, result, other, bool(row.errors))
         out.append((rec, result["status"], result["disorders"], bool(row.errors), extra))
     return out
 
@@ -282,7 +283,7 @@ def run_batch(rb: Any, source: str | Path, target: str | Path = "-", options: Ba
     hooks = hooks or RunHooks()
     rb = hooks.rulebook if hooks.rulebook is not None else rb
     stderr = stderr if stderr is not None else sys.stderr
-    summary = BatchSummary(output=str(target), rulebook=dict(rb.identity), notes=list(hooks.notes))
+    summary = BatchSummary(output=str(target), rulebook=dict(rb.identity), notes=hooks.notes)
     t0 = time.perf_counter()
     try:
         with open_table(source, analytes_of(rb), mapping=options.mapping, fmt=options.in_format) as table:

@@ -113,7 +113,7 @@ class OrderedPool(Generic[P, C, R]):
         pending: deque[Future[R]] = deque()
         try:
             for chunk in chunks:
-                pending.append(self._executor.submit(_call, self.fn, chunk))
+                pending.append(self._submit(chunk))
                 if len(pending) >= self.window:
                     yield self._result(pending.popleft())
             while pending:
@@ -122,13 +122,23 @@ class OrderedPool(Generic[P, C, R]):
             for f in pending:
                 f.cancel()
 
+    def _submit(self, chunk: C) -> "Future[R]":
+        assert self._executor is not None
+        try:
+            return self._executor.submit(_call, self.fn, chunk)
+        except BrokenProcessPool as exc:
+            raise PoolError(_DIED) from exc
+
     @staticmethod
     def _result(future: "Future[R]") -> R:
         try:
             return future.result()
         except BrokenProcessPool as exc:
-            raise PoolError("a worker process died before returning its chunk "
-                            "(killed or out of memory); no partial output was kept") from exc
+            raise PoolError(_DIED) from exc
+
+
+_DIED = ("a worker process died before returning its chunk (killed or out of memory); "
+         "the run stops so that no row is lost silently")
 
 
 def imap_ordered(fn: Callable[[P, C], R], chunks: Iterable[C], payload: P = None,

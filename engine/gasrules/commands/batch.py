@@ -62,16 +62,18 @@ def runtime_hooks(settings_file: Optional[Path], rulebook: Optional[Path], stric
         raise _fail(exitcodes.REFUSED, str(exc))
     except SettingsError as exc:
         raise _fail(exitcodes.USAGE, str(exc))
-    logging = getattr(rt, "_log", None) is not None
-    shadow = getattr(rt, "_shadow", None) is not None
+    logging, shadow = rt.records_decisions, rt.shadowing
     notes = []
     if rt.admission.suspended_rules:
         notes.append("suspended rules: " + ", ".join(f"{r} ({why})" for r, why in rt.admission.suspended_rules))
     if logging:
         notes.append(f"decision records appended to {settings.decision_log}")
 
-    def observe(case: Any, result: dict[str, Any], other: Any) -> None:
-        rt._after(case, result, other, False)  # the runtime's own record/shadow step
+    def observe(case: Any, result: dict[str, Any], other: Any, unreadable: bool) -> None:
+        if unreadable:
+            rt.record(case, result)        # logged, one entry per row; nothing to compare
+        else:
+            rt.observe(case, result, other)
 
     def close() -> None:
         if shadow:
