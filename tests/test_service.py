@@ -23,7 +23,8 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules.service import App, EngineInterpreter, Request, ServiceConfig, build_app, make_server
+from gasrules.httpserver import make_server
+from gasrules.service import App, EngineInterpreter, Request, ServiceConfig, build_app
 
 ROOT = Path(__file__).parents[1]
 DEMO_CASE = json.loads((ROOT / "tools" / "demo" / "case.json").read_text())

@@ -21,8 +21,10 @@ running at ``timeout`` answers the remaining rows as rejected (N in, N out). Sta
 bad JSON or request, 401/403 bearer check, 404 unknown path or CDS service, 405 method, 411 no
 Content-Length, 412 CDS prefetch missing, 413 too large, 415 content type, 500 internal.
 
-Interpretation goes through an :class:`Interpreter`: the plain engine today; the change-control
-``Runtime`` (strict mode, decision records, shadow mode) plugs in at :func:`make_interpreter`.
+Interpretation goes through an :class:`Interpreter`: the plain engine, or the change-control
+``Runtime`` (strict mode, decision records, shadow mode) when site settings apply
+(:func:`make_interpreter`). The socket layer (body limits, timeouts) is :mod:`gasrules.httpserver`;
+:class:`App` itself is a plain function of a :class:`Request`.
 """
 
 from __future__ import annotations
@@ -34,9 +36,7 @@ import traceback
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Any, Protocol
-from urllib.parse import parse_qs, urlsplit
 
 import orjson
 
@@ -44,14 +44,13 @@ from . import __version__, cdshooks
 from .cdsauth import AuthError, TokenVerifier
 from .evaluator import UNREADABLE
 
-__all__ = ["App", "EngineInterpreter", "Interpreter", "Response", "ServiceConfig",
-           "make_interpreter", "make_server"]
+__all__ = ["App", "EngineInterpreter", "Interpreter", "Response", "RuntimeInterpreter",
+           "ServiceConfig", "build_app", "make_interpreter"]
 
 JSON = "application/json"
 FHIR_JSON = "application/fhir+json"
 NDJSON = "application/x-ndjson"
 LINES_TYPES = (NDJSON, "application/jsonl", "application/jsonlines", "application/json-lines")
-DRAIN_LIMIT = 16 * 1024 * 1024   # an oversized body up to this size is read and dropped
 
 
 @dataclass
@@ -190,7 +189,7 @@ def dumps(obj: Any) -> bytes:
     return orjson.dumps(obj, option=orjson.OPT_SERIALIZE_NUMPY)
 
 
-def _error_body(status: int, code: str, message: str, field: str = "",
+def error_body(status: int, code: str, message: str, field: str = "",
                 cds: bool = False) -> bytes:
     err: dict[str, Any] = {"code": code, "message": message}
     if field:
@@ -338,10 +337,10 @@ class App:
                                 {"Allow": ", ".join(methods)})
             return getattr(self, f"h_{name}")(req)
         except HttpError as exc:
-            return Response(exc.status, _error_body(exc.status, exc.code, exc.message, exc.field,
+            return Response(exc.status, error_body(exc.status, exc.code, exc.message, exc.field,
                                                     cds), headers=exc.headers)
         except cdshooks.CdsError as exc:
-            return Response(exc.status, _error_body(exc.status, exc.code, exc.message,
+            return Response(exc.status, error_body(exc.status, exc.code, exc.message,
                                                     exc.field, True))
         except AuthError as exc:
             headers = {"WWW-Authenticate": f'Bearer error="invalid_token", '
@@ -349,11 +348,11 @@ class App:
                 if exc.status == 401 else {}
             if exc.status == 503:
                 headers["Retry-After"] = "5"
-            return Response(exc.status, _error_body(exc.status, exc.code, exc.message, "",
+            return Response(exc.status, error_body(exc.status, exc.code, exc.message, "",
                                                     True), headers=headers)
         except Exception:  # noqa: BLE001 - any bug becomes a JSON 500, the trace goes to the log
             traceback.print_exc(file=sys.stderr)
-            return Response(500, _error_body(500, "internal", "internal error; the service "
+            return Response(500, error_body(500, "internal", "internal error; the service "
                                              "log has the details", "", cds))
 
     # -- JSON API
@@ -488,8 +487,8 @@ class App:
         return Response(200, dumps(cdshooks.discovery(self.rulebook)))
 
     def h_cds_service(self, req: Request) -> Response:
+        self._auth(req, req.params["id"])
         service = self._service(req)
-        self._auth(req, service.id)
         _require_type(req.headers, (JSON, FHIR_JSON))
         body = _parse_json(req.body)
         context = cdshooks.read_request(body, service)
@@ -507,8 +506,8 @@ class App:
         return Response(200, dumps({"cards": [card]}))
 
     def h_cds_feedback(self, req: Request) -> Response:
+        claims = self._auth(req, req.params["id"])
         service = self._service(req)
-        claims = self._auth(req, service.id)
         _require_type(req.headers, (JSON,))
         body = _parse_json(req.body)
         records = cdshooks.feedback_records(body, service, self.cards, claims, datetime.now(UTC))
@@ -521,125 +520,6 @@ def _uuid() -> str:
     import uuid
 
     return str(uuid.uuid4())
-
-
-# ============================================================================ the socket layer
-class _Handler(BaseHTTPRequestHandler):
-    protocol_version = "HTTP/1.1"
-    server_version = f"gasrules/{__version__}"
-    disable_nagle_algorithm = True   # headers and body leave at once (no 40 ms delayed-ACK stall)
-    app: App                      # set on the subclass made by make_server
-    access_log: bool = True
-
-    def _dispatch(self) -> None:
-        split = urlsplit(self.path)
-        headers = {k.lower(): v for k, v in self.headers.items()}
-        body = b""
-        if self.command in ("POST", "PUT", "PATCH"):
-            body_or_response = self._read_body(headers)
-            if isinstance(body_or_response, Response):
-                self._send(body_or_response, split.path)
-                return
-            body = body_or_response
-        req = Request(self.command, split.path, parse_qs(split.query, keep_blank_values=True),
-                      headers, body)
-        self._send(self.app.handle(req), split.path)
-
-    def _read_body(self, headers: Mapping[str, str]) -> bytes | Response:
-        cds = self.path.startswith("/cds-services")
-        if "chunked" in headers.get("transfer-encoding", "").lower():
-            self.close_connection = True
-            return Response(411, _error_body(411, "http.length_required", "chunked bodies are "
-                                             "not accepted; send Content-Length",
-                                             "Content-Length", cds))
-        raw = headers.get("content-length")
-        try:
-            length = int(raw) if raw is not None else -1
-        except ValueError:
-            length = -1
-        if length < 0:
-            self.close_connection = True
-            return Response(411, _error_body(411, "http.length_required", "Content-Length is "
-                                             "required (a whole number of bytes)",
-                                             "Content-Length", cds))
-        limit = self.app.config.max_body
-        if length > limit:
-            self.close_connection = True
-            if length <= DRAIN_LIMIT:
-                self._drain(length)
-            return Response(413, _error_body(413, "http.too_large", f"body of {length} bytes "
-                                             f"exceeds the limit of {limit} bytes",
-                                             "Content-Length", cds))
-        try:
-            body = self.rfile.read(length)
-        except TimeoutError:
-            body = b""
-        if len(body) < length:
-            self.close_connection = True
-            return Response(408, _error_body(408, "http.timeout", f"body not received within "
-                                             f"{self.app.config.timeout:g} s ({len(body)} of "
-                                             f"{length} bytes)", "body", cds))
-        return body
-
-    def _drain(self, length: int) -> None:
-        try:
-            while length > 0:
-                chunk = self.rfile.read(min(length, 65536))
-                if not chunk:
-                    return
-                length -= len(chunk)
-        except (TimeoutError, OSError):
-            return
-
-    def _send(self, resp: Response, path: str) -> None:
-        started = getattr(self, "_t0", None)
-        self.send_response(resp.status)
-        self.send_header("Content-Type", resp.content_type)
-        self.send_header("Content-Length", str(len(resp.body)))
-        self.send_header("Cache-Control", "no-store")
-        for k, v in resp.headers.items():
-            self.send_header(k, v)
-        if self.close_connection:
-            self.send_header("Connection", "close")
-        self.end_headers()
-        if self.command != "HEAD":
-            self.wfile.write(resp.body)
-        if self.access_log and started is not None:
-            ms = (time.perf_counter() - started) * 1000
-            sys.stderr.write(f"{self.address_string()} {self.command} {path} {resp.status} "
-                             f"{len(resp.body)}B {ms:.1f}ms\n")
-
-    def handle_one_request(self) -> None:
-        self._t0 = time.perf_counter()
-        super().handle_one_request()
-
-    def send_error(self, code: int, message: str | None = None, explain: str | None = None) -> None:
-        """http.server's own errors (bad request line, headers too long) as JSON too."""
-        self.close_connection = True
-        text = message or self.responses.get(code, ("error",))[0]
-        try:
-            self._send(Response(code, _error_body(code, "http.protocol", text)), "-")
-        except OSError:
-            pass
-
-    def log_message(self, format: str, *args: Any) -> None:  # noqa: A002 - http.server's name
-        pass  # access lines are written by _send
-
-    do_GET = do_POST = do_PUT = do_DELETE = do_PATCH = do_OPTIONS = _dispatch
-
-
-class GasrulesServer(ThreadingHTTPServer):
-    daemon_threads = True
-    allow_reuse_address = True
-    request_queue_size = 128
-
-
-def make_server(app: App, host: str | None = None, port: int | None = None) -> GasrulesServer:
-    """A bound server (port 0 picks a free port: read ``server.server_address``)."""
-    handler = type("GasrulesHandler", (_Handler,), {
-        "app": app, "timeout": app.config.timeout, "access_log": app.config.access_log})
-    return GasrulesServer((host or app.config.host,
-                           app.config.port if port is None else port), handler)
 
 
 def build_app(config: ServiceConfig, interpreter: Interpreter | None = None, *,

@@ -50,7 +50,8 @@ def serve(
     from ..cdsauth import ConfigError
     from ..errors import RulebookError
     from ..runtime import RuntimeRefusal
-    from ..service import ServiceConfig, build_app, make_server
+    from ..httpserver import make_server
+    from ..service import ServiceConfig, build_app
     from ..settings import SettingsError
 
     config = ServiceConfig(host=host, port=port, rulebook=str(rulebook) if rulebook else None,
