@@ -336,6 +336,26 @@ def test_concurrent_clients_get_their_own_results(server: Server) -> None:
     assert failures == []
 
 
+def test_connections_beyond_the_limit_get_503(tmp_path: Path) -> None:
+    srv = start(tmp_path, max_connections=1)
+    held = http.client.HTTPConnection("127.0.0.1", srv.port, timeout=10)
+    try:
+        held.request("GET", "/health")
+        assert held.getresponse().read() and True     # the one slot stays taken (keep-alive)
+        status, headers, data = srv.call("GET", "/health")
+        assert status == 503 and headers["retry-after"] == "1"
+        assert json.loads(data)["error"]["code"] == "http.busy"
+    finally:
+        held.close()
+    for _ in range(50):                                # the slot frees when the client leaves
+        if srv.call("GET", "/health")[0] == 200:
+            break
+        time.sleep(0.05)
+    else:
+        pytest.fail("the connection slot was never released")
+    srv.close()
+
+
 # ============================================================================ OpenAPI
 def _openapi_validator(doc: dict[str, Any], name: str) -> Any:
     from jsonschema import Draft202012Validator

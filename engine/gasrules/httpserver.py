@@ -10,6 +10,7 @@ own protocol errors, is JSON; one access line per request goes to stderr when en
 from __future__ import annotations
 
 import sys
+import threading
 import time
 from collections.abc import Mapping
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
@@ -129,9 +130,41 @@ class _Handler(BaseHTTPRequestHandler):
 
 
 class GasrulesServer(ThreadingHTTPServer):
+    """One thread per connection, at most ``max_connections`` at once: a connection beyond
+    that gets an immediate 503 (Retry-After) instead of a thread."""
+
     daemon_threads = True
     allow_reuse_address = True
     request_queue_size = 128
+
+    def __init__(self, address: tuple[str, int], handler: Any, max_connections: int) -> None:
+        super().__init__(address, handler)
+        self.max_connections = max_connections
+        self._slots = threading.BoundedSemaphore(max_connections)
+
+    def process_request(self, request: Any, client_address: Any) -> None:
+        if not self._slots.acquire(blocking=False):
+            body = error_body(503, "http.busy", f"the service already serves "
+                              f"{self.max_connections} connections; retry shortly")
+            try:
+                request.sendall(b"HTTP/1.1 503 Service Unavailable\r\nContent-Type: "
+                                b"application/json\r\nRetry-After: 1\r\nConnection: close\r\n"
+                                b"Content-Length: " + str(len(body)).encode() + b"\r\n\r\n" + body)
+            except OSError:
+                pass
+            self.shutdown_request(request)
+            return
+        try:
+            super().process_request(request, client_address)
+        except BaseException:
+            self._slots.release()
+            raise
+
+    def process_request_thread(self, request: Any, client_address: Any) -> None:
+        try:
+            super().process_request_thread(request, client_address)
+        finally:
+            self._slots.release()
 
 
 def make_server(app: App, host: str | None = None, port: int | None = None) -> GasrulesServer:
@@ -139,4 +172,5 @@ def make_server(app: App, host: str | None = None, port: int | None = None) -> G
     handler = type("GasrulesHandler", (_Handler,), {
         "app": app, "timeout": app.config.timeout, "access_log": app.config.access_log})
     return GasrulesServer((host or app.config.host,
-                           app.config.port if port is None else port), handler)
+                           app.config.port if port is None else port), handler,
+                          app.config.max_connections)

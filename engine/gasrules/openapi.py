@@ -27,7 +27,7 @@ ERROR_STATUSES = {
     "413": "Body larger than the size limit, or a batch with too many cases",
     "415": "Content-Type not accepted for this endpoint",
     "500": "Internal error (details in the service log)",
-    "503": "Temporarily unable to accept tokens (replay cache full); retry",
+    "503": "Busy (connection limit, replay cache full, or a batch past the timeout); retry",
 }
 
 
@@ -170,7 +170,7 @@ def openapi_document(rulebook: Any) -> dict[str, Any]:
                                "FHIR Bundle (application/fhir+json) for FHIR input or fhir=1",
                 "content": {"application/json": {"schema": _ref("Result")},
                             "application/fhir+json": {"schema": _ref("FhirBundle")}}},
-                **_errors("400", "408", "411", "413", "415", "500")}}},
+                **_errors("400", "408", "411", "413", "415", "500", "503")}}},
         "/interpret/batch": {"post": {
             "summary": "Interpret many cases: N in, N out, in order, errors inline",
             "parameters": [trace],
@@ -183,11 +183,11 @@ def openapi_document(rulebook: Any) -> dict[str, Any]:
                 "content": {"application/json": {"schema": {"type": "array",
                                                             "items": _ref("Result")}},
                             "application/x-ndjson": {"schema": {"type": "string"}}}},
-                **_errors("400", "408", "411", "413", "415", "500")}}},
+                **_errors("400", "408", "411", "413", "415", "500", "503")}}},
         "/health": {"get": {
             "summary": "Rulebook identity, engine version and settings in force",
             "responses": {"200": {"description": "Service is up", **_json(_ref("Health"))},
-                          **_errors("500")}}},
+                          **_errors("500", "503")}}},
         "/openapi.json": {"get": {
             "summary": "This description",
             "responses": {"200": {"description": "OpenAPI 3.1 document",

@@ -65,6 +65,7 @@ class ServiceConfig:
     feedback_log: str = "cds-feedback.jsonl"
     access_log: bool = True
     cds_window_minutes: float = 0.0
+    max_connections: int = 256       # connections served at once; more get 503
     settings: str | None = None      # site settings file (strict mode, decision records, shadow)
     strict: bool = False             # turn strict mode on whatever the settings say
 
@@ -455,6 +456,7 @@ class App:
             "runtime": self.interpreter.describe(),
             "cds_auth": "jwt" if self.verifier else "off",
             "limits": {"max_body_bytes": self.config.max_body,
+                       "max_connections": self.config.max_connections,
                        "timeout_seconds": self.config.timeout,
                        "max_batch_cases": self.config.max_batch}}))
 

@@ -37,6 +37,8 @@ def serve(
                                      help="Minutes before the blood gas within which other "
                                           "prefetched results are used (0: same collection "
                                           "time only)."),
+    max_connections: int = typer.Option(256, "--max-connections", min=1, max=10_000,
+                                        help="Connections served at once; more get 503."),
     access_log: bool = typer.Option(True, "--access-log/--no-access-log",
                                     help="One line per request on stderr."),
     settings: Optional[Path] = typer.Option(None, "--settings", help="Site settings (strict "
@@ -58,7 +60,8 @@ def serve(
                            cds_keys=str(cds_keys) if cds_keys else None, max_body=max_body,
                            timeout=timeout, max_batch=max_batch, feedback_log=str(feedback_log),
                            access_log=access_log, cds_window_minutes=cds_window,
-                           settings=str(settings) if settings else None, strict=strict)
+                           settings=str(settings) if settings else None, strict=strict,
+                           max_connections=max_connections)
     try:
         service = build_app(config)
     except RulebookError as exc:
