@@ -53,6 +53,12 @@ def plan_tasks(source: str | Path, row_groups_per_task: int = ROW_GROUPS_PER_TAS
     src = Path(source)
     files = parquet_files(src)
     if src.is_dir():
+        names = pq.ParquetFile(files[0]).schema_arrow.names
+        for f in files[1:]:                  # footers only: every part must have the same columns
+            other = pq.ParquetFile(f).schema_arrow.names
+            if other != names:
+                raise TableError(str(f), f"its columns differ from the first part's ({files[0].relative_to(src)})",
+                                 ", ".join(names))
         return [Task(i, str(f), None, str(f.relative_to(src))) for i, f in enumerate(files)]
     groups = pq.ParquetFile(src).metadata.num_row_groups
     if groups <= row_groups_per_task:
@@ -110,16 +116,17 @@ def run_distributed(rb: Any, source: str | Path, target: str | Path, options: Ba
     partial = _partial_dir(target)
     partial.mkdir(parents=True)
     t0 = time.perf_counter()
-    own_cluster = None
     try:
-        if client is None:
-            client, own_cluster = _connect(scheduler, local_workers)
+        own = client is None
+        if own:
+            client, cluster = _connect(scheduler, local_workers)
         try:
             parts = _submit(client, rb, tasks, options, str(partial))
         finally:
-            if own_cluster is not None:
+            if own:                              # close what this run opened, never a caller's client
                 client.close()
-                own_cluster.close()
+                if cluster is not None:
+                    cluster.close()
         summary = _merge(parts, target, rb)
         summary.seconds = time.perf_counter() - t0
         (partial / SUCCESS).write_text(json.dumps(summary.as_dict(), indent=2) + "\n", encoding="utf-8")
