@@ -187,3 +187,21 @@ def test_parameter_documentation_only_is_patch(tmp_path: Path, edit: tuple[str, 
     d = diff_paths(SHIPPED, tuned(tmp_path, "doc", [edit], version="1.0.1"))
     assert {(c.key, c.aspect, c.cls) for c in d.changes if c.kind == "parameter"} == {("ag_high", "label", "patch")}
     assert d.version_error is None
+
+
+def test_approvals_from_release_manifests_are_metadata(tmp_path: Path) -> None:
+    from gasrules.registry import write_manifest
+
+    new = tuned(tmp_path, "a", [(AG_HIGH, "  ag_high:\n    value: 13\n")], version="1.0.1")
+    old_sha = diff_paths(SHIPPED, SHIPPED).old.sha256
+    releases = tmp_path / "releases"
+    write_manifest(releases, {"rulebook": {"id": "adult-default", "version": "1.0.0", "sha256": old_sha},
+                              "approvers": [{"name": "A. Reviewer (invented)", "role": "clinical lead"}],
+                              "date": "2026-12-01T00:00:00Z"})
+    d = diff_paths(SHIPPED, new, releases)
+    assert d.old.approvals and d.old.approvals[0]["approvers"][0]["name"] == "A. Reviewer (invented)"
+    assert d.new.approvals == []
+    [c] = changes(d, "metadata", "approvals")
+    assert (c.cls, c.new) == ("none", "not approved")
+    assert "A. Reviewer (invented) (clinical lead)" in c.old
+    assert d.required == "patch" and d.version_error is None

@@ -59,6 +59,7 @@ class Side:
     status: str
     sha256: str
     files: list[str]
+    approvals: list[dict[str, Any]] = field(default_factory=list)   # from release manifests, when given
 
 
 @dataclass
@@ -162,8 +163,34 @@ def _side(path: str | Path, res: Any) -> Side:
                 [d.file for d in res.documents])
 
 
-def diff_paths(old: str | Path, new: str | Path) -> RulebookDiff:
-    return diff_resolved(load_resolved(old), load_resolved(new), str(old), str(new))
+def diff_paths(old: str | Path, new: str | Path, release_dir: str | Path | None = None) -> RulebookDiff:
+    """The diff of two rulebook files; with ``release_dir``, each side's approvals from its manifests."""
+    d = diff_resolved(load_resolved(old), load_resolved(new), str(old), str(new))
+    if release_dir is not None:
+        attach_approvals(d, Path(release_dir))
+    return d
+
+
+def attach_approvals(d: RulebookDiff, release_dir: Path) -> None:
+    """Approvals (who, role, date, manifest) of each side, read from intact release manifests
+    whose rulebook hash matches; an approval change is metadata (class none)."""
+    from .registry import read_manifests
+
+    entries = [e for e in read_manifests(release_dir) if not e.problem]
+    for side in (d.old, d.new):
+        side.approvals = [{"manifest": e.path.name, "date": e.manifest.get("date", ""),
+                           "approvers": e.manifest.get("approvers") or []}
+                          for e in entries if e.rulebook.get("sha256") == side.sha256]
+    if d.old.approvals != d.new.approvals:
+        d.changes.append(Change("metadata", "approvals", "value", "none", "release approvals (not clinical content)",
+                                _approval_text(d.old.approvals), _approval_text(d.new.approvals)))
+
+
+def _approval_text(approvals: list[dict[str, Any]]) -> str:
+    if not approvals:
+        return "not approved"
+    return "; ".join(f"{a['date']}: " + ", ".join(f"{p.get('name')} ({p.get('role')})" for p in a["approvers"])
+                     for a in approvals)
 
 
 def diff_resolved(old: Any, new: Any, old_path: str = "old", new_path: str = "new") -> RulebookDiff:

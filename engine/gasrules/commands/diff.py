@@ -27,7 +27,9 @@ class Format(str, Enum):
 def diff(old: Path = typer.Argument(..., help="The previous rulebook (or overlay) YAML."),
          new: Path = typer.Argument(..., help="The proposed rulebook (or overlay) YAML."),
          fmt: Format = typer.Option(Format.text, "--format", "-f", help="text, json or markdown."),
-         output: Optional[Path] = typer.Option(None, "--output", "-o", help="Write the report to this file.")) -> None:
+         output: Optional[Path] = typer.Option(None, "--output", "-o", help="Write the report to this file."),
+         releases: Optional[Path] = typer.Option(None, "--releases", help="Release directory: show each side's "
+                                                 "approvals from its release manifests.")) -> None:
     """Compare the resolved content of two rulebooks by stable ids and class every change
     (patch: tuning inside guard rails; minor: additive; major: change of meaning). Fails when
     the version bump is smaller than the change class needs."""
@@ -36,7 +38,7 @@ def diff(old: Path = typer.Argument(..., help="The previous rulebook (or overlay
     from ..rulediff import RENDERERS, diff_paths
 
     try:
-        result = diff_paths(old, new)
+        result = diff_paths(old, new, releases)
     except RulebookError as exc:
         typer.echo(render_problems(exc.problems, ""), err=True)
         raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
