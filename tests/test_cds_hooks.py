@@ -226,6 +226,16 @@ def test_a_window_takes_chemistry_drawn_shortly_before(rulebook: Any) -> None:
     assert sodium in wide.resources and wide.left_out == 0
 
 
+def test_a_withdrawn_later_gas_does_not_hide_the_final_one(rulebook: Any) -> None:
+    final = spec_style_gas("2031-03-14T06:00:00Z", 7.31, 31, 15.2)
+    withdrawn = [{**o, "status": "entered-in-error"}
+                 for o in spec_style_gas("2031-03-14T09:30:00Z", 7.40, 40, 24)]
+    selection = cdshooks.gather_prefetch(request_body(bundle_of(final + withdrawn)), PATIENT,
+                                         rulebook)
+    assert selection is not None
+    assert [o["id"] for o in selection.resources] == [o["id"] for o in final]
+
+
 def test_no_blood_gas_gives_no_cards(server: Server, keys: dict[str, Any]) -> None:
     for observations in (None, bundle_of([])):
         status, _, out = call(server, keys, "POST", f"/cds-services/{SERVICE}",

@@ -111,6 +111,33 @@ def start_server(extra: list[str], feedback_log: Path) -> tuple[subprocess.Popen
     return proc, int(line.split("listening on http://")[1].split()[0].rsplit(":", 1)[1])
 
 
+def jwt_verify_cost(n: int = 300) -> list[str]:
+    """Per-token cost of the CDS bearer check (ES384 and RS384), in process, tokens pre-signed."""
+    import jwt
+    from cryptography.hazmat.primitives.asymmetric import ec, rsa
+
+    sys.path.insert(0, str(ROOT / "engine"))
+    from gasrules.cdsauth import Issuer, AuthConfig, TokenVerifier
+
+    out = []
+    for alg, key in (("ES384", ec.generate_private_key(ec.SECP384R1())),
+                     ("RS384", rsa.generate_private_key(public_exponent=65537, key_size=2048))):
+        iss = "https://ehr.example.org"
+        config = AuthConfig(issuers={iss: Issuer(iss, {"k": key.public_key()})},
+                            algorithms=(alg,), replay_cache_size=n + 100)
+        verifier = TokenVerifier(config, "https://cds.example.org")
+        now = int(time.time())
+        tokens = [jwt.encode({"iss": iss, "aud": "https://cds.example.org/cds-services",
+                              "exp": now + 120, "iat": now, "jti": str(uuid.uuid4())}, key,
+                             algorithm=alg, headers={"kid": "k", "typ": "JWT"}) for _ in range(n)]
+        t0 = time.perf_counter()
+        for tok in tokens:
+            verifier.verify(f"Bearer {tok}", "/cds-services", None)
+        per = (time.perf_counter() - t0) / n * 1000
+        out.append(f"JWT check {alg}: {per:.3f} ms per token ({n} tokens, in process)")
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--seconds", type=float, default=5.0, help="duration of each level (1-60)")
@@ -119,6 +146,7 @@ def main(argv: list[str] | None = None) -> int:
                     help="any of: interpret, interpret-notrace, batch, cds, health")
     ap.add_argument("--batch-size", type=int, default=100, help="cases per batch request")
     ap.add_argument("--json", action="store_true", help="also print the figures as JSON")
+    ap.add_argument("--jwt", action="store_true", help="also time the CDS bearer-token check")
     args = ap.parse_args(argv)
     if not 1 <= args.seconds <= 60:
         ap.error("--seconds must be within 1-60 (the load test is bounded)")
@@ -153,6 +181,9 @@ def main(argv: list[str] | None = None) -> int:
         proc.terminate()
         proc.wait(timeout=20)
         log.unlink(missing_ok=True)
+    if args.jwt:
+        for line in jwt_verify_cost():
+            print(line)
     if args.json:
         print(json.dumps(rows, indent=1))
     return 0

@@ -6,8 +6,8 @@ Hooks 2.0.1 (STU2) and accepts the 3.0 ballot fields (shared/interop.md section 
 * discovery lists one service per row of :data:`SERVICES`, each with two prefetch templates:
   the patient (for age from ``birthDate``) and the patient's Observations for every LOINC code
   the rulebook reads;
-* a call takes the prefetched Observations, picks the most recent blood gas (the latest pH, else
-  PCO2, collection time) and the results collected at that same time, reads them with
+* a call takes the prefetched Observations, picks the most recent blood gas (the latest final pH
+  or PCO2 collection time) and the results collected at that same time, reads them with
   :func:`gasrules.fhir.case_from_fhir` and interprets them;
 * the card: the headline as summary (< 140 characters), the findings, what was not assessed,
   input problems, the results used and the cautions as detail; the indicator follows the most
@@ -75,6 +75,7 @@ OVERRIDE_REASONS = (
     ("disagree", "Disagree with the interpretation"),
 )
 ANCHOR_INPUTS = ("ph", "pco2")  # the latest of these sets the collection time of "the" gas
+USABLE_STATUSES = ("final", "amended", "corrected")   # what the FHIR reader uses
 SUMMARY_LIMIT = 139              # card.summary: one sentence, < 140 characters
 _SEVERITY_RANK = {"info": 0, "warning": 1, "critical": 2}
 
@@ -239,7 +240,8 @@ def _latest_gas(observations: list[dict[str, Any]], others: list[dict[str, Any]]
 
     index = loinc_index(rulebook.inputs)
     timed = [(effective_time(o), _inputs_of(o, index), o) for o in observations]
-    anchors = [t for t, names, _ in timed if t is not None and names & set(ANCHOR_INPUTS)]
+    anchors = [t for t, names, o in timed if t is not None and names & set(ANCHOR_INPUTS)
+               and o.get("status") in USABLE_STATUSES]
     if not anchors:
         return None
     at = max(anchors)
@@ -248,7 +250,7 @@ def _latest_gas(observations: list[dict[str, Any]], others: list[dict[str, Any]]
     if window > timedelta(0):   # chemistry drawn a little earlier, newest first per input
         for t, names, o in sorted((x for x in timed if x[0] is not None and at - window <= x[0] < at),
                                   key=lambda x: x[0], reverse=True):
-            if names and not names & covered:
+            if names and not names & covered and o.get("status") in USABLE_STATUSES:
                 chosen.append(o)
                 covered |= names
     return Selection(resources=others + chosen, collected=at, observations_seen=len(observations),

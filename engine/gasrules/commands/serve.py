@@ -83,6 +83,8 @@ def serve(
         raise typer.Exit(USAGE) from None
     bound_host, bound_port = server.server_address[:2]
     rb = service.rulebook
+    if service.verifier is not None and service.verifier.config.audience is None:
+        service.verifier.audience_base = f"http://{bound_host}:{bound_port}"
     if service.verifier is not None:
         auth = f"CDS bearer JWT required (aud base {service.verifier.audience_base})"
     else:
