@@ -36,8 +36,8 @@ from .pool import OrderedPool, chunked
 from .tabular import (Column, ColumnMapping, Row, Table, analytes_of, interpret_row,
                       open_table, open_writer)
 
-__all__ = ["BatchOptions", "BatchSummary", "RunHooks", "Progress", "output_columns",
-           "result_record", "run_batch", "interpret_chunk", "RESULT_COLUMNS"]
+__all__ = ["BatchOptions", "BatchSummary", "RunHooks", "Progress", "output_columns", "record_values",
+           "result_record", "run_batch", "interpret_chunk", "iter_results", "RESULT_COLUMNS"]
 
 RESULT_COLUMNS = ("case_id", "status", "headline", "disorders", "qualifiers")
 TAIL_COLUMNS = ("findings", "errors")
@@ -156,26 +156,33 @@ def output_columns(rb: Any, table: Table, options: BatchOptions) -> tuple[list[C
     return cols, renames
 
 
-def result_record(row: Row, result: dict[str, Any], renames: Sequence[tuple[str, str]],
-                  values: Sequence[str], full_json: bool) -> dict[str, Any]:
-    """One flat output record: pass-through columns then the result columns."""
-    rec: dict[str, Any] = {out: row.passthrough.get(name) for name, out in renames}
+def record_values(row: Row, result: dict[str, Any], renames: Sequence[tuple[str, str]],
+                  values: Sequence[str], full_json: bool) -> list[Any]:
+    """One output record as values in the order of :func:`output_columns`."""
+    passthrough = row.passthrough
+    out: list[Any] = [passthrough.get(name) for name, _ in renames]
     case_id = result.get("case_id")
     if case_id is None:
         raw = row.case.get("case_id") if isinstance(row.case, dict) else None
         case_id = None if raw is None else str(raw)
     got = result["values"]
-    qualifiers = result["qualifiers"]
-    rec.update(case_id=case_id, status=result["status"], headline=result["headline"],
-               disorders=list(result["disorders"]),
-               qualifiers=[f"{d}:{q}" for d, q in qualifiers.items()])
-    for n in values:
-        rec[n] = got.get(n)
-    rec["findings"] = [f["code"] for f in result["findings"]]
-    rec["errors"] = [{k: str(e.get(k, "")) for k in ERROR_FIELDS} for e in result["errors"]]
+    out += [case_id, result["status"], result["headline"], list(result["disorders"]),
+            [f"{d}:{q}" for d, q in result["qualifiers"].items()]]
+    out += [got.get(n) for n in values]
+    out.append([f["code"] for f in result["findings"]])
+    out.append([{k: str(e.get(k, "")) for k in ERROR_FIELDS} for e in result["errors"]])
     if full_json:
-        rec["result"] = result
-    return rec
+        out.append(result)
+    return out
+
+
+def result_record(row: Row, result: dict[str, Any], renames: Sequence[tuple[str, str]],
+                  values: Sequence[str], full_json: bool) -> dict[str, Any]:
+    """One flat output record as a dict keyed by output column name."""
+    names = [out for _, out in renames] + list(RESULT_COLUMNS) + list(values) + list(TAIL_COLUMNS)
+    if full_json:
+        names.append("result")
+    return dict(zip(names, record_values(row, result, renames, values, full_json)))
 
 
 # ----------------------------------------------------------------------------- workers
@@ -192,12 +199,12 @@ class _Job:
 
 
 def interpret_chunk(job: _Job, rows: list[Row]) -> list[tuple[Any, ...]]:
-    """Worker: rows -> [(record, status, disorders, unreadable, hook data or None)]."""
+    """Worker: rows -> [(record values, status, disorders, unreadable, hook data or None)]."""
     out = []
     trace = job.trace or job.full_json
     for row in rows:
         result = _safe(job.rulebook, row, trace)
-        rec = result_record(row, result, job.renames, job.values, job.full_json)
+        rec = record_values(row, result, job.renames, job.values, job.full_json)
         extra = None
         if job.keep:
             other = _safe(job.candidate, row, False) if job.candidate is not None else None
@@ -256,8 +263,9 @@ class Progress:
 
 def records(rb: Any, table: Table, options: BatchOptions, summary: BatchSummary,
             hooks: RunHooks | None = None, progress: Progress | None = None,
-            renames: Sequence[tuple[str, str]] = ()) -> Iterator[list[dict[str, Any]]]:
-    """Output records, chunk by chunk, in input order (the summary is filled as they pass)."""
+            renames: Sequence[tuple[str, str]] = ()) -> Iterator[list[list[Any]]]:
+    """Output records (value lists in column order), chunk by chunk, in input order; the
+    summary is filled as they pass."""
     hooks = hooks or RunHooks()
     keep = hooks.observe is not None
     job = _Job(rb, hooks.candidate, tuple(renames), tuple(value_names(rb, options.values)),
@@ -292,7 +300,7 @@ def run_batch(rb: Any, source: str | Path, target: str | Path = "-", options: Ba
             progress = Progress(stderr, table.progress, options.progress)
             with open_writer(target, columns, out_fmt) as writer:
                 for batch in records(rb, table, options, summary, hooks, progress, renames):
-                    writer.write(batch)
+                    writer.write_rows(batch)
             progress.finish(summary.rows)
     finally:
         if hooks.close is not None:

@@ -79,7 +79,7 @@ def run_task(rb: Any, task: Task, options: BatchOptions, out_dir: str) -> dict[s
         columns, renames = output_columns(rb, table, local)
         with open_writer(target, columns, "parquet") as writer:
             for batch in records(rb, table, local, summary, renames=renames):
-                writer.write(batch)
+                writer.write_rows(batch)
     summary.seconds = time.perf_counter() - t0
     out = summary.as_dict()
     out["by_status"] = dict(summary.by_status)

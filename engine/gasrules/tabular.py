@@ -639,23 +639,30 @@ class TableWriter:
         self._pq = pq.ParquetWriter(self.temp, self._schema, compression="zstd")
 
     def write(self, records: Iterable[Mapping[str, Any]]) -> None:
+        """Write records given as dicts keyed by column name (missing keys are empty)."""
+        names = [c.name for c in self.columns]
+        self.write_rows([r.get(n) for n in names] for r in records)
+
+    def write_rows(self, rows: Iterable[Sequence[Any]]) -> None:
+        """Write records given as sequences of values in column order (the fast path)."""
         if self.fmt == "csv":
-            names = [(c.name, c.kind) for c in self.columns]
-            for r in records:
-                self._csv.writerow([_csv_cell(r.get(n), k) for n, k in names])
+            cells = [_CSV_CELL.get(c.kind) for c in self.columns]
+            plain = all(f is None for f in cells)
+            write = self._csv.writerow
+            for r in rows:
+                write(r if plain else [v if f is None or v is None else f(v) for f, v in zip(cells, r)])
                 self.rows += 1
         elif self.fmt == "jsonl":
             import orjson
 
             names = [c.name for c in self.columns]
-            opt = orjson.OPT_NON_STR_KEYS
+            opt = orjson.OPT_NON_STR_KEYS | orjson.OPT_APPEND_NEWLINE
             out = self._file
-            for r in records:
-                out.write(orjson.dumps({n: r.get(n) for n in names}, default=json_safe, option=opt).decode())
-                out.write("\n")
+            for r in rows:
+                out.write(orjson.dumps(dict(zip(names, r)), default=json_safe, option=opt).decode())
                 self.rows += 1
         else:
-            for r in records:
+            for r in rows:
                 self._buffer.append(r)
                 self.rows += 1
                 if len(self._buffer) >= self._row_group:
@@ -666,7 +673,7 @@ class TableWriter:
             return
         import pyarrow as pa
 
-        data = {c.name: [_parquet_cell(r.get(c.name), c.kind) for r in self._buffer] for c in self.columns}
+        data = {c.name: [_parquet_cell(r[i], c.kind) for r in self._buffer] for i, c in enumerate(self.columns)}
         self._pq.write_table(pa.Table.from_pydict(data, schema=self._schema))
         self._buffer.clear()
 
@@ -729,22 +736,32 @@ def _fsync_dir(path: Path) -> None:
         os.close(fd)
 
 
-def _csv_cell(value: Any, kind: str) -> Any:
-    if value is None:
-        return ""
-    if kind == "texts":
-        return ";".join(value)
-    if kind in ("records", "json") and not isinstance(value, str):
-        import orjson
+def _csv_texts(value: Any) -> str:
+    return ";".join(value)
 
-        return orjson.dumps(value, default=json_safe).decode() if value != [] else ""
+
+def _csv_json(value: Any) -> str:
+    if isinstance(value, str):
+        return value
+    import orjson
+
+    return orjson.dumps(value, default=json_safe).decode() if value != [] else ""
+
+
+def _csv_scalar(value: Any) -> Any:
+    """csv writes str, int and None itself; booleans, non-finite floats and others need help."""
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, float):
         return repr(value) if math.isfinite(value) else ""
-    if kind == "raw" and not isinstance(value, (str, int)):
-        return str(json_safe(value))
-    return value
+    if isinstance(value, (str, int)):
+        return value
+    return str(json_safe(value))
+
+
+# column kind -> cell encoder for CSV (None: the value is written as it is; None is empty)
+_CSV_CELL: dict[str, Any] = {"text": None, "number": _csv_scalar, "texts": _csv_texts,
+                             "records": _csv_json, "json": _csv_json, "raw": _csv_scalar}
 
 
 def _parquet_cell(value: Any, kind: str) -> Any:
