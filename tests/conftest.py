@@ -1,7 +1,7 @@
 """Shared fixtures for the engine tests.
 
-* The whole test session compiles rulebooks into its own cache directory
-  (``GASRULES_CACHE_DIR``), never into the user's ~/.cache.
+* The whole test session compiles rulebooks into its own temporary cache directory
+  (``GASRULES_CACHE_DIR``, set at configure time and removed at the end), never into ~/.cache.
 * ``shipped_rb`` / ``site_rb``: the shipped adult rulebook and its example site overlay, loaded
   once per session.
 * ``mini_path`` / ``mini_rb``: the small real rulebook under tests/data/mini, loaded once.
@@ -11,8 +11,10 @@
 from __future__ import annotations
 
 import os
+import shutil
+import tempfile
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
 
 import pytest
 
@@ -23,13 +25,22 @@ MINI = Path(__file__).resolve().parent / "data" / "mini" / "rulebook.yaml"
 MINI_OVERLAYS = MINI.parent / "overlays"
 
 
-@pytest.fixture(scope="session", autouse=True)
-def _session_cache_dir(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Path]:
-    """Every compiled rulebook of this session goes to a private cache directory."""
-    path = tmp_path_factory.mktemp("gasrules-cache")
-    old = os.environ.get("GASRULES_CACHE_DIR")
-    os.environ["GASRULES_CACHE_DIR"] = str(path)
-    yield path
+_CACHE_DIRS: list[tuple[str | None, str]] = []   # (value before the session, our temporary directory)
+
+
+def pytest_configure(config: pytest.Config) -> None:
+    """Every compiled rulebook of this session goes to a private cache directory, set before
+    collection (some test modules load a rulebook at import to build Hypothesis strategies)."""
+    ours = tempfile.mkdtemp(prefix="gasrules-test-cache-")
+    _CACHE_DIRS.append((os.environ.get("GASRULES_CACHE_DIR"), ours))
+    os.environ["GASRULES_CACHE_DIR"] = ours
+
+
+def pytest_unconfigure(config: pytest.Config) -> None:
+    if not _CACHE_DIRS:
+        return
+    old, ours = _CACHE_DIRS.pop()
+    shutil.rmtree(ours, ignore_errors=True)
     if old is None:
         os.environ.pop("GASRULES_CACHE_DIR", None)
     else:
