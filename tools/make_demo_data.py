@@ -3,6 +3,7 @@
     python tools/make_demo_data.py corpus --n 100000 --seed 7 --format csv --out /tmp/corpus.csv
     python tools/make_demo_data.py corpus --n 1000 --format jsonl --out -        # to stdout
     python tools/make_demo_data.py demo --out tools/demo     # the shipped quick-start files
+    python tools/make_demo_data.py messages                   # the same cases as FHIR and HL7 v2
 
 Everything written here is invented: no real patient, record number or hospital. The corpus is
 streamed (memory stays flat at any --n) and about 0.1 % of its rows are deliberately malformed
@@ -245,6 +246,195 @@ def _demo_run(args: argparse.Namespace) -> int:
     return 0
 
 
+# ----------------------------------------------------------------------------- FHIR and HL7 v2
+# The demo cases above written as the messages a hospital system sends: a FHIR R4 Bundle of
+# Observations and an HL7 v2.5.1 ORU^R01. Codes come from the shipped rulebook's input catalogue
+# (InputSpec.loinc) and the adapters' specimen tables (gasrules.codes); every file is read back
+# through gasrules.fhir / gasrules.hl7v2 before it is written and must give the same inputs.
+# Inputs without a LOINC code in the catalogue (chronicity, pregnant, ventilator settings) have
+# no place in these messages and are left out (listed in generated/README.txt).
+UCUM = "http://unitsofmeasure.org"
+_SPECIMEN_SNOMED = {"arterial": ("122552005", "Arterial blood specimen"),
+                    "venous": ("122555007", "Venous blood specimen"),
+                    "capillary": ("122554006", "Capillary blood specimen")}
+_UNSPECIFIED_SPECIMEN = ("119297000", "Blood specimen")
+
+
+def _catalog() -> Any:
+    import gasrules
+
+    return gasrules.load_rulebook().inputs
+
+
+def _loinc_for(name: str, spec: Any, sample: str | None) -> str | None:
+    from gasrules.codes import SAMPLE_DEFINING_INPUTS, SPECIMEN_BY_LOINC
+
+    codes = list(spec.loinc)
+    if not codes:
+        return None
+    if name in SAMPLE_DEFINING_INPUTS:
+        fitting = [c for c in codes if SPECIMEN_BY_LOINC.get(c) == sample]
+        neutral = [c for c in codes if c not in SPECIMEN_BY_LOINC]
+        return (fitting or neutral or [None])[0]
+    return codes[0]
+
+
+def message_items(case: dict[str, Any], catalog: Any) -> tuple[list[tuple[str, str, str, Any, str]], list[str]]:
+    """[(input, loinc, label, value, UCUM unit)] for the inputs a message can carry, and the
+    names of those it cannot."""
+    sample = case.get("sample_type")
+    items, left_out = [], []
+    for name, raw in case.items():
+        if name in ("case_id", "context", "sample_type") or raw is None:
+            continue
+        spec = catalog[name]
+        code = _loinc_for(name, spec, sample)
+        if code is None or spec.kind != "number":
+            left_out.append(name)
+            continue
+        value, unit = (raw["value"], raw["unit"]) if isinstance(raw, dict) else (raw, spec.unit)
+        items.append((name, code, spec.label, value, unit))
+    return items, left_out
+
+
+def _uuid(case_id: str, n: int) -> str:
+    import uuid
+
+    return "urn:uuid:" + str(uuid.uuid5(uuid.UUID("0d3c6a52-59b8-5f0e-8c1e-64656d6f6461"), f"{case_id}/{n}"))
+
+
+def fhir_bundle(case: dict[str, Any], catalog: Any) -> dict[str, Any]:
+    """A FHIR R4 Bundle (collection): Patient, Specimen, a gas panel Observation with hasMember
+    and one Observation per value (LOINC code, UCUM valueQuantity)."""
+    from gasrules.codes import PANEL_SPECIMEN
+
+    cid, ctx = case["case_id"], case["context"]
+    items, _ = message_items(case, catalog)
+    sample = case.get("sample_type")
+    when = ctx["collected_at"].replace("Z", "+00:00")
+    patient, specimen = _uuid(cid, 0), _uuid(cid, 1)
+    snomed, text = _SPECIMEN_SNOMED.get(sample or "", _UNSPECIFIED_SPECIMEN)
+    panel = next((c for c, s in PANEL_SPECIMEN.items() if s == sample), "24338-6")
+    entries = [
+        {"fullUrl": patient, "resource": {"resourceType": "Patient", "id": f"pt-{cid}",
+                                          "identifier": [{"system": "urn:example:demo-record",
+                                                          "value": ctx["record_number"]}]}},
+        {"fullUrl": specimen, "resource": {"resourceType": "Specimen", "id": f"spec-{cid}", "type": {
+            "coding": [{"system": "http://snomed.info/sct", "code": snomed, "display": text}]}}},
+    ]
+    members = []
+    for n, (name, code, label, value, unit) in enumerate(items, start=3):
+        url = _uuid(cid, n)
+        members.append({"reference": url})
+        entries.append({"fullUrl": url, "resource": {
+            "resourceType": "Observation", "id": f"{cid}-{name.replace('_', '-')}", "status": "final",
+            "code": {"coding": [{"system": "http://loinc.org", "code": code, "display": label}]},
+            "subject": {"reference": patient}, "effectiveDateTime": when,
+            "specimen": {"reference": specimen},
+            "valueQuantity": {"value": value, "unit": unit, "system": UCUM, "code": unit}}})
+    entries.insert(2, {"fullUrl": _uuid(cid, 2), "resource": {
+        "resourceType": "Observation", "id": f"{cid}-panel", "status": "final",
+        "code": {"coding": [{"system": "http://loinc.org", "code": panel, "display": "Gas panel"}]},
+        "subject": {"reference": patient}, "effectiveDateTime": when,
+        "specimen": {"reference": specimen}, "hasMember": members}})
+    return {"resourceType": "Bundle", "id": f"demo-{cid}", "type": "collection", "entry": entries}
+
+
+def oru_message(case: dict[str, Any], catalog: Any) -> str:
+    """An HL7 v2.5.1 ORU^R01 (segments separated by CR): MSH, PID, OBR, SPM and one OBX per value."""
+    from gasrules.codes import PANEL_SPECIMEN
+    from gasrules.hl7v2 import escape
+
+    cid, ctx = case["case_id"], case["context"]
+    items, _ = message_items(case, catalog)
+    sample = case.get("sample_type")
+    stamp = ctx["collected_at"].replace("-", "").replace(":", "").replace("T", "").rstrip("Z")
+    minute = stamp[:12]
+    snomed, text = _SPECIMEN_SNOMED.get(sample or "", _UNSPECIFIED_SPECIMEN)
+    panel = next((c for c, s in PANEL_SPECIMEN.items() if s == sample), "24338-6")
+    segments = [
+        f"MSH|^~\\&|DEMO_ANALYZER|DEMO_LAB|GASRULES|DEMO_HOSP|{stamp}||ORU^R01^ORU_R01|{cid}|P|2.5.1",
+        f"PID|1||{ctx['record_number']}^^^DEMO^MR||Demo^Case||||U",
+        f"OBR|1|ORD-{cid}|FIL-{cid}|{panel}^Gas panel^LN|||{minute}|||||||||||||||{stamp}||LAB|F",
+        f"SPM|1|SPEC-{cid}||{snomed}^{text}^SCT|||||||||||||{minute}",
+    ]
+    for n, (_name, code, label, value, unit) in enumerate(items, start=1):
+        segments.append(f"OBX|{n}|NM|{code}^{escape(label)}^LN||{value}|{unit}^{unit}^UCUM|||||F|||{minute}")
+    return "\r".join(segments) + "\r"
+
+
+def _same_inputs(rb: Any, want: dict[str, Any], got: dict[str, Any], where: str) -> None:
+    from gasrules.evaluator import read_case
+
+    a, errors_a, _, _ = read_case(rb, want)
+    b, errors_b, _, _ = read_case(rb, got)
+    if errors_a or errors_b or a != b:
+        diff = {k: (a.get(k), b.get(k)) for k in set(a) | set(b) if a.get(k) != b.get(k)}
+        raise RuntimeError(f"{where}: read back differently: {diff or errors_a or errors_b}")
+
+
+def _expressible(case: dict[str, Any], catalog: Any) -> dict[str, Any]:
+    items, _ = message_items(case, catalog)
+    out = {name: {"value": v, "unit": u} for name, _, _, v, u in items}
+    if case.get("sample_type") in _SPECIMEN_SNOMED or case.get("sample_type") == "mixed_venous":
+        out["sample_type"] = case["sample_type"]
+    return out
+
+
+def _fhir_model_check(bundle: dict[str, Any], cid: str) -> None:
+    """Validate with the general-purpose FHIR models when installed (the test extra has them)."""
+    try:
+        from fhir.resources.bundle import Bundle
+    except ImportError:
+        return
+    try:
+        Bundle.model_validate(bundle)
+    except ValueError as exc:
+        raise RuntimeError(f"{cid} FHIR: not a valid Bundle: {exc}") from None
+
+
+def _messages_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--seed", type=int, default=DEMO_SEED, help=f"default {DEMO_SEED}")
+    p.add_argument("--out", default=str(Path(__file__).resolve().parent / "demo" / "generated"),
+                   help="directory for fhir/*.json and hl7/*.hl7 (default tools/demo/generated)")
+
+
+def _messages_run(args: argparse.Namespace) -> int:
+    import gasrules
+    from gasrules.fhir import case_from_fhir
+    from gasrules.hl7v2 import case_from_hl7
+
+    rb = gasrules.load_rulebook()
+    catalog = rb.inputs
+    out = Path(args.out)
+    (out / "fhir").mkdir(parents=True, exist_ok=True)
+    (out / "hl7").mkdir(parents=True, exist_ok=True)
+    stream, notes = [], []
+    for label, case in demo_cases(args.seed):
+        cid = case["case_id"]
+        bundle, message = fhir_bundle(case, catalog), oru_message(case, catalog)
+        want = _expressible(case, catalog)
+        for kind, read in (("FHIR", case_from_fhir(bundle, catalog)), ("HL7", case_from_hl7(message, catalog))):
+            if read.issues:
+                raise RuntimeError(f"{cid} {kind}: the adapter reports {[str(i) for i in read.issues]}")
+            _same_inputs(rb, want, {k: v for k, v in read.case.items() if k != "case_id"}, f"{cid} {kind}")
+        _fhir_model_check(bundle, cid)
+        (out / "fhir" / f"{cid}.json").write_text(json.dumps(bundle, indent=2) + "\n", encoding="utf-8")
+        (out / "hl7" / f"{cid}.hl7").write_bytes(message.encode("utf-8"))
+        stream.append(message)
+        _, left_out = message_items(case, catalog)
+        notes.append(f"{cid}  {label}" + (f"  (not in the messages: {', '.join(left_out)})" if left_out else ""))
+    (out / "hl7" / "all.hl7").write_bytes("".join(stream).encode("utf-8"))
+    (out / "README.txt").write_text(
+        "Invented demo messages (no real patient), written by tools/make_demo_data.py messages from\n"
+        "the same seeded generator as the corpus (gasrules.casegen) and the quick-start cases.\n"
+        "Each file was read back through gasrules.fhir / gasrules.hl7v2 and gave the same inputs.\n\n"
+        + "\n".join(notes) + "\n", encoding="utf-8")
+    print(f"wrote {len(notes)} FHIR bundles and {len(notes)} HL7 v2 messages (+ all.hl7) under {out}",
+          file=sys.stderr)
+    return 0
+
+
 # ----------------------------------------------------------------------------- command table
 @dataclass(frozen=True)
 class Subcommand:
@@ -253,12 +443,14 @@ class Subcommand:
     run: Callable[[argparse.Namespace], int]
 
 
-# Extension point: the integration work adds "fhir" and "hl7" rows here (not implemented yet).
 SUBCOMMANDS: dict[str, Subcommand] = {
     "corpus": Subcommand("stream a large invented corpus as CSV or JSON Lines",
                          _corpus_arguments, _corpus_run),
     "demo": Subcommand("write the shipped quick-start files (tools/demo)",
                        _demo_arguments, _demo_run),
+    "messages": Subcommand("write the quick-start cases as FHIR R4 bundles and HL7 v2 ORU^R01 "
+                           "messages (tools/demo/generated), each checked by reading it back",
+                           _messages_arguments, _messages_run),
 }
 
 
