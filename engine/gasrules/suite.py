@@ -719,13 +719,15 @@ def _confirm(rb: CompiledRulebook, cp: dict[str, Any], side: str, inp: dict[str,
                  fires, bool(actual) == bool(fires))
 
 
-def probe_evidence(rb: CompiledRulebook, cp: dict[str, Any]) -> dict[str, str]:
+def probe_evidence(rb: CompiledRulebook, cp: dict[str, Any], value: float | None = None) -> dict[str, str]:
     """Evidence of a probe: the threshold's own source (D when published, CP for common practice)."""
     name = cp["threshold"]
     if cp["threshold_kind"] == "parameter":
         p = rb.parameters[name]
         tag = "CP" if p.source.get("evidence") == "CP" else "D"
-        return {"tag": tag, "source": f"Cut-point {name} = {p.value:g} {p.unit}: {p.source.get('citation', '')}"}
+        shown = p.value if value is None else value
+        chosen = f" (value chosen by {p.by_input})" if p.by_input and shown != p.value else ""
+        return {"tag": tag, "source": f"Cut-point {name} = {shown:g} {p.unit}{chosen}: {p.source.get('citation', '')}"}
     if cp["threshold_kind"] == "derived":
         params = sorted({n for n in _param_names(rb, name)})
         cites = sorted({rb.parameters[n].source.get("citation", "") for n in params})
@@ -766,7 +768,8 @@ def probe_case(rb: CompiledRulebook, probe: Probe) -> dict[str, Any]:
             f"(one reporting step {probe.side} it)" if probe.side != "at" else
             f"{cp['quantity']} {probe.compared:g} exactly at {cp['threshold']} {probe.threshold_value:g}")
     note += f": {cp['owner']} {verb}. Seed case {probe.seed}, {probe.varied} moved."
-    return {"id": ident, "note": note, "evidence": probe_evidence(rb, cp), "input": probe.input, "want": want,
+    return {"id": ident, "note": note, "evidence": probe_evidence(rb, cp, probe.threshold_value), "input": probe.input,
+            "want": want,
             "probe": {"owner": cp["owner"], "quantity": cp["quantity"], "op": cp["op"], "threshold": cp["threshold"],
                       "side": probe.side, "compared": probe.compared, "threshold_value": probe.threshold_value}}
 
