@@ -94,6 +94,9 @@ def test_partitions_in_partitions_out_identical_to_single_process(client: Any, r
     assert summary.by_status["rejected"] >= 8
     done = json.loads((out / SUCCESS).read_text())
     assert done["rows_in"] == done["rows_out"] == summary.rows
+    for part in out.rglob("*.parquet"):                   # lineage in every part's metadata
+        meta = pq.ParquetFile(part).schema_arrow.metadata
+        assert json.loads(meta[b"gasrules.rulebook"]) == rb.identity == done["rulebook"]
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []
 
 

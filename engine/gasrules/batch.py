@@ -25,6 +25,7 @@ order in this process.
 
 from __future__ import annotations
 
+import json
 import sys
 import time
 from collections import Counter
@@ -298,7 +299,7 @@ def run_batch(rb: Any, source: str | Path, target: str | Path = "-", options: Ba
             columns, renames = output_columns(rb, table, options)
             out_fmt = options.out_format or _default_out_format(target, table.fmt)
             progress = Progress(stderr, table.progress, options.progress)
-            with open_writer(target, columns, out_fmt) as writer:
+            with open_writer(target, columns, out_fmt, metadata=lineage(rb)) as writer:
                 for batch in records(rb, table, options, summary, hooks, progress, renames):
                     writer.write_rows(batch)
             progress.finish(summary.rows)
@@ -307,6 +308,12 @@ def run_batch(rb: Any, source: str | Path, target: str | Path = "-", options: Ba
             hooks.close()
     summary.seconds = time.perf_counter() - t0
     return summary
+
+
+def lineage(rb: Any) -> dict[str, str]:
+    """Key-value metadata stored in every Parquet output: which rulebook and engine wrote it."""
+    return {"gasrules.rulebook": json.dumps(rb.identity, sort_keys=True),
+            "gasrules.engine_version": str(rb.engine_version)}
 
 
 def _default_out_format(target: str | Path, in_fmt: str) -> str:

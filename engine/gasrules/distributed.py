@@ -27,7 +27,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any, Sequence
 
-from .batch import BatchOptions, BatchSummary, output_columns, records
+from .batch import BatchOptions, BatchSummary, lineage, output_columns, records
 from .tabular import TableError, analytes_of, open_table, open_writer, parquet_files
 
 __all__ = ["Task", "plan_tasks", "run_distributed", "run_task", "SUCCESS"]
@@ -77,7 +77,7 @@ def run_task(rb: Any, task: Task, options: BatchOptions, out_dir: str) -> dict[s
     with open_table(task.source, analytes_of(rb), mapping=options.mapping, fmt="parquet",
                     row_groups=task.row_groups) as table:
         columns, renames = output_columns(rb, table, local)
-        with open_writer(target, columns, "parquet") as writer:
+        with open_writer(target, columns, "parquet", metadata=lineage(rb)) as writer:
             for batch in records(rb, table, local, summary, renames=renames):
                 writer.write_rows(batch)
     summary.seconds = time.perf_counter() - t0

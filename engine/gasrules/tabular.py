@@ -587,7 +587,7 @@ class TableWriter:
     exit, abort on an exception. Target ``-`` writes CSV or JSON Lines to standard output."""
 
     def __init__(self, target: str | Path, columns: Sequence[Column], fmt: str,
-                 row_group_size: int = 50_000) -> None:
+                 row_group_size: int = 50_000, metadata: Mapping[str, str] | None = None) -> None:
         for c in columns:
             if c.kind not in _KINDS:
                 raise ValueError(f"column {c.name}: kind {c.kind!r} not in {_KINDS}")
@@ -609,8 +609,9 @@ class TableWriter:
                 raise TableError(str(self.target), "is a directory", "an output file path")
             self.temp = temp_path_for(self.target)
             self._file = None if fmt == "parquet" else open(self.temp, "w", encoding="utf-8", newline="")
-        self._buffer: list[dict[str, Any]] = []
+        self._buffer: list[Sequence[Any]] = []
         self._row_group = row_group_size
+        self._metadata = dict(metadata or {})       # Parquet key-value metadata (lineage)
         getattr(self, "_start_" + fmt)()
 
     def __enter__(self) -> "TableWriter":
@@ -635,7 +636,7 @@ class TableWriter:
         import pyarrow.parquet as pq
 
         self._schema = pa.schema([pa.field(c.name, _arrow_type(c), metadata={"unit": c.unit} if c.unit else None)
-                                  for c in self.columns])
+                                  for c in self.columns], metadata=self._metadata or None)
         self._pq = pq.ParquetWriter(self.temp, self._schema, compression="zstd")
 
     def write(self, records: Iterable[Mapping[str, Any]]) -> None:
