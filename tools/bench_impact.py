@@ -8,7 +8,9 @@ invented demo tunings inside the guard rails) under --dir, never in the reposito
 measurement runs in its own process so peak memory (max RSS of the parent, and of the largest
 worker) belongs to that run alone. Runs alternate 1, 2, 1, 2 ... on the same files so a noisy
 machine slows both alike; the table shows every run, then the median per worker count and the
-2-over-1 ratio. A smaller corpus (--small) is run too: equal peak memory on both sizes shows the
+2-over-1 ratio. CPU seconds (parent and workers) and the load average at the end of each run
+are printed too: on a shared machine, cases per CPU second is the figure that noise moves least,
+and a load above 2 means other work competed for the two cores. A smaller corpus (--small) is run too: equal peak memory on both sizes shows the
 replay streams.
 """
 
@@ -16,6 +18,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
 import statistics
 import subprocess
@@ -57,13 +60,20 @@ def one_run(corpus: Path, tuned: Path, workers: int) -> dict[str, float]:
     from gasrules.impact import replay
 
     old, new = gasrules.load_rulebook(), gasrules.load_rulebook(tuned)
-    t0 = time.perf_counter()
+    t0, cpu0 = time.perf_counter(), _cpu()
     report = replay(old, new, corpus, workers=workers)
-    seconds = time.perf_counter() - t0
+    seconds, cpu = time.perf_counter() - t0, _cpu() - cpu0
     return {"workers": workers, "rows": report.rows, "seconds": seconds, "rate": report.rows / seconds,
+            "cpu_seconds": cpu, "load": os.getloadavg()[0],
             "changed": report.changed_any, "rejected": sum(report.rejected.values()),
             "rss_parent_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
             "rss_worker_mb": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024}
+
+
+def _cpu() -> float:
+    """CPU seconds used by this process and its finished children (the workers)."""
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
 
 
 def measure(corpus: Path, tuned: Path, workers: int) -> dict[str, float]:
@@ -85,8 +95,8 @@ def main() -> None:
         return
     big, tuned = prepare(args.dir, args.n)
     small, _ = prepare(args.dir, args.small)
-    print(f"{'corpus':>8} {'workers':>7} {'rows':>8} {'seconds':>8} {'cases/s':>8} {'changed':>8} {'rejected':>8} "
-          f"{'parent MB':>9} {'worker MB':>9}")
+    print(f"{'corpus':>8} {'workers':>7} {'seconds':>8} {'cases/s':>8} {'CPU s':>7} {'cases/CPU s':>11} {'load':>5} "
+          f"{'changed':>8} {'rejected':>8} {'parent MB':>9} {'worker MB':>9}")
     rates: dict[int, list[float]] = {1: [], 2: []}
     for corpus, rounds in ((small, 1), (big, args.rounds)):
         for _ in range(rounds):
@@ -94,9 +104,9 @@ def main() -> None:
                 r = measure(corpus, tuned, w)
                 if corpus == big:
                     rates[w].append(r["rate"])
-                print(f"{r['rows']:>8,} {w:>7} {r['rows']:>8,} {r['seconds']:>8.1f} {r['rate']:>8,.0f} {r['changed']:>8,} "
-                      f"{r['rejected']:>8,} {r['rss_parent_mb']:>9.0f} {r['rss_worker_mb'] if w > 1 else 0:>9.0f}",
-                      flush=True)
+                print(f"{r['rows']:>8,} {w:>7} {r['seconds']:>8.1f} {r['rate']:>8,.0f} {r['cpu_seconds']:>7.1f} "
+                      f"{r['rows'] / r['cpu_seconds']:>11,.0f} {r['load']:>5.1f} {r['changed']:>8,} {r['rejected']:>8,} "
+                      f"{r['rss_parent_mb']:>9.0f} {r['rss_worker_mb'] if w > 1 else 0:>9.0f}", flush=True)
     m1, m2 = statistics.median(rates[1]), statistics.median(rates[2])
     print(f"\nmedian over {args.n:,} cases: 1 worker {m1:,.0f} cases/s, 2 workers {m2:,.0f} cases/s, ratio {m2 / m1:.2f}")
 
