@@ -2,6 +2,7 @@
 
     python tools/bench_batch.py                       # 100,000 cases on 1 and 2 workers, then 1,000,000
     python tools/bench_batch.py --n 100000 --big 0    # skip the 1,000,000-case run
+    python tools/bench_batch.py --n 0 --big-workers 1,2   # only the memory runs, on 1 and 2 workers
     python tools/bench_batch.py --formats csv,parquet # also Parquet out
 
 The corpus is invented by tools/make_demo_data.py (casegen, seed 7, ~0.1 % malformed rows) and
@@ -107,6 +108,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--n", type=int, default=100_000, help="cases for the 1-vs-2-worker comparison")
     ap.add_argument("--big", type=int, default=1_000_000, help="cases for the memory run (0: skip)")
     ap.add_argument("--small", type=int, default=1_000, help="cases for the flat-memory baseline")
+    ap.add_argument("--big-workers", type=lambda t: tuple(int(x) for x in t.split(",")), default=(2,),
+                    help="worker counts for the memory run, comma separated (default 2)")
     ap.add_argument("--formats", default="csv", help="output formats to time, comma separated")
     ap.add_argument("--dir", type=Path, default=Path("/tmp/gasrules-bench-batch"))
     args = ap.parse_args(argv)
@@ -116,7 +119,7 @@ def main(argv: list[str] | None = None) -> int:
     for n in sizes:
         make_corpus(args.dir / f"corpus-{n}.csv", n)
     results: dict[str, dict[str, float]] = {}
-    for fmt in args.formats.split(","):
+    for fmt in args.formats.split(",") if args.n > 0 else ():
         for workers in (1, 2):
             label = f"{args.n:,} cases, {workers} worker{'s' if workers > 1 else ''}, -> {fmt}"
             r = run_once(args.dir / f"corpus-{args.n}.csv", args.dir / f"out-{args.n}-{workers}.{fmt}", workers)
@@ -124,9 +127,9 @@ def main(argv: list[str] | None = None) -> int:
             print(_line(label, r), flush=True)
         one, two = (results[k] for k in list(results)[-2:])
         print(f"  -> 2 workers / 1 worker throughput: {two['rate'] / one['rate']:.2f}x", flush=True)
-    for n in (args.small, args.big):
+    for n, counts in ((args.small, (1, 2)), (args.big, args.big_workers)):
         if n > 0:
-            for workers in (1, 2):
+            for workers in counts:
                 label = f"{n:,} cases, {workers} worker{'s' if workers > 1 else ''}, -> csv"
                 r = run_once(args.dir / f"corpus-{n}.csv", args.dir / f"out-{n}-{workers}.csv", workers)
                 print(_line(label, r), flush=True)
