@@ -404,6 +404,9 @@ def render_text(r: ImpactReport) -> str:
              f"{r.changed_findings:,} ({_pct(r.changed_findings, r.rows)}); any change: {r.changed_any:,}",
              f"Rejected rows: {sum(r.rejected.values()):,} (unreadable {r.unreadable:,}; by side "
              + ", ".join(f"{k} {v:,}" for k, v in sorted(r.rejected.items())) + ")" if r.rejected else "Rejected rows: 0"]
+    moved = [(a, b, n) for (a, b), n in sorted(r.status_pairs.items()) if a != b]
+    if moved:
+        lines.append("Status changes: " + "; ".join(f"{a} -> {b}: {n:,}" for a, b, n in moved))
     if r.expected_file:
         lines.append(f"Expected transitions: {r.expected_file}: {len(r.unexpected)} unexpected")
     lines += ["", "Transitions (old disorders -> new disorders):"]
