@@ -544,6 +544,7 @@ class _Search:
         self.step = step_of(rb, cp)
         self.k = {"below": -1, "at": 0, "above": 1}[side]
         self.stoppers = {r.id for r in rb.rules if r.stop}
+        self.preferred: str | None = None          # the repair input that worked last
 
     def run(self, inp: dict[str, Any]) -> dict[str, Any] | None:
         from . import interpret
@@ -571,18 +572,19 @@ class _Search:
         result = self.run(inp)
         if result is None or not self.halted(result):
             return inp, result
-        for b in sorted(_stop_inputs(self.rb) - fixed):
+        for b in sorted(_stop_inputs(self.rb) - fixed, key=lambda n: (n != self.preferred, n)):
             b0 = inp.get(b)
             if not isinstance(b0, (int, float)) or isinstance(b0, bool):
                 continue
             unit = 10.0 ** -self.rb.inputs[b].precision
-            n = min(150, max(10, int(abs(b0) * 0.4 / unit)))
+            n = min(100, max(10, int(abs(b0) * 0.4 / unit)))
             for j in sorted(range(-n, n + 1), key=abs)[1:]:
                 trial = dict(inp, **{b: round(b0 + j * unit, 6)})
                 r = self.run(trial)
                 if r is None:
                     return inp, None
                 if r["status"] != "rejected" and not self.halted(r):
+                    self.preferred = b
                     return trial, r
         return inp, result
 
@@ -643,7 +645,7 @@ class _Search:
 
 
 def suggest_probes(rb: CompiledRulebook, results: list[CaseResult], coverage: dict[str, Any],
-                   budget: int = 4000, max_seeds: int = 6) -> tuple[list[Probe], list[dict[str, Any]]]:
+                   budget: int = 6000, max_seeds: int = 6) -> tuple[list[Probe], list[dict[str, Any]]]:
     """Probes for every missing side of every cut-point, found by bisection; and those not found."""
     cps = {cutpoint_key(cp): cp for cp in unique_cutpoints(rb)}
     stop_inputs = _stop_inputs(rb)
