@@ -65,8 +65,9 @@ def server(keys: dict[str, Any], tmp_path_factory: pytest.TempPathFactory) -> It
 
 
 @pytest.fixture(scope="module")
-def rulebook() -> Any:
-    return gasrules.load_rulebook()
+def rulebook(server: Server) -> Any:
+    """The rulebook the server loaded (the expected results must use the very same one)."""
+    return server.app.rulebook
 
 
 def token(keys: dict[str, Any], path: str, *, iss: str = EHR, key: str = "ec", alg: str = "ES384",

@@ -71,15 +71,16 @@ def start(tmp: Path, environ: dict[str, str] | None = None, **config: Any) -> Se
 
 
 @pytest.fixture(scope="module")
-def rulebook() -> Any:
-    return gasrules.load_rulebook()
-
-
-@pytest.fixture(scope="module")
 def server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Server]:
     srv = start(tmp_path_factory.mktemp("svc"))
     yield srv
     srv.close()
+
+
+@pytest.fixture(scope="module")
+def rulebook(server: Server) -> Any:
+    """The rulebook the server loaded (the expected results must use the very same one)."""
+    return server.app.rulebook
 
 
 @pytest.fixture(scope="module")
