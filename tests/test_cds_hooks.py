@@ -431,6 +431,22 @@ def test_bad_tokens_are_401_with_a_reason(server: Server, keys: dict[str, Any], 
     assert "invalid_token" in headers["www-authenticate"]
 
 
+def test_a_jwk_used_with_another_algorithm_than_its_own_is_refused(keys: dict[str, Any]
+                                                                 ) -> None:
+    from gasrules.cdsauth import TokenVerifier
+    rsa_jwk = json.loads(jwt.algorithms.RSAAlgorithm.to_jwk(keys["rsa"].public_key()))
+    rsa_jwk.update(kid="r1", alg="RS384")
+    config = config_from_dict({"algorithms": ["RS384", "PS384"],
+                               "issuers": {EHR: {"jwks": {"keys": [rsa_jwk]}}}})
+    verifier = TokenVerifier(config, AUD)
+    ok = token(keys, "/cds-services", key="rsa", alg="RS384", kid="r1")
+    assert verifier.verify(f"Bearer {ok}", "/cds-services", None)["iss"] == EHR
+    other = token(keys, "/cds-services", key="rsa", alg="PS384", kid="r1")
+    with pytest.raises(AuthError) as exc:
+        verifier.verify(f"Bearer {other}", "/cds-services", None)
+    assert exc.value.code == "auth.algorithm" and "is for RS384" in exc.value.message
+
+
 def test_a_replayed_token_is_refused(server: Server, keys: dict[str, Any]) -> None:
     once = token(keys, "/cds-services")
     assert call(server, keys, "GET", "/cds-services", bearer=once)[0] == 200

@@ -35,7 +35,7 @@ import json
 import threading
 import time
 from collections.abc import Iterable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -66,6 +66,7 @@ class AuthError(Exception):
 class Issuer:
     iss: str
     keys: Mapping[str, Any]                # kid -> public key object ("*" = any kid, one PEM)
+    key_algs: Mapping[str, str] = field(default_factory=dict)   # kid -> the JWK's own "alg"
     jku: tuple[str, ...] = ()
     subjects: tuple[str, ...] | None = None
     tenants: tuple[str, ...] | None = None
@@ -160,10 +161,12 @@ def _issuer(iss: str, spec: Any, base: Path, fail: Any) -> Issuer:
     if unknown:
         raise fail("", f"unknown keys {sorted(unknown)}")
     keys: dict[str, Any] = {}
+    algs: dict[str, str] = {}
     if "jwks_file" in spec:
-        keys.update(_jwks(_read_json(base / str(spec["jwks_file"]), fail), ".jwks_file", fail))
+        keys.update(_jwks(_read_json(base / str(spec["jwks_file"]), fail), ".jwks_file", fail,
+                          algs))
     if "jwks" in spec:
-        keys.update(_jwks(spec["jwks"], ".jwks", fail))
+        keys.update(_jwks(spec["jwks"], ".jwks", fail, algs))
     if "pem_file" in spec:
         keys[str(spec.get("kid") or "*")] = _pem(base / str(spec["pem_file"]), ".pem_file", fail)
     for i, item in enumerate(spec.get("keys") or []):
@@ -172,7 +175,7 @@ def _issuer(iss: str, spec: Any, base: Path, fail: Any) -> Issuer:
         keys[str(item["kid"])] = _pem(base / str(item["pem_file"]), f".keys[{i}]", fail)
     if not keys:
         raise fail("", "no public key configured (jwks_file, jwks, pem_file or keys)")
-    return Issuer(iss=iss, keys=keys, jku=_strings(spec.get("jku"), ".jku", fail) or (),
+    return Issuer(iss=iss, keys=keys, key_algs=algs, jku=_strings(spec.get("jku"), ".jku", fail) or (),
                   subjects=_strings(spec.get("sub"), ".sub", fail),
                   tenants=_strings(spec.get("tenants"), ".tenants", fail),
                   services=_strings(spec.get("services"), ".services", fail))
@@ -185,7 +188,7 @@ def _read_json(path: Path, fail: Any) -> Any:
         raise fail(".jwks_file", f"{path}: {exc}") from None
 
 
-def _jwks(data: Any, where: str, fail: Any) -> dict[str, Any]:
+def _jwks(data: Any, where: str, fail: Any, algs: dict[str, str]) -> dict[str, Any]:
     from jwt import PyJWK
     from jwt.exceptions import PyJWKError
 
@@ -200,6 +203,8 @@ def _jwks(data: Any, where: str, fail: Any) -> dict[str, Any]:
                        "configure the public key only")
         if jwk.get("use") not in (None, "sig"):
             continue
+        if jwk.get("alg") is not None:
+            algs[str(jwk["kid"])] = str(jwk["alg"])
         try:
             out[str(jwk["kid"])] = PyJWK(jwk).key
         except (PyJWKError, ValueError, TypeError) as exc:
@@ -297,6 +302,9 @@ class TokenVerifier:
         key = issuer.keys.get(kid, issuer.keys.get("*"))
         if key is None:
             raise AuthError(401, "auth.kid", f"no key with kid {kid!r} for issuer {iss!r}")
+        if issuer.key_algs.get(kid, alg) != alg:
+            raise AuthError(401, "auth.algorithm", f"key {kid!r} is for "
+                            f"{issuer.key_algs[kid]}, not {alg}")
         leeway = self.config.leeway_seconds
         try:
             claims = jwt.decode(
