@@ -74,12 +74,14 @@ class _Handler(BaseHTTPRequestHandler):
         try:
             body = self.rfile.read(length)
         except TimeoutError:
-            body = b""
-        if len(body) < length:
             self.close_connection = True
-            return Response(408, error_body(408, "http.timeout", f"body not received within "
-                                             f"{self.app.config.timeout:g} s ({len(body)} of "
-                                             f"{length} bytes)", "body", cds))
+            return Response(408, error_body(408, "http.timeout", f"the {length}-byte body was "
+                                             f"not received within {self.app.config.timeout:g} "
+                                             "s", "body", cds))
+        if len(body) < length:   # the client closed early; nobody may be left to read this
+            self.close_connection = True
+            return Response(400, error_body(400, "http.short_body", f"the connection closed "
+                                             f"after {len(body)} of {length} bytes", "body", cds))
         return body
 
     def _drain(self, length: int) -> None:
