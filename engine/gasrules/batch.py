@@ -145,9 +145,14 @@ def output_columns(rb: Any, table: Table, options: BatchOptions) -> tuple[list[C
             out = f"{out}_input"
         taken.add(out)
         renames.append((name, out))
-    raw = "json" if table.fmt == "jsonl" else "raw"
-    cols = [Column(out, "json" if name == "context" and raw == "json" else raw,
-                   arrow_type=table.passthrough_types.get(name)) for name, out in renames]
+    def kind(name: str) -> str:
+        if table.fmt == "csv":
+            return "text"                         # CSV cells are text (or None for a short row)
+        if table.fmt == "jsonl":
+            return "json" if name == "context" else "value"
+        return "raw"                              # Parquet: the input column's own type
+
+    cols = [Column(out, kind(name), arrow_type=table.passthrough_types.get(name)) for name, out in renames]
     cols += [Column("case_id"), Column("status"), Column("headline"), Column("disorders", "texts"),
              Column("qualifiers", "texts")]
     cols += [Column(n, "number", unit=rb.derived[n].unit) for n in values]
@@ -197,21 +202,23 @@ class _Job:
     full_json: bool
     trace: bool
     keep: bool                          # return case, result and candidate result for hooks
+    encoder: Any = None                 # tabular.Encoder: chunks leave the worker encoded
 
 
-def interpret_chunk(job: _Job, rows: list[Row]) -> list[tuple[Any, ...]]:
-    """Worker: rows -> [(record values, status, disorders, unreadable, hook data or None)]."""
-    out = []
+def interpret_chunk(job: _Job, rows: list[Row]) -> tuple[Any, list[tuple[Any, ...]]]:
+    """Worker: rows -> (the chunk's records, encoded when the job has an encoder, else value
+    lists; [(status, disorders, unreadable, hook data or None)] per row)."""
+    recs, stats = [], []
     trace = job.trace or job.full_json
     for row in rows:
         result = _safe(job.rulebook, row, trace)
-        rec = record_values(row, result, job.renames, job.values, job.full_json)
+        recs.append(record_values(row, result, job.renames, job.values, job.full_json))
         extra = None
         if job.keep:
             other = _safe(job.candidate, row, False) if job.candidate is not None else None
             extra = (row.case, result, other, bool(row.errors))
-        out.append((rec, result["status"], result["disorders"], bool(row.errors), extra))
-    return out
+        stats.append((result["status"], result["disorders"], bool(row.errors), extra))
+    return (job.encoder(recs) if job.encoder is not None else recs), stats
 
 
 def _safe(rb: Any, row: Row, trace: bool) -> dict[str, Any]:
@@ -264,24 +271,23 @@ class Progress:
 
 def records(rb: Any, table: Table, options: BatchOptions, summary: BatchSummary,
             hooks: RunHooks | None = None, progress: Progress | None = None,
-            renames: Sequence[tuple[str, str]] = ()) -> Iterator[list[list[Any]]]:
-    """Output records (value lists in column order), chunk by chunk, in input order; the
-    summary is filled as they pass."""
+            renames: Sequence[tuple[str, str]] = (), encoder: Any = None) -> Iterator[tuple[Any, int]]:
+    """(block, rows in it) chunk by chunk, in input order: a block is the chunk encoded by
+    ``encoder`` (tabular.Encoder, run in the workers) or, without one, a list of value lists in
+    column order. The summary is filled, and the hooks see every result, as chunks pass."""
     hooks = hooks or RunHooks()
     keep = hooks.observe is not None
     job = _Job(rb, hooks.candidate, tuple(renames), tuple(value_names(rb, options.values)),
-               options.full_json, hooks.trace, keep)
+               options.full_json, hooks.trace, keep, encoder)
     with OrderedPool(interpret_chunk, job, options.workers) as pool:
-        for chunk in pool.map(chunked(table, options.chunk_size)):
-            batch = []
-            for rec, status, disorders, unreadable, extra in chunk:
+        for block, stats in pool.map(chunked(table, options.chunk_size)):
+            for status, disorders, unreadable, extra in stats:
                 if keep and extra is not None:
                     hooks.observe(*extra)  # type: ignore[misc]
                 summary.add(status, disorders, unreadable)
-                batch.append(rec)
             if progress is not None:
                 progress.update(summary.rows)
-            yield batch
+            yield block, len(stats)
 
 
 def run_batch(rb: Any, source: str | Path, target: str | Path = "-", options: BatchOptions | None = None,
@@ -300,8 +306,9 @@ def run_batch(rb: Any, source: str | Path, target: str | Path = "-", options: Ba
             out_fmt = options.out_format or _default_out_format(target, table.fmt)
             progress = Progress(stderr, table.progress, options.progress)
             with open_writer(target, columns, out_fmt, metadata=lineage(rb)) as writer:
-                for batch in records(rb, table, options, summary, hooks, progress, renames):
-                    writer.write_rows(batch)
+                for block, count in records(rb, table, options, summary, hooks, progress, renames,
+                                            writer.encoder()):
+                    writer.write_block(block, count)
             progress.finish(summary.rows)
     finally:
         if hooks.close is not None:

@@ -78,8 +78,8 @@ def run_task(rb: Any, task: Task, options: BatchOptions, out_dir: str) -> dict[s
                     row_groups=task.row_groups) as table:
         columns, renames = output_columns(rb, table, local)
         with open_writer(target, columns, "parquet", metadata=lineage(rb)) as writer:
-            for batch in records(rb, table, local, summary, renames=renames):
-                writer.write_rows(batch)
+            for block, count in records(rb, table, local, summary, renames=renames, encoder=writer.encoder()):
+                writer.write_block(block, count)
     summary.seconds = time.perf_counter() - t0
     out = summary.as_dict()
     out["by_status"] = dict(summary.by_status)

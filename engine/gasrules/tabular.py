@@ -42,6 +42,7 @@ pyarrow is imported only when Parquet is read or written.
 from __future__ import annotations
 
 import csv
+import io
 import json
 import math
 import os
@@ -563,8 +564,10 @@ def json_safe(value: Any) -> Any:
 @dataclass(frozen=True)
 class Column:
     """An output column. ``kind``: text | number | texts (list of text) | records (list of
-    objects with text values; ``fields`` names them) | json (any JSON value) | raw (a
-    pass-through value written as it came; ``arrow_type`` keeps its Parquet type)."""
+    objects with text values; ``fields`` names them) | json (any JSON value, JSON text in CSV
+    and Parquet) | value (text as it is, any other JSON value as JSON text; native in JSON
+    Lines) | raw (a pass-through value written as it came; ``arrow_type`` keeps its Parquet
+    type)."""
 
     name: str
     kind: str = "text"
@@ -573,7 +576,7 @@ class Column:
     unit: str = ""
 
 
-_KINDS = ("text", "number", "texts", "records", "json", "raw")
+_KINDS = ("text", "number", "texts", "records", "json", "value", "raw")
 
 
 def temp_path_for(target: Path) -> Path:
@@ -625,19 +628,22 @@ class TableWriter:
 
     # formats ---------------------------------------------------------------------------
     def _start_csv(self) -> None:
-        self._csv = csv.writer(self._file, lineterminator="\n")
-        self._csv.writerow([c.name for c in self.columns])
+        self._file.write(Encoder(self.columns, "csv").header())
 
     def _start_jsonl(self) -> None:
         pass
 
     def _start_parquet(self) -> None:
-        import pyarrow as pa
         import pyarrow.parquet as pq
 
-        self._schema = pa.schema([pa.field(c.name, _arrow_type(c), metadata={"unit": c.unit} if c.unit else None)
-                                  for c in self.columns], metadata=self._metadata or None)
+        self._schema = arrow_schema(self.columns, self._metadata)
         self._pq = pq.ParquetWriter(self.temp, self._schema, compression="zstd")
+        self._buffered = 0
+
+    def encoder(self) -> "Encoder":
+        """A picklable encoder for this writer's columns and format: worker processes encode
+        their chunk with it, and this process only writes the blocks (:meth:`write_block`)."""
+        return Encoder(self.columns, self.fmt)
 
     def write(self, records: Iterable[Mapping[str, Any]]) -> None:
         """Write records given as dicts keyed by column name (missing keys are empty)."""
@@ -645,38 +651,30 @@ class TableWriter:
         self.write_rows([r.get(n) for n in names] for r in records)
 
     def write_rows(self, rows: Iterable[Sequence[Any]]) -> None:
-        """Write records given as sequences of values in column order (the fast path)."""
-        if self.fmt == "csv":
-            cells = [_CSV_CELL.get(c.kind) for c in self.columns]
-            plain = all(f is None for f in cells)
-            write = self._csv.writerow
-            for r in rows:
-                write(r if plain else [v if f is None or v is None else f(v) for f, v in zip(cells, r)])
-                self.rows += 1
-        elif self.fmt == "jsonl":
-            import orjson
+        """Write records given as sequences of values in column order."""
+        rows = list(rows)
+        if rows:
+            self.write_block(self.encoder()(rows), len(rows))
 
-            names = [c.name for c in self.columns]
-            opt = orjson.OPT_NON_STR_KEYS | orjson.OPT_APPEND_NEWLINE
-            out = self._file
-            for r in rows:
-                out.write(orjson.dumps(dict(zip(names, r)), default=json_safe, option=opt).decode())
-                self.rows += 1
-        else:
-            for r in rows:
-                self._buffer.append(r)
-                self.rows += 1
-                if len(self._buffer) >= self._row_group:
-                    self._flush_parquet()
+    def write_block(self, block: Any, count: int) -> None:
+        """Write ``count`` records already encoded by :meth:`encoder` (text, or an Arrow batch)."""
+        self.rows += count
+        if self.fmt != "parquet":
+            self._file.write(block)
+            return
+        self._buffer.append(block)
+        self._buffered += count
+        if self._buffered >= self._row_group:
+            self._flush_parquet()
 
     def _flush_parquet(self) -> None:
         if not self._buffer:
             return
         import pyarrow as pa
 
-        data = {c.name: [_parquet_cell(r[i], c.kind) for r in self._buffer] for i, c in enumerate(self.columns)}
-        self._pq.write_table(pa.Table.from_pydict(data, schema=self._schema))
+        self._pq.write_table(pa.Table.from_batches(self._buffer, schema=self._schema))
         self._buffer.clear()
+        self._buffered = 0
 
     def commit(self) -> None:
         if self._done:
@@ -713,6 +711,57 @@ class TableWriter:
                     self.temp.unlink()
                 except FileNotFoundError:
                     pass
+
+
+class Encoder:
+    """Encodes records (value sequences in column order) for one output format: CSV or JSON
+    Lines text, or an Arrow record batch for Parquet. Picklable, so it runs in workers."""
+
+    def __init__(self, columns: Sequence[Column], fmt: str) -> None:
+        self.columns, self.fmt = list(columns), fmt
+        self._schema: Any = None
+
+    def __getstate__(self) -> dict[str, Any]:
+        return {"columns": self.columns, "fmt": self.fmt, "_schema": None}
+
+    def header(self) -> str:
+        buf = io.StringIO()
+        csv.writer(buf, lineterminator="\n").writerow([c.name for c in self.columns])
+        return buf.getvalue()
+
+    def __call__(self, rows: Sequence[Sequence[Any]]) -> Any:
+        if self.fmt == "csv":
+            buf = io.StringIO()
+            write = csv.writer(buf, lineterminator="\n").writerow
+            cells = [_CSV_CELL.get(c.kind) for c in self.columns]
+            if all(f is None for f in cells):
+                for r in rows:
+                    write(r)
+            else:
+                for r in rows:
+                    write([v if f is None or v is None else f(v) for f, v in zip(cells, r)])
+            return buf.getvalue()
+        if self.fmt == "jsonl":
+            import orjson
+
+            names = [c.name for c in self.columns]
+            opt = orjson.OPT_NON_STR_KEYS | orjson.OPT_APPEND_NEWLINE
+            return b"".join(orjson.dumps(dict(zip(names, r)), default=json_safe, option=opt)
+                            for r in rows).decode()
+        import pyarrow as pa
+
+        if self._schema is None:
+            self._schema = arrow_schema(self.columns)
+        data = [[_parquet_cell(r[i], c.kind) for r in rows] for i, c in enumerate(self.columns)]
+        return pa.RecordBatch.from_arrays([pa.array(col, type=self._schema.field(i).type)
+                                           for i, col in enumerate(data)], schema=self._schema)
+
+
+def arrow_schema(columns: Sequence[Column], metadata: Mapping[str, str] | None = None) -> Any:
+    import pyarrow as pa
+
+    return pa.schema([pa.field(c.name, _arrow_type(c), metadata={"unit": c.unit} if c.unit else None)
+                      for c in columns], metadata=dict(metadata) if metadata else None)
 
 
 def open_writer(target: str | Path, columns: Sequence[Column], fmt: str | None = None,
@@ -760,12 +809,24 @@ def _csv_scalar(value: Any) -> Any:
     return str(json_safe(value))
 
 
-# column kind -> cell encoder for CSV (None: the value is written as it is; None is empty)
-_CSV_CELL: dict[str, Any] = {"text": None, "number": _csv_scalar, "texts": _csv_texts,
-                             "records": _csv_json, "json": _csv_json, "raw": _csv_scalar}
+def _as_text(value: Any) -> Any:
+    if isinstance(value, str):
+        return value
+    import orjson
+
+    return orjson.dumps(value, default=json_safe).decode()
+
+
+# column kind -> cell encoder for CSV (None: the value is written as it is; None is empty).
+# Numbers come from the engine finite, and csv writes a float as repr() does.
+_CSV_CELL: dict[str, Any] = {"text": None, "number": None, "texts": _csv_texts,
+                             "records": _csv_json, "json": _csv_json, "value": _as_text,
+                             "raw": _csv_scalar}
 
 
 def _parquet_cell(value: Any, kind: str) -> Any:
+    if kind == "value":
+        return None if value is None else _as_text(value)
     if kind == "json":
         if value is None:
             return None
@@ -780,8 +841,8 @@ def _parquet_cell(value: Any, kind: str) -> Any:
 def _arrow_type(c: Column) -> Any:
     import pyarrow as pa
 
-    if c.kind == "raw":
-        return c.arrow_type if c.arrow_type is not None else pa.string()
+    if c.kind == "raw" and c.arrow_type is not None:
+        return c.arrow_type
     if c.kind == "number":
         return pa.float64()
     if c.kind == "texts":
