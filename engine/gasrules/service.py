@@ -33,7 +33,7 @@ import sys
 import threading
 import time
 import traceback
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from typing import Any, Protocol
@@ -263,7 +263,6 @@ def _is_fhir(body: Any) -> bool:
 
 
 # ============================================================================ the application
-Handler = Callable[["App", "Request"], Response]
 
 
 @dataclass
