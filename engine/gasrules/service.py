@@ -263,8 +263,6 @@ def _is_fhir(body: Any) -> bool:
 
 
 # ============================================================================ the application
-
-
 @dataclass
 class Request:
     method: str
