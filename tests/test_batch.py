@@ -314,3 +314,23 @@ def test_killed_run_leaves_no_complete_looking_file(tmp_path: Path, sig: int) ->
         assert left == ["big.csv"]                         # the temporary file was removed
     else:
         assert left == sorted(["big.csv", partial[0].name])  # hidden, and named as partial
+
+
+def test_repeated_headers_and_non_text_passthrough_are_kept(rb: Any, tmp_path: Path) -> None:
+    src = tmp_path / "g.csv"
+    src.write_text("case_id,note,ph,note\nR1,first,7.40,second\n", encoding="utf-8")
+    run_batch(rb, src, tmp_path / "o.csv", BatchOptions(values=()), stderr=io.StringIO())
+    [row] = read_back(tmp_path / "o.csv")
+    assert (row["note"], row["note_4"]) == ("first", "second")
+    mapping = tmp_path / "m.yaml"
+    mapping.write_text("passthrough: [bed, tags]\n", encoding="utf-8")
+    lines = tmp_path / "g.jsonl"
+    lines.write_text('{"case_id": "J1", "bed": 7, "tags": ["a", "b"], "ph": 7.4}\n'
+                     '{"case_id": "J2", "bed": "7b", "ph": 7.4}\n', encoding="utf-8")
+    from gasrules.tabular import load_mapping
+
+    for out in ("o.parquet", "o2.csv"):
+        run_batch(rb, lines, tmp_path / out, BatchOptions(values=(), mapping=load_mapping(mapping)),
+                  stderr=io.StringIO())
+        back = read_back(tmp_path / out)
+        assert [(r["bed"], r["tags"]) for r in back] == [("7", '["a","b"]'), ("7b", None if out.endswith("parquet") else "")]

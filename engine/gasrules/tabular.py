@@ -63,7 +63,7 @@ __all__ = [
 ]
 
 FORMATS = ("csv", "jsonl", "parquet")
-_SUFFIXES = {".csv": "csv", ".tsv": "csv", ".jsonl": "jsonl", ".ndjson": "jsonl",
+_SUFFIXES = {".csv": "csv", ".jsonl": "jsonl", ".ndjson": "jsonl",
              ".json": "jsonl", ".parquet": "parquet", ".pq": "parquet"}
 _HEADER_UNIT = re.compile(r"^\s*(?P<name>[^\[\(]*?)\s*(?:\[(?P<u1>.+)\]|\((?P<u2>.+)\))\s*$")
 _ROLES = ("case_id", "pass")
@@ -233,9 +233,14 @@ def resolve_header(headers: Sequence[str], source: str, analytes: Mapping[str, S
                    mapping: ColumnMapping | None) -> list[Target]:
     targets: list[Target] = []
     seen: dict[str, str] = {}
+    passed: set[str] = set()
     for i, h in enumerate(headers, start=1):
         where = f"{source}: column {i} '{h}'"
         t = resolve_column(str(h), where, analytes, mapping)
+        if t.role == "pass":                  # a repeated header keeps both columns: name_<n>
+            name = t.name if t.name not in passed else f"{t.name}_{i}"
+            passed.add(name)
+            t = Target("pass", name)
         key = t.name if t.role == "input" else (t.role if t.role == "case_id" else "")
         if key:
             if key in seen:
@@ -321,8 +326,7 @@ class Table:
         size = max(os.fstat(f.fileno()).st_size, 1)
         raw = f.buffer.raw  # type: ignore[attr-defined]
         self._progress = lambda: min(raw.tell() / size, 1.0)
-        dialect: Any = "excel-tab" if self.path.suffix.lower() == ".tsv" else "excel"
-        reader = csv.reader(f, dialect)
+        reader = csv.reader(f)
         try:
             headers = next(reader)
         except StopIteration:
@@ -330,7 +334,7 @@ class Table:
         except csv.Error as exc:
             raise TableError(f"{self.path}:1", f"unreadable header: {exc}") from None
         targets = resolve_header(headers, str(self.path), self.analytes, self.mapping)
-        self.passthrough = [h for h, t in zip(headers, targets) if t.role == "pass"]
+        self.passthrough = [t.name for t in targets if t.role == "pass"]
         self._rows = self._csv_rows(reader, headers, targets)
 
     def _csv_rows(self, reader: Any, headers: list[str], targets: list[Target]) -> Iterator[Row]:
@@ -360,7 +364,7 @@ class Table:
             for i, role, key, unit in plan:
                 cell = fields[i] if i < len(fields) else None
                 if role == "pass":
-                    passthrough[headers[i]] = cell
+                    passthrough[key] = cell
                 elif cell is None or cell == "":
                     continue
                 elif role == "input":
