@@ -516,3 +516,37 @@ def test_cds_calls_are_decision_records_without_the_patient_id(tmp_path: Path) -
     text = json.dumps(entry)
     assert body["hookInstance"] in text       # the card can be traced to its decision record
     assert PATIENT not in text                # patient_id dropped by the default context policy
+
+
+def test_cds_responses_match_the_openapi_schemas(server: Server, keys: dict[str, Any]) -> None:
+    from test_service import _openapi_validator
+
+    _, doc = server.json("GET", "/openapi.json")
+    status, _, out = call(server, keys, "POST", f"/cds-services/{SERVICE}",
+                          request_body(searchset(PANEL)))
+    assert status == 200
+    _openapi_validator(doc, "CdsResponse").validate(out)
+    fb = {"feedback": [{"card": out["cards"][0]["uuid"], "outcome": "overridden",
+                        "outcomeTimestamp": "2031-03-14T08:40:12Z"}]}
+    _openapi_validator(doc, "CdsFeedback").validate(fb)
+    status, _, ack = call(server, keys, "POST", f"/cds-services/{SERVICE}/feedback", fb)
+    assert status == 200
+    _openapi_validator(doc, "CdsFeedbackAck").validate(ack)
+    _openapi_validator(doc, "Error").validate(call(server, keys, "GET", "/cds-services",
+                                                   bearer=None)[2])
+
+
+def test_discovery_can_be_left_open_by_configuration(keys: dict[str, Any],
+                                                     tmp_path: Path) -> None:
+    config = json.loads(keys["config"].read_text())
+    config["protect_discovery"] = False
+    for name in ("ehr.jwks.json", "lab.pem"):
+        (tmp_path / name).write_bytes((keys["config"].parent / name).read_bytes())
+    (tmp_path / "keys.json").write_text(json.dumps(config))
+    srv = start(tmp_path, cds_keys=str(tmp_path / "keys.json"))
+    try:
+        assert srv.call("GET", "/cds-services")[0] == 200
+        status, _, _ = srv.call("POST", f"/cds-services/{SERVICE}", request_body(None))
+        assert status == 401          # the services themselves still need a token
+    finally:
+        srv.close()
