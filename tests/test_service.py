@@ -435,6 +435,29 @@ def test_strict_mode_and_decision_records_go_through_the_runtime(tmp_path: Path,
     assert report.errors == () and report.entries == 4   # 1 + 3 rows, the broken one too
 
 
+def test_shadow_mode_answers_with_the_active_rulebook_only(tmp_path: Path,
+                                                            rulebook: Any) -> None:
+    from gasrules.resources import default_rulebook_path
+
+    settings = tmp_path / "site.yaml"
+    settings.write_text(f"shadow:\n  rulebook: {default_rulebook_path()}\n"
+                        f"  log: {tmp_path / 'disagreements.jsonl'}\n", encoding="utf-8")
+    srv = start(tmp_path, settings=str(settings))
+    try:
+        health = srv.json("GET", "/health")[1]
+        assert health["runtime"]["shadow"]["id"] == rulebook.id
+        assert health["runtime"]["decision_records"] is False
+        status, body = srv.json("POST", "/interpret/batch?trace=0", DEMO_ROWS[:5])
+        assert status == 200
+        assert body == [json.loads(json.dumps(gasrules.interpret(rulebook, r, trace=False)))
+                        for r in DEMO_ROWS[:5]]
+        runtime = srv.app.interpreter.runtime
+        assert runtime.shadowing and runtime.disagreements == 0   # same rulebook both sides
+    finally:
+        srv.close()
+        srv.app.close()
+
+
 def test_strict_mode_refuses_to_serve_an_unapproved_rulebook(tmp_path: Path) -> None:
     from typer.testing import CliRunner
 
