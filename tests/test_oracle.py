@@ -114,10 +114,10 @@ def boundary_cases(rb: Any, bases: list[dict[str, Any]]) -> Iterator[dict[str, A
                     yield dict(base, **{name: v})
 
 
-@pytest.mark.parametrize("which", ["mini_rb", "shipped_rb"])
+@pytest.mark.parametrize("which", ["mini_rb", pytest.param("shipped_rb", marks=pytest.mark.slow)])
 def test_boundary_cases(which: str, request: pytest.FixtureRequest) -> None:
     rb = request.getfixturevalue(which)
-    bases = [dict(c, sample_type="arterial") for c in itertools.islice(generate_cases(40, seed=3), 0, 40, 8)]
+    bases = [dict(c, sample_type="arterial") for c in itertools.islice(generate_cases(30, seed=3), 0, 30, 10)]
     n, totals = run(rb, boundary_cases(rb, bases))
     assert n > 200
     assert totals.get("fired", 0) > 0 and totals.get("not_fired", 0) > 0

@@ -79,8 +79,8 @@ def test_override_is_shown_in_the_trace(site_mini: Any) -> None:
 def test_override_changes_the_decision_at_its_threshold(site_mini: Any, mini_rb: Any) -> None:
     # Anion gap exactly 12 (Na 140, Cl 108, HCO3 20): not above the base limit 12 (Kraut & Madias,
     # Clin J Am Soc Nephrol 2007), above the site's 11 (Winter et al., Arch Intern Med 1990).
-    # pH 7.32 from Henderson-Hasselbalch for HCO3 20 / PCO2 38 (6.1 + log10(20 / (0.0307 x 38)) = 7.3358,
-    # common practice form): consistent, acidaemic.
+    # pH 7.34 fits Henderson-Hasselbalch for HCO3 20 / PCO2 38 (6.1 + log10(20 / (0.0307 x 38)) = 7.334,
+    # NCCLS form with S 0.0307): consistent, acidaemic.
     case = {"ph": 7.34, "pco2": 38, "hco3": 20, "na": 140, "cl": 108}
     base, site = gasrules.interpret(mini_rb, case), gasrules.interpret(site_mini, case)
     assert base["values"]["anion_gap"] == site["values"]["anion_gap"] == 12.0
@@ -101,7 +101,7 @@ def test_choice_override(site_mini: Any, mini_rb: Any) -> None:
 
 def test_by_value_override(site_mini: Any, mini_rb: Any) -> None:
     # Venous pH 7.30: not below the base venous limit 7.30, below the site's 7.31
-    # (venous interval: common practice). PCO2 46 / HCO3 22 -> HH pH 7.303: consistent.
+    # (venous interval: common practice). PCO2 46 / HCO3 22 -> HH pH 7.293 (NCCLS form): consistent.
     case = {"ph": 7.30, "pco2": 46, "hco3": 22, "sample_type": "venous"}
     base, site = gasrules.interpret(mini_rb, case), gasrules.interpret(site_mini, case)
     assert _events(base)["ph_state.acidaemia"]["outcome"] == "not_fired"
