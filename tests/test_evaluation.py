@@ -221,6 +221,18 @@ def test_inconsistent_sample(shipped_rb: Any, result_validator: Any) -> None:
     assert halted and all(set(e) == {"rule", "step", "title", "outcome"} for e in halted)
 
 
+def test_critical_values_survive_a_stop(shipped_rb: Any) -> None:
+    # Critical values are never suppressed (methods.md 5 item 10; common practice): pH 6.95 is below
+    # the critical 7.10 and K 7.0 above the critical 6.5 (common practice limits), and the sample is
+    # also inconsistent (HH HCO3 0.0307 x 40 x 10^0.85 = 8.7 vs 30, NCCLS form).
+    result = gasrules.interpret(shipped_rb, {"ph": 6.95, "pco2": 40, "hco3": 30, "k": 7.0})
+    assert result["status"] == "inconsistent" and result["disorders"] == []
+    critical = [f["code"] for f in result["findings"] if f["severity"] == "critical"]
+    assert {"critical.ph_low", "critical.k_high", "consistency.hh_ph"} <= set(critical)
+    assert result["findings"][0]["severity"] == "critical"      # critical findings come first
+    assert result["headline"].startswith("Critical pH")
+
+
 def test_inconsistent_sample_in_the_mini_rulebook(mini_rb: Any) -> None:
     result = gasrules.interpret(mini_rb, {"ph": 7.40, "pco2": 40, "hco3": 30, "na": 140, "cl": 100})
     assert (result["status"], result["disorders"], result["headline"]) == (
