@@ -97,3 +97,22 @@ def test_cli_json(tuned: Path) -> None:
     assert data["old_version"] == "1.0.0" and data["new_version"] == "1.0.1"
     [p] = data["probes"]
     assert p["cut"]["threshold"] == "ag_high" and any(pt["differs"] for pt in p["points"])
+
+
+def test_literal_threshold_change_is_a_changed_cut(tmp_path: Path) -> None:
+    """A literal in a condition (discouraged, but legal) is paired by owner and position."""
+    text = SHIPPED.read_text(encoding="utf-8")
+    anchor = "when: known(ph) and ph < critical_ph_low\n"
+    assert text.count(anchor) == 1
+    paths = []
+    for name, literal in (("a", "7.1"), ("b", "7.05")):      # invented literals for the test
+        p = tmp_path / name / "rulebook.yaml"
+        p.parent.mkdir()
+        p.write_text(text.replace(anchor, f"when: known(ph) and ph < {literal}\n"), encoding="utf-8")
+        paths.append(p)
+    old, new = load_rulebook(paths[0]), load_rulebook(paths[1])
+    [cut] = changed_cutpoints(old, new)
+    assert (cut.owner, cut.kind, cut.quantity, cut.old, cut.new) == ("critical.ph_low", "constant", "ph", 7.1, 7.05)
+    [probe] = run_probes(old, new, default_bases([], n_generated=200))
+    assert [p.target for p in probe.points] == [7.04, 7.05, 7.06, 7.09, 7.1, 7.11]
+    assert [p.target for p in probe.points if p.differs] == [7.05, 7.06, 7.09]
