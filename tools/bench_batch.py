@@ -9,13 +9,17 @@ The corpus is invented by tools/make_demo_data.py (casegen, seed 7, ~0.1 % malfo
 written under --dir (default /tmp/gasrules-bench-batch; never commit it). Each run is a separate
 `gasrules batch` process; its peak memory is sampled from /proc every 50 ms as the sum of the
 resident sets of the whole process tree (the main process and its workers), and the largest
-single process is shown too. Runs on one machine, side by side, so compare ratios, not absolutes.
+single process is shown too. CPU time (user + system, the run and its workers) is printed
+beside wall time: "cores busy" below the worker count means the machine was shared, and cases per
+CPU-second is the figure that does not depend on that. Runs on one machine, side by side, so
+compare ratios, not absolutes.
 """
 
 from __future__ import annotations
 
 import argparse
 import os
+import resource
 import subprocess
 import sys
 import threading
@@ -83,24 +87,29 @@ def run_once(src: Path, out: Path, workers: int) -> dict[str, float]:
     cmd = [sys.executable, "-c", "import sys; from gasrules.cli import main; sys.exit(main())",
            "batch", str(src), str(out), "--workers", str(workers), "--no-progress"]
     env = {**os.environ, "PYTHONPATH": str(ROOT / "engine")}
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t0 = time.perf_counter()
     proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env)
     sampler = PeakSampler(proc.pid)
     sampler.start()
     _, err = proc.communicate()
     seconds = time.perf_counter() - t0
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)       # the run and its reaped workers
+    cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
     sampler.halt.set()
     sampler.join()
     if proc.returncode != 0:
         raise SystemExit(f"batch failed ({proc.returncode}): {err.decode()[-2000:]}")
     rows = int(err.decode().split(" rows in", 1)[0].replace(",", "").split()[-1])
-    return {"rows": rows, "seconds": seconds, "rate": rows / seconds,
+    return {"rows": rows, "seconds": seconds, "rate": rows / seconds, "cpu": cpu,
             "tree_mib": sampler.peak_tree / 1024, "single_mib": sampler.peak_single / 1024}
 
 
 def _line(label: str, r: dict[str, float]) -> str:
     return (f"  {label:<34} {r['rows']:>10,.0f} rows  {r['seconds']:7.1f} s  {r['rate']:8,.0f} cases/s  "
-            f"peak RSS {r['tree_mib']:6.0f} MiB (all processes), {r['single_mib']:5.0f} MiB (largest one)")
+            f"CPU {r['cpu']:6.1f} s ({r['rows'] / max(r['cpu'], 1e-9):6,.0f} cases per CPU-second, "
+            f"{r['cpu'] / r['seconds']:4.2f} cores busy)  "
+            f"peak RSS {r['tree_mib']:5.0f} MiB (all processes), {r['single_mib']:4.0f} MiB (largest one)")
 
 
 def main(argv: list[str] | None = None) -> int:
