@@ -334,3 +334,16 @@ def test_repeated_headers_and_non_text_passthrough_are_kept(rb: Any, tmp_path: P
                   stderr=io.StringIO())
         back = read_back(tmp_path / out)
         assert [(r["bed"], r["tags"]) for r in back] == [("7", '["a","b"]'), ("7b", None if out.endswith("parquet") else "")]
+
+
+def test_cli_refusals_name_the_problem(corpus: dict[str, Path], tmp_path: Path,
+                                       capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["batch", str(corpus["csv"]), str(tmp_path / "o.csv"), "--values", "anion_gap,gap_of_gaps"]) == 2
+    assert "--values: not a derived value of rulebook adult-default: gap_of_gaps" in capsys.readouterr().err
+    settings = tmp_path / "s.yaml"
+    settings.write_text(f"decision_log:\n  path: {tmp_path / 'log.jsonl'}\n", encoding="utf-8")
+    assert main(["batch", str(corpus["csv"]), str(tmp_path / "out"), "--dask-local", "2",
+                 "--settings", str(settings)]) == 2
+    assert "decision records and shadow mode need a single-machine run" in capsys.readouterr().err
+    assert main(["batch", str(corpus["csv"]), str(tmp_path / "out"), "--dask", "tcp://x:1", "--dask-local", "2"]) == 2
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["s.yaml"]

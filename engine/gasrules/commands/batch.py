@@ -37,9 +37,11 @@ def _settings_in_use(settings_file: Optional[Path]) -> bool:
         k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in os.environ)
 
 
-def runtime_hooks(settings_file: Optional[Path], rulebook: Optional[Path], strict: bool) -> Any:
+def runtime_hooks(settings_file: Optional[Path], rulebook: Optional[Path], strict: bool,
+                  distributed: bool = False) -> Any:
     """RunHooks from the site settings (strict mode, decision records, shadow mode), or None
-    when no settings apply. Raises typer.Exit with the documented code when refused."""
+    when no settings apply. Raises typer.Exit with the documented code when refused (before
+    any log is opened)."""
     if not _settings_in_use(settings_file) and not strict:
         return None
     from ..batch import RunHooks
@@ -54,6 +56,8 @@ def runtime_hooks(settings_file: Optional[Path], rulebook: Optional[Path], stric
             import dataclasses
 
             settings = dataclasses.replace(settings, strict=True)
+        if distributed and (settings.decision_log is not None or settings.shadow_rulebook is not None):
+            raise _fail(exitcodes.USAGE, _SINGLE_MACHINE)
         rt = Runtime.from_settings(settings, rulebook)
     except RulebookError as exc:
         typer.echo(render_problems(exc.problems, str(rulebook or "rulebook")), err=True)
@@ -82,6 +86,10 @@ def runtime_hooks(settings_file: Optional[Path], rulebook: Optional[Path], stric
 
     return RunHooks(rulebook=rt.rulebook, candidate=rt.candidate if shadow else None, trace=logging,
                     observe=observe if (logging or shadow) else None, close=close, notes=notes)
+
+
+_SINGLE_MACHINE = ("decision records and shadow mode need a single-machine run "
+                   "(drop --dask, or turn them off in the settings)")
 
 
 def _terminate(signum: int, frame: Any) -> None:
@@ -116,7 +124,7 @@ def batch(
             raise _fail(exitcodes.USAGE, f"{name} '{fmt}' is not one of {', '.join(FORMATS)}")
     if dask and dask_local:
         raise _fail(exitcodes.USAGE, "give --dask SCHEDULER or --dask-local N, not both")
-    hooks = runtime_hooks(settings_file, rulebook, strict)
+    hooks = runtime_hooks(settings_file, rulebook, strict, distributed=bool(dask or dask_local))
     rb = hooks.rulebook if hooks is not None else _load(rulebook)
     try:
         options = BatchOptions(
@@ -130,8 +138,7 @@ def batch(
                 from ..distributed import run_distributed
 
                 if hooks is not None and hooks.observe is not None:
-                    raise _fail(exitcodes.USAGE, "decision records and shadow mode need a single-machine run "
-                                "(drop --dask, or turn them off in the settings)")
+                    raise _fail(exitcodes.USAGE, _SINGLE_MACHINE)
                 try:
                     summary = run_distributed(rb, source, target, options, scheduler=dask, local_workers=dask_local)
                 finally:
