@@ -478,17 +478,25 @@ def _cutpoints(derived: dict[str, DerivedSpec], rules: list[RuleSpec], inputs: d
 
 
 def list_cutpoints(compiled: CompiledRulebook) -> list[dict[str, Any]]:
-    """Every numeric cut-point of every condition, with the threshold's current value."""
+    """Every numeric cut-point of every condition, with the threshold's current value.
+
+    ``value`` is the default; when a coded input selects the parameter (e.g. venous intervals),
+    ``by`` holds {input, values} with the value for each code. When both sides are measured or
+    derived, ``quantity`` is the left-hand side as written."""
     out = []
     for c in compiled.cutpoints:
         value: Any = None
+        by: dict[str, Any] = {}
         if c.threshold_kind == "parameter":
-            value = compiled.parameters[c.threshold].value
+            p = compiled.parameters[c.threshold]
+            value = p.value
+            if p.by_input:
+                by = {"input": p.by_input, "values": dict(p.by_values)}
         elif c.threshold_kind == "constant":
             value = float(c.threshold)
         out.append({"owner": c.owner, "field": c.field, "quantity": c.quantity, "op": c.op,
                     "threshold": c.threshold, "threshold_kind": c.threshold_kind, "value": value,
-                    "location": str(c.location)})
+                    "by": by, "location": str(c.location)})
     return out
 
 
