@@ -31,14 +31,14 @@ import time
 from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterable, Iterator, Sequence, TextIO
+from typing import Any, Callable, Iterator, Sequence, TextIO
 
 from .pool import OrderedPool, chunked
 from .tabular import (Column, ColumnMapping, Row, Table, analytes_of, interpret_row,
                       open_table, open_writer)
 
 __all__ = ["BatchOptions", "BatchSummary", "RunHooks", "Progress", "output_columns", "record_values",
-           "result_record", "run_batch", "interpret_chunk", "iter_results", "RESULT_COLUMNS"]
+           "result_record", "run_batch", "interpret_chunk", "lineage", "RESULT_COLUMNS"]
 
 RESULT_COLUMNS = ("case_id", "status", "headline", "disorders", "qualifiers")
 TAIL_COLUMNS = ("findings", "errors")
@@ -329,17 +329,3 @@ def _default_out_format(target: str | Path, in_fmt: str) -> str:
     from .tabular import detect_format
 
     return detect_format(target)
-
-
-def iter_results(rb: Any, rows: Iterable[Row], workers: int = 1, chunk_size: int = 500,
-                 trace: bool = False) -> Iterator[dict[str, Any]]:
-    """Results for rows, in order, across ``workers`` processes (for callers that want the
-    result contract itself rather than flat records)."""
-    with OrderedPool(_results_chunk, (rb, trace), workers) as pool:
-        for chunk in pool.map(chunked(rows, chunk_size)):
-            yield from chunk
-
-
-def _results_chunk(payload: tuple[Any, bool], rows: list[Row]) -> list[dict[str, Any]]:
-    rb, trace = payload
-    return [_safe(rb, r, trace) for r in rows]
