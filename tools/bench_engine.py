@@ -184,6 +184,10 @@ def section_stages(rb: Any, cases: list[Any], rounds: int) -> None:
         med["full"][1] - med["function"][1], n, "(interpret minus read+function)")
     nev = sum(len(gasrules.interpret(rb, c)["trace"]) for c in cases[:200]) / min(200, n)
     print(f"  (trace events per case: {nev:.0f}; identity {static.identity['id']})")
+    floor = [run_pass(lambda _c: _bare_events(int(nev)), cases[:5000]) for _ in range(rounds)]
+    row(f"floor: {nev:.0f} bare events (4 small dicts each), plain Python",
+        statistics.median(w for w, _ in floor), statistics.median(c for _, c in floor), len(cases[:5000]),
+        "what any trace of this size costs")
     # Keeping every result alive (as a caller collecting a batch does) makes the cyclic garbage
     # collector rescan a growing heap; results hold no cycles, so that work is wasted.
     sample = cases[:3000]
@@ -205,6 +209,20 @@ def section_stages(rb: Any, cases: list[Any], rounds: int) -> None:
         statistics.median(c for _, c in kept), len(sample))
     row("  the same with the cyclic GC disabled", statistics.median(w for w, _ in kept_nogc),
         statistics.median(c for _, c in kept_nogc), len(sample))
+
+
+_PARAM = {"value": 7.1, "unit": "[pH]", "set_by": "rulebook.yaml:1:1"}
+
+
+def _bare_events(n: int, v: float = 7.25, r: float = 7.25) -> list[Any]:
+    """The smallest event a rule with one read, one parameter and one comparison can have."""
+    out = []
+    for _ in range(n):
+        out.append({"rule": "r", "step": "s", "title": "t", "outcome": "not_fired", "reads": {"ph": v},
+                    "parameters": {"p": _PARAM},
+                    "comparisons": [{"quantity": "ph", "value": v, "compared": r, "op": "<", "threshold": "p",
+                                     "threshold_value": 7.1, "margin": round(r - 7.1, 9)}]})
+    return out
 
 
 def _child_cpu() -> float:
@@ -241,6 +259,9 @@ def section_cold_start(runs: int) -> None:
         warm = [_timed(cmd, warm_env) for _ in range(runs)]
         bare = [_timed([sys.executable, "-c", "pass"], base_env) for _ in range(runs)]
         imp = [_timed([sys.executable, "-c", "import gasrules.cli"], base_env) for _ in range(runs)]
+        lib_code = ("import sys, json, gasrules; rb = gasrules.load_rulebook(); "
+                    "print(gasrules.interpret(rb, json.load(open(sys.argv[1])))['headline'])")
+        lib = [_timed([sys.executable, "-c", lib_code, str(case_file)], warm_env) for _ in range(runs)]
         codes = {c for _, _, c in warm} | {cold[2]}
         print(f"  {'warm compiled-rulebook cache':<52} {statistics.median(w for w, _, _ in warm):7.3f} s "
               f"cpu {statistics.median(c for _, c, _ in warm):6.3f} s   {TARGETS['cold']}")
@@ -251,6 +272,9 @@ def section_cold_start(runs: int) -> None:
         label = 'python -c "import gasrules.cli"'
         print(f"  {label:<52} {statistics.median(w for w, _, _ in imp):7.3f} s "
               f"cpu {statistics.median(c for _, c, _ in imp):6.3f} s")
+        label = "library only: load_rulebook + interpret, no CLI"
+        print(f"  {label:<52} {statistics.median(w for w, _, _ in lib):7.3f} s "
+              f"cpu {statistics.median(c for _, c, _ in lib):6.3f} s   (same warm cache)")
         print(f"  (exit codes seen: {sorted(codes)})")
         import_breakdown(warm_env, case_file)
 
