@@ -209,7 +209,7 @@ def test_runtime_appends_masked_decision_records(tmp_path: Path) -> None:
     with Runtime.from_settings(settings, ADULT) as rt:
         shown = list(rt.interpret_many([E1, {"case_id": "bad", "ph": "high"}, E1], trace=False))
     assert [r["case_id"] for r in shown] == ["E1", "bad", "E1"]
-    assert all("trace" not in r for r in shown)
+    assert all(r["trace"] == [] for r in shown)  # the contract keeps the key, empty when not asked for
     assert verify_log(tmp_path / "d.jsonl").ok
     entries = [json.loads(line) for line in (tmp_path / "d.jsonl").read_text().splitlines()]
     assert len(entries) == 3

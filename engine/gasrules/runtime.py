@@ -200,8 +200,8 @@ class Runtime:
             self._log.append(case, result, rulebook=self.rulebook)
         if self._shadow is not None and other is not None:
             self._shadow.observe(case, result, other)
-        if not trace and "trace" in result:
-            result = {k: v for k, v in result.items() if k != "trace"}
+        if not trace and result.get("trace"):
+            result = {**result, "trace": []}  # the contract keeps the key; it is empty when not asked for
         return result
 
     # ------------------------------------------------------------ lifecycle
