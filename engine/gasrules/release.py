@@ -12,7 +12,7 @@ Manifest (``gasrules-release/1``)::
     rulebook  {id, version, sha256, title, files [{path, sha256}]}
     archive   {sha256, file}                     where the resolved rulebook is kept
     suite     {content_sha256, files, cases, passed, failed, skipped, rules, rules_covered,
-               never_fired, never_not_fired, threshold_coverage}
+               never_fired, never_not_fired, threshold_coverage, excused (stated unreachable, with reasons)}
     previous  {manifest, manifest_sha256, rulebook {id, version, sha256}} or null
     change    {class, bump, counts, changes [{kind, key, aspect, class}]}
     author [names] · approvers [{name, role}] · date · engine_version · manifest_sha256
@@ -63,6 +63,7 @@ class SuiteSummary:
     never_fired: list[str]
     never_not_fired: list[str]
     threshold_coverage: dict[str, Any] = field(default_factory=dict)
+    excused: list[dict[str, Any]] = field(default_factory=list)   # coverage stated unreachable, with reasons
 
     def gate_problems(self) -> list[tuple[str, str]]:
         out = []
@@ -103,10 +104,10 @@ def run_validation(rulebook_path: Path, rb: Any) -> SuiteSummary:
 
     loaded = S.load_suite(rulebook_path)
     results = S.run_suite(rb, loaded)
-    cov = S.rule_coverage(rb, results)
+    cov = S.rule_coverage(rb, results, loaded.unreachable)   # stated exceptions, each with a reason
     threshold: dict[str, Any] = {}
     if hasattr(S, "threshold_coverage"):
-        tc = S.threshold_coverage(rb, results)
+        tc = S.threshold_coverage(rb, results, loaded.unreachable)
         threshold = {k: v for k, v in tc.items() if isinstance(v, (int, float, str))}
     root = _common_root([str(f) for f in loaded.files] + [str(rulebook_path)])
     content, names = _files_hash([str(f) for f in loaded.files], root)
@@ -114,7 +115,8 @@ def run_validation(rulebook_path: Path, rb: Any) -> SuiteSummary:
     count = {o: sum(1 for r in results if r.outcome == o) for o in ("passed", "failed", "skipped")}
     return SuiteSummary(content, names, len(results), count["passed"], count["failed"], count["skipped"],
                         failures, int(cov["rules"]), int(cov["both"]), list(cov["never_fired"]),
-                        list(cov["never_not_fired"]), threshold)
+                        list(cov["never_not_fired"]), threshold,
+                        [dict(e) for e in cov.get("excused", [])])
 
 
 def _common_root(paths: list[str]) -> Path:
