@@ -292,7 +292,7 @@ def test_decision_records_one_entry_per_row_and_shadow(corpus: dict[str, Path], 
 @pytest.mark.parametrize("sig", [signal.SIGKILL, signal.SIGTERM])
 def test_killed_run_leaves_no_complete_looking_file(tmp_path: Path, sig: int) -> None:
     src = tmp_path / "big.csv"
-    _corpus(src, 60_000, "csv", seed=3, malformed=0.001)
+    _corpus(src, 30_000, "csv", seed=3, malformed=0.001)
     target = tmp_path / "results.csv"
     proc = subprocess.Popen([sys.executable, "-c", "import sys; from gasrules.cli import main; sys.exit(main())",
                              "batch", str(src), str(target), "--chunk-size", "50"],
