@@ -44,7 +44,9 @@ def probes(old: Path = typer.Argument(..., help="The previous rulebook (or overl
         raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
     dirs = list(cases) or [d for d in dict.fromkeys([old.parent / "cases", new.parent / "cases"]) if d.is_dir()]
     result = run_probes(rb_old, rb_new, default_bases(dirs, generated, seed), only)
-    text = RENDERERS[fmt.value](result, rb_old.version, rb_new.version)
+    same = rb_old.id == rb_new.id
+    names = [rb.version if same else f"{rb.id} {rb.version}" for rb in (rb_old, rb_new)]
+    text = RENDERERS[fmt.value](result, names[0], names[1])
     if output is not None:
         output.write_text(text + "\n", encoding="utf-8")
     else:
