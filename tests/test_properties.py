@@ -12,10 +12,12 @@ import copy
 import json
 from typing import Any
 
+import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import gasrules
+from conftest import MINI
 from gasrules import units as U
 
 SETTINGS = settings(max_examples=40, deadline=None, derandomize=True,
@@ -78,19 +80,10 @@ def check_result(rb: Any, case: dict[str, Any], validate: Any) -> dict[str, Any]
     return result
 
 
-# The rulebook is needed to build the strategy, so these properties load it themselves (the
-# compiled-rulebook cache makes that cheap) instead of taking a fixture.
+# The rulebook is needed to build the strategies at import, so these properties load it
+# themselves (the compiled-rulebook cache makes that cheap) instead of taking a fixture.
 SHIPPED = gasrules.load_rulebook()
-MINI_RB = None
-
-
-def _mini() -> Any:
-    from conftest import MINI
-
-    return gasrules.load_rulebook(MINI)
-
-
-MINI_RB = _mini()
+MINI_RB = gasrules.load_rulebook(MINI)
 
 
 @SETTINGS
@@ -148,3 +141,13 @@ def test_case_id_and_context_change_nothing_else(case: dict[str, Any], case_id: 
     assert (b["case_id"], b["context"]) == (case_id, context)
     strip = ("case_id", "context")
     assert {k: v for k, v in a.items() if k not in strip} == {k: v for k, v in b.items() if k not in strip}
+
+
+@pytest.mark.slow
+def test_interpret_many_with_worker_processes_equals_a_loop() -> None:
+    # The compiled rulebook pickles into spawned workers and comes back with the same results, in order.
+    from gasrules.casegen import generate_cases
+
+    batch = list(generate_cases(60, seed=9)) + [{"ph": "bad"}, [1, 2], {}]
+    looped = [gasrules.interpret(SHIPPED, c) for c in batch]
+    assert list(gasrules.interpret_many(SHIPPED, batch, workers=2, chunksize=7)) == looped
