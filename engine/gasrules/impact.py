@@ -11,7 +11,7 @@ The report counts every row (a row that cannot be read, or a case the engine rej
 counted and listed with its place and the field named, never dropped), the cases whose
 disorders or findings change, the transitions ``old disorder set -> new disorder set`` with
 counts, example case ids and the rules responsible (rules whose fired / not-fired outcome
-differs), finding codes gained and lost, and the cases that sit, under the new rulebook,
+differs in a case whose conclusion changed), finding codes gained and lost, and the cases that sit, under the new rulebook,
 close to a changed threshold: within the distance the threshold moved (at least one reporting
 step) of it, read from the margins in the trace comparisons.
 
