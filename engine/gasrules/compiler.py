@@ -18,7 +18,7 @@ from typing import Any, Iterable
 
 from . import __version__
 from .errors import Location, Problem, RulebookError
-from .expressions import CutPoint, Expr, NameInfo, parse, runtime_globals, to_python
+from .expressions import CutPoint, Expr, NameInfo, compare_nodes, parse, runtime_globals, to_python
 from .model import (CompiledRulebook, DerivedSpec, FindingSpec, InputSpec, ParamSpec, RuleSpec,
                     StepSpec)
 from .overlay import Ref, Resolved
@@ -464,17 +464,37 @@ def _cutpoints(derived: dict[str, DerivedSpec], rules: list[RuleSpec], inputs: d
 
     flip = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
     for owner, field, expr in _exprs(derived, rules):
-        for left, op, right in expr.compares:
-            lk, rk = kind(left), kind(right)
-            if lk is None or rk is None:
-                continue
-            # the quantity is the measured side; the threshold is the parameter/constant side
-            if lk[0] in ("parameter", "constant") and rk[0] in ("input", "derived"):
-                lk, rk, op = rk, lk, flip[op]
-            if lk[0] in ("parameter", "constant"):
-                continue
-            yield CutPoint(owner=owner, field=field, quantity=lk[1], op=op, threshold=rk[1],
-                           threshold_kind=rk[0], location=expr.location)
+        for k, node in enumerate(compare_nodes(expr.node)):
+            for left, op, right in _pairs(node):
+                cp = _cutpoint(owner, field, expr, k, left, op, right, kind, flip)
+                if cp is not None:
+                    yield cp
+
+
+def _pairs(node: ast.Compare) -> list[tuple[ast.AST, str, ast.AST]]:
+    out = []
+    left = node.left
+    for op, right in zip(node.ops, node.comparators):
+        out.append((left, _CMP_TEXT[type(op)], right))
+        left = right
+    return out
+
+
+_CMP_TEXT = {ast.Lt: "<", ast.LtE: "<=", ast.Gt: ">", ast.GtE: ">=", ast.Eq: "==", ast.NotEq: "!="}
+
+
+def _cutpoint(owner: str, field: str, expr: Expr, k: int, left: ast.AST, op: str, right: ast.AST,
+              kind: Any, flip: dict[str, str]) -> CutPoint | None:
+    lk, rk = kind(left), kind(right)
+    if lk is None or rk is None:
+        return None
+    # the quantity is the measured side; the threshold is the parameter/constant side
+    if lk[0] in ("parameter", "constant") and rk[0] in ("input", "derived"):
+        lk, rk, op = rk, lk, flip[op]
+    if lk[0] in ("parameter", "constant"):
+        return None
+    return CutPoint(owner=owner, field=field, quantity=lk[1], op=op, threshold=rk[1],
+                    threshold_kind=rk[0], location=expr.location, node=k)
 
 
 def list_cutpoints(compiled: CompiledRulebook) -> list[dict[str, Any]]:
@@ -582,7 +602,7 @@ def generate(plan: list[tuple[str, str]], inputs: dict[str, InputSpec], params: 
         else:
             r = by_rule[name]
             lines.append(f"    # rule {r.id}")
-            ev = _TraceSource(r, inputs, params, derived, cutpoints, rounded)
+            ev = _TraceSource(r, inputs, params, derived, cutpoints, rounded, infos)
             if r.status == "suspended":
                 lines.append(f"    O.append({SUSPENDED})")
                 lines.append(f"    if T is not None: T.append({ev.event('suspended')})")
@@ -616,10 +636,10 @@ def generate(plan: list[tuple[str, str]], inputs: dict[str, InputSpec], params: 
             lines.append("        elif c:")
             for stmt in fire:
                 lines.append(f"            {stmt}")
-            lines.append(f"            if T is not None: T.append({ev.event('fired')})")
+            lines += ev.block("fired", "            ")
             lines.append("        else:")
             lines.append(f"            O.append({NOT_FIRED})")
-            lines.append(f"            if T is not None: T.append({ev.event('not_fired')})")
+            lines += ev.block("not_fired", "            ")
     vals = ", ".join(f"v_{n}" for n in value_names)
     states = ", ".join(f"S_{n}" for n in value_names)
     lines.append(f"    return ({vals}{',' if len(value_names) == 1 else ''}), ({states}{',' if len(value_names) == 1 else ''}), E, O, F")
@@ -631,8 +651,10 @@ class _TraceSource:
     Events are dict literals built in the branch that decided the outcome."""
 
     def __init__(self, r: RuleSpec, inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
-                 derived: dict[str, DerivedSpec], cutpoints: tuple[CutPoint, ...], rounded: set[str]):
+                 derived: dict[str, DerivedSpec], cutpoints: tuple[CutPoint, ...], rounded: set[str],
+                 infos: dict[str, NameInfo]):
         self.r = r
+        self.record_cond = to_python(r.when.node, infos, record=True) if r.when is not None else ""
         self.head = f'"rule": {r.id!r}, "step": {r.step!r}, "title": {r.title!r}'
         reads = set(r.when.reads) if r.when else set()
         reads |= set(r.needs)
@@ -664,9 +686,29 @@ class _TraceSource:
                 tv = f"r_{c.threshold}"
             else:
                 tv = f"v_{c.threshold}"
-            comps.append(f"_cmp({c.quantity!r}, v_{c.quantity}, r_{c.quantity}, {c.op!r}, {c.threshold!r}, {tv})")
+            comps.append(f"_cmp({c.quantity!r}, v_{c.quantity}, r_{c.quantity}, {c.op!r}, {c.threshold!r}, {tv}, "
+                         f"W.get({c.node}), D.get({c.node}, False))")
         self.comparisons = ("[" + ", ".join(comps) + "]") if comps else ""
         self.asserted = repr(sorted(r.asserts)) if r.asserts else ""
+
+    def block(self, outcome: str, indent: str) -> list[str]:
+        """Trace statements for a decided rule (fired or not fired). When the rule compares
+        numbers, its condition is evaluated again recording each comparison's value (W), then
+        once per evaluated comparison with that one forced the other way: a comparison is
+        decisive (D) when forcing it alone changes the outcome."""
+        if not self.comparisons:
+            return [f"{indent}if T is not None: T.append({self.event(outcome)})"]
+        i2, i3 = indent + "    ", indent + "        "
+        return [f"{indent}if T is not None:",
+                f"{i2}W = {{}}", f"{i2}_ov = -1", f"{i2}_fv = False",
+                f"{i2}try:", f"{i3}_bool({self.record_cond})", f"{i2}except _ERR_T:", f"{i3}pass",
+                f"{i2}R = W", f"{i2}D = {{}}",
+                f"{i2}for _k in R:",
+                f"{i3}W = {{}}", f"{i3}_ov = _k", f"{i3}_fv = not R[_k]",
+                f"{i3}try:", f"{i3}    D[_k] = _bool({self.record_cond}) != c",
+                f"{i3}except _ERR_T:", f"{i3}    D[_k] = False",
+                f"{i2}W = R",
+                f"{i2}T.append({self.event(outcome)})"]
 
     def event(self, outcome: str) -> str:
         parts = [self.head, f'"outcome": {outcome!r}']
@@ -688,10 +730,11 @@ class _TraceSource:
         return "{" + ", ".join(parts) + "}"
 
 
-def _cmp(quantity: str, value: Any, compared: Any, op: str, threshold: str, tvalue: Any) -> dict[str, Any]:
+def _cmp(quantity: str, value: Any, compared: Any, op: str, threshold: str, tvalue: Any,
+         holds: bool | None, decisive: bool) -> dict[str, Any]:
     margin = None if compared is None or tvalue is None else round(compared - tvalue, 9)
     return {"quantity": quantity, "value": value, "compared": compared, "op": op, "threshold": threshold,
-            "threshold_value": tvalue, "margin": margin}
+            "threshold_value": tvalue, "margin": margin, "holds": holds, "decisive": decisive}
 
 
 def link(compiled: CompiledRulebook) -> None:

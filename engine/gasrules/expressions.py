@@ -58,6 +58,7 @@ class CutPoint:
     threshold: str        # a name, or the literal text of a number
     threshold_kind: str   # parameter | derived | input | constant
     location: Location
+    node: int = -1        # index of its comparison in compare_nodes(expression)
 
 
 @dataclass
@@ -307,15 +308,26 @@ class NameInfo:
     literal: Any = None       # parameters without `by`: the value, baked into the code
 
 
-def to_python(node: ast.AST, names: Mapping[str, NameInfo]) -> str:
+def compare_nodes(root: ast.AST) -> list[ast.Compare]:
+    """The comparisons of an expression, numbered in ast.walk order (the trace's index)."""
+    return [n for n in ast.walk(root) if isinstance(n, ast.Compare)]
+
+
+def to_python(node: ast.AST, names: Mapping[str, NameInfo], record: bool = False) -> str:
     """Python source for a checked expression. Locals: v_<name> full value, r_<name> rounded,
-    p_<name> per-case parameter; F is the set of asserted codes."""
-    return _Gen(names).expr(node, False)
+    p_<name> per-case parameter; F is the set of asserted codes.
+
+    With ``record``, comparison k (see :func:`compare_nodes`) becomes
+    ``(_fv if _ov == k else _rec(W, k, <comparison>))``: its value is recorded in the local dict
+    W when it is evaluated, and it can be forced to ``_fv`` by setting ``_ov = k``. The trace
+    uses this to tell which comparisons decided a rule's outcome."""
+    return _Gen(names, {id(n): k for k, n in enumerate(compare_nodes(node))} if record else None).expr(node, False)
 
 
 class _Gen:
-    def __init__(self, names: Mapping[str, NameInfo]):
+    def __init__(self, names: Mapping[str, NameInfo], record: dict[int, int] | None = None):
         self.names = names
+        self.record = record
 
     def expr(self, n: ast.AST, in_compare: bool) -> str:
         if isinstance(n, ast.Constant):
@@ -340,7 +352,11 @@ class _Gen:
             for op, right in zip(n.ops, n.comparators):
                 parts.append(_CMPOPS[type(op)])
                 parts.append(self.expr(right, True))
-            return "(" + " ".join(parts) + ")"
+            text = "(" + " ".join(parts) + ")"
+            if self.record is not None:
+                k = self.record[id(n)]
+                return f"(_fv if _ov == {k} else _rec(W, {k}, {text}))"
+            return text
         if isinstance(n, ast.IfExp):
             return f"({self.expr(n.body, in_compare)} if {self.expr(n.test, False)} else {self.expr(n.orelse, in_compare)})"
         if isinstance(n, ast.Call):
@@ -372,8 +388,14 @@ def runtime_globals() -> dict[str, Any]:
     for fname, fn in FUNCTIONS.items():
         g["_" + fname] = fn
     g["_ERR"] = (ArithmeticError, ValueError)
-    g.update(_set=set, _float=float, _bool=bool, _describe=describe_error)
+    g.update(_set=set, _float=float, _bool=bool, _describe=describe_error, _rec=_record)
+    g["_ERR_T"] = (ArithmeticError, ValueError, TypeError)   # re-evaluations may meet unguarded None
     return g
+
+
+def _record(store: dict[int, bool], k: int, value: Any) -> Any:
+    store[k] = bool(value)
+    return value
 
 
 def describe_error(exc: BaseException) -> str:
@@ -404,15 +426,28 @@ class Oracle(SimpleEval):
     ``values`` holds full values (None when unavailable), ``rounded`` the values at their
     reported precision, ``codes`` the asserted finding/disorder codes."""
 
-    def __init__(self, values: Mapping[str, Any], rounded: Mapping[str, Any], codes: set[str]):
+    def __init__(self, values: Mapping[str, Any], rounded: Mapping[str, Any], codes: set[str],
+                 forced: Mapping[int, bool] | None = None):
         functions: dict[str, Any] = dict(FUNCTIONS)
         functions["known"] = lambda v: v is not None
         functions["has"] = lambda c: c in codes
         super().__init__(functions=functions, names=dict(values))
         self.operators[ast.Pow] = math.pow
         self._rounded = rounded
+        self._forced = dict(forced or {})
+        self._index: dict[int, int] = {}
+        self.seen: dict[int, bool] = {}    # comparison index -> its value, when evaluated
 
     def _eval_compare(self, node: ast.Compare) -> Any:
+        k = self._index.get(id(node))
+        if k is not None and k in self._forced:
+            return self._forced[k]
+        value = self._compare(node)
+        if k is not None:
+            self.seen[k] = bool(value)
+        return value
+
+    def _compare(self, node: ast.Compare) -> Any:
         right = self._operand(node.left)
         result = True
         for op, comp in zip(node.ops, node.comparators):
@@ -440,4 +475,6 @@ class Oracle(SimpleEval):
         return value
 
     def run(self, expr: Expr) -> Any:
+        self._index = {id(n): k for k, n in enumerate(compare_nodes(expr.node))}
+        self.seen = {}
         return self._eval(expr.node)

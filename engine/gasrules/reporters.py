@@ -93,8 +93,10 @@ def render_trace(events: Iterable[dict[str, Any]], only: Iterable[str] | None = 
                 continue
             shown = _fmt(c["compared"])
             full = "" if c["value"] == c["compared"] else f" (full value {_fmt(c['value'])})"
+            state = ("not evaluated" if c.get("holds") is None else ("true" if c["holds"] else "false")) + \
+                (", decisive" if c.get("decisive") else "")
             lines.append(f"      compare {c['quantity']} {shown}{full} {c['op']} {c['threshold']} {_fmt(c['threshold_value'])}"
-                         f": margin {_fmt(c['margin']) if c['margin'] is not None else 'n/a'}")
+                         f": {state}; margin {_fmt(c['margin']) if c['margin'] is not None else 'n/a'}")
         if ev.get("missing"):
             lines.append("      missing: " + ", ".join(ev["missing"]))
         if ev.get("reason"):

@@ -2,9 +2,10 @@
 
 Each event says what the rule is, its outcome (fired, not_fired, skipped_missing_input,
 halted, suspended, error), what it read (inputs and derived values with their values,
-parameters with their value and the file:line that set them), and for every comparison
-that decided it, the value as compared (at its reported precision), the threshold and the
-margin between them. Events are plain JSON-ready dicts described by :class:`TraceEvent`;
+parameters with their value and the file:line that set them), and for every numeric comparison
+in its condition the value as compared (at its reported precision), the threshold, the margin
+between them, whether the comparison held (None when short-circuit logic never evaluated it)
+and whether it was decisive: forcing it alone the other way would change the outcome. Events are plain JSON-ready dicts described by :class:`TraceEvent`;
 reading them aloud is :func:`gasrules.reporters.render_trace`'s job.
 """
 
@@ -14,7 +15,7 @@ from dataclasses import dataclass
 from typing import Any, TypedDict
 
 from .compiler import ERROR, FIRED, HALTED, NOT_FIRED, OUTCOMES, SKIPPED, SUSPENDED
-from .expressions import round_at
+from .expressions import Oracle, round_at
 from .model import CompiledRulebook, RuleSpec
 
 
@@ -26,6 +27,8 @@ class Comparison(TypedDict):
     threshold: str               # a parameter name or a literal
     threshold_value: float | None
     margin: float | None         # compared - threshold_value
+    holds: bool | None           # the comparison's value; None when it was not evaluated (short-circuit)
+    decisive: bool               # forcing this comparison alone the other way would change the outcome
 
 
 class TraceEvent(TypedDict, total=False):
@@ -51,8 +54,9 @@ class RuleTrace:
     needs: tuple[tuple[str, bool], ...]
     parameters: dict[str, dict[str, Any]]
     by_params: tuple[tuple[str, str, Any], ...]   # (param, selecting input, ParamSpec)
-    comparisons: tuple[tuple[str, bool, float, str, str, str, float], ...]  # (quantity, is_input, scale, op, threshold, kind, scale)
+    comparisons: tuple[tuple[str, bool, float, str, str, str, float, int], ...]  # (quantity, is_input, scale, op, threshold, kind, scale, node)
     asserted: list[str]
+    scales: dict[str, float]                      # numeric reads -> 10**precision (compared rounded)
 
     @classmethod
     def of(cls, rule: RuleSpec, rb: CompiledRulebook) -> "RuleTrace":
@@ -74,9 +78,12 @@ class RuleTrace:
             if c.owner != rule.id or c.field != "when":
                 continue
             comps.append((c.quantity, c.quantity in rb.inputs, _scale(rb, c.quantity), c.op, c.threshold,
-                          c.threshold_kind, _scale(rb, c.threshold)))
+                          c.threshold_kind, _scale(rb, c.threshold), c.node))
         head = {"rule": rule.id, "step": rule.step, "title": rule.title}
-        return cls(rule, head, value_reads, needs, params, tuple(by_params), tuple(comps), sorted(rule.asserts))
+        scales = {n: _scale(rb, n) for n, is_input in value_reads
+                  if (rb.inputs[n].kind == "number" if is_input else True)}
+        return cls(rule, head, value_reads, needs, params, tuple(by_params), tuple(comps), sorted(rule.asserts),
+                   scales)
 
     def missing(self, inputs: dict[str, Any], vals: tuple[Any, ...], index: dict[str, int]) -> list[str]:
         out = []
@@ -102,6 +109,7 @@ def _value(name: str, is_input: bool, inputs: dict[str, Any], vals: tuple[Any, .
 def build_trace(traces: list[RuleTrace], outcomes: list[int], inputs: dict[str, Any], vals: tuple[Any, ...],
                 index: dict[str, int], calc_errors: dict[str, str]) -> list[TraceEvent]:
     events: list[TraceEvent] = []
+    codes: set[str] = set()          # asserted by the rules before this one
     for rt, outcome in zip(traces, outcomes):
         ev: TraceEvent = dict(rt.head)  # type: ignore[assignment]
         ev["outcome"] = OUTCOMES[outcome]
@@ -124,18 +132,42 @@ def build_trace(traces: list[RuleTrace], outcomes: list[int], inputs: dict[str, 
         elif outcome == ERROR:
             ev["reason"] = calc_errors.get(rt.rule.id, "")
         elif outcome in (FIRED, NOT_FIRED) and rt.comparisons:
-            ev["comparisons"] = _comparisons(rt, ev, inputs, vals, index)
+            ev["comparisons"] = _comparisons(rt, ev, inputs, vals, index, codes, outcome == FIRED)
         if outcome == FIRED:
             ev["asserted"] = rt.asserted
+            codes |= set(rt.asserted)
         events.append(ev)
     return events
 
 
+def _decisions(rt: RuleTrace, ev: TraceEvent, codes: set[str], fired: bool) -> tuple[dict[int, bool], dict[int, bool]]:
+    """(value of each evaluated comparison, whether forcing it alone the other way changes the
+    outcome), by simpleeval's own evaluator."""
+    values: dict[str, Any] = dict(ev.get("reads", {}))
+    for name, p in (ev.get("parameters") or {}).items():
+        values[name] = p["value"]
+    rounded = {n: round_at(v, rt.scales[n]) for n, v in values.items() if n in rt.scales and v is not None}
+    first = Oracle(values, rounded, codes)
+    try:
+        first.run(rt.rule.when)  # type: ignore[arg-type]
+    except (ArithmeticError, ValueError, TypeError):
+        pass
+    seen = dict(first.seen)
+    decisive: dict[int, bool] = {}
+    for k, value in seen.items():
+        try:
+            decisive[k] = bool(Oracle(values, rounded, codes, {k: not value}).run(rt.rule.when)) != fired  # type: ignore[arg-type]
+        except (ArithmeticError, ValueError, TypeError):
+            decisive[k] = False
+    return seen, decisive
+
+
 def _comparisons(rt: RuleTrace, ev: TraceEvent, inputs: dict[str, Any], vals: tuple[Any, ...],
-                 index: dict[str, int]) -> list[Comparison]:
+                 index: dict[str, int], codes: set[str], fired: bool) -> list[Comparison]:
     out: list[Comparison] = []
     params = ev.get("parameters", {})
-    for quantity, is_input, scale, op, threshold, kind, tscale in rt.comparisons:
+    seen, decisive = _decisions(rt, ev, codes, fired)
+    for quantity, is_input, scale, op, threshold, kind, tscale, node in rt.comparisons:
         v = _value(quantity, is_input, inputs, vals, index)
         if kind == "parameter":
             tvalue = params[threshold]["value"]
@@ -147,5 +179,6 @@ def _comparisons(rt: RuleTrace, ev: TraceEvent, inputs: dict[str, Any], vals: tu
         compared = None if v is None else round_at(v, scale)
         margin = None if compared is None or tvalue is None else round(compared - tvalue, 9)
         out.append({"quantity": quantity, "value": v, "compared": compared, "op": op, "threshold": threshold,
-                    "threshold_value": tvalue, "margin": margin})
+                    "threshold_value": tvalue, "margin": margin, "holds": seen.get(node),
+                    "decisive": decisive.get(node, False)})
     return out
