@@ -419,9 +419,6 @@ def test_e044_overlay_redefines_base_ids(here: Path) -> None:
     ]
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "resolve() problems (RB-E040..E042, E044) raise before build(), so build's own checks (here the "
-    "unknown suspension, RB-E043) are never reported with them: not all problems at once"))
 def test_overlay_problems_reported_together(here: Path) -> None:
     got = overlay(here, "parameters:\n  ph_low: {value: 7.2}\nsuspend:\n  - {rule: ph.lowest, reason: \"Not ours.\"}\n")
     assert [g.split(": ")[1].split(" ")[0] for g in got] == ["RB-E040", "RB-E043"]
@@ -493,10 +490,6 @@ def test_e022_unknown_name_in_derived_value(here: Path) -> None:
     points_at(here, got[0], "ph - ph_lo")
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "an unknown name in a rule condition is reported twice: RB-E022 at the condition and again as "
-    "RB-E032 'needs undeclared input' at the rule (compiler._check_rules checks r.needs, which "
-    "includes when.needs); one mistake should give one problem"))
 def test_e022_unknown_name_in_rule_reported_once(here: Path) -> None:
     got = check(here, HEAD + rule("extra.rule", "ph < ph_lo"))
     assert got == ["rb.yaml:34:11: RB-E022 unknown name 'ph_lo' in extra.rule (at rules[2].when); "

@@ -63,9 +63,13 @@ def compile_path(path: str | Path) -> CompiledRulebook:
     if problems:
         raise RulebookError(problems)
     resolved, problems = resolve(docs)
+    try:
+        compiled = build(resolved)  # refused overrides are left at the base value; keep checking
+    except RulebookError as exc:
+        raise RulebookError(problems + exc.problems) from None
     if problems:
-        raise RulebookError(problems)
-    return build(resolved)
+        raise RulebookError(problems + list(compiled.warnings))
+    return compiled
 
 
 def check_path(path: str | Path) -> list[Problem]:

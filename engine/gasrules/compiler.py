@@ -46,11 +46,14 @@ def build(res: Resolved) -> CompiledRulebook:
     params = {n: _param_spec(n, b, ref, res.param_set_by[n]) for n, (b, ref) in res.parameters.items()}
     problems += _check_params(params, inputs)
     derived: dict[str, DerivedSpec] = {}
+    broken: set[str] = set()
     for name, (body, ref) in res.derived.items():
         spec, probs = _derived_spec(name, body, ref)
         problems += probs
         if spec is not None:
             derived[name] = spec
+        else:
+            broken.add(name)  # declared, but its expression was refused: not "unknown" to its users
     _clash(inputs, params, derived, res, problems)
     suspended = {rule: (reason, ref) for rule, reason, ref in res.suspensions}
     rules: list[RuleSpec] = []
@@ -74,8 +77,8 @@ def build(res: Resolved) -> CompiledRulebook:
             problems.append(Problem("RB-E043", f"suspension names unknown rule '{rule_id}'", ref.loc("rule"),
                                     "the id of a rule in this rulebook or its base"))
     presentation = res.presentation
-    problems += _check_names(inputs, params, derived, rules)
-    problems += _check_rules(rules, steps, inputs, params, derived, presentation)
+    problems += _check_names(inputs, params, derived, rules, broken)
+    problems += _check_rules(rules, steps, inputs, params, derived, presentation, broken)
     problems += _check_units(inputs, params, derived, rules)
     problems += _warnings(params, derived, rules)
     plan, order_problems = _order(derived, rules)
@@ -215,9 +218,9 @@ def _exprs(derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> Iterable[t
 
 
 def _check_names(inputs: dict[str, InputSpec], params: dict[str, ParamSpec], derived: dict[str, DerivedSpec],
-                 rules: list[RuleSpec]) -> list[Problem]:
+                 rules: list[RuleSpec], broken: set[str] = frozenset()) -> list[Problem]:  # type: ignore[assignment]
     out: list[Problem] = []
-    declared = set(inputs) | set(params) | set(derived)
+    declared = set(inputs) | set(params) | set(derived) | set(broken)
     asserted = {c for r in rules for c in r.asserts}
     for owner, _field, expr in _exprs(derived, rules):
         for name in sorted(expr.reads - declared):
@@ -227,6 +230,71 @@ def _check_names(inputs: dict[str, InputSpec], params: dict[str, ParamSpec], der
             out.append(Problem("RB-E025", f"has(\"{code}\") names a code no rule asserts", expr.location,
                                "a finding or disorder code asserted by some rule"))
         out += _check_strings(expr, inputs, params)
+        out += _check_types(owner, _field, expr, inputs, params, derived)
+    return out
+
+
+def _check_types(owner: str, field: str, expr: Expr, inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
+                 derived: dict[str, DerivedSpec]) -> list[Problem]:
+    """Numbers, text (codes, choices) and truth values do not mix: arithmetic takes numbers, a
+    derived value's expr gives a number. Run-time TypeErrors are thus refused at load."""
+    out: list[Problem] = []
+
+    def fail(message: str, expected: str) -> None:
+        out.append(Problem("RB-E026", f"{owner}: {message}", expr.location, expected))
+
+    def kind(n: ast.AST) -> str:
+        if isinstance(n, ast.Constant):
+            if isinstance(n.value, bool):
+                return "bool"
+            return "str" if isinstance(n.value, str) else "num"
+        if isinstance(n, ast.Name):
+            if n.id in inputs:
+                return {"number": "num", "code": "str", "flag": "bool"}[inputs[n.id].kind]
+            if n.id in params:
+                return "str" if params[n.id].choices is not None else "num"
+            return "num"
+        if isinstance(n, ast.BinOp):
+            for side in (n.left, n.right):
+                if kind(side) != "num":
+                    fail(f"arithmetic on {kind(side) == 'str' and 'text' or 'a truth value'} ({ast.unparse(side)})",
+                         "numbers on both sides of + - * / **")
+            return "num"
+        if isinstance(n, ast.UnaryOp):
+            if isinstance(n.op, ast.Not):
+                kind(n.operand)
+                return "bool"
+            if kind(n.operand) != "num":
+                fail(f"sign of something that is not a number ({ast.unparse(n.operand)})", "a number")
+            return "num"
+        if isinstance(n, ast.BoolOp):  # `a and b` gives one of its operands
+            kinds = [kind(v) for v in n.values]
+            return "num" if "num" in kinds else ("str" if "str" in kinds else "bool")
+        if isinstance(n, ast.Compare):
+            parts = [kind(n.left)] + [kind(c) for c in n.comparators]
+            # text against a non-code is RB-E026 from _check_strings; here only ordering of text
+            if "str" in parts and all(p == "str" for p in parts) and any(not isinstance(op, (ast.Eq, ast.NotEq)) for op in n.ops):
+                fail(f"text ordered with < or > ({ast.unparse(n)})", "== or != for codes")
+            return "bool"
+        if isinstance(n, ast.IfExp):
+            kind(n.test)
+            a, b = kind(n.body), kind(n.orelse)
+            if a != b:
+                fail(f"the two branches of if-else give {a} and {b}", "branches of the same kind")
+            return a
+        if isinstance(n, ast.Call) and isinstance(n.func, ast.Name):
+            if n.func.id in ("known", "has"):
+                return "bool"
+            for arg in n.args:
+                if kind(arg) != "num":
+                    fail(f"{n.func.id}() of something that is not a number ({ast.unparse(arg)})", "numbers")
+            return "num"
+        return "num"
+
+    top = kind(expr.node)
+    if field == "expr" and top != "num":
+        fail(f"a derived value must be a number, this expression gives {'text' if top == 'str' else 'a truth value'}",
+             "an arithmetic expression")
     return out
 
 
@@ -251,17 +319,19 @@ def _check_strings(expr: Expr, inputs: dict[str, InputSpec], params: dict[str, P
 
 
 def _check_rules(rules: list[RuleSpec], steps: dict[str, StepSpec], inputs: dict[str, InputSpec],
-                 params: dict[str, ParamSpec], derived: dict[str, DerivedSpec], presentation: dict[str, Any]) -> list[Problem]:
+                 params: dict[str, ParamSpec], derived: dict[str, DerivedSpec], presentation: dict[str, Any],
+                 broken: set[str] = frozenset()) -> list[Problem]:  # type: ignore[assignment]
     out: list[Problem] = []
     disorders = set(presentation.get("disorder_labels") or DISORDER_CODES)
     qualifiers = set(presentation.get("qualifier_labels") or ())
-    names = set(inputs) | set(params) | set(derived)
+    names = set(inputs) | set(params) | set(derived) | set(broken)
     first_finding: dict[str, tuple[str, str, Location]] = {}
     for r in rules:
         if r.step not in steps:
             out.append(Problem("RB-E034", f"rule '{r.id}' names undeclared step '{r.step}'", r.location,
                                "one of " + ", ".join(steps)))
-        for name in sorted(r.needs - set(inputs) - set(derived)):
+        when_reads = r.when.reads if r.when else frozenset()
+        for name in sorted(r.needs - set(inputs) - set(derived) - set(broken) - when_reads):
             if name not in params:
                 out.append(Problem("RB-E032", f"rule '{r.id}' needs undeclared input '{name}'", r.location,
                                    "an input or derived value declared in the rulebook"))

@@ -82,10 +82,27 @@ def parse(text: str, location: Location) -> tuple[Expr | None, list[Problem]]:
     if _nesting(text) > MAX_DEPTH:
         return None, [Problem("RB-E024", "expression is nested too deeply", location,
                               f"at most {MAX_DEPTH} levels")]
+    if not text.strip():
+        return None, [Problem("RB-E020", "expression is blank", location,
+                              "an expression such as 'pco2 > pco2_high and ph < ph_low'")]
+    try:
+        statements = ast.parse(text.strip()).body
+    except SyntaxError as exc:
+        return None, [Problem("RB-E020", f"syntax error in expression {text!r}: {exc.msg}", location,
+                              "an expression such as 'pco2 > pco2_high and ph < ph_low'")]
+    except (ValueError, RecursionError, MemoryError) as exc:
+        return None, [Problem("RB-E024", f"expression cannot be parsed safely: {type(exc).__name__}", location,
+                              f"at most {MAX_LENGTH} characters and {MAX_DEPTH} levels")]
+    if len(statements) != 1:
+        return None, [Problem("RB-E021", f"expression holds {len(statements)} statements", location,
+                              "a single expression (no ';' or line breaks between statements)")]
     try:
         node = SimpleEval.parse(text)
     except SyntaxError as exc:
         return None, [Problem("RB-E020", f"syntax error in expression {text!r}: {exc.msg}", location,
+                              "an expression such as 'pco2 > pco2_high and ph < ph_low'")]
+    except Exception as exc:  # simpleeval's own refusals (InvalidExpression and kin)
+        return None, [Problem("RB-E020", f"expression {text!r} refused by the parser: {exc}", location,
                               "an expression such as 'pco2 > pco2_high and ph < ph_low'")]
     if isinstance(node, ast.Expr):
         node = node.value
@@ -147,7 +164,12 @@ class _ShapeChecker:
                 self.fail("RB-E021", "None is not allowed in expressions")
             return
         if isinstance(node.value, (int, float)):
-            if not math.isfinite(float(node.value)):
+            try:
+                finite = math.isfinite(float(node.value))
+            except OverflowError:
+                self.fail("RB-E024", "number too large", "a number a float can hold (below 1e308)")
+                return
+            if not finite:
                 self.fail("RB-E021", "non-finite number in expression")
             return
         if isinstance(node.value, str):
@@ -165,6 +187,9 @@ class _ShapeChecker:
             self.fail("RB-E021", f"operator {type(node.op).__name__} is not allowed", "+ - * / **")
             return
         if isinstance(node.op, ast.Pow):
+            if any(isinstance(n, ast.BinOp) and isinstance(n.op, ast.Pow) for n in ast.walk(node.right)):
+                self.fail("RB-E024", "a power inside an exponent", "one level of powers, e.g. 10 ** (ph - pk)")
+                return
             exp = _const_number(node.right)
             if exp is not None and abs(exp) > MAX_CONST_POWER:
                 self.fail("RB-E024", f"power {exp:g} is too large", f"an exponent of at most {MAX_CONST_POWER}")
@@ -234,7 +259,10 @@ class _ShapeChecker:
 
 def _const_number(node: ast.AST) -> float | None:
     if isinstance(node, ast.Constant) and isinstance(node.value, (int, float)) and not isinstance(node.value, bool):
-        return float(node.value)
+        try:
+            return float(node.value)
+        except OverflowError:
+            return float("inf")
     if isinstance(node, ast.UnaryOp) and isinstance(node.op, (ast.USub, ast.UAdd)):
         inner = _const_number(node.operand)
         if inner is not None:
@@ -387,7 +415,7 @@ def runtime_globals() -> dict[str, Any]:
     g: dict[str, Any] = {"__builtins__": {}, "_pow": math.pow, "_floor": math.floor}
     for fname, fn in FUNCTIONS.items():
         g["_" + fname] = fn
-    g["_ERR"] = (ArithmeticError, ValueError)
+    g["_ERR"] = (ArithmeticError, ValueError, TypeError)   # TypeError: a safety net; types are checked at load
     g.update(_set=set, _float=float, _bool=bool, _describe=describe_error, _rec=_record)
     g["_ERR_T"] = (ArithmeticError, ValueError, TypeError)   # re-evaluations may meet unguarded None
     return g

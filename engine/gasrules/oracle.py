@@ -13,7 +13,7 @@ from .compiler import CALC_ERROR, COMPUTED, ERROR, FIRED, HALTED, MISSING, NOT_A
 from .expressions import Oracle, round_at
 from .model import CompiledRulebook
 
-_ERRORS = (ArithmeticError, ValueError)
+_ERRORS = (ArithmeticError, ValueError, TypeError)
 
 
 def oracle_evaluate(rb: CompiledRulebook, inputs: dict[str, Any]) -> tuple[dict[str, Any], dict[str, int], list[int], set[str]]:
