@@ -338,11 +338,6 @@ def test_cached_rulebook_pickles_for_worker_pools(mini_rb: Any) -> None:
     assert gasrules.interpret(clone, case) == gasrules.interpret(mini_rb, case)
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "locations in a compiled rulebook (set_by, files) are made relative to the working directory of "
-    "the process that compiled it, and the cache key does not include that directory: a process "
-    "working elsewhere loads 'rb.yaml:183:12' for a file it must reach as '../a/rb.yaml', so the "
-    "trace of the same case differs with the state of the cache"))
 def test_cached_locations_do_not_depend_on_the_compiling_directory(tmp_path: Path, cache_dir: Path,
                                                                     monkeypatch: pytest.MonkeyPatch) -> None:
     (tmp_path / "a").mkdir()

@@ -36,6 +36,8 @@ def cache_dir() -> Path:
 
 def cache_key(path: str | Path) -> str | None:
     h = hashlib.sha256(__version__.encode() + sys.version.encode())  # marshalled code is per Python
+    # locations are shown relative to the working directory that compiled the rulebook
+    h.update(os.getcwd().encode("utf-8", "surrogateescape") + b"\0")
     here = Path(__file__).resolve().parent
     try:
         for name in _SHAPERS:

@@ -43,7 +43,8 @@ def build(res: Resolved) -> CompiledRulebook:
     problems: list[Problem] = []
     steps = {n: StepSpec(n, b.get("label", n), bool(b.get("core", False))) for n, (b, _) in res.steps.items()}
     inputs = {n: _input_spec(n, b, ref) for n, (b, ref) in res.inputs.items()}
-    params = {n: _param_spec(n, b, ref, res.param_set_by[n]) for n, (b, ref) in res.parameters.items()}
+    params = {n: _param_spec(n, b, ref, res.param_set_by[n], res.param_by_set_by.get(n, {}))
+              for n, (b, ref) in res.parameters.items()}
     problems += _check_params(params, inputs)
     derived: dict[str, DerivedSpec] = {}
     broken: set[str] = set()
@@ -108,7 +109,7 @@ def _input_spec(name: str, b: dict[str, Any], ref: Ref) -> InputSpec:
                      default=b.get("default"), location=ref.loc())
 
 
-def _param_spec(name: str, b: dict[str, Any], ref: Ref, set_by: Ref) -> ParamSpec:
+def _param_spec(name: str, b: dict[str, Any], ref: Ref, set_by: Ref, by_set_by: dict[str, Ref]) -> ParamSpec:
     bounds = b.get("bounds")
     by = b.get("by") or {}
     return ParamSpec(name=name, value=_num(b.get("value")), unit=b.get("unit", ""),
@@ -116,7 +117,8 @@ def _param_spec(name: str, b: dict[str, Any], ref: Ref, set_by: Ref) -> ParamSpe
                      choices=tuple(b["choices"]) if "choices" in b else None,
                      by_input=by.get("input"), by_values={k: _num(v) for k, v in (by.get("values") or {}).items()},
                      rationale=b.get("rationale", ""), source=dict(b.get("source") or {}),
-                     label=b.get("label", name), location=ref.loc(), set_by=set_by.loc("value"))
+                     label=b.get("label", name), location=ref.loc(), set_by=set_by.loc("value"),
+                     by_set_by={code: r.loc() for code, r in by_set_by.items()})
 
 
 def _num(value: Any) -> Any:
@@ -495,7 +497,20 @@ def canonical_content(res: Resolved) -> dict[str, Any]:
 
 
 def canonical_json(data: Any) -> bytes:
-    return json.dumps(data, sort_keys=True, separators=(",", ":"), ensure_ascii=False, default=str).encode("utf-8")
+    """Sorted keys, no insignificant whitespace, and every number as a float, so that 12 and
+    12.0 (the same value written two ways) give the same identity."""
+    return json.dumps(_numbers(data), sort_keys=True, separators=(",", ":"), ensure_ascii=False,
+                      default=str).encode("utf-8")
+
+
+def _numbers(data: Any) -> Any:
+    if isinstance(data, dict):
+        return {k: _numbers(v) for k, v in data.items()}
+    if isinstance(data, list):
+        return [_numbers(v) for v in data]
+    if isinstance(data, int) and not isinstance(data, bool):
+        return float(data)
+    return data
 
 
 def identity_hash(res: Resolved) -> str:
@@ -735,7 +750,7 @@ class _TraceSource:
             if p is None:
                 continue
             if p.by_input:
-                prm.append(f'{n!r}: {{"value": p_{n}, "unit": {p.unit!r}, "set_by": {str(p.set_by)!r}, '
+                prm.append(f'{n!r}: {{"value": p_{n}, "unit": {p.unit!r}, "set_by": _SB_{n}.get(v_{p.by_input}, {str(p.set_by)!r}), '
                            f'"selected_by": {p.by_input + "="!r} + _str(v_{p.by_input})}}')
             else:
                 prm.append(f"{n!r}: _PE[{n!r}]")
@@ -813,6 +828,7 @@ def link(compiled: CompiledRulebook) -> None:
     for n, p in compiled.parameters.items():
         if p.by_input:
             g[f"_BY_{n}"] = {k: (v if isinstance(v, str) else float(v)) for k, v in p.by_values.items()}
+            g[f"_SB_{n}"] = {k: str(p.set_by_for(k)) for k in p.by_values}
     g["_PE"] = {n: {"value": p.value, "unit": p.unit, "set_by": str(p.set_by)}
                 for n, p in compiled.parameters.items() if not p.by_input}
     g.update(_OUT=OUTCOMES, _cmp=_cmp, _str=str)

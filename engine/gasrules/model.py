@@ -39,10 +39,16 @@ class ParamSpec:
     label: str
     location: Location                           # where the parameter was declared
     set_by: Location                             # where its value was last set (base or overlay)
+    by_set_by: dict[str, Location] = field(default_factory=dict)   # code -> where by.values[code] was set
 
     @property
     def is_choice(self) -> bool:
         return self.choices is not None
+
+    def set_by_for(self, selector: Any) -> Location:
+        if self.by_input is not None and selector in self.by_values:
+            return self.by_set_by.get(selector, self.set_by)
+        return self.set_by
 
     def value_for(self, selector: Any) -> Any:
         if self.by_input is not None and selector in self.by_values:

@@ -35,7 +35,8 @@ class Resolved:
     metadata_ref: Ref
     inputs: dict[str, tuple[dict[str, Any], Ref]] = field(default_factory=dict)
     parameters: dict[str, tuple[dict[str, Any], Ref]] = field(default_factory=dict)
-    param_set_by: dict[str, Ref] = field(default_factory=dict)
+    param_set_by: dict[str, Ref] = field(default_factory=dict)         # where `value` was set
+    param_by_set_by: dict[str, dict[str, Ref]] = field(default_factory=dict)  # code -> where by.values[code] was set
     derived: dict[str, tuple[dict[str, Any], Ref]] = field(default_factory=dict)
     rules: list[tuple[dict[str, Any], Ref]] = field(default_factory=list)
     steps: dict[str, tuple[dict[str, Any], Ref]] = field(default_factory=dict)
@@ -107,8 +108,10 @@ def _take_base(res: Resolved, doc: Document) -> None:
         target = getattr(res, section)
         for name, body in (data.get(section) or {}).items():
             target[name] = (copy.deepcopy(body), Ref(doc, (section, name)))
-    for name in res.parameters:
+    for name, (body, _ref) in res.parameters.items():
         res.param_set_by[name] = Ref(doc, ("parameters", name))
+        for code in ((body.get("by") or {}).get("values") or {}):
+            res.param_by_set_by.setdefault(name, {})[code] = Ref(doc, ("parameters", name, "by", "values", code))
     for i, rule in enumerate(data.get("rules") or []):
         res.rules.append((copy.deepcopy(rule), Ref(doc, ("rules", i))))
     res.presentation = copy.deepcopy(data.get("presentation") or {})
@@ -135,6 +138,8 @@ def _apply_overlay(res: Resolved, doc: Document) -> list[Problem]:
         if name not in res.parameters:
             res.parameters[name] = (copy.deepcopy(body), ref)
             res.param_set_by[name] = ref
+            for code in ((body.get("by") or {}).get("values") or {}):
+                res.param_by_set_by.setdefault(name, {})[code] = Ref(doc, ("parameters", name, "by", "values", code))
             continue
         problems.extend(_override(res, name, body, ref))
     base_ids = {r.get("id") for r, _ in res.rules}
@@ -179,7 +184,10 @@ def _override(res: Resolved, name: str, body: dict[str, Any], ref: Ref) -> list[
             merged[key] = body[key]
     if not problems:
         res.parameters[name] = (merged, base_ref)
-        res.param_set_by[name] = ref
+        if "value" in body or "by" not in body:
+            res.param_set_by[name] = ref
+        for code in ((body.get("by") or {}).get("values") or {}):
+            res.param_by_set_by.setdefault(name, {})[code] = Ref(ref.doc, ref.path + ("by", "values", code))
     return problems
 
 

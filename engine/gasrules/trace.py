@@ -124,6 +124,7 @@ def build_trace(traces: list[RuleTrace], outcomes: list[int], inputs: dict[str, 
             for name, selector, spec in rt.by_params:
                 p = dict(params[name])
                 p["value"] = spec.value_for(inputs.get(selector))
+                p["set_by"] = str(spec.set_by_for(inputs.get(selector)))
                 p["selected_by"] = f"{selector}={inputs.get(selector)}"
                 params[name] = p
             ev["parameters"] = params
