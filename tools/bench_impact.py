@@ -9,9 +9,10 @@ measurement runs in its own process so peak memory (max RSS of the parent, and o
 worker) belongs to that run alone. Runs alternate 1, 2, 1, 2 ... on the same files so a noisy
 machine slows both alike; the table shows every run, then the median per worker count and the
 2-over-1 ratio. CPU seconds (parent and workers) and the load average at the end of each run
-are printed too: on a shared machine, cases per CPU second is the figure that noise moves least,
-and a load above 2 means other work competed for the two cores. A smaller corpus (--small) is run too: equal peak memory on both sizes shows the
-replay streams.
+are printed too: a load above 2 means other work competed for the two cores. A pure-Python
+control loop, run alone and then twice at once (before and after the runs), gives the machine's
+own 2-process ceiling to read the impact ratio against (2.00 on two free cores). A smaller
+corpus (--small) is run too: equal peak memory on both sizes shows the replay streams.
 """
 
 from __future__ import annotations
@@ -76,6 +77,30 @@ def _cpu() -> float:
     return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
 
 
+def _spin(n: int = 20_000_000) -> None:
+    x = 0
+    for i in range(n):
+        x += i
+
+
+def control() -> float:
+    """The machine's own 2-process ceiling: a pure-Python loop alone, then two copies at once.
+    Returns 2 x (time alone) / (time of the pair): 2.0 on two free cores, less when shared."""
+    import multiprocessing as mp
+
+    t0 = time.perf_counter()
+    _spin()
+    alone = time.perf_counter() - t0
+    ctx = mp.get_context("spawn")
+    procs = [ctx.Process(target=_spin) for _ in range(2)]
+    t0 = time.perf_counter()
+    for p in procs:
+        p.start()
+    for p in procs:
+        p.join()
+    return 2 * alone / (time.perf_counter() - t0)
+
+
 def measure(corpus: Path, tuned: Path, workers: int) -> dict[str, float]:
     out = subprocess.run([sys.executable, __file__, "--child", str(corpus), str(tuned), str(workers)],
                          check=True, capture_output=True, text=True)
@@ -98,6 +123,7 @@ def main() -> None:
     print(f"{'corpus':>8} {'workers':>7} {'seconds':>8} {'cases/s':>8} {'CPU s':>7} {'cases/CPU s':>11} {'load':>5} "
           f"{'changed':>8} {'rejected':>8} {'parent MB':>9} {'worker MB':>9}")
     rates: dict[int, list[float]] = {1: [], 2: []}
+    ceilings = [control()]
     for corpus, rounds in ((small, 1), (big, args.rounds)):
         for _ in range(rounds):
             for w in (1, 2):
@@ -107,8 +133,11 @@ def main() -> None:
                 print(f"{r['rows']:>8,} {w:>7} {r['seconds']:>8.1f} {r['rate']:>8,.0f} {r['cpu_seconds']:>7.1f} "
                       f"{r['rows'] / r['cpu_seconds']:>11,.0f} {r['load']:>5.1f} {r['changed']:>8,} {r['rejected']:>8,} "
                       f"{r['rss_parent_mb']:>9.0f} {r['rss_worker_mb'] if w > 1 else 0:>9.0f}", flush=True)
+    ceilings.append(control())
     m1, m2 = statistics.median(rates[1]), statistics.median(rates[2])
     print(f"\nmedian over {args.n:,} cases: 1 worker {m1:,.0f} cases/s, 2 workers {m2:,.0f} cases/s, ratio {m2 / m1:.2f}")
+    print("machine control (pure-Python loop, 2 processes vs 1; 2.00 = two free cores): "
+          + ", ".join(f"{c:.2f}" for c in ceilings) + " (before, after)")
 
 
 if __name__ == "__main__":
