@@ -157,7 +157,7 @@ def section_oracle(rb: Any, brb: Any, cases: list[Any], sample: int, rounds: int
 
 
 def section_stages(rb: Any, cases: list[Any], rounds: int) -> None:
-    header(f"4. Where the time goes, shipped rulebook, full trace, {len(cases):,} cases, median of {rounds} rounds")
+    header(f"4. Where the time goes, shipped rulebook, {len(cases):,} cases, median of {rounds} rounds")
     static = rb._static
 
     def read_only(case: Any) -> Any:
@@ -167,21 +167,30 @@ def section_stages(rb: Any, cases: list[Any], rounds: int) -> None:
         inputs = read_case(rb, case)[0]
         return rb._function(inputs, [])
 
+    def read_and_function_bare(case: Any) -> Any:
+        inputs = read_case(rb, case)[0]
+        return rb._function(inputs, None)
+
     def full(case: Any) -> Any:
         return gasrules.interpret(rb, case)
 
-    runs: dict[str, list[tuple[float, float]]] = {"read": [], "function": [], "full": []}
+    def bare(case: Any) -> Any:
+        return gasrules.interpret(rb, case, False)
+
+    passes = {"read": read_only, "function": read_and_function, "full": full,
+              "function_bare": read_and_function_bare, "bare": bare}
+    runs: dict[str, list[tuple[float, float]]] = {k: [] for k in passes}
     for _ in range(rounds):
-        runs["read"].append(run_pass(read_only, cases))
-        runs["function"].append(run_pass(read_and_function, cases))
-        runs["full"].append(run_pass(full, cases))
+        for name, fn in passes.items():
+            runs[name].append(run_pass(fn, cases))
     med = {k: (statistics.median(w for w, _ in v), statistics.median(c for _, c in v)) for k, v in runs.items()}
     n = len(cases)
     row("read_case (units, plausibility)", *med["read"], n)
-    row("generated function, trace events built", med["function"][0] - med["read"][0],
-        med["function"][1] - med["read"][1], n, "(read+function minus read)")
-    row("assemble (findings text, not assessed, headline)", med["full"][0] - med["function"][0],
-        med["full"][1] - med["function"][1], n, "(interpret minus read+function)")
+    for label, fn_key, all_key in (("full trace", "function", "full"), ("no trace", "function_bare", "bare")):
+        row(f"generated function, {label}", med[fn_key][0] - med["read"][0],
+            med[fn_key][1] - med["read"][1], n, "(read+function minus read)")
+        row(f"assemble, {label} (texts, not assessed, headline)", med[all_key][0] - med[fn_key][0],
+            med[all_key][1] - med[fn_key][1], n, "(interpret minus read+function)")
     nev = sum(len(gasrules.interpret(rb, c)["trace"]) for c in cases[:200]) / min(200, n)
     print(f"  (trace events per case: {nev:.0f}; identity {static.identity['id']})")
     floor = [run_pass(lambda _c: _bare_events(int(nev)), cases[:5000]) for _ in range(rounds)]
@@ -299,7 +308,7 @@ def import_breakdown(env: dict[str, str], case_file: Path, top: int = 14) -> Non
         depth = (len(name) - len(name.lstrip())) // 2
         module = name.strip()
         self_by_module[module] = int(self_us)
-        if depth <= 1:  # outermost import of a chain
+        if depth == 0:  # outermost import of a chain (its cumulative time includes the rest)
             pkg = module.split(".")[0]
             outer[pkg] = outer.get(pkg, 0) + int(cum_us)
             total += int(cum_us)
