@@ -160,10 +160,33 @@ def _rnd(x: float, scale: float) -> float:
     return -_floor(-x * scale + 0.5 + 1e-9) / scale + 0.0
 
 
-def _cmp(quantity: str, value: Any, compared: Any, op: str, threshold: str, tvalue: Any) -> dict[str, Any]:
+def _cmp(quantity: str, value: Any, compared: Any, op: str, threshold: str, tvalue: Any,
+         holds: bool | None, decisive: bool) -> dict[str, Any]:
     margin = None if compared is None or tvalue is None else round(compared - tvalue, 9)
     return {"quantity": quantity, "value": value, "compared": compared, "op": op, "threshold": threshold,
-            "threshold_value": tvalue, "margin": margin}
+            "threshold_value": tvalue, "margin": margin, "holds": holds, "decisive": decisive}
+
+
+def _explain(cond: Any, outcome: bool) -> tuple[dict[int, bool], dict[int, bool]]:
+    """Which numeric comparisons of a rule's condition were evaluated and what they gave (W), and
+    whether forcing each one alone the other way changes the outcome (D). ``cond(q)`` is the
+    condition written with each comparison k passed through ``q(k, value)``."""
+    W: dict[int, bool] = {}
+
+    def record(k: int, value: bool) -> bool:
+        W[k] = bool(value)
+        return value
+
+    cond(record)
+    D: dict[int, bool] = {}
+    for k, held in W.items():
+        def forced(j: int, value: bool, k: int = k, flipped: bool = not held) -> bool:
+            return flipped if j == k else value
+        try:
+            D[k] = bool(cond(forced)) != outcome
+        except (ArithmeticError, ValueError, TypeError):
+            D[k] = False
+    return W, D
 
 
 def _t(v: Any, scale: float, fmt: str) -> str:
@@ -225,7 +248,8 @@ class Twin:
         self.engine_version = rb.engine_version
         self.pe = {n: {"value": v, "unit": u, "set_by": str(rb.parameters[n].set_by)}
                    for n, (v, u) in PARAMS.items()}
-        self.by_set_by = {n: str(rb.parameters[n].set_by) for n in BY_SAMPLE}
+        self.by_set_by = {n: ({code: str(rb.parameters[n].set_by_for(code)) for code in BY_SAMPLE[n][1]},
+                              str(rb.parameters[n].set_by)) for n in BY_SAMPLE}
 
     def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
         inputs, errors, case_id, context = read_case(self.rb, case)
@@ -273,12 +297,12 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
     if T is not None:
         sel = "sample_type=" + str(st)
         sb = tw.by_set_by
-        b_ph_low = {"value": ph_low, "unit": "[pH]", "set_by": sb["ph_low"], "selected_by": sel}
-        b_ph_high = {"value": ph_high, "unit": "[pH]", "set_by": sb["ph_high"], "selected_by": sel}
-        b_pco2_low = {"value": pco2_low, "unit": "mm[Hg]", "set_by": sb["pco2_low"], "selected_by": sel}
-        b_pco2_high = {"value": pco2_high, "unit": "mm[Hg]", "set_by": sb["pco2_high"], "selected_by": sel}
-        b_hco3_low = {"value": hco3_low, "unit": "mmol/L", "set_by": sb["hco3_low"], "selected_by": sel}
-        b_hco3_high = {"value": hco3_high, "unit": "mmol/L", "set_by": sb["hco3_high"], "selected_by": sel}
+        b_ph_low = {"value": ph_low, "unit": "[pH]", "set_by": sb["ph_low"][0].get(st, sb["ph_low"][1]), "selected_by": sel}
+        b_ph_high = {"value": ph_high, "unit": "[pH]", "set_by": sb["ph_high"][0].get(st, sb["ph_high"][1]), "selected_by": sel}
+        b_pco2_low = {"value": pco2_low, "unit": "mm[Hg]", "set_by": sb["pco2_low"][0].get(st, sb["pco2_low"][1]), "selected_by": sel}
+        b_pco2_high = {"value": pco2_high, "unit": "mm[Hg]", "set_by": sb["pco2_high"][0].get(st, sb["pco2_high"][1]), "selected_by": sel}
+        b_hco3_low = {"value": hco3_low, "unit": "mmol/L", "set_by": sb["hco3_low"][0].get(st, sb["hco3_low"][1]), "selected_by": sel}
+        b_hco3_high = {"value": hco3_high, "unit": "mmol/L", "set_by": sb["hco3_high"][0].get(st, sb["hco3_high"][1]), "selected_by": sel}
 
     def finding(code: str, category: str, severity: str, text: str, rule: str) -> None:
         findings.append({"code": code, "category": category, "severity": severity, "text": text, "rule": rule})
@@ -321,9 +345,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 "critical.ph_low")
         heads.append((0, "critical", "Critical pH"))
     if T is not None:
+        W, D = _explain(lambda q: ph is not None and q(0, r_ph < 7.1), c)
         event("critical.ph_low", "critical", "Critically low pH", c, {"ph": ph},
               {"critical_ph_low": PE["critical_ph_low"]},
-              [_cmp("ph", ph, r_ph, "<", "critical_ph_low", 7.1)], ["critical.ph_low"])
+              [_cmp("ph", ph, r_ph, "<", "critical_ph_low", 7.1, W.get(0), D.get(0, False))], ["critical.ph_low"])
     c = ph is not None and r_ph > 7.6
     O.append(FIRED if c else NOT_FIRED)
     if c:
@@ -333,9 +358,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 "critical.ph_high")
         heads.append((0, "critical", "Critical pH"))
     if T is not None:
+        W, D = _explain(lambda q: ph is not None and q(0, r_ph > 7.6), c)
         event("critical.ph_high", "critical", "Critically high pH", c, {"ph": ph},
               {"critical_ph_high": PE["critical_ph_high"]},
-              [_cmp("ph", ph, r_ph, ">", "critical_ph_high", 7.6)], ["critical.ph_high"])
+              [_cmp("ph", ph, r_ph, ">", "critical_ph_high", 7.6, W.get(0), D.get(0, False))], ["critical.ph_high"])
     c = pco2 is not None and r_pco2 > 70.0
     O.append(FIRED if c else NOT_FIRED)
     if c:
@@ -344,9 +370,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 f"CRITICAL: PCO2 {t_pco2} is above the critical limit {_P['critical_pco2_high']}.", "critical.pco2_high")
         heads.append((0, "critical", "Critical PCO2"))
     if T is not None:
+        W, D = _explain(lambda q: pco2 is not None and q(0, r_pco2 > 70.0), c)
         event("critical.pco2_high", "critical", "Critically high PCO2", c, {"pco2": pco2},
               {"critical_pco2_high": PE["critical_pco2_high"]},
-              [_cmp("pco2", pco2, r_pco2, ">", "critical_pco2_high", 70.0)], ["critical.pco2_high"])
+              [_cmp("pco2", pco2, r_pco2, ">", "critical_pco2_high", 70.0, W.get(0), D.get(0, False))], ["critical.pco2_high"])
     c = po2 is not None and r_po2 < 60.0 and st == "arterial"
     O.append(FIRED if c else NOT_FIRED)
     if c:
@@ -356,9 +383,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 "critical.po2_low")
         heads.append((0, "critical", "Critical PO2"))
     if T is not None:
+        W, D = _explain(lambda q: po2 is not None and q(0, r_po2 < 60.0) and st == "arterial", c)
         event("critical.po2_low", "critical", "Critically low PO2 (arterial sample)", c,
               {"po2": po2, "sample_type": st}, {"critical_po2_low": PE["critical_po2_low"]},
-              [_cmp("po2", po2, r_po2, "<", "critical_po2_low", 60.0)], ["critical.po2_low"])
+              [_cmp("po2", po2, r_po2, "<", "critical_po2_low", 60.0, W.get(0), D.get(0, False))], ["critical.po2_low"])
     c = k is not None and r_k < 2.5
     O.append(FIRED if c else NOT_FIRED)
     if c:
@@ -368,9 +396,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 "critical.k_low")
         heads.append((0, "critical", "Critical potassium"))
     if T is not None:
+        W, D = _explain(lambda q: k is not None and q(0, r_k < 2.5), c)
         event("critical.k_low", "critical", "Critically low potassium", c, {"k": k},
               {"critical_k_low": PE["critical_k_low"]},
-              [_cmp("k", k, r_k, "<", "critical_k_low", 2.5)], ["critical.k_low"])
+              [_cmp("k", k, r_k, "<", "critical_k_low", 2.5, W.get(0), D.get(0, False))], ["critical.k_low"])
     c = k is not None and r_k > 6.5
     O.append(FIRED if c else NOT_FIRED)
     if c:
@@ -380,9 +409,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 "critical.k_high")
         heads.append((0, "critical", "Critical potassium"))
     if T is not None:
+        W, D = _explain(lambda q: k is not None and q(0, r_k > 6.5), c)
         event("critical.k_high", "critical", "Critically high potassium", c, {"k": k},
               {"critical_k_high": PE["critical_k_high"]},
-              [_cmp("k", k, r_k, ">", "critical_k_high", 6.5)], ["critical.k_high"])
+              [_cmp("k", k, r_k, ">", "critical_k_high", 6.5, W.get(0), D.get(0, False))], ["critical.k_high"])
     c = lactate is not None and r_lactate >= 4.0
     O.append(FIRED if c else NOT_FIRED)
     if c:
@@ -392,9 +422,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 "critical.lactate_high")
         heads.append((0, "critical", "Critical lactate"))
     if T is not None:
+        W, D = _explain(lambda q: lactate is not None and q(0, r_lactate >= 4.0), c)
         event("critical.lactate_high", "critical", "Markedly raised lactate", c, {"lactate": lactate},
               {"critical_lactate": PE["critical_lactate"]},
-              [_cmp("lactate", lactate, r_lactate, ">=", "critical_lactate", 4.0)], ["critical.lactate_high"])
+              [_cmp("lactate", lactate, r_lactate, ">=", "critical_lactate", 4.0, W.get(0), D.get(0, False))], ["critical.lactate_high"])
 
     # --------------------------------------------------------------- scope
     c = age is not None and r_age < 18.0
@@ -406,9 +437,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
         finding("scope.paediatric", "scope", "warning", text, "scope.paediatric")
         cautions.append(text)
     if T is not None:
+        W, D = _explain(lambda q: age is not None and q(0, r_age < 18.0), c)
         event("scope.paediatric", "scope", "Patient younger than the adult range", c, {"age": age},
               {"adult_age_min": PE["adult_age_min"]},
-              [_cmp("age", age, r_age, "<", "adult_age_min", 18.0)], ["scope.paediatric"])
+              [_cmp("age", age, r_age, "<", "adult_age_min", 18.0, W.get(0), D.get(0, False))], ["scope.paediatric"])
     if pregnant is None:
         skipped(8, "scope.pregnancy", "scope", "Pregnancy", {"pregnant": pregnant}, None, ["pregnant"])
     else:
@@ -469,9 +501,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     "No disorder is named; please recheck the values.", "consistency.hh_ph")
             heads.append((0, "consistency", "Inconsistent values"))
         if T is not None:
+            W, D = _explain(lambda q: q(0, r_disc > 2.0), c)
             event("consistency.hh_ph", "consistency", "Henderson-Hasselbalch consistency", c,
                   {"hco3_discrepancy": hco3_discrepancy}, {"hco3_consistency_tolerance": p_tol},
-                  [_cmp("hco3_discrepancy", hco3_discrepancy, r_disc, ">", "hco3_consistency_tolerance", 2.0)],
+                  [_cmp("hco3_discrepancy", hco3_discrepancy, r_disc, ">", "hco3_consistency_tolerance", 2.0, W.get(0), D.get(0, False))],
                   ["consistency.hh_ph"])
     # values every path reports (computed whatever the rules conclude)
     pco2_vent = None
@@ -508,9 +541,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     f"pH, PCO2 and HCO3 agree: Henderson-Hasselbalch pH {_t(calculated_ph, 1000.0, '%.3f')}, "
                     f"recalculated HCO3 {_t(calculated_hco3, 100.0, '%.2f mmol/L')}.", "consistency.passed")
         if T is not None:
+            W, D = _explain(lambda q: q(0, r_disc <= 2.0), c)
             event("consistency.passed", "consistency", "pH, PCO2 and HCO3 agree", c,
                   {"hco3_discrepancy": hco3_discrepancy}, {"hco3_consistency_tolerance": p_tol},
-                  [_cmp("hco3_discrepancy", hco3_discrepancy, r_disc, "<=", "hco3_consistency_tolerance", 2.0)],
+                  [_cmp("hco3_discrepancy", hco3_discrepancy, r_disc, "<=", "hco3_consistency_tolerance", 2.0, W.get(0), D.get(0, False))],
                   ["consistency.passed"])
 
     # --------------------------------------------------------------- pH state
@@ -531,8 +565,9 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     "ph_state.acidaemia")
             heads.append((1, "ph_state", "Acidaemia"))
         if T is not None:
+            W, D = _explain(lambda q: q(0, r_ph < ph_low), c)
             event("ph_state.acidaemia", "ph_state", "Acidaemia", c, {"ph": ph}, {"ph_low": b_ph_low},
-                  [_cmp("ph", ph, r_ph, "<", "ph_low", ph_low)], ["ph_state.acidaemia"])
+                  [_cmp("ph", ph, r_ph, "<", "ph_low", ph_low, W.get(0), D.get(0, False))], ["ph_state.acidaemia"])
         c = r_ph > ph_high
         O.append(FIRED if c else NOT_FIRED)
         if c:
@@ -541,8 +576,9 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     "ph_state.alkalaemia")
             heads.append((1, "ph_state", "Alkalaemia"))
         if T is not None:
+            W, D = _explain(lambda q: q(0, r_ph > ph_high), c)
             event("ph_state.alkalaemia", "ph_state", "Alkalaemia", c, {"ph": ph}, {"ph_high": b_ph_high},
-                  [_cmp("ph", ph, r_ph, ">", "ph_high", ph_high)], ["ph_state.alkalaemia"])
+                  [_cmp("ph", ph, r_ph, ">", "ph_high", ph_high, W.get(0), D.get(0, False))], ["ph_state.alkalaemia"])
         c = ph_low <= r_ph <= ph_high
         O.append(FIRED if c else NOT_FIRED)
         if c:
@@ -551,9 +587,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     f"pH {t_ph} is within {t_ph_low}-{t_ph_high}. A normal pH does not exclude an acid-base disorder.",
                     "ph_state.normal")
         if T is not None:
+            W, D = _explain(lambda q: q(0, ph_low <= r_ph <= ph_high), c)
             event("ph_state.normal", "ph_state", "pH within the reference interval", c, {"ph": ph},
                   {"ph_high": b_ph_high, "ph_low": b_ph_low},
-                  [_cmp("ph", ph, r_ph, ">=", "ph_low", ph_low), _cmp("ph", ph, r_ph, "<=", "ph_high", ph_high)],
+                  [_cmp("ph", ph, r_ph, ">=", "ph_low", ph_low, W.get(0), D.get(0, False)), _cmp("ph", ph, r_ph, "<=", "ph_high", ph_high, W.get(0), D.get(0, False))],
                   ["ph_state.normal"])
     params = None if T is None else {"ph_low": b_ph_low, "ph_high": b_ph_high, "pco2_high": b_pco2_high,
                                      "hco3_high": b_hco3_high, "pco2_low": b_pco2_low, "hco3_low": b_hco3_low}
@@ -571,13 +608,14 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     f"pH is normal while PCO2 ({t_pco2}) and HCO3 ({t_hco3}) are both abnormal: "
                     "a mixed disorder is likely.", "ph_state.normal_with_abnormal_pair")
         if T is not None:
+            W, D = _explain(lambda q: q(0, ph_low <= r_ph <= ph_high) and ((q(1, r_pco2 > pco2_high) and q(2, r_hco3 > hco3_high)) or (q(3, r_pco2 < pco2_low) and q(4, r_hco3 < hco3_low))), c)
             event("ph_state.normal_with_abnormal_pair", "ph_state", "Normal pH with PCO2 and HCO3 both abnormal", c,
                   {"hco3": hco3, "pco2": pco2, "ph": ph}, params,
-                  [_cmp("ph", ph, r_ph, ">=", "ph_low", ph_low), _cmp("ph", ph, r_ph, "<=", "ph_high", ph_high),
-                   _cmp("pco2", pco2, r_pco2, ">", "pco2_high", pco2_high),
-                   _cmp("hco3", hco3, r_hco3, ">", "hco3_high", hco3_high),
-                   _cmp("pco2", pco2, r_pco2, "<", "pco2_low", pco2_low),
-                   _cmp("hco3", hco3, r_hco3, "<", "hco3_low", hco3_low)],
+                  [_cmp("ph", ph, r_ph, ">=", "ph_low", ph_low, W.get(0), D.get(0, False)), _cmp("ph", ph, r_ph, "<=", "ph_high", ph_high, W.get(0), D.get(0, False)),
+                   _cmp("pco2", pco2, r_pco2, ">", "pco2_high", pco2_high, W.get(1), D.get(1, False)),
+                   _cmp("hco3", hco3, r_hco3, ">", "hco3_high", hco3_high, W.get(2), D.get(2, False)),
+                   _cmp("pco2", pco2, r_pco2, "<", "pco2_low", pco2_low, W.get(3), D.get(3, False)),
+                   _cmp("hco3", hco3, r_hco3, "<", "hco3_low", hco3_low, W.get(4), D.get(4, False))],
                   ["ph_state.normal_with_abnormal_pair"])
 
     # --------------------------------------------------------------- primary disorders
@@ -599,10 +637,11 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     f"side of {t_ph_normal}: a primary metabolic acidosis.", PA)
             heads.append((1, "primary", "Metabolic acidosis"))
         if T is not None:
+            W, D = _explain(lambda q: q(0, r_hco3 < hco3_low) and not (pco2 is not None and q(1, r_pco2 < pco2_low) and q(2, r_ph > 7.4)), c)
             event(PA, "primary", "Primary metabolic acidosis", c, reads, params,
-                  [_cmp("hco3", hco3, r_hco3, "<", "hco3_low", hco3_low),
-                   _cmp("pco2", pco2, r_pco2, "<", "pco2_low", pco2_low),
-                   _cmp("ph", ph, r_ph, ">", "ph_normal", 7.4)], [PA])
+                  [_cmp("hco3", hco3, r_hco3, "<", "hco3_low", hco3_low, W.get(0), D.get(0, False)),
+                   _cmp("pco2", pco2, r_pco2, "<", "pco2_low", pco2_low, W.get(1), D.get(1, False)),
+                   _cmp("ph", ph, r_ph, ">", "ph_normal", 7.4, W.get(2), D.get(2, False))], [PA])
     # respiratory acidosis
     params = None if T is None else {"hco3_high": b_hco3_high, "pco2_high": b_pco2_high, "ph_normal": PE["ph_normal"]}
     reads = {"hco3": hco3, "pco2_vent": pco2_vent, "ph": ph}
@@ -621,10 +660,11 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     f"side of {t_ph_normal}: a primary respiratory acidosis.", PRA)
             heads.append((1, "primary", "Respiratory acidosis"))
         if T is not None:
+            W, D = _explain(lambda q: q(0, r_pv > pco2_high) and not (q(1, r_hco3 > hco3_high) and q(2, r_ph > 7.4)), c)
             event(PRA, "primary", "Primary respiratory acidosis", c, reads, params,
-                  [_cmp("pco2_vent", pco2_vent, r_pv, ">", "pco2_high", pco2_high),
-                   _cmp("hco3", hco3, r_hco3, ">", "hco3_high", hco3_high),
-                   _cmp("ph", ph, r_ph, ">", "ph_normal", 7.4)], [PRA, "respiratory_acidosis"])
+                  [_cmp("pco2_vent", pco2_vent, r_pv, ">", "pco2_high", pco2_high, W.get(0), D.get(0, False)),
+                   _cmp("hco3", hco3, r_hco3, ">", "hco3_high", hco3_high, W.get(1), D.get(1, False)),
+                   _cmp("ph", ph, r_ph, ">", "ph_normal", 7.4, W.get(2), D.get(2, False))], [PRA, "respiratory_acidosis"])
     # metabolic alkalosis
     params = None if T is None else {"hco3_high": b_hco3_high, "pco2_high": b_pco2_high, "ph_normal": PE["ph_normal"]}
     reads = {"hco3": hco3, "pco2": pco2, "ph": ph}
@@ -644,10 +684,11 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     f"side of {t_ph_normal}: a primary metabolic alkalosis.", PMA)
             heads.append((1, "primary", "Metabolic alkalosis"))
         if T is not None:
+            W, D = _explain(lambda q: q(0, r_hco3 > hco3_high) and not (pco2 is not None and q(1, r_pco2 > pco2_high) and q(2, r_ph < 7.4)), c)
             event(PMA, "primary", "Primary metabolic alkalosis", c, reads, params,
-                  [_cmp("hco3", hco3, r_hco3, ">", "hco3_high", hco3_high),
-                   _cmp("pco2", pco2, r_pco2, ">", "pco2_high", pco2_high),
-                   _cmp("ph", ph, r_ph, "<", "ph_normal", 7.4)], ["metabolic_alkalosis", PMA])
+                  [_cmp("hco3", hco3, r_hco3, ">", "hco3_high", hco3_high, W.get(0), D.get(0, False)),
+                   _cmp("pco2", pco2, r_pco2, ">", "pco2_high", pco2_high, W.get(1), D.get(1, False)),
+                   _cmp("ph", ph, r_ph, "<", "ph_normal", 7.4, W.get(2), D.get(2, False))], ["metabolic_alkalosis", PMA])
     # respiratory alkalosis
     params = None if T is None else {"hco3_low": b_hco3_low, "pco2_low": b_pco2_low, "ph_normal": PE["ph_normal"]}
     reads = {"hco3": hco3, "pco2_vent": pco2_vent, "ph": ph}
@@ -667,10 +708,11 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     f"side of {t_ph_normal}: a primary respiratory alkalosis.", PRL)
             heads.append((1, "primary", "Respiratory alkalosis"))
         if T is not None:
+            W, D = _explain(lambda q: q(0, r_pv < pco2_low) and not (q(1, r_hco3 < hco3_low) and q(2, r_ph < 7.4)), c)
             event(PRL, "primary", "Primary respiratory alkalosis", c, reads, params,
-                  [_cmp("pco2_vent", pco2_vent, r_pv, "<", "pco2_low", pco2_low),
-                   _cmp("hco3", hco3, r_hco3, "<", "hco3_low", hco3_low),
-                   _cmp("ph", ph, r_ph, "<", "ph_normal", 7.4)], [PRL, "respiratory_alkalosis"])
+                  [_cmp("pco2_vent", pco2_vent, r_pv, "<", "pco2_low", pco2_low, W.get(0), D.get(0, False)),
+                   _cmp("hco3", hco3, r_hco3, "<", "hco3_low", hco3_low, W.get(1), D.get(1, False)),
+                   _cmp("ph", ph, r_ph, "<", "ph_normal", 7.4, W.get(2), D.get(2, False))], [PRL, "respiratory_alkalosis"])
     # two primaries
     rule = "primary.two_primaries_same_direction"
     title = "Two primary disorders moving the pH the same way"
@@ -688,11 +730,12 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
             finding("primary.opposite_directions", "primary", "warning",
                     "PCO2 and HCO3 have moved in opposite directions: always a mixed disorder.", rule)
         if T is not None:
+            W, D = _explain(lambda q: (q(0, r_hco3 < hco3_low) and q(1, r_pv > pco2_high)) or (q(2, r_hco3 > hco3_high) and q(3, r_pv < pco2_low)), c)
             event(rule, "primary", title, c, reads, params,
-                  [_cmp("hco3", hco3, r_hco3, "<", "hco3_low", hco3_low),
-                   _cmp("pco2_vent", pco2_vent, r_pv, ">", "pco2_high", pco2_high),
-                   _cmp("hco3", hco3, r_hco3, ">", "hco3_high", hco3_high),
-                   _cmp("pco2_vent", pco2_vent, r_pv, "<", "pco2_low", pco2_low)],
+                  [_cmp("hco3", hco3, r_hco3, "<", "hco3_low", hco3_low, W.get(0), D.get(0, False)),
+                   _cmp("pco2_vent", pco2_vent, r_pv, ">", "pco2_high", pco2_high, W.get(1), D.get(1, False)),
+                   _cmp("hco3", hco3, r_hco3, ">", "hco3_high", hco3_high, W.get(2), D.get(2, False)),
+                   _cmp("pco2_vent", pco2_vent, r_pv, "<", "pco2_low", pco2_low, W.get(3), D.get(3, False))],
                   ["primary.opposite_directions"])
     # unclassified
     rule, title = "primary.unclassified", "Abnormal pH without a nameable primary"
@@ -710,8 +753,9 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     f"The pH {t_ph} is outside its interval but no primary disorder can be named "
                     f"(HCO3 {t_hco3}, PCO2 {t_pco2}).", rule)
         if T is not None:
+            W, D = _explain(lambda q: (q(0, r_ph < ph_low) or q(1, r_ph > ph_high)) and not (PA in F or PRA in F or PMA in F or PRL in F), c)
             event(rule, "primary", title, c, reads, params,
-                  [_cmp("ph", ph, r_ph, "<", "ph_low", ph_low), _cmp("ph", ph, r_ph, ">", "ph_high", ph_high)],
+                  [_cmp("ph", ph, r_ph, "<", "ph_low", ph_low, W.get(0), D.get(0, False)), _cmp("ph", ph, r_ph, ">", "ph_high", ph_high, W.get(1), D.get(1, False))],
                   [rule])
 
     # --------------------------------------------------------------- anion gap: values and notes
@@ -754,8 +798,9 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     f"Anion gap {t_agu} is below {_P['ag_very_low']}: check albumin; consider a paraprotein, "
                     "lithium, bromide or a laboratory error.", "anion_gap.very_low")
         if T is not None:
+            W, D = _explain(lambda q: q(0, r_ag < 2.0), c)
             event("anion_gap.very_low", "anion_gap", "Very low anion gap", c, {"ag_used": ag_used}, params,
-                  [_cmp("ag_used", ag_used, r_ag, "<", "ag_very_low", 2.0)], ["anion_gap.very_low"])
+                  [_cmp("ag_used", ag_used, r_ag, "<", "ag_very_low", 2.0, W.get(0), D.get(0, False))], ["anion_gap.very_low"])
 
     # --------------------------------------------------------------- metabolic compensation
     exp_pco2 = exp_lo = exp_hi = None
@@ -782,10 +827,11 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     else f"PaCO2 {t_pco2} is within the range expected for the metabolic alkalosis ({t_range}).",
                     base + "appropriate")
         if T is not None:
+            W, D = _explain(lambda q: ok and has_p and q(0, r_lo <= r_pv <= r_hi), c)
             event(base + "appropriate", "compensation",
                   f"Respiratory response to metabolic {kind} as expected", c, reads, None,
-                  [_cmp("expected_pco2_low", exp_lo, r_lo, "<=", "pco2_vent", r_pv),
-                   _cmp("pco2_vent", pco2_vent, r_pv, "<=", "expected_pco2_high", r_hi)],
+                  [_cmp("expected_pco2_low", exp_lo, r_lo, "<=", "pco2_vent", r_pv, W.get(0), D.get(0, False)),
+                   _cmp("pco2_vent", pco2_vent, r_pv, "<=", "expected_pco2_high", r_hi, W.get(0), D.get(0, False))],
                   ["compensation.appropriate"])
         # PCO2 high
         c = ok and has_p and r_pv > r_hi
@@ -799,9 +845,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     f"PaCO2 {t_pco2} is above the expected range {t_range}: a respiratory acidosis is present as well.",
                     base + "pco2_high")
         if T is not None:
+            W, D = _explain(lambda q: ok and has_p and q(0, r_pv > r_hi), c)
             event(base + "pco2_high", "compensation",
                   "PaCO2 above Winter's range" if kind == "acidosis" else "PaCO2 above the metabolic alkalosis range",
-                  c, reads, None, [_cmp("pco2_vent", pco2_vent, r_pv, ">", "expected_pco2_high", r_hi)],
+                  c, reads, None, [_cmp("pco2_vent", pco2_vent, r_pv, ">", "expected_pco2_high", r_hi, W.get(0), D.get(0, False))],
                   ["compensation.pco2_above_expected", "respiratory_acidosis"])
         # PCO2 low
         c = ok and has_p and r_pv < r_lo
@@ -815,9 +862,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     f"PaCO2 {t_pco2} is below the expected range {t_range}: a respiratory alkalosis is present as well.",
                     base + "pco2_low")
         if T is not None:
+            W, D = _explain(lambda q: ok and has_p and q(0, r_pv < r_lo), c)
             event(base + "pco2_low", "compensation",
                   "PaCO2 below Winter's range" if kind == "acidosis" else "PaCO2 below the metabolic alkalosis range",
-                  c, reads, None, [_cmp("pco2_vent", pco2_vent, r_pv, "<", "expected_pco2_low", r_lo)],
+                  c, reads, None, [_cmp("pco2_vent", pco2_vent, r_pv, "<", "expected_pco2_low", r_lo, W.get(0), D.get(0, False))],
                   ["compensation.pco2_below_expected", "respiratory_alkalosis"])
     c = (PA in F or PMA in F) and pco2_vent is None
     O.append(FIRED if c else NOT_FIRED)
@@ -866,13 +914,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     continue
                 if kind == "fits":
                     c = gate and r_blo <= r_hco3 <= r_bhi
-                    comps = [_cmp(n_lo, lo, r_blo, "<=", "hco3", r_hco3), _cmp("hco3", hco3, r_hco3, "<=", n_hi, r_bhi)]
                 elif kind == "hco3_high":
                     c = gate and r_hco3 > r_bhi
-                    comps = [_cmp("hco3", hco3, r_hco3, ">", n_hi, r_bhi)]
                 else:
                     c = gate and r_hco3 < r_blo
-                    comps = [_cmp("hco3", hco3, r_hco3, "<", n_lo, r_blo)]
                 O.append(FIRED if c else NOT_FIRED)
                 if c:
                     F.update(asserted)
@@ -890,6 +935,17 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                                 "a metabolic acidosis is present as well.")
                     finding(code, "compensation", sev, text, rule)
                 if T is not None:
+                    # node 0 is the chronicity test (text); node 1 the numeric comparison
+                    if kind == "fits":
+                        W, D = _explain(lambda q: gate and q(1, r_blo <= r_hco3 <= r_bhi), c)
+                        comps = [_cmp(n_lo, lo, r_blo, "<=", "hco3", r_hco3, W.get(1), D.get(1, False)),
+                                 _cmp("hco3", hco3, r_hco3, "<=", n_hi, r_bhi, W.get(1), D.get(1, False))]
+                    elif kind == "hco3_high":
+                        W, D = _explain(lambda q: gate and q(1, r_hco3 > r_bhi), c)
+                        comps = [_cmp("hco3", hco3, r_hco3, ">", n_hi, r_bhi, W.get(1), D.get(1, False))]
+                    else:
+                        W, D = _explain(lambda q: gate and q(1, r_hco3 < r_blo), c)
+                        comps = [_cmp("hco3", hco3, r_hco3, "<", n_lo, r_blo, W.get(1), D.get(1, False))]
                     event(rule, "compensation", title, c, reads, None, comps, asserted)
         rule = f"compensation.{dis}.chronicity_unknown"
         reads = {"chronicity": chronicity, "expected_hco3_acute": exp_a, "expected_hco3_chronic": exp_c}
@@ -928,8 +984,9 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     "a high-anion-gap acidosis.", "anion_gap.high_gap_acidosis")
             heads.append((1, "anion_gap", "High anion gap metabolic acidosis"))
         if T is not None:
+            W, D = _explain(lambda q: acidosis and q(0, r_ag > 12.0), c)
             event("anion_gap.high_gap_acidosis", "anion_gap", "High anion gap metabolic acidosis", c,
-                  {"ag_used": ag_used}, p_ag_high, [_cmp("ag_used", ag_used, r_ag, ">", "ag_high", 12.0)],
+                  {"ag_used": ag_used}, p_ag_high, [_cmp("ag_used", ag_used, r_ag, ">", "ag_high", 12.0, W.get(0), D.get(0, False))],
                   ["anion_gap.high_gap_acidosis", "metabolic_acidosis_high_anion_gap"])
         c = acidosis and r_ag <= 12.0
         O.append(FIRED if c else NOT_FIRED)
@@ -942,8 +999,9 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     "a normal-anion-gap (hyperchloraemic) acidosis.", "anion_gap.normal_gap_acidosis")
             heads.append((1, "anion_gap", "Normal anion gap metabolic acidosis"))
         if T is not None:
+            W, D = _explain(lambda q: acidosis and q(0, r_ag <= 12.0), c)
             event("anion_gap.normal_gap_acidosis", "anion_gap", "Normal anion gap metabolic acidosis", c,
-                  {"ag_used": ag_used}, p_ag_high, [_cmp("ag_used", ag_used, r_ag, "<=", "ag_high", 12.0)],
+                  {"ag_used": ag_used}, p_ag_high, [_cmp("ag_used", ag_used, r_ag, "<=", "ag_high", 12.0, W.get(0), D.get(0, False))],
                   ["anion_gap.normal_gap_acidosis", "metabolic_acidosis_normal_anion_gap"])
     c = acidosis and ag_used is None
     O.append(FIRED if c else NOT_FIRED)
@@ -974,8 +1032,9 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     "acidosis: a high-anion-gap acidosis is present as well.", "anion_gap.hidden_high_gap")
             heads.append((1, "anion_gap", "High anion gap metabolic acidosis"))
         if T is not None:
+            W, D = _explain(lambda q: not (PA in F or BELOW in F or PMA in F) and q(0, r_ag > 12.0), c)
             event("anion_gap.hidden_high_gap", "anion_gap", "High anion gap without a low HCO3 reading", c,
-                  {"ag_used": ag_used}, p_ag_high, [_cmp("ag_used", ag_used, r_ag, ">", "ag_high", 12.0)],
+                  {"ag_used": ag_used}, p_ag_high, [_cmp("ag_used", ag_used, r_ag, ">", "ag_high", 12.0, W.get(0), D.get(0, False))],
                   ["anion_gap.hidden_high_gap", "metabolic_acidosis_high_anion_gap"])
 
     # --------------------------------------------------------------- delta analysis
@@ -1006,9 +1065,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 f"Delta ratio {t_dr} (excess gap {t_dag} / fall in HCO3 {t_dh}) is below {_P['delta_ratio_low']}: "
                 "a normal-gap acidosis predominates.", "delta.ratio_normal_gap_predominates")
     if T is not None:
+        W, D = _explain(lambda q: known_dr and q(0, r_dr < 0.4), c)
         event("delta.ratio_normal_gap_predominates", "delta", "Delta ratio low - normal-gap acidosis predominates", c,
               reads, {"delta_ratio_low": PE["delta_ratio_low"]},
-              [_cmp("delta_ratio", delta_ratio, r_dr, "<", "delta_ratio_low", 0.4)],
+              [_cmp("delta_ratio", delta_ratio, r_dr, "<", "delta_ratio_low", 0.4, W.get(0), D.get(0, False))],
               ["delta.ratio_low", "metabolic_acidosis_normal_anion_gap"])
     c = known_dr and 0.4 <= r_dr < 0.8
     O.append(FIRED if c else NOT_FIRED)
@@ -1020,10 +1080,11 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 f"Delta ratio {t_dr} is between {_P['delta_ratio_low']} and {_P['delta_ratio_pure_low']}: "
                 "a normal-gap acidosis is present beside the high-gap acidosis.", "delta.ratio_mixed_gap")
     if T is not None:
+        W, D = _explain(lambda q: known_dr and q(0, 0.4 <= r_dr < 0.8), c)
         event("delta.ratio_mixed_gap", "delta", "Delta ratio low - mixed high and normal gap acidosis", c, reads,
               {"delta_ratio_low": PE["delta_ratio_low"], "delta_ratio_pure_low": PE["delta_ratio_pure_low"]},
-              [_cmp("delta_ratio", delta_ratio, r_dr, ">=", "delta_ratio_low", 0.4),
-               _cmp("delta_ratio", delta_ratio, r_dr, "<", "delta_ratio_pure_low", 0.8)],
+              [_cmp("delta_ratio", delta_ratio, r_dr, ">=", "delta_ratio_low", 0.4, W.get(0), D.get(0, False)),
+               _cmp("delta_ratio", delta_ratio, r_dr, "<", "delta_ratio_pure_low", 0.8, W.get(0), D.get(0, False))],
               ["delta.ratio_mixed", "metabolic_acidosis_normal_anion_gap"])
     c = known_dr and 0.8 <= r_dr <= 2.0
     O.append(FIRED if c else NOT_FIRED)
@@ -1033,10 +1094,11 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 f"Delta ratio {t_dr} is between {_P['delta_ratio_pure_low']} and {_P['delta_ratio_high']}: "
                 "consistent with an uncomplicated high-gap acidosis.", "delta.ratio_uncomplicated")
     if T is not None:
+        W, D = _explain(lambda q: known_dr and q(0, 0.8 <= r_dr <= 2.0), c)
         event("delta.ratio_uncomplicated", "delta", "Delta ratio in the uncomplicated band", c, reads,
               {"delta_ratio_high": PE["delta_ratio_high"], "delta_ratio_pure_low": PE["delta_ratio_pure_low"]},
-              [_cmp("delta_ratio", delta_ratio, r_dr, ">=", "delta_ratio_pure_low", 0.8),
-               _cmp("delta_ratio", delta_ratio, r_dr, "<=", "delta_ratio_high", 2.0)],
+              [_cmp("delta_ratio", delta_ratio, r_dr, ">=", "delta_ratio_pure_low", 0.8, W.get(0), D.get(0, False)),
+               _cmp("delta_ratio", delta_ratio, r_dr, "<=", "delta_ratio_high", 2.0, W.get(0), D.get(0, False))],
               ["delta.ratio_uncomplicated"])
     c = known_dr and r_dr > 2.0
     O.append(FIRED if c else NOT_FIRED)
@@ -1048,9 +1110,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 f"Delta ratio {t_dr} (excess gap {t_dag} / fall in HCO3 {t_dh}) is above {_P['delta_ratio_high']}: "
                 "a metabolic alkalosis is present beside the high-gap acidosis.", "delta.ratio_high")
     if T is not None:
+        W, D = _explain(lambda q: known_dr and q(0, r_dr > 2.0), c)
         event("delta.ratio_high", "delta", "Delta ratio high - metabolic alkalosis", c, reads,
               {"delta_ratio_high": PE["delta_ratio_high"]},
-              [_cmp("delta_ratio", delta_ratio, r_dr, ">", "delta_ratio_high", 2.0)],
+              [_cmp("delta_ratio", delta_ratio, r_dr, ">", "delta_ratio_high", 2.0, W.get(0), D.get(0, False))],
               ["delta.ratio_high", "metabolic_alkalosis"])
     c = delta_hco3 is not None and r_dh < 4.0
     O.append(FIRED if c else NOT_FIRED)
@@ -1060,9 +1123,10 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 f"The fall in HCO3 ({t_dh}) is below {_P['delta_min_dhco3']}: the delta ratio is not computed; "
                 f"the delta gap is {_t(delta_gap, 10.0, '%.1f mmol/L')}.", "delta.ratio_not_computed")
     if T is not None:
+        W, D = _explain(lambda q: delta_hco3 is not None and q(0, r_dh < 4.0), c)
         event("delta.ratio_not_computed", "delta", "Fall in HCO3 too small for a delta ratio", c,
               {"delta_hco3": delta_hco3}, {"delta_min_dhco3": PE["delta_min_dhco3"]},
-              [_cmp("delta_hco3", delta_hco3, r_dh, "<", "delta_min_dhco3", 4.0)], ["delta.ratio_not_computed"])
+              [_cmp("delta_hco3", delta_hco3, r_dh, "<", "delta_min_dhco3", 4.0, W.get(0), D.get(0, False))], ["delta.ratio_not_computed"])
 
     # --------------------------------------------------------------- oxygenation
     reads = {"fio2": fio2, "po2": po2, "sample_type": st, "so2": so2}
@@ -1091,8 +1155,9 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                     "oxygenation.hypoxaemia")
             heads.append((1, "oxygenation", "Hypoxaemia"))
         if T is not None:
+            W, D = _explain(lambda q: st == "arterial" and po2 is not None and q(1, r_po2 < 80.0), c)
             event("oxygenation.hypoxaemia", "oxygenation", "Arterial hypoxaemia", c, {"po2": po2, "sample_type": st},
-                  {"po2_low": PE["po2_low"]}, [_cmp("po2", po2, r_po2, "<", "po2_low", 80.0)],
+                  {"po2_low": PE["po2_low"]}, [_cmp("po2", po2, r_po2, "<", "po2_low", 80.0, W.get(1), D.get(1, False))],
                   ["oxygenation.hypoxaemia"])
     r_pf = None if pf_ratio is None else _rnd(pf_ratio, 1.0)
     t_pf = _t(pf_ratio, 1.0, "%.0f mmHg")
@@ -1106,10 +1171,11 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 f"PaO2/FiO2 {t_pf} is above {_P['pf_moderate']} and at most {_P['pf_mild']}: the oxygenation "
                 "criterion of the mild band is met (not a diagnosis).", "oxygenation.pf_mild")
     if T is not None:
+        W, D = _explain(lambda q: known_pf and q(0, 200.0 < r_pf <= 300.0), c)
         event("oxygenation.pf_mild", "oxygenation", "P/F ratio in the mild band", c, reads,
               {"pf_mild": PE["pf_mild"], "pf_moderate": PE["pf_moderate"]},
-              [_cmp("pf_ratio", pf_ratio, r_pf, ">", "pf_moderate", 200.0),
-               _cmp("pf_ratio", pf_ratio, r_pf, "<=", "pf_mild", 300.0)], ["oxygenation.pf_mild"])
+              [_cmp("pf_ratio", pf_ratio, r_pf, ">", "pf_moderate", 200.0, W.get(0), D.get(0, False)),
+               _cmp("pf_ratio", pf_ratio, r_pf, "<=", "pf_mild", 300.0, W.get(0), D.get(0, False))], ["oxygenation.pf_mild"])
     c = known_pf and 100.0 < r_pf <= 200.0
     O.append(FIRED if c else NOT_FIRED)
     if c:
@@ -1118,10 +1184,11 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 f"PaO2/FiO2 {t_pf} is above {_P['pf_severe']} and at most {_P['pf_moderate']}: the oxygenation "
                 "criterion of the moderate band is met (not a diagnosis).", "oxygenation.pf_moderate")
     if T is not None:
+        W, D = _explain(lambda q: known_pf and q(0, 100.0 < r_pf <= 200.0), c)
         event("oxygenation.pf_moderate", "oxygenation", "P/F ratio in the moderate band", c, reads,
               {"pf_moderate": PE["pf_moderate"], "pf_severe": PE["pf_severe"]},
-              [_cmp("pf_ratio", pf_ratio, r_pf, ">", "pf_severe", 100.0),
-               _cmp("pf_ratio", pf_ratio, r_pf, "<=", "pf_moderate", 200.0)], ["oxygenation.pf_moderate"])
+              [_cmp("pf_ratio", pf_ratio, r_pf, ">", "pf_severe", 100.0, W.get(0), D.get(0, False)),
+               _cmp("pf_ratio", pf_ratio, r_pf, "<=", "pf_moderate", 200.0, W.get(0), D.get(0, False))], ["oxygenation.pf_moderate"])
     c = known_pf and r_pf <= 100.0
     O.append(FIRED if c else NOT_FIRED)
     if c:
@@ -1131,8 +1198,9 @@ def _evaluate(tw: Twin, I: dict[str, Any], result: dict[str, Any], T: list[Any] 
                 "met (not a diagnosis).", "oxygenation.pf_severe")
         heads.append((0, "oxygenation", "Severe hypoxaemia"))
     if T is not None:
+        W, D = _explain(lambda q: known_pf and q(0, r_pf <= 100.0), c)
         event("oxygenation.pf_severe", "oxygenation", "P/F ratio in the severe band", c, reads,
-              {"pf_severe": PE["pf_severe"]}, [_cmp("pf_ratio", pf_ratio, r_pf, "<=", "pf_severe", 100.0)],
+              {"pf_severe": PE["pf_severe"]}, [_cmp("pf_ratio", pf_ratio, r_pf, "<=", "pf_severe", 100.0, W.get(0), D.get(0, False))],
               ["oxygenation.pf_severe"])
 
     # --------------------------------------------------------------- notes
