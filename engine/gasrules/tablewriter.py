@@ -239,9 +239,14 @@ class Encoder:
 
         if self._schema is None:
             self._schema = arrow_schema(self.columns)
-        data = [[_parquet_cell(r[i], c.kind) for r in rows] for i, c in enumerate(self.columns)]
-        return pa.RecordBatch.from_arrays([pa.array(col, type=self._schema.field(i).type)
-                                           for i, col in enumerate(data)], schema=self._schema)
+        arrays = []
+        for i, c in enumerate(self.columns):
+            if c.kind in _PARQUET_AS_IS:
+                col = [r[i] for r in rows]
+            else:
+                col = [_parquet_cell(r[i], c.kind) for r in rows]
+            arrays.append(pa.array(col, type=self._schema.field(i).type))
+        return pa.RecordBatch.from_arrays(arrays, schema=self._schema)
 
 
 def arrow_schema(columns: Sequence[Column], metadata: Mapping[str, str] | None = None) -> Any:
@@ -311,6 +316,10 @@ def _as_text(value: Any) -> Any:
 _CSV_CELL: dict[str, Any] = {"text": None, "number": None, "texts": _csv_texts,
                              "records": _csv_json, "json": _csv_json, "value": _as_text,
                              "raw": _csv_scalar}
+
+
+# kinds whose values Arrow takes as they are (numbers, lists of text, lists of records, typed raw)
+_PARQUET_AS_IS = frozenset({"number", "texts", "records", "raw"})
 
 
 def _parquet_cell(value: Any, kind: str) -> Any:
