@@ -105,6 +105,33 @@ def run_once(src: Path, out: Path, workers: int) -> dict[str, float]:
             "tree_mib": sampler.peak_tree / 1024, "single_mib": sampler.peak_single / 1024}
 
 
+def _burn(_payload: object, chunk: list[int]) -> int:
+    total = 0
+    for x in chunk:
+        for i in range(200_000):
+            total += i * x
+    return total
+
+
+def control(workers: int, items: int = 400) -> tuple[float, float]:
+    """Pure CPU work through the same pool: (wall seconds, cores busy). On an idle machine 2
+    workers keep about 2 cores busy; less means the machine was shared during the run."""
+    from gasrules.pool import OrderedPool, chunked
+
+    before_c = resource.getrusage(resource.RUSAGE_CHILDREN)
+    before_s = resource.getrusage(resource.RUSAGE_SELF)
+    t0 = time.perf_counter()
+    with OrderedPool(_burn, None, workers) as pool:
+        for _ in pool.map(chunked(range(items), 2)):
+            pass
+    wall = time.perf_counter() - t0
+    after_c = resource.getrusage(resource.RUSAGE_CHILDREN)
+    after_s = resource.getrusage(resource.RUSAGE_SELF)
+    cpu = sum(getattr(after_c, f) - getattr(before_c, f) + getattr(after_s, f) - getattr(before_s, f)
+              for f in ("ru_utime", "ru_stime"))
+    return wall, cpu / wall
+
+
 def _line(label: str, r: dict[str, float]) -> str:
     return (f"  {label:<34} {r['rows']:>10,.0f} rows  {r['seconds']:7.1f} s  {r['rate']:8,.0f} cases/s  "
             f"CPU {r['cpu']:6.1f} s ({r['rows'] / max(r['cpu'], 1e-9):6,.0f} cases per CPU-second, "
@@ -124,6 +151,10 @@ def main(argv: list[str] | None = None) -> int:
     args = ap.parse_args(argv)
     args.dir.mkdir(parents=True, exist_ok=True)
     print(f"gasrules batch benchmark: {os.cpu_count()} CPUs, corpus under {args.dir}", flush=True)
+    for workers in (1, 2):
+        wall, busy = control(workers)
+        print(f"  control: pure CPU work through the pool, {workers} worker(s): {wall:5.1f} s, "
+              f"{busy:4.2f} cores busy", flush=True)
     sizes = [s for s in (args.small, args.n, args.big) if s > 0]
     for n in sizes:
         make_corpus(args.dir / f"corpus-{n}.csv", n)
