@@ -23,7 +23,7 @@ from .model import CompiledRulebook
 from .resources import schema_path
 
 _EXTENDS = re.compile(rb"^extends:\s*['\"]?([^'\"\s#]+)", re.M)
-_SHAPERS = ("compiler.py", "expressions.py", "model.py", "evaluator.py", "trace.py", "overlay.py", "units.py")
+_SHAPERS = ("compiler.py", "codegen.py", "expressions.py", "model.py", "evaluator.py", "trace.py", "overlay.py", "units.py")
 
 
 def cache_dir() -> Path:

@@ -14,7 +14,8 @@ from dataclasses import dataclass, field
 from typing import Any, Mapping
 
 from . import units as U
-from .compiler import CALC_ERROR, COMPUTED, FIRED, HALTED, MISSING, PLACEHOLDER, SKIPPED
+from .codegen import CALC_ERROR, COMPUTED, FIRED, HALTED, MISSING, SKIPPED
+from .compiler import PLACEHOLDER
 from .errors import INPUT_CODES
 from .expressions import round_at
 from .model import CompiledRulebook

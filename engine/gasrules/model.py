@@ -156,6 +156,6 @@ class CompiledRulebook:
 
     def __setstate__(self, state: dict[str, Any]) -> None:
         self.__dict__.update(state)
-        from .compiler import link  # re-generate the function (it is not pickled)
+        from .codegen import link  # re-generate the function (it is not pickled)
 
         link(self)

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from .compiler import CALC_ERROR, COMPUTED, ERROR, FIRED, HALTED, MISSING, NOT_APPLICABLE, NOT_FIRED, SKIPPED, SUSPENDED
+from .codegen import CALC_ERROR, COMPUTED, ERROR, FIRED, HALTED, MISSING, NOT_APPLICABLE, NOT_FIRED, SKIPPED, SUSPENDED
 from .expressions import Oracle, round_at
 from .model import CompiledRulebook
 

@@ -14,7 +14,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any, TypedDict
 
-from .compiler import ERROR, FIRED, HALTED, NOT_FIRED, OUTCOMES, SKIPPED, SUSPENDED
+from .codegen import ERROR, FIRED, HALTED, NOT_FIRED, OUTCOMES, SKIPPED, SUSPENDED
 from .expressions import Oracle, round_at
 from .model import CompiledRulebook, RuleSpec
 
