@@ -17,7 +17,7 @@ import pytest
 import gasrules
 from conftest import MINI
 from gasrules.casegen import generate_cases
-from gasrules.compiler import CALC_ERROR
+from gasrules.codegen import CALC_ERROR
 from gasrules.evaluator import read_case
 from gasrules.reporters import render_trace
 from gasrules.trace import build_trace

@@ -18,7 +18,7 @@ import pytest
 import gasrules
 from conftest import MINI_OVERLAYS
 from gasrules.casegen import generate_cases
-from gasrules.compiler import OUTCOMES
+from gasrules.codegen import OUTCOMES
 from gasrules.evaluator import read_case
 from gasrules.oracle import oracle_evaluate
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import ast
 import marshal
+import re
 from typing import Any, Iterable
 
 from .expressions import CutPoint, Expr, NameInfo, runtime_globals, to_python
@@ -20,6 +21,8 @@ FIRED, NOT_FIRED, SKIPPED, HALTED, SUSPENDED, ERROR = range(6)
 OUTCOMES = ("fired", "not_fired", "skipped_missing_input", "halted", "suspended", "error")
 # State codes per derived value.
 COMPUTED, MISSING, NOT_APPLICABLE, CALC_ERROR = range(4)
+# A placeholder in a finding text.
+PLACEHOLDER = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)\}")
 
 
 def _exprs(derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> Iterable[tuple[str, str, Expr]]:
@@ -178,7 +181,9 @@ class _TraceSource:
                 prm.append(f'{n!r}: {{"value": p_{n}, "unit": {p.unit!r}, "set_by": _SB_{n}.get(v_{p.by_input}, {str(p.set_by)!r}), '
                            f'"selected_by": {p.by_input + "="!r} + _str(v_{p.by_input})}}')
             else:
-                prm.append(f"{n!r}: _PE[{n!r}]")
+                # a fresh dict per event: results never share mutable parts
+                value = repr(p.value) if isinstance(p.value, str) else repr(float(p.value))
+                prm.append(f'{n!r}: {{"value": {value}, "unit": {p.unit!r}, "set_by": {str(p.set_by)!r}}}')
         self.params = ("{" + ", ".join(prm) + "}") if prm else ""
         needs = [n for n in sorted(r.needs) if n in inputs or n in derived]
         pairs = ", ".join(f"({n!r}, v_{n})" for n in needs)
@@ -254,8 +259,6 @@ def link(compiled: CompiledRulebook) -> None:
         if p.by_input:
             g[f"_BY_{n}"] = {k: (v if isinstance(v, str) else float(v)) for k, v in p.by_values.items()}
             g[f"_SB_{n}"] = {k: str(p.set_by_for(k)) for k in p.by_values}
-    g["_PE"] = {n: {"value": p.value, "unit": p.unit, "set_by": str(p.set_by)}
-                for n, p in compiled.parameters.items() if not p.by_input}
     g.update(_OUT=OUTCOMES, _cmp=_cmp, _str=str)
     code = None
     if compiled._code is not None:

@@ -13,12 +13,10 @@ import ast
 import hashlib
 import heapq
 import json
-import re
 from typing import Any, Iterable
 
 from . import __version__
-from .codegen import (CALC_ERROR, COMPUTED, ERROR, FIRED, HALTED, MISSING, NOT_APPLICABLE,  # noqa: F401 (re-exported)
-                      NOT_FIRED, OUTCOMES, SKIPPED, SUSPENDED, generate, link)
+from .codegen import PLACEHOLDER, generate, link
 from .errors import Location, Problem, RulebookError
 from .expressions import CutPoint, Expr, compare_nodes, parse
 from .model import (CompiledRulebook, DerivedSpec, FindingSpec, InputSpec, ParamSpec, RuleSpec,
@@ -26,7 +24,6 @@ from .model import (CompiledRulebook, DerivedSpec, FindingSpec, InputSpec, Param
 from .overlay import Ref, Resolved
 
 
-PLACEHOLDER = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)\}")
 DISORDER_CODES = ("respiratory_acidosis", "respiratory_alkalosis", "metabolic_acidosis_high_anion_gap",
                   "metabolic_acidosis_normal_anion_gap", "metabolic_acidosis", "metabolic_alkalosis")
 # Literals that are not clinical numbers (identity, sign, percentages of a whole).

@@ -14,9 +14,7 @@ from dataclasses import dataclass, field
 from typing import Any, Mapping
 
 from . import units as U
-from .codegen import CALC_ERROR, COMPUTED, FIRED, HALTED, MISSING, SKIPPED
-from .compiler import PLACEHOLDER
-from .errors import INPUT_CODES
+from .codegen import FIRED, HALTED, MISSING, PLACEHOLDER, SKIPPED
 from .expressions import round_at
 from .model import CompiledRulebook
 from .trace import RuleTrace

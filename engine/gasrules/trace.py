@@ -120,7 +120,7 @@ def build_trace(traces: list[RuleTrace], outcomes: list[int], inputs: dict[str, 
             continue
         ev["reads"] = {n: _value(n, i, inputs, vals, index) for n, i in rt.value_reads}
         if rt.parameters:
-            params = dict(rt.parameters)
+            params = {k: dict(v) for k, v in rt.parameters.items()}  # fresh dicts: results share nothing
             for name, selector, spec in rt.by_params:
                 p = dict(params[name])
                 p["value"] = spec.value_for(inputs.get(selector))
