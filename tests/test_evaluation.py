@@ -336,3 +336,17 @@ def test_reference_trace_equals_generated_trace(which: str, request: pytest.Fixt
         assert result["trace"] == reference_trace(rb, case), case.get("case_id")
         compared += 1
     assert compared >= 350
+
+
+def test_results_share_no_mutable_parts(shipped_rb: Any) -> None:
+    # An integrator may edit a result it received; the next result must not change with it.
+    case = {"ph": 7.30, "pco2": 30, "hco3": 15}          # invented values (demo)
+    first = gasrules.interpret(shipped_rb, case)
+    for event in first["trace"]:
+        for entry in (event.get("parameters") or {}).values():
+            entry["value"] = 99.0
+        for comparison in event.get("comparisons") or []:
+            comparison["threshold_value"] = 99.0
+    second = gasrules.interpret(shipped_rb, case)
+    assert second == gasrules.interpret(shipped_rb, case)
+    assert all(e["value"] != 99.0 for ev in second["trace"] for e in (ev.get("parameters") or {}).values())
