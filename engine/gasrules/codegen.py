@@ -26,6 +26,7 @@ PLACEHOLDER = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)\}")
 
 
 def _exprs(derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> Iterable[tuple[str, str, Expr]]:
+    """(owner, field, expression) for every expression of a rulebook (also used by the compiler)."""
     for d in derived.values():
         yield d.name, "expr", d.expr
         if d.when:

@@ -16,7 +16,7 @@ import json
 from typing import Any, Iterable
 
 from . import __version__
-from .codegen import PLACEHOLDER, generate, link
+from .codegen import PLACEHOLDER, _exprs, generate, link
 from .errors import Location, Problem, RulebookError
 from .expressions import CutPoint, Expr, compare_nodes, parse
 from .model import (CompiledRulebook, DerivedSpec, FindingSpec, InputSpec, ParamSpec, RuleSpec,
@@ -202,16 +202,6 @@ def _clash(inputs: dict[str, Any], params: dict[str, Any], derived: dict[str, An
 
 
 # ----------------------------------------------------------------------------- semantic checks
-
-def _exprs(derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> Iterable[tuple[str, str, Expr]]:
-    for d in derived.values():
-        yield d.name, "expr", d.expr
-        if d.when:
-            yield d.name, "when", d.when
-    for r in rules:
-        if r.when:
-            yield r.id, "when", r.when
-
 
 def _check_names(inputs: dict[str, InputSpec], params: dict[str, ParamSpec], derived: dict[str, DerivedSpec],
                  rules: list[RuleSpec], broken: set[str] = frozenset()) -> list[Problem]:  # type: ignore[assignment]
