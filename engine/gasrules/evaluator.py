@@ -33,7 +33,6 @@ _FALSE = {"false", "no", "0", "n"}
 class Static:
     """Per-rulebook tables, built once when the rulebook is linked."""
 
-    input_names: tuple[str, ...]
     blank: dict[str, Any]
     identity: dict[str, str]
     rule_traces: list[RuleTrace]
@@ -65,7 +64,7 @@ def prepare(rb: CompiledRulebook) -> Static:
     known = frozenset(U.UCUM_CODES) | {s.unit for s in rb.inputs.values()} | {
         a for s in rb.inputs.values() for a in s.alternatives}
     blank = {n: (s.default if s.kind != "number" else None) for n, s in rb.inputs.items()}
-    static = Static(input_names=tuple(rb.inputs), blank=blank, identity=rb.identity, rule_traces=traces,
+    static = Static(blank=blank, identity=rb.identity, rule_traces=traces,
                     value_index=value_index, reported=reported, step_rules=step_rules, conversions=conversions,
                     known_units=known, accepted_keys=", ".join(sorted(rb.inputs)))
     for r in rb.rules:
@@ -129,11 +128,16 @@ def _display_spec(rb: CompiledRulebook, static: Static, unit: str, precision: in
     return (factor, offset, 10.0 ** to_prec, to_prec, (" " + lab) if lab else "")
 
 
+def _show(value: float, spec: tuple[float, float, float, int, str]) -> str:
+    """A canonical value as displayed: converted, rounded at its precision, with its unit label."""
+    factor, offset, scale, prec, lab = spec
+    return f"{round_at((value - offset) / factor, scale):.{prec}f}{lab}"
+
+
 def _param_text(rb: CompiledRulebook, static: Static, p: Any, value: Any) -> str:
     if isinstance(value, str):
         return value.replace("_", " ")
-    factor, offset, scale, prec, lab = _display_spec(rb, static, p.unit, _precision_of(value))
-    return f"{round_at((value - offset) / factor, scale):.{prec}f}{lab}"
+    return _show(value, _display_spec(rb, static, p.unit, _precision_of(value)))
 
 
 def _render(rb: CompiledRulebook, parts: tuple[Any, ...], inputs: dict[str, Any], vals: tuple[Any, ...]) -> str:
@@ -145,11 +149,7 @@ def _render(rb: CompiledRulebook, parts: tuple[Any, ...], inputs: dict[str, Any]
         kind = part[0]
         if kind == "v" or kind == "i":
             v = vals[part[1]] if kind == "v" else inputs.get(part[1])
-            if v is None:
-                out.append("not available")
-            else:
-                _k, _n, factor, offset, scale, prec, lab = part
-                out.append(f"{round_at((v - offset) / factor, scale):.{prec}f}{lab}")
+            out.append("not available" if v is None else _show(v, part[2:]))
         elif kind == "c":
             v = inputs.get(part[1])
             out.append("not given" if v is None else str(v).replace("_", " "))
@@ -312,7 +312,7 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
     for i, name, scale, unit in static.reported:
         v = vals[i]
         if v is not None:
-            values[name] = _round(v, scale)
+            values[name] = round_at(v, scale)
             units[name] = unit
     rule_traces = static.rule_traces
     findings: list[dict[str, Any]] = []
@@ -369,37 +369,16 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
     return result
 
 
-def _round(v: float, scale: float) -> float:
-    return round_at(v, scale)
-
-
 def _precision_of(value: float) -> int:
     text = f"{float(value):.6f}".rstrip("0")
     return len(text.split(".")[1]) if "." in text else 0
 
 
-def to_display(rb: CompiledRulebook, value: float, unit: str, precision: int) -> tuple[float, str, int]:
-    """A canonical value in the unit the rulebook displays (e.g. mm[Hg] -> kPa)."""
-    target = rb.display_units.get(unit)
-    if target is None:
-        return value, unit, precision
-    to_unit, to_prec = target
-    conv = rb._static.conversions.get((unit, to_unit))
-    if conv is None:
-        return value, unit, precision
-    factor, offset = conv
-    if to_prec is None:
-        to_prec = max(0, precision + round(math.log10(abs(factor)))) if factor else precision
-    return (value - offset) / factor, to_unit, to_prec
-
-
 def format_quantity(rb: CompiledRulebook, value: Any, unit: str, precision: int) -> str:
+    """A canonical value in the rulebook's display units (e.g. mm[Hg] -> kPa), with its unit."""
     if value is None:
         return "not available"
-    v, u, p = to_display(rb, float(value), unit, precision)
-    text = f"{round_at(v, 10.0 ** p):.{p}f}"
-    lab = U.label(u)
-    return f"{text} {lab}" if lab else text
+    return _show(float(value), _display_spec(rb, rb._static, unit, precision))
 
 
 def _not_assessed(rb: CompiledRulebook, static: Static, outcomes: list[int], states: tuple[int, ...],
