@@ -134,13 +134,9 @@ class RuntimeInterpreter:
 
     def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
         if self._lock is None:
-            result = self.runtime.interpret(case, trace)
-        else:
-            with self._lock:
-                result = self.runtime.interpret(case, trace)
-        if "trace" not in result:   # the result contract always has the key
-            result = {**result, "trace": []}
-        return result
+            return self.runtime.interpret(case, trace)
+        with self._lock:
+            return self.runtime.interpret(case, trace)
 
     def record(self, case: Any, result: dict[str, Any]) -> None:
         self.runtime.record(case, result)

@@ -156,9 +156,7 @@ def interpret(
     counts: dict[str, int] = {}
     for result in results:
         counts[result["status"]] = counts.get(result["status"], 0) + 1
-        if as_json:
-            if not trace and not as_json:
-                result.pop("trace", None)
+        if as_json:  # the full result contract, trace included
             typer.echo(json.dumps(result, ensure_ascii=False))
         else:
             if not first:
