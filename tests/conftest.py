@@ -87,3 +87,24 @@ def result_validator() -> Any:
     from gasrules.schema import validate_instance
 
     return lambda result: validate_instance(result, "result.schema.json")
+
+
+@pytest.fixture(autouse=True)
+def _no_site_environment(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Commands read GASRULES_* settings; a developer's own must not leak into any test
+    (the cache directory set above is the suite's own)."""
+    for name in [n for n in os.environ if n.startswith("GASRULES_") and n != "GASRULES_CACHE_DIR"]:
+        monkeypatch.delenv(name)
+
+
+@pytest.fixture
+def tuned_release_rulebook(tmp_path: Path) -> Path:
+    """The change-control test rulebook (tests/data/release) with ph_low moved from 7.35 to 7.30
+    (inside its guard rails), version 1.0.1."""
+    target = tmp_path / "tuned"
+    shutil.copytree(Path(__file__).resolve().parent / "data" / "release", target)
+    path = target / "rulebook.yaml"
+    text = path.read_text(encoding="utf-8")
+    path.write_text(text.replace("    value: 7.35\n", "    value: 7.30\n").replace("version: 1.0.0", "version: 1.0.1"),
+                    encoding="utf-8")
+    return path

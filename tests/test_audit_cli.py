@@ -25,15 +25,6 @@ CASES = [{"case_id": f"c{i}", "ph": ph, "context": {"mrn": f"M{i}"}} for i, ph i
          enumerate([7.20, 7.40, 7.55, 7.30, 7.41], 1)]
 
 
-@pytest.fixture(autouse=True)
-def _no_site_environment(monkeypatch: pytest.MonkeyPatch) -> None:
-    """The commands read GASRULES_* settings; a developer's own must not leak into these tests."""
-    import os
-
-    for name in [n for n in os.environ if n.startswith("GASRULES_") and n != "GASRULES_CACHE_DIR"]:
-        monkeypatch.delenv(name)
-
-
 @pytest.fixture
 def logged(tmp_path: Path) -> tuple[Path, Path]:
     """(decision log of five cases, release directory with the archive)."""

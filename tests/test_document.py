@@ -8,7 +8,6 @@ shipped example-site overlay (for "which file set each parameter").
 from __future__ import annotations
 
 import re
-import shutil
 from pathlib import Path
 
 import pytest
@@ -23,15 +22,8 @@ SITE = ROOT / "rulebooks" / "example-site" / "rulebook.yaml"
 
 
 @pytest.fixture
-def tuned(tmp_path: Path) -> Path:
-    """The test rulebook with ph_low moved from 7.35 to 7.30 (inside its guard rails), version 1.0.1."""
-    target = tmp_path / "tuned"
-    shutil.copytree(DATA, target)
-    path = target / "rulebook.yaml"
-    text = path.read_text(encoding="utf-8")
-    path.write_text(text.replace("    value: 7.35\n", "    value: 7.30\n").replace("version: 1.0.0", "version: 1.0.1"),
-                    encoding="utf-8")
-    return path
+def tuned(tuned_release_rulebook: Path) -> Path:
+    return tuned_release_rulebook
 
 
 def test_parameters_carry_value_unit_bounds_source_and_setter() -> None:

@@ -24,15 +24,6 @@ DATA = Path(__file__).resolve().parent / "data" / "release"
 LEAD = Approver("B. Reviewer", "clinical lead")
 
 
-@pytest.fixture(autouse=True)
-def _no_site_environment(monkeypatch: pytest.MonkeyPatch) -> None:
-    """The commands read GASRULES_* settings; a developer's own must not leak into these tests."""
-    import os
-
-    for name in [n for n in os.environ if n.startswith("GASRULES_") and n != "GASRULES_CACHE_DIR"]:
-        monkeypatch.delenv(name)
-
-
 @pytest.fixture
 def book(tmp_path: Path) -> Path:
     target = tmp_path / "book"

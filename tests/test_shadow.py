@@ -26,24 +26,9 @@ CASES = [{"case_id": "low", "ph": 7.20}, {"case_id": "edge", "ph": 7.32, "contex
          {"case_id": "mid", "ph": 7.40}, {"case_id": "high", "ph": 7.55}]
 
 
-@pytest.fixture(autouse=True)
-def _no_site_environment(monkeypatch: pytest.MonkeyPatch) -> None:
-    """The commands read GASRULES_* settings; a developer's own must not leak into these tests."""
-    import os
-
-    for name in [n for n in os.environ if n.startswith("GASRULES_") and n != "GASRULES_CACHE_DIR"]:
-        monkeypatch.delenv(name)
-
-
 @pytest.fixture
-def candidate(tmp_path: Path) -> Path:
-    target = tmp_path / "candidate"
-    shutil.copytree(DATA, target)
-    path = target / "rulebook.yaml"
-    text = path.read_text(encoding="utf-8")
-    path.write_text(text.replace("    value: 7.35\n", "    value: 7.30\n").replace("version: 1.0.0", "version: 1.0.1"),
-                    encoding="utf-8")
-    return path
+def candidate(tuned_release_rulebook: Path) -> Path:
+    return tuned_release_rulebook
 
 
 def test_only_the_active_result_is_shown_and_disagreements_recorded(candidate: Path, tmp_path: Path) -> None:
