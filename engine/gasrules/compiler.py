@@ -75,6 +75,7 @@ def build(res: Resolved) -> CompiledRulebook:
     problems += _check_names(inputs, params, derived, rules, broken)
     problems += _check_rules(rules, steps, inputs, params, derived, presentation, broken)
     problems += _check_units(inputs, params, derived, rules)
+    problems += _check_fallbacks(inputs, derived)
     problems += _warnings(params, derived, rules)
     plan, order_problems = _order(derived, rules)
     problems += order_problems
@@ -97,10 +98,12 @@ def build(res: Resolved) -> CompiledRulebook:
 def _input_spec(name: str, b: dict[str, Any], ref: Ref) -> InputSpec:
     plaus = b.get("plausible") or {}
     alts = {u: (float(a.get("factor", 1.0)), float(a.get("offset", 0.0))) for u, a in (b.get("alternatives") or {}).items()}
+    fallback = b.get("fallback") or {}
     return InputSpec(name=name, label=b.get("label", name), kind=b.get("kind", "number"), unit=b.get("unit", ""),
                      precision=int(b.get("precision", 0)), plausible_min=plaus.get("min"), plausible_max=plaus.get("max"),
                      alternatives=alts, loinc=tuple(b.get("loinc") or ()), codes=tuple(b.get("codes") or ()),
-                     default=b.get("default"), location=ref.loc())
+                     default=b.get("default"), location=ref.loc(),
+                     fallback=fallback.get("value"), fallback_marks=fallback.get("marks"))
 
 
 def _param_spec(name: str, b: dict[str, Any], ref: Ref, set_by: Ref, by_set_by: dict[str, Ref]) -> ParamSpec:
@@ -202,6 +205,45 @@ def _clash(inputs: dict[str, Any], params: dict[str, Any], derived: dict[str, An
 
 
 # ----------------------------------------------------------------------------- semantic checks
+
+def _check_fallbacks(inputs: dict[str, InputSpec], derived: dict[str, DerivedSpec]) -> list[Problem]:
+    """An input's `fallback` names a derived value computed without that input (directly or through
+    other derived values), of the input's unit; `marks` names a flag input the engine sets."""
+    out: list[Problem] = []
+    for spec in inputs.values():
+        if spec.fallback is None:
+            continue
+        loc = spec.location
+        d = derived.get(spec.fallback)
+        if d is None:
+            out.append(Problem("RB-E070", f"fallback of input '{spec.name}' names unknown derived value "
+                               f"'{spec.fallback}'", loc, "the name of a derived value"))
+            continue
+        if spec.name in _reads_closure(spec.fallback, derived):
+            out.append(Problem("RB-E071", f"fallback '{spec.fallback}' of input '{spec.name}' depends on "
+                               f"'{spec.name}' itself", loc, "a derived value computed from other inputs"))
+        if d.unit != spec.unit:
+            out.append(Problem("RB-E072", f"fallback '{spec.fallback}' is in '{d.unit}', input '{spec.name}' "
+                               f"in '{spec.unit}'", loc, f"a derived value in {spec.unit}"))
+        marks = inputs.get(spec.fallback_marks or "")
+        if marks is None or marks.kind != "flag":
+            out.append(Problem("RB-E073", f"fallback of input '{spec.name}' marks '{spec.fallback_marks}', "
+                               "which is not a flag input", loc, "the name of a flag input (kind: flag)"))
+    return out
+
+
+def _reads_closure(name: str, derived: dict[str, DerivedSpec]) -> set[str]:
+    """Every input and derived name a derived value reads, directly or through others."""
+    seen: set[str] = set()
+    todo = [name]
+    while todo:
+        for n in derived[todo.pop()].needs:
+            if n not in seen:
+                seen.add(n)
+                if n in derived:
+                    todo.append(n)
+    return seen
+
 
 def _check_names(inputs: dict[str, InputSpec], params: dict[str, ParamSpec], derived: dict[str, DerivedSpec],
                  rules: list[RuleSpec], broken: set[str] = frozenset()) -> list[Problem]:  # type: ignore[assignment]

@@ -44,6 +44,10 @@ CODES: dict[str, str] = {
     "RB-E043": "suspension names an unknown rule",
     "RB-E044": "overlay redefines a base id",
     "RB-E045": "parameter value outside its own bounds",
+    "RB-E070": "input fallback names an unknown derived value",
+    "RB-E071": "input fallback depends on the input it replaces",
+    "RB-E072": "input fallback in another unit than its input",
+    "RB-E073": "input fallback marks something that is not a flag input",
     # Warnings
     "RB-W101": "parameter is never used",
     "RB-W102": "numeric literal in a rule condition (make it a parameter)",

@@ -19,7 +19,7 @@ from .expressions import round_at
 from .model import CompiledRulebook
 from .trace import RuleTrace
 
-SCHEMA_VERSION = "1.0"
+SCHEMA_VERSION = "1.1"
 NOT_ANALYTES = ("case_id", "context")
 # A reader that could not parse a row passes {UNREADABLE: "file:line: what was wrong"} (plus
 # case_id when known) so that the row becomes a rejected result instead of disappearing.
@@ -44,6 +44,8 @@ class Static:
     accepted_keys: str
     templates: dict[tuple[str, int], tuple[Any, ...]] = field(default_factory=dict)
     value_needs: tuple[tuple[int, str, tuple[str, ...], tuple[str, ...]], ...] = ()  # (index, name, inputs, derived)
+    fallbacks: tuple[tuple[str, int, str], ...] = ()   # (input, index of its fallback value, flag it sets)
+    always_rules: frozenset[str] = frozenset()         # rules that run whatever else happens (critical values)
 
 
 def prepare(rb: CompiledRulebook) -> Static:
@@ -84,6 +86,9 @@ def prepare(rb: CompiledRulebook) -> Static:
         return closure[name]
 
     static.value_needs = tuple((i, name, tuple(sorted(inputs_of(name))), ()) for i, name, _s, _u in reported)
+    static.fallbacks = tuple((n, value_index[s.fallback], s.fallback_marks) for n, s in rb.inputs.items()
+                             if s.fallback is not None and s.fallback_marks is not None and s.fallback in value_index)
+    static.always_rules = frozenset(r.id for r in rb.rules if r.always)
     return static
 
 
@@ -191,6 +196,11 @@ def read_case(rb: CompiledRulebook, case: Any) -> tuple[dict[str, Any], list[dic
             errors.append(_error(str(key), "input.unknown_key", f"'{key}' is not an input of rulebook {rb.id}",
                                  "one of " + static.accepted_keys + ", case_id, context"))
             continue
+        if any(key == marks for _n, _i, marks in static.fallbacks):
+            owner = next(n for n, _i, marks in static.fallbacks if marks == key)
+            errors.append(_error(key, "input.engine_set", f"{key} is set by the engine when {owner} is calculated",
+                                 f"leave {key} out; give {owner} when it was measured"))
+            continue
         if raw is None:
             continue
         if spec.kind == "code":
@@ -289,22 +299,73 @@ def interpret(rb: CompiledRulebook, case: Any, trace: bool = True) -> dict[str, 
         "context": dict(context) if isinstance(context, Mapping) else {},
         "rulebook": dict(static.identity), "engine_version": rb.engine_version,
     }
-    pres = rb.presentation
     if errors:
-        result.update(status="rejected", headline=pres.get("headline", {}).get("rejected", "Input rejected"),
-                      errors=errors, inputs={}, values={}, units={}, findings=[], disorders=[], qualifiers={},
-                      not_assessed=[{"what": "interpretation", "why": "input rejected: " + "; ".join(
-                          e["message"] for e in errors)}],
-                      cautions=list(pres.get("cautions", [])), trace=[])
-        return result
+        return _rejected(rb, result, inputs, errors, trace)
+    inputs, calculated = _apply_fallbacks(rb, inputs)
     events: list[Any] | None = [] if trace else None
     vals, states, calc_errors, outcomes, _codes = rb._function(inputs, events)
-    return assemble(rb, result, inputs, vals, states, calc_errors, outcomes, events)
+    return assemble(rb, result, inputs, vals, states, calc_errors, outcomes, events, calculated)
+
+
+def _apply_fallbacks(rb: CompiledRulebook, inputs: dict[str, Any]) -> tuple[dict[str, Any], list[str]]:
+    """Inputs not given but declaring a `fallback` take the fallback's value (computed from the
+    other inputs by a first run) when it is available and plausible; the input's marking flag is
+    set so that rules can say the value was calculated. Returns (inputs, names calculated)."""
+    static: Static = rb._static
+    todo = [f for f in static.fallbacks if inputs.get(f[0]) is None]
+    if not todo:
+        return inputs, []
+    vals = rb._function(inputs, None)[0]
+    out, calculated = dict(inputs), []
+    for name, index, marks in todo:
+        value = vals[index]
+        spec = rb.inputs[name]
+        if value is None or not math.isfinite(value):
+            continue
+        if (spec.plausible_min is not None and value < spec.plausible_min) or \
+                (spec.plausible_max is not None and value > spec.plausible_max):
+            continue
+        out[name], out[marks] = round_at(value, 10.0 ** spec.precision), True   # as it will be shown
+        calculated.append(name)
+    return out, calculated
+
+
+def _rejected(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any], errors: list[dict[str, str]],
+              trace: bool) -> dict[str, Any]:
+    """A rejected case is not interpreted, but the rules that always run (critical values) still
+    run on the fields that were read, so that a critical value is never hidden by another field's
+    error. Their findings and headline phrases are returned; everything else stays empty."""
+    static: Static = rb._static
+    pres = rb.presentation
+    events: list[Any] | None = [] if trace else None
+    vals, _states, _errs, outcomes, _codes = rb._function(inputs, events)
+    findings: list[dict[str, Any]] = []
+    phrases: list[str] = []
+    for i, outcome in enumerate(outcomes):
+        rule = static.rule_traces[i].rule
+        if outcome != FIRED or rule.id not in static.always_rules:
+            continue
+        for j, f in enumerate(rule.findings):
+            findings.append({"code": f.code, "category": f.category, "severity": f.severity,
+                             "text": _render(rb, static.templates[(rule.id, j)], inputs, vals), "rule": rule.id})
+            if f.headline and f.severity == "critical":
+                phrases.append(f.headline)
+    findings.sort(key=lambda f: 0 if f["severity"] == "critical" else 1)
+    rejected = pres.get("headline", {}).get("rejected", "Input rejected")
+    named = ", ".join(_unique([e["field"] for e in errors if e["field"]]))
+    headline = "; ".join(_unique(phrases + [rejected + (f" ({named})" if named else "")]))
+    kept = [e for e in (events or []) if e.get("rule") in static.always_rules]
+    result.update(status="rejected", headline=headline, errors=errors,
+                  inputs={}, values={}, units={}, findings=findings, disorders=[], qualifiers={},
+                  not_assessed=[{"what": "interpretation", "why": "input rejected: " + "; ".join(
+                      e["message"] for e in errors)}],
+                  cautions=list(pres.get("cautions", [])), trace=kept, calculated=[])
+    return result
 
 
 def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any], vals: tuple[Any, ...],
              states: tuple[int, ...], calc_errors: dict[str, str], outcomes: list[int],
-             events: list[Any] | None) -> dict[str, Any]:
+             events: list[Any] | None, calculated: list[str] | None = None) -> dict[str, Any]:
     static: Static = rb._static
     pres = rb.presentation
     values: dict[str, float] = {}
@@ -358,14 +419,16 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
         disorders, qualifiers = [], {}
     elif status == "interpreted" and any(n.get("core") for n in not_assessed):
         status = "partial"
+    core_missing = [n["what"] for n in not_assessed if n.get("core")]
     for n in not_assessed:
         n.pop("core", None)
     findings.sort(key=lambda f: 0 if f["severity"] == "critical" else 1)
-    result.update(status=status, headline=_headline(pres, status, disorders, qualifiers, headlines), errors=[],
-                  inputs={k: v for k, v in inputs.items() if v is not None}, values=values, units=units,
-                  findings=findings, disorders=disorders, qualifiers=qualifiers, not_assessed=not_assessed,
-                  cautions=caution_texts + list(pres.get("cautions", [])),
-                  trace=events if events is not None else [])
+    marks = {m for _n, _i, m in static.fallbacks}
+    result.update(status=status, headline=_headline(pres, status, disorders, qualifiers, headlines, core_missing),
+                  errors=[], inputs={k: v for k, v in inputs.items() if v is not None and k not in marks},
+                  values=values, units=units, findings=findings, disorders=disorders, qualifiers=qualifiers,
+                  not_assessed=not_assessed, cautions=caution_texts + list(pres.get("cautions", [])),
+                  trace=events if events is not None else [], calculated=list(calculated or ()))
     return result
 
 
@@ -420,9 +483,10 @@ def _not_assessed(rb: CompiledRulebook, static: Static, outcomes: list[int], sta
 
 
 def _headline(pres: dict[str, Any], status: str, disorders: list[str], qualifiers: dict[str, str],
-              headlines: list[tuple[int, str, str]]) -> str:
+              headlines: list[tuple[int, str, str]], core_missing: list[str] | None = None) -> str:
     """Critical phrases first, then the pH state, the disorders, then other phrases (e.g. hypoxaemia).
-    A phrase already said by a disorder's label is not repeated."""
+    A phrase already said by a disorder's label is not repeated. "No disorder" is never said beside
+    an abnormal pH: the headline then says the cause was not identified and what was not assessed."""
     words = pres.get("headline", {})
     critical = [h for s, c, h in headlines if s == 0]
     if status == "inconsistent":
@@ -439,7 +503,14 @@ def _headline(pres: dict[str, Any], status: str, disorders: list[str], qualifier
     said = set(_words(" ".join(parts)))
     state = [h for s, c, h in headlines if s == 1 and c == "ph_state"]
     others = [h for s, c, h in headlines if s == 1 and c != "ph_state" and not set(_words(h)) <= said]
-    main = " + ".join(parts) if parts else words.get("no_disorder", "No acid-base disorder identified")
+    if parts:
+        main = " + ".join(parts)
+    elif state:
+        main = words.get("abnormal_ph_unexplained", "cause not identified from the values given")
+        if core_missing:
+            main += " (not assessed: " + ", ".join(core_missing) + ")"
+    else:
+        main = words.get("no_disorder", "No acid-base disorder identified")
     return "; ".join(_unique(critical + state + [main] + others))
 
 

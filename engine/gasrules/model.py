@@ -23,6 +23,8 @@ class InputSpec:
     codes: tuple[str, ...] = ()
     default: Any = None
     location: Location = field(default_factory=Location)
+    fallback: str | None = None                 # derived value used when the input is not given
+    fallback_marks: str | None = None           # flag input the engine sets when it used the fallback
 
 
 @dataclass(frozen=True)
