@@ -500,7 +500,7 @@ def _headline(pres: dict[str, Any], status: str, disorders: list[str], qualifier
         if code in qualifiers:
             text += f" ({qlabels.get(qualifiers[code], qualifiers[code])})"
         parts.append(text)
-    said = set(_words(" ".join(parts)))
+    said = set(_words(" ".join(parts + critical)))
     state = [h for s, c, h in headlines if s == 1 and c == "ph_state"]
     others = [h for s, c, h in headlines if s == 1 and c != "ph_state" and not set(_words(h)) <= said]
     if parts:
