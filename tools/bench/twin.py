@@ -135,6 +135,7 @@ DISORDER_LABELS = {
 QUALIFIER_LABELS = {"acute": "acute", "chronic": "chronic",
                     "between_acute_and_chronic": "between acute and chronic expectations"}
 NO_DISORDER = "No acid-base disorder identified from the values given"
+ABNORMAL_UNEXPLAINED = "cause not identified from the values given"
 INCONSISTENT = "Values inconsistent: not interpreted, please recheck"
 REJECTED = "Input rejected: see errors"
 CAUTIONS = (
@@ -212,7 +213,7 @@ def _unique(items: list[str]) -> list[str]:
 
 
 def _headline(status: str, disorders: list[str], qualifiers: dict[str, str],
-              headlines: list[tuple[int, str, str]]) -> str:
+              headlines: list[tuple[int, str, str]], core_missing: list[str]) -> str:
     if status == "inconsistent":
         critical = [h for s, c, h in headlines if s == 0 and c == "critical"]
         return "; ".join(_unique(critical + [INCONSISTENT]))
@@ -223,11 +224,16 @@ def _headline(status: str, disorders: list[str], qualifiers: dict[str, str],
         if code in qualifiers:
             text += f" ({QUALIFIER_LABELS[qualifiers[code]]})"
         parts.append(text)
-    said = set(_WORD.findall(" ".join(parts).lower()))
+    said = set(_WORD.findall(" ".join(parts + critical).lower()))
     state = [h for s, c, h in headlines if s == 1 and c == "ph_state"]
     others = [h for s, c, h in headlines
               if s == 1 and c != "ph_state" and not set(_WORD.findall(h.lower())) <= said]
-    main = " + ".join(parts) if parts else NO_DISORDER
+    if parts:
+        main = " + ".join(parts)
+    elif state:
+        main = ABNORMAL_UNEXPLAINED + (" (not assessed: " + ", ".join(core_missing) + ")" if core_missing else "")
+    else:
+        main = NO_DISORDER
     return "; ".join(_unique(critical + state + [main] + others))
 
 
@@ -254,16 +260,27 @@ class Twin:
     def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
         inputs, errors, case_id, context = read_case(self.rb, case)
         result: dict[str, Any] = {
-            "schema_version": "1.0", "case_id": case_id if isinstance(case_id, str) else None,
+            "schema_version": "1.1", "case_id": case_id if isinstance(case_id, str) else None,
             "context": dict(context) if isinstance(context, Mapping) else {},
             "rulebook": dict(self.identity), "engine_version": self.engine_version,
         }
         if errors:
-            result.update(status="rejected", headline=REJECTED, errors=errors, inputs={}, values={}, units={},
-                          findings=[], disorders=[], qualifiers={},
+            # Critical-value rules still run on the fields that were read.
+            full = _evaluate(self, inputs, dict(result), [] if trace else None)
+            always = {r.id for r in self.rb.rules if r.always}
+            heads = {(r.id, f.code): f.headline for r in self.rb.rules if r.always
+                     for f in r.findings if f.headline and f.severity == "critical"}
+            findings = [f for f in full["findings"] if f["rule"] in always]
+            phrases = [heads[(f["rule"], f["code"])] for f in findings if (f["rule"], f["code"]) in heads]
+            fields = [e["field"] for e in errors if e["field"]]
+            headline = "; ".join(_unique(phrases + [REJECTED + (" (" + ", ".join(_unique(fields)) + ")"
+                                                                if fields else "")]))
+            result.update(status="rejected", headline=headline, errors=errors, inputs={}, values={}, units={},
+                          findings=findings, disorders=[], qualifiers={},
                           not_assessed=[{"what": "interpretation", "why": "input rejected: " + "; ".join(
                               e["message"] for e in errors)}],
-                          cautions=list(CAUTIONS), trace=[])
+                          cautions=list(CAUTIONS), trace=[e for e in full["trace"] if e["rule"] in always],
+                          calculated=[])
             return result
         T: list[Any] | None = [] if trace else None
         return _evaluate(self, inputs, result, T)
@@ -1291,11 +1308,12 @@ def _assemble(tw: Twin, result: dict[str, Any], I: dict[str, Any], vals: dict[st
         disorders, qualifiers = [], {}
     elif any(n["core"] for n in not_assessed):
         status = "partial"
+    core_missing = [n["what"] for n in not_assessed if n["core"]]
     for n in not_assessed:
         del n["core"]
     findings.sort(key=lambda f: 0 if f["severity"] == "critical" else 1)
-    result.update(status=status, headline=_headline(status, disorders, qualifiers, heads), errors=[],
+    result.update(status=status, headline=_headline(status, disorders, qualifiers, heads, core_missing), errors=[],
                   inputs={k: v for k, v in I.items() if v is not None}, values=values, units=units,
                   findings=findings, disorders=disorders, qualifiers=qualifiers, not_assessed=not_assessed,
-                  cautions=cautions + list(CAUTIONS), trace=T if T is not None else [])
+                  cautions=cautions + list(CAUTIONS), trace=T if T is not None else [], calculated=[])
     return result
