@@ -115,7 +115,8 @@ def test_every_code_is_documented_once() -> None:
     tested = {"RB-E001", "RB-E002", "RB-E003", "RB-E004", "RB-E010", "RB-E020", "RB-E021", "RB-E022",
               "RB-E023", "RB-E024", "RB-E025", "RB-E026", "RB-E030", "RB-E031", "RB-E032", "RB-E033",
               "RB-E034", "RB-E035", "RB-E036", "RB-E037", "RB-E040", "RB-E041", "RB-E042", "RB-E043",
-              "RB-E044", "RB-E045", "RB-W101", "RB-W102", "RB-W103"}
+              "RB-E044", "RB-E045", "RB-E070", "RB-E071", "RB-E072", "RB-E073",
+              "RB-W101", "RB-W102", "RB-W103"}
     assert set(CODES) == tested
     assert all(CODES[c] for c in CODES)
 
@@ -549,3 +550,46 @@ def test_shipped_rulebooks_are_clean() -> None:
 
     for path in (SHIPPED, EXAMPLE_SITE):
         assert [p.render() for p in gasrules.check_rulebook(path) if not p.is_warning] == []
+
+
+# ----------------------------------------------------------------------------- input fallbacks
+
+def _with_fallback(fallback: str, derived: str, marks_kind: str = "flag") -> str:
+    """HEAD with a `pco2` fallback and a derived value; the placeholder numbers are not clinical."""
+    text = HEAD.replace(
+        '  pco2: {label: PCO2, unit: "mm[Hg]", precision: 1, plausible: {min: 5, max: 250}}\n',
+        '  pco2: {label: PCO2, unit: "mm[Hg]", precision: 1, plausible: {min: 5, max: 250}, '
+        f'fallback: {fallback}}}\n'
+        f'  pco2_calculated: {{label: PCO2 calculated, kind: {marks_kind}'
+        + (", codes: [a]" if marks_kind == "code" else "") + '}\n')
+    return text.replace("rules:\n", "derived:\n" + derived + "rules:\n")
+
+
+def test_e070_fallback_unknown_value(here: Path) -> None:
+    derived = '  from_ph: {label: from pH, expr: 10 * ph, unit: "mm[Hg]", precision: 1}\n'
+    got = check(here, _with_fallback("{value: pco2_guess, marks: pco2_calculated}", derived))
+    assert got == ["rb.yaml:12:94: RB-E070 fallback of input 'pco2' names unknown derived value 'pco2_guess' "
+                   "(at inputs.pco2.fallback); expected the name of a derived value"]
+    points_at(here, got[0], "{value: pco2_guess")
+
+
+def test_e071_fallback_depends_on_its_input(here: Path) -> None:
+    derived = '  pco2_twice: {label: twice, expr: 2 * pco2, unit: "mm[Hg]", precision: 1}\n'
+    got = check(here, _with_fallback("{value: pco2_twice, marks: pco2_calculated}", derived))
+    assert got == ["rb.yaml:12:94: RB-E071 fallback 'pco2_twice' of input 'pco2' depends on 'pco2' itself "
+                   "(at inputs.pco2.fallback); expected a derived value computed from other inputs"]
+
+
+def test_e072_fallback_in_another_unit(here: Path) -> None:
+    derived = '  from_ph: {label: from pH, expr: 10 * ph, unit: "1", precision: 1}\n'
+    got = check(here, _with_fallback("{value: from_ph, marks: pco2_calculated}", derived))
+    assert got == ["rb.yaml:12:94: RB-E072 fallback 'from_ph' is in '1', input 'pco2' in 'mm[Hg]' "
+                   "(at inputs.pco2.fallback); expected a derived value in mm[Hg]"]
+
+
+def test_e073_fallback_marks_a_non_flag(here: Path) -> None:
+    derived = '  from_ph: {label: from pH, expr: 10 * ph, unit: "mm[Hg]", precision: 1}\n'
+    got = check(here, _with_fallback("{value: from_ph, marks: pco2_calculated}", derived, marks_kind="code"))
+    assert got == ["rb.yaml:12:94: RB-E073 fallback of input 'pco2' marks 'pco2_calculated', which is not a flag "
+                   "input (at inputs.pco2.fallback); expected the name of a flag input (kind: flag)"]
+

@@ -103,7 +103,8 @@ def _input_spec(name: str, b: dict[str, Any], ref: Ref) -> InputSpec:
                      precision=int(b.get("precision", 0)), plausible_min=plaus.get("min"), plausible_max=plaus.get("max"),
                      alternatives=alts, loinc=tuple(b.get("loinc") or ()), codes=tuple(b.get("codes") or ()),
                      default=b.get("default"), location=ref.loc(),
-                     fallback=fallback.get("value"), fallback_marks=fallback.get("marks"))
+                     fallback=fallback.get("value"), fallback_marks=fallback.get("marks"),
+                     fallback_location=ref.loc("fallback") if fallback else ref.loc())
 
 
 def _param_spec(name: str, b: dict[str, Any], ref: Ref, set_by: Ref, by_set_by: dict[str, Ref]) -> ParamSpec:
@@ -213,7 +214,7 @@ def _check_fallbacks(inputs: dict[str, InputSpec], derived: dict[str, DerivedSpe
     for spec in inputs.values():
         if spec.fallback is None:
             continue
-        loc = spec.location
+        loc = spec.fallback_location
         d = derived.get(spec.fallback)
         if d is None:
             out.append(Problem("RB-E070", f"fallback of input '{spec.name}' names unknown derived value "

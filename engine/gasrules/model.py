@@ -25,6 +25,7 @@ class InputSpec:
     location: Location = field(default_factory=Location)
     fallback: str | None = None                 # derived value used when the input is not given
     fallback_marks: str | None = None           # flag input the engine sets when it used the fallback
+    fallback_location: Location = field(default_factory=Location)
 
 
 @dataclass(frozen=True)
