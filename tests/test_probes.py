@@ -40,7 +40,7 @@ def tuned(tmp_path_factory: pytest.TempPathFactory) -> Path:
 def test_changed_cutpoints_per_parameter_and_selector(tuned: Path) -> None:
     cuts = changed_cutpoints(load_rulebook(SHIPPED), load_rulebook(tuned))
     ag = {(c.owner, c.old, c.new) for c in cuts if c.threshold == "ag_high"}
-    assert ("anion_gap.hidden_high_gap", 12.0, 13.0) in ag
+    assert ("anion_gap.mildly_raised", 12.0, 13.0) in ag
     ph = [c for c in cuts if c.threshold == "ph_low"]
     assert ph and all(c.selector == ("sample_type", "venous") and (c.old, c.new) == (7.30, 7.31) for c in ph)
     assert not [c for c in cuts if c.threshold not in ("ag_high", "ph_low")]
@@ -65,7 +65,7 @@ def test_derived_quantity_is_placed_by_bisection_on_a_feeding_input() -> None:
 def test_probes_flip_between_the_cuts_and_agree_outside(tuned: Path) -> None:
     old, new = load_rulebook(SHIPPED), load_rulebook(tuned)
     bases = list(default_bases([SHIPPED.parent / "cases"], n_generated=50))
-    [probe] = run_probes(old, new, bases, only=["anion_gap.hidden_high_gap"])
+    [probe] = run_probes(old, new, bases, only=["anion_gap.mildly_raised"])
     assert probe.via == "cl"
     targets = [p.target for p in probe.points]
     assert targets == [11.9, 12.0, 12.1, 12.9, 13.0, 13.1]     # 12 and 13 +/- one step of 0.1

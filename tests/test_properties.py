@@ -59,7 +59,8 @@ def value_strategy(spec: Any) -> st.SearchStrategy[Any]:
 
 
 def cases(rb: Any) -> st.SearchStrategy[dict[str, Any]]:
-    optional = {name: value_strategy(spec) for name, spec in rb.inputs.items()}
+    engine_set = {spec.fallback_marks for spec in rb.inputs.values() if spec.fallback_marks}
+    optional = {name: value_strategy(spec) for name, spec in rb.inputs.items() if name not in engine_set}
     optional["case_id"] = st.text(max_size=12)
     optional["context"] = st.dictionaries(st.text(max_size=5), st.one_of(st.integers(), st.text(max_size=5)),
                                           max_size=3)

@@ -142,7 +142,9 @@ def rejected(rb: Any, case: dict[str, Any]) -> list[dict[str, str]]:
     assert result["status"] == "rejected"
     # never half-read: nothing of the case is used
     assert (result["inputs"], result["values"], result["findings"], result["disorders"]) == ({}, {}, [], [])
-    assert result["headline"] == "Input rejected: see errors"
+    # no critical value among the fields read: the headline names the rejected fields only
+    fields = list(dict.fromkeys(e["field"] for e in result["errors"] if e["field"]))
+    assert result["headline"] == "Input rejected: see errors" + (f" ({', '.join(fields)})" if fields else "")
     for e in result["errors"]:
         assert set(e) == {"field", "code", "message", "accepted"} and e["message"] and e["accepted"]
     return result["errors"]
