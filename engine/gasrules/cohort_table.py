@@ -116,11 +116,28 @@ def run_cohorts(rb: CompiledRulebook, plan: CohortPlan, *, workers: int = 1, siz
             "generator_problems": sum(r["generator_problems"] for r in rows)}
 
 
+_TABLES: dict[tuple[Any, ...], dict[str, Any]] = {}     # this process's tables, by what decides them
+
+
+def _key(rb: CompiledRulebook, plan: CohortPlan, size: int | None) -> tuple[Any, ...]:
+    """What decides a table: the rulebook's content, the engine, every cohort file read, the size."""
+    import hashlib
+
+    files = tuple(hashlib.sha256(Path(f).read_bytes()).hexdigest() for f in plan.goal_files)
+    return (rb.sha256, rb.engine_version, files, size or plan.size)
+
+
 def table_for(rulebook_path: str | Path, rb: CompiledRulebook, *, cases_dir: str | Path | None = None,
               workers: int = 1, size: int | None = None) -> dict[str, Any] | None:
-    """Load the plan that applies to a rulebook and run it; None when its chain has no cohort file."""
+    """Load the plan that applies to a rulebook and run it; None when its chain has no cohort file.
+    The table is deterministic, so one process computes it once per rulebook content and plan."""
     plan = load_plan(rulebook_path, cases_dir)
-    return None if plan is None else run_cohorts(rb, plan, workers=workers, size=size)
+    if plan is None:
+        return None
+    key = _key(rb, plan, size)
+    if key not in _TABLES:
+        _TABLES[key] = run_cohorts(rb, plan, workers=workers, size=size)
+    return _TABLES[key]
 
 
 # ----------------------------------------------------------------------------- rendering
@@ -259,6 +276,19 @@ def render_compare_html(rows: list[dict[str, Any]]) -> str:
         r["cohort"], MEASURE_LABELS[r["measure"]], _num(r["old"]), _num(r["new"]), _num(r["change"], True),
         _pf(r["old_passed"]), _pf(r["new_passed"]))) + "</tr>" for r in rows)
     return f"<table class=\"cohorts\"><tr>{head}</tr>{body}</table>"
+
+
+def append_comparison(fmt: str, text: str, rows: list[dict[str, Any]]) -> str:
+    """An impact report (text, json or html) with the cohort comparison added."""
+    import json
+
+    if fmt == "json":
+        return json.dumps(json.loads(text) | {"cohorts": rows}, indent=2, ensure_ascii=False)
+    if fmt == "html":
+        block = "<h2>Simulated cohorts</h2>" + render_compare_html(rows)
+        cut = text.rfind("</body>")
+        return text[:cut] + block + text[cut:] if cut >= 0 else text + block
+    return text + "\n\n" + render_compare_text(rows)
 
 
 def gate_problems(table: dict[str, Any] | None) -> list[tuple[str, str]]:
