@@ -2,7 +2,7 @@
 
 :func:`run_cohorts` generates every cohort of a :class:`gasrules.cohorts.CohortPlan`, runs the
 cases through the public API (``interpret_many``, without trace, optionally across worker
-processes) and tallies, per cohort: n, the share of each status, the share naming the primary
+processes, whole cohorts per process) and tallies, per cohort: n, the share of each status, the share naming the primary
 disorder, naming no disorder outside the expected set, naming every expected disorder (mixes) or
 none (healthy), each goal and whether it is met, and the three most frequent wrong disorder sets
 with an example case each. A case the engine calls inconsistent or rejects is a generator
@@ -17,7 +17,7 @@ import os
 from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
 
 from .cohorts import MEASURES, Cohort, CohortError, CohortPlan, check_plan, generate, load_plan
 from .model import CompiledRulebook
@@ -86,31 +86,52 @@ def row(t: Tally) -> dict[str, Any]:
             "generator_problems": problems, "generator_example": t.problem_example, "wrong": wrong}
 
 
-def _stream(rb: CompiledRulebook, plan: CohortPlan, size: int | None) -> Iterator[tuple[Cohort, dict[str, Any]]]:
-    for c in plan.cohorts:
-        for case in generate(rb, plan, c, size):
-            yield c, case
-
-
 def default_workers() -> int:
     return max(1, min(2, os.cpu_count() or 1))
+
+
+def cohort_row(rb: CompiledRulebook, plan: CohortPlan, c: Cohort, size: int | None) -> dict[str, Any]:
+    """One cohort: generate, interpret through the public API (no trace), tally, summarise."""
+    import gasrules
+
+    cases = generate(rb, plan, c, size)
+    tally = Tally(c)
+    for case, result in zip(cases, gasrules.interpret_many(rb, cases, trace=False)):
+        tally.add(case, result)
+    return row(tally)
+
+
+_WORKER: dict[str, Any] = {}
+
+
+def _init_worker(rb: CompiledRulebook, plan: CohortPlan, size: int | None) -> None:
+    _WORKER.update(rb=rb, plan=plan, size=size)
+
+
+def _worker_row(c: Cohort) -> dict[str, Any]:
+    return cohort_row(_WORKER["rb"], _WORKER["plan"], c, _WORKER["size"])
+
+
+def _rows(rb: CompiledRulebook, plan: CohortPlan, size: int | None, workers: int) -> list[dict[str, Any]]:
+    """Rows in the plan's order; with workers > 1, whole cohorts go to worker processes, which send
+    back only their rows (a cohort's results never cross a process boundary)."""
+    if workers <= 1 or len(plan.cohorts) < 2:
+        return [cohort_row(rb, plan, c, size) for c in plan.cohorts]
+    import multiprocessing as mp
+
+    picklable = CohortPlan(**{**plan.__dict__, "locate": None})
+    with mp.get_context("spawn").Pool(min(workers, len(plan.cohorts)), initializer=_init_worker,
+                                      initargs=(rb, picklable, size)) as pool:
+        return pool.map(_worker_row, plan.cohorts, chunksize=1)
 
 
 def run_cohorts(rb: CompiledRulebook, plan: CohortPlan, *, workers: int = 1, size: int | None = None) -> dict[str, Any]:
     """The operating-characteristics table of one rulebook on a plan. Raises CohortError when the
     plan does not fit the rulebook (unknown parameter, disorder code, implausible range...)."""
-    import gasrules
-
     problems = check_plan(rb, plan)
     if problems:
         raise CohortError(problems)
-    pairs = list(_stream(rb, plan, size))
-    tallies = {c.id: Tally(c) for c in plan.cohorts}
-    results = gasrules.interpret_many(rb, (case for _, case in pairs), trace=False, workers=workers,
-                                      chunksize=512)
-    for (c, case), result in zip(pairs, results):
-        tallies[c.id].add(case, result)
-    rows = [row(tallies[c.id]) for c in plan.cohorts]
+    rows = _rows(rb, plan, size, workers)
     return {"rulebook": rb.identity, "file": plan.file, "seed": plan.seed, "size": size or plan.size,
             "rows": rows, "passed": all(r["passed"] for r in rows),
             "generator_problems": sum(r["generator_problems"] for r in rows)}
