@@ -243,8 +243,9 @@ def _check_cohort(rb: CompiledRulebook, plan: CohortPlan, c: Cohort, i: int, lab
     out = [Problem("CO-E004", f"cohort {c.id} expects '{d}', a disorder {rb.id} does not label",
                    loc(("cohorts", i, "expect")), "one of " + ", ".join(sorted(labels))) for d in c.expect if d not in labels]
     if c.kind == "healthy":
-        return out
-    if c.kind == "simple" and len(c.expect) != 1 or c.kind == "mix" and len(c.expect) != 2:
+        return out + ([Problem("CO-E002", f"healthy cohort {c.id} expects disorders", loc(("cohorts", i, "expect")),
+                               "expect: []")] if c.expect else [])
+    if (c.kind == "simple" and len(c.expect) != 1) or (c.kind == "mix" and len(c.expect) != 2):
         out.append(Problem("CO-E002", f"cohort {c.id} ({c.kind}) expects {len(c.expect)} disorder(s)",
                            loc(("cohorts", i, "expect")), "one for a simple cohort, two for a mix"))
     if "driver" not in s or "relation" not in s:
