@@ -138,7 +138,7 @@ def test_expected_transitions_turn_surprises_into_exit_1(data: dict[str, Path], 
     old, new = load_rulebook(SHIPPED), load_rulebook(data["tuned"])
     report = replay(old, new, data["csv"])
     runner = CliRunner()
-    args = [str(SHIPPED), str(data["tuned"]), str(data["csv"]), "--workers", "1", "--no-progress"]
+    args = [str(SHIPPED), str(data["tuned"]), str(data["csv"]), "--workers", "1", "--no-progress", "--no-cohorts"]
     res = runner.invoke(impact_command.app, args)
     assert res.exit_code == 0, res.output
     everything = tmp_path / "all.yaml"

@@ -7,7 +7,8 @@ every derived value with its formula; every rule by step with its doc sections (
 concludes, why, example, references), its condition with names replaced by labels and current
 parameter values, its findings and its status. With ``since`` it adds the classed changes from
 :mod:`gasrules.rulediff`; with a corpus as well, an impact summary (cases whose disorders or
-findings change, the largest transitions with example case ids).
+findings change, the largest transitions with example case ids). With ``cohorts``, the
+operating-characteristics table on the simulated cohorts (:mod:`gasrules.cohort_table`).
 
 :func:`render_markdown` and :func:`render_html` are pure functions of that document. The HTML
 is one self-contained file: inline style, no script, no external resource, everything escaped.
@@ -40,6 +41,7 @@ class ReviewDocument:
     steps: list[dict[str, Any]]                     # {name, label, core, rules: [...]}
     changes: dict[str, Any] | None = None           # from rulediff, when since is given
     impact: dict[str, Any] | None = None            # when a corpus is given too
+    cohorts: dict[str, Any] | None = None           # operating characteristics on the simulated cohorts
     cautions: list[str] = field(default_factory=list)
 
 
@@ -125,7 +127,7 @@ def _rules(rb: Any) -> list[dict[str, Any]]:
 
 
 def build_document(rulebook_path: str | Path, *, since: str | Path | None = None, corpus: str | Path | None = None,
-                   workers: int = 1) -> ReviewDocument:
+                   workers: int = 1, cohorts: bool = False) -> ReviewDocument:
     """Everything the committee reads; RulebookError for a broken rulebook."""
     from . import load_rulebook
 
@@ -144,6 +146,10 @@ def build_document(rulebook_path: str | Path, *, since: str | Path | None = None
         doc.changes = d.as_dict()
         if corpus is not None:
             doc.impact = impact_summary(load_rulebook(since), rb, corpus, workers=workers)
+    if cohorts:
+        from .cohort_table import table_for
+
+        doc.cohorts = table_for(rulebook_path, rb, workers=workers)
     return doc
 
 
@@ -237,6 +243,10 @@ def render_markdown(doc: ReviewDocument) -> str:
     out += ["| | |", "|---|---|"] + [f"| {k} | {_md(v)} |" for k, v in _head(doc)] + [""]
     if doc.changes is not None:
         out += _md_changes(doc.changes, doc.impact)
+    if doc.cohorts is not None:
+        from .cohort_table import render_markdown as cohorts_markdown
+
+        out += ["## Simulated cohorts (operating characteristics)", "", cohorts_markdown(doc.cohorts)]
     out += [f"## Parameters ({len(doc.parameters)})", "",
             "| Parameter | Value | Guard rails | Source (evidence) | Set by | Rationale |", "|---|---|---|---|---|---|"]
     for p in doc.parameters:
@@ -329,6 +339,10 @@ def render_html(doc: ReviewDocument) -> str:
     parts.append(_table(["", ""], [[_e(k), _e(v)] for k, v in _head(doc)]))
     if doc.changes is not None:
         parts.append(_html_changes(doc.changes, doc.impact))
+    if doc.cohorts is not None:
+        from .cohort_table import render_html as cohorts_html
+
+        parts.append("<h2>Simulated cohorts (operating characteristics)</h2>" + cohorts_html(doc.cohorts))
     parts.append(f"<h2>Parameters ({len(doc.parameters)})</h2>")
     parts.append(_table(["Parameter", "Value", "Guard rails", "Source (evidence)", "Set by", "Rationale"], [
         [f"<code>{_e(p['name'])}</code> {_e(p['label'])}", _e(_value_cell(p).replace('\\|', '|')), _e(_limits_cell(p)),

@@ -15,6 +15,9 @@ Manifest (``gasrules-release/1``)::
                never_fired, never_not_fired, threshold_coverage, excused (stated unreachable, with reasons)}
     previous  {manifest, manifest_sha256, rulebook {id, version, sha256}} or null
     change    {class, bump, counts, changes [{kind, key, aspect, class}]}
+    cohorts   {rulebook, file, seed, size, passed, generator_problems, rows [operating characteristics,
+               goals, most frequent wrong disorder sets]} or null (no cohorts.yaml in the chain);
+               every goal must be met (gasrules.cohort_table)
     author [names] · approvers [{name, role}] · date · engine_version · manifest_sha256
 """
 
@@ -119,6 +122,26 @@ def run_validation(rulebook_path: Path, rb: Any) -> SuiteSummary:
                         [dict(e) for e in cov.get("excused", [])])
 
 
+def run_cohort_gate(path: Path, rb: Any, run: Callable[[Path, Any], dict[str, Any] | None] | None = None
+                    ) -> tuple[dict[str, Any] | None, list[tuple[str, str]]]:
+    """The simulated cohorts' table (None when the chain has no cohort file) and its gate reasons:
+    every goal must be met and no generated case may be inconsistent or rejected."""
+    from . import cohort_table as T
+    from .cohorts import CohortError
+
+    try:
+        table = (run or (lambda p, r: T.table_for(p, r, workers=T.default_workers())))(path, rb)
+    except CohortError as exc:
+        return None, [("cohorts.file", p.render()) for p in exc.problems]
+    return table, T.gate_problems(table)
+
+
+def cohort_summary(table: dict[str, Any] | None) -> dict[str, Any] | None:
+    from .cohort_table import summary
+
+    return summary(table)
+
+
 def _common_root(paths: list[str]) -> Path:
     resolved = [str(Path(p).resolve().parent) for p in paths]
     return Path(os.path.commonpath(resolved)) if resolved else Path.cwd()
@@ -159,7 +182,8 @@ class ReleaseOutcome:
 def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: list[Approver],
             authors: list[str] | None = None, previous: str | Path | None = None, archive: str | Path | None = None,
             validate: Callable[[Path, Any], SuiteSummary] = run_validation,
-            now: Callable[[], str] = utc_now) -> ReleaseOutcome:
+            now: Callable[[], str] = utc_now,
+            cohorts: Callable[[Path, Any], dict[str, Any] | None] | None = None) -> ReleaseOutcome:
     """Gate, archive and record one release. Raises ReleaseRefused (every reason) or RulebookError."""
     from . import __version__, load_rulebook
     from .rulediff import diff_paths, render_markdown
@@ -185,6 +209,8 @@ def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: li
         reasons.append(("approval.duplicate", "the same person is listed twice as approver"))
     summary = validate(path, rb)
     reasons += summary.gate_problems()
+    cohort_table, cohort_reasons = run_cohort_gate(path, rb, cohorts)
+    reasons += cohort_reasons
     prev, problems = _previous(release_dir, rb, Path(previous) if previous is not None else None)
     reasons += problems
     change: dict[str, Any] = {"class": "initial", "bump": "", "counts": {}, "changes": []}
@@ -223,6 +249,7 @@ def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: li
                                                "manifest_sha256": prev.manifest.get("manifest_sha256"),
                                                "rulebook": {k: prev.rulebook.get(k) for k in ("id", "version", "sha256")}},
         "change": change,
+        "cohorts": cohort_summary(cohort_table),
         "author": author_names,
         "approvers": [asdict(a) for a in approvers],
         "date": now(),
@@ -230,6 +257,14 @@ def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: li
     }
     target = write_manifest(release_dir, manifest)
     return ReleaseOutcome(target, manifest, markdown)
+
+
+def _cohort_line(table: dict[str, Any] | None) -> list[str]:
+    if not table:
+        return []
+    met = sum(1 for r in table["rows"] if r["passed"])
+    return [f"  cohorts:  {met}/{len(table['rows'])} simulated cohorts meet their goals ({table['size']} cases each, "
+            f"seed {table['seed']})"]
 
 
 def _rel(file: str, root: Path) -> str:
@@ -248,6 +283,7 @@ def render_outcome(outcome: ReleaseOutcome) -> str:
              f"  archive:  {m['archive']['file']}",
              f"  suite:    {s['passed']}/{s['cases']} passed, {s['skipped']} skipped; rules covered "
              f"{s['rules_covered']}/{s['rules']}; suite content {s['content_sha256'][:16]}...",
+             *_cohort_line(m.get("cohorts")),
              f"  change:   {c['class']}" + (f" against {prev['rulebook']['version']} ({c['bump']} bump)" if prev else
                                             " (first release of this rulebook)"),
              f"  author:   {', '.join(m['author'])}",

@@ -4,7 +4,9 @@
         --corpus demo/corpus.csv --out review/
 
 Without --out the Markdown goes to standard output; with it, DIR/<id>-<version>.html (one
-self-contained page) and DIR/<id>-<version>.md are written. Exit 0, 2 usage, 5 broken rulebook.
+self-contained page) and DIR/<id>-<version>.md are written. The review shows the operating
+characteristics on the simulated cohorts (cohorts.yaml) unless --no-cohorts. Exit 0, 1 a cohort
+file cannot be used, 2 usage, 5 broken rulebook.
 """
 
 from __future__ import annotations
@@ -26,9 +28,12 @@ def document(rulebook: Path = typer.Argument(..., help="The rulebook (or site ov
              corpus: Optional[Path] = typer.Option(None, "--corpus", help="With --since: replay this corpus (CSV, JSON "
                                                    "Lines, Parquet) under both and add the impact summary."),
              out: Optional[Path] = typer.Option(None, "--out", help="Directory for the HTML and Markdown files."),
-             workers: int = typer.Option(1, "--workers", min=1, help="Worker processes for the corpus replay.")) -> None:
+             workers: int = typer.Option(1, "--workers", min=1, help="Worker processes for the corpus replay and the cohorts."),
+             no_cohorts: bool = typer.Option(False, "--no-cohorts", help="Leave out the simulated cohorts' table.")) -> None:
     """Render a rulebook for review: parameters with sources and who set them, rules in plain language, changes."""
+    from ..cohorts import CohortError
     from ..document import build_document, render_html, render_markdown
+    from ..reporters import render_problems
     from ..errors import RulebookError
     from ..tabular import TableError
 
@@ -36,7 +41,10 @@ def document(rulebook: Path = typer.Argument(..., help="The rulebook (or site ov
         typer.echo("error: --corpus needs --since (the impact compares two versions)", err=True)
         raise typer.Exit(exitcodes.USAGE)
     try:
-        doc = build_document(rulebook, since=since, corpus=corpus, workers=workers)
+        doc = build_document(rulebook, since=since, corpus=corpus, workers=workers, cohorts=not no_cohorts)
+    except CohortError as exc:
+        typer.echo(render_problems(exc.problems, str(rulebook)), err=True)
+        raise typer.Exit(exitcodes.FAILED) from None
     except RulebookError as exc:
         raise broken_rulebook(exc, str(rulebook)) from None
     except TableError as exc:

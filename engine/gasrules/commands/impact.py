@@ -2,7 +2,7 @@
 
 Exit 0 when the replay completed (rejected rows are counted and listed, never a failure by
 themselves), 1 when an expected-transitions file is given and a transition is not in it (or
-is above its ceiling), 2 when the corpus or the expected-transitions file cannot be used,
+is above its ceiling), 2 when the corpus, the expected-transitions file or a cohort file cannot be used,
 5 when either rulebook cannot be loaded.
 """
 
@@ -31,6 +31,20 @@ def _default_workers() -> int:
     return max(1, min(2, os.cpu_count() or 1))
 
 
+def _with_cohorts(old: Path, new: Path, rb_old: object, rb_new: object, fmt: str, text: str, workers: int) -> str:
+    """The report with the simulated cohorts' figures under both rulebooks, side by side."""
+    from .. import cohort_table as T
+    from ..cohorts import CohortError
+    from ..reporters import render_problems
+
+    try:
+        rows = T.compare(T.table_for(old, rb_old, workers=workers), T.table_for(new, rb_new, workers=workers))
+    except CohortError as exc:
+        typer.echo(render_problems(exc.problems, ""), err=True)
+        raise typer.Exit(exitcodes.USAGE)
+    return T.append_comparison(fmt, text, rows)
+
+
 @app.command()
 def impact(old: Path = typer.Argument(..., help="The current rulebook (or overlay) YAML."),
            new: Path = typer.Argument(..., help="The proposed rulebook (or overlay) YAML."),
@@ -42,6 +56,7 @@ def impact(old: Path = typer.Argument(..., help="The current rulebook (or overla
            workers: int = typer.Option(_default_workers(), "--workers", "-w", min=1, help="Worker processes."),
            chunk: int = typer.Option(250, "--chunk", min=1, help="Rows per chunk sent to a worker."),
            mapping: Optional[Path] = typer.Option(None, "--mapping", help="Column mapping file (as for batch)."),
+           no_cohorts: bool = typer.Option(False, "--no-cohorts", help="Leave out the simulated cohorts' figures under both rulebooks."),
            input_format: Optional[str] = typer.Option(None, "--input-format", help="csv, jsonl or parquet (default: by suffix)."),
            progress: Optional[bool] = typer.Option(None, "--progress/--no-progress",
                                                    help="Progress bar (default: only on a terminal).")) -> None:
@@ -76,6 +91,8 @@ def impact(old: Path = typer.Argument(..., help="The current rulebook (or overla
         typer.echo(f"gasrules impact: {exc}", err=True)
         raise typer.Exit(exitcodes.USAGE)
     text = RENDERERS[fmt.value](report)
+    if not no_cohorts:
+        text = _with_cohorts(old, new, rb_old, rb_new, fmt.value, text, workers)
     if output is not None:
         output.write_text(text + "\n", encoding="utf-8")
     else:

@@ -1,7 +1,8 @@
 """`gasrules verify [RULEBOOK]`: run a rulebook's validation suite, with rule and threshold coverage.
 
 Parses options, calls gasrules.suite, prints. Exit 0 when every case passes (and coverage meets
-the minimums given), 1 otherwise, 5 when the rulebook itself does not load.
+the minimums given, and every simulated cohort of cohorts.yaml meets its goal), 1 otherwise, 5
+when the rulebook itself does not load.
 """
 
 from __future__ import annotations
@@ -24,7 +25,10 @@ def verify(rulebook: Optional[Path] = typer.Argument(None, help="Rulebook YAML (
            suggest: bool = typer.Option(False, "--suggest", help="Propose input values for missing threshold probes (bisection)."),
            write_probes: Optional[Path] = typer.Option(None, "--write-probes", help="Write the proposed probes to this case file (implies --suggest)."),
            min_rule: Optional[float] = typer.Option(None, "--min-rule-coverage", help="Fail when rule coverage (percent) is lower."),
-           min_threshold: Optional[float] = typer.Option(None, "--min-threshold-coverage", help="Fail when threshold coverage (percent) is lower.")) -> None:
+           min_threshold: Optional[float] = typer.Option(None, "--min-threshold-coverage", help="Fail when threshold coverage (percent) is lower."),
+           no_cohorts: bool = typer.Option(False, "--no-cohorts", help="Skip the simulated cohorts (population-level validation) for a quick run."),
+           cohort_size: Optional[int] = typer.Option(None, "--cohort-size", min=1, help="Cases per cohort (default: the cohort file's size)."),
+           workers: Optional[int] = typer.Option(None, "--workers", min=1, help="Worker processes for the cohorts (default: up to 2).")) -> None:
     """Run every reference case; show failures with expected vs got and the deciding trace; show coverage."""
     from .. import load_rulebook, suite as S
     from ..errors import RulebookError
@@ -60,6 +64,9 @@ def verify(rulebook: Optional[Path] = typer.Argument(None, help="Rulebook YAML (
         report["not_found"] = not_found
         if write_probes is not None and probes:
             report["written"] = {"file": str(write_probes), "cases": S.write_probes(write_probes, rb, probes)}
+    cohort_table = None if no_cohorts else _cohorts(path, rb, cases, workers, cohort_size)
+    if not no_cohorts:
+        report["cohorts"] = cohort_table
     if as_json:
         typer.echo(json.dumps(report, indent=2, default=str))
     else:
@@ -67,11 +74,26 @@ def verify(rulebook: Optional[Path] = typer.Argument(None, help="Rulebook YAML (
     code = exitcodes.OK
     if report["summary"]["failed"] or rules["stale_excuses"] or thresholds["stale_excuses"]:
         code = exitcodes.FAILED
+    if cohort_table is not None and (not cohort_table["passed"] or cohort_table["generator_problems"]):
+        code = exitcodes.FAILED
     if min_rule is not None and rules["percent"] < min_rule:
         code = exitcodes.FAILED
     if min_threshold is not None and thresholds["percent"] < min_threshold:
         code = exitcodes.FAILED
     raise typer.Exit(code)
+
+
+def _cohorts(path: Path, rb: Any, cases: Optional[Path], workers: Optional[int], size: Optional[int]) -> Any:
+    """The operating-characteristics table on the simulated cohorts (None: no cohort file)."""
+    from .. import cohort_table as T
+    from ..cohorts import CohortError
+    from ..reporters import render_problems
+
+    try:
+        return T.table_for(path, rb, cases_dir=cases, workers=workers or T.default_workers(), size=size)
+    except CohortError as exc:
+        typer.echo(render_problems(exc.problems, str(path)), err=True)
+        raise typer.Exit(exitcodes.FAILED)
 
 
 def _failure_json(r: Any) -> dict[str, Any]:
@@ -126,6 +148,10 @@ def _text(rb: Any, results: list[Any], report: dict[str, Any]) -> str:
         lines.append(f"  no probe for {n['side']} of {n['cutpoint']}: {n['why']}")
     if "written" in report:
         lines.append(f"Wrote {report['written']['cases']} probe cases to {report['written']['file']}")
+    if "cohorts" in report:
+        from ..cohort_table import render_text
+
+        lines.append(render_text(report["cohorts"]))
     lines += ["", "Decision support only: it supports, and never replaces, clinical judgement; "
               "local laboratory ranges and protocols prevail."]
     return "\n".join(lines)
