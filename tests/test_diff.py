@@ -137,7 +137,7 @@ def test_overlay_tuning_is_patch_with_the_file_that_set_it(tmp_path: Path) -> No
             "effective_date: 2026-12-01, status: draft}\n"
             "parameters:\n"
             f"  ag_high: {{value: {ag_high}, rationale: invented tuning for a test, "
-            "source: {citation: invented for a test, evidence: INV}}\n"
+            "source: {evidence: INV, note: invented for a test}}\n"
             "suspend:\n  - {rule: critical.ph_high, reason: invented reason for a test}\n", encoding="utf-8")
         return path
 

@@ -150,7 +150,7 @@ def test_overlay_adds_parameters_and_rules(tmp_path: Path) -> None:
         "    unit: \"[pH]\"\n"
         "    bounds: {min: 6.9, max: 7.25}\n"
         "    rationale: \"Life-threatening acidaemia.\"\n"
-        "    source: {citation: \"Common practice\", evidence: CP}\n"
+        "    source: {evidence: CP, note: \"Common practice\"}\n"
         "rules:\n"
         "  - id: critical.ph_low\n"
         "    status: active\n"

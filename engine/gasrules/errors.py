@@ -44,6 +44,10 @@ CODES: dict[str, str] = {
     "RB-E043": "suspension names an unknown rule",
     "RB-E044": "overlay redefines a base id",
     "RB-E045": "parameter value outside its own bounds",
+    # Citations (bibliography)
+    "RB-E050": "bibliography file cannot be read or does not match schemas/bibliography.schema.json",
+    "RB-E051": "unknown bibliography key",
+    "RB-E052": "bibliography key declared twice",
     # Warnings
     "RB-W101": "parameter is never used",
     "RB-W102": "numeric literal in a rule condition (make it a parameter)",
