@@ -288,7 +288,7 @@ def convert(text: str, evidence: str, for_case: bool) -> tuple[list[str], str, s
         return keys, evidence, note, f"no bibliography key found in {text!r} (evidence {evidence})"
     if not keys and not note:
         return keys, evidence, note, f"nothing left of {text!r}"
-    if not keys and evidence == "CP" and not re.search(r"common|no single|no published", note, re.I):
+    if not keys and evidence == "CP" and not re.search(r"common|no single|no published|invented", note, re.I):
         note = "Common practice: " + note
     return keys, evidence, note, None
 
@@ -373,7 +373,7 @@ def rewrite(text: str, problems: list[str], where: str) -> str:
     text = _CASE_EV.sub(case, text)
     out_lines = []
     for line in text.splitlines(keepends=True):
-        m = _REFS.search(line)
+        m = None if line.lstrip().startswith("#") else _REFS.search(line)
         items = _parse_flow_list(m.group(1)) if m else None
         if m and items is not None and any(not re.fullmatch(r"[a-z][a-z0-9_]*", i) for i in items):
             new = convert_references(items)
