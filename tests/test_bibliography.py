@@ -7,6 +7,7 @@ rulebooks/bibliography.yaml by key.
 from __future__ import annotations
 
 import importlib.util
+import json
 import os
 import subprocess
 from pathlib import Path
@@ -85,6 +86,22 @@ def test_document_lists_the_cited_references_per_rule() -> None:
     md = render_markdown(build_document(SHIPPED))
     assert "[batlle1988] Batlle DC, Hizon M, Cohen E, et al. The use of the urinary anion gap" in md
     assert "methods" + ".md" not in md
+
+
+def test_overlay_inherits_its_base_bibliography_and_adds_its_own(tmp_path: Path) -> None:
+    from conftest import MINI_OVERLAYS
+
+    site = (MINI_OVERLAYS / "site.yaml").read_text(encoding="utf-8")
+    site = site.replace("extends: ../rulebook.yaml", f"extends: {json.dumps(str(MINI_OVERLAYS.parent / 'rulebook.yaml'))}"
+                        ).replace("format: gasrules/1\n", "format: gasrules/1\nbibliography: local.yaml\n")
+    site = site.replace("source: {ref: winter1990, evidence: S}", "source: {ref: [winter1990, site_study2026], evidence: S}")
+    (tmp_path / "site.yaml").write_text(site, encoding="utf-8")
+    (tmp_path / "local.yaml").write_text(
+        "format: gasrules-bibliography/1\nentries:\n  site_study2026:\n    type: web_page\n"
+        "    title: \"Analyser verification report (invented for a test)\"\n    details: read\n", encoding="utf-8")
+    rb = gasrules.load_rulebook(tmp_path / "site.yaml", cache=False)
+    assert {"winter1990", "site_study2026"} <= set(rb.bibliography.entries)
+    assert rb.parameters["ag_high"].source["ref"] == ["winter1990", "site_study2026"]
 
 
 # ----------------------------------------------------------------------------- case evidence
