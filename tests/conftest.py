@@ -28,6 +28,18 @@ MINI_OVERLAYS = MINI.parent / "overlays"
 _CACHE_DIRS: list[tuple[str | None, str]] = []   # (value before the session, our temporary directory)
 
 
+def portable(text: str, origin: Path) -> str:
+    """A rulebook's text made loadable from another folder: its `bibliography:` path (relative to
+    ``origin``, the file the text was read from) becomes absolute."""
+    import json
+    import re
+
+    def absolute(m: re.Match[str]) -> str:
+        return "bibliography: " + json.dumps(str((origin.parent / m.group(1).strip()).resolve()))
+
+    return re.sub(r"^bibliography: ([^\[\n]+)$", absolute, text, flags=re.M)
+
+
 def pytest_configure(config: pytest.Config) -> None:
     """Every compiled rulebook of this session goes to a private cache directory, set before
     collection (some test modules load a rulebook at import to build Hypothesis strategies)."""

@@ -64,7 +64,7 @@ def _canonical(case: dict[str, Any]) -> dict[str, float]:
 
 def _hh_ph(hco3: float, pco2: float) -> float:
     # Henderson-Hasselbalch, pK' 6.1 and CO2 solubility 0.0307 mmol/L/mmHg
-    # (methods.md 2.1; pK' common practice, 0.0307 NCCLS 1994).
+    # (pK' common practice; 0.0307 NCCLS 1994, bibliography key nccls1994).
     return 6.1 + math.log10(hco3 / (0.0307 * pco2))
 
 
@@ -142,7 +142,7 @@ def test_collection_times_are_iso_and_increasing(
 def test_mix_covers_every_allowed_disorder_combination(
         labelled: list[tuple[Any, dict[str, Any]]]) -> None:
     # At most one respiratory disorder (two cannot coexist: CMDT "Acid-base disorders",
-    # methods.md 3.1) with each metabolic set the generator declares.
+    # common teaching) with each metabolic set the generator declares.
     resp_labels = ["none"] + [f"{r}/{c}" for r in RESPIRATORY[1:] for c in ("acute", "chronic")]
     expected = {"+".join((r, *m)) if m else r for r in resp_labels for m in METABOLIC_SETS}
     seen = Counter(s.combination for s, _ in labelled)
@@ -221,7 +221,7 @@ def test_metabolic_acidosis_alone_has_winters_respiratory_response(
 
 
 @pytest.mark.parametrize("disorder, chronicity, slope", [
-    # HCO3 change per mmHg PCO2 (Adrogue & Madias, J Am Soc Nephrol 2010; methods.md 2.2)
+    # HCO3 change per mmHg PCO2 (Adrogue & Madias, J Am Soc Nephrol 2010: adrogue2010)
     ("respiratory_acidosis", "acute", 0.1),
     ("respiratory_acidosis", "chronic", 0.35),
     ("respiratory_alkalosis", "acute", 0.2),

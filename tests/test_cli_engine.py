@@ -19,7 +19,7 @@ from typer.testing import CliRunner
 
 import gasrules
 import gasrules.cache as cache_module
-from conftest import EXAMPLE_SITE, MINI, MINI_OVERLAYS
+from conftest import EXAMPLE_SITE, MINI, MINI_OVERLAYS, portable
 from gasrules.cli import COMMANDS, main
 from gasrules.commands import interpret as interpret_command
 
@@ -27,7 +27,7 @@ from gasrules.commands import interpret as interpret_command
 # definition); Winter 1.5 x 11 + 8 = 24.5 +/- 2 (Albert, Dell & Winters, Ann Intern Med 1967),
 # so PCO2 25 is the expected response.
 README = ["--ph", "7.26", "--pco2", "25", "--hco3", "11", "--na", "140", "--cl", "104"]
-# pH 7.40, PCO2 40, HCO3 30 (methods.md C28): HH HCO3 24.5, inconsistent (NCCLS form, S 0.0307).
+# pH 7.40, PCO2 40, HCO3 30: HH HCO3 24.5, inconsistent (NCCLS form, S 0.0307).
 C28 = {"ph": 7.40, "pco2": 40, "hco3": 30}
 MMHG_PER_KPA = 1000 / 133.322387415   # BIPM SI Brochure / ISO 80000-4
 
@@ -256,7 +256,7 @@ def counted_compiles(monkeypatch: pytest.MonkeyPatch) -> list[str]:
 
 def test_second_load_is_a_cache_hit(tmp_path: Path, cache_dir: Path, counted_compiles: list[str]) -> None:
     path = tmp_path / "rb.yaml"
-    path.write_text(MINI.read_text(encoding="utf-8"), encoding="utf-8")
+    path.write_text(portable(MINI.read_text(encoding="utf-8"), MINI), encoding="utf-8")
     first = gasrules.load_rulebook(path)
     assert len(counted_compiles) == 1
     assert len(list(cache_dir.glob("*.pickle"))) == 1
@@ -269,7 +269,7 @@ def test_second_load_is_a_cache_hit(tmp_path: Path, cache_dir: Path, counted_com
 
 def test_edited_rulebook_is_a_miss(tmp_path: Path, cache_dir: Path, counted_compiles: list[str]) -> None:
     path = tmp_path / "rb.yaml"
-    text = MINI.read_text(encoding="utf-8")
+    text = portable(MINI.read_text(encoding="utf-8"), MINI)
     path.write_text(text, encoding="utf-8")
     before = gasrules.load_rulebook(path)
     path.write_text(text.replace("    value: 12\n", "    value: 13\n"), encoding="utf-8")
@@ -287,7 +287,7 @@ def test_edited_rulebook_is_a_miss(tmp_path: Path, cache_dir: Path, counted_comp
 def test_edited_base_of_an_overlay_is_a_miss(tmp_path: Path, cache_dir: Path, counted_compiles: list[str]) -> None:
     (tmp_path / "overlays").mkdir()
     base = tmp_path / "rulebook.yaml"
-    base.write_text(MINI.read_text(encoding="utf-8"), encoding="utf-8")
+    base.write_text(portable(MINI.read_text(encoding="utf-8"), MINI), encoding="utf-8")
     site = tmp_path / "overlays" / "site.yaml"
     site.write_text((MINI_OVERLAYS / "site.yaml").read_text(encoding="utf-8"), encoding="utf-8")
     gasrules.load_rulebook(site)
@@ -306,7 +306,7 @@ def test_no_cache_when_disabled(tmp_path: Path, cache_dir: Path, counted_compile
 
 def test_damaged_cache_entry_is_a_miss(tmp_path: Path, cache_dir: Path, counted_compiles: list[str]) -> None:
     path = tmp_path / "rb.yaml"
-    path.write_text(MINI.read_text(encoding="utf-8"), encoding="utf-8")
+    path.write_text(portable(MINI.read_text(encoding="utf-8"), MINI), encoding="utf-8")
     gasrules.load_rulebook(path)
     [entry] = cache_dir.glob("*.pickle")
     entry.write_bytes(b"not a pickle")
@@ -318,7 +318,7 @@ def test_damaged_cache_entry_is_a_miss(tmp_path: Path, cache_dir: Path, counted_
 
 def test_broken_rulebook_is_never_cached(tmp_path: Path, cache_dir: Path) -> None:
     path = tmp_path / "rb.yaml"
-    path.write_text(MINI.read_text(encoding="utf-8").replace("    value: 12\n", "    value: 99\n"), encoding="utf-8")
+    path.write_text(portable(MINI.read_text(encoding="utf-8"), MINI).replace("    value: 12\n", "    value: 99\n"), encoding="utf-8")
     for _ in range(2):
         with pytest.raises(gasrules.RulebookError):
             gasrules.load_rulebook(path)
@@ -342,7 +342,7 @@ def test_cached_locations_do_not_depend_on_the_compiling_directory(tmp_path: Pat
                                                                     monkeypatch: pytest.MonkeyPatch) -> None:
     (tmp_path / "a").mkdir()
     (tmp_path / "b").mkdir()
-    (tmp_path / "a" / "rb.yaml").write_text(MINI.read_text(encoding="utf-8"), encoding="utf-8")
+    (tmp_path / "a" / "rb.yaml").write_text(portable(MINI.read_text(encoding="utf-8"), MINI), encoding="utf-8")
     monkeypatch.chdir(tmp_path / "b")
     fresh = str(gasrules.load_rulebook("../a/rb.yaml", cache=False).parameters["ag_high"].set_by)
     monkeypatch.chdir(tmp_path / "a")

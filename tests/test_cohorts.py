@@ -321,7 +321,7 @@ def test_impact_shows_the_figures_side_by_side(tmp_path):
     site = _overlay(tmp_path, base, None)
     text = site.read_text(encoding="utf-8")
     site.write_text(text + "parameters:\n  pco2_low: {value: 30, rationale: 'a lower limit', "
-                    "source: {citation: 'Common practice', evidence: CP}}\n", encoding="utf-8")
+                    "source: {evidence: CP, note: 'Common practice'}}\n", encoding="utf-8")
     corpus = tmp_path / "c.jsonl"
     corpus.write_text('{"case_id": "1", "ph": 7.4, "pco2": 40, "hco3": 24}\n', encoding="utf-8")
     out = runner.invoke(I.app, [str(base), str(site), str(corpus), "-w", "1", "--no-progress"])

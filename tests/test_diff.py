@@ -12,6 +12,7 @@ from pathlib import Path
 
 import pytest
 
+from conftest import portable
 from gasrules import check_rulebook, cli
 from gasrules.commands import diff as diff_command
 from gasrules.resources import default_rulebook_path
@@ -27,7 +28,7 @@ PH_LOW_WHEN = "when: known(ph) and ph < critical_ph_low\n"
 
 def tuned(tmp_path: Path, name: str, edits: list[tuple[str, str]], version: str | None = None) -> Path:
     """A copy of the shipped rulebook with exact edits; each edited text must occur exactly once."""
-    text = SHIPPED.read_text(encoding="utf-8")
+    text = portable(SHIPPED.read_text(encoding="utf-8"), SHIPPED)
     if version is not None:
         edits = [(VERSION_LINE, f"  version: {version}\n")] + edits
     for old, new in edits:
@@ -137,7 +138,7 @@ def test_overlay_tuning_is_patch_with_the_file_that_set_it(tmp_path: Path) -> No
             "effective_date: 2026-12-01, status: draft}\n"
             "parameters:\n"
             f"  ag_high: {{value: {ag_high}, rationale: invented tuning for a test, "
-            "source: {citation: invented for a test, evidence: INV}}\n"
+            "source: {evidence: INV, note: invented for a test}}\n"
             "suspend:\n  - {rule: critical.ph_high, reason: invented reason for a test}\n", encoding="utf-8")
         return path
 

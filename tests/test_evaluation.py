@@ -15,7 +15,7 @@ from typing import Any
 import pytest
 
 import gasrules
-from conftest import MINI
+from conftest import MINI, portable
 from gasrules.casegen import generate_cases
 from gasrules.codegen import CALC_ERROR
 from gasrules.evaluator import read_case
@@ -133,7 +133,7 @@ def test_calculation_error_makes_only_that_value_not_assessable(mini_rb: Any) ->
 
 
 def test_calculation_error_in_a_condition(tmp_path: Path) -> None:
-    text = MINI.read_text(encoding="utf-8").replace(
+    text = portable(MINI.read_text(encoding="utf-8"), MINI).replace(
         "presentation:\n",
         "  - id: delta.ratio_high\n"
         "    status: active\n"
@@ -215,7 +215,7 @@ def test_inputs_compared_at_their_precision(mini_rb: Any) -> None:
 # ----------------------------------------------------------------------------- inconsistent sample
 
 def test_inconsistent_sample(shipped_rb: Any, result_validator: Any) -> None:
-    # pH 7.40, PCO2 40, HCO3 30 (methods.md C28): HH HCO3 0.0307 x 40 x 10^(7.40 - 6.1) = 24.50
+    # pH 7.40, PCO2 40, HCO3 30: HH HCO3 0.0307 x 40 x 10^(7.40 - 6.1) = 24.50
     # (NCCLS form with S 0.0307), 5.5 from the reported 30; Henderson [H+] 24 x 40 / 30 = 32.0 vs
     # 39.8 from the pH (Kassirer & Bleich, N Engl J Med 1965, from memory): -19.6 %.
     result = gasrules.interpret(shipped_rb, {"ph": 7.40, "pco2": 40, "hco3": 30, "case_id": "C28"})
@@ -233,7 +233,7 @@ def test_inconsistent_sample(shipped_rb: Any, result_validator: Any) -> None:
 
 
 def test_critical_values_survive_a_stop(shipped_rb: Any) -> None:
-    # Critical values are never suppressed (methods.md 5 item 10; common practice): pH 6.95 is below
+    # Critical values are never suppressed (common practice): pH 6.95 is below
     # the critical 7.10 and K 7.0 above the critical 6.5 (common practice limits), and the sample is
     # also inconsistent (HH HCO3 0.0307 x 40 x 10^0.85 = 8.7 vs 30, NCCLS form).
     result = gasrules.interpret(shipped_rb, {"ph": 6.95, "pco2": 40, "hco3": 30, "k": 7.0})

@@ -20,6 +20,7 @@ from pathlib import Path
 import pytest
 
 import gasrules
+from conftest import portable
 from gasrules.errors import Location
 from gasrules.expressions import parse, runtime_globals
 
@@ -152,7 +153,7 @@ def test_refused_by_the_checker(text: str, code: str) -> None:
 
 @pytest.fixture
 def mini_text(mini_path: Path) -> str:
-    text = mini_path.read_text(encoding="utf-8")
+    text = portable(mini_path.read_text(encoding="utf-8"), mini_path)
     assert text.count(ACIDAEMIA_WHEN) == 1 and text.count(AG_EXPR) == 1
     return text
 

@@ -1,7 +1,7 @@
 """FHIR R4 adapter: reading blood gas Observations into a case, writing the interpretation.
 
 All patients and values in tests/data/fhir are invented (demo data). The panels were made
-consistent by Henderson-Hasselbalch, pH = 6.1 + log10(HCO3 / (0.0307 x PCO2)) (methods.md 2.1),
+consistent by Henderson-Hasselbalch, pH = 6.1 + log10(HCO3 / (0.0307 x PCO2)) (nccls1994),
 to within 0.01; the reader itself checks no clinical number: it maps codes and units.
 
 The tests use a small stand-in input catalogue (``CATALOG``) shaped like the rulebook's

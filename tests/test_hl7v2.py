@@ -1,7 +1,7 @@
 """HL7 v2 ORU^R01 adapter: parsing, reading blood gas OBX into a case, every error path.
 
 Messages in tests/data/hl7 and tools/demo/hl7 are invented (demo data); their panels were made
-consistent by Henderson-Hasselbalch, pH = 6.1 + log10(HCO3 / (0.0307 x PCO2)) (methods.md 2.1),
+consistent by Henderson-Hasselbalch, pH = 6.1 + log10(HCO3 / (0.0307 x PCO2)) (nccls1994),
 to within 0.01. The reader checks no clinical number: it maps codes and units.
 """
 

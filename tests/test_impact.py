@@ -18,6 +18,7 @@ from pathlib import Path
 
 import pytest
 
+from conftest import portable
 from gasrules import interpret, load_rulebook
 from gasrules.casegen import generate_corpus
 from gasrules.commands import impact as impact_command
@@ -40,7 +41,7 @@ def make_corpus(path: Path, fmt: str, n: int = N, seed: int = SEED, share: float
 @pytest.fixture(scope="module")
 def data(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     d = tmp_path_factory.mktemp("impact")
-    text = SHIPPED.read_text(encoding="utf-8")
+    text = portable(SHIPPED.read_text(encoding="utf-8"), SHIPPED)
     anchor = "  ag_high:\n    value: 12\n"
     assert text.count(anchor) == 1
     tuned = d / "tuned" / "rulebook.yaml"

@@ -38,8 +38,8 @@ inputs:
   pco2: {label: PCO2, unit: "mm[Hg]", precision: 1, plausible: {min: 5, max: 250}}
   sample_type: {label: Sample type, kind: code, codes: [arterial, venous]}
 parameters:
-  ph_low: {value: 7.35, unit: "[pH]", bounds: {min: 7.28, max: 7.38}, rationale: "Lower pH limit.", source: {citation: "Common practice", evidence: CP}}
-  pco2_high: {value: 45, unit: "mm[Hg]", bounds: {min: 42, max: 60}, rationale: "Upper PCO2 limit.", source: {citation: "Common practice", evidence: CP}}
+  ph_low: {value: 7.35, unit: "[pH]", bounds: {min: 7.28, max: 7.38}, rationale: "Lower pH limit.", source: {evidence: CP, note: "Common practice"}}
+  pco2_high: {value: 45, unit: "mm[Hg]", bounds: {min: 42, max: 60}, rationale: "Upper PCO2 limit.", source: {evidence: CP, note: "Common practice"}}
 rules:
   - id: ph.low
     status: active
@@ -115,8 +115,8 @@ def test_every_code_is_documented_once() -> None:
     tested = {"RB-E001", "RB-E002", "RB-E003", "RB-E004", "RB-E010", "RB-E020", "RB-E021", "RB-E022",
               "RB-E023", "RB-E024", "RB-E025", "RB-E026", "RB-E030", "RB-E031", "RB-E032", "RB-E033",
               "RB-E034", "RB-E035", "RB-E036", "RB-E037", "RB-E040", "RB-E041", "RB-E042", "RB-E043",
-              "RB-E044", "RB-E045", "RB-E070", "RB-E071", "RB-E072", "RB-E073",
-              "RB-W101", "RB-W102", "RB-W103"}
+              "RB-E044", "RB-E045", "RB-E050", "RB-E051", "RB-E052", "RB-E070", "RB-E071", "RB-E072",
+              "RB-E073", "RB-W101", "RB-W102", "RB-W103"}
     assert set(CODES) == tested
     assert all(CODES[c] for c in CODES)
 
@@ -278,7 +278,7 @@ def test_e030_duplicate_rule_id(here: Path) -> None:
 
 def test_e030_name_is_input_and_parameter(here: Path) -> None:
     text = HEAD.replace("parameters:\n", "parameters:\n  ph: {value: 7.4, unit: \"[pH]\", bounds: {min: 7.3, max: 7.5}, "
-                                         "rationale: \"Clash.\", source: {citation: \"Common practice\", evidence: CP}}\n")
+                                         "rationale: \"Clash.\", source: {evidence: CP, note: \"Common practice\"}}\n")
     got = check(here, text)
     assert got == ["rb.yaml:15:7: RB-E030 'ph' is both a input and a parameter (at parameters.ph); "
                    "expected each name declared once"]
@@ -393,7 +393,7 @@ def test_e042_choice_not_among_choices(here: Path) -> None:
     (here / "rb.yaml").write_text(HEAD.replace(
         "parameters:\n",
         "parameters:\n  method: {value: figge, choices: [figge, none], rationale: \"Which correction.\", "
-        "source: {citation: \"Figge, Jabor, Kazda & Fencl, Crit Care Med 1998\", evidence: S}}\n")
+        "source: {evidence: CP, note: \"Albumin correction choice (test)\"}}\n")
         + rule("uses.method", 'method == "figge" and ph < ph_low'), encoding="utf-8")
     got = check(here, OVERLAY_HEAD + "parameters:\n  method: {value: carvounis}\n", "site.yaml")
     assert got == ["site.yaml:10:19: RB-E042 'carvounis' is not a choice of parameter 'method' "
@@ -429,7 +429,7 @@ def test_overlay_problems_reported_together(here: Path) -> None:
 
 def test_warnings(here: Path) -> None:
     text = HEAD.replace("rules:\n", "  spare: {value: 1, unit: \"1\", bounds: {min: 0, max: 2}, rationale: \"Unused.\", "
-                                    "source: {citation: \"Common practice\", evidence: CP}}\nrules:\n")
+                                    "source: {evidence: CP, note: \"Common practice\"}}\nrules:\n")
     text += rule("literal", "ph < 7.2") + "derived:\n  helper: {expr: ph * 2, unit: \"[pH]\", precision: 2, report: false}\n"
     got = check(here, text)
     assert got == [
@@ -593,3 +593,83 @@ def test_e073_fallback_marks_a_non_flag(here: Path) -> None:
     assert got == ["rb.yaml:12:94: RB-E073 fallback of input 'pco2' marks 'pco2_calculated', which is not a flag "
                    "input (at inputs.pco2.fallback); expected the name of a flag input (kind: flag)"]
 
+# ----------------------------------------------------------------------------- citations
+
+BIB = """\
+format: gasrules-bibliography/1
+entries:
+  figge1998:
+    type: article
+    authors: [Figge J, Jabor A, Kazda A, Fencl V]
+    title: "Anion gap and hypoalbuminemia"
+    journal: Crit Care Med
+    year: 1998
+    details: read
+  kraut2007:
+    type: article
+    title: "Serum anion gap: its uses and limitations in clinical medicine"
+    details: from_memory
+"""
+
+
+def cited(here: Path, source: str, references: str = "", bib: str = BIB) -> list[str]:
+    """HEAD citing a bibliography: ph_low's source and (optionally) a rule's doc.references."""
+    (here / "bib.yaml").write_text(bib, encoding="utf-8")
+    text = HEAD.replace("format: gasrules/1\n", "format: gasrules/1\nbibliography: bib.yaml\n").replace(
+        'source: {evidence: CP, note: "Common practice"}}\n  pco2_high', f"source: {source}}}\n  pco2_high")
+    if references:
+        text += f"    doc: {{references: {references}}}\n"
+    return check(here, text)
+
+
+def test_known_keys_are_clean(here: Path) -> None:
+    assert cited(here, "{ref: figge1998, evidence: S}", "[kraut2007, {ref: figge1998, note: table 2}]") == []
+
+
+def test_e051_unknown_key_in_a_parameter_source(here: Path) -> None:
+    got = cited(here, "{ref: figge1989, evidence: S}")
+    assert got == ["rb.yaml:16:115: RB-E051 unknown bibliography key 'figge1989' (did you mean figge1998?) "
+                   "(at parameters.ph_low.source.ref); expected a key of bib.yaml"]
+    points_at(here, got[0], "figge1989")
+
+
+def test_e051_unknown_key_in_rule_references(here: Path) -> None:
+    got = cited(here, "{ref: figge1998, evidence: S}", "[kraut2070]")
+    assert got == ["rb.yaml:32:23: RB-E051 unknown bibliography key 'kraut2070' (did you mean kraut2007?) "
+                   "(at rules[1].doc.references); expected a key of bib.yaml"]
+
+
+def test_e051_key_without_any_bibliography(here: Path) -> None:
+    text = HEAD.replace('source: {evidence: CP, note: "Common practice"}}\n  pco2_high',
+                        "source: {ref: figge1998, evidence: S}}\n  pco2_high")
+    assert check(here, text) == [
+        "rb.yaml:15:115: RB-E051 unknown bibliography key 'figge1998' (at parameters.ph_low.source.ref); "
+        "expected a key of the rulebook's bibliography (declare one with `bibliography:`)"]
+
+
+def test_source_without_ref_needs_a_note_saying_why(here: Path) -> None:
+    got = cited(here, "{evidence: S}")
+    assert got == ["rb.yaml:16:109: RB-E010 'ref' is required (at parameters.ph_low.source)"]
+    got = cited(here, "{evidence: CP}")
+    assert got and all("RB-E010" in g and "parameters.ph_low.source" in g for g in got)
+
+
+def test_e050_bibliography_entry_against_its_schema(here: Path) -> None:
+    got = cited(here, "{ref: figge1998, evidence: S}", bib=BIB.replace("    details: read\n", "    details: sure\n"))
+    assert got == ["bib.yaml:9:14: RB-E050 'sure' is not one of ['read', 'from_memory'] "
+                   "(at entries.figge1998.details); expected one of read, from_memory"]
+
+
+def test_e050_missing_bibliography_file(here: Path) -> None:
+    text = HEAD.replace("format: gasrules/1\n", "format: gasrules/1\nbibliography: nowhere.yaml\n")
+    assert check(here, text) == ["rb.yaml:2:15: RB-E050 bibliography file cannot be read: nowhere.yaml "
+                                 "(at bibliography); expected a path to a bibliography YAML file, relative to the rulebook"]
+
+
+def test_e052_key_declared_in_two_bibliographies(here: Path) -> None:
+    (here / "bib.yaml").write_text(BIB, encoding="utf-8")
+    (here / "more.yaml").write_text(BIB.split("  kraut2007:")[0], encoding="utf-8")
+    text = HEAD.replace("format: gasrules/1\n", "format: gasrules/1\nbibliography: [bib.yaml, more.yaml]\n")
+    got = check(here, text)
+    assert got == ["more.yaml:4:5: RB-E052 bibliography key 'figge1998' is declared twice (first at bib.yaml:4:5) "
+                   "(at entries.figge1998); expected one entry per key across a rulebook's bibliographies"]

@@ -11,13 +11,15 @@ from __future__ import annotations
 
 import hashlib
 import json
+import shutil
 from pathlib import Path
 from typing import Any
 
 import pytest
 
 import gasrules
-from conftest import EXAMPLE_SITE, MINI, MINI_OVERLAYS, ROOT, SHIPPED
+from conftest import EXAMPLE_SITE, MINI, MINI_OVERLAYS, ROOT, SHIPPED, portable
+from gasrules.bibliography import load_bibliographies
 from gasrules.compiler import canonical_content
 from gasrules.overlay import load_chain, resolve
 from gasrules.reporters import render_result
@@ -150,7 +152,7 @@ def test_overlay_adds_parameters_and_rules(tmp_path: Path) -> None:
         "    unit: \"[pH]\"\n"
         "    bounds: {min: 6.9, max: 7.25}\n"
         "    rationale: \"Life-threatening acidaemia.\"\n"
-        "    source: {citation: \"Common practice\", evidence: CP}\n"
+        "    source: {evidence: CP, note: \"Common practice\"}\n"
         "rules:\n"
         "  - id: critical.ph_low\n"
         "    status: active\n"
@@ -249,7 +251,7 @@ def test_suspension_needs_a_reason(tmp_path: Path) -> None:
 # ----------------------------------------------------------------------------- identity
 
 def _variant(tmp_path: Path, name: str, old: str, new: str, source: Path = MINI) -> Path:
-    text = source.read_text(encoding="utf-8")
+    text = portable(source.read_text(encoding="utf-8"), source)
     assert text.count(old) == 1, old
     path = tmp_path / name
     path.write_text(text.replace(old, new), encoding="utf-8")
@@ -271,7 +273,13 @@ def test_sha256_is_over_canonical_json_of_resolved_content(mini_rb: Any) -> None
     # numbers are written as floats, so 12 and 12.0 (one value) hash alike
     floats = json.loads(json.dumps(content), parse_int=float)
     text = json.dumps(floats, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
-    assert mini_rb.sha256 == hashlib.sha256(text.encode("utf-8")).hexdigest()
+    # the bibliography the rulebook cites is shown to users, so its content is part of the identity
+    bib, problems = load_bibliographies(docs)
+    assert problems == [] and bib.entries
+    entries = json.dumps(bib.entries, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
+    content_sha = hashlib.sha256(text.encode("utf-8")).hexdigest()
+    expected = hashlib.sha256(f"{content_sha}+bibliography:{hashlib.sha256(entries.encode()).hexdigest()}".encode()).hexdigest()
+    assert mini_rb.sha256 == expected
     assert mini_rb.identity == {"id": "mini-acid-base", "version": "0.1.0", "sha256": mini_rb.sha256}
 
 
@@ -348,3 +356,14 @@ def test_example_site_text_in_kpa_json_canonical(site_rb: Any) -> None:
 def test_shipped_rulebook_text_in_mmhg(shipped_rb: Any) -> None:
     text = render_result(shipped_rb, gasrules.interpret(shipped_rb, dict(DUBOSE_E1, k=4.0)))
     assert "29.0 mmHg" in text and "kPa" not in text
+
+
+def test_bibliography_content_is_part_of_the_identity(tmp_path: Path) -> None:
+    """Editing a cited entry (here the year of one publication) changes the rulebook hash."""
+    base = gasrules.load_rulebook(MINI, cache=False)
+    shutil.copytree(MINI.parent, tmp_path / "mini")
+    bib = tmp_path / "mini" / "bibliography.yaml"
+    text = bib.read_text(encoding="utf-8")
+    assert text.count("year: 1998") == 1
+    bib.write_text(text.replace("year: 1998", "year: 1999"), encoding="utf-8")
+    assert gasrules.load_rulebook(tmp_path / "mini" / "rulebook.yaml", cache=False).sha256 != base.sha256

@@ -13,6 +13,7 @@ from pathlib import Path
 
 import pytest
 
+from conftest import portable
 from gasrules import load_rulebook
 from gasrules.commands import probes as probes_command
 from gasrules.probes import changed_cutpoints, default_bases, feeders, place, run_probes, render_text
@@ -26,7 +27,7 @@ PH_LOW = "    by: {input: sample_type, values: {venous: 7.30, mixed_venous: 7.30
 
 @pytest.fixture(scope="module")
 def tuned(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    text = SHIPPED.read_text(encoding="utf-8")
+    text = portable(SHIPPED.read_text(encoding="utf-8"), SHIPPED)
     for old, new in ((AG_HIGH, "  ag_high:\n    value: 13\n"),
                      (PH_LOW, PH_LOW.replace("venous: 7.30, mixed", "venous: 7.31, mixed")),
                      ("  version: 1.0.0\n", "  version: 1.0.1\n")):
@@ -101,7 +102,7 @@ def test_cli_json(tuned: Path) -> None:
 
 def test_literal_threshold_change_is_a_changed_cut(tmp_path: Path) -> None:
     """A literal in a condition (discouraged, but legal) is paired by owner and position."""
-    text = SHIPPED.read_text(encoding="utf-8")
+    text = portable(SHIPPED.read_text(encoding="utf-8"), SHIPPED)
     anchor = "when: known(ph) and ph < critical_ph_low\n"
     assert text.count(anchor) == 1
     paths = []

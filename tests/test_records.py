@@ -44,7 +44,7 @@ class TickClock:
 
 def make_case(i: int, pco2: float = 24) -> dict[str, Any]:
     # DuBose, "Acidosis and alkalosis", Harrison's, table of mixed disorders, example 1
-    # (shared/methods.md E1): Na 140, K 4.0, Cl 106, HCO3 14, PaCO2 24, pH 7.39.
+    # (DuBose, Harrison's, table of mixed disorders: dubose_harrison): Na 140, K 4.0, Cl 106, HCO3 14, PaCO2 24, pH 7.39.
     return {"case_id": f"case-{i}", "ph": 7.39, "pco2": pco2, "hco3": 14, "na": 140, "k": 4.0,
             "cl": 106, "context": {"mrn": f"MRN{i:06d}", "name": "Demo Patient", "ward": "ICU",
                                    "visit": {"patient_id": i, "bed": 7}}}

@@ -41,6 +41,7 @@ def copy_rulebook(tmp_path: Path) -> Path:
     target = tmp_path / "book" / "rulebook.yaml"
     target.parent.mkdir()
     shutil.copy(ADULT, target)
+    shutil.copy(ADULT.parent.parent / "bibliography.yaml", tmp_path / "bibliography.yaml")   # ../bibliography.yaml
     return target
 
 

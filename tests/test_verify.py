@@ -38,13 +38,13 @@ def _cases(tmp_path: Path, text: str, name: str = "cases.yaml") -> Path:
 GOOD = """\
 cases:
   - id: e29-gas
-    note: "Diarrhoea: normal-gap acidosis (methods.md 4.1 E29, reconstructed teaching case)."
-    evidence: {tag: CP, source: "methods.md 4.1 E29"}
+    note: "Diarrhoea: normal-gap acidosis (reconstructed teaching case)."
+    evidence: {tag: CP, note: "Reconstructed teaching case (no single source)"}
     input: {sample_type: arterial, ph: 7.30, pco2: 29, hco3: 14, na: 138, cl: 115}
     want:
       disorders: [metabolic_acidosis_normal_anion_gap]
       values:
-        expected_pco2: {value: 29.0, tolerance: 0.05, evidence: {tag: D, source: "1.5 x 14 + 8 (Winter)"}}
+        expected_pco2: {value: 29.0, tolerance: 0.05, evidence: {tag: D, ref: albert1967, note: "1.5 x 14 + 8 (Winter)"}}
 """
 
 
@@ -101,7 +101,7 @@ def test_passing_and_failing_expectations(tmp_path, rb):
 
 
 def test_error_code_expectation(rb):
-    case = S.Case(id="x", note="pH as text", evidence={"tag": "INV", "source": "malformed input"},
+    case = S.Case(id="x", note="pH as text", evidence={"tag": "INV", "note": "malformed input"},
                   input={"ph": "seven"}, want=None, want_error_code="input.not_a_number",
                   location=gasrules.errors.Location(), origin="")
     assert S.compare(rb, case, gasrules.interpret(rb, case.input)) == []
@@ -171,7 +171,7 @@ def test_probe_found_by_bisection_over_chloride(rb, tmp_path):
     assert all(p.engine_agrees for p in probes)
     case = S.probe_case(rb, by_side["above"])
     assert case["want"] == {"rules_fired": ["anion_gap.high_gap_acidosis"]}
-    assert case["evidence"]["tag"] == "D" and "Klaestrup" in case["evidence"]["source"]
+    assert case["evidence"]["tag"] == "D" and "klaestrup2011" in case["evidence"]["ref"]
     target = tmp_path / "probes.yaml"
     assert S.write_probes(target, rb, probes) == 2
     written = S.load_case_file(target)

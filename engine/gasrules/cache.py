@@ -23,7 +23,9 @@ from .model import CompiledRulebook
 from .resources import schema_path
 
 _EXTENDS = re.compile(rb"^extends:\s*['\"]?([^'\"\s#]+)", re.M)
-_SHAPERS = ("compiler.py", "codegen.py", "expressions.py", "model.py", "evaluator.py", "trace.py", "overlay.py", "units.py")
+_BIBLIOGRAPHY = re.compile(rb"^bibliography:[ \t]*(.+)$", re.M)
+_SHAPERS = ("compiler.py", "codegen.py", "expressions.py", "model.py", "evaluator.py", "trace.py", "overlay.py", "units.py",
+            "bibliography.py")
 
 
 def cache_dir() -> Path:
@@ -43,17 +45,30 @@ def cache_key(path: str | Path) -> str | None:
         for name in _SHAPERS:
             h.update((here / name).read_bytes())
         h.update(schema_path("rulebook.schema.json").read_bytes())
+        h.update(schema_path("bibliography.schema.json").read_bytes())
         current: Path | None = Path(path).resolve()
         seen: set[Path] = set()
         while current is not None and current not in seen:
             seen.add(current)
             raw = current.read_bytes()
             h.update(str(current).encode() + b"\0" + raw)
+            for bib in _bibliography_files(current, raw):     # the cited bibliography is part of the identity
+                h.update(str(bib).encode() + b"\0" + (bib.read_bytes() if bib.is_file() else b"(missing)"))
             m = _EXTENDS.search(raw)
             current = (current.parent / m.group(1).decode()).resolve() if m else None
     except OSError:
         return None
     return h.hexdigest()
+
+
+def _bibliography_files(rulebook: Path, raw: bytes) -> list[Path]:
+    """The bibliography files a rulebook's top-level `bibliography:` names (one path or a flow list)."""
+    m = _BIBLIOGRAPHY.search(raw)
+    if not m:
+        return []
+    text = m.group(1).split(b"#")[0].strip().strip(b"[]")
+    names = [n.strip().strip(b"'\"") for n in text.split(b",") if n.strip()]
+    return [(rulebook.parent / n.decode("utf-8", "surrogateescape")).resolve() for n in names]
 
 
 def compile_path(path: str | Path) -> CompiledRulebook:

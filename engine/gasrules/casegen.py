@@ -18,14 +18,15 @@ How a case is drawn (one scenario, then values that follow from it):
    high-gap + alkalosis). A normal-gap acidosis together with a metabolic alkalosis is left out:
    both act on chloride and bicarbonate in opposite directions, so the numbers cannot show it.
 2. HCO3 from the metabolic set; PCO2 from the usual secondary response to it (Winter's
-   formula; 0.7 per mmol/L for alkalosis; methods.md 2.2); a respiratory disorder then moves
-   PCO2 and HCO3 together along the acute or chronic slope (methods.md 2.2).
-3. pH by Henderson-Hasselbalch, pH = 6.1 + log10(HCO3 / (0.0307 x PCO2)) (methods.md 2.1),
+   formula, albert1967; 0.7 per mmol/L for alkalosis, berend2014); a respiratory disorder then moves
+   PCO2 and HCO3 together along the acute or chronic slope (adrogue2010).
+   Keys name entries of rulebooks/bibliography.yaml.
+3. pH by Henderson-Hasselbalch, pH = 6.1 + log10(HCO3 / (0.0307 x PCO2)) (nccls1994),
    computed from the values *as reported* (after rounding and any kPa conversion) plus at most
    +/-0.008 of measurement noise, so a consistency check with 0.03 pH tolerance passes.
    About 1 % of cases are then made deliberately inconsistent (transcription-like errors).
 4. Na, Cl and albumin so that Na - (Cl + HCO3) is the scenario's gap after the usual albumin
-   effect (Figge 1998, 0.25 per g/L, methods.md 2.5); optional chemistry, oxygenation and
+   effect (Figge 1998, 0.25 per g/L: figge1998); optional chemistry, oxygenation and
    ventilator data by ward.
 
 Deterministic: one ``random.Random(seed)`` per call, no global random state, no clock.
@@ -108,7 +109,7 @@ _S, _PK, _LN10 = 0.0307, 6.1, math.log(10.0)
 
 
 def hh_ph(hco3: float, pco2_mmhg: float) -> float:
-    """Henderson-Hasselbalch pH from HCO3 (mmol/L) and PCO2 (mmHg); methods.md 2.1."""
+    """Henderson-Hasselbalch pH from HCO3 (mmol/L) and PCO2 (mmHg); S 0.0307 from nccls1994, pK' 6.1 common practice."""
     return _PK + math.log10(hco3 / (_S * pco2_mmhg))
 
 
@@ -454,7 +455,7 @@ def _chemistry(rng: random.Random, v: dict[str, Any], ward: str, metabolic: tupl
         v["ethanol"] = round(5.0 + 55.0 * u(), 1)
     if u() < 0.6:
         v["hb"] = round(_clamp(_normal(u, 12.5, 2.0), 6.0, 18.0), 1)
-    if u() < 0.6:   # analyser SBE, Van Slyke form as in methods.md 2.4 (synthesis)
+    if u() < 0.6:   # analyser SBE, Van Slyke form (siggaard1977)
         v["base_excess"] = round(0.93 * (hco3 - 24.4 + 14.83 * (ph - 7.40)), 1) + 0.0
     if u() < 0.15:
         v["tco2"] = round(hco3 + min(0.03 * pco2_mm, 1.5) + 0.6 * u() - 0.3, 1)

@@ -16,7 +16,7 @@ from __future__ import annotations
 import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any, Iterable, Iterator
 
 from .errors import EngineError, Location, Problem
 from .loader import load_document
@@ -38,6 +38,7 @@ COHORT_CODES: dict[str, str] = {
     "CO-E004": "cohort file names a parameter, input, relation, code or disorder the rulebook does not declare",
     "CO-E005": "duplicate cohort id",
     "CO-E006": "a range or interval is empty or outside the input's plausible range",
+    "CO-E007": "cohort file cites a key its rulebook's bibliography does not declare",
 }
 _DATA_KEYS = ("seed", "size", "constants", "intervals", "relations")
 
@@ -73,6 +74,7 @@ class CohortPlan:
     relations: dict[str, dict[str, Any]]
     cohorts: list[Cohort] = field(default_factory=list)
     locate: Any = None                          # path -> Location in `file`
+    refs: list[tuple[str, tuple[Any, ...]]] = field(default_factory=list)   # (bibliography key, path) cited
 
 
 # ----------------------------------------------------------------------------- loading
@@ -141,7 +143,22 @@ def load_plan(rulebook_path: str | Path, cases_dir: str | Path | None = None) ->
     return CohortPlan(file=defining.file, goal_files=[doc.file for doc in docs], seed=int(d["seed"]),
                       size=int(d["size"]), constants={k: float(v["value"]) for k, v in d["constants"].items()},
                       intervals=d["intervals"], fixed=dict(d.get("fixed") or {}), relations=d["relations"],
-                      cohorts=cohorts, locate=defining.locate)
+                      cohorts=cohorts, locate=defining.locate, refs=list(_refs(d, ())))
+
+
+def _refs(node: Any, path: tuple[Any, ...]) -> Iterator[tuple[str, tuple[Any, ...]]]:
+    """Every bibliography key cited by a `source` or `range_source` in the file, with its path."""
+    if isinstance(node, dict):
+        for k, v in node.items():
+            if k in ("source", "range_source", "fixed_source") and isinstance(v, dict):
+                ref = v.get("ref")
+                for key in ([ref] if isinstance(ref, str) else list(ref or [])):
+                    yield str(key), path + (k, "ref")
+            else:
+                yield from _refs(v, path + (k,))
+    elif isinstance(node, list):
+        for i, v in enumerate(node):
+            yield from _refs(v, path + (i,))
 
 
 def _goals(docs: list[Any]) -> tuple[dict[str, dict[str, float]], dict[str, list[tuple[int, Any]]], list[Problem]]:
@@ -183,6 +200,11 @@ def check_plan(rb: CompiledRulebook, plan: CohortPlan) -> list[Problem]:
     """Names, codes and ranges of the plan against this rulebook, each problem with its location."""
     loc = plan.locate
     problems = []
+    known = rb.bibliography.entries if rb.bibliography is not None else {}
+    for key, path in plan.refs:
+        if key not in known:
+            problems.append(Problem("CO-E007", f"unknown bibliography key '{key}'", loc(path),
+                                    "a key of the rulebook's bibliography"))
     for name, iv in plan.intervals.items():
         for end in ("low", "high"):
             v = iv[end]
@@ -191,7 +213,7 @@ def check_plan(rb: CompiledRulebook, plan: CohortPlan) -> list[Problem]:
                                         f"{rb.id}", loc(("intervals", name, end)), "a numeric parameter name or a number"))
             elif not isinstance(v, str) and "source" not in iv:
                 problems.append(Problem("CO-E002", f"interval {name} gives a literal {end} without a source",
-                                        loc(("intervals", name)), "source: {citation, evidence}"))
+                                        loc(("intervals", name)), "source: {ref, evidence, note}"))
     if not problems:
         problems += _check_ranges(rb, plan, intervals(rb, plan))
     for key, value in plan.fixed.items():

@@ -16,6 +16,7 @@ import json
 from typing import Any, Iterable
 
 from . import __version__
+from .bibliography import Bibliography, check_rulebook_refs, load_bibliographies, with_bibliography
 from .codegen import PLACEHOLDER, _exprs, generate, link
 from .errors import Location, Problem, RulebookError
 from .expressions import CutPoint, Expr, compare_nodes, parse
@@ -77,6 +78,7 @@ def build(res: Resolved) -> CompiledRulebook:
     problems += _check_units(inputs, params, derived, rules)
     problems += _check_fallbacks(inputs, derived)
     problems += _warnings(params, derived, rules)
+    problems += _check_citations(res, params, rules)
     plan, order_problems = _order(derived, rules)
     problems += order_problems
     if any(not p.is_warning for p in problems):
@@ -90,7 +92,8 @@ def build(res: Resolved) -> CompiledRulebook:
         steps=steps, presentation=presentation, display_units=display, plan=plan,
         value_names=value_names, source=source, sha256=sha,
         files=tuple(d.file for d in res.documents), cutpoints=cutpoints,
-        warnings=tuple(p for p in problems if p.is_warning), engine_version=__version__)
+        warnings=tuple(p for p in problems if p.is_warning), engine_version=__version__,
+        bibliography=res.bibliography)
     link(compiled)
     return compiled
 
@@ -541,7 +544,37 @@ def _numbers(data: Any) -> Any:
 
 
 def identity_hash(res: Resolved) -> str:
-    return hashlib.sha256(canonical_json(canonical_content(res))).hexdigest()
+    return with_bibliography(hashlib.sha256(canonical_json(canonical_content(res))).hexdigest(), _bibliography(res))
+
+
+# ----------------------------------------------------------------------------- citations
+
+def _bibliography(res: Resolved) -> Bibliography:
+    """The bibliographies the rulebook chain declares (loaded once per resolved rulebook)."""
+    if res.bibliography is None:
+        res.bibliography, res.bibliography_problems = load_bibliographies(res.documents)
+    return res.bibliography
+
+
+def _source_ref(res: Resolved, name: str, ref: Ref) -> Ref:
+    """Where a parameter's `source` was written: the overlay that overrode it, else its declaration."""
+    set_by = res.param_set_by.get(name)
+    if set_by is not None and set_by.path + ("source",) in set_by.doc.positions:
+        return set_by
+    return ref
+
+
+def _check_citations(res: Resolved, params: dict[str, ParamSpec], rules: list[RuleSpec]) -> list[Problem]:
+    """Every bibliography key a parameter or rule cites must be declared (RB-E050 to RB-E052)."""
+    bib = _bibliography(res)
+    param_refs = [(n, b.get("source") or {}, _source_ref(res, n, ref).loc("source", "ref"))
+                  for n, (b, ref) in res.parameters.items()]
+    rule_refs = [(b.get("id", ""), list((b.get("doc") or {}).get("references") or []), ref.loc("doc", "references"))
+                 for b, ref in res.rules if isinstance(b, dict)]
+    if res.bibliography_problems:       # a bibliography that did not load: its keys cannot be judged
+        return list(res.bibliography_problems)
+    problems, _used = check_rulebook_refs(bib, param_refs, rule_refs)
+    return problems
 
 
 def _display_units(raw: dict[str, Any]) -> dict[str, tuple[str, int | None]]:

@@ -23,6 +23,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from .bibliography import describe, keys_of
+
 __all__ = ["ReviewDocument", "build_document", "impact_summary", "render_markdown", "render_html", "condition_text"]
 
 CAUTION = ("Decision support only: it supports, and never replaces, clinical judgement; local laboratory ranges "
@@ -98,6 +100,28 @@ def _where(loc: Any) -> str:
     return f"{loc.file}:{loc.line}" if getattr(loc, "line", 0) else str(getattr(loc, "file", ""))
 
 
+def _entry_text(rb: Any, key: str) -> str:
+    """A bibliography key as the reader sees it: the key and the publication it names."""
+    entries = getattr(rb.bibliography, "entries", None) or {}
+    return f"[{key}] {describe(entries[key])}" if key in entries else f"[{key}]"
+
+
+def _citation(rb: Any, source: dict[str, Any]) -> str:
+    """A parameter's source: its bibliography keys (with the publications) and its note."""
+    parts = [_entry_text(rb, k) for k in keys_of(source.get("ref"))]
+    if source.get("note"):
+        parts.append(str(source["note"]))
+    return "; ".join(parts)
+
+
+def _reference(rb: Any, item: Any) -> str:
+    """One of a rule's `doc.references`: a key, {ref, note} or {note}, as text."""
+    if isinstance(item, str):
+        return _entry_text(rb, item)
+    text = _entry_text(rb, item["ref"]) if item.get("ref") else ""
+    return f"{text} ({item['note']})" if text else str(item.get("note", ""))
+
+
 def _parameters(rb: Any) -> list[dict[str, Any]]:
     rows = []
     for name, p in rb.parameters.items():
@@ -105,7 +129,8 @@ def _parameters(rb: Any) -> list[dict[str, Any]]:
                      "by": {"input": p.by_input, "values": dict(p.by_values)} if p.by_input else None,
                      "bounds": list(p.bounds) if p.bounds else None,
                      "choices": list(p.choices) if p.choices else None,
-                     "rationale": p.rationale, "citation": p.source.get("citation", ""),
+                     "rationale": p.rationale, "citation": _citation(rb, p.source),
+                     "refs": keys_of(p.source.get("ref")),
                      "evidence": p.source.get("evidence", ""), "set_by": _where(p.set_by),
                      "declared_at": _where(p.location)})
     return rows
@@ -122,7 +147,7 @@ def _rules(rb: Any) -> list[dict[str, Any]]:
             "needs": sorted(r.needs), "stops": r.stop, "disorders": list(r.disorders), "qualifiers": dict(r.qualifiers),
             "findings": [{"code": f.code, "severity": f.severity, "text": f.text} for f in r.findings],
             "concludes": r.doc.get("concludes", ""), "why": r.doc.get("why", ""), "example": r.doc.get("example", ""),
-            "references": list(r.doc.get("references", [])), "where": _where(r.location)})
+            "references": [_reference(rb, item) for item in r.doc.get("references", [])], "where": _where(r.location)})
     return [s for s in steps.values() if s["rules"]]
 
 

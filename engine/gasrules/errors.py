@@ -44,6 +44,10 @@ CODES: dict[str, str] = {
     "RB-E043": "suspension names an unknown rule",
     "RB-E044": "overlay redefines a base id",
     "RB-E045": "parameter value outside its own bounds",
+    # Citations (bibliography)
+    "RB-E050": "bibliography file cannot be read or does not match schemas/bibliography.schema.json",
+    "RB-E051": "unknown bibliography key",
+    "RB-E052": "bibliography key declared twice",
     "RB-E070": "input fallback names an unknown derived value",
     "RB-E071": "input fallback depends on the input it replaces",
     "RB-E072": "input fallback in another unit than its input",

@@ -135,6 +135,7 @@ class CompiledRulebook:
     cutpoints: tuple[CutPoint, ...]
     warnings: tuple[Any, ...] = ()
     engine_version: str = ""
+    bibliography: Any = None               # gasrules.bibliography.Bibliography: the cited publications
     _function: Callable[..., Any] | None = field(default=None, repr=False)
     _static: Any = field(default=None, repr=False)
     _code: bytes | None = field(default=None, repr=False)   # marshalled code of `source` (same Python only)

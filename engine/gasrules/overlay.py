@@ -45,6 +45,8 @@ class Resolved:
     suspensions: list[tuple[str, str, Ref]] = field(default_factory=list)
     documents: list[Document] = field(default_factory=list)
     base_ids: list[str] = field(default_factory=list)
+    bibliography: Any = None            # gasrules.bibliography.Bibliography, loaded by the compiler
+    bibliography_problems: list[Problem] = field(default_factory=list)
 
 
 def load_chain(path: str | Path) -> tuple[list[Document], list[Problem]]:

@@ -171,6 +171,9 @@ def archive_rulebook(archive: Path, rulebook_path: Path, extra_suspensions: Iter
 
     res = resolve_path(Path(rulebook_path))
     doc = flatten_resolved(res, list(extra_suspensions))
+    bibliography = _merged_bibliography(res)
+    if bibliography is not None:
+        doc["bibliography"] = "bibliography.yaml"      # archived beside the rulebook: same identity
     archive = Path(archive)
     archive.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=".incoming-", dir=archive))
@@ -178,6 +181,10 @@ def archive_rulebook(archive: Path, rulebook_path: Path, extra_suspensions: Iter
         text = yaml.safe_dump(doc, sort_keys=False, allow_unicode=True, width=100)
         (tmp / "rulebook.yaml").write_text("# Resolved rulebook archived by gasrules: do not edit.\n" + text,
                                            encoding="utf-8")
+        if bibliography is not None:
+            (tmp / "bibliography.yaml").write_text(
+                "# Bibliography of the archived rulebook: do not edit.\n"
+                + yaml.safe_dump(bibliography, sort_keys=False, allow_unicode=True, width=100), encoding="utf-8")
         rb = load_rulebook(tmp / "rulebook.yaml", cache=False)
         identity = {**rb.identity, "files": [d.file for d in res.documents],
                     "archived": utc_now()}
@@ -191,6 +198,17 @@ def archive_rulebook(archive: Path, rulebook_path: Path, extra_suspensions: Iter
     finally:
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)
+
+
+def _merged_bibliography(res: Any) -> dict[str, Any] | None:
+    """The entries every bibliography of the chain declares, as one bibliography document (None: none)."""
+    from .bibliography import load_bibliographies
+    from .errors import RulebookError
+
+    bib, problems = load_bibliographies(res.documents)
+    if problems:
+        raise RulebookError(problems)
+    return {"format": "gasrules-bibliography/1", "entries": bib.entries} if bib.entries else None
 
 
 def load_archived(archive: Path, sha256: str) -> Any:

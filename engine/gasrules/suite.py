@@ -31,7 +31,7 @@ from .schema import validate_document
 
 CASES_SCHEMA = "cases.schema.json"
 SIDES = ("below", "at", "above")
-EVIDENCE_TAGS = ("S", "M", "D", "CP", "INV")
+EVIDENCE_TAGS = ("S", "SR", "M", "D", "CP", "INV")
 # Codes of problems in case files (never reused for another meaning).
 CASE_CODES: dict[str, str] = {
     "CS-E001": "case file cannot be read or is not valid YAML",
@@ -39,6 +39,7 @@ CASE_CODES: dict[str, str] = {
     "CS-E003": "duplicate case id",
     "CS-E004": "supersedes names a case the base suite does not hold",
     "CS-E005": "case names a rule, disorder, finding or value the rulebook does not declare",
+    "CS-E006": "case evidence cites a key the rulebook's bibliography does not declare",
 }
 _FLIP = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
 _OPS = {"<": lambda a, b: a < b, "<=": lambda a, b: a <= b, ">": lambda a, b: a > b,
@@ -68,6 +69,7 @@ class Case:
     origin: str                     # the rulebook file whose cases/ folder holds it
     probe: dict[str, Any] | None = None
     skip: str | None = None
+    refs: tuple[tuple[str, Location], ...] = ()    # bibliography keys its evidence cites, and where
 
 
 @dataclass
@@ -104,10 +106,46 @@ def load_case_file(path: Path) -> tuple[dict[str, Any] | None, list[Case], list[
     for i, c in enumerate(doc.data["cases"]):
         cases.append(Case(id=c["id"], note=c["note"], evidence=c["evidence"], input=c["input"], want=c.get("want"),
                           want_error_code=c.get("want_error_code"), location=doc.locate(("cases", i)),
-                          origin=str(path), probe=c.get("probe"), skip=c.get("skip")))
+                          origin=str(path), probe=c.get("probe"), skip=c.get("skip"), refs=_evidence_refs(doc, i, c)))
     for j, s in enumerate(doc.data.get("supersedes") or []):
         s["_location"] = doc.locate(("supersedes", j))
     return doc.data, cases, []
+
+
+def _evidence_refs(doc: Any, i: int, case: dict[str, Any]) -> tuple[tuple[str, Location], ...]:
+    """The bibliography keys a case's evidence (and its expected values' evidence) cites, with locations."""
+    from .bibliography import keys_of
+
+    spots: list[tuple[Any, tuple[Any, ...]]] = [(case.get("evidence"), ("cases", i, "evidence"))]
+    for name, v in (((case.get("want") or {}).get("values")) or {}).items():
+        spots.append((v.get("evidence") if isinstance(v, dict) else None, ("cases", i, "want", "values", name, "evidence")))
+    out = []
+    for ev, path in spots:
+        ref = (ev or {}).get("ref")
+        for j, key in enumerate(keys_of(ref)):
+            out.append((key, doc.locate(path + (("ref",) if isinstance(ref, str) else ("ref", j)))))
+    return tuple(out)
+
+
+def check_refs(rb: CompiledRulebook, suite: Suite) -> list[Problem]:
+    """Every bibliography key a case's evidence cites must be declared by the rulebook (CS-E006)."""
+    from .bibliography import Bibliography, unknown_key
+
+    bib = rb.bibliography or Bibliography()
+    return [unknown_key(key, bib, where, "CS-E006") for c in suite.cases for key, where in c.refs if key not in bib]
+
+
+def unused_entries(rb: CompiledRulebook, suite: Suite) -> list[str]:
+    """Bibliography keys nothing cites: no parameter, rule or case of this rulebook and its suite."""
+    from .bibliography import keys_of
+
+    if rb.bibliography is None:
+        return []
+    used = {k for p in rb.parameters.values() for k in keys_of(p.source.get("ref"))}
+    used |= {item if isinstance(item, str) else (item or {}).get("ref")
+             for r in rb.rules for item in (r.doc.get("references") or [])}
+    used |= {key for c in suite.cases for key, _ in c.refs}
+    return sorted(k for k in rb.bibliography.entries if k not in used)
 
 
 def load_suite(rulebook_path: str | Path, cases_dir: str | Path | None = None) -> Suite:
@@ -177,7 +215,7 @@ def check_names(rb: CompiledRulebook, suite: Suite) -> list[Problem]:
         for b in bad:
             out.append(Problem("CS-E005", f"case '{c.id}' names unknown {b}", c.location,
                                f"a name declared by rulebook {rb.id}"))
-    return out
+    return out + check_refs(rb, suite)
 
 
 # ----------------------------------------------------------------------------- running and comparing
@@ -721,21 +759,31 @@ def _confirm(rb: CompiledRulebook, cp: dict[str, Any], side: str, inp: dict[str,
                  fires, bool(actual) == bool(fires))
 
 
-def probe_evidence(rb: CompiledRulebook, cp: dict[str, Any], value: float | None = None) -> dict[str, str]:
+def probe_evidence(rb: CompiledRulebook, cp: dict[str, Any], value: float | None = None) -> dict[str, Any]:
     """Evidence of a probe: the threshold's own source (D when published, CP for common practice)."""
+    from .bibliography import keys_of
+
     name = cp["threshold"]
     if cp["threshold_kind"] == "parameter":
         p = rb.parameters[name]
         tag = "CP" if p.source.get("evidence") == "CP" else "D"
         shown = p.value if value is None else value
         chosen = f" (value chosen by {p.by_input})" if p.by_input and shown != p.value else ""
-        return {"tag": tag, "source": f"Cut-point {name} = {shown:g} {p.unit}{chosen}: {p.source.get('citation', '')}"}
+        note = f"Cut-point {name} = {shown:g} {p.unit}{chosen}" + (f": {p.source['note']}" if p.source.get("note") else "")
+        return _evidence(tag, keys_of(p.source.get("ref")), note)
     if cp["threshold_kind"] == "derived":
         params = sorted({n for n in _param_names(rb, name)})
-        cites = sorted({rb.parameters[n].source.get("citation", "") for n in params})
-        return {"tag": "D", "source": f"Cut-point {name} = {rb.derived[name].expr.text}; "
-                                      + "; ".join(c for c in cites if c)[:600]}
-    return {"tag": "CP", "source": f"Cut-point {cp['quantity']} {cp['op']} {name} as written in rule {cp['owner']}"}
+        keys = list(dict.fromkeys(k for n in params for k in keys_of(rb.parameters[n].source.get("ref"))))
+        return _evidence("D", keys, f"Cut-point {name} = {rb.derived[name].expr.text}"[:600])
+    return {"tag": "CP", "note": f"Cut-point {cp['quantity']} {cp['op']} {name} as written in rule {cp['owner']}"}
+
+
+def _evidence(tag: str, keys: list[str], note: str) -> dict[str, Any]:
+    out: dict[str, Any] = {"tag": tag}
+    if keys:
+        out["ref"] = keys[0] if len(keys) == 1 else keys
+    out["note"] = note
+    return out
 
 
 def _param_names(rb: CompiledRulebook, name: str, seen: frozenset[str] = frozenset()) -> set[str]:

@@ -50,10 +50,16 @@ def verify(rulebook: Optional[Path] = typer.Argument(None, help="Rulebook YAML (
     if name_problems:
         typer.echo(render_problems(name_problems, str(path)), err=True)
         raise typer.Exit(exitcodes.FAILED)
+    unused = S.unused_entries(rb, suite)
+    if unused and not as_json:
+        typer.echo(f"warning: {len(unused)} bibliography entr{'y' if len(unused) == 1 else 'ies'} cited by no "
+                   "parameter, rule or case of this rulebook (another rulebook sharing the file may cite them): "
+                   + ", ".join(unused), err=True)
     results = S.run_suite(rb, suite)
     rules = S.rule_coverage(rb, results, suite.unreachable)
     thresholds = S.threshold_coverage(rb, results, suite.unreachable)
     report: dict[str, Any] = {"rulebook": rb.identity, "summary": S.summary(suite, results),
+                              "uncited_bibliography_entries": unused,
                               "failures": [_failure_json(r) for r in results if r.outcome == "failed"],
                               "superseded": suite.superseded,
                               "rule_coverage": {k: v for k, v in rules.items() if k != "counts"},
