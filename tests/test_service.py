@@ -40,7 +40,8 @@ class Server:
         self.app = app
         cfg = app.config
         self.httpd = make_server(asgi_app(app), "127.0.0.1", 0, request_timeout=cfg.timeout,
-                                 keep_alive=cfg.keep_alive, max_connections=cfg.max_connections)
+                                 keep_alive=cfg.keep_alive, max_connections=cfg.max_connections,
+                                 parser=cfg.http_parser)
         self.port = self.httpd.server_address[1]
         self.thread = threading.Thread(target=self.httpd.serve_forever, daemon=True)
         self.thread.start()

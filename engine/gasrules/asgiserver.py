@@ -1,7 +1,9 @@
-"""The socket layer of `gasrules serve`: uvicorn with its h11 parser, plus two guards it lacks.
+"""The socket layer of `gasrules serve`: uvicorn with one of its parsers, plus guards it lacks.
 
-uvicorn parses HTTP with h11, which refuses differing duplicate or non-digit ``Content-Length``
-(400) and merges identical duplicates, as RFC 9110 allows. uvicorn has no deadline on reading a
+uvicorn parses HTTP with httptools (llhttp, Node.js's parser; the default, measured faster by
+tools/bench_serve.py) or h11 (pure Python; ``serve.http_parser: h11``). Both refuse a
+non-digit or differing duplicate ``Content-Length`` with 400; h11 merges identical duplicates,
+as RFC 9110 allows, llhttp refuses them too. uvicorn has no deadline on reading a
 request's headers, and its keep-alive timer stops at the first byte of the next request, so a
 client sending a byte every few seconds would hold its connection for ever. The protocol here
 adds:
@@ -50,8 +52,37 @@ def raw_error(status: int, reason: str, code: str, message: str,
     return ("\r\n".join(head) + "\r\n\r\n").encode("ascii") + body
 
 
-class GuardedH11Protocol(H11Protocol):
-    """uvicorn's h11 protocol with a request deadline and a connection cap (class attributes
+class _CoalescingTransport:
+    """A transport whose writes in one event-loop turn leave in one send: a response's status
+    line, headers and body are written by separate calls, which would otherwise cost a system
+    call (and a TCP segment) each."""
+
+    def __init__(self, transport: asyncio.Transport, loop: asyncio.AbstractEventLoop) -> None:
+        self._transport, self._loop = transport, loop
+        self._pending: list[bytes] = []
+
+    def write(self, data: bytes) -> None:
+        if not self._pending:
+            self._loop.call_soon(self._flush)
+        self._pending.append(bytes(data))
+
+    def _flush(self) -> None:
+        if self._pending:
+            data = b"".join(self._pending)
+            self._pending.clear()
+            if not self._transport.is_closing():
+                self._transport.write(data)
+
+    def close(self) -> None:
+        self._flush()
+        self._transport.close()
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._transport, name)
+
+
+class GuardMixin:
+    """A request deadline and a connection cap for uvicorn's HTTP protocols (class attributes
     set by :func:`protocol_class`)."""
 
     request_timeout: float = 10.0
@@ -59,6 +90,7 @@ class GuardedH11Protocol(H11Protocol):
 
     def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
         super().connection_made(transport)
+        self.transport = _CoalescingTransport(transport, self.loop)  # type: ignore[assignment]
         self._deadline: asyncio.TimerHandle | None = None
         self._graced = False
         self._started = time.monotonic()
@@ -124,16 +156,35 @@ class GuardedH11Protocol(H11Protocol):
         if active:
             cycle.disconnected = True
             cycle.message_event.set()
-        if self.conn.our_state != h11.ERROR:
+        conn = getattr(self, "conn", None)
+        if isinstance(conn, h11.Connection) and conn.our_state != h11.ERROR:
             try:
-                self.conn.send(h11.ConnectionClosed())
+                conn.send(h11.ConnectionClosed())
             except h11.LocalProtocolError:
                 pass
         self.transport.close()
 
 
-def protocol_class(request_timeout: float, max_connections: int) -> type[GuardedH11Protocol]:
-    return type("GasrulesH11Protocol", (GuardedH11Protocol,),
+class GuardedH11Protocol(GuardMixin, H11Protocol):
+    """uvicorn's h11 protocol, guarded."""
+
+
+def _httptools_protocol() -> type | None:
+    try:
+        from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
+    except ImportError:
+        return None
+    return type("GuardedHttpToolsProtocol", (GuardMixin, HttpToolsProtocol), {})
+
+
+def protocol_class(request_timeout: float, max_connections: int, parser: str = "httptools"
+                   ) -> type:
+    """The guarded protocol on ``parser``: ``httptools`` (llhttp, the default; faster) or
+    ``h11`` (pure Python)."""
+    base = _httptools_protocol() if parser == "httptools" else GuardedH11Protocol
+    if base is None:
+        raise ValueError("the httptools parser is not installed")
+    return type("GasrulesHttpProtocol", (base,),
                 {"request_timeout": request_timeout, "max_connections": max_connections})
 
 
@@ -151,12 +202,12 @@ class BoundServer:
     ``shutdown`` asks it to stop and waits; ``server_address`` is the bound (host, port)."""
 
     def __init__(self, app: Any, sock: socket.socket, *, request_timeout: float,
-                 keep_alive: float, max_connections: int,
+                 keep_alive: float, max_connections: int, parser: str = "httptools",
                  ssl_certfile: str | None = None, ssl_keyfile: str | None = None) -> None:
         self.socket = sock
         self.server_address = sock.getsockname()[:2]
         self.config = uvicorn.Config(
-            app, http=protocol_class(request_timeout, max_connections), loop="asyncio",
+            app, http=protocol_class(request_timeout, max_connections, parser), loop="asyncio",
             lifespan="on", ws="none", interface="asgi3", log_config=None, access_log=False,
             server_header=False, proxy_headers=False, timeout_keep_alive=max(1, round(keep_alive)),
             h11_max_incomplete_event_size=MAX_HEADER_BYTES, timeout_graceful_shutdown=5,
@@ -187,11 +238,14 @@ class BoundServer:
 
 
 def make_server(app: Any, host: str, port: int, *, request_timeout: float, keep_alive: float,
-                max_connections: int, ssl_certfile: str | None = None,
+                max_connections: int, parser: str = "httptools", ssl_certfile: str | None = None,
                 ssl_keyfile: str | None = None) -> BoundServer:
     """Bind ``host:port`` (0 picks a free port) and wrap the ASGI ``app``. Raises OSError."""
     family = socket.AF_INET6 if ":" in host else socket.AF_INET
-    sock = socket.socket(family, socket.SOCK_STREAM)
+    # IPPROTO_TCP explicitly: asyncio turns Nagle off (TCP_NODELAY) only on sockets whose
+    # protocol says TCP; with Nagle on, a response's body waits ~40 ms behind its headers.
+    sock = socket.socket(family, socket.SOCK_STREAM, socket.IPPROTO_TCP)
+    sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
     sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
     try:
         sock.bind((host, port))
@@ -201,5 +255,5 @@ def make_server(app: Any, host: str, port: int, *, request_timeout: float, keep_
         raise
     sock.setblocking(False)
     return BoundServer(app, sock, request_timeout=request_timeout, keep_alive=keep_alive,
-                       max_connections=max_connections, ssl_certfile=ssl_certfile,
+                       max_connections=max_connections, parser=parser, ssl_certfile=ssl_certfile,
                        ssl_keyfile=ssl_keyfile)

@@ -27,6 +27,7 @@ cds_keys            none                         CDS Hooks key configuration fil
 cds_window_minutes  0                            0-1440
 feedback_log        cds-feedback.jsonl           a file path
 access_log          true                         true or false (JSON log line per request)
+http_parser         httptools                    httptools (llhttp) or h11 (pure Python)
 tls_certfile        none                         PEM certificate chain (uvicorn serves TLS)
 tls_keyfile         none                         PEM private key
 ==================  ===========================  ===========================================
@@ -52,7 +53,7 @@ SERVE_KEYS: dict[str, tuple[str, float, float]] = {
     "response_floor": ("int", 1024, 1 << 31), "response_ratio": ("int", 1, 100_000),
     "cors_origins": ("list", 0, 0), "cds_keys": ("path", 0, 0),
     "cds_window_minutes": ("float", 0, 1440), "feedback_log": ("path", 0, 0),
-    "access_log": ("bool", 0, 0), "tls_certfile": ("path", 0, 0), "tls_keyfile": ("path", 0, 0),
+    "access_log": ("bool", 0, 0), "http_parser": ("parser", 0, 0), "tls_certfile": ("path", 0, 0), "tls_keyfile": ("path", 0, 0),
 }
 
 
@@ -60,7 +61,7 @@ def _accepted(kind: str, low: float, high: float) -> str:
     return {"int": f"a whole number from {low:g} to {high:g}",
             "float": f"a number from {low:g} to {high:g}", "str": "a non-empty string",
             "path": "a file path", "bool": "true or false",
-            "list": "a list of strings"}[kind]
+            "list": "a list of strings", "parser": "httptools or h11"}[kind]
 
 
 def convert(key: str, value: Any, where: str, base: Path | None) -> Any:
@@ -88,6 +89,8 @@ def convert(key: str, value: Any, where: str, base: Path | None) -> Any:
         return tuple(value)
     if not isinstance(value, str) or not value.strip():
         raise bad(f"{value!r} is not a non-empty string")
+    if kind == "parser" and value not in ("httptools", "h11"):
+        raise bad(f"unknown parser {value!r}")
     if kind == "path":
         path = Path(value).expanduser()
         return str(path if path.is_absolute() or base is None else base / path)

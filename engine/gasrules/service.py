@@ -78,6 +78,7 @@ class ServiceConfig:
     response_floor: int = 8 * 1024 * 1024   # response bytes always allowed ...
     response_ratio: int = 64                # ... plus this many per request byte
     cors_origins: tuple[str, ...] = ()      # browser origins allowed to call ("*" for any)
+    http_parser: str = "httptools"          # or "h11"
     tls_certfile: str | None = None
     tls_keyfile: str | None = None
     settings: str | None = None      # site settings file (strict mode, decision records, shadow)

@@ -101,7 +101,7 @@ def serve(
         server = make_server(asgi_app(service), config.host, config.port,
                              request_timeout=config.timeout, keep_alive=config.keep_alive,
                              max_connections=config.max_connections,
-                             ssl_certfile=config.tls_certfile, ssl_keyfile=config.tls_keyfile)
+                             parser=config.http_parser, ssl_certfile=config.tls_certfile, ssl_keyfile=config.tls_keyfile)
     except OSError as exc:
         service.close()
         typer.echo(f"gasrules serve: cannot listen on {config.host}:{config.port}: "
