@@ -47,7 +47,7 @@ _ERR_BY_CODE = {"hl7.value_type": ERR_DATA_TYPE, "value.not_a_number": ERR_DATA_
                 "value.wrong_type": ERR_DATA_TYPE, "unit.unknown": ERR_TABLE_VALUE,
                 "status.missing": ERR_TABLE_VALUE, "value.missing": ERR_REQUIRED,
                 "hl7.no_msh": ERR_SEGMENT, "hl7.bad_segment": ERR_SEGMENT,
-                "hl7.message_type": ERR_MESSAGE_TYPE}
+                "hl7.message_type": ERR_MESSAGE_TYPE, "hl7.no_control_id": ERR_REQUIRED}
 _PATH = re.compile(r"(?P<seg>[A-Z][A-Z0-9]{2})\[(?P<seq>\d+)\](?:-(?P<field>\d+))?")
 
 
