@@ -172,8 +172,24 @@ def incoming_from_hl7(raw: bytes, catalog: Any, label: str = "message",
                         control_id=control)
     read = case_from_hl7(text, catalog, allow_preliminary=allow_preliminary)
     case = read.case if read.ok else _rejected(read.issues, read.control_id or label)
-    return Incoming(case, read.issues, "hl7", read.sources, control_id=read.control_id,
-                    patient_id=read.patient_id, effective=read.observed_at)
+    return Incoming(case, read.issues, "hl7", {}, control_id=read.control_id,
+                    patient_id=read.patient_id, effective=fhir_datetime(read.observed_at))
+
+
+def fhir_datetime(ts: str | None) -> str | None:
+    """An HL7 v2 timestamp as a FHIR dateTime: with its time only when it carries a time
+    zone (FHIR requires one with a time), else the date alone; None when unreadable."""
+    import re
+
+    m = re.fullmatch(r"(\d{4})(\d{2})?(\d{2})?(?:(\d{2})(\d{2})(\d{2})?(?:\.\d+)?)?"
+                     r"([+-]\d{4})?", (ts or "").strip())
+    if m is None:
+        return None
+    year, month, day, hh, mm, ss, zone = m.groups()
+    date = "-".join(x for x in (year, month, day if month else None) if x)
+    if hh is None or zone is None or day is None:
+        return date
+    return f"{date}T{hh}:{mm}:{ss or '00'}{zone[:3]}:{zone[3:]}"
 
 
 def read_fhir_text(text: str, catalog: Any, where: str = "",

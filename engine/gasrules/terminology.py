@@ -38,6 +38,7 @@ class Code:
     source: str            # the public source, or why we are confident / what is unverified
 
 
+_THO = "http://terminology.hl7.org/CodeSystem/"
 _LOINC_PUBLIC = ("LOINC term name as used in public code listing LOINC codes, confirmed by two "
                  "independent files; not yet checked against the LOINC table (Loinc.csv)")
 
@@ -55,6 +56,35 @@ CODES: tuple[Code, ...] = (
          "from memory; not verified against a SNOMED CT release"),
     Code(SNOMED, "20165001", "Respiratory alkalosis", "disorder respiratory_alkalosis", "memory",
          "from memory; not verified against a SNOMED CT release"),
+    # Codes from HL7 terminology on every FHIR result (the structure, not the clinical content).
+    Code(_THO + "observation-category", "laboratory", "Laboratory", "Observation.category",
+         "memory", "from memory (FHIR R4 observation-category code system)"),
+    Code(_THO + "v2-0074", "LAB", "Laboratory", "DiagnosticReport.category", "memory",
+         "from memory (HL7 table 0074, diagnostic service section)"),
+    Code(_THO + "v3-ObservationInterpretation", "A", "Abnormal", "finding of severity warning",
+         "public", "terminology.hl7.org CodeSystem v3-ObservationInterpretation page"),
+    Code(_THO + "v3-ObservationInterpretation", "AA", "Critical abnormal",
+         "finding of severity critical", "public",
+         "terminology.hl7.org CodeSystem v3-ObservationInterpretation page"),
+    Code(_THO + "v3-DataOperation", "CREATE", "create", "Provenance.activity", "memory",
+         "from memory"),
+    Code(_THO + "provenance-participant-type", "assembler", "Assembler",
+         "Provenance.agent.type", "memory", "from memory"),
+    # HL7 v2 tables on acknowledgements and result messages.
+    Code("HL7 table 0008", "AA", "Application Accept", "MSA-1", "memory", "from memory"),
+    Code("HL7 table 0008", "AE", "Application Error", "MSA-1", "memory", "from memory"),
+    Code("HL7 table 0008", "AR", "Application Reject", "MSA-1", "memory", "from memory"),
+    Code("HL7 table 0357", "100", "Segment sequence error", "ERR-3", "memory", "from memory"),
+    Code("HL7 table 0357", "101", "Required field missing", "ERR-3", "memory", "from memory"),
+    Code("HL7 table 0357", "102", "Data type error", "ERR-3", "memory", "from memory"),
+    Code("HL7 table 0357", "103", "Table value not found", "ERR-3", "memory", "from memory"),
+    Code("HL7 table 0357", "200", "Unsupported message type", "ERR-3", "memory", "from memory"),
+    Code("HL7 table 0357", "207", "Application internal error", "ERR-3", "memory",
+         "from memory"),
+    Code("HL7 table 0211", "UNICODE UTF-8", "UTF-8", "MSH-18 of result messages", "memory",
+         "from memory; MSH-18 values read are listed in gasrules.hl7wire.CHARSETS"),
+    Code("HL7 table 0085", "P", "Preliminary results", "OBX-11 and OBR-25 of result messages",
+         "memory", "from memory"),
 )
 
 # Derived values and disorders left to the project CodeSystems on purpose, with the reason
