@@ -384,6 +384,7 @@ def test_openapi_describes_every_route_and_method(server: Server) -> None:
         path = "/" + "/".join(pattern)
         assert path in doc["paths"], path
         assert set(doc["paths"][path]) == {m.lower() for m in methods}
+    assert {"/ready", "/metrics"} <= set(doc["paths"])      # served by the ASGI layer
     from jsonschema import Draft202012Validator
     for name, schema in doc["components"]["schemas"].items():
         Draft202012Validator.check_schema(schema), name
@@ -392,6 +393,7 @@ def test_openapi_describes_every_route_and_method(server: Server) -> None:
 def test_real_responses_match_the_openapi_schemas(server: Server) -> None:
     _, doc = server.json("GET", "/openapi.json")
     _openapi_validator(doc, "Health").validate(server.json("GET", "/health")[1])
+    _openapi_validator(doc, "Ready").validate(server.json("GET", "/ready")[1])
     _openapi_validator(doc, "Result").validate(server.json("POST", "/interpret", DEMO_CASE)[1])
     _openapi_validator(doc, "Error").validate(server.json("GET", "/nowhere")[1])
     _openapi_validator(doc, "CdsDiscovery").validate(server.json("GET", "/cds-services")[1])

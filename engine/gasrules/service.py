@@ -41,7 +41,7 @@ import traceback
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
-from typing import Any, Protocol
+from typing import Any
 
 import orjson
 
@@ -79,6 +79,7 @@ class ServiceConfig:
     response_ratio: int = 64                # ... plus this many per request byte
     cors_origins: tuple[str, ...] = ()      # browser origins allowed to call ("*" for any)
     http_parser: str = "httptools"          # or "h11"
+    codesystem_url: str | None = None      # project CodeSystem base (interfaces: settings)
     tls_certfile: str | None = None
     tls_keyfile: str | None = None
     settings: str | None = None      # site settings file (strict mode, decision records, shadow)
@@ -101,99 +102,13 @@ class HttpError(Exception):
         self.headers = dict(headers or {})
 
 
-# ============================================================================ interpretation
-class Interpreter(Protocol):
-    """What the service needs from the engine: the plain engine or the change-control Runtime."""
-
-    rulebook: Any
-
-    def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]: ...
-
-    def record(self, case: Any, result: dict[str, Any]) -> None: ...
-
-    def describe(self) -> dict[str, Any]: ...
-
-    def close(self) -> None: ...
-
-
-class EngineInterpreter:
-    """The plain engine: no strict mode, no decision records, no shadow rulebook."""
-
-    def __init__(self, rulebook: Any) -> None:
-        self.rulebook = rulebook
-
-    def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
-        from .evaluator import interpret
-
-        return interpret(self.rulebook, case, trace)
-
-    def record(self, case: Any, result: dict[str, Any]) -> None:
-        return None
-
-    def describe(self) -> dict[str, Any]:
-        return {"mode": "engine", "strict": False, "decision_records": False, "shadow": None}
-
-    def close(self) -> None:
-        return None
-
-
-class RuntimeInterpreter:
-    """The change-control :class:`~gasrules.runtime.Runtime`: strict mode (checked once, when
-    it is opened), suspensions, decision records and the shadow candidate. Shadow comparison
-    keeps counters, so calls are serialised while shadowing; decision logs lock themselves."""
-
-    def __init__(self, runtime: Any) -> None:
-        self.runtime = runtime
-        self.rulebook = runtime.rulebook
-        self._lock = threading.Lock() if runtime.shadowing else None
-
-    def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
-        if self._lock is None:
-            return self.runtime.interpret(case, trace)
-        with self._lock:
-            return self.runtime.interpret(case, trace)
-
-    def record(self, case: Any, result: dict[str, Any]) -> None:
-        self.runtime.record(case, result)
-
-    def describe(self) -> dict[str, Any]:
-        rt, settings = self.runtime, self.runtime.settings
-        adm = rt.admission
-        cand = rt.candidate
-        return {"mode": "runtime", "strict": settings.strict,
-                "decision_records": rt.records_decisions,
-                "shadow": dict(cand.identity) if cand is not None else None,
-                "approved_sha256": adm.approved_sha256,
-                "release_manifest": adm.manifest.name if adm.manifest else None,
-                "suspended_rules": [rule for rule, _ in adm.suspended_rules],
-                "settings_from": list(settings.sources)}
-
-    def close(self) -> None:
-        self.runtime.close()
-
-
-def _settings_apply(config: "ServiceConfig", environ: Mapping[str, str]) -> bool:
-    return config.settings is not None or config.strict or any(
-        k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in environ)
-
-
-def make_interpreter(config: ServiceConfig, environ: Mapping[str, str] | None = None
-                     ) -> Interpreter:
-    """The Runtime when site settings apply (``config.settings``, ``config.strict`` or GASRULES_*
-    variables), else the plain engine. Raises RulebookError, RuntimeRefusal, SettingsError."""
-    import os
-
-    environ = os.environ if environ is None else environ
-    if not _settings_apply(config, environ):
-        import gasrules
-
-        return EngineInterpreter(gasrules.load_rulebook(config.rulebook))
-    from .runtime import Runtime
-    from .settings import load_settings
-
-    settings = load_settings(config.settings, env=environ,
-                             strict=True if config.strict else None)
-    return RuntimeInterpreter(Runtime.from_settings(settings, config.rulebook))
+# The interpreters moved to gasrules.interpreters; re-exported here for existing callers.
+from .interpreters import (  # noqa: E402
+    EngineInterpreter,
+    Interpreter,
+    RuntimeInterpreter,
+    make_interpreter,
+)
 
 
 # ============================================================================ helpers
@@ -446,8 +361,10 @@ class App:
                      effective: str | None, issues: Any) -> dict[str, Any]:
         from .fhir import result_to_fhir
 
+        extra = {"codesystem_url": self.config.codesystem_url} \
+            if self.config.codesystem_url else {}
         bundle = result_to_fhir(result, refs, rulebook_info=result.get("rulebook") or
-                                self.rulebook, subject=subject, effective=effective)
+                                self.rulebook, subject=subject, effective=effective, **extra)
         if issues:
             severity = {"error": "error", "warning": "warning", "notice": "information"}
             bundle["entry"].append({"fullUrl": f"urn:uuid:{_uuid()}", "resource": {

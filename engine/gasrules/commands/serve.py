@@ -77,8 +77,11 @@ def serve(
         "max_connections": max_connections, "max_concurrency": max_concurrency,
         "cors_origins": tuple(cors_origin) if cors_origin else None, "access_log": access_log}
     try:
+        from ..interfaces import interfaces_section
+
         values = {**serve_section(settings),
-                  **{k: v for k, v in flags.items() if v is not None}}
+                  **{k: v for k, v in flags.items() if v is not None},
+                  "codesystem_url": interfaces_section(settings).codesystem_url}
         config = ServiceConfig(rulebook=str(rulebook) if rulebook else None,
                                settings=str(settings) if settings else None, strict=strict,
                                **values)
