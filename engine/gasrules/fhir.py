@@ -552,24 +552,14 @@ def _notes(result: Mapping[str, Any]) -> list[str]:
     return notes
 
 
-def _disorder_codings(d: str, cs: Mapping[str, str]) -> list[dict[str, Any]]:
-    from .terminology import SNOMED, disorder_snomed
-
-    codings: list[dict[str, Any]] = [{"system": cs["disorder"], "code": d}]
-    known = disorder_snomed(d)
-    if known is not None:
-        codings.append({"system": SNOMED, "code": known.code, "display": known.display})
-    return codings
-
-
 def _components(result: Mapping[str, Any], inputs: set[str],
                 cs: Mapping[str, str]) -> list[dict[str, Any]]:
-    from .terminology import LOINC, value_loinc
+    from .terminology import disorder_codings, value_codings
 
     out: list[dict[str, Any]] = []
     qualifiers = result.get("qualifiers") or {}
     for d in result.get("disorders") or []:
-        concept: dict[str, Any] = {"coding": _disorder_codings(d, cs)}
+        concept: dict[str, Any] = {"coding": disorder_codings(d, cs["disorder"])}
         if d in qualifiers:
             concept["coding"].append({"system": cs["qualifier"], "code": str(qualifiers[d])})
         out.append({"code": {"coding": [{"system": cs["report"], "code": "disorder"}],
@@ -595,12 +585,8 @@ def _components(result: Mapping[str, Any], inputs: set[str],
         unit = units.get(name)
         if unit:
             quantity.update({"unit": unit, "system": UCUM_SYSTEM, "code": unit})
-        codings: list[dict[str, Any]] = [{"system": cs["value"], "code": name}]
-        standard = value_loinc(name)
-        if standard is not None:
-            codings.insert(0, {"system": LOINC, "code": standard.code,
-                               "display": standard.display})
-        out.append({"code": {"coding": codings, "text": name}, "valueQuantity": quantity})
+        out.append({"code": {"coding": value_codings(name, cs["value"]), "text": name},
+                    "valueQuantity": quantity})
     return out
 
 
@@ -610,7 +596,9 @@ def _disorder_text(disorder: str, qualifiers: Mapping[str, Any]) -> str:
 
 
 def _conclusion_codes(result: Mapping[str, Any], cs: Mapping[str, str]) -> list[dict[str, Any]]:
-    codes = [{"coding": _disorder_codings(d, cs),
+    from .terminology import disorder_codings
+
+    codes = [{"coding": disorder_codings(d, cs["disorder"]),
               "text": _disorder_text(d, result.get("qualifiers") or {})}
              for d in result.get("disorders") or []]
     codes += [{"coding": [{"system": cs["finding"], "code": f["code"]}],

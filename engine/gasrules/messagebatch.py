@@ -15,6 +15,7 @@ N cases in, N out; output goes to a temporary file renamed into place at the end
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import tempfile
@@ -121,7 +122,7 @@ def _messages_to_table(rb: Any, source: str | Path, target: str, options: BatchO
         with os.fdopen(handle, "w", encoding="utf-8") as f:
             for incoming in read_incoming(str(source), fmt, rb.inputs):
                 f.write(json.dumps(incoming.case, ensure_ascii=False) + "\n")
-        plain = BatchOptions(**{**options.__dict__, "in_format": "jsonl"})
+        plain = dataclasses.replace(options, in_format="jsonl")
         return run_batch(rb, tmp, target, plain, hooks)
     finally:
         Path(tmp).unlink(missing_ok=True)

@@ -20,7 +20,7 @@ from dataclasses import dataclass
 from typing import Any
 
 __all__ = ["CODES", "Code", "DEFAULT_BASE", "LOINC", "SNOMED", "codesystem_bundle",
-           "disorder_snomed", "value_loinc"]
+           "disorder_codings", "disorder_snomed", "value_codings", "value_loinc"]
 
 LOINC = "http://loinc.org"
 SNOMED = "http://snomed.info/sct"
@@ -113,6 +113,22 @@ def disorder_snomed(name: str) -> Code | None:
 
 
 _BY_USE = {c.used_for: c for c in CODES}
+
+
+def value_codings(name: str, project_system: str) -> list[dict[str, Any]]:
+    """FHIR codings of a derived value: LOINC first when known, then the project code."""
+    known = value_loinc(name)
+    own = {"system": project_system, "code": name}
+    return [{"system": LOINC, "code": known.code, "display": known.display}, own] \
+        if known is not None else [own]
+
+
+def disorder_codings(name: str, project_system: str) -> list[dict[str, Any]]:
+    """FHIR codings of a disorder: the project code, then SNOMED CT when known."""
+    known = disorder_snomed(name)
+    own = {"system": project_system, "code": name}
+    return [own, {"system": SNOMED, "code": known.code, "display": known.display}] \
+        if known is not None else [own]
 
 
 def _concepts(codes: dict[str, str]) -> list[dict[str, Any]]:
