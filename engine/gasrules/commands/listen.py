@@ -20,9 +20,9 @@ def listen(
     settings: Optional[Path] = typer.Option(None, "--settings", help="Site settings file: "
                                             "interfaces.listen (and facility) set the options "
                                             "below; strict mode, decision records also apply."),
-    host: Optional[str] = typer.Option(None, help="Address to listen on [default: 127.0.0.1]."),
+    host: Optional[str] = typer.Option(None, help="Address to listen on (default 127.0.0.1)."),
     port: Optional[int] = typer.Option(None, min=0, max=65535, help="TCP port; 0 picks a free "
-                                       "one [default: 2575]."),
+                                       "one (default 2575)."),
     outbox: Optional[Path] = typer.Option(None, "--outbox", help="Folder where each result "
                                           "ORU^R01 is filed (required here or in settings)."),
     forward: Optional[str] = typer.Option(None, "--forward", help="HOST:PORT of an MLLP "

@@ -18,9 +18,9 @@ _CAUTION = ("Decision support only: it supports, and never replaces, clinical ju
 
 @app.command()
 def serve(
-    host: Optional[str] = typer.Option(None, help="Address to listen on [default: 127.0.0.1]."),
+    host: Optional[str] = typer.Option(None, help="Address to listen on (default 127.0.0.1)."),
     port: Optional[int] = typer.Option(None, min=0, max=65535, help="TCP port; 0 picks a free "
-                                       "one [default: 8080]."),
+                                       "one (default 8080)."),
     rulebook: Optional[Path] = typer.Option(None, help="Rulebook YAML (default: the shipped "
                                                        "adult rulebook)."),
     cds_keys: Optional[Path] = typer.Option(None, "--cds-keys", help="CDS Hooks client key "
@@ -28,32 +28,32 @@ def serve(
                                             "endpoints take no bearer token."),
     max_body: Optional[int] = typer.Option(None, "--max-body", min=1024, max=1 << 30,
                                            help="Largest accepted request body, in bytes "
-                                                "[default: 1048576]."),
+                                                "(default 1048576)."),
     timeout: Optional[float] = typer.Option(None, min=0.1, max=3600, help="Seconds from a "
                                             "request's first byte to the end of its body, and to "
-                                            "finish a batch [default: 10]."),
+                                            "finish a batch (default 10)."),
     max_batch: Optional[int] = typer.Option(None, "--max-batch", min=1, help="Most cases in one "
-                                            "batch request [default: 10000]."),
+                                            "batch request (default 10000)."),
     feedback_log: Optional[Path] = typer.Option(None, "--feedback-log", help="JSON Lines file "
-                                                "for issued cards and CDS feedback [default: "
-                                                "cds-feedback.jsonl]."),
+                                                "for issued cards and CDS feedback (default "
+                                                "cds-feedback.jsonl)."),
     cds_window: Optional[float] = typer.Option(None, "--cds-window", min=0, max=1440,
                                                help="Minutes before the blood gas within which "
-                                                    "other prefetched results are used [default: "
-                                                    "0, same collection time only]."),
+                                                    "other prefetched results are used (default "
+                                                    "0: same collection time only)."),
     max_connections: Optional[int] = typer.Option(None, "--max-connections", min=1,
                                                   max=100_000, help="Open connections; more get "
-                                                  "503 [default: 1024]."),
+                                                  "503 (default 1024)."),
     max_concurrency: Optional[int] = typer.Option(None, "--max-concurrency", min=1, max=10_000,
                                                   help="API requests in progress; more get 503; "
                                                        "/health, /ready, /metrics exempt "
-                                                       "[default: 64]."),
+                                                       "(default 64)."),
     cors_origin: Optional[list[str]] = typer.Option(None, "--cors-origin", help="A browser "
                                                     "origin allowed to call (repeatable; * for "
                                                     "any)."),
     access_log: Optional[bool] = typer.Option(None, "--access-log/--no-access-log",
                                               help="One JSON log line per request on stderr "
-                                                   "[default: on]."),
+                                                   "(default on)."),
     settings: Optional[Path] = typer.Option(None, "--settings", help="Site settings file: its "
                                             "serve: section sets the options above; strict "
                                             "mode, decision records, shadow candidate. GASRULES_* "
