@@ -148,6 +148,28 @@ def jwt_verify_cost(n: int = 300) -> list[str]:
     return out
 
 
+def cpu_seconds(pid: int) -> float | None:
+    """User + system CPU time of a process so far (Linux /proc; None elsewhere)."""
+    try:
+        fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    except OSError:
+        return None
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+def _measured(proc: subprocess.Popen[str], port: int, spec: Any, clients: int,
+              seconds: float) -> dict[str, Any]:
+    """One run, plus the server's CPU milliseconds per answered request: a figure that does not
+    depend on how much of a shared machine the server was given."""
+    before = cpu_seconds(proc.pid)
+    r = asyncio.run(_level("127.0.0.1", port, spec, clients, seconds))
+    after = cpu_seconds(proc.pid)
+    r["cpu_ms"] = ((after - before) * 1000 / r["requests"]
+                   if before is not None and after is not None and r["requests"] else
+                   float("nan"))
+    return r
+
+
 def _median(values: list[float]) -> float:
     import statistics
 
@@ -193,25 +215,30 @@ def main(argv: list[str] | None = None) -> int:
               f"{os.cpu_count()} CPUs; {args.seconds:g} s per run, median of {args.runs} runs "
               "(servers alternate run by run); each server in its own process, asyncio "
               "keep-alive clients")
+        print(f"load average before: {os.getloadavg()[0]:.2f} (other work on the machine "
+              "takes CPU from both servers; 'cpu ms/req' is the server's own CPU time per "
+              "request, which does not depend on it)")
         print(f"{'endpoint':<18} {'clients':>7} {'server':<6} {'req/s':>9} {'p50 ms':>8} "
-              f"{'p99 ms':>8} {'non-200':>7} {'vs old':>7}")
+              f"{'p99 ms':>8} {'cpu ms/req':>10} {'non-200':>7} {'vs old':>7}")
         for name in chosen:
             for n in levels:
                 runs: dict[str, list[dict[str, Any]]] = {k: [] for k in servers}
                 for _ in range(args.runs):
                     for kind in servers:
-                        port = procs[kind][1]
-                        runs[kind].append(asyncio.run(_level(host, port, specs[name], n,
-                                                             args.seconds)))
+                        proc, port = procs[kind]
+                        runs[kind].append(_measured(proc, port, specs[name], n, args.seconds))
                 med = {k: {m: _median([r[m] for r in rs]) for m in
-                           ("rps", "p50_ms", "p99_ms", "errors")} for k, rs in runs.items()}
+                           ("rps", "p50_ms", "p99_ms", "errors", "cpu_ms")}
+                       for k, rs in runs.items()}
                 for kind in servers:
                     r = med[kind]
                     ratio = (f"{r['rps'] / med['old']['rps']:.2f}x" if "old" in med and
                              kind != "old" else "")
                     rows.append({"endpoint": name, "clients": n, "server": kind, **r})
                     print(f"{name:<18} {n:>7} {kind:<6} {r['rps']:>9.0f} {r['p50_ms']:>8.2f} "
-                          f"{r['p99_ms']:>8.2f} {r['errors']:>7.0f} {ratio:>7}", flush=True)
+                          f"{r['p99_ms']:>8.2f} {r['cpu_ms']:>10.3f} {r['errors']:>7.0f} "
+                          f"{ratio:>7}", flush=True)
+        print(f"load average after: {os.getloadavg()[0]:.2f}")
     finally:
         for proc, _ in procs.values():
             proc.terminate()

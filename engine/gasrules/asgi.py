@@ -10,8 +10,8 @@ counts it for ``/metrics``, and before the application sees a body:
 * refuses a chunked body or one without ``Content-Length`` (``411``) and a body above
   ``max_body`` (``413``, after reading and dropping it when it is small enough for the client to
   still read the answer);
-* answers ``408`` when the body has not arrived by the request deadline (measured from the
-  request's first byte by :mod:`gasrules.asgiserver`).
+* leaves the request deadline (first byte to end of body, ``408``) to the protocol of
+  :mod:`gasrules.asgiserver`, and keeps its own timer only under another server.
 
 The JSON API and CDS Hooks handlers are :class:`gasrules.service.App`, run in a worker thread so
 that a long batch never holds up the probes; with the plain engine (no decision records to
@@ -24,10 +24,10 @@ from __future__ import annotations
 import asyncio
 import json
 import re
+import secrets
 import sys
 import threading
 import time
-import uuid
 from collections.abc import Awaitable, Callable, MutableMapping
 from datetime import UTC, datetime
 from typing import Any
@@ -78,7 +78,7 @@ def request_id(headers: list[tuple[bytes, bytes]]) -> str:
             text = value.decode("latin-1").strip()
             if _REQUEST_ID.fullmatch(text):
                 return text
-    return uuid.uuid4().hex
+    return secrets.token_hex(16)
 
 
 def _header(headers: list[tuple[bytes, bytes]], name: bytes) -> str | None:
@@ -108,13 +108,15 @@ class JsonLog:
 class Guard:
     """Request id, log line, metrics, concurrency limit and body limits (see module doc)."""
 
-    def __init__(self, inner: Any, service: App, metrics: Metrics, log: JsonLog) -> None:
-        self.inner, self.service, self.metrics, self.log = inner, service, metrics, log
+    def __init__(self, inner: Any, probes: Any, service: App, metrics: Metrics,
+                 log: JsonLog) -> None:
+        self.inner, self.probes = inner, probes      # the API app; the probes (and lifespan)
+        self.service, self.metrics, self.log = service, metrics, log
         self.in_flight = 0
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
-            await self.inner(scope, receive, send)
+            await self.probes(scope, receive, send)
             return
         started = time.perf_counter()
         rid = request_id(scope["headers"])
@@ -134,7 +136,11 @@ class Guard:
         try:
             if method in _METHODS_WITH_BODY:    # reading costs a coroutine, not a work slot
                 body = await self._read_body(scope, receive)
+                scope.setdefault("extensions", {})["gasrules.body"] = body
                 receive = _replay(body)
+            if not counted:
+                await self.probes(scope, receive, tagged_send)
+                return
             if counted:
                 if self.in_flight >= self.service.config.max_concurrency:
                     raise Refusal(503, "http.busy", f"the service is already working on "
@@ -170,19 +176,23 @@ class Guard:
         if raw is None:
             raise Refusal(411, "http.length_required", "Content-Length is required (a whole "
                           "number of bytes)", "Content-Length")
-        length = int(raw)   # h11 has already refused anything but digits
-        deadline = scope.get("extensions", {}).get("gasrules.started") or time.monotonic()
-        deadline += config.timeout
+        length = int(raw)   # the HTTP parser has already refused anything but digits
+        started = scope.get("extensions", {}).get("gasrules.started")
+        # Under gasrules.asgiserver the protocol enforces the deadline (408, then a
+        # disconnect here); elsewhere this guard keeps its own timer.
+        deadline = None if started is not None else time.monotonic() + config.timeout
         if length > config.max_body:
             if length <= DRAIN_LIMIT:
-                await _drain(receive, deadline)
+                await _drain(receive, deadline if deadline is not None else
+                             time.monotonic() + config.timeout)
             raise Refusal(413, "http.too_large", f"body of {length} bytes exceeds the limit of "
                           f"{config.max_body} bytes", "Content-Length")
         chunks: list[bytes] = []
         got = 0
         more = True
         while more:
-            message = await _receive_by(receive, deadline, length, got, config.timeout)
+            message = await receive() if deadline is None else \
+                await _receive_by(receive, deadline, length, got, config.timeout)
             if message["type"] == "http.disconnect":
                 raise ClientGone
             chunk = message.get("body", b"")
@@ -197,8 +207,10 @@ class Guard:
 
 async def _receive_by(receive: Receive, deadline: float, length: int, got: int,
                       timeout: float) -> Message:
+    loop_deadline = asyncio.get_running_loop().time() + (deadline - time.monotonic())
     try:
-        return await asyncio.wait_for(receive(), max(0.0, deadline - time.monotonic()))
+        async with asyncio.timeout_at(loop_deadline):   # no extra task, unlike wait_for
+            return await receive()
     except TimeoutError:
         raise Refusal(408, "http.timeout", f"the {length}-byte body was not received within "
                       f"{timeout:g} s ({got} bytes arrived)", "body") from None
@@ -206,9 +218,11 @@ async def _receive_by(receive: Receive, deadline: float, length: int, got: int,
 
 async def _drain(receive: Receive, deadline: float) -> None:
     more = True
+    loop_deadline = asyncio.get_running_loop().time() + (deadline - time.monotonic())
     while more:
         try:
-            message = await asyncio.wait_for(receive(), max(0.0, deadline - time.monotonic()))
+            async with asyncio.timeout_at(loop_deadline):
+                message = await receive()
         except TimeoutError:
             return
         more = message["type"] == "http.request" and message.get("more_body", False)
@@ -252,10 +266,11 @@ def _make_api(service: App, limiter: anyio.CapacityLimiter) -> Callable[..., Awa
                         EngineInterpreter)
 
     async def api(request: StarletteRequest) -> StarletteResponse:
-        body = await request.body() if request.method in _METHODS_WITH_BODY else b""
-        req = Request(request.method, request.url.path,
-                      parse_qs(request.url.query, keep_blank_values=True),
-                      {k.decode("latin-1"): v.decode("latin-1") for k, v in request.headers.raw},
+        scope = request.scope     # the guard has read the body already
+        body = scope.get("extensions", {}).get("gasrules.body", b"")
+        req = Request(scope["method"], scope["path"],
+                      parse_qs(scope["query_string"].decode("latin-1"), keep_blank_values=True),
+                      {k.decode("latin-1"): v.decode("latin-1") for k, v in scope["headers"]},
                       body)
         if inline and len(body) <= INLINE_BODY and req.path == "/interpret":
             resp = service.handle(req)     # about a millisecond: cheaper than a thread hop
@@ -300,8 +315,6 @@ def asgi_app(service: App, *, log: JsonLog | None = None) -> Any:
     limiter = anyio.CapacityLimiter(max(1, config.max_concurrency))
     api = _make_api(service, limiter)
     methods = ["GET", "POST", "PUT", "PATCH", "DELETE", "HEAD", "OPTIONS"]
-    routes = [*_make_probes(service, metrics, state),
-              Route("/{path:path}", api, methods=methods)]
     middleware = []
     if config.cors_origins:
         middleware.append(Middleware(
@@ -321,7 +334,8 @@ def asgi_app(service: App, *, log: JsonLog | None = None) -> Any:
 
     import contextlib
 
-    starlette = Starlette(routes=routes, middleware=middleware,
-                          lifespan=contextlib.asynccontextmanager(lifespan))
-    guard = Guard(starlette, service, metrics, log)
-    return guard
+    api_app = Starlette(routes=[Route("/{path:path}", api, methods=methods)],
+                        middleware=middleware)
+    probes = Starlette(routes=_make_probes(service, metrics, state),
+                       lifespan=contextlib.asynccontextmanager(lifespan))
+    return Guard(api_app, probes, service, metrics, log)

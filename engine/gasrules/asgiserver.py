@@ -10,9 +10,9 @@ adds:
 
 * a **request deadline**: from a connection's first byte (or the first byte after the previous
   response) to the end of the request's body. A request still incomplete at the deadline gets
-  ``408`` and the connection is closed. While the application is reading the body it answers
-  the 408 itself (:mod:`gasrules.asgi`); the protocol acts after a short grace, and alone while
-  headers are still arriving, when no application has been called yet.
+  ``408`` (JSON) and the connection is closed; the application waiting for the body sees a
+  disconnect. The start time goes to the application in ``scope["extensions"]
+  ["gasrules.started"]``.
 * a **connection cap**: a connection beyond ``max_connections`` gets an immediate ``503`` and
   is closed; the request deadline keeps slow clients from holding their places.
 
@@ -38,7 +38,6 @@ from uvicorn.protocols.http.h11_impl import H11Protocol
 
 __all__ = ["BoundServer", "make_server", "raw_error"]
 
-GRACE = 1.0          # seconds the application has to answer its own 408 before the protocol does
 MAX_HEADER_BYTES = 16 * 1024
 
 
@@ -92,7 +91,6 @@ class GuardMixin:
         super().connection_made(transport)
         self.transport = _CoalescingTransport(transport, self.loop)  # type: ignore[assignment]
         self._deadline: asyncio.TimerHandle | None = None
-        self._graced = False
         self._started = time.monotonic()
         if len(self.connections) > self.max_connections:
             transport.write(raw_error(503, "Service Unavailable", "http.busy",
@@ -114,7 +112,6 @@ class GuardMixin:
 
     def data_received(self, data: bytes) -> None:
         if self._deadline is None and not self._body_done():
-            self._graced = False
             self._started = time.monotonic()
             self._arm()
         super().data_received(data)
@@ -144,10 +141,6 @@ class GuardMixin:
         cycle = self.cycle
         active = cycle is not None and not cycle.response_complete
         if active and (cycle.response_started or self._body_done()):
-            return
-        if active and not self._graced:
-            self._graced = True      # the application answers its own 408 while reading a body
-            self._arm(GRACE)
             return
         if not active or not cycle.response_started:
             self.transport.write(raw_error(408, "Request Timeout", "http.timeout",
