@@ -181,6 +181,74 @@ def test_probes_and_clients_are_answered_during_a_slow_client_attack(tight: Live
             sock.close()
 
 
+def test_256_slow_connections_do_not_starve_the_probes(tmp_path: Path) -> None:
+    """The attack measured against the former server (every probe got 503 for its whole
+    length): 256 connections trickling headers and bodies. Default connection cap."""
+    srv = live(tmp_path, timeout=2.0)
+    slow: list[socket.socket] = []
+    try:
+        for k in range(256):
+            sock = socket.create_connection((HOST, srv.port), timeout=5)
+            sock.sendall(_post(b'{"p', "Content-Length: 500") if k % 2 else b"POST /inter")
+            slow.append(sock)
+        t0 = time.monotonic()
+        for path in ("/health", "/ready", "/health"):
+            assert srv.request("GET", path)[0] == 200, path
+        status, _, _ = srv.request("POST", "/interpret?trace=0", DEMO_CASE)
+        assert status == 200 and time.monotonic() - t0 < 5
+        time.sleep(2.5)                                  # past the deadline: all dropped
+        closed = sum(1 for sock in slow if _read_all(sock, 0.5).startswith(b"HTTP/1.1 408"))
+        assert closed == 256
+    finally:
+        for sock in slow:
+            sock.close()
+        srv.close()
+
+
+def test_tls_from_the_settings_serves_https(tmp_path: Path) -> None:
+    import datetime
+    import ssl
+
+    from cryptography import x509
+    from cryptography.hazmat.primitives import hashes, serialization
+    from cryptography.hazmat.primitives.asymmetric import ec
+    from cryptography.x509.oid import NameOID
+
+    key = ec.generate_private_key(ec.SECP256R1())
+    name = x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, "localhost")])
+    now = datetime.datetime.now(datetime.UTC)
+    cert = (x509.CertificateBuilder().subject_name(name).issuer_name(name)
+            .public_key(key.public_key()).serial_number(x509.random_serial_number())
+            .not_valid_before(now - datetime.timedelta(minutes=1))
+            .not_valid_after(now + datetime.timedelta(hours=1))
+            .add_extension(x509.SubjectAlternativeName([x509.DNSName("localhost")]), False)
+            .sign(key, hashes.SHA256()))
+    (tmp_path / "cert.pem").write_bytes(cert.public_bytes(serialization.Encoding.PEM))
+    (tmp_path / "key.pem").write_bytes(key.private_bytes(
+        serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8,
+        serialization.NoEncryption()))
+    cfg = ServiceConfig(port=0, feedback_log=str(tmp_path / "f.jsonl"), access_log=False)
+    app = build_app(cfg, environ={})
+    httpd = make_server(asgi_app(app), HOST, 0, request_timeout=5, keep_alive=5,
+                        max_connections=16, ssl_certfile=str(tmp_path / "cert.pem"),
+                        ssl_keyfile=str(tmp_path / "key.pem"))
+    threading.Thread(target=httpd.serve_forever, daemon=True).start()
+    try:
+        for _ in range(200):
+            if httpd.server.started:
+                break
+            time.sleep(0.02)
+        context = ssl.create_default_context(cafile=str(tmp_path / "cert.pem"))
+        with socket.create_connection((HOST, httpd.server_address[1]), timeout=10) as raw:
+            with context.wrap_socket(raw, server_hostname="localhost") as tls:
+                tls.sendall(b"GET /ready HTTP/1.1\r\nHost: localhost\r\nConnection: close\r\n\r\n")
+                data = _read_all(tls, 5)
+        assert data.startswith(b"HTTP/1.1 200")
+    finally:
+        httpd.shutdown()
+        httpd.server_close()
+
+
 def test_requests_beyond_the_concurrency_limit_get_503_but_probes_do_not(tmp_path: Path,
                                                                       rulebook: Any) -> None:
     release = threading.Event()
@@ -349,3 +417,33 @@ def test_the_shipped_example_settings_file_is_valid() -> None:
 @pytest.fixture(scope="module")
 def rulebook(tight: Live) -> Any:
     return tight.app.rulebook
+
+
+@pytest.mark.slow
+def test_gasrules_serve_takes_address_and_limits_from_the_settings_file(tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    settings = tmp_path / "site.yaml"
+    settings.write_text("serve:\n  host: 127.0.0.1\n  port: 0\n  max_body: 2048\n"
+                        "  max_concurrency: 3\n  access_log: false\n  feedback_log: fb.jsonl\n")
+    proc = subprocess.Popen(
+        [sys.executable, "-c", "import sys; from gasrules.cli import main; sys.exit(main())",
+         "serve", "--settings", str(settings), "--max-batch", "5"],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        line = proc.stdout.readline() if proc.stdout else ""
+        assert "listening on http://127.0.0.1:" in line, line
+        port = int(line.split("127.0.0.1:")[1].split()[0])
+        import http.client
+
+        conn = http.client.HTTPConnection(HOST, port, timeout=10)
+        conn.request("GET", "/health")
+        limits = json.loads(conn.getresponse().read())["limits"]
+        conn.close()
+        assert (limits["max_body_bytes"], limits["max_concurrency"],
+                limits["max_batch_cases"]) == (2048, 3, 5)      # file, file, flag
+    finally:
+        proc.terminate()
+        proc.wait(timeout=20)
+    assert proc.returncode == 0
