@@ -41,12 +41,13 @@ import traceback
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
-from typing import Any
+from typing import Any, Protocol
 
 import orjson
 
 from . import __version__, cdshooks
 from .cdsauth import AuthError, TokenVerifier
+from .bodyshape import nested_too_deep, read_line
 from .evaluator import UNREADABLE
 
 __all__ = ["App", "EngineInterpreter", "Interpreter", "Response", "RuntimeInterpreter",
@@ -102,13 +103,99 @@ class HttpError(Exception):
         self.headers = dict(headers or {})
 
 
-# The interpreters moved to gasrules.interpreters; re-exported here for existing callers.
-from .interpreters import (  # noqa: E402
-    EngineInterpreter,
-    Interpreter,
-    RuntimeInterpreter,
-    make_interpreter,
-)
+# ============================================================================ interpretation
+class Interpreter(Protocol):
+    """What the service needs from the engine: the plain engine or the change-control Runtime."""
+
+    rulebook: Any
+
+    def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]: ...
+
+    def record(self, case: Any, result: dict[str, Any]) -> None: ...
+
+    def describe(self) -> dict[str, Any]: ...
+
+    def close(self) -> None: ...
+
+
+class EngineInterpreter:
+    """The plain engine: no strict mode, no decision records, no shadow rulebook."""
+
+    def __init__(self, rulebook: Any) -> None:
+        self.rulebook = rulebook
+
+    def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
+        from .evaluator import interpret
+
+        return interpret(self.rulebook, case, trace)
+
+    def record(self, case: Any, result: dict[str, Any]) -> None:
+        return None
+
+    def describe(self) -> dict[str, Any]:
+        return {"mode": "engine", "strict": False, "decision_records": False, "shadow": None}
+
+    def close(self) -> None:
+        return None
+
+
+class RuntimeInterpreter:
+    """The change-control :class:`~gasrules.runtime.Runtime`: strict mode (checked once, when
+    it is opened), suspensions, decision records and the shadow candidate. Shadow comparison
+    keeps counters, so calls are serialised while shadowing; decision logs lock themselves."""
+
+    def __init__(self, runtime: Any) -> None:
+        self.runtime = runtime
+        self.rulebook = runtime.rulebook
+        self._lock = threading.Lock() if runtime.shadowing else None
+
+    def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
+        if self._lock is None:
+            return self.runtime.interpret(case, trace)
+        with self._lock:
+            return self.runtime.interpret(case, trace)
+
+    def record(self, case: Any, result: dict[str, Any]) -> None:
+        self.runtime.record(case, result)
+
+    def describe(self) -> dict[str, Any]:
+        rt, settings = self.runtime, self.runtime.settings
+        adm = rt.admission
+        cand = rt.candidate
+        return {"mode": "runtime", "strict": settings.strict,
+                "decision_records": rt.records_decisions,
+                "shadow": dict(cand.identity) if cand is not None else None,
+                "approved_sha256": adm.approved_sha256,
+                "release_manifest": adm.manifest.name if adm.manifest else None,
+                "suspended_rules": [rule for rule, _ in adm.suspended_rules],
+                "settings_from": list(settings.sources)}
+
+    def close(self) -> None:
+        self.runtime.close()
+
+
+def _settings_apply(config: "ServiceConfig", environ: Mapping[str, str]) -> bool:
+    return config.settings is not None or config.strict or any(
+        k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in environ)
+
+
+def make_interpreter(config: ServiceConfig, environ: Mapping[str, str] | None = None
+                     ) -> Interpreter:
+    """The Runtime when site settings apply (``config.settings``, ``config.strict`` or GASRULES_*
+    variables), else the plain engine. Raises RulebookError, RuntimeRefusal, SettingsError."""
+    import os
+
+    environ = os.environ if environ is None else environ
+    if not _settings_apply(config, environ):
+        import gasrules
+
+        return EngineInterpreter(gasrules.load_rulebook(config.rulebook))
+    from .runtime import Runtime
+    from .settings import load_settings
+
+    settings = load_settings(config.settings, env=environ,
+                             strict=True if config.strict else None)
+    return RuntimeInterpreter(Runtime.from_settings(settings, config.rulebook))
 
 
 # ============================================================================ helpers
@@ -174,28 +261,20 @@ def _parse_json(body: bytes, where: str = "body", max_depth: int | None = None) 
     return data
 
 
-def nested_too_deep(data: Any, max_depth: int) -> str | None:
-    """The JSON path of the first place nested deeper than ``max_depth`` levels, or None."""
-    stack: list[tuple[Any, int, str]] = [(data, 1, "$")]
-    while stack:
-        node, depth, path = stack.pop()
-        if isinstance(node, dict):
-            items: Any = ((f"{path}.{k}", v) for k, v in node.items())
-        elif isinstance(node, list):
-            items = ((f"{path}[{i}]", v) for i, v in enumerate(node))
-        else:
-            continue
-        if depth > max_depth:
-            return path
-        stack.extend((child, depth + 1, where) for where, child in items
-                     if isinstance(child, (dict, list)))
-    return None
-
-
 def _check_fields(case: Any, limit: int, where: str = "body") -> None:
     if isinstance(case, dict) and len(case) > limit:
         raise HttpError(400, "request.too_many_fields", f"{where} has {len(case)} fields; a case "
                         f"has at most {limit} (its inputs, case_id and context)", where)
+
+
+def _grow(size: int, more: int, limit: int, request_bytes: int) -> int:
+    """``size + more``, or 413 when that passes the response bound."""
+    size += more
+    if size > limit:
+        raise HttpError(413, "response.too_large", f"the answer would exceed the {limit} "
+                        f"bytes allowed for a {request_bytes}-byte request; ask with trace=0 "
+                        "or send fewer cases per request", "body")
+    return size
 
 
 def _flag(query: Mapping[str, list[str]], name: str, default: bool) -> bool:
@@ -392,40 +471,16 @@ class App:
             size = 2
             for row in rows:
                 parts.append(dumps(self._batch_row(row, trace, deadline)))
-                size = self._grow(size, len(parts[-1]) + 1, limit, len(req.body))
+                size = _grow(size, len(parts[-1]) + 1, limit, len(req.body))
             return Response(200, b"[" + b",".join(parts) + b"]")
         lines = [(n, line) for n, line in enumerate(req.body.split(b"\n"), 1) if line.strip()]
         self._check_batch_size(len(lines))
         out = bytearray()
         for n, line in lines:
-            row: Any = self._read_line(n, line)
+            row: Any = read_line(n, line, self.config.max_depth, self.config.max_case_fields)
             out += dumps(self._batch_row(row, trace, deadline, n)) + b"\n"
-            self._grow(0, len(out), limit, len(req.body))
+            _grow(0, len(out), limit, len(req.body))
         return Response(200, bytes(out), NDJSON)
-
-    def _read_line(self, n: int, line: bytes) -> Any:
-        """One JSON Lines row, or a stand-in naming the line's problem (N in, N out)."""
-        try:
-            row = orjson.loads(line)
-        except orjson.JSONDecodeError as exc:
-            return {UNREADABLE: f"line {n}: not valid JSON: {exc.msg} at column {exc.colno}"}
-        deep = nested_too_deep(row, self.config.max_depth)
-        if deep is not None:
-            return {UNREADABLE: f"line {n}: nests more than {self.config.max_depth} levels "
-                                f"deep at {deep}"}
-        if isinstance(row, dict) and len(row) > self.config.max_case_fields:
-            return {UNREADABLE: f"line {n}: {len(row)} fields; a case has at most "
-                                f"{self.config.max_case_fields}"}
-        return row
-
-    @staticmethod
-    def _grow(size: int, more: int, limit: int, request_bytes: int) -> int:
-        size += more
-        if size > limit:
-            raise HttpError(413, "response.too_large", f"the answer would exceed the {limit} "
-                            f"bytes allowed for a {request_bytes}-byte request; ask with trace=0 "
-                            "or send fewer cases per request", "body")
-        return size
 
     def _check_batch_size(self, n: int) -> None:
         if n > self.config.max_batch:
