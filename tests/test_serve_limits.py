@@ -108,6 +108,8 @@ def test_differing_or_malformed_content_length_is_400(tight: Live, lengths: tupl
                                                       ) -> None:
     data = tight.raw(_post(b"{}", *(f"Content-Length: {n}" for n in lengths)))
     assert data.startswith(b"HTTP/1.1 400"), data[:80]
+    error = json.loads(data.partition(b"\r\n\r\n")[2])["error"]
+    assert error["code"] == "http.bad_request" and "Content-Length" in error["message"]
 
 
 def test_identical_duplicate_content_length_is_merged_by_h11_refused_by_llhttp(tight: Live

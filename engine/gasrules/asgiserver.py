@@ -24,11 +24,14 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import logging
 import signal
 import socket
+import sys
 import threading
 import time
 from collections.abc import Callable, Iterator
+from datetime import UTC, datetime
 from typing import Any
 
 import h11
@@ -99,6 +102,14 @@ class GuardMixin:
             transport.close()
             return
         self._arm()
+
+    def send_400_response(self, msg: str) -> None:
+        """The parser refused the request: a JSON 400 (uvicorn's own is plain text)."""
+        self.transport.write(raw_error(
+            400, "Bad Request", "http.bad_request", "the request is not valid HTTP/1.1: check "
+            "the request line and headers; Content-Length must be digits only, and repeated "
+            "Content-Length headers must agree"))
+        self.transport.close()
 
     def _arm(self, delay: float | None = None) -> None:
         self._disarm()
@@ -190,6 +201,30 @@ class _Server(uvicorn.Server):
         yield
 
 
+class JsonLogHandler(logging.Handler):
+    """uvicorn's own messages (protocol errors, start, stop) as JSON lines on stderr, like the
+    request log of :mod:`gasrules.asgi`."""
+
+    def emit(self, record: logging.LogRecord) -> None:
+        try:
+            line = orjson.dumps({"ts": datetime.fromtimestamp(record.created, UTC).isoformat(
+                timespec="milliseconds"), "level": record.levelname.lower(),
+                "event": "server", "logger": record.name, "message": record.getMessage()})
+            sys.stderr.write(line.decode() + "\n")
+            sys.stderr.flush()
+        except Exception:  # noqa: BLE001 - logging must never break serving
+            self.handleError(record)
+
+
+def json_server_logs(level: int = logging.WARNING) -> None:
+    """Route uvicorn's loggers to :class:`JsonLogHandler` (once)."""
+    logger = logging.getLogger("uvicorn")
+    if not any(isinstance(h, JsonLogHandler) for h in logger.handlers):
+        logger.addHandler(JsonLogHandler())
+    logger.setLevel(level)
+    logger.propagate = False
+
+
 class BoundServer:
     """A uvicorn server on an already bound socket. ``serve_forever`` blocks (in any thread);
     ``shutdown`` asks it to stop and waits; ``server_address`` is the bound (host, port)."""
@@ -206,6 +241,7 @@ class BoundServer:
             h11_max_incomplete_event_size=MAX_HEADER_BYTES, timeout_graceful_shutdown=5,
             ssl_certfile=ssl_certfile, ssl_keyfile=ssl_keyfile)
         self.server = _Server(self.config)
+        json_server_logs()
         self._done = threading.Event()
 
     def serve_forever(self) -> None:
