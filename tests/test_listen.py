@@ -225,3 +225,30 @@ def test_listen_settings_are_checked(tmp_path: Path) -> None:
     bad.write_text("interfaces:\n  listen:\n    forward: nowhere\n")
     with pytest.raises(SettingsError, match="interfaces.listen.forward.*HOST:PORT"):
         interfaces_section(bad)
+
+
+@pytest.mark.slow
+def test_gasrules_listen_runs_acknowledges_and_stops_on_sigterm(tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    settings = tmp_path / "site.yaml"
+    settings.write_text("interfaces:\n  facility: CLI-SITE\n  listen:\n    port: 0\n"
+                        "    outbox: filed\n")
+    proc = subprocess.Popen(
+        [sys.executable, "-c", "import sys; from gasrules.cli import main; sys.exit(main())",
+         "listen", "--settings", str(settings), "--host", HOST],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        line = proc.stdout.readline() if proc.stdout else ""
+        assert "MLLP on 127.0.0.1:" in line, line
+        port = int(line.split("127.0.0.1:")[1].split()[0])
+        with socket.create_connection((HOST, port), timeout=10) as sock:
+            sock.sendall(framed(message(control="CLI1")))
+            [ack] = read_acks(sock, 1)
+        assert segment(ack, "MSA")[1:3] == ["AA", "CLI1"] and segment(ack, "MSH")[3] == "CLI-SITE"
+        assert len(list((tmp_path / "filed").glob("*-CLI1.hl7"))) == 1
+    finally:
+        proc.terminate()
+        proc.wait(timeout=20)
+    assert proc.returncode == 0
