@@ -138,20 +138,18 @@ class Guard:
                 body = await self._read_body(scope, receive)
                 scope.setdefault("extensions", {})["gasrules.body"] = body
                 receive = _replay(body)
-            if not counted:
+            if not counted:                      # probes: never limited
                 await self.probes(scope, receive, tagged_send)
                 return
-            if counted:
-                if self.in_flight >= self.service.config.max_concurrency:
-                    raise Refusal(503, "http.busy", f"the service is already working on "
-                                  f"{self.service.config.max_concurrency} requests; retry "
-                                  "shortly", retry_after="1")
-                self.in_flight += 1
+            if self.in_flight >= self.service.config.max_concurrency:
+                raise Refusal(503, "http.busy", f"the service is already working on "
+                              f"{self.service.config.max_concurrency} requests; retry "
+                              "shortly", retry_after="1")
+            self.in_flight += 1
             try:
                 await self.inner(scope, receive, tagged_send)
             finally:
-                if counted:
-                    self.in_flight -= 1
+                self.in_flight -= 1
         except Refusal as exc:
             await _send_refusal(tagged_send, exc, path.startswith("/cds-services"))
         except ClientGone:
