@@ -15,8 +15,8 @@ counts it for ``/metrics``, and before the application sees a body:
 
 The JSON API and CDS Hooks handlers are :class:`gasrules.service.App`, run in a worker thread so
 that a long batch never holds up the probes; with the plain engine (no decision records to
-write), a single case of up to 16 KiB is interpreted on the event loop itself (about a
-millisecond, less than the hop to a thread).
+write), a single case of up to 16 KiB arriving while no other API request is in progress is
+interpreted on the event loop itself (about a millisecond, less than the hop to a thread).
 """
 
 from __future__ import annotations
@@ -109,10 +109,10 @@ class Guard:
     """Request id, log line, metrics, concurrency limit and body limits (see module doc)."""
 
     def __init__(self, inner: Any, probes: Any, service: App, metrics: Metrics,
-                 log: JsonLog) -> None:
+                 log: JsonLog, flight: dict[str, int] | None = None) -> None:
         self.inner, self.probes = inner, probes      # the API app; the probes (and lifespan)
         self.service, self.metrics, self.log = service, metrics, log
-        self.in_flight = 0
+        self.flight = flight if flight is not None else {"n": 0}   # API requests in progress
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
@@ -141,15 +141,15 @@ class Guard:
             if not counted:                      # probes: never limited
                 await self.probes(scope, receive, tagged_send)
                 return
-            if self.in_flight >= self.service.config.max_concurrency:
+            if self.flight["n"] >= self.service.config.max_concurrency:
                 raise Refusal(503, "http.busy", f"the service is already working on "
                               f"{self.service.config.max_concurrency} requests; retry "
                               "shortly", retry_after="1")
-            self.in_flight += 1
+            self.flight["n"] += 1
             try:
                 await self.inner(scope, receive, tagged_send)
             finally:
-                self.in_flight -= 1
+                self.flight["n"] -= 1
         except Refusal as exc:
             await _send_refusal(tagged_send, exc, path.startswith("/cds-services"))
         except ClientGone:
@@ -256,7 +256,8 @@ def _to_starlette(resp: Response) -> StarletteResponse:
     return StarletteResponse(resp.body, resp.status, headers=headers, media_type=resp.content_type)
 
 
-def _make_api(service: App, limiter: anyio.CapacityLimiter) -> Callable[..., Awaitable[Any]]:
+def _make_api(service: App, limiter: anyio.CapacityLimiter,
+              flight: dict[str, int]) -> Callable[..., Awaitable[Any]]:
     from .service import EngineInterpreter
 
     # Only the plain engine is inlined: the Runtime may write (and fsync) decision records.
@@ -270,8 +271,9 @@ def _make_api(service: App, limiter: anyio.CapacityLimiter) -> Callable[..., Awa
                       parse_qs(scope["query_string"].decode("latin-1"), keep_blank_values=True),
                       {k.decode("latin-1"): v.decode("latin-1") for k, v in scope["headers"]},
                       body)
-        if inline and len(body) <= INLINE_BODY and req.path == "/interpret":
-            resp = service.handle(req)     # about a millisecond: cheaper than a thread hop
+        if inline and flight["n"] <= 1 and len(body) <= INLINE_BODY and \
+                req.path == "/interpret":
+            resp = service.handle(req)     # alone, about a millisecond: cheaper than a thread
         else:
             resp = await anyio.to_thread.run_sync(service.handle, req, limiter=limiter)
         return _to_starlette(resp)
@@ -311,7 +313,8 @@ def asgi_app(service: App, *, log: JsonLog | None = None) -> Any:
     log = log or JsonLog(config.access_log)
     state = {"ready": False}
     limiter = anyio.CapacityLimiter(max(1, config.max_concurrency))
-    api = _make_api(service, limiter)
+    flight = {"n": 0}
+    api = _make_api(service, limiter, flight)
     methods = ["GET", "POST", "PUT", "PATCH", "DELETE", "HEAD", "OPTIONS"]
     middleware = []
     if config.cors_origins:
@@ -336,4 +339,4 @@ def asgi_app(service: App, *, log: JsonLog | None = None) -> Any:
                         middleware=middleware)
     probes = Starlette(routes=_make_probes(service, metrics, state),
                        lifespan=contextlib.asynccontextmanager(lifespan))
-    return Guard(api_app, probes, service, metrics, log)
+    return Guard(api_app, probes, service, metrics, log, flight)
