@@ -97,8 +97,14 @@ def serve(
     except (ConfigError, SettingsError) as exc:
         typer.echo(f"gasrules serve: {exc}", err=True)
         raise typer.Exit(USAGE) from None
-    from ..asgi import asgi_app
-    from ..asgiserver import make_server
+    try:
+        from ..asgi import asgi_app
+        from ..asgiserver import make_server
+    except ModuleNotFoundError as exc:
+        service.close()
+        typer.echo(f"gasrules serve: {exc.name} is not installed; install the serve extra: "
+                   "pip install 'gasrules[serve]'", err=True)
+        raise typer.Exit(USAGE) from None
 
     try:
         server = make_server(asgi_app(service), config.host, config.port,
