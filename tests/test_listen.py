@@ -252,3 +252,28 @@ def test_gasrules_listen_runs_acknowledges_and_stops_on_sigterm(tmp_path: Path) 
         proc.terminate()
         proc.wait(timeout=20)
     assert proc.returncode == 0
+
+
+def test_an_internal_failure_is_ar_and_not_remembered(tmp_path: Path) -> None:
+    srv = Running(tmp_path)
+    real = srv.listener.interpreter
+
+    class Broken:
+        rulebook = real.rulebook
+
+        def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
+            raise RuntimeError("boom")
+
+    try:
+        srv.listener.interpreter = Broken()
+        with srv.connect() as sock:
+            sock.sendall(framed(message(control="BUG1")))
+            [ack] = read_acks(sock, 1)
+        assert segment(ack, "MSA")[1:3] == ["AR", "BUG1"] and "boom" not in ack
+        srv.listener.interpreter = real
+        with srv.connect() as sock:                      # a retry is processed anew
+            sock.sendall(framed(message(control="BUG1")))
+            [ack] = read_acks(sock, 1)
+        assert segment(ack, "MSA")[1:3] == ["AA", "BUG1"] and len(srv.filed()) == 1
+    finally:
+        srv.close()

@@ -218,13 +218,15 @@ class Listener:
         self._pending[key] = future
         try:
             answer = await self._process(raw, header)
-            future.set_result(answer)
-        except BaseException as exc:
-            future.set_exception(exc)
-            future.exception()   # retrieved: waiting retransmissions see it, nobody else
-            raise
+        except Exception as exc:  # noqa: BLE001 - a bug answers AR; the sender may retry
+            self.log(event="internal_error", control_id=key[2], error=type(exc).__name__,
+                     detail=str(exc)[:200])
+            issue = Issue("message", "hl7.delivery", "internal error while processing the "
+                          "message; it was not filed; send it again")
+            answer = _Answer(self._ack("AR", header, [issue]), "AR", False)
         finally:
             del self._pending[key]
+        future.set_result(answer)
         if answer.remember:
             self._remember(key, answer)
         self.log(event="message", control_id=key[2], ack=answer.code,
