@@ -277,3 +277,23 @@ def test_an_internal_failure_is_ar_and_not_remembered(tmp_path: Path) -> None:
         assert segment(ack, "MSA")[1:3] == ["AA", "BUG1"] and len(srv.filed()) == 1
     finally:
         srv.close()
+
+
+def test_connections_beyond_the_cap_are_closed_at_once(tmp_path: Path) -> None:
+    srv = Running(tmp_path, max_connections=1)
+    try:
+        with srv.connect() as held:
+            held.sendall(framed(message(control="HOLD1")))
+            assert segment(read_acks(held, 1)[0], "MSA")[1] == "AA"    # the one place is taken
+            with srv.connect() as extra:
+                assert extra.recv(100) == b""                          # closed without a word
+        for _ in range(100):                                           # the place frees
+            with srv.connect() as again:
+                again.sendall(framed(message(control="HOLD2")))
+                acks = read_acks(again, 1)
+            if acks:
+                break
+            time.sleep(0.02)
+        assert segment(acks[0], "MSA")[1:3] == ["AA", "HOLD2"]
+    finally:
+        srv.close()

@@ -30,6 +30,7 @@ character set. Settings (``interfaces.listen`` in a settings file; flags overrid
         dedupe_minutes: 60             # remember answered MSH-10 this long
         max_message: 1048576           # bytes in one frame
         idle_timeout: 300              # close a connection silent this long
+        max_connections: 256           # open connections; one more is closed at once
 """
 
 from __future__ import annotations
@@ -73,13 +74,14 @@ class ListenConfig:
     dedupe_minutes: float = 60.0
     max_message: int = 1_048_576
     idle_timeout: float = 300.0
+    max_connections: int = 256
     max_remembered: int = 100_000
 
 
 _KEYS = {"host": ("str", 0, 0), "port": ("int", 0, 65535), "outbox": ("path", 0, 0),
          "forward": ("hostport", 0, 0), "forward_timeout": ("float", 0.1, 600),
          "dedupe_minutes": ("float", 0, 10_080), "max_message": ("int", 1024, 1 << 30),
-         "idle_timeout": ("float", 1, 86_400)}
+         "idle_timeout": ("float", 1, 86_400), "max_connections": ("int", 1, 100_000)}
 
 
 def parse_hostport(text: str) -> tuple[str, int]:
@@ -152,6 +154,7 @@ class Listener:
         self._pending: dict[tuple[str, str, str], asyncio.Future[_Answer]] = {}
         self._server: asyncio.AbstractServer | None = None
         self._sequence = 0
+        self._open = 0           # connections being served
         self.interpreted = 0     # cases interpreted (for operators and tests)
 
     @property
@@ -174,6 +177,12 @@ class Listener:
                           writer: asyncio.StreamWriter) -> None:
         decoder = MllpDecoder(self.config.max_message)
         peer = writer.get_extra_info("peername")
+        if self._open >= self.config.max_connections:
+            self.log(event="refused", peer=str(peer), reason=f"already "
+                     f"{self.config.max_connections} connections")
+            writer.close()
+            return
+        self._open += 1
         try:
             while True:
                 try:
@@ -196,6 +205,7 @@ class Listener:
         except (ConnectionError, asyncio.IncompleteReadError):
             pass
         finally:
+            self._open -= 1
             writer.close()
 
     # -- one message
