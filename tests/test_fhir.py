@@ -408,13 +408,16 @@ def test_interpretation_bundle_is_valid_fhir_and_points_back_at_the_inputs() -> 
     assert {r["reference"] for r in obs["derivedFrom"]} == set(read.sources.values())
     assert "Supports, never replaces, clinical judgement." in [n["text"] for n in obs["note"]]
     assert "Not assessed: oxygenation (no FiO2)" in [n["text"] for n in obs["note"]]
-    derived = {c["code"]["coding"][0]["code"]: c["valueQuantity"]
+    derived = {c["code"]["coding"][-1]["code"]: c["valueQuantity"]   # the project code last
                for c in obs["component"] if "valueQuantity" in c}
     assert derived == {   # inputs (ph) are not repeated as components
         "anion_gap": {"value": 12.8, "unit": "mmol/L",
                       "system": "http://unitsofmeasure.org", "code": "mmol/L"},
         "expected_pco2": {"value": 30.8, "unit": "mm[Hg]",
                           "system": "http://unitsofmeasure.org", "code": "mm[Hg]"}}
+    gap = next(c for c in obs["component"] if c["code"]["text"] == "anion_gap")
+    assert gap["code"]["coding"][0] == {"system": "http://loinc.org", "code": "33037-3",
+                                        "display": "Anion gap in Serum or Plasma"}  # codes.md
     acid = next(c for c in obs["component"]
                 if c["code"]["coding"][0] == {"system": FINDING_CS, "code": "acidaemia"})
     assert acid["interpretation"][0]["coding"][0]["code"] == "A"

@@ -207,7 +207,10 @@ def test_missing_unit_is_an_error() -> None:
     ("<^6.8", "SN", "OBX[1]-5: ph is reported as <6.8, not an exact value; left out"),
     ("^7^-^8", "SN", "OBX[1]-5: ph is sent as a range or ratio; expected one number"),
     ("7.30~7.31", "NM", "OBX[1]-5: ph has 2 repetitions; one value is expected"),
-    ("7.30", "ST", "OBX[1]-2: value type 'ST' for ph; expected NM or SN"),
+    ("7.30", "TX", "OBX[1]-2: value type 'TX' for ph; expected NM or SN (or ST holding a "
+                   "number)"),
+    ("seven", "ST", "OBX[1]-5: ph: 'seven' sent as ST is not a number (expected digits with a "
+                    "'.' decimal point, e.g. 7.31)"),
 ])
 def test_values_that_cannot_be_used(value: str, vtype: str, expected: str) -> None:
     text = with_segment(arterial(), "OBX|1|", obx(1, "2744-1", value, "[pH]", vtype=vtype))
@@ -356,13 +359,14 @@ def test_interpretation_as_oru_round_trips_through_the_reader() -> None:
     acid = msg.all("OBX")[2]
     assert (msg.get(acid, 3), msg.get(acid, 8)) == ("acidaemia", "A")
     gap = msg.all("OBX")[5]
-    assert (msg.get(gap, 3), msg.get(gap, 5), msg.get(gap, 6)) == ("anion_gap", "12.8", "mmol/L")
+    assert (msg.get(gap, 3), msg.get(gap, 3, 3), msg.get(gap, 3, 4), msg.get(gap, 5),
+            msg.get(gap, 6)) == ("33037-3", "LN", "anion_gap", "12.8", "mmol/L")  # docs/codes.md
     notes = [msg.get(s, 3) for s in msg.all("NTE")]
     assert notes[0].startswith("Rulebook adult-default 1.0.0 sha256:abab")
     assert notes[-1] == "Supports, never replaces, clinical judgement."
-    read = case_from_hl7(text, CATALOG)   # our own output holds no LOINC: all ignored
+    read = case_from_hl7(text, CATALOG)   # our own output feeds no input: all ignored
     assert read.case == {"case_id": "OUT-1"}
-    assert {i.code for i in read.issues} == {"code.not_loinc"}
+    assert {i.code for i in read.issues} == {"code.not_loinc", "code.unknown"}  # 33037-3
 
 
 def test_oru_needs_an_hl7_timestamp() -> None:
@@ -402,3 +406,11 @@ def test_shipped_rulebook_reads_interprets_and_writes_back(name: str) -> None:
     msg, issues = parse_message(text)
     assert issues == [] and msg is not None
     assert msg.get(msg.all("OBX")[0], 5) == result["headline"]
+
+
+def test_a_number_sent_as_st_is_read_with_a_notice() -> None:
+    text = with_segment(arterial(), "OBX|1|", obx(1, "2744-1", "7.30", "[pH]", vtype="ST"))
+    read = case_from_hl7(text, CATALOG)
+    assert read.case["ph"] == {"value": 7.30, "unit": "[pH]"} or read.case["ph"] == 7.30
+    assert [(i.path, i.code, i.severity) for i in read.issues] == [
+        ("OBX[1]-2", "hl7.numeric_st", "notice")]

@@ -1,6 +1,7 @@
 """The HTTP service over a real socket: JSON API, FHIR in and out, batch, limits, errors, OpenAPI.
 
-The server runs in a thread on 127.0.0.1 on a free port; requests go through http.client. Each
+The server (uvicorn with the ASGI application) runs in a thread on 127.0.0.1 on a free port;
+requests go through http.client or raw sockets. Each
 expected interpretation is computed by the engine itself (``gasrules.interpret`` on the same
 case), so these tests check the service's transport, never a clinical number. Cases are the
 invented demo data under tools/demo and tests/data (demo data, no published source).
@@ -23,7 +24,8 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules.httpserver import make_server
+from gasrules.asgi import asgi_app
+from gasrules.asgiserver import make_server
 from gasrules.service import App, EngineInterpreter, Request, ServiceConfig, build_app
 
 ROOT = Path(__file__).parents[1]
@@ -36,10 +38,17 @@ FHIR_PANEL = json.loads((ROOT / "tests" / "data" / "fhir" / "arterial_panel.json
 class Server:
     def __init__(self, app: App) -> None:
         self.app = app
-        self.httpd = make_server(app, "127.0.0.1", 0)
+        cfg = app.config
+        self.httpd = make_server(asgi_app(app), "127.0.0.1", 0, request_timeout=cfg.timeout,
+                                 keep_alive=cfg.keep_alive, max_connections=cfg.max_connections,
+                                 parser=cfg.http_parser)
         self.port = self.httpd.server_address[1]
         self.thread = threading.Thread(target=self.httpd.serve_forever, daemon=True)
         self.thread.start()
+        for _ in range(200):                   # uvicorn is up once it answers a probe
+            if self.httpd.server.started:
+                break
+            time.sleep(0.02)
 
     def close(self) -> None:
         self.httpd.shutdown()
@@ -375,6 +384,7 @@ def test_openapi_describes_every_route_and_method(server: Server) -> None:
         path = "/" + "/".join(pattern)
         assert path in doc["paths"], path
         assert set(doc["paths"][path]) == {m.lower() for m in methods}
+    assert {"/ready", "/metrics"} <= set(doc["paths"])      # served by the ASGI layer
     from jsonschema import Draft202012Validator
     for name, schema in doc["components"]["schemas"].items():
         Draft202012Validator.check_schema(schema), name
@@ -383,6 +393,7 @@ def test_openapi_describes_every_route_and_method(server: Server) -> None:
 def test_real_responses_match_the_openapi_schemas(server: Server) -> None:
     _, doc = server.json("GET", "/openapi.json")
     _openapi_validator(doc, "Health").validate(server.json("GET", "/health")[1])
+    _openapi_validator(doc, "Ready").validate(server.json("GET", "/ready")[1])
     _openapi_validator(doc, "Result").validate(server.json("POST", "/interpret", DEMO_CASE)[1])
     _openapi_validator(doc, "Error").validate(server.json("GET", "/nowhere")[1])
     _openapi_validator(doc, "CdsDiscovery").validate(server.json("GET", "/cds-services")[1])

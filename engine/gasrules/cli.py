@@ -25,6 +25,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "document": ("gasrules.commands.document", "Render a rulebook for review (HTML and Markdown)."),
     "batch": ("gasrules.commands.batch", "Interpret a CSV, JSON Lines or Parquet file row by row."),
     "serve": ("gasrules.commands.serve", "HTTP service with a JSON API and CDS Hooks."),
+    "listen": ("gasrules.commands.listen", "MLLP listener: HL7 v2 ORU^R01 in, results filed and forwarded, ACKs."),
     "cutpoints": ("gasrules.commands.cutpoints", "List every numeric threshold of every rule condition."),
 }
 

@@ -47,6 +47,12 @@ ISSUE_CODES: dict[str, str] = {
     "hl7.message_type": "the message is not an ORU^R01",
     "hl7.bad_segment": "a line is not a segment (three upper-case letters or digits)",
     "hl7.value_type": "OBX-2 value type does not fit the input",
+    "hl7.numeric_st": "a number was sent with value type ST and read as a number",
+    "hl7.charset": "MSH-18 names an unsupported character set, or the bytes do not fit it",
+    "json.invalid": "a line of a FHIR JSON Lines file is not JSON",
+    "hl7.no_control_id": "MSH-10 (message control id) is missing",
+    "hl7.too_large": "an MLLP frame is larger than the listener accepts",
+    "hl7.delivery": "the result message could not be filed or forwarded",
     "hl7.repetition": "a field repeats where one value is expected",
     "hl7.bad_date": "a date/time field is not in the form YYYYMMDD[HHMM[SS]]",
     # codes

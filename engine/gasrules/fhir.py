@@ -432,7 +432,8 @@ def _concept_text(concept: Any) -> str:
 # ============================================================================ writing
 def result_to_fhir(result: Mapping[str, Any], case_inputs_refs: Mapping[str, str], *,
                    rulebook_info: Any, subject: str | None = None,
-                   effective: str | None = None, issued: str | None = None) -> dict[str, Any]:
+                   effective: str | None = None, issued: str | None = None,
+                   codesystem_url: str = CODE_SYSTEM_BASE) -> dict[str, Any]:
     """One engine result as a FHIR R4 Bundle (type collection).
 
     ``case_inputs_refs`` maps input names to references of the Observations they came from
@@ -440,7 +441,11 @@ def result_to_fhir(result: Mapping[str, Any], case_inputs_refs: Mapping[str, str
     Provenance entities. ``rulebook_info`` is the rulebook (or a mapping with id, version,
     sha256); it must be the one named in ``result["rulebook"]``. Resource ids are derived from
     the content, so the same result gives the same Bundle; ``issued`` defaults to now (UTC).
+    Project codes are under ``codesystem_url`` (``<base>/disorder`` etc.); derived values and
+    disorders also carry the LOINC / SNOMED CT codes of :mod:`gasrules.terminology`.
     """
+    cs = {k: f"{codesystem_url.rstrip('/')}/{k}" for k in
+          ("report", "finding", "disorder", "qualifier", "value")}
     rulebook = _rulebook_fields(rulebook_info)
     claimed = result.get("rulebook") or {}
     for key in ("id", "version", "sha256"):
@@ -460,7 +465,7 @@ def result_to_fhir(result: Mapping[str, Any], case_inputs_refs: Mapping[str, str
         common["subject"] = {"reference": subject}
     if effective:
         common["effectiveDateTime"] = effective
-    report_code = {"coding": [{"system": REPORT_CS, "code": "blood-gas-interpretation",
+    report_code = {"coding": [{"system": cs["report"], "code": "blood-gas-interpretation",
                                "display": "Blood gas interpretation (rule-based)"}],
                    "text": "Blood gas interpretation"}
     headline = str(result.get("headline") or "")
@@ -479,7 +484,7 @@ def result_to_fhir(result: Mapping[str, Any], case_inputs_refs: Mapping[str, str
         observation["note"] = [{"text": n} for n in notes]
     if refs:
         observation["derivedFrom"] = [{"reference": r} for r in refs]
-    components = _components(result, set(case_inputs_refs))
+    components = _components(result, set(case_inputs_refs), cs)
     if components:
         observation["component"] = components
     report: dict[str, Any] = {
@@ -491,7 +496,7 @@ def result_to_fhir(result: Mapping[str, Any], case_inputs_refs: Mapping[str, str
         "conclusion": headline,
         "text": {"status": "generated", "div": _narrative(result, notes)},
     }
-    conclusion_codes = _conclusion_codes(result)
+    conclusion_codes = _conclusion_codes(result, cs)
     if conclusion_codes:
         report["conclusionCode"] = conclusion_codes
     device = {"resourceType": "Device", "id": str(ids["device"]),
@@ -547,19 +552,22 @@ def _notes(result: Mapping[str, Any]) -> list[str]:
     return notes
 
 
-def _components(result: Mapping[str, Any], inputs: set[str]) -> list[dict[str, Any]]:
+def _components(result: Mapping[str, Any], inputs: set[str],
+                cs: Mapping[str, str]) -> list[dict[str, Any]]:
+    from .terminology import disorder_codings, value_codings
+
     out: list[dict[str, Any]] = []
     qualifiers = result.get("qualifiers") or {}
     for d in result.get("disorders") or []:
-        concept: dict[str, Any] = {"coding": [{"system": DISORDER_CS, "code": d}]}
+        concept: dict[str, Any] = {"coding": disorder_codings(d, cs["disorder"])}
         if d in qualifiers:
-            concept["coding"].append({"system": QUALIFIER_CS, "code": str(qualifiers[d])})
-        out.append({"code": {"coding": [{"system": REPORT_CS, "code": "disorder"}],
+            concept["coding"].append({"system": cs["qualifier"], "code": str(qualifiers[d])})
+        out.append({"code": {"coding": [{"system": cs["report"], "code": "disorder"}],
                              "text": "Disorder"},
                     "valueCodeableConcept": {**concept, "text": _disorder_text(d, qualifiers)}})
     for f in result.get("findings") or []:
         comp: dict[str, Any] = {
-            "code": {"coding": [{"system": FINDING_CS, "code": f["code"]}],
+            "code": {"coding": [{"system": cs["finding"], "code": f["code"]}],
                      "text": str(f.get("category") or f["code"])},
             "valueString": str(f.get("text") or f["code"])}
         flag = _SEVERITY_FLAG.get(str(f.get("severity")))
@@ -577,7 +585,7 @@ def _components(result: Mapping[str, Any], inputs: set[str]) -> list[dict[str, A
         unit = units.get(name)
         if unit:
             quantity.update({"unit": unit, "system": UCUM_SYSTEM, "code": unit})
-        out.append({"code": {"coding": [{"system": VALUE_CS, "code": name}], "text": name},
+        out.append({"code": {"coding": value_codings(name, cs["value"]), "text": name},
                     "valueQuantity": quantity})
     return out
 
@@ -587,11 +595,13 @@ def _disorder_text(disorder: str, qualifiers: Mapping[str, Any]) -> str:
     return f"{words} ({qualifiers[disorder]})" if disorder in qualifiers else words
 
 
-def _conclusion_codes(result: Mapping[str, Any]) -> list[dict[str, Any]]:
-    codes = [{"coding": [{"system": DISORDER_CS, "code": d}],
+def _conclusion_codes(result: Mapping[str, Any], cs: Mapping[str, str]) -> list[dict[str, Any]]:
+    from .terminology import disorder_codings
+
+    codes = [{"coding": disorder_codings(d, cs["disorder"]),
               "text": _disorder_text(d, result.get("qualifiers") or {})}
              for d in result.get("disorders") or []]
-    codes += [{"coding": [{"system": FINDING_CS, "code": f["code"]}],
+    codes += [{"coding": [{"system": cs["finding"], "code": f["code"]}],
                "text": str(f.get("text") or f["code"])}
               for f in result.get("findings") or [] if f.get("severity") in _SEVERITY_FLAG]
     return codes

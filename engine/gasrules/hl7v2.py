@@ -10,8 +10,8 @@ OBR, OBX, SPM and NTE, and every problem must name its segment occurrence and fi
   \\R\\ \\E\\``, ``\\Xhh\\``, ``\\.br\\``).
 
 Reading (:func:`case_from_hl7`): OBX-3 LOINC codes (coding system ``LN``, first or alternate
-triplet) map to inputs through the rulebook's ``InputSpec.loinc``; OBX-5 (``NM``, or ``SN``
-without comparator) with OBX-6 UCUM units goes to the case as ``{"value", "unit"}``; OBX-11
+triplet) map to inputs through the rulebook's ``InputSpec.loinc``; OBX-5 (``NM``, ``SN``
+without comparator, or ``ST`` when the string is a plain number) with OBX-6 UCUM units goes to the case as ``{"value", "unit"}``; OBX-11
 ``F``/``C``/``U``/``A`` is used, ``P``/``R``/``S`` is preliminary (left out and reported unless
 allowed), ``D``/``W``/``X`` are skipped with a notice. The sample type comes from the LOINC
 System axis, SPM-4 (or OBR-15 before v2.5), and the OBR-4 panel code; age from a 30525-0 OBX or
@@ -316,9 +316,10 @@ class _Reader:
         return reps[0]
 
     def number(self, seg: Segment, name: str, vtype: str) -> None:
-        if vtype not in NUMERIC_TYPES:
+        if vtype not in NUMERIC_TYPES and vtype != "ST":
             self.issue(seg.at(2), "hl7.value_type",
-                       f"value type {vtype or 'missing'!r} for {name}; expected NM or SN")
+                       f"value type {vtype or 'missing'!r} for {name}; expected NM or SN (or "
+                       "ST holding a number)")
             return
         if self.single_value(seg, name) is None:
             return
@@ -340,10 +341,14 @@ class _Reader:
                        "(use value type SN for comparators)")
             return
         if not _NUMBER.fullmatch(text):
+            sent = " sent as ST" if vtype == "ST" else ""
             self.issue(seg.at(5), "value.not_a_number",
-                       f"{name}: {text!r} is not a number (expected digits with a '.' decimal "
-                       "point, e.g. 7.31)")
+                       f"{name}: {text!r}{sent} is not a number (expected digits with a '.' "
+                       "decimal point, e.g. 7.31)")
             return
+        if vtype == "ST":
+            self.issue(seg.at(2), "hl7.numeric_st", f"{name} is sent as ST (string); read as "
+                       "the number it holds", "notice")
         value: float | int = float(text) if "." in text else int(text)
         code, system = self.msg.get(seg, 6, 1), self.msg.get(seg, 6, 3)
         unit = self.builder.unit_for(name, code or self.msg.get(seg, 6, 2),
@@ -501,17 +506,19 @@ def escape(text: str, enc: Encoding = Encoding()) -> str:
 
 
 def result_to_oru(result: dict[str, Any], *, control_id: str, message_time: str,
-                  patient_id: str | None = None, placer_order: str | None = None) -> str:
+                  patient_id: str | None = None, placer_order: str | None = None,
+                  application: str = "GASRULES", facility: str = "GASRULES") -> str:
     """One engine result as an ORU^R01 (v2.5.1) carrying the interpretation, segments
     joined by CR. Every OBX is marked preliminary (P): a clinician confirms it.
 
-    ``message_time`` is an HL7 timestamp (YYYYMMDDHHMM[SS]); ``control_id`` goes to MSH-10.
+    ``message_time`` is an HL7 timestamp (YYYYMMDDHHMM[SS]); ``control_id`` goes to MSH-10;
+    ``application`` and ``facility`` to MSH-3 and MSH-4 (the ``interfaces:`` settings).
     """
     if not _TS.fullmatch(message_time):
         raise ValueError(f"message_time {message_time!r}: expected YYYYMMDD[HHMM[SS]]")
     rulebook = result.get("rulebook") or {}
-    segs = [f"MSH|^~\\&|GASRULES|{escape(str(rulebook.get('id', '')))}|||{message_time}||"
-            f"ORU^R01^ORU_R01|{escape(control_id)}|P|2.5.1"]
+    segs = [f"MSH|^~\\&|{escape(application)}|{escape(facility)}|||{message_time}||"
+            f"ORU^R01^ORU_R01|{escape(control_id)}|P|2.5.1||||||UNICODE UTF-8"]
     if patient_id:
         segs.append(f"PID|1||{escape(patient_id)}")
     report = f"blood-gas-interpretation^Blood gas interpretation^{LOCAL_SYSTEM}"
@@ -520,10 +527,15 @@ def result_to_oru(result: dict[str, Any], *, control_id: str, message_time: str,
     obx: list[tuple[str, str, str, str, str]] = [
         ("ST", report, escape(str(result.get("headline") or "")), "", "")]
     qualifiers = result.get("qualifiers") or {}
+    from .terminology import disorder_snomed, value_loinc
+
     for d in result.get("disorders") or []:
         label = d.replace("_", " ") + (f" ({qualifiers[d]})" if d in qualifiers else "")
-        obx.append(("CWE", f"disorder^Disorder^{LOCAL_SYSTEM}",
-                    f"{escape(d)}^{escape(label)}^{LOCAL_SYSTEM}", "", ""))
+        value = f"{escape(d)}^{escape(label)}^{LOCAL_SYSTEM}"
+        concept = disorder_snomed(d)
+        if concept is not None:   # SNOMED CT first, our own code as the alternate triplet
+            value = f"{concept.code}^{escape(concept.display)}^SCT^" + value
+        obx.append(("CWE", f"disorder^Disorder^{LOCAL_SYSTEM}", value, "", ""))
     for f in result.get("findings") or []:
         obx.append(("ST", f"{escape(str(f['code']))}^^{LOCAL_SYSTEM}",
                     escape(str(f.get("text") or "")), "",
@@ -533,8 +545,11 @@ def result_to_oru(result: dict[str, Any], *, control_id: str, message_time: str,
         if isinstance(value, bool) or not isinstance(value, (int, float)) or value != value:
             continue
         unit = units.get(name) or ""
-        obx.append(("NM", f"{escape(name)}^^{LOCAL_SYSTEM}", repr(value),
-                    f"{escape(unit)}^^UCUM" if unit else "", ""))
+        ident = f"{escape(name)}^^{LOCAL_SYSTEM}"
+        loinc = value_loinc(name)
+        if loinc is not None:     # LOINC first, our own code as the alternate triplet
+            ident = f"{loinc.code}^{escape(loinc.display)}^LN^" + ident
+        obx.append(("NM", ident, repr(value), f"{escape(unit)}^^UCUM" if unit else "", ""))
     for n, (vtype, ident, value, unit, flag) in enumerate(obx, 1):
         segs.append(f"OBX|{n}|{vtype}|{ident}||{value}|{unit}||{flag}|||P")
     notes = [f"Rulebook {rulebook.get('id')} {rulebook.get('version')} sha256:"

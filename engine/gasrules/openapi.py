@@ -106,6 +106,11 @@ def _components() -> dict[str, Any]:
                        "engine_version": string, "uptime_seconds": {"type": "number"},
                        "runtime": {"type": "object"}, "cds_auth": {"enum": ["jwt", "off"]},
                        "limits": {"type": "object"}}},
+        "Ready": {"type": "object", "required": ["status", "rulebook", "admitted"],
+                  "properties": {"status": {"const": "ready"},
+                                 "rulebook": {"type": "object",
+                                              "required": ["id", "version", "sha256"]},
+                                 "admitted": {"type": "object"}}},
         "Coding": coding,
         "CdsDiscovery": {"type": "object", "required": ["services"], "properties": {
             "services": {"type": "array", "items": {
@@ -188,6 +193,16 @@ def openapi_document(rulebook: Any) -> dict[str, Any]:
             "summary": "Rulebook identity, engine version and settings in force",
             "responses": {"200": {"description": "Service is up", **_json(_ref("Health"))},
                           **_errors("500", "503")}}},
+        "/ready": {"get": {
+            "summary": "Readiness: the rulebook is loaded and admitted and the service accepts "
+                       "requests (never held up by the concurrency limit)",
+            "responses": {"200": {"description": "Ready", **_json(_ref("Ready"))},
+                          **_errors("503")}}},
+        "/metrics": {"get": {
+            "summary": "Prometheus text exposition: requests, latency histogram, cases by "
+                       "status, rulebook identity",
+            "responses": {"200": {"description": "Metrics", "content": {
+                "text/plain": {"schema": {"type": "string"}}}}}}},
         "/openapi.json": {"get": {
             "summary": "This description",
             "responses": {"200": {"description": "OpenAPI 3.1 document",

@@ -1,4 +1,4 @@
-"""`gasrules serve`: the HTTP service (standard library only: http.server, threads).
+"""`gasrules serve`: the HTTP service's handlers (the ASGI layer is :mod:`gasrules.asgi`).
 
 Endpoints (all JSON; errors are ``{"error": {"code", "message", "field"?}}``):
 
@@ -15,16 +15,21 @@ Endpoints (all JSON; errors are ``{"error": {"code", "message", "field"?}}``):
   CDS Hooks (:mod:`gasrules.cdshooks`), guarded by the JWT check of :mod:`gasrules.cdsauth`
   when a key configuration is given.
 
-Limits: bodies above ``max_body`` bytes get 413 (before they are read); a body not received
-within ``timeout`` seconds gets 408; a batch above ``max_batch`` cases gets 413; a batch still
-running at ``timeout`` answers the remaining rows as rejected (N in, N out). Status codes: 400
-bad JSON or request, 401/403 bearer check, 404 unknown path or CDS service, 405 method, 411 no
-Content-Length, 412 CDS prefetch missing, 413 too large, 415 content type, 500 internal.
+Limits: bodies above ``max_body`` bytes get 413 (before they are read); a request not received
+within ``timeout`` seconds of its first byte gets 408; a batch above ``max_batch`` cases gets
+413; a batch still running at ``timeout`` fails whole with 503. A JSON body nested deeper than
+``max_depth`` levels, or a case with more than ``max_case_fields`` fields, is a 400 naming the
+place; a response larger than ``response_floor + response_ratio x request bytes`` is refused
+with 413 (``response.too_large``) instead of being sent. Status codes: 400 bad JSON or request,
+401/403 bearer check, 404 unknown path or CDS service, 405 method, 408 too slow, 411 no
+Content-Length, 412 CDS prefetch missing, 413 too large, 415 content type, 500 internal, 503
+busy.
 
 Interpretation goes through an :class:`Interpreter`: the plain engine, or the change-control
 ``Runtime`` (strict mode, decision records, shadow mode) when site settings apply
-(:func:`make_interpreter`). The socket layer (body limits, timeouts) is :mod:`gasrules.httpserver`;
-:class:`App` itself is a plain function of a :class:`Request`.
+(:func:`make_interpreter`). The ASGI layer (body limits, deadlines, probes, metrics) is
+:mod:`gasrules.asgi` on :mod:`gasrules.asgiserver`; :class:`App` itself is a plain function of a
+:class:`Request`.
 """
 
 from __future__ import annotations
@@ -42,6 +47,7 @@ import orjson
 
 from . import __version__, cdshooks
 from .cdsauth import AuthError, TokenVerifier
+from .bodyshape import nested_too_deep, read_line
 from .evaluator import UNREADABLE
 
 __all__ = ["App", "EngineInterpreter", "Interpreter", "Response", "RuntimeInterpreter",
@@ -65,7 +71,18 @@ class ServiceConfig:
     feedback_log: str = "cds-feedback.jsonl"
     access_log: bool = True
     cds_window_minutes: float = 0.0
-    max_connections: int = 256       # connections served at once; more get 503
+    max_connections: int = 1024      # open connections; more get 503 and are closed
+    max_concurrency: int = 64        # API requests in progress; more get 503 (probes exempt)
+    keep_alive: float = 5.0          # seconds an idle keep-alive connection is kept
+    max_depth: int = 32              # nesting levels of a JSON body
+    max_case_fields: int = 256       # fields of one case (inputs, case_id, context, ...)
+    response_floor: int = 8 * 1024 * 1024   # response bytes always allowed ...
+    response_ratio: int = 64                # ... plus this many per request byte
+    cors_origins: tuple[str, ...] = ()      # browser origins allowed to call ("*" for any)
+    http_parser: str = "httptools"          # or "h11"
+    codesystem_url: str | None = None      # project CodeSystem base (interfaces: settings)
+    tls_certfile: str | None = None
+    tls_keyfile: str | None = None
     settings: str | None = None      # site settings file (strict mode, decision records, shadow)
     strict: bool = False             # turn strict mode on whatever the settings say
 
@@ -230,12 +247,34 @@ def _require_type(headers: Mapping[str, str], accepted: tuple[str, ...]) -> str:
     return kind
 
 
-def _parse_json(body: bytes, where: str = "body") -> Any:
+def _parse_json(body: bytes, where: str = "body", max_depth: int | None = None) -> Any:
     try:
-        return orjson.loads(body)
+        data = orjson.loads(body)
     except orjson.JSONDecodeError as exc:
         raise HttpError(400, "json.invalid", f"{where} is not valid JSON: {exc.msg} at line "
                         f"{exc.lineno} column {exc.colno}", where) from None
+    if max_depth is not None:
+        deep = nested_too_deep(data, max_depth)
+        if deep is not None:
+            raise HttpError(400, "json.too_deep", f"{where} nests more than {max_depth} levels "
+                            f"deep at {deep}; at most {max_depth} levels are accepted", deep)
+    return data
+
+
+def _check_fields(case: Any, limit: int, where: str = "body") -> None:
+    if isinstance(case, dict) and len(case) > limit:
+        raise HttpError(400, "request.too_many_fields", f"{where} has {len(case)} fields; a case "
+                        f"has at most {limit} (its inputs, case_id and context)", where)
+
+
+def _grow(size: int, more: int, limit: int, request_bytes: int) -> int:
+    """``size + more``, or 413 when that passes the response bound."""
+    size += more
+    if size > limit:
+        raise HttpError(413, "response.too_large", f"the answer would exceed the {limit} "
+                        f"bytes allowed for a {request_bytes}-byte request; ask with trace=0 "
+                        "or send fewer cases per request", "body")
+    return size
 
 
 def _flag(query: Mapping[str, list[str]], name: str, default: bool) -> bool:
@@ -316,6 +355,27 @@ class App:
                 return methods, params
         return None
 
+    def route_name(self, path: str) -> str:
+        """The endpoint pattern of ``path`` (``/cds-services/{id}``), or ``unmatched``."""
+        parts = tuple(p for p in path.split("/") if p)
+        for pattern, _methods in self.ROUTES:
+            if len(pattern) == len(parts) and all(
+                    w.startswith("{") or w == g for w, g in zip(pattern, parts, strict=True)):
+                return "/" + "/".join(pattern)
+        return "unmatched"
+
+    def response_limit(self, request_bytes: int) -> int:
+        """The largest response body sent for a request body of ``request_bytes``."""
+        return self.config.response_floor + self.config.response_ratio * request_bytes
+
+    def _bounded(self, req: Request, resp: Response) -> Response:
+        limit = self.response_limit(len(req.body))
+        if req.method == "GET" or len(resp.body) <= limit:
+            return resp
+        raise HttpError(413, "response.too_large", f"the answer would be {len(resp.body)} bytes, "
+                        f"more than the {limit} allowed for a {len(req.body)}-byte request; ask "
+                        "with trace=0 or send fewer cases per request", "body")
+
     def handle(self, req: Request) -> Response:
         cds = req.path.startswith("/cds-services")
         try:
@@ -329,7 +389,7 @@ class App:
                 raise HttpError(405, "http.method", f"{req.method} is not allowed on {req.path}; "
                                 f"allowed: {', '.join(methods)}", "method",
                                 {"Allow": ", ".join(methods)})
-            return getattr(self, f"h_{name}")(req)
+            return self._bounded(req, getattr(self, f"h_{name}")(req))
         except HttpError as exc:
             return Response(exc.status, error_body(exc.status, exc.code, exc.message, exc.field,
                                                     cds), headers=exc.headers)
@@ -352,7 +412,7 @@ class App:
     # -- JSON API
     def h_interpret(self, req: Request) -> Response:
         _require_type(req.headers, (JSON, FHIR_JSON))
-        body = _parse_json(req.body)
+        body = _parse_json(req.body, max_depth=self.config.max_depth)
         trace = _flag(req.query, "trace", True)
         want_fhir = _flag(req.query, "fhir", False)
         if _is_fhir(body):
@@ -360,6 +420,7 @@ class App:
         if isinstance(body, list):
             raise HttpError(400, "request.not_a_case", "expected one case (a JSON object) or a "
                             "FHIR Bundle; send lists of cases to /interpret/batch", "body")
+        _check_fields(body, self.config.max_case_fields)
         result = self.interpreter.interpret(body, trace)
         if want_fhir:
             bundle = self._fhir_bundle(result, {}, None, None, ())
@@ -379,8 +440,10 @@ class App:
                      effective: str | None, issues: Any) -> dict[str, Any]:
         from .fhir import result_to_fhir
 
+        extra = {"codesystem_url": self.config.codesystem_url} \
+            if self.config.codesystem_url else {}
         bundle = result_to_fhir(result, refs, rulebook_info=result.get("rulebook") or
-                                self.rulebook, subject=subject, effective=effective)
+                                self.rulebook, subject=subject, effective=effective, **extra)
         if issues:
             severity = {"error": "error", "warning": "warning", "notice": "information"}
             bundle["entry"].append({"fullUrl": f"urn:uuid:{_uuid()}", "resource": {
@@ -395,23 +458,28 @@ class App:
         kind = _require_type(req.headers, (JSON,) + LINES_TYPES)
         trace = _flag(req.query, "trace", True)
         deadline = req.started + self.config.timeout
+        limit = self.response_limit(len(req.body))
         if kind == JSON:
-            rows = _parse_json(req.body)
+            rows = _parse_json(req.body, max_depth=self.config.max_depth + 1)
             if not isinstance(rows, list):
                 raise HttpError(400, "request.not_a_list", "expected a JSON array of cases (or "
                                 f"JSON Lines with Content-Type {NDJSON})", "body")
             self._check_batch_size(len(rows))
-            results = [self._batch_row(row, trace, deadline) for row in rows]
-            return Response(200, dumps(results))
+            for i, row in enumerate(rows):
+                _check_fields(row, self.config.max_case_fields, f"$[{i}]")
+            parts: list[bytes] = []
+            size = 2
+            for row in rows:
+                parts.append(dumps(self._batch_row(row, trace, deadline)))
+                size = _grow(size, len(parts[-1]) + 1, limit, len(req.body))
+            return Response(200, b"[" + b",".join(parts) + b"]")
         lines = [(n, line) for n, line in enumerate(req.body.split(b"\n"), 1) if line.strip()]
         self._check_batch_size(len(lines))
         out = bytearray()
         for n, line in lines:
-            try:
-                row: Any = orjson.loads(line)
-            except orjson.JSONDecodeError as exc:
-                row = {UNREADABLE: f"line {n}: not valid JSON: {exc.msg} at column {exc.colno}"}
+            row: Any = read_line(n, line, self.config.max_depth, self.config.max_case_fields)
             out += dumps(self._batch_row(row, trace, deadline, n)) + b"\n"
+            _grow(0, len(out), limit, len(req.body))
         return Response(200, bytes(out), NDJSON)
 
     def _check_batch_size(self, n: int) -> None:
@@ -450,6 +518,9 @@ class App:
             "cds_auth": "jwt" if self.verifier else "off",
             "limits": {"max_body_bytes": self.config.max_body,
                        "max_connections": self.config.max_connections,
+                       "max_concurrency": self.config.max_concurrency,
+                       "max_depth": self.config.max_depth,
+                       "max_case_fields": self.config.max_case_fields,
                        "timeout_seconds": self.config.timeout,
                        "max_batch_cases": self.config.max_batch}}))
 
@@ -485,7 +556,7 @@ class App:
         self._auth(req, req.params["id"])
         service = self._service(req)
         _require_type(req.headers, (JSON, FHIR_JSON))
-        body = _parse_json(req.body)
+        body = _parse_json(req.body, max_depth=self.config.max_depth)
         context = cdshooks.read_request(body, service)
         window = timedelta(minutes=self.config.cds_window_minutes)
         selection = cdshooks.gather_prefetch(body, context["patientId"], self.rulebook, window)
@@ -504,7 +575,7 @@ class App:
         claims = self._auth(req, req.params["id"])
         service = self._service(req)
         _require_type(req.headers, (JSON,))
-        body = _parse_json(req.body)
+        body = _parse_json(req.body, max_depth=self.config.max_depth)
         records = cdshooks.feedback_records(body, service, self.cards, claims, datetime.now(UTC))
         self.feedback_log.append(records)
         return Response(200, dumps({"recorded": len(records),

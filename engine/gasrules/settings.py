@@ -21,6 +21,10 @@ Settings file (every key optional)::
     shadow:
       rulebook: ../candidate/rulebook.yaml
       log: /srv/gasrules/disagreements.jsonl
+    serve: {...}        # `gasrules serve` (gasrules.servesettings)
+    interfaces: {...}   # HL7 v2 / FHIR output and `gasrules listen` (gasrules.interfaces)
+
+docs/settings.example.yaml is a complete, commented example.
 
 The masking salt is a secret and is read only from the environment (``GASRULES_MASK_SALT``),
 never from the file. Environment variables: GASRULES_RULEBOOK, GASRULES_STRICT (1/0, true/false,
@@ -111,7 +115,9 @@ _TABLE: dict[str, tuple[tuple[str, ...], str, str]] = {
 ENV_VARS = tuple(env for _, env, _ in _TABLE.values())
 _SECTIONS = {"releases": {"dir", "archive"}, "shadow": {"rulebook", "log"},
              "decision_log": {"path", "context_policy", "identifier_keys", "mask_chars", "fsync"}}
-_TOP = {"rulebook", "strict"} | set(_SECTIONS)
+# Sections read by their own modules (servesettings, interfaces), which check their keys.
+_OWN_SECTIONS = {"serve", "interfaces"}
+_TOP = {"rulebook", "strict"} | set(_SECTIONS) | _OWN_SECTIONS
 _TRUE, _FALSE = {"1", "true", "yes", "on"}, {"0", "false", "no", "off"}
 _ACCEPTED = {"path": "a file or directory path", "bool": "true or false (1/0, yes/no, on/off)",
              "policy": " | ".join(CONTEXT_POLICIES), "keys": "a list of key names (comma separated in "

@@ -103,8 +103,8 @@ def batch(
     workers: int = typer.Option(1, "--workers", "-w", min=1, help="Worker processes."),
     mapping: Optional[Path] = typer.Option(None, "--mapping", "-m", help="YAML/JSON file mapping column names to inputs and units."),
     rulebook: Optional[Path] = typer.Option(None, "--rulebook", "-r", help="Rulebook YAML (default: the shipped adult rulebook)."),
-    out_format: Optional[str] = typer.Option(None, "--format", "-f", help="Output format: csv, jsonl or parquet (default: from OUT's suffix)."),
-    in_format: Optional[str] = typer.Option(None, "--in-format", help="Input format when the suffix does not tell: csv, jsonl or parquet."),
+    out_format: Optional[str] = typer.Option(None, "--format", "-f", help="Output format: csv, jsonl, parquet, fhir (a Bundle per case, NDJSON) or hl7 (an ORU^R01 per case) (default: from OUT's suffix; .hl7 is HL7, .fhir.ndjson FHIR)."),
+    in_format: Optional[str] = typer.Option(None, "--in-format", "--input-format", help="Input format when the suffix does not tell: csv, jsonl, parquet, hl7 or fhir (.hl7 is HL7 v2; JSON with a resourceType is FHIR)."),
     full_json: bool = typer.Option(False, "--full-json", help="Add a 'result' column with the whole result and its trace."),
     values: Optional[str] = typer.Option(None, "--values", help="Comma-separated key values to output (default: every reported value)."),
     chunk_size: int = typer.Option(500, "--chunk-size", min=1, help="Rows sent to a worker at a time."),
@@ -119,9 +119,16 @@ def batch(
     from ..batch import BatchOptions, run_batch
     from ..tabular import FORMATS, TableError, load_mapping
 
+    from ..messagebatch import message_formats
+
     for name, fmt in (("--format", out_format), ("--in-format", in_format)):
-        if fmt is not None and fmt not in FORMATS:
-            raise _fail(exitcodes.USAGE, f"{name} '{fmt}' is not one of {', '.join(FORMATS)}")
+        if fmt is not None and fmt not in FORMATS + ("hl7", "fhir"):
+            raise _fail(exitcodes.USAGE, f"{name} '{fmt}' is not one of "
+                        f"{', '.join(FORMATS + ('hl7', 'fhir'))}")
+    msg_in, msg_out = message_formats(str(source), target, in_format, out_format)
+    if (msg_in or msg_out) and (dask or dask_local):
+        raise _fail(exitcodes.USAGE, "HL7 v2 and FHIR files are run on one machine; leave out "
+                    "--dask/--dask-local")
     if dask and dask_local:
         raise _fail(exitcodes.USAGE, "give --dask SCHEDULER or --dask-local N, not both")
     hooks = runtime_hooks(settings_file, rulebook, strict, distributed=bool(dask or dask_local))
@@ -130,7 +137,7 @@ def batch(
         options = BatchOptions(
             workers=workers, chunk_size=chunk_size, full_json=full_json,
             values=tuple(v.strip() for v in values.split(",") if v.strip()) if values else None,
-            in_format=in_format, out_format=out_format,
+            in_format=None if msg_in else in_format, out_format=None if msg_out else out_format,
             mapping=load_mapping(mapping) if mapping else None, progress=progress)
         previous = signal.signal(signal.SIGTERM, _terminate)
         try:
@@ -144,6 +151,9 @@ def batch(
                 finally:
                     if hooks is not None and hooks.close is not None:
                         hooks.close()
+            elif msg_in or msg_out:
+                summary = _run_messages(rb, source, target, options, hooks, msg_in, msg_out,
+                                        settings_file)
             else:
                 summary = run_batch(rb, source, target, options, hooks)
         finally:
@@ -165,3 +175,21 @@ def _load(rulebook: Optional[Path]) -> Any:
     except RulebookError as exc:
         typer.echo(render_problems(exc.problems, str(rulebook or "rulebook")), err=True)
         raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+
+
+def _run_messages(rb: Any, source: Path, target: str, options: Any, hooks: Any,
+                  msg_in: Optional[str], msg_out: Optional[str],
+                  settings_file: Optional[Path]) -> Any:
+    """HL7 v2 or FHIR on either side (gasrules.messagebatch)."""
+    from ..interfaces import interfaces_section
+    from ..messagebatch import run_message_batch
+    from ..settings import SettingsError
+
+    try:
+        settings = interfaces_section(settings_file)
+    except SettingsError as exc:
+        raise _fail(exitcodes.USAGE, str(exc))
+    try:
+        return run_message_batch(rb, source, target, options, hooks, msg_in, msg_out, settings)
+    except OSError as exc:
+        raise _fail(exitcodes.USAGE, f"cannot read or write: {exc}")

@@ -4,6 +4,8 @@
     gasrules interpret cases.jsonl --json
     gasrules interpret --ph 7.26 --pco2 25 --hco3 11 --na 140 --cl 104
     gasrules interpret --ph 7.21 --pco2 8.7kPa --hco3 26 --set sample_type=arterial
+    gasrules interpret results.hl7 --format fhir     # HL7 v2 ORU^R01 in, FHIR Bundles out
+    gasrules interpret bundle.json --format hl7      # FHIR in, ORU^R01 out
 """
 
 from __future__ import annotations
@@ -121,6 +123,8 @@ def interpret(
     chronicity: Optional[str] = typer.Option(None, "--chronicity", help="acute, chronic or unknown."),
     set_: List[str] = typer.Option([], "--set", help="Any input: NAME=VALUE[UNIT], e.g. --set urea=7.1 --set temperature=38.5Cel."),
     settings: Optional[Path] = typer.Option(None, "--settings", help="Site settings (strict mode, decision log, shadow candidate); GASRULES_* variables also apply."),
+    input_format: Optional[str] = typer.Option(None, "--input-format", help="json, jsonl, hl7 or fhir (default: from the file: .hl7 is HL7 v2, JSON with a resourceType is FHIR)."),
+    out_format: Optional[str] = typer.Option(None, "--format", "-f", help="text, json, fhir (a FHIR Bundle per case) or hl7 (a preliminary ORU^R01 per case) [default: text]."),
 ) -> None:
     """Interpret blood gas cases. Exit 0 interpreted or partial, 3 inconsistent, 4 rejected, 5 broken rulebook."""
     from .. import interpret_many, load_rulebook
@@ -139,7 +143,26 @@ def interpret(
         raise typer.BadParameter("give a case file, '-' for stdin, or analyte flags such as --ph 7.26 --pco2 25 --hco3 11")
     if case_file is not None and given:
         raise typer.BadParameter("give either a case file or analyte flags, not both")
-    cases: Any = [given] if case_file is None else read_cases(case_file)
+    if out_format is not None and out_format not in ("text", "json", "fhir", "hl7"):
+        raise typer.BadParameter(f"--format {out_format!r}: accepted: text, json, fhir, hl7")
+    if as_json:
+        out_format = out_format or "json"
+    out_format = out_format or "text"
+    incoming: list[Any] = []
+    fmt = "json"
+    if case_file is not None:
+        from ..interfaces import input_format as detect
+
+        try:
+            fmt = detect(case_file, input_format)
+        except ValueError as exc:
+            raise typer.BadParameter(f"--input-format: {exc}") from None
+    if fmt in ("hl7", "fhir"):
+        incoming = _read_messages(case_file, fmt, rulebook, settings)  # type: ignore[arg-type]
+        cases: Any = [inc.case for inc in incoming]
+    else:
+        cases = [given] if case_file is None else read_cases(case_file)
+    as_json = out_format != "text"
     runtime = _runtime(settings, rulebook)
     if runtime is not None:
         rb = runtime.rulebook
@@ -154,9 +177,17 @@ def interpret(
     worst = exitcodes.OK
     first = True
     counts: dict[str, int] = {}
-    for result in results:
+    messages = _MessageWriter(out_format, incoming, rb, settings)
+    for n, result in enumerate(results):
         counts[result["status"]] = counts.get(result["status"], 0) + 1
-        if as_json:  # the full result contract, trace included
+        if incoming:
+            for issue in incoming[n].issues:
+                if issue.severity != "error":   # errors are in the rejected result itself
+                    typer.echo(f"{incoming[n].case.get('case_id') or f'case {n + 1}'}: "
+                               f"{issue.severity}: {issue}", err=True)
+        if out_format in ("fhir", "hl7"):
+            typer.echo(messages.write(n, result))
+        elif as_json:  # the full result contract, trace included
             typer.echo(json.dumps(result, ensure_ascii=False))
         else:
             if not first:
@@ -172,3 +203,52 @@ def interpret(
     # several cases: each status is in the output; the run itself succeeded
     summary = ", ".join(f"{n} {s}" for s, n in sorted(counts.items()))
     typer.echo(f"{total} cases: {summary}", err=True)
+
+
+def _read_messages(source: str, fmt: str, rulebook: Optional[Path],
+                   settings: Optional[Path]) -> list[Any]:
+    """Cases of an HL7 v2 or FHIR file, one per message or Bundle (gasrules.interfaces)."""
+    from .. import load_rulebook
+    from ..errors import RulebookError
+    from ..interfaces import read_incoming
+    from ..reporters import render_problems
+
+    try:
+        rb = load_rulebook(rulebook)
+    except RulebookError as exc:
+        typer.echo(render_problems(exc.problems, str(rulebook or "default rulebook")), err=True)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+    try:
+        return list(read_incoming(source, fmt, rb.inputs))
+    except OSError as exc:
+        raise typer.BadParameter(f"cannot read {source}: {exc.strerror}") from None
+    except UnicodeDecodeError as exc:
+        raise typer.BadParameter(f"{source} is not UTF-8 text: {exc.reason}") from None
+
+
+class _MessageWriter:
+    """Results as FHIR Bundles (indented for one case, one per line for several) or ORU^R01."""
+
+    def __init__(self, fmt: str, incoming: list[Any], rb: Any, settings: Optional[Path]) -> None:
+        self.fmt, self.incoming, self.rb = fmt, incoming, rb
+        self.settings: Any = None
+        if fmt in ("fhir", "hl7"):
+            from ..interfaces import interfaces_section
+            from ..settings import SettingsError
+
+            try:
+                self.settings = interfaces_section(settings)
+            except SettingsError as exc:
+                typer.echo(f"gasrules: {exc}", err=True)
+                raise typer.Exit(exitcodes.USAGE)
+
+    def write(self, n: int, result: dict[str, Any]) -> str:
+        from ..interfaces import to_fhir, to_hl7
+
+        inc = self.incoming[n] if n < len(self.incoming) else None
+        if self.fmt == "fhir":
+            bundle = to_fhir(result, inc, self.rb, self.settings.codesystem_url)
+            return json.dumps(bundle, ensure_ascii=False,
+                              indent=1 if len(self.incoming) <= 1 else None)
+        control = f"GR-{(inc.control_id if inc and inc.control_id else result.get('case_id')) or n + 1}"
+        return to_hl7(result, inc, self.settings, control)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import sys
 from pathlib import Path
-from typing import Optional
+from typing import Any, Optional
 
 import typer
 
@@ -18,51 +18,73 @@ _CAUTION = ("Decision support only: it supports, and never replaces, clinical ju
 
 @app.command()
 def serve(
-    host: str = typer.Option("127.0.0.1", help="Address to listen on (loopback by default)."),
-    port: int = typer.Option(8080, min=0, max=65535, help="TCP port; 0 picks a free one."),
+    host: Optional[str] = typer.Option(None, help="Address to listen on (default 127.0.0.1)."),
+    port: Optional[int] = typer.Option(None, min=0, max=65535, help="TCP port; 0 picks a free "
+                                       "one (default 8080)."),
     rulebook: Optional[Path] = typer.Option(None, help="Rulebook YAML (default: the shipped "
                                                        "adult rulebook)."),
     cds_keys: Optional[Path] = typer.Option(None, "--cds-keys", help="CDS Hooks client key "
                                             "configuration (JSON or YAML); without it the CDS "
                                             "endpoints take no bearer token."),
-    max_body: int = typer.Option(1_048_576, "--max-body", min=1024, max=1 << 30,
-                                 help="Largest accepted request body, in bytes."),
-    timeout: float = typer.Option(10.0, min=0.1, max=3600, help="Seconds to receive a body "
-                                  "and to finish a batch."),
-    max_batch: int = typer.Option(10_000, "--max-batch", min=1, help="Most cases in one batch "
-                                  "request."),
-    feedback_log: Path = typer.Option(Path("cds-feedback.jsonl"), "--feedback-log",
-                                      help="JSON Lines file for issued cards and CDS feedback."),
-    cds_window: float = typer.Option(0.0, "--cds-window", min=0, max=1440,
-                                     help="Minutes before the blood gas within which other "
-                                          "prefetched results are used (0: same collection "
-                                          "time only)."),
-    max_connections: int = typer.Option(256, "--max-connections", min=1, max=10_000,
-                                        help="Connections served at once; more get 503."),
-    access_log: bool = typer.Option(True, "--access-log/--no-access-log",
-                                    help="One line per request on stderr."),
-    settings: Optional[Path] = typer.Option(None, "--settings", help="Site settings (strict "
-                                            "mode, decision records, shadow candidate); "
-                                            "GASRULES_* variables also apply."),
+    max_body: Optional[int] = typer.Option(None, "--max-body", min=1024, max=1 << 30,
+                                           help="Largest accepted request body, in bytes "
+                                                "(default 1048576)."),
+    timeout: Optional[float] = typer.Option(None, min=0.1, max=3600, help="Seconds from a "
+                                            "request's first byte to the end of its body, and to "
+                                            "finish a batch (default 10)."),
+    max_batch: Optional[int] = typer.Option(None, "--max-batch", min=1, help="Most cases in one "
+                                            "batch request (default 10000)."),
+    feedback_log: Optional[Path] = typer.Option(None, "--feedback-log", help="JSON Lines file "
+                                                "for issued cards and CDS feedback (default "
+                                                "cds-feedback.jsonl)."),
+    cds_window: Optional[float] = typer.Option(None, "--cds-window", min=0, max=1440,
+                                               help="Minutes before the blood gas within which "
+                                                    "other prefetched results are used (default "
+                                                    "0: same collection time only)."),
+    max_connections: Optional[int] = typer.Option(None, "--max-connections", min=1,
+                                                  max=100_000, help="Open connections; more get "
+                                                  "503 (default 1024)."),
+    max_concurrency: Optional[int] = typer.Option(None, "--max-concurrency", min=1, max=10_000,
+                                                  help="API requests in progress; more get 503; "
+                                                       "/health, /ready, /metrics exempt "
+                                                       "(default 64)."),
+    cors_origin: Optional[list[str]] = typer.Option(None, "--cors-origin", help="A browser "
+                                                    "origin allowed to call (repeatable; * for "
+                                                    "any)."),
+    access_log: Optional[bool] = typer.Option(None, "--access-log/--no-access-log",
+                                              help="One JSON log line per request on stderr "
+                                                   "(default on)."),
+    settings: Optional[Path] = typer.Option(None, "--settings", help="Site settings file: its "
+                                            "serve: section sets the options above; strict "
+                                            "mode, decision records, shadow candidate. GASRULES_* "
+                                            "variables also apply."),
     strict: bool = typer.Option(False, "--strict", help="Refuse to start unless the rulebook "
                                 "matches an approved release."),
 ) -> None:
-    """Serve POST /interpret, POST /interpret/batch, GET /health, GET /openapi.json and the
-    CDS Hooks endpoints under /cds-services."""
+    """Serve POST /interpret, POST /interpret/batch, GET /health, /ready, /metrics,
+    /openapi.json and the CDS Hooks endpoints under /cds-services (uvicorn, ASGI)."""
     from ..cdsauth import ConfigError
     from ..errors import RulebookError
     from ..runtime import RuntimeRefusal
-    from ..httpserver import make_server
     from ..service import ServiceConfig, build_app
+    from ..servesettings import serve_section
     from ..settings import SettingsError
 
-    config = ServiceConfig(host=host, port=port, rulebook=str(rulebook) if rulebook else None,
-                           cds_keys=str(cds_keys) if cds_keys else None, max_body=max_body,
-                           timeout=timeout, max_batch=max_batch, feedback_log=str(feedback_log),
-                           access_log=access_log, cds_window_minutes=cds_window,
-                           settings=str(settings) if settings else None, strict=strict,
-                           max_connections=max_connections)
+    flags: dict[str, Any] = {
+        "host": host, "port": port, "cds_keys": cds_keys and str(cds_keys),
+        "max_body": max_body, "timeout": timeout, "max_batch": max_batch,
+        "feedback_log": feedback_log and str(feedback_log), "cds_window_minutes": cds_window,
+        "max_connections": max_connections, "max_concurrency": max_concurrency,
+        "cors_origins": tuple(cors_origin) if cors_origin else None, "access_log": access_log}
     try:
+        from ..interfaces import interfaces_section
+
+        values = {**serve_section(settings),
+                  **{k: v for k, v in flags.items() if v is not None},
+                  "codesystem_url": interfaces_section(settings).codesystem_url}
+        config = ServiceConfig(rulebook=str(rulebook) if rulebook else None,
+                               settings=str(settings) if settings else None, strict=strict,
+                               **values)
         service = build_app(config)
     except RulebookError as exc:
         for problem in getattr(exc, "problems", ()):
@@ -76,20 +98,34 @@ def serve(
         typer.echo(f"gasrules serve: {exc}", err=True)
         raise typer.Exit(USAGE) from None
     try:
-        server = make_server(service)
+        from ..asgi import asgi_app
+        from ..asgiserver import make_server
+    except ModuleNotFoundError as exc:
+        service.close()
+        typer.echo(f"gasrules serve: {exc.name} is not installed; install the serve extra: "
+                   "pip install 'gasrules[serve]'", err=True)
+        raise typer.Exit(USAGE) from None
+
+    try:
+        server = make_server(asgi_app(service), config.host, config.port,
+                             request_timeout=config.timeout, keep_alive=config.keep_alive,
+                             max_connections=config.max_connections,
+                             parser=config.http_parser, ssl_certfile=config.tls_certfile, ssl_keyfile=config.tls_keyfile)
     except OSError as exc:
         service.close()
-        typer.echo(f"gasrules serve: cannot listen on {host}:{port}: {exc.strerror}", err=True)
+        typer.echo(f"gasrules serve: cannot listen on {config.host}:{config.port}: "
+                   f"{exc.strerror}", err=True)
         raise typer.Exit(USAGE) from None
     bound_host, bound_port = server.server_address[:2]
+    scheme = "https" if config.tls_certfile else "http"
     rb = service.rulebook
     if service.verifier is not None and service.verifier.config.audience is None:
-        service.verifier.audience_base = f"http://{bound_host}:{bound_port}"
+        service.verifier.audience_base = f"{scheme}://{bound_host}:{bound_port}"
     if service.verifier is not None:
         auth = f"CDS bearer JWT required (aud base {service.verifier.audience_base})"
     else:
         auth = "CDS endpoints open (no --cds-keys)"
-    typer.echo(f"gasrules serve: listening on http://{bound_host}:{bound_port} "
+    typer.echo(f"gasrules serve: listening on {scheme}://{bound_host}:{bound_port} "
                f"(rulebook {rb.id} {rb.version} sha256:{rb.sha256[:12]}; {auth})")
     mode = service.interpreter.describe()
     if mode["mode"] == "runtime":
@@ -98,26 +134,12 @@ def serve(
                    f"{'on' if mode['shadow'] else 'off'}")
     typer.echo(_CAUTION)
     sys.stdout.flush()
+    restore = server.stop_on_signals()   # SIGINT, SIGTERM: finish what is in progress, exit 0
     try:
-        _run(server)
+        server.serve_forever()
     finally:
+        restore()
+        server.server_close()
         service.close()
-    raise typer.Exit(OK)
-
-
-def _run(server: object) -> None:
-    import signal
-    import threading
-
-    def stop(*_: object) -> None:
-        threading.Thread(target=server.shutdown, daemon=True).start()  # type: ignore[attr-defined]
-
-    previous = signal.signal(signal.SIGTERM, stop)
-    try:
-        server.serve_forever()  # type: ignore[attr-defined]
-    except KeyboardInterrupt:
-        pass
-    finally:
-        signal.signal(signal.SIGTERM, previous)
-        server.server_close()  # type: ignore[attr-defined]
         typer.echo("gasrules serve: stopped", err=True)
+    raise typer.Exit(OK)

@@ -1,4 +1,10 @@
-"""The socket layer of `gasrules serve`: http.server with threads, keep-alive, body limits.
+"""FOR BENCHMARK COMPARISON ONLY: the former socket layer of `gasrules serve` (http.server with
+threads), kept so that tools/bench_serve.py can measure it side by side with the ASGI service.
+It is not part of the package and not a supported way to serve. Run as a script:
+
+    python tools/bench/old_httpserver.py --port 0      # prints "listening on http://HOST:PORT"
+
+Original description follows.
 
 Reads each request body itself so that limits hold before the body is used: no Content-Length
 or a chunked body gets 411, a body above ``max_body`` gets 413 (drained first when small enough
@@ -17,8 +23,8 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Any
 from urllib.parse import parse_qs, urlsplit
 
-from . import __version__
-from .service import App, Request, Response, error_body
+from gasrules import __version__
+from gasrules.service import App, Request, Response, error_body
 
 __all__ = ["GasrulesServer", "make_server"]
 
@@ -176,3 +182,28 @@ def make_server(app: App, host: str | None = None, port: int | None = None) -> G
     return GasrulesServer((host or app.config.host,
                            app.config.port if port is None else port), handler,
                           app.config.max_connections)
+
+
+def main(argv: list[str] | None = None) -> int:
+    import argparse
+
+    from gasrules.service import ServiceConfig, build_app
+
+    ap = argparse.ArgumentParser(description="the former http.server service, for benchmarks")
+    ap.add_argument("--port", type=int, default=0)
+    ap.add_argument("--feedback-log", default="/tmp/old-httpserver-feedback.jsonl")
+    args = ap.parse_args(argv)
+    config = ServiceConfig(host="127.0.0.1", port=args.port, feedback_log=args.feedback_log,
+                           access_log=False, max_connections=256)
+    server = make_server(build_app(config, environ={}))
+    host, port = server.server_address[:2]
+    print(f"old http.server: listening on http://{host}:{port}", flush=True)
+    try:
+        server.serve_forever()
+    except KeyboardInterrupt:
+        pass
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
