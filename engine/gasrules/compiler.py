@@ -89,7 +89,8 @@ def build(res: Resolved) -> CompiledRulebook:
         steps=steps, presentation=presentation, display_units=display, plan=plan,
         value_names=value_names, source=source, sha256=sha,
         files=tuple(d.file for d in res.documents), cutpoints=cutpoints,
-        warnings=tuple(p for p in problems if p.is_warning), engine_version=__version__)
+        warnings=tuple(p for p in problems if p.is_warning), engine_version=__version__,
+        sha256_v1=identity_hash(res, 1))
     link(compiled)
     return compiled
 
@@ -464,8 +465,45 @@ def _order(derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> tuple[list
 
 # ----------------------------------------------------------------------------- identity
 
+HASH_SCHEME = 2
+"""Identity hash scheme of rulebooks compiled now. 1 (before): inputs, parameters, derived values,
+rules and suspensions only. 2: the whole resolved rulebook except lifecycle metadata."""
+LIFECYCLE_METADATA = ("status", "changelog")
+
+
+def resolved_document(res: Resolved, extra_suspensions: Iterable[tuple[str, str]] = ()) -> dict[str, Any]:
+    """One self-contained rulebook document with the resolved content of ``res`` (what the
+    archive stores and what identity scheme 2 hashes)."""
+    doc: dict[str, Any] = {"format": "gasrules/1", "metadata": res.metadata}
+    if res.display_units:
+        doc["display_units"] = res.display_units
+    for section in ("steps", "inputs", "parameters", "derived"):
+        doc[section] = {name: body for name, (body, _ref) in getattr(res, section).items()}
+    doc["rules"] = [body for body, _ref in res.rules]
+    suspend = [{"rule": rule, "reason": why} for rule, why, _ref in res.suspensions]
+    suspend += [{"rule": rule, "reason": why} for rule, why in extra_suspensions]
+    if suspend:
+        doc["suspend"] = suspend
+    if res.presentation:
+        doc["presentation"] = res.presentation
+    constraints = getattr(res, "constraints", None)
+    if constraints:
+        doc["constraints"] = [body for body, _ref in constraints]
+    return doc
+
+
+def identity_content(res: Resolved) -> dict[str, Any]:
+    """What the identity hash (scheme 2) covers: everything a user can see or that decides a
+    result, i.e. the whole resolved rulebook except lifecycle metadata (status, changelog).
+    Release and approval records live in manifests, outside the rulebook."""
+    doc = dict(resolved_document(res))
+    doc.pop("format", None)
+    doc["metadata"] = {k: v for k, v in res.metadata.items() if k not in LIFECYCLE_METADATA}
+    return doc
+
+
 def canonical_content(res: Resolved) -> dict[str, Any]:
-    """What the identity hash covers: resolved clinical content, not lifecycle metadata."""
+    """What identity scheme 1 covered (kept so releases and records made under it still verify)."""
     rules = []
     for body, _ in res.rules:
         r = dict(body)
@@ -497,8 +535,9 @@ def _numbers(data: Any) -> Any:
     return data
 
 
-def identity_hash(res: Resolved) -> str:
-    return hashlib.sha256(canonical_json(canonical_content(res))).hexdigest()
+def identity_hash(res: Resolved, scheme: int = HASH_SCHEME) -> str:
+    content = identity_content(res) if scheme == 2 else canonical_content(res)
+    return hashlib.sha256(canonical_json(content)).hexdigest()
 
 
 def _display_units(raw: dict[str, Any]) -> dict[str, tuple[str, int | None]]:

@@ -7,7 +7,8 @@ bumped as far as the change needs), refuses an approver who is also an author of
 archives the resolved rulebook by its sha256 (:mod:`gasrules.registry`) and writes a sealed
 release manifest. Every reason for refusing is collected, so one run lists them all.
 
-Manifest (``gasrules-release/1``)::
+Manifest (``gasrules-release/1``; ``hash_scheme`` 2: the sha256 covers the whole resolved
+rulebook except metadata.status and metadata.changelog; manifests without it are scheme 1)::
 
     rulebook  {id, version, sha256, title, files [{path, sha256}]}
     archive   {sha256, file}                     where the resolved rulebook is kept
@@ -191,7 +192,7 @@ def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: li
     markdown = ""
     if prev is not None:
         prev_sha = str(prev.rulebook.get("sha256", ""))
-        if prev_sha == rb.sha256:
+        if rb.matches_sha256(prev_sha):
             reasons.append(("release.exists", f"this content is already released in {prev.path.name}"))
         try:
             old_rb = load_archived(archive_dir, prev_sha)

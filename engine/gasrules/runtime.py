@@ -71,14 +71,18 @@ def admit(rb: Any, settings: Settings) -> Admission:
             raise RuntimeRefusal("strict.no_release_dir", f"strict mode is on but no release directory is set, so "
                                  f"{_describe(rb)} cannot be matched to an approved release (set "
                                  "GASRULES_RELEASE_DIR or releases.dir)")
-        found, entries = approvals_for(release_dir, rb.sha256)
+        found, entries = approvals_for(release_dir, rb.sha256, legacy_sha256=getattr(rb, "sha256_v1", ""),
+                                       archive=settings.archive)
         if found is None:
             raise RuntimeRefusal("strict.not_approved", _why_not_approved(rb, entries, release_dir))
         manifest = found.path
     if release_dir is None:
         return Admission(rb, rb.sha256, manifest)
     try:
-        state = suspension_state(read_suspensions(release_dir), rb.sha256)
+        events = read_suspensions(release_dir)
+        state = suspension_state(events, rb.sha256)
+        if not state.suspended and not state.rules and getattr(rb, "sha256_v1", ""):
+            state = suspension_state(events, rb.sha256_v1)  # suspensions filed under hash scheme 1
     except RegistryError as exc:
         raise RuntimeRefusal("registry.damaged", f"the suspension register cannot be trusted: {exc}") from None
     if state.suspended:
@@ -107,6 +111,12 @@ def _why_not_approved(rb: Any, entries: list[Any], release_dir: Path) -> str:
     head = f"{_describe(rb)} matches no approved release in {release_dir}"
     if damaged:
         return f"{head}: its manifest {damaged[0].path.name} {damaged[0].problem}"
+    legacy = [e for e in entries if not e.problem and getattr(rb, "sha256_v1", "")
+              and e.rulebook.get("sha256") == rb.sha256_v1]
+    if legacy:
+        return (f"{head}: {legacy[0].path.name} approved it under identity hash scheme 1, which did not cover "
+                "texts, labels, steps, presentation or display units, and the rulebook archived at that release "
+                "is missing or differs from this one in them (release it again)")
     if same:
         other = same[-1].rulebook.get("sha256", "")
         return (f"{head}: version {rb.version} was approved with content sha256 {str(other)[:16]}...; "
