@@ -138,3 +138,48 @@ def test_legacy_decision_records_replay_with_the_archive(legacy: Path) -> None:
                         gasrules.interpret)
     assert report.ok, report.outcomes
     assert report.counts["same"] == 2
+
+
+# ---------------------------------------------------------------- the governed Python API
+
+def test_runtime_is_the_governed_python_api(tmp_path: Path, mini_data: dict[str, Any]) -> None:
+    path = _write(tmp_path / "book.yaml", mini_data)
+    assert gasrules.Runtime is Runtime and "Runtime" in gasrules.__all__
+    release_dir = tmp_path / "rel"
+    with pytest.raises(gasrules.RuntimeRefusal):     # strict, nothing approved
+        gasrules.Runtime.open(path, env={"GASRULES_STRICT": "1", "GASRULES_RELEASE_DIR": str(release_dir)})
+    rb = gasrules.load_rulebook(path)
+    registry.write_manifest(release_dir, {"format": registry.MANIFEST_FORMAT, "rulebook": rb.identity})
+    log = tmp_path / "d.jsonl"
+    with gasrules.Runtime.open(path, env={"GASRULES_STRICT": "1", "GASRULES_RELEASE_DIR": str(release_dir),
+                                          "GASRULES_DECISION_LOG": str(log), "GASRULES_LOG_FSYNC": "0"}) as rt:
+        got = rt.interpret({"ph": 7.40, "pco2": 40, "hco3": 24})
+    assert got == gasrules.interpret(rb, {"ph": 7.40, "pco2": 40, "hco3": 24})   # the pure function agrees
+    assert verify_log(log).entries == 1
+
+
+def test_interpret_command_and_service_go_through_the_runtime(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                                             mini_data: dict[str, Any]) -> None:
+    """With no settings at all, both still open the governed Runtime."""
+    from typer.testing import CliRunner
+
+    from gasrules import runtime as runtime_module
+    from gasrules.commands import interpret as interpret_command
+    from gasrules.service import ServiceConfig, make_interpreter
+
+    opened: list[Any] = []
+    real = runtime_module.Runtime.from_settings.__func__
+
+    def spy(cls: Any, settings: Any, rulebook: Any = None) -> Any:
+        opened.append(rulebook)
+        return real(cls, settings, rulebook)
+
+    monkeypatch.setattr(runtime_module.Runtime, "from_settings", classmethod(spy))
+    path = _write(tmp_path / "book.yaml", mini_data)
+    result = CliRunner().invoke(interpret_command.app, ["--rulebook", str(path), "--ph", "7.4", "--pco2", "40",
+                                      "--hco3", "24"])
+    assert result.exit_code == 0, result.output
+    interp = make_interpreter(ServiceConfig(rulebook=path), environ={})
+    interp.close()
+    assert len(opened) == 2
+

@@ -152,6 +152,17 @@ class Runtime:
             raise
 
     @classmethod
+    def open(cls, rulebook: str | Path | None = None, *, settings_file: str | Path | None = None,
+             env: Any = None, **overrides: Any) -> Runtime:
+        """The governed entry point of the Python API: settings from ``settings_file``, the
+        GASRULES_* environment (``env``, default os.environ) and ``overrides`` (Settings field
+        names, e.g. ``strict=True``), exactly as the command line reads them; then the rulebook
+        (``rulebook``, else the settings', else the shipped one) is loaded and admitted."""
+        from .settings import load_settings
+
+        return cls.from_settings(load_settings(settings_file, env=env, **overrides), rulebook)
+
+    @classmethod
     def from_settings(cls, settings: Settings, rulebook: str | Path | None = None) -> Runtime:
         """Load the active rulebook (``rulebook``, else settings.rulebook, else the shipped one)
         and the shadow candidate named in the settings. RulebookError for a broken rulebook,

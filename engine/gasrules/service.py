@@ -164,18 +164,16 @@ def _settings_apply(config: "ServiceConfig", environ: Mapping[str, str]) -> bool
 
 def make_interpreter(config: ServiceConfig, environ: Mapping[str, str] | None = None
                      ) -> Interpreter:
-    """The Runtime when site settings apply (``config.settings``, ``config.strict`` or GASRULES_*
-    variables), else the plain engine. Raises RulebookError, RuntimeRefusal, SettingsError."""
+    """The governed :class:`gasrules.Runtime` under the site settings (``config.settings``,
+    ``config.strict``, GASRULES_* variables; defaults when none apply: no strict mode, no
+    decision log, suspensions honoured when a release directory is set).
+    Raises RulebookError, RuntimeRefusal, SettingsError."""
     import os
 
-    environ = os.environ if environ is None else environ
-    if not _settings_apply(config, environ):
-        import gasrules
-
-        return EngineInterpreter(gasrules.load_rulebook(config.rulebook))
     from .runtime import Runtime
     from .settings import load_settings
 
+    environ = os.environ if environ is None else environ
     settings = load_settings(config.settings, env=environ,
                              strict=True if config.strict else None)
     return RuntimeInterpreter(Runtime.from_settings(settings, config.rulebook))

@@ -76,12 +76,8 @@ def _looks_like_jsonl(text: str) -> bool:
 
 
 def _runtime(settings_file: Optional[Path], rulebook: Optional[Path]) -> Any:
-    """A Runtime when site settings apply (a --settings file or GASRULES_* variables), else None,
-    so that the plain path imports nothing more than the engine."""
-    import os
-
-    if settings_file is None and not any(k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in os.environ):
-        return None
+    """The governed Runtime under the site settings (a --settings file, GASRULES_* variables,
+    else the defaults): every interpretation goes through it."""
     from ..errors import RulebookError
     from ..reporters import render_problems
     from ..runtime import Runtime, RuntimeRefusal
@@ -123,9 +119,7 @@ def interpret(
     settings: Optional[Path] = typer.Option(None, "--settings", help="Site settings (strict mode, decision log, shadow candidate); GASRULES_* variables also apply."),
 ) -> None:
     """Interpret blood gas cases. Exit 0 interpreted or partial, 3 inconsistent, 4 rejected, 5 broken rulebook."""
-    from .. import interpret_many, load_rulebook
-    from ..errors import RulebookError
-    from ..reporters import render_problems, render_result
+    from ..reporters import render_result
 
     flags = {"ph": ph, "pco2": pco2, "po2": po2, "hco3": hco3, "na": na, "k": k, "cl": cl, "albumin": albumin,
              "lactate": lactate, "fio2": fio2, "age": age, "sample_type": sample_type, "chronicity": chronicity}
@@ -141,16 +135,8 @@ def interpret(
         raise typer.BadParameter("give either a case file or analyte flags, not both")
     cases: Any = [given] if case_file is None else read_cases(case_file)
     runtime = _runtime(settings, rulebook)
-    if runtime is not None:
-        rb = runtime.rulebook
-        results = runtime.interpret_many(cases, trace=as_json or trace)
-    else:
-        try:
-            rb = load_rulebook(rulebook)
-        except RulebookError as exc:
-            typer.echo(render_problems(exc.problems, str(rulebook or "default rulebook")), err=True)
-            raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
-        results = interpret_many(rb, cases, trace=as_json or trace)
+    rb = runtime.rulebook
+    results = runtime.interpret_many(cases, trace=as_json or trace)
     worst = exitcodes.OK
     first = True
     counts: dict[str, int] = {}
