@@ -1,20 +1,29 @@
 """Load a rulebook through the pipeline, or from the compiled-rulebook cache.
 
-load -> validate -> resolve overlays -> compile runs only on a cache miss. The cache key is
-the sha256 of the engine version, the engine modules that shape a compiled rulebook, the
-schema, and the raw bytes of every file in the `extends` chain, so any edit to any of them is a
-miss. The cache lives in $GASRULES_CACHE_DIR, else $XDG_CACHE_HOME/gasrules, else
-~/.cache/gasrules; when it cannot be written, rulebooks are simply compiled every time.
+load -> validate -> resolve overlays -> compile runs only on a cache miss. The cache key is the
+sha256 of the Python version, the working directory (locations are shown relative to it), a hash
+of the whole package source (every file under gasrules/ and the schemas), and every file of the
+`extends` chain: the chain is followed through the parsed documents (YAML or JSON, never matched
+as text) and each file's bytes are hashed (its content and the line of everything in it, which
+results and traces show), so an edit to any of them is a miss.
+
+The cache lives in $GASRULES_CACHE_DIR, else $XDG_CACHE_HOME/gasrules, else ~/.cache/gasrules.
+A pickle is code: entries are read and written only when that directory is owned by the current
+user and writable by no one else (created with mode 0700 when missing); otherwise the cache is
+skipped, with one :class:`CacheWarning` per directory and process, and rulebooks are compiled
+every time. When the directory cannot be written, rulebooks are simply compiled every time.
 """
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import os
 import pickle
-import re
+import stat
 import sys
 import tempfile
+import warnings
 from pathlib import Path
 
 from . import __version__
@@ -22,8 +31,15 @@ from .errors import Problem, RulebookError
 from .model import CompiledRulebook
 from .resources import schema_path
 
-_EXTENDS = re.compile(rb"^extends:\s*['\"]?([^'\"\s#]+)", re.M)
-_SHAPERS = ("compiler.py", "codegen.py", "expressions.py", "model.py", "evaluator.py", "trace.py", "overlay.py", "units.py")
+__all__ = ["CacheWarning", "cache_dir", "cache_key", "cache_usable", "compile_path", "check_path", "load",
+           "package_source_hash"]
+
+
+class CacheWarning(UserWarning):
+    """The compiled-rulebook cache is skipped (its directory is not safe to load pickles from)."""
+
+
+_WARNED: set[str] = set()
 
 
 def cache_dir() -> Path:
@@ -34,26 +50,91 @@ def cache_dir() -> Path:
     return Path(base) / "gasrules"
 
 
+@functools.lru_cache(maxsize=1)
+def package_source_hash() -> str:
+    """sha256 over (relative name, bytes) of every source file of the package and the schemas."""
+    here = Path(__file__).resolve().parent
+    h = hashlib.sha256()
+    roots = [(here, "gasrules"), (schema_path("rulebook.schema.json").parent, "schemas")]
+    for root, label in roots:
+        for path in sorted(p for p in root.rglob("*") if p.is_file() and "__pycache__" not in p.parts
+                           and p.suffix not in (".pyc", ".pyo")):
+            h.update(f"{label}/{path.relative_to(root).as_posix()}\0".encode("utf-8", "surrogateescape"))
+            h.update(hashlib.sha256(path.read_bytes()).digest())
+    return h.hexdigest()
+
+
+def _chain_content(path: str | Path) -> list[tuple[str, bytes]] | None:
+    """(resolved path, bytes) for every file of the chain, found by parsing each one, base last;
+    None when a file cannot be read or parsed (the pipeline will say why)."""
+    from .loader import load_document
+
+    out: list[tuple[str, bytes]] = []
+    current: Path | None = Path(path)
+    seen: set[Path] = set()
+    while current is not None:
+        real = current.resolve()
+        if real in seen:
+            return None
+        seen.add(real)
+        doc, problems = load_document(current)
+        if doc is None or problems:
+            return None
+        data = doc.data
+        out.append((str(real), doc.raw))
+        ext = data.get("extends") if isinstance(data, dict) else None
+        current = current.parent / ext if isinstance(ext, str) and ext else None
+    return out
+
+
 def cache_key(path: str | Path) -> str | None:
-    h = hashlib.sha256(__version__.encode() + sys.version.encode())  # marshalled code is per Python
+    h = hashlib.sha256(__version__.encode() + b"\0" + sys.version.encode() + b"\0")  # marshalled code is per Python
     # locations are shown relative to the working directory that compiled the rulebook
     h.update(os.getcwd().encode("utf-8", "surrogateescape") + b"\0")
-    here = Path(__file__).resolve().parent
     try:
-        for name in _SHAPERS:
-            h.update((here / name).read_bytes())
-        h.update(schema_path("rulebook.schema.json").read_bytes())
-        current: Path | None = Path(path).resolve()
-        seen: set[Path] = set()
-        while current is not None and current not in seen:
-            seen.add(current)
-            raw = current.read_bytes()
-            h.update(str(current).encode() + b"\0" + raw)
-            m = _EXTENDS.search(raw)
-            current = (current.parent / m.group(1).decode()).resolve() if m else None
-    except OSError:
+        h.update(package_source_hash().encode() + b"\0")
+        chain = _chain_content(path)
+    except (OSError, RecursionError):
         return None
+    if chain is None:
+        return None
+    for name, content in chain:
+        h.update(name.encode("utf-8", "surrogateescape") + b"\0" + hashlib.sha256(content).digest())
     return h.hexdigest()
+
+
+def cache_usable(directory: Path) -> bool:
+    """True when ``directory`` (created 0700 when missing) is owned by this user and writable
+    by no one else; else False, with one CacheWarning per directory and process."""
+    try:
+        directory.mkdir(mode=0o700, parents=True, exist_ok=True)
+        st = os.stat(directory, follow_symlinks=False)
+    except OSError:
+        return False
+    why = ""
+    if not stat.S_ISDIR(st.st_mode):
+        why = "is not a directory"
+    elif hasattr(os, "getuid") and st.st_uid != os.getuid():
+        why = f"is owned by user id {st.st_uid}, not by the current user"
+    elif st.st_mode & (stat.S_IWGRP | stat.S_IWOTH):
+        why = f"is writable by other users (mode {stat.S_IMODE(st.st_mode):o})"
+    if not why:
+        return True
+    if str(directory) not in _WARNED:
+        _WARNED.add(str(directory))
+        warnings.warn(f"gasrules: compiled-rulebook cache skipped: {directory} {why}; rulebooks are compiled "
+                      "every time (use a directory of your own with mode 0700, e.g. set GASRULES_CACHE_DIR)",
+                      CacheWarning, stacklevel=3)
+    return False
+
+
+def _entry_safe(target: Path) -> bool:
+    try:
+        st = os.stat(target, follow_symlinks=False)
+    except OSError:
+        return False
+    return (stat.S_ISREG(st.st_mode) and not (st.st_mode & (stat.S_IWGRP | stat.S_IWOTH))
+            and (not hasattr(os, "getuid") or st.st_uid == os.getuid()))
 
 
 def compile_path(path: str | Path) -> CompiledRulebook:
@@ -85,11 +166,12 @@ def check_path(path: str | Path) -> list[Problem]:
 
 def load(path: str | Path, use_cache: bool = True) -> CompiledRulebook:
     key = cache_key(path) if use_cache else None
-    target = cache_dir() / f"{key}.pickle" if key else None
-    if target is not None and target.is_file():
+    directory = cache_dir()
+    target = directory / f"{key}.pickle" if key and cache_usable(directory) else None
+    if target is not None and _entry_safe(target):
         try:
             with open(target, "rb") as fh:
-                compiled = pickle.load(fh)  # noqa: S301 - our own cache, keyed by content hash
+                compiled = pickle.load(fh)  # noqa: S301 - own directory, keyed by content hash
             if isinstance(compiled, CompiledRulebook):
                 return compiled
         except Exception:  # a damaged cache entry is a miss
@@ -102,8 +184,7 @@ def load(path: str | Path, use_cache: bool = True) -> CompiledRulebook:
 
 def _store(target: Path, compiled: CompiledRulebook) -> None:
     try:
-        target.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(dir=target.parent, suffix=".tmp")
+        fd, tmp = tempfile.mkstemp(dir=target.parent, suffix=".tmp")   # mode 0600
         with os.fdopen(fd, "wb") as fh:
             pickle.dump(compiled, fh, protocol=pickle.HIGHEST_PROTOCOL)
         os.replace(tmp, target)
