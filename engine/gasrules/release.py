@@ -125,8 +125,10 @@ def _common_root(paths: list[str]) -> Path:
     return Path(os.path.commonpath(resolved)) if resolved else Path.cwd()
 
 
-def _norm(name: str) -> str:
-    return " ".join(name.split()).casefold()
+def _same(a: str, b: str) -> bool:
+    from .people import same_person
+
+    return same_person(a, b)
 
 
 def _authors(rb: Any, given: list[str]) -> list[str]:
@@ -160,7 +162,7 @@ class ReleaseOutcome:
 def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: list[Approver],
             authors: list[str] | None = None, previous: str | Path | None = None, archive: str | Path | None = None,
             validate: Callable[[Path, Any], SuiteSummary] = run_validation,
-            now: Callable[[], str] = utc_now) -> ReleaseOutcome:
+            now: Callable[[], str] = utc_now, roster: Any = None) -> ReleaseOutcome:
     """Gate, archive and record one release. Raises ReleaseRefused (every reason) or RulebookError."""
     from . import __version__, load_rulebook
     from .rulediff import diff_paths, render_markdown
@@ -179,11 +181,24 @@ def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: li
     if not author_names:
         reasons.append(("approval.no_author", "name the author of the change (--author), or list an owner "
                         "with an author role in the rulebook metadata"))
-    own = sorted({a.name for a in approvers if _norm(a.name) in {_norm(x) for x in author_names}})
+    # names compare as read: NFKC, no format characters, case folded, confusable skeleton (people.py)
+    own = sorted({a.name for a in approvers if any(_same(a.name, x) for x in author_names)})
     for name in own:
         reasons.append(("approval.self", f"{name} is an author of this change and cannot approve it"))
-    if len({_norm(a.name) for a in approvers}) < len(approvers):
+    if any(_same(a.name, b.name) for i, a in enumerate(approvers) for b in approvers[i + 1:]):
         reasons.append(("approval.duplicate", "the same person is listed twice as approver"))
+    from .people import match_all
+
+    author_ids, problems = match_all(roster, author_names, "author")
+    reasons += problems
+    approver_ids, problems = match_all(roster, [a.name for a in approvers if a.name], "approver")
+    reasons += problems
+    if roster is not None and not problems:
+        ids = [approver_ids[a.name] for a in approvers if a.name in approver_ids]
+        if set(ids) & set(author_ids.values()):
+            reasons.append(("approval.self", "an approver is, by roster id, an author of this change"))
+        if len(set(ids)) < len(ids):
+            reasons.append(("approval.duplicate", "the same person (roster id) is listed twice as approver"))
     summary = validate(path, rb)
     reasons += summary.gate_problems()
     prev, problems = _previous(release_dir, rb, Path(previous) if previous is not None else None)
@@ -225,7 +240,9 @@ def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: li
                                                "rulebook": {k: prev.rulebook.get(k) for k in ("id", "version", "sha256")}},
         "change": change,
         "author": author_names,
-        "approvers": [asdict(a) for a in approvers],
+        "approvers": [{**asdict(a), **({"id": approver_ids[a.name]} if a.name in approver_ids else {})}
+                      for a in approvers],
+        **({"author_ids": [author_ids[n] for n in author_names]} if roster is not None else {}),
         "date": now(),
         "engine_version": __version__,
     }

@@ -12,6 +12,7 @@ Settings file (every key optional)::
     releases:
       dir: /srv/gasrules/releases    # release manifests and the suspension register
       archive: /srv/gasrules/archive # resolved rulebooks by sha256 (default: <dir>/archive)
+      roster: /srv/gasrules/people.yaml  # who may author or approve, with stable ids (optional)
     decision_log:
       path: /srv/gasrules/decisions.jsonl
       context_policy: mask           # keep | mask | drop   (identifier keys inside `context`)
@@ -26,7 +27,7 @@ The masking salt is a secret and is read only from the environment (``GASRULES_M
 never from the file. Environment variables: GASRULES_RULEBOOK, GASRULES_STRICT (1/0, true/false,
 yes/no, on/off), GASRULES_RELEASE_DIR, GASRULES_ARCHIVE_DIR, GASRULES_DECISION_LOG,
 GASRULES_CONTEXT_POLICY, GASRULES_IDENTIFIER_KEYS (comma separated), GASRULES_MASK_SALT,
-GASRULES_MASK_CHARS, GASRULES_LOG_FSYNC, GASRULES_SHADOW_RULEBOOK, GASRULES_SHADOW_LOG.
+GASRULES_MASK_CHARS, GASRULES_LOG_FSYNC, GASRULES_SHADOW_RULEBOOK, GASRULES_SHADOW_LOG, GASRULES_ROSTER.
 """
 
 from __future__ import annotations
@@ -60,6 +61,7 @@ class Settings:
     strict: bool = False
     release_dir: Path | None = None
     archive_dir: Path | None = None
+    roster: Path | None = None             # site roster of authors and approvers (people.py)
     decision_log: Path | None = None
     context_policy: str = "drop"
     identifier_keys: tuple[str, ...] = DEFAULT_IDENTIFIER_KEYS
@@ -99,6 +101,7 @@ _TABLE: dict[str, tuple[tuple[str, ...], str, str]] = {
     "strict": (("strict",), "GASRULES_STRICT", "bool"),
     "release_dir": (("releases", "dir"), "GASRULES_RELEASE_DIR", "path"),
     "archive_dir": (("releases", "archive"), "GASRULES_ARCHIVE_DIR", "path"),
+    "roster": (("releases", "roster"), "GASRULES_ROSTER", "path"),
     "decision_log": (("decision_log", "path"), "GASRULES_DECISION_LOG", "path"),
     "context_policy": (("decision_log", "context_policy"), "GASRULES_CONTEXT_POLICY", "policy"),
     "identifier_keys": (("decision_log", "identifier_keys"), "GASRULES_IDENTIFIER_KEYS", "keys"),
@@ -109,7 +112,7 @@ _TABLE: dict[str, tuple[tuple[str, ...], str, str]] = {
     "shadow_log": (("shadow", "log"), "GASRULES_SHADOW_LOG", "path"),
 }
 ENV_VARS = tuple(env for _, env, _ in _TABLE.values())
-_SECTIONS = {"releases": {"dir", "archive"}, "shadow": {"rulebook", "log"},
+_SECTIONS = {"releases": {"dir", "archive", "roster"}, "shadow": {"rulebook", "log"},
              "decision_log": {"path", "context_policy", "identifier_keys", "mask_chars", "fsync"}}
 _TOP = {"rulebook", "strict"} | set(_SECTIONS)
 _TRUE, _FALSE = {"1", "true", "yes", "on"}, {"0", "false", "no", "off"}
