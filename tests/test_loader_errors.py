@@ -112,7 +112,8 @@ def test_head_is_clean(here: Path) -> None:
 
 def test_every_code_is_documented_once() -> None:
     # The codes this file tests are the documented ones (errors.CODES), and each has a text.
-    tested = {"RB-E001", "RB-E002", "RB-E003", "RB-E004", "RB-E010", "RB-E020", "RB-E021", "RB-E022",
+    tested = {"RB-E001", "RB-E002", "RB-E003", "RB-E004", "RB-E005", "RB-E006", "RB-E007",
+              "RB-E008", "RB-E009", "RB-E010", "RB-E020", "RB-E021", "RB-E022",
               "RB-E023", "RB-E024", "RB-E025", "RB-E026", "RB-E030", "RB-E031", "RB-E032", "RB-E033",
               "RB-E034", "RB-E035", "RB-E036", "RB-E037", "RB-E040", "RB-E041", "RB-E042", "RB-E043",
               "RB-E044", "RB-E045", "RB-W101", "RB-W102", "RB-W103"}
@@ -549,3 +550,95 @@ def test_shipped_rulebooks_are_clean() -> None:
 
     for path in (SHIPPED, EXAMPLE_SITE):
         assert [p.render() for p in gasrules.check_rulebook(path) if not p.is_warning] == []
+
+
+# ----------------------------------------------------------------------------- hostile files
+
+def test_alias_bomb_is_refused_before_expansion(here: Path) -> None:
+    levels = ["a0: &a0 [x, x, x, x, x, x, x, x, x, x]"]
+    levels += [f"a{i}: &a{i} [" + ", ".join([f"*a{i - 1}"] * 10) + "]" for i in range(1, 9)]   # 10**9 leaves
+    out = check(here, "\n".join(levels) + "\n")
+    assert out == ["rb.yaml:1:1: RB-E009 expands to more than 1000000 YAML nodes once aliases are followed "
+                   "(an alias bomb?); expected at most 1000000 nodes (setting limits.yaml_nodes)"]
+
+
+def test_node_budget_is_a_setting(here: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("GASRULES_YAML_NODE_BUDGET", "50")
+    assert check(here, HEAD)[0].startswith("rb.yaml:1:1: RB-E009 expands to more than 50 YAML nodes")
+
+
+def test_self_referencing_alias_and_deep_nesting(here: Path) -> None:
+    assert check(here, "a: &x [1, *x]\n") == [
+        "rb.yaml:1:4: RB-E009 an alias refers to the node that contains it (a self-referencing alias); "
+        "expected aliases to complete, earlier nodes"]
+    out = check(here, "a: " + "[" * 150 + "]" * 150 + "\n")
+    assert out[0].startswith("rb.yaml:1:") and "RB-E009 nesting deeper than 100 levels" in out[0]
+
+
+def test_file_size_limit_is_a_setting(here: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("GASRULES_RULEBOOK_MAX_BYTES", "100")
+    size = len(HEAD.encode("utf-8"))
+    assert check(here, HEAD) == [f"rb.yaml: RB-E006 is {size} bytes, more than the limit of 100; expected a file "
+                                 "of at most 100 bytes (setting limits.rulebook_bytes)"]
+
+
+def test_non_utf8_and_utf16_files(here: Path) -> None:
+    (here / "rb.yaml").write_bytes(HEAD.replace("Tiny rulebook", "Tiny r\xe9glement").encode("latin-1"))
+    out = [p.render() for p in gasrules.check_rulebook("rb.yaml")]
+    assert out == ["rb.yaml:5:16: RB-E008 byte 0xe9 is not UTF-8; expected a UTF-8 text file"]
+    (here / "rb.yaml").write_bytes(HEAD.encode("utf-16"))
+    assert [p.render() for p in gasrules.check_rulebook("rb.yaml")] == [
+        "rb.yaml:1:1: RB-E008 is UTF-16 (or another encoding with zero bytes), not UTF-8; expected a UTF-8 text file"]
+
+
+def test_impossible_date_is_an_error_at_its_place(here: Path) -> None:
+    out = check(here, HEAD.replace("effective_date: 2026-12-01", "effective_date: 2026-13-45"))
+    assert out[0] == ("rb.yaml:6:19: RB-E001 invalid value '2026-13-45': month must be in 1..12 (at "
+                      "metadata.effective_date); expected a real date (YYYY-MM-DD) or a quoted string")
+    points_at(here, out[0], "2026-13-45")
+
+
+def test_name_with_a_trailing_newline_is_refused(here: Path) -> None:
+    out = check(here, HEAD.replace("  ph_low: {value", '  "ph_low\\n": {value'))
+    assert out == ["rb.yaml:15:3: RB-E010 'ph_low\\n' does not match '^[a-z][a-z0-9_]*$' (at parameters); "
+                   "expected text matching ^[a-z][a-z0-9_]*$"]
+
+
+@pytest.mark.parametrize("target", ["fifo", "dev", "big", "outside", "not_rulebook"])
+def test_extends_to_what_is_not_a_rulebook_is_refused_without_echo(target: str, here: Path,
+                                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    import os
+
+    secret = "root:x:0:0:SECRET-CONTENT:/root:/bin/bash"
+    if target == "fifo":
+        os.mkfifo(here / "base.yaml")
+        ext = "base.yaml"
+    elif target == "dev":
+        ext = "/dev/zero"
+    elif target == "big":
+        (here / "base.yaml").write_text(HEAD + "#" * 2000 + "\n", encoding="utf-8")
+        monkeypatch.setenv("GASRULES_RULEBOOK_MAX_BYTES", "1500")
+        ext = "base.yaml"
+    elif target == "outside":
+        (here / "elsewhere").mkdir()
+        (here / "elsewhere" / "rb.yaml").write_text(HEAD, encoding="utf-8")
+        (here / "site").mkdir()
+        monkeypatch.setenv("GASRULES_RULEBOOK_ROOTS", str(here / "site"))
+        ext = "../elsewhere/rb.yaml"
+    else:
+        (here / "base.yaml").write_text(secret + "\n", encoding="utf-8")
+        ext = "base.yaml"
+    name = "site/overlay.yaml" if target == "outside" else "overlay.yaml"
+    text = OVERLAY_HEAD.replace("extends: rb.yaml", f"extends: {ext}")
+    out = check(here, text, name)
+    assert len(out) == 1 and f"{name}:2:10: RB-E004 extends names" in out[0], out
+    assert "SECRET" not in out[0]
+    code = {"fifo": "RB-E005", "dev": "RB-E005", "big": "RB-E006", "outside": "RB-E007",
+            "not_rulebook": "it is not a rulebook"}[target]
+    assert code in out[0]
+
+
+def test_roots_admit_a_chain_inside_them(here: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    (here / "rb.yaml").write_text(HEAD, encoding="utf-8")
+    monkeypatch.setenv("GASRULES_RULEBOOK_ROOTS", str(here))
+    assert check(here, OVERLAY_HEAD, "overlay.yaml") == []

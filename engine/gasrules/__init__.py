@@ -35,12 +35,13 @@ __all__ = ["__version__", "load_rulebook", "check_rulebook", "interpret", "inter
            "RulebookError", "Runtime", "RuntimeRefusal"]
 
 
-def load_rulebook(path: "str | Path | None" = None, *, cache: bool = True) -> "CompiledRulebook":
-    """Load, validate and compile a rulebook once. Raises RulebookError listing every problem."""
+def load_rulebook(path: "str | Path | None" = None, *, cache: bool = True, limits: Any = None) -> "CompiledRulebook":
+    """Load, validate and compile a rulebook once. Raises RulebookError listing every problem.
+    ``limits``: a :class:`gasrules.loader.Limits` (default: from GASRULES_* variables)."""
     from .cache import load
     from .resources import default_rulebook_path
 
-    return load(path if path is not None else default_rulebook_path(), use_cache=cache)
+    return load(path if path is not None else default_rulebook_path(), use_cache=cache, limits=limits)
 
 
 def check_rulebook(path: "str | Path") -> "list[Problem]":

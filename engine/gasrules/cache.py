@@ -25,6 +25,7 @@ import sys
 import tempfile
 import warnings
 from pathlib import Path
+from typing import Any
 
 from . import __version__
 from .errors import Problem, RulebookError
@@ -64,7 +65,7 @@ def package_source_hash() -> str:
     return h.hexdigest()
 
 
-def _chain_content(path: str | Path) -> list[tuple[str, bytes]] | None:
+def _chain_content(path: str | Path, limits: Any) -> list[tuple[str, bytes]] | None:
     """(resolved path, bytes) for every file of the chain, found by parsing each one, base last;
     None when a file cannot be read or parsed (the pipeline will say why)."""
     from .loader import load_document
@@ -77,7 +78,7 @@ def _chain_content(path: str | Path) -> list[tuple[str, bytes]] | None:
         if real in seen:
             return None
         seen.add(real)
-        doc, problems = load_document(current)
+        doc, problems = load_document(current, None, limits)
         if doc is None or problems:
             return None
         data = doc.data
@@ -87,13 +88,16 @@ def _chain_content(path: str | Path) -> list[tuple[str, bytes]] | None:
     return out
 
 
-def cache_key(path: str | Path) -> str | None:
+def cache_key(path: str | Path, limits: Any = None) -> str | None:
+    from .loader import Limits
+
+    limits = limits or Limits.from_env()
     h = hashlib.sha256(__version__.encode() + b"\0" + sys.version.encode() + b"\0")  # marshalled code is per Python
     # locations are shown relative to the working directory that compiled the rulebook
     h.update(os.getcwd().encode("utf-8", "surrogateescape") + b"\0")
     try:
-        h.update(package_source_hash().encode() + b"\0")
-        chain = _chain_content(path)
+        h.update(package_source_hash().encode() + b"\0" + repr(limits).encode() + b"\0")
+        chain = _chain_content(path, limits)
     except (OSError, RecursionError):
         return None
     if chain is None:
@@ -137,12 +141,12 @@ def _entry_safe(target: Path) -> bool:
             and (not hasattr(os, "getuid") or st.st_uid == os.getuid()))
 
 
-def compile_path(path: str | Path) -> CompiledRulebook:
+def compile_path(path: str | Path, limits: Any = None) -> CompiledRulebook:
     """The full pipeline, no cache. Raises RulebookError with every problem found."""
     from .compiler import build
     from .overlay import load_chain, resolve
 
-    docs, problems = load_chain(path)
+    docs, problems = load_chain(path, limits)
     if problems:
         raise RulebookError(problems)
     resolved, problems = resolve(docs)
@@ -155,17 +159,17 @@ def compile_path(path: str | Path) -> CompiledRulebook:
     return compiled
 
 
-def check_path(path: str | Path) -> list[Problem]:
+def check_path(path: str | Path, limits: Any = None) -> list[Problem]:
     """Every problem (errors and warnings), sorted; empty when the rulebook is clean."""
     try:
-        compiled = compile_path(path)
+        compiled = compile_path(path, limits)
     except RulebookError as exc:
         return exc.problems
     return sorted(compiled.warnings, key=Problem.sort_key)
 
 
-def load(path: str | Path, use_cache: bool = True) -> CompiledRulebook:
-    key = cache_key(path) if use_cache else None
+def load(path: str | Path, use_cache: bool = True, limits: Any = None) -> CompiledRulebook:
+    key = cache_key(path, limits) if use_cache else None
     directory = cache_dir()
     target = directory / f"{key}.pickle" if key and cache_usable(directory) else None
     if target is not None and _entry_safe(target):
@@ -176,7 +180,7 @@ def load(path: str | Path, use_cache: bool = True) -> CompiledRulebook:
                 return compiled
         except Exception:  # a damaged cache entry is a miss
             pass
-    compiled = compile_path(path)
+    compiled = compile_path(path) if limits is None else compile_path(path, limits)
     if target is not None:
         _store(target, compiled)
     return compiled

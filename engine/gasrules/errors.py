@@ -18,6 +18,11 @@ CODES: dict[str, str] = {
     "RB-E002": "duplicate key in a mapping",
     "RB-E003": "file cannot be read",
     "RB-E004": "extends chain is broken (missing file or cycle)",
+    "RB-E005": "not a regular file (device, FIFO, socket)",
+    "RB-E006": "file larger than the configured limit",
+    "RB-E007": "file outside the configured rulebook roots",
+    "RB-E008": "file is not UTF-8 text",
+    "RB-E009": "YAML graph too large, too deep or self-referencing (alias bomb)",
     # Stage 2: schema
     "RB-E010": "document does not match schemas/rulebook.schema.json",
     # Stage 3: expressions

@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import Location, Problem
-from .loader import Document, load_document
+from .loader import Document, Limits, load_document
 from .schema import validate_document
 
 
@@ -47,8 +47,13 @@ class Resolved:
     base_ids: list[str] = field(default_factory=list)
 
 
-def load_chain(path: str | Path) -> tuple[list[Document], list[Problem]]:
-    """Load a rulebook and everything it extends, base first. Each is schema-checked."""
+def load_chain(path: str | Path, limits: Limits | None = None) -> tuple[list[Document], list[Problem]]:
+    """Load a rulebook and everything it extends, base first. Each is schema-checked.
+
+    A file reached through ``extends`` that is not a rulebook (not a regular file, too large,
+    outside the configured roots, not YAML, not a rulebook mapping) is refused at the ``extends``
+    that names it, and nothing of its content is echoed."""
+    limits = limits or Limits.from_env()
     docs: list[Document] = []
     problems: list[Problem] = []
     seen: set[Path] = set()
@@ -61,10 +66,17 @@ def load_chain(path: str | Path) -> tuple[list[Document], list[Problem]]:
                                     "a chain of overlays ending in a base rulebook"))
             break
         seen.add(real)
-        doc, probs = load_document(current, _display(current))
-        if doc is None and referrer is not None:
+        doc, probs = load_document(current, _display(current), limits)
+        if doc is None and referrer is not None and probs and probs[0].code == "RB-E003":
             problems.append(Problem("RB-E004", f"extends names a file that cannot be read: {current}", referrer,
                                     "a path relative to the overlay file"))
+        elif referrer is not None and (probs or doc is None or not _looks_like_rulebook(doc.data)):
+            why = probs[0] if probs else None
+            reason = (f"{why.code} {why.message}" + (f" at line {why.location.line}" if why.location.line else "")
+                      if why else "it is not a rulebook (no format/metadata mapping)")
+            problems.append(Problem("RB-E004", f"extends names {current}, which cannot be used: {reason}", referrer,
+                                    "a path relative to the overlay file, to a regular rulebook file"))
+            break
         problems.extend(probs)
         if doc is None or probs:
             break
@@ -81,6 +93,10 @@ def load_chain(path: str | Path) -> tuple[list[Document], list[Problem]]:
             current = None
     docs.reverse()
     return docs, problems
+
+
+def _looks_like_rulebook(data: Any) -> bool:
+    return isinstance(data, dict) and isinstance(data.get("format"), str) and isinstance(data.get("metadata"), dict)
 
 
 def _display(path: Path) -> str:

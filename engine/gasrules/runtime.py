@@ -169,8 +169,9 @@ class Runtime:
         RuntimeRefusal when it may not be used, SettingsError / RecordError for a bad log."""
         from . import load_rulebook
 
-        active = load_rulebook(rulebook if rulebook is not None else settings.rulebook)
-        candidate = load_rulebook(settings.shadow_rulebook) if settings.shadow_rulebook else None
+        limits = settings.limits()
+        active = load_rulebook(rulebook if rulebook is not None else settings.rulebook, limits=limits)
+        candidate = load_rulebook(settings.shadow_rulebook, limits=limits) if settings.shadow_rulebook else None
         return cls(active, settings, candidate=candidate)
 
     # ------------------------------------------------------------ evaluation

@@ -19,6 +19,10 @@ Settings file (every key optional)::
       identifier_keys: [mrn, name, patient_id]
       mask_chars: 16
       fsync: true
+    limits:
+      yaml_nodes: 1000000          # YAML nodes a rulebook file may expand to (alias bombs)
+      rulebook_bytes: 10485760     # largest rulebook file read
+    rulebook_roots: [/srv/gasrules/rulebooks]   # when set, every file of an extends chain lies under one
     shadow:
       rulebook: ../candidate/rulebook.yaml
       log: /srv/gasrules/disagreements.jsonl
@@ -27,7 +31,8 @@ The masking salt is a secret and is read only from the environment (``GASRULES_M
 never from the file. Environment variables: GASRULES_RULEBOOK, GASRULES_STRICT (1/0, true/false,
 yes/no, on/off), GASRULES_RELEASE_DIR, GASRULES_ARCHIVE_DIR, GASRULES_DECISION_LOG,
 GASRULES_CONTEXT_POLICY, GASRULES_IDENTIFIER_KEYS (comma separated), GASRULES_MASK_SALT,
-GASRULES_MASK_CHARS, GASRULES_LOG_FSYNC, GASRULES_SHADOW_RULEBOOK, GASRULES_SHADOW_LOG, GASRULES_ROSTER.
+GASRULES_MASK_CHARS, GASRULES_LOG_FSYNC, GASRULES_SHADOW_RULEBOOK, GASRULES_SHADOW_LOG, GASRULES_ROSTER,
+GASRULES_YAML_NODE_BUDGET, GASRULES_RULEBOOK_MAX_BYTES, GASRULES_RULEBOOK_ROOTS (os.pathsep separated).
 """
 
 from __future__ import annotations
@@ -70,6 +75,9 @@ class Settings:
     log_fsync: bool = True
     shadow_rulebook: Path | None = None
     shadow_log: Path | None = None
+    yaml_nodes: int = 1_000_000
+    rulebook_bytes: int = 10 * 1024 * 1024
+    rulebook_roots: tuple[Path, ...] = ()
     sources: tuple[str, ...] = ()          # where values came from, for `--show-settings` and errors
 
     @property
@@ -78,6 +86,13 @@ class Settings:
         if self.archive_dir is not None:
             return self.archive_dir
         return self.release_dir / "archive" if self.release_dir is not None else None
+
+    def limits(self) -> Any:
+        """The rulebook read limits (:class:`gasrules.loader.Limits`)."""
+        from .loader import Limits
+
+        return Limits(yaml_nodes=self.yaml_nodes, file_bytes=self.rulebook_bytes,
+                      roots=tuple(p.expanduser().resolve() for p in self.rulebook_roots))
 
     def record_config(self) -> RecordConfig:
         """The decision-record configuration (raises SettingsError for a bad combination)."""
@@ -109,16 +124,20 @@ _TABLE: dict[str, tuple[tuple[str, ...], str, str]] = {
     "mask_chars": (("decision_log", "mask_chars"), "GASRULES_MASK_CHARS", "int"),
     "log_fsync": (("decision_log", "fsync"), "GASRULES_LOG_FSYNC", "bool"),
     "shadow_rulebook": (("shadow", "rulebook"), "GASRULES_SHADOW_RULEBOOK", "path"),
+    "yaml_nodes": (("limits", "yaml_nodes"), "GASRULES_YAML_NODE_BUDGET", "count"),
+    "rulebook_bytes": (("limits", "rulebook_bytes"), "GASRULES_RULEBOOK_MAX_BYTES", "count"),
+    "rulebook_roots": (("rulebook_roots",), "GASRULES_RULEBOOK_ROOTS", "paths"),
     "shadow_log": (("shadow", "log"), "GASRULES_SHADOW_LOG", "path"),
 }
 ENV_VARS = tuple(env for _, env, _ in _TABLE.values())
-_SECTIONS = {"releases": {"dir", "archive", "roster"}, "shadow": {"rulebook", "log"},
+_SECTIONS = {"releases": {"dir", "archive", "roster"}, "limits": {"yaml_nodes", "rulebook_bytes"}, "shadow": {"rulebook", "log"},
              "decision_log": {"path", "context_policy", "identifier_keys", "mask_chars", "fsync"}}
-_TOP = {"rulebook", "strict"} | set(_SECTIONS)
+_TOP = {"rulebook", "strict", "rulebook_roots"} | set(_SECTIONS)
 _TRUE, _FALSE = {"1", "true", "yes", "on"}, {"0", "false", "no", "off"}
 _ACCEPTED = {"path": "a file or directory path", "bool": "true or false (1/0, yes/no, on/off)",
              "policy": " | ".join(CONTEXT_POLICIES), "keys": "a list of key names (comma separated in "
-             "the environment)", "int": "an integer", "secret": "a string of at least 16 characters"}
+             "the environment)", "int": "an integer", "count": "a whole number of at least 1",
+             "paths": "a list of directories (os.pathsep separated in the environment)", "secret": "a string of at least 16 characters"}
 
 
 def _convert(name: str, kind: str, value: Any, where: str, base: Path | None) -> Any:
@@ -138,6 +157,17 @@ def _convert(name: str, kind: str, value: Any, where: str, base: Path | None) ->
             return int(value)
         except (TypeError, ValueError):
             raise bad(f"{value!r} is not an integer") from None
+    if kind == "count":
+        if isinstance(value, bool) or not isinstance(value, (int, str)) or not str(value).strip().isdigit() \
+                or int(value) < 1:
+            raise bad(f"{value!r} is not a whole number of at least 1")
+        return int(value)
+    if kind == "paths":
+        items = value.split(os.pathsep) if isinstance(value, str) else value
+        if not isinstance(items, list) or not all(isinstance(p, str) and p.strip() for p in items):
+            raise bad(f"{value!r} is not a list of directories")
+        return tuple(Path(p).expanduser() if Path(p).expanduser().is_absolute() or base is None
+                     else base / p for p in items)
     if kind == "keys":
         items = value.split(",") if isinstance(value, str) else value
         if not isinstance(items, list) or not all(isinstance(k, str) and k.strip() for k in items):
