@@ -37,3 +37,27 @@ def test_overflow_and_nan_at_run_time_are_calculation_errors(tmp_path: Path) -> 
 
     _values, states, _outcomes, _codes = oracle_evaluate(rb, dict(NORMAL))   # the slow evaluator agrees
     assert states["huge"] == CALC_ERROR and states["nan_value"] == CALC_ERROR
+
+
+FUZZ_SEED = Path(__file__).resolve().parent / "data" / "fuzz" / "rulebook.yaml"
+
+
+def test_mutation_fuzzer_finds_no_uncaught_exception(tmp_path: Path) -> None:
+    """2,000 mutated variants of the small fuzz seed rulebook: every one ends in problems or in
+    results (strict JSON), never in an exception. tools/fuzz_rulebooks.py runs 50,000 and more."""
+    import random
+
+    from gasrules.fuzzing import mutate_rulebook, run_rulebook
+
+    text = FUZZ_SEED.read_text(encoding="utf-8")
+    data = yaml.safe_load(text)
+    rng = random.Random(20261204)
+    failures: list[str] = []
+    path = tmp_path / "rulebook.yaml"
+    for i in range(2000):
+        path.write_bytes(mutate_rulebook(text, data, rng))
+        crash = run_rulebook(path)
+        if crash is not None:
+            failures.append(f"variant {i}:\n{path.read_bytes()[:3000]!r}\n{crash}")
+            (tmp_path / f"crash-{i}.yaml").write_bytes(path.read_bytes())
+    assert not failures, f"{len(failures)} uncaught exceptions; first:\n{failures[0]}"
