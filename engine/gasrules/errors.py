@@ -70,6 +70,8 @@ INPUT_CODES: dict[str, str] = {
     "input.bad_case_id": "case_id must be a string",
     "input.bad_context": "context must be an object",
     "input.unreadable": "the row or line could not be parsed at all",
+    "input.too_large": "an integer too large to read as a number",
+    "input.not_strict_json": "context holds NaN, infinity, a huge integer, a non-string key or deep nesting",
 }
 
 # Codes of problems found while evaluating one case (never abort the case).
