@@ -113,7 +113,7 @@ def test_head_is_clean(here: Path) -> None:
 def test_every_code_is_documented_once() -> None:
     # The codes this file tests are the documented ones (errors.CODES), and each has a text.
     tested = {"RB-E001", "RB-E002", "RB-E003", "RB-E004", "RB-E005", "RB-E006", "RB-E007",
-              "RB-E008", "RB-E009", "RB-E010", "RB-E020", "RB-E021", "RB-E022",
+              "RB-E008", "RB-E009", "RB-E010", "RB-E011", "RB-E020", "RB-E021", "RB-E022",
               "RB-E023", "RB-E024", "RB-E025", "RB-E026", "RB-E030", "RB-E031", "RB-E032", "RB-E033",
               "RB-E034", "RB-E035", "RB-E036", "RB-E037", "RB-E040", "RB-E041", "RB-E042", "RB-E043",
               "RB-E044", "RB-E045", "RB-W101", "RB-W102", "RB-W103"}
@@ -642,3 +642,12 @@ def test_roots_admit_a_chain_inside_them(here: Path, monkeypatch: pytest.MonkeyP
     (here / "rb.yaml").write_text(HEAD, encoding="utf-8")
     monkeypatch.setenv("GASRULES_RULEBOOK_ROOTS", str(here))
     assert check(here, OVERLAY_HEAD, "overlay.yaml") == []
+
+
+@pytest.mark.parametrize("bad", [".nan", ".inf", "-.inf", "1" + "0" * 400])
+def test_numbers_that_cannot_be_used_are_refused_at_their_place(bad: str, here: Path) -> None:
+    out = check(here, HEAD.replace("bounds: {min: 7.28, max: 7.38}", f"bounds: {{min: {bad}, max: 7.38}}"))
+    assert out == [f"rb.yaml:15:53: RB-E011 number {bad[:40]!r} cannot be used (NaN, infinity or an integer too large) "
+                   "(at parameters.ph_low.bounds.min); expected a finite number; integers within "
+                   "\u00b19223372036854775807"]
+    points_at(here, out[0], bad)

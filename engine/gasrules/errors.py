@@ -25,6 +25,7 @@ CODES: dict[str, str] = {
     "RB-E009": "YAML graph too large, too deep or self-referencing (alias bomb)",
     # Stage 2: schema
     "RB-E010": "document does not match schemas/rulebook.schema.json",
+    "RB-E011": "number that cannot be used (NaN, infinity, an integer too large)",
     # Stage 3: expressions
     "RB-E020": "expression syntax error",
     "RB-E021": "construct not allowed in expressions",

@@ -30,6 +30,7 @@ _Loader = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
 PathKey = tuple[Any, ...]
 
 MAX_DEPTH = 100   # rulebooks nest a few levels; anything deeper is not a rulebook
+MAX_INT = 2 ** 63 - 1
 
 
 @dataclass(frozen=True)
@@ -263,4 +264,11 @@ def _construct(loader: Any, node: Any, path: PathKey, doc: Document, problems: l
         return None
     if isinstance(value, (_dt.date, _dt.datetime)):
         return value.isoformat()
+    if isinstance(value, float) and (value != value or value in (float("inf"), float("-inf"))) or \
+            (isinstance(value, int) and not isinstance(value, bool) and abs(value) > MAX_INT):
+        problems.append(Problem("RB-E011", f"number {node.value[:40]!r} cannot be used (NaN, infinity or an integer "
+                                "too large)", Location(doc.file, node.start_mark.line + 1, node.start_mark.column + 1,
+                                                       render_path(path)),
+                                f"a finite number; integers within \u00b1{MAX_INT}"))
+        return None
     return value
