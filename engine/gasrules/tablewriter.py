@@ -50,7 +50,8 @@ class Column:
     objects with text values; ``fields`` names them) | json (any JSON value, JSON text in CSV
     and Parquet) | value (text as it is, any other JSON value as JSON text; native in JSON
     Lines) | raw (a pass-through value written as it came; ``arrow_type`` keeps its Parquet
-    type)."""
+    type) | guarded (pass-through text; in CSV output a cell that a spreadsheet would run as a
+    formula is neutralised, see :func:`neutralise_formula`)."""
 
     name: str
     kind: str = "text"
@@ -59,7 +60,22 @@ class Column:
     unit: str = ""
 
 
-_KINDS = ("text", "number", "texts", "records", "json", "value", "raw")
+_KINDS = ("text", "number", "texts", "records", "json", "value", "raw", "guarded")
+
+
+def neutralise_formula(cell: str) -> str:
+    """A CSV cell a spreadsheet would run as a formula, made plain text with a leading
+    apostrophe: one starting with ``=``, ``@``, a tab or a carriage return, or with ``+`` or
+    ``-`` when the cell is not a number (``-4.2`` stays as it is)."""
+    if not cell or cell[0] not in "=@+-\t\r":
+        return cell
+    if cell[0] in "+-":
+        try:
+            float(cell)
+            return cell
+        except ValueError:
+            pass
+    return "'" + cell
 
 
 def temp_path_for(target: Path) -> Path:
@@ -315,7 +331,7 @@ def _as_text(value: Any) -> Any:
 # Numbers come from the engine finite, and csv writes a float as repr() does.
 _CSV_CELL: dict[str, Any] = {"text": None, "number": None, "texts": _csv_texts,
                              "records": _csv_json, "json": _csv_json, "value": _as_text,
-                             "raw": _csv_scalar}
+                             "raw": _csv_scalar, "guarded": neutralise_formula}
 
 
 # kinds whose values Arrow takes as they are (numbers, lists of text, lists of records, typed raw)

@@ -117,6 +117,8 @@ def interpret(
     chronicity: Optional[str] = typer.Option(None, "--chronicity", help="acute, chronic or unknown."),
     set_: List[str] = typer.Option([], "--set", help="Any input: NAME=VALUE[UNIT], e.g. --set urea=7.1 --set temperature=38.5Cel."),
     settings: Optional[Path] = typer.Option(None, "--settings", help="Site settings (strict mode, decision log, shadow candidate); GASRULES_* variables also apply."),
+    allow_rejected: bool = typer.Option(False, "--allow-rejected", help="With several cases, exit 0 even when some "
+                                        "were rejected (never when every one was)."),
 ) -> None:
     """Interpret blood gas cases. Exit 0 interpreted or partial, 3 inconsistent, 4 rejected, 5 broken rulebook."""
     from ..reporters import render_result
@@ -155,6 +157,9 @@ def interpret(
     total = sum(counts.values())
     if total == 1:
         raise typer.Exit(worst)  # one case: the exit code tells its status
-    # several cases: each status is in the output; the run itself succeeded
+    # several cases: each status is in the output; exit 4 when any was rejected (unless allowed)
     summary = ", ".join(f"{n} {s}" for s, n in sorted(counts.items()))
     typer.echo(f"{total} cases: {summary}", err=True)
+    rejected = counts.get("rejected", 0)
+    if rejected and (not allow_rejected or rejected == total):
+        raise typer.Exit(exitcodes.REJECTED)
