@@ -1,0 +1,104 @@
+"""Rows are never half-read: CSV encodings, delimiters, decimal commas, huge fields, bytes that
+are not UTF-8, formula-like cells, exit codes. The rulebook is the shipped adult one; the one
+clinical case is pH 7.40, PCO2 40 mmHg, HCO3 24 mmol/L (common practice normal values), and
+no test asserts more than whether it was read (not rejected).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+from pathlib import Path
+
+import pytest
+
+from gasrules.cli import main
+from gasrules.tabular import TableError, analytes_of, open_table, read_back
+
+
+def _batch(src: Path, out: Path, *extra: str) -> int:
+    return main(["batch", str(src), str(out), *extra])
+
+
+def _rows(path: Path) -> list[dict[str, str]]:
+    return list(csv.DictReader(io.StringIO(path.read_text(encoding="utf-8"))))
+
+
+@pytest.mark.parametrize("delimiter,bom", [(";", True), ("\t", False), (",", True)])
+def test_delimiter_and_bom_are_detected(delimiter: str, bom: bool, tmp_path: Path) -> None:
+    src = tmp_path / "in.csv"
+    text = delimiter.join(["case_id", "ph", "pco2", "hco3", "ward"]) + "\n" + \
+        delimiter.join(["A1", "7.40", "40", "24", "ICU"]) + "\n"
+    src.write_bytes((b"\xef\xbb\xbf" if bom else b"") + text.encode("utf-8"))
+    assert _batch(src, tmp_path / "out.csv") == 0
+    [row] = _rows(tmp_path / "out.csv")
+    assert (row["case_id"], row["status"] != "rejected", row["ward"]) == ("A1", True, "ICU")
+
+
+def test_utf16_file_is_refused(tmp_path: Path, shipped_rb: object) -> None:
+    src = tmp_path / "in.csv"
+    src.write_bytes("case_id,ph\nA1,7.40\n".encode("utf-16"))
+    with pytest.raises(TableError) as exc:
+        open_table(src, analytes_of(shipped_rb))
+    assert "the file is UTF-16" in str(exc.value)
+
+
+def test_header_collapsed_into_one_column_is_refused(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    src = tmp_path / "in.csv"
+    src.write_text("case_id ph pco2 hco3\nA1;7.40;40;24\n", encoding="utf-8")
+    assert _batch(src, tmp_path / "out.csv") == 2
+    assert "in.csv:1: the header is one column but line 2 holds semicolon delimiters" in capsys.readouterr().err
+    assert not (tmp_path / "out.csv").exists()
+
+
+def test_decimal_comma_when_asked_and_refused_when_ambiguous(tmp_path: Path,
+                                                             capsys: pytest.CaptureFixture[str]) -> None:
+    src = tmp_path / "in.csv"
+    src.write_text("case_id;ph;pco2;hco3\nA1;7,40;40,0;24\n", encoding="utf-8")
+    assert _batch(src, tmp_path / "plain.csv") == 4              # "7,40" is not a number without the option
+    assert _rows(tmp_path / "plain.csv")[0]["status"] == "rejected"
+    assert _batch(src, tmp_path / "out.csv", "--decimal-comma") == 0
+    assert _rows(tmp_path / "out.csv")[0]["status"] != "rejected"
+    comma = tmp_path / "comma.csv"
+    comma.write_text('case_id,ph\nA1,"7,40"\n', encoding="utf-8")
+    capsys.readouterr()
+    assert _batch(comma, tmp_path / "x.csv", "--decimal-comma") == 2
+    assert "--decimal-comma is ambiguous in a comma-delimited file" in capsys.readouterr().err
+
+
+def test_huge_quoted_field_and_non_utf8_cell_reject_only_their_row(tmp_path: Path) -> None:
+    src = tmp_path / "in.csv"
+    big = "x" * 1_100_000
+    src.write_bytes(b"case_id,ph,pco2,hco3,note\n"
+                    b"A1,7.40,40,24,ok\n"
+                    b'A2,7.40,40,24,"' + big.encode() + b'\nsecond line of the note"\n'
+                    b"A3,7.40,40,24,caf\xe9\n"
+                    b"A4,7.40,40,24,fine\n")
+    assert _batch(src, tmp_path / "out.jsonl") == 4
+    rows = read_back(tmp_path / "out.jsonl")
+    assert [r["status"] == "rejected" for r in rows] == [False, True, True, False]   # 4 rows in, 4 out
+    assert "longer than the limit of 1048576 bytes" in rows[1]["errors"][0]["message"]
+    assert rows[1]["errors"][0]["message"].startswith("in.csv:3:")
+    assert "cell 5 holds byte 0xe9, which is not UTF-8" in rows[2]["errors"][0]["message"]
+    assert rows[3]["case_id"] == "A4"
+
+
+def test_formula_like_passthrough_cells_are_neutralised(tmp_path: Path) -> None:
+    src = tmp_path / "in.csv"
+    src.write_text("case_id,ph,pco2,hco3,a,b,c,d,e\n"
+                   'A1,7.40,40,24,=HYPERLINK("x"),-4.2,-cmd,@SUM(A1),+1\n', encoding="utf-8")
+    assert _batch(src, tmp_path / "out.csv") == 0
+    [row] = _rows(tmp_path / "out.csv")
+    assert [row[k] for k in "abcde"] == ["'=HYPERLINK(\"x\")", "-4.2", "'-cmd", "'@SUM(A1)", "+1"]
+    assert _batch(src, tmp_path / "raw.csv", "--no-formula-guard") == 0
+    assert _rows(tmp_path / "raw.csv")[0]["a"] == '=HYPERLINK("x")'
+
+
+def test_a_file_where_every_row_is_rejected_never_exits_0(tmp_path: Path) -> None:
+    src = tmp_path / "in.csv"
+    src.write_text("case_id,ph\nA1,seven\nA2,eight\n", encoding="utf-8")
+    assert _batch(src, tmp_path / "out.csv", "--allow-rejected") == 4
+    mixed = tmp_path / "mixed.csv"
+    mixed.write_text("case_id,ph,pco2,hco3\nA1,seven,40,24\nA2,7.40,40,24\n", encoding="utf-8")
+    assert _batch(mixed, tmp_path / "m.csv") == 4
+    assert _batch(mixed, tmp_path / "m2.csv", "--allow-rejected") == 0
