@@ -102,3 +102,27 @@ def test_a_file_where_every_row_is_rejected_never_exits_0(tmp_path: Path) -> Non
     mixed.write_text("case_id,ph,pco2,hco3\nA1,seven,40,24\nA2,7.40,40,24\n", encoding="utf-8")
     assert _batch(mixed, tmp_path / "m.csv") == 4
     assert _batch(mixed, tmp_path / "m2.csv", "--allow-rejected") == 0
+
+
+@pytest.mark.parametrize("header,likely", [("paco2", "pco2"), ("PaCO2 (kPa)", "pco2"), ("bicarb", "hco3"),
+                                           ("HCO3-", "hco3"), ("Sodium", "na"), ("albumn", "albumin"),
+                                           ("lactat", "lactate")])
+def test_a_column_that_looks_like_an_input_is_an_error(header: str, likely: str, tmp_path: Path,
+                                                      shipped_rb: object) -> None:
+    src = tmp_path / "in.csv"
+    src.write_text(f"case_id,ph,{header}\nA1,7.40,1\n", encoding="utf-8")
+    with pytest.raises(TableError) as exc:
+        open_table(src, analytes_of(shipped_rb))
+    assert f"column 3 '{header}': looks like input '{likely}'" in str(exc.value)
+
+
+def test_a_look_alike_column_mapped_or_declared_passthrough_is_accepted(tmp_path: Path, shipped_rb: object) -> None:
+    from gasrules.tabular import mapping_from_data
+
+    src = tmp_path / "in.csv"
+    src.write_text("case_id,ph,paco2,area\nA1,7.40,40,x\n", encoding="utf-8")
+    mapping = mapping_from_data({"columns": {"paco2": {"input": "pco2"}}, "passthrough": ["area"]})
+    with open_table(src, analytes_of(shipped_rb), mapping=mapping) as table:
+        [row] = list(table)
+    assert row.case["pco2"] == "40" and row.passthrough == {"area": "x"}
+    assert table.passthrough == ["area"]

@@ -228,7 +228,54 @@ def resolve_column(header: str, where: str, analytes: Mapping[str, Sequence[str]
     if mapping is not None and text in mapping.columns:
         raise TableError(where, f"'{name}' is not an input of the rulebook",
                          "one of " + ", ".join(sorted(analytes)) + ", case_id or pass")
+    likely = None if mapping is not None and text in mapping.passthrough else looks_like_input(key, analytes)
+    if likely is not None:
+        raise TableError(where, f"looks like input '{likely}' but is not one of its names",
+                         f"the column named {likely} (with [unit] if needed), or mapped (columns: {{\"{text}\": "
+                         f"{{input: {likely}}}}}) or declared pass-through (passthrough: [\"{text}\"]) in a mapping file")
     return Target("pass", text)
+
+
+# Column names people use for an input (names only, no numbers). A column called one of these,
+# or within one edit of an input name or alias of 4 characters or more, "looks like an input":
+# it is an error unless it is mapped or declared pass-through, never silently passed through.
+COLUMN_ALIASES: dict[str, str] = {
+    "paco2": "pco2", "pvco2": "pco2", "pco₂": "pco2", "co2": "pco2", "pao2": "po2", "pvo2": "po2", "po₂": "po2",
+    "bicarb": "hco3", "bicarbonate": "hco3", "hco3-": "hco3", "hco₃": "hco3", "hco₃-": "hco3", "std_hco3": "hco3",
+    "sodium": "na", "na+": "na", "potassium": "k", "k+": "k", "chloride": "cl", "cl-": "cl",
+    "lac": "lactate", "lactic_acid": "lactate", "alb": "albumin", "sao2": "so2", "svo2": "so2",
+    "fio₂": "fio2", "fi02": "fio2", "glu": "glucose", "creat": "creatinine", "hgb": "hb", "haemoglobin": "hb",
+    "hemoglobin": "hb", "temp": "temperature", "be": "base_excess", "abe": "base_excess", "sbe": "base_excess",
+    "osm": "osmolality", "mg": "magnesium", "phos": "phosphate", "ica": "ionized_calcium",
+    "ionised_calcium": "ionized_calcium", "ph_value": "ph",
+}
+
+
+def _edits1(a: str, b: str) -> bool:
+    """True when ``a`` and ``b`` differ by exactly one insertion, deletion or substitution."""
+    if a == b or abs(len(a) - len(b)) > 1:
+        return False
+    if len(a) > len(b):
+        a, b = b, a
+    i = 0
+    while i < len(a) and a[i] == b[i]:
+        i += 1
+    return a[i + (len(a) == len(b)):] == b[i + 1:]
+
+
+def looks_like_input(key: str, analytes: Mapping[str, Sequence[str]]) -> str | None:
+    """The input a column name seems meant for (an alias, or one edit away from an input name
+    or alias of 4+ characters), or None."""
+    target = COLUMN_ALIASES.get(key)
+    if target in analytes:
+        return target
+    for name in analytes:
+        if len(name) >= 4 and _edits1(key, name):
+            return name
+    for alias, name in COLUMN_ALIASES.items():
+        if name in analytes and len(alias) >= 4 and _edits1(key, alias):
+            return name
+    return None
 
 
 def resolve_header(headers: Sequence[str], source: str, analytes: Mapping[str, Sequence[str]],
