@@ -126,3 +126,77 @@ def test_a_look_alike_column_mapped_or_declared_passthrough_is_accepted(tmp_path
         [row] = list(table)
     assert row.case["pco2"] == "40" and row.passthrough == {"area": "x"}
     assert table.passthrough == ["area"]
+
+
+# ---------------------------------------------------------------- killed runs
+
+_POOL_SCRIPT = """
+import os, sys, time
+from gasrules.pool import OrderedPool
+
+def slow(payload, chunk):
+    with open(os.path.join(payload, f"w{os.getpid()}"), "w") as fh:
+        fh.write("up")
+    time.sleep(60)
+    return chunk
+
+if __name__ == "__main__":
+    with OrderedPool(slow, sys.argv[1], 2) as pool:
+        for _ in pool.map([[1], [2], [3], [4]]):
+            pass
+"""
+
+
+def _running(pid: int) -> bool:
+    import os
+
+    try:
+        os.kill(pid, 0)
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            return fh.read().rsplit(b")", 1)[-1].split()[0] != b"Z"
+    except (ProcessLookupError, FileNotFoundError):
+        return False
+
+
+def test_workers_exit_when_the_parent_is_killed(tmp_path: Path) -> None:
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    script = tmp_path / "parent.py"
+    script.write_text(_POOL_SCRIPT, encoding="utf-8")
+    root = Path(__file__).resolve().parents[1]
+    proc = subprocess.Popen([sys.executable, str(script), str(tmp_path)],
+                            env={**os.environ, "PYTHONPATH": str(root / "engine")})
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and len(list(tmp_path.glob("w*"))) < 2:
+        time.sleep(0.05)
+    workers = [int(p.name[1:]) for p in tmp_path.glob("w*")]
+    assert len(workers) == 2 and all(_running(w) for w in workers)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait(timeout=10)
+    gone_by = time.monotonic() + 5
+    while time.monotonic() < gone_by and any(_running(w) for w in workers):
+        time.sleep(0.05)
+    assert not any(_running(w) for w in workers), "orphaned worker processes"
+
+
+def test_next_run_removes_hidden_partials_of_killed_runs(tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    target = tmp_path / "out.csv"
+    stale = tmp_path / f".out.csv.partial-{dead.pid}"
+    stale.write_text("half a result", encoding="utf-8")
+    live = tmp_path / ".out.csv.partial-1"                       # pid 1 is running: its partial stays
+    live.write_text("another run", encoding="utf-8")
+    other = tmp_path / f".other.csv.partial-{dead.pid}"          # another target: not ours to remove
+    other.write_text("x", encoding="utf-8")
+    src = tmp_path / "in.csv"
+    src.write_text("case_id,ph,pco2,hco3\nA1,7.40,40,24\n", encoding="utf-8")
+    assert _batch(src, target) == 0
+    assert not stale.exists() and live.exists() and other.exists() and target.exists()

@@ -83,6 +83,41 @@ def temp_path_for(target: Path) -> Path:
     return target.with_name(f".{target.name}.partial-{os.getpid()}")
 
 
+def remove_stale_partials(target: Path) -> list[Path]:
+    """Remove the hidden partial files that killed runs left beside ``target`` (their process
+    is gone); a partial of a run still going is left alone. Returns what was removed."""
+    removed = []
+    for path in target.parent.glob(f".{target.name}.partial-*"):
+        pid = path.name.rsplit("-", 1)[-1]
+        if not pid.isdigit() or int(pid) == os.getpid() or _alive(int(pid)):
+            continue
+        try:
+            if path.is_dir():
+                import shutil
+
+                shutil.rmtree(path)
+            else:
+                path.unlink()
+            removed.append(path)
+        except OSError:
+            pass
+    return removed
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    try:   # a zombie (exited, not yet reaped) is not a running writer
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            return fh.read().rsplit(b")", 1)[-1].split()[0] != b"Z"
+    except (OSError, IndexError):
+        return True
+
+
 class TableWriter:
     """Writes records to a temporary file beside the target; :meth:`commit` renames it into
     place (after fsync), :meth:`abort` removes it. As a context manager: commit on a clean
@@ -113,6 +148,7 @@ class TableWriter:
                 from .tabular import TableError
 
                 raise TableError(str(self.target), "is a directory", "an output file path")
+            remove_stale_partials(self.target)
             self.temp = temp_path_for(self.target)
             self._file = None if fmt == "parquet" else open(self.temp, "w", encoding="utf-8", newline="")
         self._buffer: list[Sequence[Any]] = []
