@@ -116,7 +116,7 @@ def test_every_code_is_documented_once() -> None:
               "RB-E008", "RB-E009", "RB-E010", "RB-E011", "RB-E020", "RB-E021", "RB-E022",
               "RB-E023", "RB-E024", "RB-E025", "RB-E026", "RB-E030", "RB-E031", "RB-E032", "RB-E033",
               "RB-E034", "RB-E035", "RB-E036", "RB-E037", "RB-E040", "RB-E041", "RB-E042", "RB-E043",
-              "RB-E044", "RB-E045", "RB-W101", "RB-W102", "RB-W103"}
+              "RB-E044", "RB-E045", "RB-E046", "RB-E047", "RB-E048", "RB-W101", "RB-W102", "RB-W103"}
     assert set(CODES) == tested
     assert all(CODES[c] for c in CODES)
 
@@ -402,7 +402,7 @@ def test_e042_choice_not_among_choices(here: Path) -> None:
 
 def test_e043_suspension_of_unknown_rule(here: Path) -> None:
     got = overlay(here, "suspend:\n  - {rule: ph.lowest, reason: \"Not ours.\"}\n")
-    assert got == ["site.yaml:10:12: RB-E043 suspension names unknown rule 'ph.lowest' (at suspend[0].rule); "
+    assert got == ["site.yaml:10:12: RB-E043 suspension names unknown rule 'ph.lowest'; did you mean 'ph.low'? (at suspend[0].rule); "
                    "expected the id of a rule in this rulebook or its base"]
     points_at(here, got[0], "ph.lowest")
 
@@ -651,3 +651,55 @@ def test_numbers_that_cannot_be_used_are_refused_at_their_place(bad: str, here: 
                    "(at parameters.ph_low.bounds.min); expected a finite number; integers within "
                    "\u00b19223372036854775807"]
     points_at(here, out[0], bad)
+
+
+
+# ----------------------------------------------------------------------------- overlay mistakes
+
+CONSTRAINED = HEAD + 'constraints:\n  - {expr: "ph_low < 7.36", message: "placeholder relation for the test"}\n'
+
+
+def test_e046_overlay_breaking_a_constraint(here: Path) -> None:
+    (here / "rb.yaml").write_text(CONSTRAINED, encoding="utf-8")
+    assert check(here, CONSTRAINED) == []
+    out = check(here, OVERLAY_HEAD + "parameters:\n  ph_low: {value: 7.37}\n", "site.yaml")
+    assert out == ["rb.yaml:32:12: RB-E046 constraint not met: placeholder relation for the test (ph_low < 7.36; "
+                   "ph_low = 7.37 set at site.yaml:10:19) (at constraints[0].expr); expected parameter values for "
+                   "which ph_low < 7.36 holds"]
+    points_at(here, out[0], "\"ph_low < 7.36\"")
+
+
+def test_constraint_over_what_is_not_a_parameter(here: Path) -> None:
+    out = check(here, HEAD + 'constraints:\n  - {expr: "ph < ph_low", message: "inputs are not allowed"}\n')
+    assert out == ["rb.yaml:32:12: RB-E022 constraint names ph, which is not a numeric parameter "
+                   "(at constraints[0].expr); expected an expression over numeric parameters only"]
+
+
+def test_e047_override_of_an_unknown_parameter_suggests_the_name(here: Path) -> None:
+    (here / "rb.yaml").write_text(HEAD, encoding="utf-8")
+    out = check(here, OVERLAY_HEAD + "parameters:\n  ph_lwo: {value: 7.3}\n", "site.yaml")
+    assert out == ["site.yaml:10:11: RB-E047 overlay overrides parameter 'ph_lwo', which the base does not declare; "
+                   "did you mean 'ph_low'? (at parameters.ph_lwo); expected the name of a base parameter, or a full "
+                   "definition (unit and bounds or choices) to add a new one"]
+    full = ("parameters:\n  ph_lwo: {value: 7.3, unit: \"[pH]\", bounds: {min: 7.2, max: 7.4}, rationale: \"New.\", "
+            "source: {citation: \"Common practice\", evidence: CP}}\n")
+    assert [p.split(" (at")[0] for p in check(here, OVERLAY_HEAD + full, "site.yaml")] == [
+        "site.yaml:10:11: RB-W101 parameter 'ph_lwo' is never used"]      # a full definition adds one
+
+
+def test_e043_unknown_suspension_suggests_the_rule(here: Path) -> None:
+    (here / "rb.yaml").write_text(HEAD, encoding="utf-8")
+    out = check(here, OVERLAY_HEAD + "suspend:\n  - {rule: ph.lwo, reason: testing}\n", "site.yaml")
+    assert out[0].startswith("site.yaml:10:12: RB-E043 suspension names unknown rule 'ph.lwo'; did you mean 'ph.low'?")
+
+
+def test_e048_display_units(here: Path) -> None:
+    (here / "rb.yaml").write_text(HEAD, encoding="utf-8")
+    out = check(here, OVERLAY_HEAD + 'display_units:\n  "[pH]": kPa\n  "mm[Hg]": furlong\n  "g/L": "g/dL"\n',
+                "site.yaml")
+    assert out == [
+        "site.yaml:10:11: RB-E048 display unit 'kPa' is not a unit of the quantity measured in '[pH]' "
+        "(at display_units.[pH]); expected one of ",
+        "site.yaml:11:13: RB-E048 display unit 'furlong' is not a known unit (at display_units.mm[Hg]); expected one of ",
+        "site.yaml:12:10: RB-E048 display unit for 'g/L', which is the unit of no input (at display_units.g/L); "
+        "expected a canonical unit of an input: [pH], mm[Hg]"]

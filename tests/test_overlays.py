@@ -18,7 +18,7 @@ import pytest
 
 import gasrules
 from conftest import EXAMPLE_SITE, MINI, MINI_OVERLAYS, ROOT, SHIPPED
-from gasrules.compiler import canonical_content
+from gasrules.compiler import canonical_content, identity_content
 from gasrules.overlay import load_chain, resolve
 from gasrules.reporters import render_result
 
@@ -261,13 +261,16 @@ def _sha(path: Path) -> str:
 
 
 def test_sha256_is_over_canonical_json_of_resolved_content(mini_rb: Any) -> None:
-    # The definition in the engine issue: sha256 of canonical JSON (sorted keys, no insignificant
-    # whitespace) of the resolved content, lifecycle metadata excluded.
+    # Identity scheme 2 (integrity issue): sha256 of canonical JSON (sorted keys, no insignificant
+    # whitespace) of the whole resolved rulebook, metadata.status and metadata.changelog excluded.
     docs, _ = load_chain(MINI)
     resolved, _ = resolve(docs)
-    content = canonical_content(resolved)
-    assert {"id", "version", "inputs", "parameters", "derived", "rules"} <= set(content)
-    assert not {"status", "owners", "changelog", "metadata"} & set(content)
+    content = identity_content(resolved)
+    assert {"metadata", "inputs", "parameters", "derived", "rules", "steps", "presentation"} <= set(content)
+    assert not {"status", "changelog"} & set(content["metadata"])
+    assert {"id", "version", "title", "owners", "intended_use"} <= set(content["metadata"])
+    # scheme 1 (kept for releases made before) covered the clinical content only
+    assert not {"status", "owners", "changelog", "metadata"} & set(canonical_content(resolved))
     # numbers are written as floats, so 12 and 12.0 (one value) hash alike
     floats = json.loads(json.dumps(content), parse_int=float)
     text = json.dumps(floats, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
@@ -278,8 +281,6 @@ def test_sha256_is_over_canonical_json_of_resolved_content(mini_rb: Any) -> None
 @pytest.mark.parametrize("old, new", [
     ("  status: draft\n", "  status: approved\n"),
     ("  status: draft\n", "  status: active\n"),
-    ('    - {name: "gasrules engine tests", role: "authors"}\n',
-     '    - {name: "gasrules engine tests", role: "authors"}\n    - {name: "A reviewer", role: "sign-off"}\n'),
     ('    - {version: 0.1.0, date: 2026-12-01, summary: "First mini rulebook for engine tests."}\n',
      '    - {version: 0.1.0, date: 2026-12-01, summary: "First mini rulebook for engine tests."}\n'
      '    - {version: 0.1.0, date: 2026-12-02, summary: "Approved."}\n'),
@@ -301,6 +302,8 @@ def test_sha256_unchanged_by_number_spelling(tmp_path: Path, mini_rb: Any) -> No
     ("    expr: na - (cl + hco3)\n", "    expr: na - cl - hco3\n"),
     ("    when: ph < ph_low\n", "    when: ph <= ph_low\n"),
     ("  version: 0.1.0\n", "  version: 0.1.1\n"),
+    ('    - {name: "gasrules engine tests", role: "authors"}\n',                   # owners are hashed (scheme 2)
+     '    - {name: "gasrules engine tests", role: "authors"}\n    - {name: "A reviewer", role: "sign-off"}\n'),
     ("    status: active\n    step: ph_state\n    title: Acidaemia\n",
      "    status: suspended\n    step: ph_state\n    title: Acidaemia\n"),
 ])

@@ -69,13 +69,20 @@ def build(res: Resolved) -> CompiledRulebook:
     known_ids = {b.get("id") for b, _ in res.rules}
     for rule_id, (_, ref) in suspended.items():
         if rule_id not in known_ids:
-            problems.append(Problem("RB-E043", f"suspension names unknown rule '{rule_id}'", ref.loc("rule"),
+            from .overlay import did_you_mean
+
+            problems.append(Problem("RB-E043", f"suspension names unknown rule '{rule_id}'"
+                                    f"{did_you_mean(rule_id, sorted(i for i in known_ids if i))}", ref.loc("rule"),
                                     "the id of a rule in this rulebook or its base"))
     presentation = res.presentation
     problems += _check_names(inputs, params, derived, rules, broken)
     problems += _check_rules(rules, steps, inputs, params, derived, presentation, broken)
     problems += _check_units(inputs, params, derived, rules)
     problems += _warnings(params, derived, rules)
+    from .constraints import check_constraints
+
+    problems += check_constraints(res.constraints, params)
+    problems += _check_display_units(res, inputs)
     plan, order_problems = _order(derived, rules)
     problems += order_problems
     if any(not p.is_warning for p in problems):
@@ -538,6 +545,31 @@ def _numbers(data: Any) -> Any:
 def identity_hash(res: Resolved, scheme: int = HASH_SCHEME) -> str:
     content = identity_content(res) if scheme == 2 else canonical_content(res)
     return hashlib.sha256(canonical_json(content)).hexdigest()
+
+
+def _check_display_units(res: Resolved, inputs: dict[str, InputSpec]) -> list[Problem]:
+    """Each display unit must be a known unit that some input of that quantity converts to."""
+    from . import units as U
+
+    problems = []
+    for unit, target in res.display_units.items():
+        to = target["unit"] if isinstance(target, dict) else str(target)
+        doc = next((d for d in reversed(res.documents) if isinstance(d.data, dict)
+                    and unit in (d.data.get("display_units") or {})), res.documents[-1])
+        where = doc.locate(("display_units", unit))
+        canonical = [i for i in inputs.values() if i.unit == unit]
+        code = U.normalise(to)
+        if not canonical:
+            problems.append(Problem("RB-E048", f"display unit for '{unit}', which is the unit of no input", where,
+                                    "a canonical unit of an input: " + ", ".join(sorted({i.unit for i in inputs.values() if i.unit}))))
+        elif code is None:
+            problems.append(Problem("RB-E048", f"display unit '{to}' is not a known unit", where,
+                                    "one of " + ", ".join(sorted({a for i in canonical for a in i.alternatives}))))
+        elif code != unit and not any(code in i.alternatives for i in canonical):
+            problems.append(Problem("RB-E048", f"display unit '{to}' is not a unit of the quantity measured in "
+                                    f"'{unit}'", where,
+                                    "one of " + ", ".join(sorted({a for i in canonical for a in i.alternatives}))))
+    return problems
 
 
 def _display_units(raw: dict[str, Any]) -> dict[str, tuple[str, int | None]]:

@@ -50,6 +50,9 @@ CODES: dict[str, str] = {
     "RB-E043": "suspension names an unknown rule",
     "RB-E044": "overlay redefines a base id",
     "RB-E045": "parameter value outside its own bounds",
+    "RB-E046": "constraint between parameters not met",
+    "RB-E047": "overlay overrides a parameter the base does not declare (did you mean...)",
+    "RB-E048": "display unit unknown or of another quantity",
     # Warnings
     "RB-W101": "parameter is never used",
     "RB-W102": "numeric literal in a rule condition (make it a parameter)",

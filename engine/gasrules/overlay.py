@@ -43,6 +43,7 @@ class Resolved:
     presentation: dict[str, Any] = field(default_factory=dict)
     display_units: dict[str, Any] = field(default_factory=dict)
     suspensions: list[tuple[str, str, Ref]] = field(default_factory=list)
+    constraints: list[tuple[dict[str, Any], Ref]] = field(default_factory=list)
     documents: list[Document] = field(default_factory=list)
     base_ids: list[str] = field(default_factory=list)
 
@@ -134,6 +135,12 @@ def _take_base(res: Resolved, doc: Document) -> None:
     res.display_units = copy.deepcopy(data.get("display_units") or {})
     for i, s in enumerate(data.get("suspend") or []):
         res.suspensions.append((s["rule"], s["reason"], Ref(doc, ("suspend", i))))
+    _take_constraints(res, doc)
+
+
+def _take_constraints(res: Resolved, doc: Document) -> None:
+    for i, body in enumerate(doc.data.get("constraints") or []):
+        res.constraints.append((copy.deepcopy(body), Ref(doc, ("constraints", i))))
 
 
 def _apply_overlay(res: Resolved, doc: Document) -> list[Problem]:
@@ -151,6 +158,12 @@ def _apply_overlay(res: Resolved, doc: Document) -> list[Problem]:
             target[name] = (copy.deepcopy(body), Ref(doc, (section, name)))
     for name, body in (data.get("parameters") or {}).items():
         ref = Ref(doc, ("parameters", name))
+        if name not in res.parameters and not _full_parameter(body):
+            problems.append(Problem("RB-E047", f"overlay overrides parameter '{name}', which the base does not "
+                                    f"declare{did_you_mean(name, res.parameters)}", ref.loc(),
+                                    "the name of a base parameter, or a full definition (unit and bounds or "
+                                    "choices) to add a new one"))
+            continue
         if name not in res.parameters:
             res.parameters[name] = (copy.deepcopy(body), ref)
             res.param_set_by[name] = ref
@@ -173,7 +186,20 @@ def _apply_overlay(res: Resolved, doc: Document) -> list[Problem]:
         else:
             res.presentation[key] = value
     res.display_units.update(data.get("display_units") or {})
+    _take_constraints(res, doc)
     return problems
+
+
+def _full_parameter(body: Any) -> bool:
+    return isinstance(body, dict) and "unit" in body and ("bounds" in body or "choices" in body)
+
+
+def did_you_mean(name: str, known: Any) -> str:
+    """"; did you mean 'x'?" for the closest known name, or ""."""
+    import difflib
+
+    close = difflib.get_close_matches(str(name), [str(k) for k in known], n=1, cutoff=0.6)
+    return f"; did you mean '{close[0]}'?" if close else ""
 
 
 def _override(res: Resolved, name: str, body: dict[str, Any], ref: Ref) -> list[Problem]:
