@@ -351,3 +351,30 @@ def test_example_site_text_in_kpa_json_canonical(site_rb: Any) -> None:
 def test_shipped_rulebook_text_in_mmhg(shipped_rb: Any) -> None:
     text = render_result(shipped_rb, gasrules.interpret(shipped_rb, dict(DUBOSE_E1, k=4.0)))
     assert "29.0 mmHg" in text and "kPa" not in text
+
+
+# ---------------------------------------------------------------- intended use of an overlay
+
+def _overlay_with_use(tmp_path: Path, population: str) -> Path:
+    path = tmp_path / "site.yaml"
+    path.write_text("format: gasrules/1\n"
+                    f"extends: {json.dumps(str(MINI))}\n"
+                    "metadata:\n  id: use-site\n  version: 0.1.0\n  title: Use site\n  effective_date: 2026-12-01\n"
+                    "  status: draft\n  intended_use:\n"
+                    f"    population: {json.dumps(population)}\n    setting: \"Engine tests; not for clinical use\"\n",
+                    encoding="utf-8")
+    return path
+
+
+def test_overlay_intended_use_is_shown_in_diff_and_review_document(tmp_path: Path) -> None:
+    from gasrules.document import build_document, render_markdown
+    from gasrules.rulediff import diff_paths, render_text
+
+    changed = _overlay_with_use(tmp_path, "Children (engine tests only)")
+    text = render_text(diff_paths(MINI, changed))
+    assert "[minor] intended_use value" in text and "Children (engine tests only)" in text
+    md = render_markdown(build_document(changed))
+    assert "| Intended use of the base (differs) | population: Adults (engine tests only)" in md
+    same = _overlay_with_use(tmp_path, "Adults (engine tests only)")       # the base's own words
+    assert "intended_use value" not in render_text(diff_paths(MINI, same))
+    assert "Intended use of the base" not in render_markdown(build_document(same))

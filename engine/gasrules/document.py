@@ -41,6 +41,7 @@ class ReviewDocument:
     changes: dict[str, Any] | None = None           # from rulediff, when since is given
     impact: dict[str, Any] | None = None            # when a corpus is given too
     cautions: list[str] = field(default_factory=list)
+    base_intended_use: dict[str, Any] | None = None   # an overlay's base's, when it differs from the overlay's
 
 
 # ---------------------------------------------------------------- plain-language conditions
@@ -136,7 +137,8 @@ def build_document(rulebook_path: str | Path, *, since: str | Path | None = None
         derived=[{"name": n, "label": d.label, "formula": d.expr.text, "unit": d.unit,
                   "when": condition_text(rb, d.when.text) if d.when else "", "reported": d.report}
                  for n, d in rb.derived.items()],
-        steps=_rules(rb), cautions=list(rb.presentation.get("cautions") or [CAUTION]))
+        steps=_rules(rb), cautions=list(rb.presentation.get("cautions") or [CAUTION]),
+        base_intended_use=_base_intended_use(rulebook_path, rb.metadata.get("intended_use")))
     if since is not None:
         from .rulediff import diff_paths
 
@@ -214,6 +216,24 @@ def _limits_cell(p: dict[str, Any]) -> str:
     return "none"
 
 
+def _base_intended_use(path: str | Path, own: Any) -> dict[str, Any] | None:
+    """The intended use of the base an overlay extends, when it differs from the overlay's."""
+    from .overlay import load_chain
+
+    docs, problems = load_chain(path)
+    if problems or len(docs) < 2:
+        return None
+    base = (docs[0].data.get("metadata") or {}).get("intended_use") or {}
+    return dict(base) if base != (own or {}) else None
+
+
+def _use_text(use: dict[str, Any]) -> str:
+    parts = [f"{k}: {use[k]}" for k in ("population", "setting") if use.get(k)]
+    if use.get("exclusions"):
+        parts.append("exclusions: " + "; ".join(map(str, use["exclusions"])))
+    return " | ".join(parts)
+
+
 def _head(doc: ReviewDocument) -> list[tuple[str, str]]:
     md, ident = doc.metadata, doc.identity
     use = md.get("intended_use") or {}
@@ -224,6 +244,8 @@ def _head(doc: ReviewDocument) -> list[tuple[str, str]]:
         rows += [("Population", str(use.get("population", ""))), ("Setting", str(use.get("setting", "")))]
         if use.get("exclusions"):
             rows.append(("Exclusions", "; ".join(map(str, use["exclusions"]))))
+    if doc.base_intended_use is not None:
+        rows.append(("Intended use of the base (differs)", _use_text(doc.base_intended_use)))
     owners = md.get("owners") or []
     if owners:
         rows.append(("Owners", "; ".join(f"{o.get('name')} ({o.get('role', '')})" for o in owners)))

@@ -225,6 +225,11 @@ def _metadata(old: Any, new: Any) -> list[Change]:
         if a != b:
             out.append(Change("metadata", key, "value", "none", "metadata (not clinical content)",
                               _plain(a), _plain(b), "", str(old.metadata_ref.loc(key)), str(new.metadata_ref.loc(key))))
+    a, b = old.metadata.get("intended_use"), new.metadata.get("intended_use")
+    if a != b:   # who and where the rulebook may be used: shown to reviewers, hashed, never silent
+        out.append(Change("metadata", "intended_use", "value", "minor", "intended use (population, setting, "
+                          "exclusions) differs", _plain(a), _plain(b), "", str(old.metadata_ref.loc("intended_use")),
+                          str(new.metadata_ref.loc("intended_use"))))
     a_versions = {str(e.get("version")) for e in old.metadata.get("changelog") or []}
     for entry in new.metadata.get("changelog") or []:
         if str(entry.get("version")) not in a_versions:
