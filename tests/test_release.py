@@ -237,3 +237,26 @@ def test_roster_setting_is_enforced_by_the_command(book: Path, tmp_path: Path, m
                  "--release-dir", str(tmp_path / "rel")])
     err = capsys.readouterr().err
     assert code == 2 and "bad.yaml:2:5: roster: people[0] needs a non-empty id and name" in err
+
+
+# ---------------------------------------------------------------- coverage: covered apart from declared unreachable
+
+def test_coverage_reports_declared_unreachable_apart(book: Path, tmp_path: Path,
+                                                    capsys: pytest.CaptureFixture[str]) -> None:
+    from gasrules.document import build_document, render_markdown
+
+    # drop the case that makes ph.alkalaemia fire and declare that outcome unreachable instead
+    cases = book.parent / "cases" / "ph.yaml"
+    text = cases.read_text(encoding="utf-8")
+    cut = text.index("  - id: ph-high")
+    cases.write_text(text[:cut] + 'unreachable:\n  - {rule: ph.alkalaemia, outcome: fired, reason: "test: declared"}\n',
+                     encoding="utf-8")
+    assert main(["verify", str(book)]) in (0, 1)
+    out = capsys.readouterr().out
+    assert "Rule coverage: 2 covered + 1 declared unreachable of 3 active rules" in out
+    m = release(book, release_dir=tmp_path / "rel", approvers=[LEAD], authors=["A. Author"]).manifest
+    assert (m["suite"]["rules_covered"], m["suite"]["rules_declared_unreachable"]) == (3, 1)
+    assert m["suite"]["rule_coverage"] == "2 covered + 1 declared unreachable of 3"
+    assert m["suite"]["threshold_coverage"]["summary"] == "0 covered + 0 declared unreachable of 12"  # no probes
+    md = render_markdown(build_document(book))
+    assert "| Rule coverage | 2 covered + 1 declared unreachable of 3 active rules |" in md

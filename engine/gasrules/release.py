@@ -65,6 +65,8 @@ class SuiteSummary:
     never_not_fired: list[str]
     threshold_coverage: dict[str, Any] = field(default_factory=dict)
     excused: list[dict[str, Any]] = field(default_factory=list)   # coverage stated unreachable, with reasons
+    rules_declared_unreachable: int = 0  # of rules_covered, rules complete only through a stated exception
+    rule_coverage: str = ""              # "N covered + M declared unreachable of T"
 
     def gate_problems(self) -> list[tuple[str, str]]:
         out = []
@@ -117,7 +119,8 @@ def run_validation(rulebook_path: Path, rb: Any) -> SuiteSummary:
     return SuiteSummary(content, names, len(results), count["passed"], count["failed"], count["skipped"],
                         failures, int(cov["rules"]), int(cov["both"]), list(cov["never_fired"]),
                         list(cov["never_not_fired"]), threshold,
-                        [dict(e) for e in cov.get("excused", [])])
+                        [dict(e) for e in cov.get("excused", [])],
+                        int(cov.get("declared_unreachable", 0)), str(cov.get("summary", "")))
 
 
 def _common_root(paths: list[str]) -> Path:
@@ -265,7 +268,8 @@ def render_outcome(outcome: ReleaseOutcome) -> str:
              f"  manifest: {outcome.manifest_path}",
              f"  archive:  {m['archive']['file']}",
              f"  suite:    {s['passed']}/{s['cases']} passed, {s['skipped']} skipped; rules covered "
-             f"{s['rules_covered']}/{s['rules']}; suite content {s['content_sha256'][:16]}...",
+             f"{s['rules_covered']}/{s['rules']} ({s.get('rule_coverage', '')}); suite content "
+             f"{s['content_sha256'][:16]}...",
              f"  change:   {c['class']}" + (f" against {prev['rulebook']['version']} ({c['bump']} bump)" if prev else
                                             " (first release of this rulebook)"),
              f"  author:   {', '.join(m['author'])}",
