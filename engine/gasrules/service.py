@@ -419,20 +419,25 @@ class App:
 
     def _batch_row(self, row: Any, trace: bool, deadline: float,
                    line: int | None = None) -> dict[str, Any]:
-        """One row's result; an engine failure on a row becomes that row's rejection."""
-        if time.monotonic() > deadline:
-            raise HttpError(503, "service.timeout", f"the batch did not finish within "
-                            f"{self.config.timeout:g} s; nothing was returned: send it in "
-                            "smaller parts", "body", {"Retry-After": "1"})
+        """One row's result; an engine failure on a row becomes that row's rejection, and so
+        does a row not reached before the deadline (N in, N out; the decision log holds
+        exactly the results returned)."""
+        where = f"line {line}" if line else "row"
+        late = time.monotonic() > deadline
         try:
+            if late:
+                raise TimeoutError
             return self.interpreter.interpret(row, trace)
         except Exception as exc:  # noqa: BLE001 - a row is never lost, even to an engine bug
-            traceback.print_exc(file=sys.stderr)
             from .evaluator import interpret as engine_interpret
 
-            where = f"line {line}" if line else "row"
-            stand_in: dict[str, Any] = {UNREADABLE: f"{where}: the engine failed on this row "
-                                                    f"({type(exc).__name__})"}
+            if late:
+                why = (f"{where}: not interpreted: the batch passed its deadline of {self.config.timeout:g} s "
+                       "before reaching it; send it again, or the batch in smaller parts")
+            else:
+                traceback.print_exc(file=sys.stderr)
+                why = f"{where}: the engine failed on this row ({type(exc).__name__})"
+            stand_in: dict[str, Any] = {UNREADABLE: why}
             if isinstance(row, dict) and isinstance(row.get("case_id"), str):
                 stand_in["case_id"] = row["case_id"]
             result = engine_interpret(self.rulebook, stand_in, True)
