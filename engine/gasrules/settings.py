@@ -19,6 +19,7 @@ Settings file (every key optional)::
       identifier_keys: [mrn, name, patient_id]
       mask_chars: 16
       fsync: true
+      anchor_key_file: /etc/gasrules/anchor.key   # optional: HMAC on the anchor (outside the log's folder)
     limits:
       yaml_nodes: 1000000          # YAML nodes a rulebook file may expand to (alias bombs)
       rulebook_bytes: 10485760     # largest rulebook file read
@@ -32,7 +33,7 @@ never from the file. Environment variables: GASRULES_RULEBOOK, GASRULES_STRICT (
 yes/no, on/off), GASRULES_RELEASE_DIR, GASRULES_ARCHIVE_DIR, GASRULES_DECISION_LOG,
 GASRULES_CONTEXT_POLICY, GASRULES_IDENTIFIER_KEYS (comma separated), GASRULES_MASK_SALT,
 GASRULES_MASK_CHARS, GASRULES_LOG_FSYNC, GASRULES_SHADOW_RULEBOOK, GASRULES_SHADOW_LOG, GASRULES_ROSTER,
-GASRULES_YAML_NODE_BUDGET, GASRULES_RULEBOOK_MAX_BYTES, GASRULES_RULEBOOK_ROOTS (os.pathsep separated).
+GASRULES_ANCHOR_KEY_FILE, GASRULES_YAML_NODE_BUDGET, GASRULES_RULEBOOK_MAX_BYTES, GASRULES_RULEBOOK_ROOTS (os.pathsep separated).
 """
 
 from __future__ import annotations
@@ -46,7 +47,7 @@ from typing import Any, Mapping
 from .errors import EngineError
 from .records import CONTEXT_POLICIES, DEFAULT_IDENTIFIER_KEYS, RecordConfig, RecordError
 
-__all__ = ["Settings", "SettingsError", "load_settings", "ENV_VARS"]
+__all__ = ["Settings", "SettingsError", "load_settings", "read_anchor_key", "ENV_VARS"]
 
 
 class SettingsError(EngineError):
@@ -73,6 +74,7 @@ class Settings:
     mask_salt: str = field(default="", repr=False)
     mask_chars: int = 16
     log_fsync: bool = True
+    anchor_key_file: Path | None = None    # HMAC key of keyed anchors, kept outside the log's folder
     shadow_rulebook: Path | None = None
     shadow_log: Path | None = None
     yaml_nodes: int = 1_000_000
@@ -96,9 +98,13 @@ class Settings:
 
     def record_config(self) -> RecordConfig:
         """The decision-record configuration (raises SettingsError for a bad combination)."""
+        key = b""
+        if self.anchor_key_file is not None and self.decision_log is not None:
+            key = read_anchor_key(self.anchor_key_file, self.decision_log)
         try:
             return RecordConfig(context_policy=self.context_policy, identifier_keys=self.identifier_keys,
-                                salt=self.mask_salt, mask_chars=self.mask_chars, fsync=self.log_fsync)
+                                salt=self.mask_salt, mask_chars=self.mask_chars, fsync=self.log_fsync,
+                                anchor_key=key)
         except RecordError as exc:
             name = {"salt": "GASRULES_MASK_SALT"}.get(exc.field, f"decision_log.{exc.field}")
             raise SettingsError(name, str(exc).split(": ", 1)[-1].split(" (field")[0], exc.accepted) from None
@@ -108,6 +114,23 @@ class Settings:
         out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self) if f.name != "mask_salt"}
         out["mask_salt"] = "set" if self.mask_salt else "not set"
         return {k: (str(v) if isinstance(v, Path) else list(v) if isinstance(v, tuple) else v) for k, v in out.items()}
+
+
+def read_anchor_key(key_file: Path, log: Path) -> bytes:
+    """The anchor key: at least 16 bytes, from a file outside the log's folder (someone who can
+    rewrite the log's folder must not find the key there)."""
+    name = "decision_log.anchor_key_file"
+    accepted = "a file of at least 16 bytes outside the decision log's folder"
+    key_path, folder = Path(key_file).resolve(), Path(log).resolve().parent
+    if key_path.parent == folder or folder in key_path.parents:
+        raise SettingsError(name, f"{key_file} lies inside the decision log's folder {folder}", accepted)
+    try:
+        key = key_path.read_bytes().strip()
+    except OSError as exc:
+        raise SettingsError(name, f"cannot read {key_file}: {exc.strerror or exc}", accepted) from None
+    if len(key) < 16:
+        raise SettingsError(name, f"{key_file} holds {len(key)} bytes", accepted)
+    return key
 
 
 # setting name -> (file key path, environment variable, kind)
@@ -123,6 +146,7 @@ _TABLE: dict[str, tuple[tuple[str, ...], str, str]] = {
     "mask_salt": ((), "GASRULES_MASK_SALT", "secret"),
     "mask_chars": (("decision_log", "mask_chars"), "GASRULES_MASK_CHARS", "int"),
     "log_fsync": (("decision_log", "fsync"), "GASRULES_LOG_FSYNC", "bool"),
+    "anchor_key_file": (("decision_log", "anchor_key_file"), "GASRULES_ANCHOR_KEY_FILE", "path"),
     "shadow_rulebook": (("shadow", "rulebook"), "GASRULES_SHADOW_RULEBOOK", "path"),
     "yaml_nodes": (("limits", "yaml_nodes"), "GASRULES_YAML_NODE_BUDGET", "count"),
     "rulebook_bytes": (("limits", "rulebook_bytes"), "GASRULES_RULEBOOK_MAX_BYTES", "count"),
@@ -131,7 +155,7 @@ _TABLE: dict[str, tuple[tuple[str, ...], str, str]] = {
 }
 ENV_VARS = tuple(env for _, env, _ in _TABLE.values())
 _SECTIONS = {"releases": {"dir", "archive", "roster"}, "limits": {"yaml_nodes", "rulebook_bytes"}, "shadow": {"rulebook", "log"},
-             "decision_log": {"path", "context_policy", "identifier_keys", "mask_chars", "fsync"}}
+             "decision_log": {"path", "context_policy", "identifier_keys", "mask_chars", "fsync", "anchor_key_file"}}
 _TOP = {"rulebook", "strict", "rulebook_roots"} | set(_SECTIONS)
 _TRUE, _FALSE = {"1", "true", "yes", "on"}, {"0", "false", "no", "off"}
 _ACCEPTED = {"path": "a file or directory path", "bool": "true or false (1/0, yes/no, on/off)",
