@@ -21,6 +21,7 @@ Settings file (every key optional)::
       fsync: true
       anchor_key_file: /etc/gasrules/anchor.key   # optional: HMAC on the anchor (outside the log's folder)
     limits:
+      corpus_unreadable_percent: 1 # impact and shadow exit 4 when more corpus rows are unreadable
       yaml_nodes: 1000000          # YAML nodes a rulebook file may expand to (alias bombs)
       rulebook_bytes: 10485760     # largest rulebook file read
     rulebook_roots: [/srv/gasrules/rulebooks]   # when set, every file of an extends chain lies under one
@@ -33,7 +34,7 @@ never from the file. Environment variables: GASRULES_RULEBOOK, GASRULES_STRICT (
 yes/no, on/off), GASRULES_RELEASE_DIR, GASRULES_ARCHIVE_DIR, GASRULES_DECISION_LOG,
 GASRULES_CONTEXT_POLICY, GASRULES_IDENTIFIER_KEYS (comma separated), GASRULES_MASK_SALT,
 GASRULES_MASK_CHARS, GASRULES_LOG_FSYNC, GASRULES_SHADOW_RULEBOOK, GASRULES_SHADOW_LOG, GASRULES_ROSTER,
-GASRULES_ANCHOR_KEY_FILE, GASRULES_YAML_NODE_BUDGET, GASRULES_RULEBOOK_MAX_BYTES, GASRULES_RULEBOOK_ROOTS (os.pathsep separated).
+GASRULES_ANCHOR_KEY_FILE, GASRULES_CORPUS_UNREADABLE_PERCENT, GASRULES_YAML_NODE_BUDGET, GASRULES_RULEBOOK_MAX_BYTES, GASRULES_RULEBOOK_ROOTS (os.pathsep separated).
 """
 
 from __future__ import annotations
@@ -78,6 +79,7 @@ class Settings:
     shadow_rulebook: Path | None = None
     shadow_log: Path | None = None
     yaml_nodes: int = 1_000_000
+    corpus_unreadable_percent: float = 1.0  # impact/shadow exit 4 above this share of unreadable corpus rows
     rulebook_bytes: int = 10 * 1024 * 1024
     rulebook_roots: tuple[Path, ...] = ()
     sources: tuple[str, ...] = ()          # where values came from, for `--show-settings` and errors
@@ -116,6 +118,16 @@ class Settings:
         return {k: (str(v) if isinstance(v, Path) else list(v) if isinstance(v, tuple) else v) for k, v in out.items()}
 
 
+def too_many_unreadable(unreadable: int, rows: int, settings: Settings) -> str:
+    """A message when more than ``corpus_unreadable_percent`` of a corpus's rows could not be
+    read (those commands then exit 4), else ""."""
+    limit = settings.corpus_unreadable_percent
+    if rows and unreadable * 100.0 > limit * rows:
+        return (f"{unreadable:,} of {rows:,} corpus rows ({100.0 * unreadable / rows:.1f} %) could not be read, more "
+                f"than the limit of {limit:g} % (setting limits.corpus_unreadable_percent)")
+    return ""
+
+
 def read_anchor_key(key_file: Path, log: Path) -> bytes:
     """The anchor key: at least 16 bytes, from a file outside the log's folder (someone who can
     rewrite the log's folder must not find the key there)."""
@@ -149,18 +161,20 @@ _TABLE: dict[str, tuple[tuple[str, ...], str, str]] = {
     "anchor_key_file": (("decision_log", "anchor_key_file"), "GASRULES_ANCHOR_KEY_FILE", "path"),
     "shadow_rulebook": (("shadow", "rulebook"), "GASRULES_SHADOW_RULEBOOK", "path"),
     "yaml_nodes": (("limits", "yaml_nodes"), "GASRULES_YAML_NODE_BUDGET", "count"),
+    "corpus_unreadable_percent": (("limits", "corpus_unreadable_percent"), "GASRULES_CORPUS_UNREADABLE_PERCENT",
+                                  "percent"),
     "rulebook_bytes": (("limits", "rulebook_bytes"), "GASRULES_RULEBOOK_MAX_BYTES", "count"),
     "rulebook_roots": (("rulebook_roots",), "GASRULES_RULEBOOK_ROOTS", "paths"),
     "shadow_log": (("shadow", "log"), "GASRULES_SHADOW_LOG", "path"),
 }
 ENV_VARS = tuple(env for _, env, _ in _TABLE.values())
-_SECTIONS = {"releases": {"dir", "archive", "roster"}, "limits": {"yaml_nodes", "rulebook_bytes"}, "shadow": {"rulebook", "log"},
+_SECTIONS = {"releases": {"dir", "archive", "roster"}, "limits": {"yaml_nodes", "rulebook_bytes", "corpus_unreadable_percent"}, "shadow": {"rulebook", "log"},
              "decision_log": {"path", "context_policy", "identifier_keys", "mask_chars", "fsync", "anchor_key_file"}}
 _TOP = {"rulebook", "strict", "rulebook_roots"} | set(_SECTIONS)
 _TRUE, _FALSE = {"1", "true", "yes", "on"}, {"0", "false", "no", "off"}
 _ACCEPTED = {"path": "a file or directory path", "bool": "true or false (1/0, yes/no, on/off)",
              "policy": " | ".join(CONTEXT_POLICIES), "keys": "a list of key names (comma separated in "
-             "the environment)", "int": "an integer", "count": "a whole number of at least 1",
+             "the environment)", "int": "an integer", "percent": "a number from 0 to 100", "count": "a whole number of at least 1",
              "paths": "a list of directories (os.pathsep separated in the environment)", "secret": "a string of at least 16 characters"}
 
 
@@ -181,6 +195,16 @@ def _convert(name: str, kind: str, value: Any, where: str, base: Path | None) ->
             return int(value)
         except (TypeError, ValueError):
             raise bad(f"{value!r} is not an integer") from None
+    if kind == "percent":
+        try:
+            if isinstance(value, bool):
+                raise ValueError
+            number = float(value)
+        except (TypeError, ValueError):
+            raise bad(f"{value!r} is not a number") from None
+        if not 0 <= number <= 100:
+            raise bad(f"{value!r} is outside 0 to 100")
+        return number
     if kind == "count":
         if isinstance(value, bool) or not isinstance(value, (int, str)) or not str(value).strip().isdigit() \
                 or int(value) < 1:
