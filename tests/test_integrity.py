@@ -9,6 +9,7 @@ except the two fixture results, whose headlines are the mini rulebook's own text
 from __future__ import annotations
 
 import copy
+import json
 import shutil
 from pathlib import Path
 from typing import Any, Callable
@@ -183,3 +184,18 @@ def test_interpret_command_and_service_go_through_the_runtime(tmp_path: Path, mo
     interp.close()
     assert len(opened) == 2
 
+
+
+def test_read_limits_come_from_the_settings_file(tmp_path: Path, mini_data: dict[str, Any]) -> None:
+    from gasrules.settings import load_settings
+
+    path = _write(tmp_path / "book.yaml", mini_data)
+    site = tmp_path / "site.yaml"
+    site.write_text("limits: {yaml_nodes: 50, rulebook_bytes: 100000}\n", encoding="utf-8")
+    with pytest.raises(gasrules.RulebookError) as exc:
+        Runtime.from_settings(load_settings(site, env={}), path)
+    assert exc.value.errors[0].code == "RB-E009" and "more than 50 YAML nodes" in exc.value.errors[0].message
+    site.write_text(f"rulebook_roots: [{json.dumps(str(tmp_path / 'elsewhere'))}]\n", encoding="utf-8")
+    with pytest.raises(gasrules.RulebookError) as exc:
+        Runtime.from_settings(load_settings(site, env={}), path)
+    assert exc.value.errors[0].code == "RB-E007"
