@@ -430,7 +430,7 @@ def test_pickles_only_from_a_private_cache_directory(unsafe: str, tmp_path: Path
     assert len(counted_compiles) == 3               # compiled every time
     msgs = [str(w.message) for w in caught if issubclass(w.category, cache_module.CacheWarning)]
     assert len(msgs) == 1 and str(shared) in msgs[0]
-    assert sorted(p.name for p in shared.iterdir()) == [f"{cache_module.cache_key(path)}.pickle"]  # nothing written
+    assert sorted(p.name for p in shared.glob("*.pickle")) == [f"{cache_module.cache_key(path)}.pickle"]  # none written
 
 
 def test_private_cache_directory_is_created_owner_only(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:

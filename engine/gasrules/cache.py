@@ -67,25 +67,61 @@ def package_source_hash() -> str:
 
 def _chain_content(path: str | Path, limits: Any) -> list[tuple[str, bytes]] | None:
     """(resolved path, bytes) for every file of the chain, found by parsing each one, base last;
-    None when a file cannot be read or parsed (the pipeline will say why)."""
-    from .loader import load_document
+    None when a file cannot be read or parsed (the pipeline will say why). What a file extends
+    is a function of its bytes: it is remembered per sha256 of the bytes (a small JSON note in
+    the cache directory, never code), so a cache hit does not parse again."""
+    from .loader import file_problem
 
     out: list[tuple[str, bytes]] = []
     current: Path | None = Path(path)
     seen: set[Path] = set()
     while current is not None:
         real = current.resolve()
-        if real in seen:
+        if real in seen or file_problem(current, str(current), limits) is not None:
             return None
         seen.add(real)
-        doc, problems = load_document(current, None, limits)
-        if doc is None or problems:
+        raw = current.read_bytes()
+        if len(raw) > limits.file_bytes:
             return None
-        data = doc.data
-        out.append((str(real), doc.raw))
-        ext = data.get("extends") if isinstance(data, dict) else None
-        current = current.parent / ext if isinstance(ext, str) and ext else None
+        found, ext = _extends_of(raw, limits)
+        if not found:
+            return None
+        out.append((str(real), raw))
+        current = current.parent / ext if ext else None
     return out
+
+
+def _extends_of(raw: bytes, limits: Any) -> tuple[bool, str | None]:
+    """(parsed cleanly, the file's extends value or None), from the note or by parsing."""
+    import json
+
+    from .loader import parse_text
+
+    digest = hashlib.sha256(raw).hexdigest()
+    directory = cache_dir()
+    note = directory / f"extends-{digest}.json"
+    usable = cache_usable(directory)
+    if usable and _entry_safe(note):
+        try:
+            value = json.loads(note.read_text(encoding="utf-8")).get("extends")
+            if value is None or isinstance(value, str):
+                return True, value
+        except (OSError, ValueError, AttributeError):
+            pass
+    doc, problems = parse_text(raw, "<key>", limits)
+    if doc is None or problems:
+        return False, None
+    ext = doc.data.get("extends") if isinstance(doc.data, dict) else None
+    ext = ext if isinstance(ext, str) and ext else None
+    if usable:
+        try:
+            fd, tmp = tempfile.mkstemp(dir=directory, suffix=".tmp")
+            with os.fdopen(fd, "w", encoding="utf-8") as fh:
+                json.dump({"extends": ext}, fh)
+            os.replace(tmp, note)
+        except OSError:
+            pass
+    return True, ext
 
 
 def cache_key(path: str | Path, limits: Any = None) -> str | None:
