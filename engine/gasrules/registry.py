@@ -66,7 +66,7 @@ def manifests_dir(release_dir: Path) -> Path:
 def write_manifest(release_dir: Path, manifest: dict[str, Any]) -> Path:
     """Seal (add manifest_sha256) and write a new manifest; never overwrites one. A manifest
     written now records the identity hash scheme of its sha256 (``hash_scheme``)."""
-    from .compiler import HASH_SCHEME
+    from .identity import HASH_SCHEME
 
     rb = manifest["rulebook"]
     sealed = {"hash_scheme": HASH_SCHEME, **manifest}
@@ -137,7 +137,7 @@ def approvals_for(release_dir: Path, sha256: str, *, legacy_sha256: str = "",
     derived values and rules only) approves the rulebook only when the resolved rulebook archived
     at that release has, under today's scheme, the same ``sha256``: what was approved, every
     text and label included, is what runs."""
-    from .compiler import HASH_SCHEME
+    from .identity import HASH_SCHEME
 
     entries = read_manifests(release_dir)
     for entry in entries:
@@ -160,7 +160,7 @@ def approvals_for(release_dir: Path, sha256: str, *, legacy_sha256: str = "",
 
 def flatten_resolved(res: Any, extra_suspensions: Iterable[tuple[str, str]] = ()) -> dict[str, Any]:
     """One self-contained rulebook document with the resolved content of ``res``."""
-    from .compiler import resolved_document
+    from .identity import resolved_document
 
     return resolved_document(res, extra_suspensions)
 

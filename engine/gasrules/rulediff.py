@@ -156,7 +156,7 @@ def load_resolved(path: str | Path) -> Any:
 
 
 def _side(path: str | Path, res: Any) -> Side:
-    from .compiler import identity_hash
+    from .identity import identity_hash
 
     md = res.metadata
     return Side(str(path), str(md["id"]), str(md["version"]), str(md.get("status", "")), identity_hash(res),
@@ -194,7 +194,7 @@ def _approval_text(approvals: list[dict[str, Any]]) -> str:
 
 
 def diff_resolved(old: Any, new: Any, old_path: str = "old", new_path: str = "new") -> RulebookDiff:
-    from .compiler import canonical_content
+    from .identity import canonical_content
 
     d = RulebookDiff(_side(old_path, old), _side(new_path, new))
     co, cn = canonical_content(old), canonical_content(new)
