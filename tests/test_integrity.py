@@ -199,3 +199,12 @@ def test_read_limits_come_from_the_settings_file(tmp_path: Path, mini_data: dict
     with pytest.raises(gasrules.RulebookError) as exc:
         Runtime.from_settings(load_settings(site, env={}), path)
     assert exc.value.errors[0].code == "RB-E007"
+
+
+def test_runtime_prepare_logs_only_when_delivered(tmp_path: Path, mini_rb: Any) -> None:
+    log = tmp_path / "d.jsonl"
+    with Runtime(mini_rb, Settings(decision_log=log, log_fsync=False)) as rt:
+        result, deliver = rt.prepare({"ph": 7.40, "pco2": 40, "hco3": 24}, trace=False)
+        assert result["trace"] == [] and verify_log(log).entries == 0
+        deliver()
+    assert verify_log(log).entries == 1

@@ -532,3 +532,27 @@ def test_gasrules_serve_with_a_bad_key_file_exits_2(tmp_path: Path) -> None:
     result = CliRunner().invoke(app, ["--cds-keys", str(keys), "--port", "0"])
     assert result.exit_code == 2
     assert "$.algorithms" in result.output
+
+
+def test_a_request_that_ends_in_an_error_writes_no_decision_record(rulebook: Any, tmp_path: Path,
+                                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    from gasrules.audit import verify_log
+    from gasrules.runtime import Runtime
+    from gasrules.service import RuntimeInterpreter
+    from gasrules.settings import Settings
+
+    log = tmp_path / "d.jsonl"
+    app = App(ServiceConfig(feedback_log=str(tmp_path / "f.jsonl")),
+              RuntimeInterpreter(Runtime(rulebook, Settings(decision_log=log, log_fsync=False))))
+
+    def broken(*args: Any, **kwargs: Any) -> Any:
+        raise RuntimeError("building the response failed")
+
+    monkeypatch.setattr(App, "_fhir_bundle", broken)
+    body = json.dumps(DEMO_CASE).encode()
+    resp = app.handle(Request("POST", "/interpret", {"fhir": ["1"]}, {"content-type": "application/json"}, body))
+    assert resp.status == 500
+    resp = app.handle(Request("POST", "/interpret", {}, {"content-type": "application/json"}, body))
+    assert resp.status == 200
+    app.close()
+    assert verify_log(log).entries == 1          # only the delivered result

@@ -183,6 +183,17 @@ class Runtime:
         other = interpret(self.candidate, case, trace=False) if self._shadow is not None else None
         return self._after(case, result, other, trace)
 
+    def prepare(self, case: Any, trace: bool = True) -> tuple[dict[str, Any], Any]:
+        """(result, deliver): the result is evaluated now; ``deliver()`` writes its decision
+        record (and shadow comparison) and must be called only once the result has been handed
+        over, so that a request ending in an error leaves no record."""
+        from . import interpret
+
+        result = interpret(self.rulebook, case, trace=trace or self._log is not None)
+        other = interpret(self.candidate, case, trace=False) if self._shadow is not None else None
+        shown = result if trace or not result.get("trace") else {**result, "trace": []}
+        return shown, lambda: self._after(case, result, other, trace)
+
     def interpret_many(self, cases: Iterable[Any], workers: int = 1, trace: bool = True) -> Iterator[dict[str, Any]]:
         """Results in input order, one per case (bad cases rejected inline)."""
         from . import interpret_many

@@ -96,6 +96,8 @@ class Interpreter(Protocol):
 
     def record(self, case: Any, result: dict[str, Any]) -> None: ...
 
+    def prepare(self, case: Any, trace: bool = True) -> tuple[dict[str, Any], Any]: ...
+
     def describe(self) -> dict[str, Any]: ...
 
     def close(self) -> None: ...
@@ -114,6 +116,9 @@ class EngineInterpreter:
 
     def record(self, case: Any, result: dict[str, Any]) -> None:
         return None
+
+    def prepare(self, case: Any, trace: bool = True) -> tuple[dict[str, Any], Any]:
+        return self.interpret(case, trace), lambda: None
 
     def describe(self) -> dict[str, Any]:
         return {"mode": "engine", "strict": False, "decision_records": False, "shadow": None}
@@ -140,6 +145,18 @@ class RuntimeInterpreter:
 
     def record(self, case: Any, result: dict[str, Any]) -> None:
         self.runtime.record(case, result)
+
+    def prepare(self, case: Any, trace: bool = True) -> tuple[dict[str, Any], Any]:
+        """(result, deliver): the decision record is written by deliver(), once the response is built."""
+        if self._lock is None:
+            return self.runtime.prepare(case, trace)
+        with self._lock:
+            result, deliver = self.runtime.prepare(case, trace)
+
+        def locked_deliver() -> None:
+            with self._lock:  # type: ignore[union-attr]
+                deliver()
+        return result, locked_deliver
 
     def describe(self) -> dict[str, Any]:
         rt, settings = self.runtime, self.runtime.settings
@@ -358,20 +375,24 @@ class App:
         if isinstance(body, list):
             raise HttpError(400, "request.not_a_case", "expected one case (a JSON object) or a "
                             "FHIR Bundle; send lists of cases to /interpret/batch", "body")
-        result = self.interpreter.interpret(body, trace)
+        result, deliver = self.interpreter.prepare(body, trace)
         if want_fhir:
-            bundle = self._fhir_bundle(result, {}, None, None, ())
-            return Response(200, dumps(bundle), FHIR_JSON)
-        return Response(200, dumps(result))
+            response = Response(200, dumps(self._fhir_bundle(result, {}, None, None, ())), FHIR_JSON)
+        else:
+            response = Response(200, dumps(result))
+        deliver()  # the decision record only for a result that is being returned
+        return response
 
     def _interpret_fhir(self, body: Any, trace: bool, preliminary: bool) -> Response:
         from .fhir import case_from_fhir
 
         read = case_from_fhir(body, self.rulebook.inputs, allow_preliminary=preliminary)
-        result = self.interpreter.interpret(read.case, trace)
+        result, deliver = self.interpreter.prepare(read.case, trace)
         refs = {k: v for k, v in read.sources.items() if "/" in v or v.startswith("urn:")}
         bundle = self._fhir_bundle(result, refs, read.subject, read.effective, read.issues)
-        return Response(200, dumps(bundle), FHIR_JSON)
+        response = Response(200, dumps(bundle), FHIR_JSON)
+        deliver()
+        return response
 
     def _fhir_bundle(self, result: dict[str, Any], refs: Mapping[str, str], subject: str | None,
                      effective: str | None, issues: Any) -> dict[str, Any]:
