@@ -200,3 +200,14 @@ def test_next_run_removes_hidden_partials_of_killed_runs(tmp_path: Path) -> None
     src.write_text("case_id,ph,pco2,hco3\nA1,7.40,40,24\n", encoding="utf-8")
     assert _batch(src, target) == 0
     assert not stale.exists() and live.exists() and other.exists() and target.exists()
+
+
+def test_a_stray_quote_inside_an_unquoted_field_does_not_merge_rows(tmp_path: Path) -> None:
+    src = tmp_path / "in.csv"
+    src.write_text("case_id,ph,pco2,hco3,height\n"
+                   "A1,7.40,40,24,5'11\"\n"
+                   "A2,7.40,40,24,6'0\"\n"
+                   "A3,7.40,40,24,\"two\nlines\"\n", encoding="utf-8")
+    assert _batch(src, tmp_path / "out.jsonl") == 0
+    rows = read_back(tmp_path / "out.jsonl")
+    assert [(r["case_id"], r["height"]) for r in rows] == [("A1", "5'11\""), ("A2", "6'0\""), ("A3", "two\nlines")]

@@ -40,28 +40,51 @@ class Record:
     error: str = ""
 
 
-def _raw_records(f: BinaryIO, limit: int) -> Iterator[tuple[int, bytes | None, int]]:
+def _quote_state(line: bytes, inside: bool, delimiter: int) -> bool:
+    """Whether a quoted field is still open at the end of ``line``. A quote opens a field only
+    at its start (as the csv module reads it): ``5'11"`` in an unquoted field is text."""
+    at_start = not inside
+    i, n = 0, len(line)
+    while i < n:
+        c = line[i]
+        if inside:
+            if c == 34:                                   # '"'
+                if i + 1 < n and line[i + 1] == 34:
+                    i += 1                                # an escaped quote
+                else:
+                    inside, at_start = False, False
+        elif c == 34 and at_start:
+            inside = True
+        else:
+            at_start = c == delimiter or c in (10, 13)
+        i += 1
+    return inside
+
+
+def _raw_records(f: BinaryIO, limit: int, delimiter: list[int]) -> Iterator[tuple[int, bytes | None, int]]:
     """(first line, record bytes or None when too long, byte size) for each logical record:
-    physical lines joined while a quote is open."""
+    physical lines joined while a quoted field is open. ``delimiter`` holds the delimiter's
+    byte (set once the header is known)."""
     line_no = 0
     parts: list[bytes] = []
     size = 0
-    quotes = 0
+    inside = False
     start = 1
     too_long = False
     for raw in f:
         line_no += 1
         if not parts and not too_long:
             start = line_no
-        quotes += raw.count(b'"')
+        if inside or b'"' in raw:
+            inside = _quote_state(raw, inside, delimiter[0])
         size += len(raw)
         if size > limit:
             too_long, parts = True, []
         elif not too_long:
             parts.append(raw)
-        if quotes % 2 == 0:
+        if not inside:
             yield start, (None if too_long else b"".join(parts)), size
-            parts, size, quotes, too_long = [], 0, 0, False
+            parts, size, too_long = [], 0, False
     if parts or too_long:
         yield start, (None if too_long else b"".join(parts)), size
 
@@ -115,7 +138,8 @@ def read_records(f: BinaryIO, field_limit: int = FIELD_LIMIT,
         raise CsvHeaderError(1, "the file is UTF-16", "a UTF-8 CSV file (with or without a byte-order mark)")
     if head.startswith(b"\xef\xbb\xbf"):
         f.read(3)
-    records = _raw_records(f, field_limit)
+    holder = [ord(",")]
+    records = _raw_records(f, field_limit, holder)
     first = next(records, None)
     if first is None:
         return ",", [], iter(()), None
@@ -128,6 +152,7 @@ def read_records(f: BinaryIO, field_limit: int = FIELD_LIMIT,
         raise CsvHeaderError(line, f"the header holds byte 0x{data[exc.start]:02x}, which is not UTF-8",
                              "a UTF-8 header") from None
     delimiter = sniff_delimiter(header_text)
+    holder[0] = ord(delimiter)
     header, why = _parse(data, delimiter)
     if header is None:
         raise CsvHeaderError(line, f"unreadable header: {why}")
