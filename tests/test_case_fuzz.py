@@ -65,3 +65,20 @@ def test_hostile_values_in_inputs_and_context_are_rejected_by_field(mini_rb: Any
         assert [(e["field"], e["code"]) for e in result["errors"]] == [(field, code)]
         json.dumps(result, allow_nan=False)
         assert validate_instance(result, "result.schema.json") == []
+
+
+def test_interpret_command_reads_hostile_json_lines_row_for_row(tmp_path: Any) -> None:
+    from typer.testing import CliRunner
+
+    from gasrules.commands import interpret as interpret_command
+
+    path = tmp_path / "cases.jsonl"
+    path.write_text('{"ph": 7.4, "context": {"x": ' + "[" * 50_000 + "]" * 50_000 + "}}\n"
+                    '{"ph": 7.4, "pco2": 40, "hco3": 24}\n'
+                    '{"ph": 1' + "0" * 5000 + "}\n", encoding="utf-8")
+    res = CliRunner().invoke(interpret_command.app, [str(path), "--json"])
+    assert res.exit_code == 4, res.output
+    results = [json.loads(line) for line in res.stdout.splitlines()]
+    assert [r["status"] == "rejected" for r in results] == [True, False, True]
+    assert results[0]["errors"][0]["message"].endswith("cases.jsonl:1: JSON nested too deeply to read")
+    assert "cases.jsonl:3: cannot be read" in results[2]["errors"][0]["message"]

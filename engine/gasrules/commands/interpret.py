@@ -52,16 +52,25 @@ def read_cases(source: str) -> Iterator[Any]:
             data = json.loads(text)
         except json.JSONDecodeError as exc:
             raise typer.BadParameter(f"{name}:{exc.lineno}:{exc.colno}: invalid JSON: {exc.msg}") from None
+        except RecursionError:
+            raise typer.BadParameter(f"{name}: JSON nested too deeply to read") from None
+        except ValueError as exc:
+            raise typer.BadParameter(f"{name}: cannot be read: {str(exc).split(';')[0]}") from None
         yield from (data if isinstance(data, list) else [data])
         return
     for lineno, line in enumerate(text.splitlines(), 1):
         if not line.strip():
             continue
         try:
-            yield json.loads(line)
+            case = json.loads(line)
         except json.JSONDecodeError as exc:
             # a bad line is a rejected case, never a lost one
-            yield {"__unreadable__": f"{name}:{lineno}:{exc.colno}: invalid JSON: {exc.msg}"}
+            case = {"__unreadable__": f"{name}:{lineno}:{exc.colno}: invalid JSON: {exc.msg}"}
+        except RecursionError:
+            case = {"__unreadable__": f"{name}:{lineno}: JSON nested too deeply to read"}
+        except ValueError as exc:   # e.g. an integer of thousands of digits
+            case = {"__unreadable__": f"{name}:{lineno}: cannot be read: {str(exc).split(';')[0]}"}
+        yield case
 
 
 def _looks_like_jsonl(text: str) -> bool:
@@ -73,6 +82,8 @@ def _looks_like_jsonl(text: str) -> bool:
         return True
     except json.JSONDecodeError:
         return False
+    except (RecursionError, ValueError):   # one whole value too deep or too long on the first line
+        return True
 
 
 def _runtime(settings_file: Optional[Path], rulebook: Optional[Path]) -> Any:
