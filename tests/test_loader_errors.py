@@ -703,3 +703,16 @@ def test_e048_display_units(here: Path) -> None:
         "site.yaml:11:13: RB-E048 display unit 'furlong' is not a known unit (at display_units.mm[Hg]); expected one of ",
         "site.yaml:12:10: RB-E048 display unit for 'g/L', which is the unit of no input (at display_units.g/L); "
         "expected a canonical unit of an input: [pH], mm[Hg]"]
+
+
+def test_e047_partial_input_or_rule_unknown_to_the_base_suggests_the_name(here: Path) -> None:
+    (here / "rb.yaml").write_text(HEAD, encoding="utf-8")
+    out = check(here, OVERLAY_HEAD + "inputs:\n  pco3: {plausible: {min: 5, max: 200}}\n"
+                "rules:\n  - {id: ph.lwo, when: ph < 7.3}\n", "site.yaml")
+    e047 = [line for line in out if "RB-E047" in line]
+    assert e047 == [
+        "site.yaml:10:9: RB-E047 overlay overrides input 'pco3', which the base does not declare; did you mean "
+        "'pco2'? (at inputs.pco3); expected the name of a base input (inputs cannot be overridden), or a full definition",
+        "site.yaml:12:10: RB-E047 overlay rule 'ph.lwo' is not a full definition and the base has no rule of that id; "
+        "did you mean 'ph.low'? (at rules[0].id); expected a full rule (status, step, findings), or suspend the base rule"]
+    assert any("RB-E010" in line for line in out)          # the schema still says what is missing

@@ -51,7 +51,7 @@ CODES: dict[str, str] = {
     "RB-E044": "overlay redefines a base id",
     "RB-E045": "parameter value outside its own bounds",
     "RB-E046": "constraint between parameters not met",
-    "RB-E047": "overlay overrides a parameter the base does not declare (did you mean...)",
+    "RB-E047": "overlay overrides a parameter, input or rule the base does not declare (did you mean...)",
     "RB-E048": "display unit unknown or of another quantity",
     # Warnings
     "RB-W101": "parameter is never used",

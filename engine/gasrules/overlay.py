@@ -84,6 +84,9 @@ def load_chain(path: str | Path, limits: Limits | None = None) -> tuple[list[Doc
         schema_problems = validate_document(doc)
         problems.extend(schema_problems)
         docs.append(doc)
+        if schema_problems and isinstance(doc.data, dict) and isinstance(doc.data.get("extends"), str):
+            problems.extend(_partial_unknown_entries(doc, schema_problems, current.parent / doc.data["extends"],
+                                                     limits, seen))
         if schema_problems or not isinstance(doc.data, dict):
             break
         ext = doc.data.get("extends")
@@ -94,6 +97,38 @@ def load_chain(path: str | Path, limits: Limits | None = None) -> tuple[list[Doc
             current = None
     docs.reverse()
     return docs, problems
+
+
+def _partial_unknown_entries(doc: Document, schema_problems: list[Problem], base: Path, limits: Limits,
+                             seen: set[Path]) -> list[Problem]:
+    """An overlay's input or rule that is not a full definition (the schema says what it lacks)
+    and whose name the base does not have: most likely a misspelt override. Say so, with the
+    closest base name."""
+    if base.resolve() in seen:
+        return []
+    base_docs, base_problems = load_chain(base, limits)
+    if base_problems:
+        return []
+    inputs = {n for d in base_docs for n in (d.data.get("inputs") or {})}
+    rules = {str(r.get("id")) for d in base_docs for r in (d.data.get("rules") or []) if isinstance(r, dict)}
+    broken = {p.location.path for p in schema_problems}
+
+    def flagged(prefix: str) -> bool:
+        return any(b == prefix or b.startswith(prefix + ".") or b.startswith(prefix + "[") for b in broken)
+
+    out = []
+    for name in (doc.data.get("inputs") or {}):
+        if name not in inputs and flagged(f"inputs.{name}"):
+            out.append(Problem("RB-E047", f"overlay overrides input '{name}', which the base does not declare"
+                               f"{did_you_mean(name, sorted(inputs))}", doc.locate(("inputs", name)),
+                               "the name of a base input (inputs cannot be overridden), or a full definition"))
+    for i, rule in enumerate(doc.data.get("rules") or []):
+        rid = rule.get("id") if isinstance(rule, dict) else None
+        if isinstance(rid, str) and rid not in rules and flagged(f"rules[{i}]"):
+            out.append(Problem("RB-E047", f"overlay rule '{rid}' is not a full definition and the base has no rule "
+                               f"of that id{did_you_mean(rid, sorted(rules))}", doc.locate(("rules", i, "id")),
+                               "a full rule (status, step, findings), or suspend the base rule"))
+    return out
 
 
 def _looks_like_rulebook(data: Any) -> bool:
