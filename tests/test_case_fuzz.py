@@ -24,14 +24,15 @@ def _units(rb: Any) -> Any:
     return lambda name: [rb.inputs[name].unit, *rb.inputs[name].alternatives] if name in rb.inputs else []
 
 
-@pytest.mark.parametrize("which,count", [("shipped", 6000), ("mini", 4000)])
+@pytest.mark.parametrize("which,count", [("shipped", 2500), ("mini", 7500)])
 def test_fuzzed_cases_always_give_valid_strict_results(which: str, count: int, shipped_rb: Any, mini_rb: Any) -> None:
     rb = shipped_rb if which == "shipped" else mini_rb
     rng = random.Random(4242 + count)
     names = sorted(rb.inputs)
     problems: list[str] = []
+    statuses: dict[str, int] = {}
     for i in range(count):
-        case = random_case(rng, names, _units(rb))
+        case = random_case(rng, names, _units(rb), rb.inputs)
         try:
             first = gasrules.interpret(rb, case)
             text = json.dumps(first, allow_nan=False, sort_keys=True)
@@ -41,10 +42,12 @@ def test_fuzzed_cases_always_give_valid_strict_results(which: str, count: int, s
             continue
         if text != again:
             problems.append(f"case {i}: two different results")
+        statuses[first["status"]] = statuses.get(first["status"], 0) + 1
         bad = validate_instance(first, "result.schema.json")
         if bad:
             problems.append(f"case {i}: {bad[0]}")
     assert not problems, f"{len(problems)} problems; first: {problems[0]}"
+    assert count - statuses.get("rejected", 0) > count // 4, statuses   # the evaluation itself is reached
 
 
 def test_hostile_values_in_inputs_and_context_are_rejected_by_field(mini_rb: Any) -> None:

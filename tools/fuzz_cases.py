@@ -37,7 +37,7 @@ def main() -> int:
     for i in range(args.n):
         rb = books[0] if i % 4 else books[1]
         names = sorted(rb.inputs)
-        case = random_case(rng, names, lambda n, rb=rb: [rb.inputs[n].unit, *rb.inputs[n].alternatives])
+        case = random_case(rng, names, lambda n, rb=rb: [rb.inputs[n].unit, *rb.inputs[n].alternatives], rb.inputs)
         counts["cases"] += 1
         try:
             result = gasrules.interpret(rb, case)

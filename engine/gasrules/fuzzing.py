@@ -16,7 +16,7 @@ import math
 import random
 import traceback
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Mapping
 
 import yaml
 
@@ -194,13 +194,41 @@ def run_rulebook(path: Path, outcomes: dict[str, int] | None = None) -> str | No
         return traceback.format_exc()
 
 
-def random_case(rng: random.Random, names: list[str], units: Callable[[str], list[str]] | None = None) -> Any:
+def plausible_case(rng: random.Random, inputs: Mapping[str, Any]) -> dict[str, Any]:
+    """A case that reads cleanly: a random subset of the inputs, each a number inside its
+    plausible range, a declared code or a flag (so the evaluation itself is exercised)."""
+    case: dict[str, Any] = {}
+    for name, spec in inputs.items():
+        if rng.random() < 0.35:
+            continue
+        if spec.kind == "code":
+            if spec.codes:
+                case[name] = rng.choice(list(spec.codes))
+        elif spec.kind == "flag":
+            case[name] = rng.choice([True, False])
+        else:
+            lo = spec.plausible_min if spec.plausible_min is not None else -1e3
+            hi = spec.plausible_max if spec.plausible_max is not None else 1e3
+            case[name] = rng.choice([lo, hi, rng.uniform(lo, hi), rng.uniform(lo, hi)])
+    return case
+
+
+def random_case(rng: random.Random, names: list[str], units: Callable[[str], list[str]] | None = None,
+                inputs: Mapping[str, Any] | None = None) -> Any:
     """A case of any JSON type: mostly objects with inputs (numbers, {value, unit}, junk), context
-    of any shape, and hostile top-level values."""
+    of any shape, and hostile top-level values. With ``inputs`` (the rulebook's input specs),
+    half the cases are plausible ones (:func:`plausible_case`), some with one field spoiled."""
+    if inputs is not None and rng.random() < 0.5:
+        case = plausible_case(rng, inputs)
+        if rng.random() < 0.3 and names:
+            case[rng.choice(names)] = hostile_value(rng)
+        if rng.random() < 0.3:
+            case["context"] = {"ward": "X", "n": rng.randrange(10 ** 6)}
+        return case
     roll = rng.random()
     if roll < 0.05:
         return hostile_value(rng)
-    case: dict[str, Any] = {}
+    case = {}
     for name in rng.sample(names, rng.randrange(len(names) + 1)):
         r = rng.random()
         if r < 0.5:
