@@ -141,3 +141,54 @@ def test_missing_anchor_is_an_error(logged: tuple[Path, Path], capsys: pytest.Ca
     anchor_path(log).unlink()
     code, out = run(capsys, "verify", str(log))
     assert code == 1 and "anchor_missing" in out
+
+
+# ---------------------------------------------------------------- malformed lines, keyed anchors
+
+@pytest.mark.parametrize("bad", [b"[" * 100_000 + b"]" * 100_000 + b"\n", b"\xff\xfe not utf-8\n",
+                                 b'{"seq": ' + b"9" * 5000 + b"}\n", b"null\n", b"{}\n"])
+def test_verify_reports_any_malformed_line_as_a_finding(bad: bytes, logged: tuple[Path, Path],
+                                                        capsys: pytest.CaptureFixture[str]) -> None:
+    log, _ = logged
+    content = lines(log)
+    log.write_bytes(b"".join(content[:2]) + bad + b"".join(content[3:]))
+    code, out = run(capsys, "verify", str(log))
+    assert code == 1 and "Traceback" not in out
+    assert f"{log}:3: malformed_" in out
+
+
+def test_keyed_anchor_detects_a_rewritten_log_and_anchor(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from gasrules.audit import verify_log
+    from gasrules.records import _write_anchor
+    from gasrules.settings import SettingsError, load_settings
+
+    keys, logs = tmp_path / "keys", tmp_path / "logs"
+    keys.mkdir()
+    logs.mkdir()
+    key_file = keys / "anchor.key"
+    key_file.write_text("k" * 32 + "\n", encoding="utf-8")
+    log = logs / "decisions.jsonl"
+    settings = load_settings(env={"GASRULES_DECISION_LOG": str(log), "GASRULES_ANCHOR_KEY_FILE": str(key_file),
+                                  "GASRULES_LOG_FSYNC": "0"})
+    book = gasrules.load_rulebook(DATA / "rulebook.yaml")
+    with Runtime(book, settings) as rt:
+        list(rt.interpret_many(CASES[:3]))
+    assert run(capsys, "verify", str(log), "--anchor-key-file", str(key_file))[0] == 0
+    # an attacker with write access to the log's folder drops the last entry and writes an anchor
+    # that agrees with what is left, but has no key
+    content = lines(log)
+    log.write_bytes(b"".join(content[:2]))
+    last = json.loads(content[1])
+    _write_anchor(anchor_path(log), 2, last["entry_sha256"], log.stat().st_size, False)
+    assert verify_log(log).ok                           # without the key nothing looks wrong
+    code, out = run(capsys, "verify", str(log), "--anchor-key-file", str(key_file))
+    assert code == 1 and "anchor_unkeyed" in out
+    _write_anchor(anchor_path(log), 2, last["entry_sha256"], log.stat().st_size, False, b"x" * 32)
+    code, out = run(capsys, "verify", str(log), "--anchor-key-file", str(key_file))
+    assert code == 1 and "anchor_hmac_mismatch" in out
+    # the key must live outside the log's folder
+    inside = logs / "anchor.key"
+    inside.write_text("k" * 32, encoding="utf-8")
+    with pytest.raises(SettingsError) as exc:
+        load_settings(env={"GASRULES_DECISION_LOG": str(log), "GASRULES_ANCHOR_KEY_FILE": str(inside)})
+    assert "inside the decision log's folder" in str(exc.value)

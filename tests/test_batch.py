@@ -236,7 +236,9 @@ def test_cli_summary_and_usage_errors(corpus: dict[str, Path], tmp_path: Path,
     code = main(["batch", str(corpus["csv"]), str(tmp_path / "o.parquet"), "--workers", "2",
                  "--summary-json", str(summary)])
     err = capsys.readouterr().err
-    assert code == 0, err
+    assert code == 4, err                       # some rows were rejected (they are in the output)
+    assert main(["batch", str(corpus["csv"]), str(tmp_path / "o2.parquet"), "--allow-rejected"]) == 0
+    capsys.readouterr()
     data = json.loads(summary.read_text())
     assert data["rows_in"] == data["rows_out"] == 1200 and sum(data["by_status"].values()) == 1200
     assert "1,200 rows in, 1,200 results out" in err and "by disorder" in err and "clinical judgement" in err
@@ -252,7 +254,7 @@ def test_cli_summary_and_usage_errors(corpus: dict[str, Path], tmp_path: Path,
 def test_cli_to_stdout(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     src = tmp_path / "g.csv"
     src.write_text("case_id,ph,pco2,hco3\nS1,7.40,40,24\nS2,7.4O,40,24\n", encoding="utf-8")
-    assert main(["batch", str(src)]) == 0
+    assert main(["batch", str(src)]) == 4       # S2 rejected
     out = capsys.readouterr().out
     rows = list(csv.DictReader(io.StringIO(out)))
     assert [(r["case_id"], r["status"] == "rejected") for r in rows] == [("S1", False), ("S2", True)]
@@ -277,12 +279,12 @@ def test_decision_records_one_entry_per_row_and_shadow(corpus: dict[str, Path], 
                         f"shadow:\n  rulebook: {ROOT / 'rulebooks' / 'example-site' / 'rulebook.yaml'}\n"
                         f"  log: {tmp_path / 'shadow.jsonl'}\n", encoding="utf-8")
     assert main(["batch", str(src), str(tmp_path / "o.csv"), "--workers", "2",
-                 "--settings", str(settings)]) == 0
+                 "--settings", str(settings), "--allow-rejected"]) == 0
     err = capsys.readouterr().err
     report = verify_log(log)
     assert report.entries == 300 and not report.errors
     assert "decision records appended" in err and "shadow candidate disagreed on" in err
-    assert main(["batch", str(src), str(tmp_path / "plain.csv")]) == 0
+    assert main(["batch", str(src), str(tmp_path / "plain.csv"), "--allow-rejected"]) == 0
     assert (tmp_path / "o.csv").read_bytes() == (tmp_path / "plain.csv").read_bytes()  # only the active result
 
 

@@ -155,7 +155,7 @@ def test_json_lines_never_lose_a_row(tmp_path: Path, capsys: pytest.CaptureFixtu
     assert results[1]["errors"][0]["code"] == "input.unreadable"
     assert results[1]["errors"][0]["message"].startswith(f"{path}:2:")
     assert all(result_validator(r) == [] for r in results)
-    assert code == 0 and err == "4 cases: 1 inconsistent, 1 interpreted, 2 rejected\n"
+    assert code == 4 and err == "4 cases: 1 inconsistent, 1 interpreted, 2 rejected\n"  # some rejected
 
 
 def test_stdin(result_validator: Any) -> None:
@@ -350,3 +350,95 @@ def test_cached_locations_do_not_depend_on_the_compiling_directory(tmp_path: Pat
     monkeypatch.chdir(tmp_path / "b")
     cached = str(gasrules.load_rulebook("../a/rb.yaml").parameters["ag_high"].set_by)
     assert cached == fresh
+
+
+def test_edited_base_behind_a_json_overlay_is_a_miss(tmp_path: Path, cache_dir: Path,
+                                                     counted_compiles: list[str]) -> None:
+    base = tmp_path / "base" / "rulebook.yaml"
+    base.parent.mkdir()
+    base.write_text(MINI.read_text(encoding="utf-8"), encoding="utf-8")
+    site = tmp_path / "site.json"
+    site.write_text(json.dumps({"format": "gasrules/1", "extends": "base/rulebook.yaml",
+                                "metadata": {"id": "json-site", "version": "0.1.0", "title": "JSON overlay",
+                                             "effective_date": "2026-12-01", "status": "draft"}}), encoding="utf-8")
+    before = gasrules.load_rulebook(site)
+    base.write_text(base.read_text(encoding="utf-8").replace("    value: 1.5\n", "    value: 1.4\n"), encoding="utf-8")
+    after = gasrules.load_rulebook(site)
+    assert len(counted_compiles) == 2
+    assert after.parameters["winter_slope"].value == 1.4 and after.sha256 != before.sha256
+
+
+def test_cache_key_covers_the_whole_package_source(tmp_path: Path) -> None:
+    """An edit to any engine module (here the loader, a comment) is a new key: a copy of the
+    package is edited and asked for its key in a fresh interpreter."""
+    import shutil
+    import subprocess
+    import sys
+
+    src = Path(gasrules.__file__).resolve().parent
+    copy = tmp_path / "engine" / "gasrules"
+    shutil.copytree(src, copy, ignore=shutil.ignore_patterns("__pycache__"))
+
+    def key() -> str:
+        code = "import sys; from gasrules import cache; print(cache.cache_key(sys.argv[1]))"
+        out = subprocess.run([sys.executable, "-c", code, str(MINI)], capture_output=True, text=True, check=True,
+                             env={"PYTHONPATH": str(copy.parent), "PATH": "/usr/bin:/bin"}, cwd=tmp_path)
+        return out.stdout.strip()
+
+    first = key()
+    assert first == key() and len(first) == 64
+    loader = copy / "loader.py"
+    loader.write_text(loader.read_text(encoding="utf-8") + "\n# an edit\n", encoding="utf-8")
+    assert key() != first
+
+
+def _planted(target: Path, marker: Path) -> None:
+    class Plant:
+        def __reduce__(self) -> Any:
+            import os
+            return (os.mkdir, (str(marker),))
+
+    target.write_bytes(pickle.dumps(Plant()))
+
+
+@pytest.mark.parametrize("unsafe", ["world_writable", "group_writable", "other_owner"])
+def test_pickles_only_from_a_private_cache_directory(unsafe: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                                     counted_compiles: list[str]) -> None:
+    import os
+    import warnings
+
+    shared = tmp_path / "shared-cache"
+    shared.mkdir(mode=0o700)
+    monkeypatch.setenv("GASRULES_CACHE_DIR", str(shared))
+    path = tmp_path / "rb.yaml"
+    path.write_text(MINI.read_text(encoding="utf-8"), encoding="utf-8")
+    marker = tmp_path / "pickle-ran"
+    _planted(shared / f"{cache_module.cache_key(path)}.pickle", marker)
+    if unsafe == "world_writable":
+        os.chmod(shared, 0o777)
+    elif unsafe == "group_writable":
+        os.chmod(shared, 0o770)
+    else:
+        owner = os.stat(shared).st_uid
+        monkeypatch.setattr(cache_module.os, "getuid", lambda: owner + 1)
+    monkeypatch.setattr(cache_module, "_WARNED", set())
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        for _ in range(3):
+            assert gasrules.load_rulebook(path).id == "mini-acid-base"
+    assert not marker.exists()                      # the planted pickle never ran
+    assert len(counted_compiles) == 3               # compiled every time
+    msgs = [str(w.message) for w in caught if issubclass(w.category, cache_module.CacheWarning)]
+    assert len(msgs) == 1 and str(shared) in msgs[0]
+    assert sorted(p.name for p in shared.glob("*.pickle")) == [f"{cache_module.cache_key(path)}.pickle"]  # none written
+
+
+def test_private_cache_directory_is_created_owner_only(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import os
+    import stat
+
+    target = tmp_path / "new" / "cache"
+    monkeypatch.setenv("GASRULES_CACHE_DIR", str(target))
+    gasrules.load_rulebook(MINI)
+    assert stat.S_IMODE(os.stat(target).st_mode) & 0o077 == 0
+    assert len(list(target.glob("*.pickle"))) == 1

@@ -139,7 +139,7 @@ def test_failed_run_leaves_no_output_directory(client: Any, rb: Any, warehouse: 
 def test_cli_on_a_running_scheduler(client: Any, warehouse: Path, tmp_path: Path,
                                     capsys: pytest.CaptureFixture[str]) -> None:
     out = tmp_path / "results"
-    code = main(["batch", str(warehouse), str(out), "--dask", client.scheduler.address])
+    code = main(["batch", str(warehouse), str(out), "--dask", client.scheduler.address, "--allow-rejected"])
     err = capsys.readouterr().err
     assert code == 0, err
     assert "890 rows in, 890 results out" in err and "4 partitions written" in err

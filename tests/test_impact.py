@@ -138,8 +138,10 @@ def test_same_report_with_one_and_two_workers(data: dict[str, Path]) -> None:
 def test_expected_transitions_turn_surprises_into_exit_1(data: dict[str, Path], tmp_path: Path) -> None:
     old, new = load_rulebook(SHIPPED), load_rulebook(data["tuned"])
     report = replay(old, new, data["csv"])
-    runner = CliRunner()
     args = [str(SHIPPED), str(data["tuned"]), str(data["csv"]), "--workers", "1", "--no-progress", "--no-cohorts"]
+    res = CliRunner().invoke(impact_command.app, args)     # this corpus has 5 % malformed rows on purpose
+    assert res.exit_code == 4 and "more than the limit of 1 %" in res.output, res.output
+    runner = CliRunner(env={"GASRULES_CORPUS_UNREADABLE_PERCENT": "50"})
     res = runner.invoke(impact_command.app, args)
     assert res.exit_code == 0, res.output
     everything = tmp_path / "all.yaml"
@@ -177,3 +179,11 @@ def test_html_is_self_contained(data: dict[str, Path]) -> None:
 def test_unreadable_corpus_is_a_usage_error(tmp_path: Path) -> None:
     res = CliRunner().invoke(impact_command.app, [str(SHIPPED), str(SHIPPED), str(tmp_path / "nope.csv"), "-w", "1"])
     assert res.exit_code == 2 and "nope.csv" in res.output
+
+
+def test_demo_corpus_format_follows_the_file_name(tmp_path: Path) -> None:
+    """The README's corpus step (--out corpus.csv, no --format) writes CSV, not JSON Lines."""
+    for name, first in (("c.csv", "case_id,"), ("c.jsonl", "{")):
+        subprocess.run([sys.executable, str(ROOT / "tools" / "make_demo_data.py"), "corpus", "--n", "3",
+                        "--out", str(tmp_path / name)], check=True, capture_output=True)
+        assert (tmp_path / name).read_text(encoding="utf-8").startswith(first)

@@ -112,11 +112,12 @@ def test_head_is_clean(here: Path) -> None:
 
 def test_every_code_is_documented_once() -> None:
     # The codes this file tests are the documented ones (errors.CODES), and each has a text.
-    tested = {"RB-E001", "RB-E002", "RB-E003", "RB-E004", "RB-E010", "RB-E020", "RB-E021", "RB-E022",
+    tested = {"RB-E001", "RB-E002", "RB-E003", "RB-E004", "RB-E005", "RB-E006", "RB-E007",
+              "RB-E008", "RB-E009", "RB-E010", "RB-E011", "RB-E020", "RB-E021", "RB-E022",
               "RB-E023", "RB-E024", "RB-E025", "RB-E026", "RB-E030", "RB-E031", "RB-E032", "RB-E033",
               "RB-E034", "RB-E035", "RB-E036", "RB-E037", "RB-E040", "RB-E041", "RB-E042", "RB-E043",
-              "RB-E044", "RB-E045", "RB-E050", "RB-E051", "RB-E052", "RB-E070", "RB-E071", "RB-E072",
-              "RB-E073", "RB-W101", "RB-W102", "RB-W103"}
+              "RB-E044", "RB-E045", "RB-E046", "RB-E047", "RB-E048", "RB-E050", "RB-E051", "RB-E052",
+              "RB-E070", "RB-E071", "RB-E072", "RB-E073", "RB-W101", "RB-W102", "RB-W103"}
     assert set(CODES) == tested
     assert all(CODES[c] for c in CODES)
 
@@ -402,7 +403,7 @@ def test_e042_choice_not_among_choices(here: Path) -> None:
 
 def test_e043_suspension_of_unknown_rule(here: Path) -> None:
     got = overlay(here, "suspend:\n  - {rule: ph.lowest, reason: \"Not ours.\"}\n")
-    assert got == ["site.yaml:10:12: RB-E043 suspension names unknown rule 'ph.lowest' (at suspend[0].rule); "
+    assert got == ["site.yaml:10:12: RB-E043 suspension names unknown rule 'ph.lowest'; did you mean 'ph.low'? (at suspend[0].rule); "
                    "expected the id of a rule in this rulebook or its base"]
     points_at(here, got[0], "ph.lowest")
 
@@ -673,3 +674,169 @@ def test_e052_key_declared_in_two_bibliographies(here: Path) -> None:
     got = check(here, text)
     assert got == ["more.yaml:4:5: RB-E052 bibliography key 'figge1998' is declared twice (first at bib.yaml:4:5) "
                    "(at entries.figge1998); expected one entry per key across a rulebook's bibliographies"]
+
+
+# ----------------------------------------------------------------------------- hostile files
+
+def test_alias_bomb_is_refused_before_expansion(here: Path) -> None:
+    levels = ["a0: &a0 [x, x, x, x, x, x, x, x, x, x]"]
+    levels += [f"a{i}: &a{i} [" + ", ".join([f"*a{i - 1}"] * 10) + "]" for i in range(1, 9)]   # 10**9 leaves
+    out = check(here, "\n".join(levels) + "\n")
+    assert out == ["rb.yaml:1:1: RB-E009 expands to more than 1000000 YAML nodes once aliases are followed "
+                   "(an alias bomb?); expected at most 1000000 nodes (setting limits.yaml_nodes)"]
+
+
+def test_node_budget_is_a_setting(here: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("GASRULES_YAML_NODE_BUDGET", "50")
+    assert check(here, HEAD)[0].startswith("rb.yaml:1:1: RB-E009 expands to more than 50 YAML nodes")
+
+
+def test_self_referencing_alias_and_deep_nesting(here: Path) -> None:
+    assert check(here, "a: &x [1, *x]\n") == [
+        "rb.yaml:1:4: RB-E009 an alias refers to the node that contains it (a self-referencing alias); "
+        "expected aliases to complete, earlier nodes"]
+    out = check(here, "a: " + "[" * 150 + "]" * 150 + "\n")
+    assert out[0].startswith("rb.yaml:1:") and "RB-E009 nesting deeper than 100 levels" in out[0]
+
+
+def test_file_size_limit_is_a_setting(here: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("GASRULES_RULEBOOK_MAX_BYTES", "100")
+    size = len(HEAD.encode("utf-8"))
+    assert check(here, HEAD) == [f"rb.yaml: RB-E006 is {size} bytes, more than the limit of 100; expected a file "
+                                 "of at most 100 bytes (setting limits.rulebook_bytes)"]
+
+
+def test_non_utf8_and_utf16_files(here: Path) -> None:
+    (here / "rb.yaml").write_bytes(HEAD.replace("Tiny rulebook", "Tiny r\xe9glement").encode("latin-1"))
+    out = [p.render() for p in gasrules.check_rulebook("rb.yaml")]
+    assert out == ["rb.yaml:5:16: RB-E008 byte 0xe9 is not UTF-8; expected a UTF-8 text file"]
+    (here / "rb.yaml").write_bytes(HEAD.encode("utf-16"))
+    assert [p.render() for p in gasrules.check_rulebook("rb.yaml")] == [
+        "rb.yaml:1:1: RB-E008 is UTF-16 (or another encoding with zero bytes), not UTF-8; expected a UTF-8 text file"]
+
+
+def test_impossible_date_is_an_error_at_its_place(here: Path) -> None:
+    out = check(here, HEAD.replace("effective_date: 2026-12-01", "effective_date: 2026-13-45"))
+    assert out[0] == ("rb.yaml:6:19: RB-E001 invalid value '2026-13-45': month must be in 1..12 (at "
+                      "metadata.effective_date); expected a real date (YYYY-MM-DD) or a quoted string")
+    points_at(here, out[0], "2026-13-45")
+
+
+def test_name_with_a_trailing_newline_is_refused(here: Path) -> None:
+    out = check(here, HEAD.replace("  ph_low: {value", '  "ph_low\\n": {value'))
+    assert out == ["rb.yaml:15:3: RB-E010 'ph_low\\n' does not match '^[a-z][a-z0-9_]*$' (at parameters); "
+                   "expected text matching ^[a-z][a-z0-9_]*$"]
+
+
+@pytest.mark.parametrize("target", ["fifo", "dev", "big", "outside", "not_rulebook"])
+def test_extends_to_what_is_not_a_rulebook_is_refused_without_echo(target: str, here: Path,
+                                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    import os
+
+    secret = "root:x:0:0:SECRET-CONTENT:/root:/bin/bash"
+    if target == "fifo":
+        os.mkfifo(here / "base.yaml")
+        ext = "base.yaml"
+    elif target == "dev":
+        ext = "/dev/zero"
+    elif target == "big":
+        (here / "base.yaml").write_text(HEAD + "#" * 2000 + "\n", encoding="utf-8")
+        monkeypatch.setenv("GASRULES_RULEBOOK_MAX_BYTES", "1500")
+        ext = "base.yaml"
+    elif target == "outside":
+        (here / "elsewhere").mkdir()
+        (here / "elsewhere" / "rb.yaml").write_text(HEAD, encoding="utf-8")
+        (here / "site").mkdir()
+        monkeypatch.setenv("GASRULES_RULEBOOK_ROOTS", str(here / "site"))
+        ext = "../elsewhere/rb.yaml"
+    else:
+        (here / "base.yaml").write_text(secret + "\n", encoding="utf-8")
+        ext = "base.yaml"
+    name = "site/overlay.yaml" if target == "outside" else "overlay.yaml"
+    text = OVERLAY_HEAD.replace("extends: rb.yaml", f"extends: {ext}")
+    out = check(here, text, name)
+    assert len(out) == 1 and f"{name}:2:10: RB-E004 extends names" in out[0], out
+    assert "SECRET" not in out[0]
+    code = {"fifo": "RB-E005", "dev": "RB-E005", "big": "RB-E006", "outside": "RB-E007",
+            "not_rulebook": "it is not a rulebook"}[target]
+    assert code in out[0]
+
+
+def test_roots_admit_a_chain_inside_them(here: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    (here / "rb.yaml").write_text(HEAD, encoding="utf-8")
+    monkeypatch.setenv("GASRULES_RULEBOOK_ROOTS", str(here))
+    assert check(here, OVERLAY_HEAD, "overlay.yaml") == []
+
+
+@pytest.mark.parametrize("bad", [".nan", ".inf", "-.inf", "1" + "0" * 400])
+def test_numbers_that_cannot_be_used_are_refused_at_their_place(bad: str, here: Path) -> None:
+    out = check(here, HEAD.replace("bounds: {min: 7.28, max: 7.38}", f"bounds: {{min: {bad}, max: 7.38}}"))
+    assert out == [f"rb.yaml:15:53: RB-E011 number {bad[:40]!r} cannot be used (NaN, infinity or an integer too large) "
+                   "(at parameters.ph_low.bounds.min); expected a finite number; integers within "
+                   "\u00b19223372036854775807"]
+    points_at(here, out[0], bad)
+
+
+
+# ----------------------------------------------------------------------------- overlay mistakes
+
+CONSTRAINED = HEAD + 'constraints:\n  - {expr: "ph_low < 7.36", message: "placeholder relation for the test"}\n'
+
+
+def test_e046_overlay_breaking_a_constraint(here: Path) -> None:
+    (here / "rb.yaml").write_text(CONSTRAINED, encoding="utf-8")
+    assert check(here, CONSTRAINED) == []
+    out = check(here, OVERLAY_HEAD + "parameters:\n  ph_low: {value: 7.37}\n", "site.yaml")
+    assert out == ["rb.yaml:32:12: RB-E046 constraint not met: placeholder relation for the test (ph_low < 7.36; "
+                   "ph_low = 7.37 set at site.yaml:10:19) (at constraints[0].expr); expected parameter values for "
+                   "which ph_low < 7.36 holds"]
+    points_at(here, out[0], "\"ph_low < 7.36\"")
+
+
+def test_constraint_over_what_is_not_a_parameter(here: Path) -> None:
+    out = check(here, HEAD + 'constraints:\n  - {expr: "ph < ph_low", message: "inputs are not allowed"}\n')
+    assert out == ["rb.yaml:32:12: RB-E022 constraint names ph, which is not a numeric parameter "
+                   "(at constraints[0].expr); expected an expression over numeric parameters only"]
+
+
+def test_e047_override_of_an_unknown_parameter_suggests_the_name(here: Path) -> None:
+    (here / "rb.yaml").write_text(HEAD, encoding="utf-8")
+    out = check(here, OVERLAY_HEAD + "parameters:\n  ph_lwo: {value: 7.3}\n", "site.yaml")
+    assert out == ["site.yaml:10:11: RB-E047 overlay overrides parameter 'ph_lwo', which the base does not declare; "
+                   "did you mean 'ph_low'? (at parameters.ph_lwo); expected the name of a base parameter, or a full "
+                   "definition (unit and bounds or choices) to add a new one"]
+    full = ("parameters:\n  ph_lwo: {value: 7.3, unit: \"[pH]\", bounds: {min: 7.2, max: 7.4}, rationale: \"New.\", "
+            "source: {citation: \"Common practice\", evidence: CP}}\n")
+    assert [p.split(" (at")[0] for p in check(here, OVERLAY_HEAD + full, "site.yaml")] == [
+        "site.yaml:10:11: RB-W101 parameter 'ph_lwo' is never used"]      # a full definition adds one
+
+
+def test_e043_unknown_suspension_suggests_the_rule(here: Path) -> None:
+    (here / "rb.yaml").write_text(HEAD, encoding="utf-8")
+    out = check(here, OVERLAY_HEAD + "suspend:\n  - {rule: ph.lwo, reason: testing}\n", "site.yaml")
+    assert out[0].startswith("site.yaml:10:12: RB-E043 suspension names unknown rule 'ph.lwo'; did you mean 'ph.low'?")
+
+
+def test_e048_display_units(here: Path) -> None:
+    (here / "rb.yaml").write_text(HEAD, encoding="utf-8")
+    out = check(here, OVERLAY_HEAD + 'display_units:\n  "[pH]": kPa\n  "mm[Hg]": furlong\n  "g/L": "g/dL"\n',
+                "site.yaml")
+    assert out == [
+        "site.yaml:10:11: RB-E048 display unit 'kPa' is not a unit of the quantity measured in '[pH]' "
+        "(at display_units.[pH]); expected one of ",
+        "site.yaml:11:13: RB-E048 display unit 'furlong' is not a known unit (at display_units.mm[Hg]); expected one of ",
+        "site.yaml:12:10: RB-E048 display unit for 'g/L', which is the unit of no input (at display_units.g/L); "
+        "expected a canonical unit of an input: [pH], mm[Hg]"]
+
+
+def test_e047_partial_input_or_rule_unknown_to_the_base_suggests_the_name(here: Path) -> None:
+    (here / "rb.yaml").write_text(HEAD, encoding="utf-8")
+    out = check(here, OVERLAY_HEAD + "inputs:\n  pco3: {plausible: {min: 5, max: 200}}\n"
+                "rules:\n  - {id: ph.lwo, when: ph < 7.3}\n", "site.yaml")
+    e047 = [line for line in out if "RB-E047" in line]
+    assert e047 == [
+        "site.yaml:10:9: RB-E047 overlay overrides input 'pco3', which the base does not declare; did you mean "
+        "'pco2'? (at inputs.pco3); expected the name of a base input (inputs cannot be overridden), or a full definition",
+        "site.yaml:12:10: RB-E047 overlay rule 'ph.lwo' is not a full definition and the base has no rule of that id; "
+        "did you mean 'ph.low'? (at rules[0].id); expected a full rule (status, step, findings), or suspend the base rule"]
+    assert any("RB-E010" in line for line in out)          # the schema still says what is missing

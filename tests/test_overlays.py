@@ -20,7 +20,7 @@ import pytest
 import gasrules
 from conftest import EXAMPLE_SITE, MINI, MINI_OVERLAYS, ROOT, SHIPPED, portable
 from gasrules.bibliography import load_bibliographies
-from gasrules.compiler import canonical_content
+from gasrules.compiler import canonical_content, identity_content
 from gasrules.overlay import load_chain, resolve
 from gasrules.reporters import render_result
 
@@ -263,13 +263,16 @@ def _sha(path: Path) -> str:
 
 
 def test_sha256_is_over_canonical_json_of_resolved_content(mini_rb: Any) -> None:
-    # The definition in the engine issue: sha256 of canonical JSON (sorted keys, no insignificant
-    # whitespace) of the resolved content, lifecycle metadata excluded.
+    # Identity scheme 2 (integrity issue): sha256 of canonical JSON (sorted keys, no insignificant
+    # whitespace) of the whole resolved rulebook, metadata.status and metadata.changelog excluded.
     docs, _ = load_chain(MINI)
     resolved, _ = resolve(docs)
-    content = canonical_content(resolved)
-    assert {"id", "version", "inputs", "parameters", "derived", "rules"} <= set(content)
-    assert not {"status", "owners", "changelog", "metadata"} & set(content)
+    content = identity_content(resolved)
+    assert {"metadata", "inputs", "parameters", "derived", "rules", "steps", "presentation"} <= set(content)
+    assert not {"status", "changelog"} & set(content["metadata"])
+    assert {"id", "version", "title", "owners", "intended_use"} <= set(content["metadata"])
+    # scheme 1 (kept for releases made before) covered the clinical content only
+    assert not {"status", "owners", "changelog", "metadata"} & set(canonical_content(resolved))
     # numbers are written as floats, so 12 and 12.0 (one value) hash alike
     floats = json.loads(json.dumps(content), parse_int=float)
     text = json.dumps(floats, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
@@ -286,8 +289,6 @@ def test_sha256_is_over_canonical_json_of_resolved_content(mini_rb: Any) -> None
 @pytest.mark.parametrize("old, new", [
     ("  status: draft\n", "  status: approved\n"),
     ("  status: draft\n", "  status: active\n"),
-    ('    - {name: "gasrules engine tests", role: "authors"}\n',
-     '    - {name: "gasrules engine tests", role: "authors"}\n    - {name: "A reviewer", role: "sign-off"}\n'),
     ('    - {version: 0.1.0, date: 2026-12-01, summary: "First mini rulebook for engine tests."}\n',
      '    - {version: 0.1.0, date: 2026-12-01, summary: "First mini rulebook for engine tests."}\n'
      '    - {version: 0.1.0, date: 2026-12-02, summary: "Approved."}\n'),
@@ -309,6 +310,8 @@ def test_sha256_unchanged_by_number_spelling(tmp_path: Path, mini_rb: Any) -> No
     ("    expr: na - (cl + hco3)\n", "    expr: na - cl - hco3\n"),
     ("    when: ph < ph_low\n", "    when: ph <= ph_low\n"),
     ("  version: 0.1.0\n", "  version: 0.1.1\n"),
+    ('    - {name: "gasrules engine tests", role: "authors"}\n',                   # owners are hashed (scheme 2)
+     '    - {name: "gasrules engine tests", role: "authors"}\n    - {name: "A reviewer", role: "sign-off"}\n'),
     ("    status: active\n    step: ph_state\n    title: Acidaemia\n",
      "    status: suspended\n    step: ph_state\n    title: Acidaemia\n"),
 ])
@@ -367,3 +370,30 @@ def test_bibliography_content_is_part_of_the_identity(tmp_path: Path) -> None:
     assert text.count("year: 1998") == 1
     bib.write_text(text.replace("year: 1998", "year: 1999"), encoding="utf-8")
     assert gasrules.load_rulebook(tmp_path / "mini" / "rulebook.yaml", cache=False).sha256 != base.sha256
+
+
+# ---------------------------------------------------------------- intended use of an overlay
+
+def _overlay_with_use(tmp_path: Path, population: str) -> Path:
+    path = tmp_path / "site.yaml"
+    path.write_text("format: gasrules/1\n"
+                    f"extends: {json.dumps(str(MINI))}\n"
+                    "metadata:\n  id: use-site\n  version: 0.1.0\n  title: Use site\n  effective_date: 2026-12-01\n"
+                    "  status: draft\n  intended_use:\n"
+                    f"    population: {json.dumps(population)}\n    setting: \"Engine tests; not for clinical use\"\n",
+                    encoding="utf-8")
+    return path
+
+
+def test_overlay_intended_use_is_shown_in_diff_and_review_document(tmp_path: Path) -> None:
+    from gasrules.document import build_document, render_markdown
+    from gasrules.rulediff import diff_paths, render_text
+
+    changed = _overlay_with_use(tmp_path, "Children (engine tests only)")
+    text = render_text(diff_paths(MINI, changed))
+    assert "[minor] intended_use value" in text and "Children (engine tests only)" in text
+    md = render_markdown(build_document(changed))
+    assert "| Intended use of the base (differs) | population: Adults (engine tests only)" in md
+    same = _overlay_with_use(tmp_path, "Adults (engine tests only)")       # the base's own words
+    assert "intended_use value" not in render_text(diff_paths(MINI, same))
+    assert "Intended use of the base" not in render_markdown(build_document(same))

@@ -20,6 +20,8 @@ import gasrules
 from conftest import MINI
 from gasrules import units as U
 
+# integers a context may carry (strict JSON: larger ones reject the case, tests/test_case_fuzz.py)
+JSON_INTS = st.integers(min_value=-(2 ** 63 - 1), max_value=2 ** 63 - 1)
 SETTINGS = settings(max_examples=40, deadline=None, derandomize=True,
                     suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 
@@ -62,7 +64,7 @@ def cases(rb: Any) -> st.SearchStrategy[dict[str, Any]]:
     engine_set = {spec.fallback_marks for spec in rb.inputs.values() if spec.fallback_marks}
     optional = {name: value_strategy(spec) for name, spec in rb.inputs.items() if name not in engine_set}
     optional["case_id"] = st.text(max_size=12)
-    optional["context"] = st.dictionaries(st.text(max_size=5), st.one_of(st.integers(), st.text(max_size=5)),
+    optional["context"] = st.dictionaries(st.text(max_size=5), st.one_of(JSON_INTS, st.text(max_size=5)),
                                           max_size=3)
     return st.fixed_dictionaries({}, optional=optional)
 
@@ -134,7 +136,7 @@ def test_out_of_range_value_rejects_the_case_naming_the_field(data: st.DataObjec
 
 
 @settings(max_examples=40, deadline=None, derandomize=True)
-@given(case=cases(MINI_RB), case_id=st.text(max_size=10), context=st.dictionaries(st.text(max_size=4), st.integers()))
+@given(case=cases(MINI_RB), case_id=st.text(max_size=10), context=st.dictionaries(st.text(max_size=4), JSON_INTS))
 def test_case_id_and_context_change_nothing_else(case: dict[str, Any], case_id: str, context: dict[str, int]) -> None:
     plain = {k: v for k, v in case.items() if k not in ("case_id", "context")}
     a = gasrules.interpret(MINI_RB, plain)

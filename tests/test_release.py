@@ -172,3 +172,91 @@ def test_suspend_command_rule_and_rulebook(book: Path, tmp_path: Path, capsys: p
                                                           ("lift", None), ("lift", "ph.normal")]
     with Runtime.from_settings(Settings(strict=True, release_dir=rel), book) as rt:
         assert rt.interpret({"case_id": "n", "ph": 7.40})["findings"][0]["code"] == "ph.normal"
+
+
+# ---------------------------------------------------------------- names compared as read; the roster
+
+@pytest.mark.parametrize("disguise", [
+    "A. Аuthor",            # Cyrillic capital A
+    "A.\u200b Author",      # zero-width space
+    "A. \u00adAuthor",      # soft hyphen (a format character)
+    "Ａ. Ａｕｔｈｏｒ",        # full-width letters (NFKC)
+    "A. AUTHOR",            # case
+    "A. Auth0r",            # digit zero for letter O (confusable skeleton)
+])
+def test_an_author_in_disguise_cannot_approve(disguise: str, book: Path, tmp_path: Path) -> None:
+    with pytest.raises(ReleaseRefused) as exc:
+        release(book, release_dir=tmp_path / "rel", approvers=[Approver(disguise, "lead")], authors=["A. Author"])
+    assert [code for code, _ in exc.value.reasons] == ["approval.self"]
+
+
+def test_the_same_approver_twice_in_disguise_is_a_duplicate(book: Path, tmp_path: Path) -> None:
+    with pytest.raises(ReleaseRefused) as exc:
+        release(book, release_dir=tmp_path / "rel", authors=["A. Author"],
+                approvers=[LEAD, Approver("B. Reviewer\u200d", "second")])
+    assert [code for code, _ in exc.value.reasons] == ["approval.duplicate"]
+
+
+def _roster(path: Path) -> Path:
+    path.write_text('people:\n  - {id: "p-001", name: "A. Author"}\n'
+                    '  - {id: "p-002", name: "B. Reviewer", aliases: ["Bea Reviewer"]}\n', encoding="utf-8")
+    return path
+
+
+def test_roster_refuses_names_not_on_it_and_records_ids(book: Path, tmp_path: Path,
+                                                        capsys: pytest.CaptureFixture[str]) -> None:
+    from gasrules.people import load_roster
+
+    roster = load_roster(_roster(tmp_path / "people.yaml"))
+    with pytest.raises(ReleaseRefused) as exc:
+        release(book, release_dir=tmp_path / "rel", approvers=[Approver("C. Stranger", "lead")],
+                authors=["A. Author"], roster=roster)
+    assert exc.value.reasons[0] == ("approval.not_on_roster", "approver 'C. Stranger' is not on the site roster "
+                                    f"{tmp_path / 'people.yaml'}")
+    out = release(book, release_dir=tmp_path / "rel", approvers=[Approver("Bea Reviewer", "lead")],
+                  authors=["A. Author"], roster=roster)
+    assert out.manifest["approvers"] == [{"name": "Bea Reviewer", "role": "lead", "id": "p-002"}]
+    assert out.manifest["author_ids"] == ["p-001"]
+    # through the command, the roster comes from the settings
+    book2 = tmp_path / "book2"
+    shutil.copytree(DATA, book2)
+    code = main(["release", str(book2 / "rulebook.yaml"), "--approver", "C. Stranger", "--role", "lead",
+                 "--author", "A. Author", "--release-dir", str(tmp_path / "rel2")], )
+    assert code == 0  # no roster set: anyone may approve
+
+
+def test_roster_setting_is_enforced_by_the_command(book: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                                   capsys: pytest.CaptureFixture[str]) -> None:
+    monkeypatch.setenv("GASRULES_ROSTER", str(_roster(tmp_path / "people.yaml")))
+    code = main(["release", str(book), "--approver", "C. Stranger", "--role", "lead", "--author", "A. Author",
+                 "--release-dir", str(tmp_path / "rel")])
+    assert code == 1 and "approval.not_on_roster" in capsys.readouterr().err
+    (tmp_path / "bad.yaml").write_text("people:\n  - {name: 'No Id'}\n", encoding="utf-8")
+    monkeypatch.setenv("GASRULES_ROSTER", str(tmp_path / "bad.yaml"))
+    code = main(["release", str(book), "--approver", "B. Reviewer", "--role", "lead", "--author", "A. Author",
+                 "--release-dir", str(tmp_path / "rel")])
+    err = capsys.readouterr().err
+    assert code == 2 and "bad.yaml:2:5: roster: people[0] needs a non-empty id and name" in err
+
+
+# ---------------------------------------------------------------- coverage: covered apart from declared unreachable
+
+def test_coverage_reports_declared_unreachable_apart(book: Path, tmp_path: Path,
+                                                    capsys: pytest.CaptureFixture[str]) -> None:
+    from gasrules.document import build_document, render_markdown
+
+    # drop the case that makes ph.alkalaemia fire and declare that outcome unreachable instead
+    cases = book.parent / "cases" / "ph.yaml"
+    text = cases.read_text(encoding="utf-8")
+    cut = text.index("  - id: ph-high")
+    cases.write_text(text[:cut] + 'unreachable:\n  - {rule: ph.alkalaemia, outcome: fired, reason: "test: declared"}\n',
+                     encoding="utf-8")
+    assert main(["verify", str(book)]) in (0, 1)
+    out = capsys.readouterr().out
+    assert "Rule coverage: 2 covered + 1 declared unreachable of 3 active rules" in out
+    m = release(book, release_dir=tmp_path / "rel", approvers=[LEAD], authors=["A. Author"]).manifest
+    assert (m["suite"]["rules_covered"], m["suite"]["rules_declared_unreachable"]) == (3, 1)
+    assert m["suite"]["rule_coverage"] == "2 covered + 1 declared unreachable of 3"
+    assert m["suite"]["threshold_coverage"]["summary"] == "0 covered + 0 declared unreachable of 12"  # no probes
+    md = render_markdown(build_document(book))
+    assert "| Rule coverage | 2 covered + 1 declared unreachable of 3 active rules |" in md

@@ -108,15 +108,16 @@ def test_capillary_screen_only_is_reachable_for_a_site(tmp_path):
 
 
 def test_delta_gap_low_is_reachable_with_wider_delta_gap_use(tmp_path):
-    # With delta_min_dhco3 8, ag_normal 12 (= ag_high) and no spread of the normal gap the delta
-    # gap is read for falls in HCO3 up to 8: AG 12.5 and HCO3 16.2 give a delta gap of
-    # 0.5 - 7.8 = -7.3, below -6 (Wrenn 1990, from memory: a normal-gap acidosis beside the gap acidosis).
+    # With delta_min_dhco3 8, ag_normal 11.9 (just below ag_high 12: the rulebook's constraints keep
+    # it below) and no spread of the normal gap, the delta gap is read for falls in HCO3 up to 8:
+    # AG 12.5 and HCO3 16.2 give a delta gap of 0.6 - 7.8 = -7.2, below -6
+    # (Wrenn 1990, from memory: a normal-gap acidosis beside the gap acidosis).
     params = ("  delta_min_dhco3:\n    value: 8\n    rationale: test\n    source: {evidence: CP, note: test}\n"
-              "  ag_normal:\n    value: 12\n    rationale: test\n    source: {evidence: CP, note: test}\n"
+              "  ag_normal:\n    value: 11.9\n    rationale: test\n    source: {evidence: CP, note: test}\n"
               "  ag_normal_spread:\n    value: 0\n    rationale: test\n    source: {evidence: CP, note: test}\n")
     rb = gasrules.load_rulebook(_overlay(tmp_path, params), cache=False)
     res = gasrules.interpret(rb, {"sample_type": "arterial", "ph": 7.34, "pco2": 31, "hco3": 16.2,
                                   "na": 140, "cl": 111.3, "albumin": 44})
-    assert res["values"]["delta_gap"] == pytest.approx(-7.3, abs=0.05)
+    assert res["values"]["delta_gap"] == pytest.approx(-7.2, abs=0.05)
     assert any(e["rule"] == "delta.gap_low" and e["outcome"] == "fired" for e in res["trace"])
     assert "metabolic_acidosis_normal_anion_gap" in res["disorders"]

@@ -210,15 +210,32 @@ def test_batch_json_lines_keeps_a_broken_line_as_a_rejected_row(server: Server) 
     result_validator().validate(bad)
 
 
-def test_batch_past_its_deadline_fails_whole_with_503(rulebook: Any, tmp_path: Path) -> None:
-    app = App(ServiceConfig(timeout=5.0, feedback_log=str(tmp_path / "f.jsonl")),
-              EngineInterpreter(rulebook))
+def test_batch_past_its_deadline_returns_every_row_and_logs_exactly_those(rulebook: Any, tmp_path: Path,
+                                                                         monkeypatch: pytest.MonkeyPatch) -> None:
+    """N in, N out: the rows not reached before the deadline come back rejected, and the
+    decision log holds exactly the results returned."""
+    from gasrules import service as service_module
+    from gasrules.audit import verify_log
+    from gasrules.runtime import Runtime
+    from gasrules.service import RuntimeInterpreter
+    from gasrules.settings import Settings
+
+    log = tmp_path / "d.jsonl"
+    runtime = Runtime(rulebook, Settings(decision_log=log, log_fsync=False))
+    app = App(ServiceConfig(timeout=5.0, feedback_log=str(tmp_path / "f.jsonl")), RuntimeInterpreter(runtime))
+    clock = iter([100.0, 101.0, 106.0, 107.0])        # the third row is past the 5 s deadline
+    monkeypatch.setattr(service_module.time, "monotonic", lambda: next(clock))
     body = json.dumps(DEMO_ROWS[:3]).encode()
-    req = Request("POST", "/interpret/batch", {}, {"content-type": "application/json"}, body,
-                  started=time.monotonic() - 10)
+    req = Request("POST", "/interpret/batch", {}, {"content-type": "application/json"}, body, started=100.0)
     resp = app.handle(req)
-    assert resp.status == 503 and resp.headers["Retry-After"] == "1"
-    assert json.loads(resp.body)["error"]["code"] == "service.timeout"
+    app.close()
+    out = json.loads(resp.body)
+    assert resp.status == 200 and len(out) == 3
+    assert [r["status"] == "rejected" for r in out] == [False, False, True]
+    assert "passed its deadline of 5 s" in out[2]["errors"][0]["message"]
+    assert out[2]["case_id"] == DEMO_ROWS[2].get("case_id")
+    result_validator().validate(out[2])
+    assert verify_log(log).entries == 3
 
 
 def test_an_engine_failure_on_one_row_rejects_that_row_only(rulebook: Any,
@@ -526,3 +543,27 @@ def test_gasrules_serve_with_a_bad_key_file_exits_2(tmp_path: Path) -> None:
     result = CliRunner().invoke(app, ["--cds-keys", str(keys), "--port", "0"])
     assert result.exit_code == 2
     assert "$.algorithms" in result.output
+
+
+def test_a_request_that_ends_in_an_error_writes_no_decision_record(rulebook: Any, tmp_path: Path,
+                                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    from gasrules.audit import verify_log
+    from gasrules.runtime import Runtime
+    from gasrules.service import RuntimeInterpreter
+    from gasrules.settings import Settings
+
+    log = tmp_path / "d.jsonl"
+    app = App(ServiceConfig(feedback_log=str(tmp_path / "f.jsonl")),
+              RuntimeInterpreter(Runtime(rulebook, Settings(decision_log=log, log_fsync=False))))
+
+    def broken(*args: Any, **kwargs: Any) -> Any:
+        raise RuntimeError("building the response failed")
+
+    monkeypatch.setattr(App, "_fhir_bundle", broken)
+    body = json.dumps(DEMO_CASE).encode()
+    resp = app.handle(Request("POST", "/interpret", {"fhir": ["1"]}, {"content-type": "application/json"}, body))
+    assert resp.status == 500
+    resp = app.handle(Request("POST", "/interpret", {}, {"content-type": "application/json"}, body))
+    assert resp.status == 200
+    app.close()
+    assert verify_log(log).entries == 1          # only the delivered result

@@ -72,7 +72,8 @@ def test_shadow_command_run_and_report(candidate: Path, tmp_path: Path, capsys: 
     code = main(["shadow", "run", str(cases), "--rulebook", str(DATA / "rulebook.yaml"), "--candidate", str(candidate),
                  "--log", str(log)])
     out = capsys.readouterr()
-    assert code == 0
+    assert code == 4                       # 1 of 5 rows unreadable: above the 1 % corpus limit
+    assert "more than the limit of 1 % (setting limits.corpus_unreadable_percent)" in out.err
     assert [line.split("\t")[:2] for line in out.out.splitlines()] == [
         ["low", "interpreted"], ["edge", "interpreted"], ["mid", "interpreted"], ["high", "interpreted"],
         ["cases.jsonl:5", "rejected"]]

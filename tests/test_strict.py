@@ -86,7 +86,7 @@ def test_settings_errors_name_the_setting_and_place(tmp_path: Path) -> None:
                              "accepted: keep | mask | drop"
     f.write_text("strikt: true\n", encoding="utf-8")
     with pytest.raises(SettingsError, match=r"bad.yaml:1:9: setting strikt: unknown setting; accepted: "
-                                            r"decision_log, interfaces, releases, rulebook, serve, shadow, strict"):
+                                            r"decision_log, interfaces, limits, releases, rulebook, rulebook_roots, serve, shadow, strict"):
         load_settings(f, env={})
     with pytest.raises(SettingsError, match="GASRULES_STRICT: setting GASRULES_STRICT: 'maybe' is not a yes/no"):
         load_settings(env={"GASRULES_STRICT": "maybe"})

@@ -134,7 +134,8 @@ def write_corpus(out: TextIO, n: int, seed: int, fmt: str, mix: str,
 def _corpus_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--n", type=int, default=100_000, help="number of rows (default 100000)")
     p.add_argument("--seed", type=int, default=7, help="generator seed (default 7)")
-    p.add_argument("--format", choices=("csv", "jsonl"), default="jsonl")
+    p.add_argument("--format", choices=("csv", "jsonl"), default=None,
+                   help="csv or jsonl (default: from the --out suffix, .csv -> csv, else jsonl)")
     p.add_argument("--mix", choices=("hospital", "icu", "ed", "ward"), default="hospital")
     p.add_argument("--malformed-share", type=float, default=0.001,
                    help="share of deliberately malformed rows (default 0.001)")
@@ -149,6 +150,8 @@ def _corpus_run(args: argparse.Namespace) -> int:
         print(f"--malformed-share must be between 0 and 1, got {args.malformed_share}",
               file=sys.stderr)
         return 2
+    if args.format is None:   # the file name says the format: never JSON Lines in a .csv
+        args.format = "csv" if str(args.out).lower().endswith(".csv") else "jsonl"
     t0 = time.perf_counter()
     with _open_out(args.out) as f:
         written, malformed = write_corpus(f, args.n, args.seed, args.format, args.mix,

@@ -5,8 +5,15 @@ The public surface (everything else is internal):
 * :func:`load_rulebook` - load, check and compile a rulebook (the shipped default when no path);
 * :func:`check_rulebook` - every problem in a rulebook, with file:line:column;
 * :func:`interpret` - one case (a dict) to the result contract (a dict, schemas/result.schema.json);
+  pure and unchecked: it applies no site settings (no strict mode, no decision records);
 * :func:`interpret_many` - many cases, in order, optionally across worker processes;
-* :func:`list_cutpoints` - every numeric threshold of every condition.
+* :func:`list_cutpoints` - every numeric threshold of every condition;
+* :class:`Runtime` - the governed API: a rulebook admitted under the site settings (strict mode
+  against approved releases, suspensions, decision records, shadow candidate). Every command and
+  the service interpret through it::
+
+      with gasrules.Runtime.open(settings_file="site.yaml") as rt:
+          result = rt.interpret(case)
 
 Decision support only: it supports, never replaces, clinical judgement; local laboratory
 ranges and protocols prevail.
@@ -25,15 +32,16 @@ if TYPE_CHECKING:  # pragma: no cover
     from .model import CompiledRulebook
 
 __all__ = ["__version__", "load_rulebook", "check_rulebook", "interpret", "interpret_many", "list_cutpoints",
-           "RulebookError"]
+           "RulebookError", "Runtime", "RuntimeRefusal"]
 
 
-def load_rulebook(path: "str | Path | None" = None, *, cache: bool = True) -> "CompiledRulebook":
-    """Load, validate and compile a rulebook once. Raises RulebookError listing every problem."""
+def load_rulebook(path: "str | Path | None" = None, *, cache: bool = True, limits: Any = None) -> "CompiledRulebook":
+    """Load, validate and compile a rulebook once. Raises RulebookError listing every problem.
+    ``limits``: a :class:`gasrules.loader.Limits` (default: from GASRULES_* variables)."""
     from .cache import load
     from .resources import default_rulebook_path
 
-    return load(path if path is not None else default_rulebook_path(), use_cache=cache)
+    return load(path if path is not None else default_rulebook_path(), use_cache=cache, limits=limits)
 
 
 def check_rulebook(path: "str | Path") -> "list[Problem]":
@@ -95,4 +103,8 @@ def __getattr__(name: str) -> Any:
         from .errors import RulebookError
 
         return RulebookError
+    if name in ("Runtime", "RuntimeRefusal"):
+        from . import runtime
+
+        return getattr(runtime, name)
     raise AttributeError(name)

@@ -34,12 +34,15 @@ anchor_mismatch        error     the log's end does not match the anchor (edited
 anchor_lag             warning   one complete entry beyond the anchor (crash between the
                                  append and the anchor update; healed by the next writer)
 witness_missing        error     the witnessed entry_sha256 is not in the chain
+anchor_unkeyed         error     a key was given but the anchor carries no HMAC
+anchor_hmac_mismatch   error     the anchor's HMAC does not match the key (rewritten without it)
 =====================  ========  =====================================================
 """
 
 from __future__ import annotations
 
 import fcntl
+import hmac
 import json
 import math
 import os
@@ -51,7 +54,7 @@ from typing import Any, Callable, Mapping
 
 from .records import (
     _DECISION_FIELDS, _ENTRY_FIELDS, WARNING_CODES, ZERO_SHA, RecordError, _anchor_verdict,
-    _compose, _engine_version, _now, _read_anchor, _read_tail, _Store, anchor_path,
+    _compose, _engine_version, _now, _read_anchor, anchor_hmac, _read_tail, _Store, anchor_path,
     canonical_json, sha256_hex,
 )
 
@@ -155,6 +158,9 @@ def _scan(f: Any, size: int, witness: str | None) -> tuple[list[_Seen], list[Log
         except ValueError as exc:
             issues.append(LogIssue("malformed_line", f"not JSON: {exc}", number))
             continue
+        except RecursionError:
+            issues.append(LogIssue("malformed_line", "JSON nested too deeply to read", number))
+            continue
         if not isinstance(entry, dict):
             issues.append(LogIssue("malformed_line", "not a JSON object", number))
             continue
@@ -169,6 +175,9 @@ def _scan(f: Any, size: int, witness: str | None) -> tuple[list[_Seen], list[Log
             parts = {k: canonical_json(v, k) for k, v in entry.items() if k != "entry_sha256"}
         except RecordError as exc:
             issues.append(LogIssue("malformed_entry", str(exc), number, seq))
+            continue
+        except (RecursionError, ValueError, TypeError) as exc:
+            issues.append(LogIssue("malformed_entry", f"cannot be canonicalised ({type(exc).__name__})", number, seq))
             continue
         if sha256_hex(_compose(parts)) != rec.sha:
             issues.append(LogIssue("entry_hash_mismatch", "the entry was modified: its content "
@@ -212,7 +221,7 @@ def _chain_issues(seen: list[_Seen]) -> list[LogIssue]:
 
 
 def _verify_open(f: Any, size: int, anchor: dict[str, Any] | None, anchor_problem: str,
-                 witness: str | None, path: str) -> VerifyReport:
+                 witness: str | None, path: str, key: bytes = b"") -> VerifyReport:
     seen, issues, torn, repairs, witnessed = _scan(f, size, witness)
     if not torn and seen and seen[-1].sha is None and anchor is not None \
             and anchor["log_size"] == size - seen[-1].length:
@@ -245,12 +254,20 @@ def _verify_open(f: Any, size: int, anchor: dict[str, Any] | None, anchor_proble
             issues.append(LogIssue(code, why, len(seen) or None, last_seq if seen else None))
     if witness and not witnessed:
         issues.append(LogIssue("witness_missing", f"no entry has entry_sha256 {witness}"))
+    if key and anchor is not None:
+        want = anchor_hmac(key, anchor["count"], anchor["last_sha256"], anchor["log_size"])
+        got = anchor.get("hmac")
+        if not isinstance(got, str) or not hmac.compare_digest(got, want):
+            issues.append(LogIssue("anchor_unkeyed" if got is None else "anchor_hmac_mismatch",
+                                   "the anchor carries no HMAC" if got is None else
+                                   "the anchor's HMAC does not match (log and anchor rewritten without the key?)"))
     return VerifyReport(path, len(seen), tuple(issues), anchor, last_sha, tuple(repairs), torn)
 
 
-def verify_log(path: str | os.PathLike[str], *, witness: str | None = None) -> VerifyReport:
+def verify_log(path: str | os.PathLike[str], *, witness: str | None = None, key: bytes = b"") -> VerifyReport:
     """Check every entry's hashes, the chain, seq continuity and the anchor; never raises on
-    a damaged log. ``witness``: an entry_sha256 kept elsewhere that must be in the chain."""
+    a damaged log. ``witness``: an entry_sha256 kept elsewhere that must be in the chain.
+    ``key``: the anchor key; the anchor must then carry a matching HMAC."""
     p = Path(path)
     if not p.exists():
         return VerifyReport(str(p), 0, (LogIssue("log_missing", f"{p} not found"),), None, "")
@@ -261,7 +278,7 @@ def verify_log(path: str | os.PathLike[str], *, witness: str | None = None) -> V
             anchor, problem = _read_anchor(anchor_path(p))
         finally:
             fcntl.flock(f.fileno(), fcntl.LOCK_UN)
-        return _verify_open(f, size, anchor, problem, witness, str(p))
+        return _verify_open(f, size, anchor, problem, witness, str(p), key)
 
 
 # ---------------------------------------------------------------- repair
@@ -279,7 +296,7 @@ _ANCHOR_CODES = {"truncated", "anchor_missing", "anchor_malformed", "anchor_mism
 
 
 def repair_log(path: str | os.PathLike[str], *, acknowledge_anchor: bool = False,
-               clock: Callable[[], datetime] | None = None, fsync: bool = True) -> RepairReport:
+               clock: Callable[[], datetime] | None = None, fsync: bool = True, key: bytes = b"") -> RepairReport:
     """Make a crashed log appendable again, recording what was done in a chained entry.
 
     Cuts a torn tail (kept in ``LOG.torn-<seq>-<time>``); with ``acknowledge_anchor`` also
@@ -289,7 +306,7 @@ def repair_log(path: str | os.PathLike[str], *, acknowledge_anchor: bool = False
     p = Path(path)
     if not p.exists():
         raise RecordError("log_missing", "no log to repair", path=str(p))
-    store = _Store(p, fsync)
+    store = _Store(p, fsync, key)
     try:
         with store.locked():
             size = os.fstat(store.fd).st_size
@@ -456,7 +473,7 @@ def replay_log(path: str | os.PathLike[str], load_rulebook_by_sha256: Callable[[
         for number, raw in enumerate(f, 1):
             try:
                 entry = json.loads(raw) if raw.endswith(b"\n") else None
-            except ValueError:
+            except (ValueError, RecursionError):
                 entry = None
             if not isinstance(entry, dict) or _field_problem(entry):
                 note(ReplayOutcome(number, None, "unreadable", message="not a readable entry"))
@@ -492,6 +509,8 @@ def _fetch(load: Callable[[str], Any], sha: str) -> tuple[Any, str]:
     got = getattr(rulebook, "sha256", None)
     if got is None and isinstance(rulebook, Mapping):
         got = rulebook.get("sha256")
+    if getattr(rulebook, "matches_sha256", None) is not None and rulebook.matches_sha256(sha):
+        return rulebook, ""  # named under today's identity scheme or the one before it
     if got is not None and got != sha:
         return rulebook, f"the archive returned rulebook {str(got)[:12]}... for {sha[:12]}..."
     return rulebook, ""

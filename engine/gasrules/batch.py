@@ -56,6 +56,8 @@ class BatchOptions:
     out_format: str | None = None
     mapping: ColumnMapping | None = None
     progress: bool | None = None                # None: only when stderr is a terminal
+    formula_guard: bool = True                  # neutralise formula-like pass-through cells in CSV output
+    decimal_comma: bool = False                 # CSV input: numbers written with a decimal comma
 
 
 @dataclass
@@ -84,6 +86,10 @@ class BatchSummary:
     output: str = ""
     rulebook: dict[str, str] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+
+    @property
+    def rejected(self) -> int:
+        return self.by_status.get("rejected", 0)
 
     def add(self, status: str, disorders: Sequence[str], unreadable: bool) -> None:
         self.rows += 1
@@ -146,8 +152,8 @@ def output_columns(rb: Any, table: Table, options: BatchOptions) -> tuple[list[C
         taken.add(out)
         renames.append((name, out))
     def kind(name: str) -> str:
-        if table.fmt == "csv":
-            return "text"                         # CSV cells are text (or None for a short row)
+        if table.fmt == "csv":                    # CSV cells are text (or None for a short row)
+            return "guarded" if options.formula_guard else "text"
         if table.fmt == "jsonl":
             return "json" if name == "context" else "value"
         return "raw"                              # Parquet: the input column's own type
@@ -301,7 +307,8 @@ def run_batch(rb: Any, source: str | Path, target: str | Path = "-", options: Ba
     summary = BatchSummary(output=str(target), rulebook=dict(rb.identity), notes=hooks.notes)
     t0 = time.perf_counter()
     try:
-        with open_table(source, analytes_of(rb), mapping=options.mapping, fmt=options.in_format) as table:
+        with open_table(source, analytes_of(rb), mapping=options.mapping, fmt=options.in_format,
+                        decimal_comma=options.decimal_comma) as table:
             columns, renames = output_columns(rb, table, options)
             out_fmt = options.out_format or _default_out_format(target, table.fmt)
             progress = Progress(stderr, table.progress, options.progress)

@@ -10,9 +10,7 @@ generated source itself is written by :mod:`gasrules.codegen`.
 from __future__ import annotations
 
 import ast
-import hashlib
 import heapq
-import json
 from typing import Any, Iterable
 
 from . import __version__
@@ -20,6 +18,8 @@ from .bibliography import Bibliography, check_rulebook_refs, load_bibliographies
 from .codegen import PLACEHOLDER, _exprs, generate, link
 from .errors import Location, Problem, RulebookError
 from .expressions import CutPoint, Expr, compare_nodes, parse
+from .identity import (HASH_SCHEME, LIFECYCLE_METADATA, canonical_content, canonical_json,  # noqa: F401
+                       identity_content, identity_hash, resolved_document)
 from .model import (CompiledRulebook, DerivedSpec, FindingSpec, InputSpec, ParamSpec, RuleSpec,
                     StepSpec)
 from .overlay import Ref, Resolved
@@ -70,7 +70,10 @@ def build(res: Resolved) -> CompiledRulebook:
     known_ids = {b.get("id") for b, _ in res.rules}
     for rule_id, (_, ref) in suspended.items():
         if rule_id not in known_ids:
-            problems.append(Problem("RB-E043", f"suspension names unknown rule '{rule_id}'", ref.loc("rule"),
+            from .overlay import did_you_mean
+
+            problems.append(Problem("RB-E043", f"suspension names unknown rule '{rule_id}'"
+                                    f"{did_you_mean(rule_id, sorted(i for i in known_ids if i))}", ref.loc("rule"),
                                     "the id of a rule in this rulebook or its base"))
     presentation = res.presentation
     problems += _check_names(inputs, params, derived, rules, broken)
@@ -79,12 +82,16 @@ def build(res: Resolved) -> CompiledRulebook:
     problems += _check_fallbacks(inputs, derived)
     problems += _warnings(params, derived, rules)
     problems += _check_citations(res, params, rules)
+    from .constraints import check_constraints
+
+    problems += check_constraints(res.constraints, params)
+    problems += _check_display_units(res, inputs)
     plan, order_problems = _order(derived, rules)
     problems += order_problems
     if any(not p.is_warning for p in problems):
         raise RulebookError(problems)
     display = _display_units(res.display_units)
-    sha = identity_hash(res)
+    sha = with_bibliography(identity_hash(res), _bibliography(res))   # the cited publications are shown too
     cutpoints = tuple(_cutpoints(derived, rules, inputs, params))
     source, value_names = generate(plan, inputs, params, derived, rules, cutpoints)
     compiled = CompiledRulebook(
@@ -93,7 +100,8 @@ def build(res: Resolved) -> CompiledRulebook:
         value_names=value_names, source=source, sha256=sha,
         files=tuple(d.file for d in res.documents), cutpoints=cutpoints,
         warnings=tuple(p for p in problems if p.is_warning), engine_version=__version__,
-        bibliography=res.bibliography)
+        bibliography=res.bibliography,
+        sha256_v1=identity_hash(res, 1))
     link(compiled)
     return compiled
 
@@ -508,43 +516,31 @@ def _order(derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> tuple[list
     return plan, []
 
 
-# ----------------------------------------------------------------------------- identity
+# ----------------------------------------------------------------------------- display units
 
-def canonical_content(res: Resolved) -> dict[str, Any]:
-    """What the identity hash covers: resolved clinical content, not lifecycle metadata."""
-    rules = []
-    for body, _ in res.rules:
-        r = dict(body)
-        if r.get("id") in {s for s, _, _ in res.suspensions}:
-            r["status"] = "suspended"
-        rules.append(r)
-    return {"id": res.metadata["id"], "version": str(res.metadata["version"]),
-            "inputs": {k: b for k, (b, _) in res.inputs.items()},
-            "parameters": {k: b for k, (b, _) in res.parameters.items()},
-            "derived": {k: b for k, (b, _) in res.derived.items()},
-            "rules": rules,
-            "suspensions": [{"rule": s, "reason": why} for s, why, _ in res.suspensions]}
+def _check_display_units(res: Resolved, inputs: dict[str, InputSpec]) -> list[Problem]:
+    """Each display unit must be a known unit that some input of that quantity converts to."""
+    from . import units as U
 
-
-def canonical_json(data: Any) -> bytes:
-    """Sorted keys, no insignificant whitespace, and every number as a float, so that 12 and
-    12.0 (the same value written two ways) give the same identity."""
-    return json.dumps(_numbers(data), sort_keys=True, separators=(",", ":"), ensure_ascii=False,
-                      default=str).encode("utf-8")
-
-
-def _numbers(data: Any) -> Any:
-    if isinstance(data, dict):
-        return {k: _numbers(v) for k, v in data.items()}
-    if isinstance(data, list):
-        return [_numbers(v) for v in data]
-    if isinstance(data, int) and not isinstance(data, bool):
-        return float(data)
-    return data
-
-
-def identity_hash(res: Resolved) -> str:
-    return with_bibliography(hashlib.sha256(canonical_json(canonical_content(res))).hexdigest(), _bibliography(res))
+    problems = []
+    for unit, target in res.display_units.items():
+        to = target["unit"] if isinstance(target, dict) else str(target)
+        doc = next((d for d in reversed(res.documents) if isinstance(d.data, dict)
+                    and unit in (d.data.get("display_units") or {})), res.documents[-1])
+        where = doc.locate(("display_units", unit))
+        canonical = [i for i in inputs.values() if i.unit == unit]
+        code = U.normalise(to)
+        if not canonical:
+            problems.append(Problem("RB-E048", f"display unit for '{unit}', which is the unit of no input", where,
+                                    "a canonical unit of an input: " + ", ".join(sorted({i.unit for i in inputs.values() if i.unit}))))
+        elif code is None:
+            problems.append(Problem("RB-E048", f"display unit '{to}' is not a known unit", where,
+                                    "one of " + ", ".join(sorted({a for i in canonical for a in i.alternatives}))))
+        elif code != unit and not any(code in i.alternatives for i in canonical):
+            problems.append(Problem("RB-E048", f"display unit '{to}' is not a unit of the quantity measured in "
+                                    f"'{unit}'", where,
+                                    "one of " + ", ".join(sorted({a for i in canonical for a in i.alternatives}))))
+    return problems
 
 
 # ----------------------------------------------------------------------------- citations

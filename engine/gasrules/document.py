@@ -45,6 +45,8 @@ class ReviewDocument:
     impact: dict[str, Any] | None = None            # when a corpus is given too
     cohorts: dict[str, Any] | None = None           # operating characteristics on the simulated cohorts
     cautions: list[str] = field(default_factory=list)
+    base_intended_use: dict[str, Any] | None = None   # an overlay's base's, when it differs from the overlay's
+    coverage: dict[str, str] | None = None            # rule and threshold coverage of the rulebook's suite
 
 
 # ---------------------------------------------------------------- plain-language conditions
@@ -163,7 +165,9 @@ def build_document(rulebook_path: str | Path, *, since: str | Path | None = None
         derived=[{"name": n, "label": d.label, "formula": d.expr.text, "unit": d.unit,
                   "when": condition_text(rb, d.when.text) if d.when else "", "reported": d.report}
                  for n, d in rb.derived.items()],
-        steps=_rules(rb), cautions=list(rb.presentation.get("cautions") or [CAUTION]))
+        steps=_rules(rb), cautions=list(rb.presentation.get("cautions") or [CAUTION]),
+        base_intended_use=_base_intended_use(rulebook_path, rb.metadata.get("intended_use")),
+        coverage=_coverage(rulebook_path, rb))
     if since is not None:
         from .rulediff import diff_paths
 
@@ -245,6 +249,38 @@ def _limits_cell(p: dict[str, Any]) -> str:
     return "none"
 
 
+def _base_intended_use(path: str | Path, own: Any) -> dict[str, Any] | None:
+    """The intended use of the base an overlay extends, when it differs from the overlay's."""
+    from .overlay import load_chain
+
+    docs, problems = load_chain(path)
+    if problems or len(docs) < 2:
+        return None
+    base = (docs[0].data.get("metadata") or {}).get("intended_use") or {}
+    return dict(base) if base != (own or {}) else None
+
+
+def _coverage(path: str | Path, rb: Any) -> dict[str, str] | None:
+    """"N covered + M declared unreachable of T" for rules and threshold sides, from the suite
+    beside the rulebook (None when it has no cases)."""
+    from . import suite as S
+
+    loaded = S.load_suite(Path(path))
+    if not loaded.files:
+        return None
+    results = S.run_suite(rb, loaded)
+    rules = S.rule_coverage(rb, results, loaded.unreachable)
+    sides = S.threshold_coverage(rb, results, loaded.unreachable)
+    return {"rules": f"{rules['summary']} active rules", "thresholds": f"{sides['summary']} threshold sides"}
+
+
+def _use_text(use: dict[str, Any]) -> str:
+    parts = [f"{k}: {use[k]}" for k in ("population", "setting") if use.get(k)]
+    if use.get("exclusions"):
+        parts.append("exclusions: " + "; ".join(map(str, use["exclusions"])))
+    return " | ".join(parts)
+
+
 def _head(doc: ReviewDocument) -> list[tuple[str, str]]:
     md, ident = doc.metadata, doc.identity
     use = md.get("intended_use") or {}
@@ -255,6 +291,11 @@ def _head(doc: ReviewDocument) -> list[tuple[str, str]]:
         rows += [("Population", str(use.get("population", ""))), ("Setting", str(use.get("setting", "")))]
         if use.get("exclusions"):
             rows.append(("Exclusions", "; ".join(map(str, use["exclusions"]))))
+    if doc.base_intended_use is not None:
+        rows.append(("Intended use of the base (differs)", _use_text(doc.base_intended_use)))
+    if doc.coverage is not None:
+        rows.append(("Rule coverage", doc.coverage["rules"]))
+        rows.append(("Threshold coverage", doc.coverage["thresholds"]))
     owners = md.get("owners") or []
     if owners:
         rows.append(("Owners", "; ".join(f"{o.get('name')} ({o.get('role', '')})" for o in owners)))

@@ -18,8 +18,14 @@ CODES: dict[str, str] = {
     "RB-E002": "duplicate key in a mapping",
     "RB-E003": "file cannot be read",
     "RB-E004": "extends chain is broken (missing file or cycle)",
+    "RB-E005": "not a regular file (device, FIFO, socket)",
+    "RB-E006": "file larger than the configured limit",
+    "RB-E007": "file outside the configured rulebook roots",
+    "RB-E008": "file is not UTF-8 text",
+    "RB-E009": "YAML graph too large, too deep or self-referencing (alias bomb)",
     # Stage 2: schema
     "RB-E010": "document does not match schemas/rulebook.schema.json",
+    "RB-E011": "number that cannot be used (NaN, infinity, an integer too large)",
     # Stage 3: expressions
     "RB-E020": "expression syntax error",
     "RB-E021": "construct not allowed in expressions",
@@ -44,6 +50,9 @@ CODES: dict[str, str] = {
     "RB-E043": "suspension names an unknown rule",
     "RB-E044": "overlay redefines a base id",
     "RB-E045": "parameter value outside its own bounds",
+    "RB-E046": "constraint between parameters not met",
+    "RB-E047": "overlay overrides a parameter, input or rule the base does not declare (did you mean...)",
+    "RB-E048": "display unit unknown or of another quantity",
     # Citations (bibliography)
     "RB-E050": "bibliography file cannot be read or does not match schemas/bibliography.schema.json",
     "RB-E051": "unknown bibliography key",
@@ -73,6 +82,8 @@ INPUT_CODES: dict[str, str] = {
     "input.bad_case_id": "case_id must be a string",
     "input.bad_context": "context must be an object",
     "input.unreadable": "the row or line could not be parsed at all",
+    "input.too_large": "an integer too large to read as a number",
+    "input.not_strict_json": "context holds NaN, infinity, a huge integer, a non-string key or deep nesting",
 }
 
 # Codes of problems found while evaluating one case (never abort the case).

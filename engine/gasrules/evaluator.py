@@ -188,6 +188,11 @@ def read_case(rb: CompiledRulebook, case: Any) -> tuple[dict[str, Any], list[dic
     context = case.get("context")
     if context is not None and not isinstance(context, Mapping):
         errors.append(_error("context", "input.bad_context", "context must be an object", "a JSON object"))
+    elif context is not None:
+        where = _not_strict_json(context, "context", 1)
+        if where is not None:
+            errors.append(_error(where[0], "input.not_strict_json", f"{where[0]} {where[1]}", _STRICT_JSON))
+            context = None
     for key, raw in case.items():
         if key in NOT_ANALYTES:
             continue
@@ -208,13 +213,13 @@ def read_case(rb: CompiledRulebook, case: Any) -> tuple[dict[str, Any], list[dic
             if text in spec.codes:
                 values[key] = text
             else:
-                errors.append(_error(key, "input.unknown_code", f"{key} = {raw!r} is not an accepted code",
+                errors.append(_error(key, "input.unknown_code", f"{key} = {_brief(raw)} is not an accepted code",
                                      "one of " + ", ".join(spec.codes)))
             continue
         if spec.kind == "flag":
             flag = _flag(raw)
             if flag is None:
-                errors.append(_error(key, "input.bad_flag", f"{key} = {raw!r} is not true or false", "true or false"))
+                errors.append(_error(key, "input.bad_flag", f"{key} = {_brief(raw)} is not true or false", "true or false"))
             else:
                 values[key] = flag
             continue
@@ -224,6 +229,51 @@ def read_case(rb: CompiledRulebook, case: Any) -> tuple[dict[str, Any], list[dic
         else:
             values[key] = value
     return values, errors, case_id, context
+
+
+MAX_CONTEXT_DEPTH = 32
+MAX_INT = 2 ** 63 - 1
+_STRICT_JSON = (f"strict JSON: finite numbers, integers within \u00b1{MAX_INT}, string keys, at most "
+                f"{MAX_CONTEXT_DEPTH} levels of nesting")
+
+
+def _brief(raw: Any) -> str:
+    """A value for a message: short, and safe for any depth or size."""
+    if isinstance(raw, Mapping):
+        return "an object"
+    if isinstance(raw, (list, tuple)):
+        return "a list"
+    if isinstance(raw, int) and not isinstance(raw, bool) and abs(raw) > MAX_INT:
+        return "an integer too large to read"
+    text = repr(raw)
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
+def _not_strict_json(value: Any, path: str, depth: int) -> tuple[str, str] | None:
+    """(path, what is wrong) for the first part of ``value`` that strict JSON cannot carry."""
+    if depth > MAX_CONTEXT_DEPTH:
+        return path, f"nests deeper than {MAX_CONTEXT_DEPTH} levels"
+    if isinstance(value, Mapping):
+        for k, v in value.items():
+            if not isinstance(k, str):
+                return path, f"has a key that is not a string ({type(k).__name__})"
+            found = _not_strict_json(v, f"{path}.{k}", depth + 1)
+            if found is not None:
+                return found
+        return None
+    if isinstance(value, (list, tuple)):
+        for i, v in enumerate(value):
+            found = _not_strict_json(v, f"{path}[{i}]", depth + 1)
+            if found is not None:
+                return found
+        return None
+    if isinstance(value, bool) or value is None or isinstance(value, str):
+        return None
+    if isinstance(value, int):
+        return None if abs(value) <= MAX_INT else (path, "is an integer too large for strict JSON")
+    if isinstance(value, float):
+        return None if math.isfinite(value) else (path, f"is {value}, not a finite number")
+    return path, f"is a {type(value).__name__}, not a JSON value"
 
 
 def _flag(raw: Any) -> bool | None:
@@ -242,7 +292,7 @@ def _flag(raw: Any) -> bool | None:
 
 def _number(rb: CompiledRulebook, spec: Any, key: str, raw: Any) -> tuple[float | None, dict[str, str] | None]:
     cls = raw.__class__
-    if cls is float or cls is int:  # the common case: a plain number in the canonical unit
+    if cls is float or (cls is int and -MAX_INT <= raw <= MAX_INT):  # the common case: a plain number
         value = float(raw)
         lo, hi = spec.plausible_min, spec.plausible_max
         if value == value and (lo is None or value >= lo) and (hi is None or value <= hi) and value - value == 0:
@@ -250,6 +300,8 @@ def _number(rb: CompiledRulebook, spec: Any, key: str, raw: Any) -> tuple[float 
     static: Static = rb._static
     unit = spec.unit
     accepted_units = ", ".join([spec.unit] + list(spec.alternatives))
+    if isinstance(raw, int) and not isinstance(raw, bool) and abs(raw) > MAX_INT:
+        return None, _error(key, "input.too_large", f"{key} is an integer too large to read", f"a number in {spec.unit}")
     if isinstance(raw, Mapping):
         if "value" not in raw or set(raw) - {"value", "unit"}:
             return None, _error(key, "input.bad_form", f"{key} must be a number or {{value, unit}}",
@@ -268,12 +320,14 @@ def _number(rb: CompiledRulebook, spec: Any, key: str, raw: Any) -> tuple[float 
                                     "one of " + accepted_units)
             unit = code
     if isinstance(raw, bool) or not isinstance(raw, (int, float, str)):
-        return None, _error(key, "input.not_a_number", f"{key} = {raw!r} is not a number", f"a number in {spec.unit}")
+        return None, _error(key, "input.not_a_number", f"{key} = {_brief(raw)} is not a number", f"a number in {spec.unit}")
+    if isinstance(raw, int) and not isinstance(raw, bool) and abs(raw) > MAX_INT:
+        return None, _error(key, "input.too_large", f"{key} is an integer too large to read", f"a number in {spec.unit}")
     if isinstance(raw, str):
         try:
             raw = float(raw.strip())
         except ValueError:
-            return None, _error(key, "input.not_a_number", f"{key} = {raw!r} is not a number", f"a number in {spec.unit}")
+            return None, _error(key, "input.not_a_number", f"{key} = {_brief(raw)} is not a number", f"a number in {spec.unit}")
     value = float(raw)
     if not math.isfinite(value):
         return None, _error(key, "input.not_finite", f"{key} is {value}", "a finite number")

@@ -416,9 +416,20 @@ def runtime_globals() -> dict[str, Any]:
     for fname, fn in FUNCTIONS.items():
         g["_" + fname] = fn
     g["_ERR"] = (ArithmeticError, ValueError, TypeError)   # TypeError: a safety net; types are checked at load
-    g.update(_set=set, _float=float, _bool=bool, _describe=describe_error, _rec=_record)
+    g.update(_set=set, _float=finite_float, _bool=bool, _describe=describe_error, _rec=_record)
     g["_ERR_T"] = (ArithmeticError, ValueError, TypeError)   # re-evaluations may meet unguarded None
     return g
+
+
+def finite_float(value: Any) -> float:
+    """A derived value as a float; infinity and NaN (e.g. 1e308 * 10, inf - inf) are calculation
+    errors, never values: results stay strict JSON and comparisons stay meaningful."""
+    out = float(value)
+    if math.isnan(out):
+        raise ValueError("the result is not a number (NaN)")
+    if math.isinf(out):
+        raise OverflowError("result too large")
+    return out
 
 
 def _record(store: dict[int, bool], k: int, value: Any) -> Any:

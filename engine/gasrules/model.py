@@ -136,6 +136,7 @@ class CompiledRulebook:
     warnings: tuple[Any, ...] = ()
     engine_version: str = ""
     bibliography: Any = None               # gasrules.bibliography.Bibliography: the cited publications
+    sha256_v1: str = ""                     # identity under hash scheme 1 (releases made before scheme 2)
     _function: Callable[..., Any] | None = field(default=None, repr=False)
     _static: Any = field(default=None, repr=False)
     _code: bytes | None = field(default=None, repr=False)   # marshalled code of `source` (same Python only)
@@ -151,6 +152,10 @@ class CompiledRulebook:
     @property
     def identity(self) -> dict[str, str]:
         return {"id": self.id, "version": self.version, "sha256": self.sha256}
+
+    def matches_sha256(self, sha256: str) -> bool:
+        """True when ``sha256`` is this rulebook's identity under the current or the old scheme."""
+        return bool(sha256) and sha256 in (self.sha256, self.sha256_v1)
 
     def __getstate__(self) -> dict[str, Any]:
         state = dict(self.__dict__)

@@ -10,7 +10,7 @@ from __future__ import annotations
 from typing import Any
 
 from .codegen import CALC_ERROR, COMPUTED, ERROR, FIRED, HALTED, MISSING, NOT_APPLICABLE, NOT_FIRED, SKIPPED, SUSPENDED
-from .expressions import Oracle, round_at
+from .expressions import Oracle, finite_float, round_at
 from .model import CompiledRulebook
 
 _ERRORS = (ArithmeticError, ValueError, TypeError)
@@ -43,7 +43,7 @@ def oracle_evaluate(rb: CompiledRulebook, inputs: dict[str, Any]) -> tuple[dict[
                 states[name] = NOT_APPLICABLE
                 continue
             try:
-                values[name] = float(ev.run(d.expr))
+                values[name] = finite_float(ev.run(d.expr))
                 states[name] = COMPUTED
                 rounded[name] = round_at(values[name], 10.0 ** d.precision)
             except _ERRORS:

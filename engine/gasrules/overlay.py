@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import Location, Problem
-from .loader import Document, load_document
+from .loader import Document, Limits, load_document
 from .schema import validate_document
 
 
@@ -43,14 +43,20 @@ class Resolved:
     presentation: dict[str, Any] = field(default_factory=dict)
     display_units: dict[str, Any] = field(default_factory=dict)
     suspensions: list[tuple[str, str, Ref]] = field(default_factory=list)
+    constraints: list[tuple[dict[str, Any], Ref]] = field(default_factory=list)
     documents: list[Document] = field(default_factory=list)
     base_ids: list[str] = field(default_factory=list)
     bibliography: Any = None            # gasrules.bibliography.Bibliography, loaded by the compiler
     bibliography_problems: list[Problem] = field(default_factory=list)
 
 
-def load_chain(path: str | Path) -> tuple[list[Document], list[Problem]]:
-    """Load a rulebook and everything it extends, base first. Each is schema-checked."""
+def load_chain(path: str | Path, limits: Limits | None = None) -> tuple[list[Document], list[Problem]]:
+    """Load a rulebook and everything it extends, base first. Each is schema-checked.
+
+    A file reached through ``extends`` that is not a rulebook (not a regular file, too large,
+    outside the configured roots, not YAML, not a rulebook mapping) is refused at the ``extends``
+    that names it, and nothing of its content is echoed."""
+    limits = limits or Limits.from_env()
     docs: list[Document] = []
     problems: list[Problem] = []
     seen: set[Path] = set()
@@ -63,16 +69,26 @@ def load_chain(path: str | Path) -> tuple[list[Document], list[Problem]]:
                                     "a chain of overlays ending in a base rulebook"))
             break
         seen.add(real)
-        doc, probs = load_document(current, _display(current))
-        if doc is None and referrer is not None:
+        doc, probs = load_document(current, _display(current), limits)
+        if doc is None and referrer is not None and probs and probs[0].code == "RB-E003":
             problems.append(Problem("RB-E004", f"extends names a file that cannot be read: {current}", referrer,
                                     "a path relative to the overlay file"))
+        elif referrer is not None and (probs or doc is None or not _looks_like_rulebook(doc.data)):
+            why = probs[0] if probs else None
+            reason = (f"{why.code} {why.message}" + (f" at line {why.location.line}" if why.location.line else "")
+                      if why else "it is not a rulebook (no format/metadata mapping)")
+            problems.append(Problem("RB-E004", f"extends names {current}, which cannot be used: {reason}", referrer,
+                                    "a path relative to the overlay file, to a regular rulebook file"))
+            break
         problems.extend(probs)
         if doc is None or probs:
             break
         schema_problems = validate_document(doc)
         problems.extend(schema_problems)
         docs.append(doc)
+        if schema_problems and isinstance(doc.data, dict) and isinstance(doc.data.get("extends"), str):
+            problems.extend(_partial_unknown_entries(doc, schema_problems, current.parent / doc.data["extends"],
+                                                     limits, seen))
         if schema_problems or not isinstance(doc.data, dict):
             break
         ext = doc.data.get("extends")
@@ -83,6 +99,42 @@ def load_chain(path: str | Path) -> tuple[list[Document], list[Problem]]:
             current = None
     docs.reverse()
     return docs, problems
+
+
+def _partial_unknown_entries(doc: Document, schema_problems: list[Problem], base: Path, limits: Limits,
+                             seen: set[Path]) -> list[Problem]:
+    """An overlay's input or rule that is not a full definition (the schema says what it lacks)
+    and whose name the base does not have: most likely a misspelt override. Say so, with the
+    closest base name."""
+    if base.resolve() in seen:
+        return []
+    base_docs, base_problems = load_chain(base, limits)
+    if base_problems:
+        return []
+    inputs = {n for d in base_docs for n in (d.data.get("inputs") or {})}
+    rules = {str(r.get("id")) for d in base_docs for r in (d.data.get("rules") or []) if isinstance(r, dict)}
+    broken = {p.location.path for p in schema_problems}
+
+    def flagged(prefix: str) -> bool:
+        return any(b == prefix or b.startswith(prefix + ".") or b.startswith(prefix + "[") for b in broken)
+
+    out = []
+    for name in (doc.data.get("inputs") or {}):
+        if name not in inputs and flagged(f"inputs.{name}"):
+            out.append(Problem("RB-E047", f"overlay overrides input '{name}', which the base does not declare"
+                               f"{did_you_mean(name, sorted(inputs))}", doc.locate(("inputs", name)),
+                               "the name of a base input (inputs cannot be overridden), or a full definition"))
+    for i, rule in enumerate(doc.data.get("rules") or []):
+        rid = rule.get("id") if isinstance(rule, dict) else None
+        if isinstance(rid, str) and rid not in rules and flagged(f"rules[{i}]"):
+            out.append(Problem("RB-E047", f"overlay rule '{rid}' is not a full definition and the base has no rule "
+                               f"of that id{did_you_mean(rid, sorted(rules))}", doc.locate(("rules", i, "id")),
+                               "a full rule (status, step, findings), or suspend the base rule"))
+    return out
+
+
+def _looks_like_rulebook(data: Any) -> bool:
+    return isinstance(data, dict) and isinstance(data.get("format"), str) and isinstance(data.get("metadata"), dict)
 
 
 def _display(path: Path) -> str:
@@ -120,6 +172,12 @@ def _take_base(res: Resolved, doc: Document) -> None:
     res.display_units = copy.deepcopy(data.get("display_units") or {})
     for i, s in enumerate(data.get("suspend") or []):
         res.suspensions.append((s["rule"], s["reason"], Ref(doc, ("suspend", i))))
+    _take_constraints(res, doc)
+
+
+def _take_constraints(res: Resolved, doc: Document) -> None:
+    for i, body in enumerate(doc.data.get("constraints") or []):
+        res.constraints.append((copy.deepcopy(body), Ref(doc, ("constraints", i))))
 
 
 def _apply_overlay(res: Resolved, doc: Document) -> list[Problem]:
@@ -137,6 +195,12 @@ def _apply_overlay(res: Resolved, doc: Document) -> list[Problem]:
             target[name] = (copy.deepcopy(body), Ref(doc, (section, name)))
     for name, body in (data.get("parameters") or {}).items():
         ref = Ref(doc, ("parameters", name))
+        if name not in res.parameters and not _full_parameter(body):
+            problems.append(Problem("RB-E047", f"overlay overrides parameter '{name}', which the base does not "
+                                    f"declare{did_you_mean(name, res.parameters)}", ref.loc(),
+                                    "the name of a base parameter, or a full definition (unit and bounds or "
+                                    "choices) to add a new one"))
+            continue
         if name not in res.parameters:
             res.parameters[name] = (copy.deepcopy(body), ref)
             res.param_set_by[name] = ref
@@ -159,7 +223,20 @@ def _apply_overlay(res: Resolved, doc: Document) -> list[Problem]:
         else:
             res.presentation[key] = value
     res.display_units.update(data.get("display_units") or {})
+    _take_constraints(res, doc)
     return problems
+
+
+def _full_parameter(body: Any) -> bool:
+    return isinstance(body, dict) and "unit" in body and ("bounds" in body or "choices" in body)
+
+
+def did_you_mean(name: str, known: Any) -> str:
+    """"; did you mean 'x'?" for the closest known name, or ""."""
+    import difflib
+
+    close = difflib.get_close_matches(str(name), [str(k) for k in known], n=1, cutoff=0.6)
+    return f"; did you mean '{close[0]}'?" if close else ""
 
 
 def _override(res: Resolved, name: str, body: dict[str, Any], ref: Ref) -> list[Problem]:

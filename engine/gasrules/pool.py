@@ -47,9 +47,28 @@ class PoolError(RuntimeError):
     """A worker process died (killed, out of memory) before returning its chunk."""
 
 
-def _init_worker(payload: Any) -> None:
+def _init_worker(payload: Any, parent: int | None = None) -> None:
     global _PAYLOAD
     _PAYLOAD = payload
+    if parent is not None:
+        watch_parent(parent)
+
+
+def watch_parent(parent: int, interval: float = 0.25) -> None:
+    """Exit this worker process when ``parent`` is gone (killed, even with SIGKILL, which runs
+    no clean-up in the parent): a daemon thread compares the parent process id."""
+    import os
+    import threading
+
+    def watch() -> None:
+        import time
+
+        while True:
+            if os.getppid() != parent:
+                os._exit(1)
+            time.sleep(interval)
+
+    threading.Thread(target=watch, name="gasrules-parent-watch", daemon=True).start()
 
 
 def _call(fn: Callable[[Any, Any], Any], chunk: Any) -> Any:
@@ -93,9 +112,11 @@ class OrderedPool(Generic[P, C, R]):
         if self.workers > 1 and self._executor is None:
             import multiprocessing as mp
 
+            import os
+
             self._executor = ProcessPoolExecutor(
                 self.workers, mp_context=mp.get_context(self.start_method),
-                initializer=_init_worker, initargs=(self.payload,))
+                initializer=_init_worker, initargs=(self.payload, os.getpid()))
 
     def close(self) -> None:
         if self._executor is not None:

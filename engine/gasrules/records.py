@@ -56,7 +56,7 @@ import json
 import os
 import threading
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Callable, Iterator, Mapping
@@ -183,6 +183,7 @@ class RecordConfig:
     mask_chars: int = 16
     fsync: bool = True
     clock: Callable[[], datetime] | None = None
+    anchor_key: bytes = field(default=b"", repr=False)   # HMAC key for keyed anchors (kept outside the log's folder)
 
     def __post_init__(self) -> None:
         if self.context_policy not in CONTEXT_POLICIES:
@@ -276,9 +277,19 @@ def _read_anchor(path: Path) -> tuple[dict[str, Any] | None, str]:
     return (data, "") if ok else (None, "anchor_malformed")
 
 
-def _write_anchor(path: Path, count: int, last: str, size: int, do_fsync: bool) -> None:
+def anchor_hmac(key: bytes, count: int, last: str, size: int) -> str:
+    """HMAC-SHA256 of an anchor's canonical JSON: without the key, a rewritten log and anchor
+    cannot carry a valid one."""
+    body = canonical_json({"count": count, "last_sha256": last, "log_size": size})
+    return hmac.new(key, body, hashlib.sha256).hexdigest()
+
+
+def _write_anchor(path: Path, count: int, last: str, size: int, do_fsync: bool, key: bytes = b"") -> None:
     tmp = path.with_name(f"{path.name}.tmp{os.getpid()}")
-    data = canonical_json({"count": count, "last_sha256": last, "log_size": size}) + b"\n"
+    fields: dict[str, Any] = {"count": count, "last_sha256": last, "log_size": size}
+    if key:
+        fields["hmac"] = anchor_hmac(key, count, last, size)
+    data = canonical_json(fields) + b"\n"
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
     try:
         os.write(fd, data)
@@ -354,10 +365,11 @@ class AppendReceipt:
 class _Store:
     """An open log file: lock, tail state, raw chained append. Used by the writer and repair."""
 
-    def __init__(self, path: str | os.PathLike[str], do_fsync: bool):
+    def __init__(self, path: str | os.PathLike[str], do_fsync: bool, key: bytes = b""):
         self.path = Path(path)
         self.anchor = anchor_path(self.path)
         self.do_fsync = do_fsync
+        self.key = key
         existed = self.path.exists()
         self.fd = os.open(self.path, os.O_RDWR | os.O_APPEND | os.O_CREAT, 0o644)
         self._tlock = threading.Lock()
@@ -394,7 +406,7 @@ class _Store:
             fresh = anchor is not None and (anchor["count"], anchor["log_size"]) == (0, 0)
             if problem == "anchor_missing" or fresh:
                 if not fresh:
-                    _write_anchor(self.anchor, 0, ZERO_SHA, 0, self.do_fsync)
+                    _write_anchor(self.anchor, 0, ZERO_SHA, 0, self.do_fsync, self.key)
                 self._cache = (0, 0, ZERO_SHA)
                 return 0, ZERO_SHA, 0
             state = "unreadable" if anchor is None else f"at entry {anchor['count']}"
@@ -420,7 +432,7 @@ class _Store:
         assert anchor is not None
         code, why = _anchor_verdict(anchor, seq, sha, prev, len(tail.last_line or b"") + 1, size)
         if code == "anchor_lag" and heal_lag:
-            _write_anchor(self.anchor, seq, sha, size, self.do_fsync)
+            _write_anchor(self.anchor, seq, sha, size, self.do_fsync, self.key)
         elif code:
             raise RecordError(code, why + "; run verify_log()", path=where)
         self._cache = (size, seq, sha)
@@ -448,7 +460,7 @@ class _Store:
             raise
         size = before + len(line)
         self._cache = (size, seq, sha)
-        _write_anchor(self.anchor, seq, sha, size, self.do_fsync)
+        _write_anchor(self.anchor, seq, sha, size, self.do_fsync, self.key)
         return seq, sha
 
 
@@ -487,7 +499,7 @@ class DecisionLog:
 
     def __init__(self, path: str | os.PathLike[str], config: RecordConfig | None = None):
         self.config = config or RecordConfig()
-        self._store = _Store(path, self.config.fsync)
+        self._store = _Store(path, self.config.fsync, self.config.anchor_key)
         try:
             with self._store.locked():
                 self._store.state()

@@ -64,9 +64,12 @@ def manifests_dir(release_dir: Path) -> Path:
 
 
 def write_manifest(release_dir: Path, manifest: dict[str, Any]) -> Path:
-    """Seal (add manifest_sha256) and write a new manifest; never overwrites one."""
+    """Seal (add manifest_sha256) and write a new manifest; never overwrites one. A manifest
+    written now records the identity hash scheme of its sha256 (``hash_scheme``)."""
+    from .identity import HASH_SCHEME
+
     rb = manifest["rulebook"]
-    sealed = dict(manifest)
+    sealed = {"hash_scheme": HASH_SCHEME, **manifest}
     sealed["manifest_sha256"] = manifest_hash(sealed)
     target = manifests_dir(release_dir) / f"{_safe(rb['id'])}-{_safe(rb['version'])}-{rb['sha256'][:12]}.json"
     target.parent.mkdir(parents=True, exist_ok=True)
@@ -120,12 +123,36 @@ def read_manifests(release_dir: Path) -> list[ManifestEntry]:
     return out
 
 
-def approvals_for(release_dir: Path, sha256: str) -> tuple[ManifestEntry | None, list[ManifestEntry]]:
-    """(the intact manifest approving ``sha256`` or None, every manifest read)."""
+def manifest_scheme(entry: ManifestEntry) -> int:
+    """The identity hash scheme a manifest's sha256 was made under (1 when it says none)."""
+    scheme = entry.manifest.get("hash_scheme", 1)
+    return scheme if isinstance(scheme, int) and not isinstance(scheme, bool) else 0
+
+
+def approvals_for(release_dir: Path, sha256: str, *, legacy_sha256: str = "",
+                  archive: Path | None = None) -> tuple[ManifestEntry | None, list[ManifestEntry]]:
+    """(the intact manifest approving ``sha256`` or None, every manifest read).
+
+    A manifest made under hash scheme 1 (``legacy_sha256``, which covered inputs, parameters,
+    derived values and rules only) approves the rulebook only when the resolved rulebook archived
+    at that release has, under today's scheme, the same ``sha256``: what was approved, every
+    text and label included, is what runs."""
+    from .identity import HASH_SCHEME
+
     entries = read_manifests(release_dir)
     for entry in entries:
-        if not entry.problem and entry.rulebook.get("sha256") == sha256:
+        if entry.problem:
+            continue
+        got, scheme = entry.rulebook.get("sha256"), manifest_scheme(entry)
+        if scheme == HASH_SCHEME and got == sha256:
             return entry, entries
+        if scheme == 1 and legacy_sha256 and got == legacy_sha256 and archive is not None:
+            try:
+                archived = load_archived(archive, legacy_sha256)
+            except (LookupError, RegistryError, EngineError):
+                continue
+            if archived.sha256 == sha256:
+                return entry, entries
     return None, entries
 
 
@@ -133,19 +160,9 @@ def approvals_for(release_dir: Path, sha256: str) -> tuple[ManifestEntry | None,
 
 def flatten_resolved(res: Any, extra_suspensions: Iterable[tuple[str, str]] = ()) -> dict[str, Any]:
     """One self-contained rulebook document with the resolved content of ``res``."""
-    doc: dict[str, Any] = {"format": "gasrules/1", "metadata": res.metadata}
-    if res.display_units:
-        doc["display_units"] = res.display_units
-    for section in ("steps", "inputs", "parameters", "derived"):
-        doc[section] = {name: body for name, (body, _ref) in getattr(res, section).items()}
-    doc["rules"] = [body for body, _ref in res.rules]
-    suspend = [{"rule": rule, "reason": why} for rule, why, _ref in res.suspensions]
-    suspend += [{"rule": rule, "reason": why} for rule, why in extra_suspensions]
-    if suspend:
-        doc["suspend"] = suspend
-    if res.presentation:
-        doc["presentation"] = res.presentation
-    return doc
+    from .identity import resolved_document
+
+    return resolved_document(res, extra_suspensions)
 
 
 def resolve_path(path: Path) -> Any:
@@ -221,7 +238,7 @@ def load_archived(archive: Path, sha256: str) -> Any:
     if not path.is_file():
         raise LookupError(f"no archived rulebook {sha256[:12]}... in {archive}")
     rb = load_rulebook(path)
-    if rb.sha256 != sha256:
+    if not rb.matches_sha256(sha256):  # filed under scheme 2, or under scheme 1 before it
         raise RegistryError("archive.altered", f"the archived file now hashes to {rb.sha256[:12]}...", str(path))
     return rb
 

@@ -7,7 +7,8 @@ bumped as far as the change needs), refuses an approver who is also an author of
 archives the resolved rulebook by its sha256 (:mod:`gasrules.registry`) and writes a sealed
 release manifest. Every reason for refusing is collected, so one run lists them all.
 
-Manifest (``gasrules-release/1``)::
+Manifest (``gasrules-release/1``; ``hash_scheme`` 2: the sha256 covers the whole resolved
+rulebook except metadata.status and metadata.changelog; manifests without it are scheme 1)::
 
     rulebook  {id, version, sha256, title, files [{path, sha256}]}
     archive   {sha256, file}                     where the resolved rulebook is kept
@@ -67,6 +68,8 @@ class SuiteSummary:
     never_not_fired: list[str]
     threshold_coverage: dict[str, Any] = field(default_factory=dict)
     excused: list[dict[str, Any]] = field(default_factory=list)   # coverage stated unreachable, with reasons
+    rules_declared_unreachable: int = 0  # of rules_covered, rules complete only through a stated exception
+    rule_coverage: str = ""              # "N covered + M declared unreachable of T"
 
     def gate_problems(self) -> list[tuple[str, str]]:
         out = []
@@ -119,7 +122,8 @@ def run_validation(rulebook_path: Path, rb: Any) -> SuiteSummary:
     return SuiteSummary(content, names, len(results), count["passed"], count["failed"], count["skipped"],
                         failures, int(cov["rules"]), int(cov["both"]), list(cov["never_fired"]),
                         list(cov["never_not_fired"]), threshold,
-                        [dict(e) for e in cov.get("excused", [])])
+                        [dict(e) for e in cov.get("excused", [])],
+                        int(cov.get("declared_unreachable", 0)), str(cov.get("summary", "")))
 
 
 def run_cohort_gate(path: Path, rb: Any, run: Callable[[Path, Any], dict[str, Any] | None] | None = None
@@ -147,8 +151,10 @@ def _common_root(paths: list[str]) -> Path:
     return Path(os.path.commonpath(resolved)) if resolved else Path.cwd()
 
 
-def _norm(name: str) -> str:
-    return " ".join(name.split()).casefold()
+def _same(a: str, b: str) -> bool:
+    from .people import same_person
+
+    return same_person(a, b)
 
 
 def _authors(rb: Any, given: list[str]) -> list[str]:
@@ -183,7 +189,7 @@ def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: li
             authors: list[str] | None = None, previous: str | Path | None = None, archive: str | Path | None = None,
             validate: Callable[[Path, Any], SuiteSummary] = run_validation,
             now: Callable[[], str] = utc_now,
-            cohorts: Callable[[Path, Any], dict[str, Any] | None] | None = None) -> ReleaseOutcome:
+            cohorts: Callable[[Path, Any], dict[str, Any] | None] | None = None, roster: Any = None) -> ReleaseOutcome:
     """Gate, archive and record one release. Raises ReleaseRefused (every reason) or RulebookError."""
     from . import __version__, load_rulebook
     from .rulediff import diff_paths, render_markdown
@@ -202,11 +208,24 @@ def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: li
     if not author_names:
         reasons.append(("approval.no_author", "name the author of the change (--author), or list an owner "
                         "with an author role in the rulebook metadata"))
-    own = sorted({a.name for a in approvers if _norm(a.name) in {_norm(x) for x in author_names}})
+    # names compare as read: NFKC, no format characters, case folded, confusable skeleton (people.py)
+    own = sorted({a.name for a in approvers if any(_same(a.name, x) for x in author_names)})
     for name in own:
         reasons.append(("approval.self", f"{name} is an author of this change and cannot approve it"))
-    if len({_norm(a.name) for a in approvers}) < len(approvers):
+    if any(_same(a.name, b.name) for i, a in enumerate(approvers) for b in approvers[i + 1:]):
         reasons.append(("approval.duplicate", "the same person is listed twice as approver"))
+    from .people import match_all
+
+    author_ids, problems = match_all(roster, author_names, "author")
+    reasons += problems
+    approver_ids, problems = match_all(roster, [a.name for a in approvers if a.name], "approver")
+    reasons += problems
+    if roster is not None and not problems:
+        ids = [approver_ids[a.name] for a in approvers if a.name in approver_ids]
+        if set(ids) & set(author_ids.values()):
+            reasons.append(("approval.self", "an approver is, by roster id, an author of this change"))
+        if len(set(ids)) < len(ids):
+            reasons.append(("approval.duplicate", "the same person (roster id) is listed twice as approver"))
     summary = validate(path, rb)
     reasons += summary.gate_problems()
     cohort_table, cohort_reasons = run_cohort_gate(path, rb, cohorts)
@@ -217,7 +236,7 @@ def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: li
     markdown = ""
     if prev is not None:
         prev_sha = str(prev.rulebook.get("sha256", ""))
-        if prev_sha == rb.sha256:
+        if rb.matches_sha256(prev_sha):
             reasons.append(("release.exists", f"this content is already released in {prev.path.name}"))
         try:
             old_rb = load_archived(archive_dir, prev_sha)
@@ -251,7 +270,9 @@ def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: li
         "change": change,
         "cohorts": cohort_summary(cohort_table),
         "author": author_names,
-        "approvers": [asdict(a) for a in approvers],
+        "approvers": [{**asdict(a), **({"id": approver_ids[a.name]} if a.name in approver_ids else {})}
+                      for a in approvers],
+        **({"author_ids": [author_ids[n] for n in author_names]} if roster is not None else {}),
         "date": now(),
         "engine_version": __version__,
     }
@@ -282,7 +303,8 @@ def render_outcome(outcome: ReleaseOutcome) -> str:
              f"  manifest: {outcome.manifest_path}",
              f"  archive:  {m['archive']['file']}",
              f"  suite:    {s['passed']}/{s['cases']} passed, {s['skipped']} skipped; rules covered "
-             f"{s['rules_covered']}/{s['rules']}; suite content {s['content_sha256'][:16]}...",
+             f"{s['rules_covered']}/{s['rules']} ({s.get('rule_coverage', '')}); suite content "
+             f"{s['content_sha256'][:16]}...",
              *_cohort_line(m.get("cohorts")),
              f"  change:   {c['class']}" + (f" against {prev['rulebook']['version']} ({c['bump']} bump)" if prev else
                                             " (first release of this rulebook)"),

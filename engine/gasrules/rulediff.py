@@ -156,7 +156,7 @@ def load_resolved(path: str | Path) -> Any:
 
 
 def _side(path: str | Path, res: Any) -> Side:
-    from .compiler import identity_hash
+    from .identity import identity_hash
 
     md = res.metadata
     return Side(str(path), str(md["id"]), str(md["version"]), str(md.get("status", "")), identity_hash(res),
@@ -194,7 +194,7 @@ def _approval_text(approvals: list[dict[str, Any]]) -> str:
 
 
 def diff_resolved(old: Any, new: Any, old_path: str = "old", new_path: str = "new") -> RulebookDiff:
-    from .compiler import canonical_content
+    from .identity import canonical_content
 
     d = RulebookDiff(_side(old_path, old), _side(new_path, new))
     co, cn = canonical_content(old), canonical_content(new)
@@ -225,6 +225,11 @@ def _metadata(old: Any, new: Any) -> list[Change]:
         if a != b:
             out.append(Change("metadata", key, "value", "none", "metadata (not clinical content)",
                               _plain(a), _plain(b), "", str(old.metadata_ref.loc(key)), str(new.metadata_ref.loc(key))))
+    a, b = old.metadata.get("intended_use"), new.metadata.get("intended_use")
+    if a != b:   # who and where the rulebook may be used: shown to reviewers, hashed, never silent
+        out.append(Change("metadata", "intended_use", "value", "minor", "intended use (population, setting, "
+                          "exclusions) differs", _plain(a), _plain(b), "", str(old.metadata_ref.loc("intended_use")),
+                          str(new.metadata_ref.loc("intended_use"))))
     a_versions = {str(e.get("version")) for e in old.metadata.get("changelog") or []}
     for entry in new.metadata.get("changelog") or []:
         if str(entry.get("version")) not in a_versions:

@@ -71,14 +71,18 @@ def admit(rb: Any, settings: Settings) -> Admission:
             raise RuntimeRefusal("strict.no_release_dir", f"strict mode is on but no release directory is set, so "
                                  f"{_describe(rb)} cannot be matched to an approved release (set "
                                  "GASRULES_RELEASE_DIR or releases.dir)")
-        found, entries = approvals_for(release_dir, rb.sha256)
+        found, entries = approvals_for(release_dir, rb.sha256, legacy_sha256=getattr(rb, "sha256_v1", ""),
+                                       archive=settings.archive)
         if found is None:
             raise RuntimeRefusal("strict.not_approved", _why_not_approved(rb, entries, release_dir))
         manifest = found.path
     if release_dir is None:
         return Admission(rb, rb.sha256, manifest)
     try:
-        state = suspension_state(read_suspensions(release_dir), rb.sha256)
+        events = read_suspensions(release_dir)
+        state = suspension_state(events, rb.sha256)
+        if not state.suspended and not state.rules and getattr(rb, "sha256_v1", ""):
+            state = suspension_state(events, rb.sha256_v1)  # suspensions filed under hash scheme 1
     except RegistryError as exc:
         raise RuntimeRefusal("registry.damaged", f"the suspension register cannot be trusted: {exc}") from None
     if state.suspended:
@@ -107,6 +111,12 @@ def _why_not_approved(rb: Any, entries: list[Any], release_dir: Path) -> str:
     head = f"{_describe(rb)} matches no approved release in {release_dir}"
     if damaged:
         return f"{head}: its manifest {damaged[0].path.name} {damaged[0].problem}"
+    legacy = [e for e in entries if not e.problem and getattr(rb, "sha256_v1", "")
+              and e.rulebook.get("sha256") == rb.sha256_v1]
+    if legacy:
+        return (f"{head}: {legacy[0].path.name} approved it under identity hash scheme 1, which did not cover "
+                "texts, labels, steps, presentation or display units, and the rulebook archived at that release "
+                "is missing or differs from this one in them (release it again)")
     if same:
         other = same[-1].rulebook.get("sha256", "")
         return (f"{head}: version {rb.version} was approved with content sha256 {str(other)[:16]}...; "
@@ -142,14 +152,26 @@ class Runtime:
             raise
 
     @classmethod
+    def open(cls, rulebook: str | Path | None = None, *, settings_file: str | Path | None = None,
+             env: Any = None, **overrides: Any) -> Runtime:
+        """The governed entry point of the Python API: settings from ``settings_file``, the
+        GASRULES_* environment (``env``, default os.environ) and ``overrides`` (Settings field
+        names, e.g. ``strict=True``), exactly as the command line reads them; then the rulebook
+        (``rulebook``, else the settings', else the shipped one) is loaded and admitted."""
+        from .settings import load_settings
+
+        return cls.from_settings(load_settings(settings_file, env=env, **overrides), rulebook)
+
+    @classmethod
     def from_settings(cls, settings: Settings, rulebook: str | Path | None = None) -> Runtime:
         """Load the active rulebook (``rulebook``, else settings.rulebook, else the shipped one)
         and the shadow candidate named in the settings. RulebookError for a broken rulebook,
         RuntimeRefusal when it may not be used, SettingsError / RecordError for a bad log."""
         from . import load_rulebook
 
-        active = load_rulebook(rulebook if rulebook is not None else settings.rulebook)
-        candidate = load_rulebook(settings.shadow_rulebook) if settings.shadow_rulebook else None
+        limits = settings.limits()
+        active = load_rulebook(rulebook if rulebook is not None else settings.rulebook, limits=limits)
+        candidate = load_rulebook(settings.shadow_rulebook, limits=limits) if settings.shadow_rulebook else None
         return cls(active, settings, candidate=candidate)
 
     # ------------------------------------------------------------ evaluation
@@ -160,6 +182,17 @@ class Runtime:
         result = interpret(self.rulebook, case, trace=trace or self._log is not None)
         other = interpret(self.candidate, case, trace=False) if self._shadow is not None else None
         return self._after(case, result, other, trace)
+
+    def prepare(self, case: Any, trace: bool = True) -> tuple[dict[str, Any], Any]:
+        """(result, deliver): the result is evaluated now; ``deliver()`` writes its decision
+        record (and shadow comparison) and must be called only once the result has been handed
+        over, so that a request ending in an error leaves no record."""
+        from . import interpret
+
+        result = interpret(self.rulebook, case, trace=trace or self._log is not None)
+        other = interpret(self.candidate, case, trace=False) if self._shadow is not None else None
+        shown = result if trace or not result.get("trace") else {**result, "trace": []}
+        return shown, lambda: self._after(case, result, other, trace)
 
     def interpret_many(self, cases: Iterable[Any], workers: int = 1, trace: bool = True) -> Iterator[dict[str, Any]]:
         """Results in input order, one per case (bad cases rejected inline)."""

@@ -26,9 +26,24 @@ def _validator(name: str) -> Any:
     import jsonschema  # imported here: only a cache miss pays for it
 
     schema = load_schema(name)
-    cls = jsonschema.validators.validator_for(schema)
-    cls.check_schema(schema)
-    return cls(schema, format_checker=cls.FORMAT_CHECKER)
+    base = jsonschema.validators.validator_for(schema)
+    base.check_schema(schema)
+    cls = jsonschema.validators.extend(base, {"pattern": _pattern_whole})
+    return cls(schema, format_checker=base.FORMAT_CHECKER)
+
+
+def _pattern_whole(validator: Any, pattern: str, instance: Any, schema: Any) -> Any:
+    """``pattern`` with a true end anchor: Python's ``$`` also matches before a final newline,
+    so ``"ph\\n"`` would pass ``^[a-z]+$``; here ``$`` means the end of the text."""
+    import re
+
+    from jsonschema.exceptions import ValidationError
+
+    if not validator.is_type(instance, "string"):
+        return
+    whole = pattern[:-1] + r"\Z" if pattern.endswith("$") and not pattern.endswith("\\$") else pattern
+    if re.search(whole, instance) is None:
+        yield ValidationError(f"{instance!r} does not match {pattern!r}")
 
 
 def validate_document(doc: Document, schema_name: str = "rulebook.schema.json") -> list[Problem]:

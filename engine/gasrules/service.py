@@ -113,6 +113,8 @@ class Interpreter(Protocol):
 
     def record(self, case: Any, result: dict[str, Any]) -> None: ...
 
+    def prepare(self, case: Any, trace: bool = True) -> tuple[dict[str, Any], Any]: ...
+
     def describe(self) -> dict[str, Any]: ...
 
     def close(self) -> None: ...
@@ -131,6 +133,9 @@ class EngineInterpreter:
 
     def record(self, case: Any, result: dict[str, Any]) -> None:
         return None
+
+    def prepare(self, case: Any, trace: bool = True) -> tuple[dict[str, Any], Any]:
+        return self.interpret(case, trace), lambda: None
 
     def describe(self) -> dict[str, Any]:
         return {"mode": "engine", "strict": False, "decision_records": False, "shadow": None}
@@ -158,6 +163,18 @@ class RuntimeInterpreter:
     def record(self, case: Any, result: dict[str, Any]) -> None:
         self.runtime.record(case, result)
 
+    def prepare(self, case: Any, trace: bool = True) -> tuple[dict[str, Any], Any]:
+        """(result, deliver): the decision record is written by deliver(), once the response is built."""
+        if self._lock is None:
+            return self.runtime.prepare(case, trace)
+        with self._lock:
+            result, deliver = self.runtime.prepare(case, trace)
+
+        def locked_deliver() -> None:
+            with self._lock:  # type: ignore[union-attr]
+                deliver()
+        return result, locked_deliver
+
     def describe(self) -> dict[str, Any]:
         rt, settings = self.runtime, self.runtime.settings
         adm = rt.admission
@@ -181,18 +198,16 @@ def _settings_apply(config: "ServiceConfig", environ: Mapping[str, str]) -> bool
 
 def make_interpreter(config: ServiceConfig, environ: Mapping[str, str] | None = None
                      ) -> Interpreter:
-    """The Runtime when site settings apply (``config.settings``, ``config.strict`` or GASRULES_*
-    variables), else the plain engine. Raises RulebookError, RuntimeRefusal, SettingsError."""
+    """The governed :class:`gasrules.Runtime` under the site settings (``config.settings``,
+    ``config.strict``, GASRULES_* variables; defaults when none apply: no strict mode, no
+    decision log, suspensions honoured when a release directory is set).
+    Raises RulebookError, RuntimeRefusal, SettingsError."""
     import os
 
-    environ = os.environ if environ is None else environ
-    if not _settings_apply(config, environ):
-        import gasrules
-
-        return EngineInterpreter(gasrules.load_rulebook(config.rulebook))
     from .runtime import Runtime
     from .settings import load_settings
 
+    environ = os.environ if environ is None else environ
     settings = load_settings(config.settings, env=environ,
                              strict=True if config.strict else None)
     return RuntimeInterpreter(Runtime.from_settings(settings, config.rulebook))
@@ -421,20 +436,24 @@ class App:
             raise HttpError(400, "request.not_a_case", "expected one case (a JSON object) or a "
                             "FHIR Bundle; send lists of cases to /interpret/batch", "body")
         _check_fields(body, self.config.max_case_fields)
-        result = self.interpreter.interpret(body, trace)
+        result, deliver = self.interpreter.prepare(body, trace)
         if want_fhir:
-            bundle = self._fhir_bundle(result, {}, None, None, ())
-            return Response(200, dumps(bundle), FHIR_JSON)
-        return Response(200, dumps(result))
+            response = Response(200, dumps(self._fhir_bundle(result, {}, None, None, ())), FHIR_JSON)
+        else:
+            response = Response(200, dumps(result))
+        deliver()  # the decision record only for a result that is being returned
+        return response
 
     def _interpret_fhir(self, body: Any, trace: bool, preliminary: bool) -> Response:
         from .fhir import case_from_fhir
 
         read = case_from_fhir(body, self.rulebook.inputs, allow_preliminary=preliminary)
-        result = self.interpreter.interpret(read.case, trace)
+        result, deliver = self.interpreter.prepare(read.case, trace)
         refs = {k: v for k, v in read.sources.items() if "/" in v or v.startswith("urn:")}
         bundle = self._fhir_bundle(result, refs, read.subject, read.effective, read.issues)
-        return Response(200, dumps(bundle), FHIR_JSON)
+        response = Response(200, dumps(bundle), FHIR_JSON)
+        deliver()
+        return response
 
     def _fhir_bundle(self, result: dict[str, Any], refs: Mapping[str, str], subject: str | None,
                      effective: str | None, issues: Any) -> dict[str, Any]:
@@ -489,20 +508,25 @@ class App:
 
     def _batch_row(self, row: Any, trace: bool, deadline: float,
                    line: int | None = None) -> dict[str, Any]:
-        """One row's result; an engine failure on a row becomes that row's rejection."""
-        if time.monotonic() > deadline:
-            raise HttpError(503, "service.timeout", f"the batch did not finish within "
-                            f"{self.config.timeout:g} s; nothing was returned: send it in "
-                            "smaller parts", "body", {"Retry-After": "1"})
+        """One row's result; an engine failure on a row becomes that row's rejection, and so
+        does a row not reached before the deadline (N in, N out; the decision log holds
+        exactly the results returned)."""
+        where = f"line {line}" if line else "row"
+        late = time.monotonic() > deadline
         try:
+            if late:
+                raise TimeoutError
             return self.interpreter.interpret(row, trace)
         except Exception as exc:  # noqa: BLE001 - a row is never lost, even to an engine bug
-            traceback.print_exc(file=sys.stderr)
             from .evaluator import interpret as engine_interpret
 
-            where = f"line {line}" if line else "row"
-            stand_in: dict[str, Any] = {UNREADABLE: f"{where}: the engine failed on this row "
-                                                    f"({type(exc).__name__})"}
+            if late:
+                why = (f"{where}: not interpreted: the batch passed its deadline of {self.config.timeout:g} s "
+                       "before reaching it; send it again, or the batch in smaller parts")
+            else:
+                traceback.print_exc(file=sys.stderr)
+                why = f"{where}: the engine failed on this row ({type(exc).__name__})"
+            stand_in: dict[str, Any] = {UNREADABLE: why}
             if isinstance(row, dict) and isinstance(row.get("case_id"), str):
                 stand_in["case_id"] = row["case_id"]
             result = engine_interpret(self.rulebook, stand_in, True)

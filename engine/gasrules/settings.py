@@ -12,12 +12,19 @@ Settings file (every key optional)::
     releases:
       dir: /srv/gasrules/releases    # release manifests and the suspension register
       archive: /srv/gasrules/archive # resolved rulebooks by sha256 (default: <dir>/archive)
+      roster: /srv/gasrules/people.yaml  # who may author or approve, with stable ids (optional)
     decision_log:
       path: /srv/gasrules/decisions.jsonl
       context_policy: mask           # keep | mask | drop   (identifier keys inside `context`)
       identifier_keys: [mrn, name, patient_id]
       mask_chars: 16
       fsync: true
+      anchor_key_file: /etc/gasrules/anchor.key   # optional: HMAC on the anchor (outside the log's folder)
+    limits:
+      corpus_unreadable_percent: 1 # impact and shadow exit 4 when more corpus rows are unreadable
+      yaml_nodes: 1000000          # YAML nodes a rulebook file may expand to (alias bombs)
+      rulebook_bytes: 10485760     # largest rulebook file read
+    rulebook_roots: [/srv/gasrules/rulebooks]   # when set, every file of an extends chain lies under one
     shadow:
       rulebook: ../candidate/rulebook.yaml
       log: /srv/gasrules/disagreements.jsonl
@@ -30,7 +37,8 @@ The masking salt is a secret and is read only from the environment (``GASRULES_M
 never from the file. Environment variables: GASRULES_RULEBOOK, GASRULES_STRICT (1/0, true/false,
 yes/no, on/off), GASRULES_RELEASE_DIR, GASRULES_ARCHIVE_DIR, GASRULES_DECISION_LOG,
 GASRULES_CONTEXT_POLICY, GASRULES_IDENTIFIER_KEYS (comma separated), GASRULES_MASK_SALT,
-GASRULES_MASK_CHARS, GASRULES_LOG_FSYNC, GASRULES_SHADOW_RULEBOOK, GASRULES_SHADOW_LOG.
+GASRULES_MASK_CHARS, GASRULES_LOG_FSYNC, GASRULES_SHADOW_RULEBOOK, GASRULES_SHADOW_LOG, GASRULES_ROSTER,
+GASRULES_ANCHOR_KEY_FILE, GASRULES_CORPUS_UNREADABLE_PERCENT, GASRULES_YAML_NODE_BUDGET, GASRULES_RULEBOOK_MAX_BYTES, GASRULES_RULEBOOK_ROOTS (os.pathsep separated).
 """
 
 from __future__ import annotations
@@ -44,7 +52,7 @@ from typing import Any, Mapping
 from .errors import EngineError
 from .records import CONTEXT_POLICIES, DEFAULT_IDENTIFIER_KEYS, RecordConfig, RecordError
 
-__all__ = ["Settings", "SettingsError", "load_settings", "ENV_VARS"]
+__all__ = ["Settings", "SettingsError", "load_settings", "read_anchor_key", "ENV_VARS"]
 
 
 class SettingsError(EngineError):
@@ -64,14 +72,20 @@ class Settings:
     strict: bool = False
     release_dir: Path | None = None
     archive_dir: Path | None = None
+    roster: Path | None = None             # site roster of authors and approvers (people.py)
     decision_log: Path | None = None
     context_policy: str = "drop"
     identifier_keys: tuple[str, ...] = DEFAULT_IDENTIFIER_KEYS
     mask_salt: str = field(default="", repr=False)
     mask_chars: int = 16
     log_fsync: bool = True
+    anchor_key_file: Path | None = None    # HMAC key of keyed anchors, kept outside the log's folder
     shadow_rulebook: Path | None = None
     shadow_log: Path | None = None
+    yaml_nodes: int = 1_000_000
+    corpus_unreadable_percent: float = 1.0  # impact/shadow exit 4 above this share of unreadable corpus rows
+    rulebook_bytes: int = 10 * 1024 * 1024
+    rulebook_roots: tuple[Path, ...] = ()
     sources: tuple[str, ...] = ()          # where values came from, for `--show-settings` and errors
 
     @property
@@ -81,11 +95,22 @@ class Settings:
             return self.archive_dir
         return self.release_dir / "archive" if self.release_dir is not None else None
 
+    def limits(self) -> Any:
+        """The rulebook read limits (:class:`gasrules.loader.Limits`)."""
+        from .loader import Limits
+
+        return Limits(yaml_nodes=self.yaml_nodes, file_bytes=self.rulebook_bytes,
+                      roots=tuple(p.expanduser().resolve() for p in self.rulebook_roots))
+
     def record_config(self) -> RecordConfig:
         """The decision-record configuration (raises SettingsError for a bad combination)."""
+        key = b""
+        if self.anchor_key_file is not None and self.decision_log is not None:
+            key = read_anchor_key(self.anchor_key_file, self.decision_log)
         try:
             return RecordConfig(context_policy=self.context_policy, identifier_keys=self.identifier_keys,
-                                salt=self.mask_salt, mask_chars=self.mask_chars, fsync=self.log_fsync)
+                                salt=self.mask_salt, mask_chars=self.mask_chars, fsync=self.log_fsync,
+                                anchor_key=key)
         except RecordError as exc:
             name = {"salt": "GASRULES_MASK_SALT"}.get(exc.field, f"decision_log.{exc.field}")
             raise SettingsError(name, str(exc).split(": ", 1)[-1].split(" (field")[0], exc.accepted) from None
@@ -97,31 +122,66 @@ class Settings:
         return {k: (str(v) if isinstance(v, Path) else list(v) if isinstance(v, tuple) else v) for k, v in out.items()}
 
 
+def too_many_unreadable(unreadable: int, rows: int, settings: Settings) -> str:
+    """A message when more than ``corpus_unreadable_percent`` of a corpus's rows could not be
+    read (those commands then exit 4), else ""."""
+    limit = settings.corpus_unreadable_percent
+    if rows and unreadable * 100.0 > limit * rows:
+        return (f"{unreadable:,} of {rows:,} corpus rows ({100.0 * unreadable / rows:.1f} %) could not be read, more "
+                f"than the limit of {limit:g} % (setting limits.corpus_unreadable_percent)")
+    return ""
+
+
+def read_anchor_key(key_file: Path, log: Path) -> bytes:
+    """The anchor key: at least 16 bytes, from a file outside the log's folder (someone who can
+    rewrite the log's folder must not find the key there)."""
+    name = "decision_log.anchor_key_file"
+    accepted = "a file of at least 16 bytes outside the decision log's folder"
+    key_path, folder = Path(key_file).resolve(), Path(log).resolve().parent
+    if key_path.parent == folder or folder in key_path.parents:
+        raise SettingsError(name, f"{key_file} lies inside the decision log's folder {folder}", accepted)
+    try:
+        key = key_path.read_bytes().strip()
+    except OSError as exc:
+        raise SettingsError(name, f"cannot read {key_file}: {exc.strerror or exc}", accepted) from None
+    if len(key) < 16:
+        raise SettingsError(name, f"{key_file} holds {len(key)} bytes", accepted)
+    return key
+
+
 # setting name -> (file key path, environment variable, kind)
 _TABLE: dict[str, tuple[tuple[str, ...], str, str]] = {
     "rulebook": (("rulebook",), "GASRULES_RULEBOOK", "path"),
     "strict": (("strict",), "GASRULES_STRICT", "bool"),
     "release_dir": (("releases", "dir"), "GASRULES_RELEASE_DIR", "path"),
     "archive_dir": (("releases", "archive"), "GASRULES_ARCHIVE_DIR", "path"),
+    "roster": (("releases", "roster"), "GASRULES_ROSTER", "path"),
     "decision_log": (("decision_log", "path"), "GASRULES_DECISION_LOG", "path"),
     "context_policy": (("decision_log", "context_policy"), "GASRULES_CONTEXT_POLICY", "policy"),
     "identifier_keys": (("decision_log", "identifier_keys"), "GASRULES_IDENTIFIER_KEYS", "keys"),
     "mask_salt": ((), "GASRULES_MASK_SALT", "secret"),
     "mask_chars": (("decision_log", "mask_chars"), "GASRULES_MASK_CHARS", "int"),
     "log_fsync": (("decision_log", "fsync"), "GASRULES_LOG_FSYNC", "bool"),
+    "anchor_key_file": (("decision_log", "anchor_key_file"), "GASRULES_ANCHOR_KEY_FILE", "path"),
     "shadow_rulebook": (("shadow", "rulebook"), "GASRULES_SHADOW_RULEBOOK", "path"),
+    "yaml_nodes": (("limits", "yaml_nodes"), "GASRULES_YAML_NODE_BUDGET", "count"),
+    "corpus_unreadable_percent": (("limits", "corpus_unreadable_percent"), "GASRULES_CORPUS_UNREADABLE_PERCENT",
+                                  "percent"),
+    "rulebook_bytes": (("limits", "rulebook_bytes"), "GASRULES_RULEBOOK_MAX_BYTES", "count"),
+    "rulebook_roots": (("rulebook_roots",), "GASRULES_RULEBOOK_ROOTS", "paths"),
     "shadow_log": (("shadow", "log"), "GASRULES_SHADOW_LOG", "path"),
 }
 ENV_VARS = tuple(env for _, env, _ in _TABLE.values())
-_SECTIONS = {"releases": {"dir", "archive"}, "shadow": {"rulebook", "log"},
-             "decision_log": {"path", "context_policy", "identifier_keys", "mask_chars", "fsync"}}
+_SECTIONS = {"releases": {"dir", "archive", "roster"}, "limits": {"yaml_nodes", "rulebook_bytes", "corpus_unreadable_percent"}, "shadow": {"rulebook", "log"},
+             "decision_log": {"path", "context_policy", "identifier_keys", "mask_chars", "fsync", "anchor_key_file"}}
 # Sections read by their own modules (servesettings, interfaces), which check their keys.
 _OWN_SECTIONS = {"serve", "interfaces"}
-_TOP = {"rulebook", "strict"} | set(_SECTIONS) | _OWN_SECTIONS
+_TOP = {"rulebook", "strict", "rulebook_roots"} | set(_SECTIONS) | _OWN_SECTIONS
 _TRUE, _FALSE = {"1", "true", "yes", "on"}, {"0", "false", "no", "off"}
 _ACCEPTED = {"path": "a file or directory path", "bool": "true or false (1/0, yes/no, on/off)",
              "policy": " | ".join(CONTEXT_POLICIES), "keys": "a list of key names (comma separated in "
-             "the environment)", "int": "an integer", "secret": "a string of at least 16 characters"}
+             "the environment)", "int": "an integer", "percent": "a number from 0 to 100", "count": "a whole number of at least 1",
+             "paths": "a list of directories (os.pathsep separated in the environment)", "secret": "a string of at least 16 characters"}
 
 
 def _convert(name: str, kind: str, value: Any, where: str, base: Path | None) -> Any:
@@ -141,6 +201,27 @@ def _convert(name: str, kind: str, value: Any, where: str, base: Path | None) ->
             return int(value)
         except (TypeError, ValueError):
             raise bad(f"{value!r} is not an integer") from None
+    if kind == "percent":
+        try:
+            if isinstance(value, bool):
+                raise ValueError
+            number = float(value)
+        except (TypeError, ValueError):
+            raise bad(f"{value!r} is not a number") from None
+        if not 0 <= number <= 100:
+            raise bad(f"{value!r} is outside 0 to 100")
+        return number
+    if kind == "count":
+        if isinstance(value, bool) or not isinstance(value, (int, str)) or not str(value).strip().isdigit() \
+                or int(value) < 1:
+            raise bad(f"{value!r} is not a whole number of at least 1")
+        return int(value)
+    if kind == "paths":
+        items = value.split(os.pathsep) if isinstance(value, str) else value
+        if not isinstance(items, list) or not all(isinstance(p, str) and p.strip() for p in items):
+            raise bad(f"{value!r} is not a list of directories")
+        return tuple(Path(p).expanduser() if Path(p).expanduser().is_absolute() or base is None
+                     else base / p for p in items)
     if kind == "keys":
         items = value.split(",") if isinstance(value, str) else value
         if not isinstance(items, list) or not all(isinstance(k, str) and k.strip() for k in items):

@@ -332,7 +332,10 @@ def rule_coverage(rb: CompiledRulebook, results: list[CaseResult],
     stale = [{"rule": r, "outcome": o} for (r, o) in excuses if (r, o) not in missing]
     missing = [(r, o) for r, o in missing if (r, o) not in excuses]
     full = sum(1 for r, c in counts.items() if all(c[o] or (r, o) in excuses for o in c))
+    covered = sum(1 for c in counts.values() if all(c[o] for o in c))
     return {"rules": len(counts), "both": full, "percent": _pct(full, len(counts)),
+            "covered": covered, "declared_unreachable": full - covered,
+            "summary": f"{covered} covered + {full - covered} declared unreachable of {len(counts)}",
             "never_fired": sorted(r for r, o in missing if o == "fired"),
             "never_not_fired": sorted(r for r, o in missing if o == "not_fired"),
             "excused": excused, "stale_excuses": stale,
@@ -529,6 +532,8 @@ def threshold_coverage(rb: CompiledRulebook, results: list[CaseResult],
     needed = 3 * len(rows) - len(excused)
     have = sum(3 - len(r["missing"]) - len(r["excused"]) for r in rows)
     return {"cutpoints": len(rows), "probes_needed": needed, "probes_found": have, "percent": _pct(have, needed),
+            "declared_unreachable": len(excused),
+            "summary": f"{have} covered + {len(excused)} declared unreachable of {3 * len(rows)}",
             "rows": rows, "excused": excused, "stale_excuses": stale,
             "missing": [{"cutpoint": r["cutpoint"], "sides": r["missing"]} for r in rows if r["missing"]]}
 

@@ -50,7 +50,8 @@ class Column:
     objects with text values; ``fields`` names them) | json (any JSON value, JSON text in CSV
     and Parquet) | value (text as it is, any other JSON value as JSON text; native in JSON
     Lines) | raw (a pass-through value written as it came; ``arrow_type`` keeps its Parquet
-    type)."""
+    type) | guarded (pass-through text; in CSV output a cell that a spreadsheet would run as a
+    formula is neutralised, see :func:`neutralise_formula`)."""
 
     name: str
     kind: str = "text"
@@ -59,12 +60,62 @@ class Column:
     unit: str = ""
 
 
-_KINDS = ("text", "number", "texts", "records", "json", "value", "raw")
+_KINDS = ("text", "number", "texts", "records", "json", "value", "raw", "guarded")
+
+
+def neutralise_formula(cell: str) -> str:
+    """A CSV cell a spreadsheet would run as a formula, made plain text with a leading
+    apostrophe: one starting with ``=``, ``@``, a tab or a carriage return, or with ``+`` or
+    ``-`` when the cell is not a number (``-4.2`` stays as it is)."""
+    if not cell or cell[0] not in "=@+-\t\r":
+        return cell
+    if cell[0] in "+-":
+        try:
+            float(cell)
+            return cell
+        except ValueError:
+            pass
+    return "'" + cell
 
 
 def temp_path_for(target: Path) -> Path:
     """The temporary name a writer uses beside ``target``: hidden, and marked as partial."""
     return target.with_name(f".{target.name}.partial-{os.getpid()}")
+
+
+def remove_stale_partials(target: Path) -> list[Path]:
+    """Remove the hidden partial files that killed runs left beside ``target`` (their process
+    is gone); a partial of a run still going is left alone. Returns what was removed."""
+    removed = []
+    for path in target.parent.glob(f".{target.name}.partial-*"):
+        pid = path.name.rsplit("-", 1)[-1]
+        if not pid.isdigit() or int(pid) == os.getpid() or _alive(int(pid)):
+            continue
+        try:
+            if path.is_dir():
+                import shutil
+
+                shutil.rmtree(path)
+            else:
+                path.unlink()
+            removed.append(path)
+        except OSError:
+            pass
+    return removed
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    try:   # a zombie (exited, not yet reaped) is not a running writer
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            return fh.read().rsplit(b")", 1)[-1].split()[0] != b"Z"
+    except (OSError, IndexError):
+        return True
 
 
 class TableWriter:
@@ -97,6 +148,7 @@ class TableWriter:
                 from .tabular import TableError
 
                 raise TableError(str(self.target), "is a directory", "an output file path")
+            remove_stale_partials(self.target)
             self.temp = temp_path_for(self.target)
             self._file = None if fmt == "parquet" else open(self.temp, "w", encoding="utf-8", newline="")
         self._buffer: list[Sequence[Any]] = []
@@ -315,7 +367,7 @@ def _as_text(value: Any) -> Any:
 # Numbers come from the engine finite, and csv writes a float as repr() does.
 _CSV_CELL: dict[str, Any] = {"text": None, "number": None, "texts": _csv_texts,
                              "records": _csv_json, "json": _csv_json, "value": _as_text,
-                             "raw": _csv_scalar}
+                             "raw": _csv_scalar, "guarded": neutralise_formula}
 
 
 # kinds whose values Arrow takes as they are (numbers, lists of text, lists of records, typed raw)

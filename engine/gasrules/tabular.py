@@ -68,6 +68,7 @@ _SUFFIXES = {".csv": "csv", ".jsonl": "jsonl", ".ndjson": "jsonl",
              ".json": "jsonl", ".parquet": "parquet", ".pq": "parquet"}
 _HEADER_UNIT = re.compile(r"^\s*(?P<name>[^\[\(]*?)\s*(?:\[(?P<u1>.+)\]|\((?P<u2>.+)\))\s*$")
 _ROLES = ("case_id", "pass")
+_DECIMAL_COMMA = re.compile(r"^\s*[+-]?[0-9]+,[0-9]+\s*$")
 READ_BATCH = 4096          # Parquet rows decoded at a time
 
 
@@ -227,7 +228,54 @@ def resolve_column(header: str, where: str, analytes: Mapping[str, Sequence[str]
     if mapping is not None and text in mapping.columns:
         raise TableError(where, f"'{name}' is not an input of the rulebook",
                          "one of " + ", ".join(sorted(analytes)) + ", case_id or pass")
+    likely = None if mapping is not None and text in mapping.passthrough else looks_like_input(key, analytes)
+    if likely is not None:
+        raise TableError(where, f"looks like input '{likely}' but is not one of its names",
+                         f"the column named {likely} (with [unit] if needed), or mapped (columns: {{\"{text}\": "
+                         f"{{input: {likely}}}}}) or declared pass-through (passthrough: [\"{text}\"]) in a mapping file")
     return Target("pass", text)
+
+
+# Column names people use for an input (names only, no numbers). A column called one of these,
+# or within one edit of an input name or alias of 4 characters or more, "looks like an input":
+# it is an error unless it is mapped or declared pass-through, never silently passed through.
+COLUMN_ALIASES: dict[str, str] = {
+    "paco2": "pco2", "pvco2": "pco2", "pco₂": "pco2", "co2": "pco2", "pao2": "po2", "pvo2": "po2", "po₂": "po2",
+    "bicarb": "hco3", "bicarbonate": "hco3", "hco3-": "hco3", "hco₃": "hco3", "hco₃-": "hco3", "std_hco3": "hco3",
+    "sodium": "na", "na+": "na", "potassium": "k", "k+": "k", "chloride": "cl", "cl-": "cl",
+    "lac": "lactate", "lactic_acid": "lactate", "alb": "albumin", "sao2": "so2", "svo2": "so2",
+    "fio₂": "fio2", "fi02": "fio2", "glu": "glucose", "creat": "creatinine", "hgb": "hb", "haemoglobin": "hb",
+    "hemoglobin": "hb", "temp": "temperature", "be": "base_excess", "abe": "base_excess", "sbe": "base_excess",
+    "osm": "osmolality", "mg": "magnesium", "phos": "phosphate", "ica": "ionized_calcium",
+    "ionised_calcium": "ionized_calcium", "ph_value": "ph",
+}
+
+
+def _edits1(a: str, b: str) -> bool:
+    """True when ``a`` and ``b`` differ by exactly one insertion, deletion or substitution."""
+    if a == b or abs(len(a) - len(b)) > 1:
+        return False
+    if len(a) > len(b):
+        a, b = b, a
+    i = 0
+    while i < len(a) and a[i] == b[i]:
+        i += 1
+    return a[i + (len(a) == len(b)):] == b[i + 1:]
+
+
+def looks_like_input(key: str, analytes: Mapping[str, Sequence[str]]) -> str | None:
+    """The input a column name seems meant for (an alias, or one edit away from an input name
+    or alias of 4+ characters), or None."""
+    target = COLUMN_ALIASES.get(key)
+    if target in analytes:
+        return target
+    for name in analytes:
+        if len(name) >= 4 and _edits1(key, name):
+            return name
+    for alias, name in COLUMN_ALIASES.items():
+        if name in analytes and len(alias) >= 4 and _edits1(key, alias):
+            return name
+    return None
 
 
 def resolve_header(headers: Sequence[str], source: str, analytes: Mapping[str, Sequence[str]],
@@ -293,8 +341,13 @@ class Table:
 
     def __init__(self, path: Path, fmt: str, analytes: Mapping[str, Sequence[str]],
                  mapping: ColumnMapping | None, start: int = 0,
-                 row_groups: Sequence[int] | None = None) -> None:
+                 row_groups: Sequence[int] | None = None, *, decimal_comma: bool = False,
+                 field_limit: int | None = None) -> None:
+        from .csvread import FIELD_LIMIT
+
         self.path, self.fmt, self.analytes, self.mapping = path, fmt, analytes, mapping
+        self.decimal_comma, self.field_limit = decimal_comma, field_limit or FIELD_LIMIT
+        self.delimiter = ","
         self.start, self.row_groups = start, row_groups
         self.passthrough_types = {}
         self._close: list[Any] = []
@@ -322,44 +375,40 @@ class Table:
 
     # CSV ---------------------------------------------------------------------------------
     def _open_csv(self) -> None:
-        f = open(self.path, encoding="utf-8-sig", newline="")
+        from .csvread import CsvHeaderError, read_records
+
+        f = open(self.path, "rb")
         self._close.append(f)
         size = max(os.fstat(f.fileno()).st_size, 1)
-        raw = f.buffer.raw  # type: ignore[attr-defined]
+        raw = f.raw  # type: ignore[attr-defined]
         self._progress = lambda: min(raw.tell() / size, 1.0)
-        reader = csv.reader(f)
         try:
-            headers = next(reader)
-        except StopIteration:
-            headers = []
-        except csv.Error as exc:
-            raise TableError(f"{self.path}:1", f"unreadable header: {exc}") from None
+            self.delimiter, headers, records, collapsed = read_records(f, self.field_limit)
+        except CsvHeaderError as exc:
+            raise TableError(f"{self.path}:{exc.line}", exc.message, exc.expected) from None
+        if self.decimal_comma and self.delimiter == ",":
+            raise TableError(str(self.path), "--decimal-comma is ambiguous in a comma-delimited file",
+                             "a semicolon- or tab-delimited file for numbers written with a decimal comma")
         targets = resolve_header(headers, str(self.path), self.analytes, self.mapping)
+        if collapsed is not None:
+            raise TableError(f"{self.path}:{collapsed.line}", collapsed.message, collapsed.expected)
         self.passthrough = [t.name for t in targets if t.role == "pass"]
-        self._rows = self._csv_rows(reader, headers, targets)
+        self._rows = self._csv_rows(records, headers, targets)
 
-    def _csv_rows(self, reader: Any, headers: list[str], targets: list[Target]) -> Iterator[Row]:
+    def _csv_rows(self, records: Any, headers: list[str], targets: list[Target]) -> Iterator[Row]:
         plan = [(i, t.role, t.name, t.unit) for i, t in enumerate(targets)]
         n = len(headers)
         index = self.start
         name = self.path.name
-        line = 1
-        while True:
-            try:
-                fields = next(reader)
-            except StopIteration:
-                return
-            except csv.Error as exc:         # e.g. a NUL byte or an unterminated quote at EOF
-                line = reader.line_num
-                where = f"{name}:{line}"
+        comma = self.decimal_comma
+        for rec in records:
+            where = f"{name}:{rec.line}"
+            fields = rec.fields
+            if fields is None:
                 yield Row(index, where, {"case_id": None, "context": {}}, {h: None for h in self.passthrough},
-                          [_unreadable(where, f"not valid CSV: {exc}", "comma-separated fields")])
+                          [_unreadable(where, rec.error, "comma-, semicolon- or tab-separated UTF-8 fields")])
                 index += 1
                 continue
-            line = reader.line_num
-            if not fields:
-                continue                      # a blank line is not a row
-            where = f"{name}:{line}"
             passthrough: dict[str, Any] = {}
             case: dict[str, Any] = {"case_id": None, "context": passthrough}
             for i, role, key, unit in plan:
@@ -369,13 +418,15 @@ class Table:
                 elif cell is None or cell == "":
                     continue
                 elif role == "input":
+                    if comma and _DECIMAL_COMMA.match(cell):
+                        cell = cell.replace(",", ".")
                     case[key] = {"value": cell, "unit": unit} if unit else cell
                 else:
                     case["case_id"] = cell
             errors = []
             if len(fields) != n:
                 if len(fields) > n:
-                    extra = ", ".join(repr(x) for x in fields[n:n + 3])
+                    extra = ", ".join(repr(x[:40]) for x in fields[n:n + 3])
                     msg = f"{len(fields)} fields but the header has {n} (extra: {extra})"
                 else:
                     msg = (f"{len(fields)} fields but the header has {n} (missing from column "
@@ -534,7 +585,8 @@ class Table:
 
 def open_table(path: str | Path, analytes: Mapping[str, Sequence[str]], *,
                mapping: ColumnMapping | None = None, fmt: str | None = None,
-               start: int = 0, row_groups: Sequence[int] | None = None) -> Table:
+               start: int = 0, row_groups: Sequence[int] | None = None,
+               decimal_comma: bool = False, field_limit: int | None = None) -> Table:
     """Open an input for streaming. ``analytes``: input name -> accepted units
     (:func:`analytes_of`). ``start`` is the index of the first row (for partitions);
     ``row_groups`` reads only those row groups of one Parquet file (contiguous, ascending)."""
@@ -544,4 +596,7 @@ def open_table(path: str | Path, analytes: Mapping[str, Sequence[str]], *,
         raise TableError(str(p), "no such file or directory")
     if p.is_dir() and kind != "parquet":
         raise TableError(str(p), "a directory can only be read as partitioned Parquet")
-    return Table(p, kind, analytes, mapping, start, row_groups)
+    if decimal_comma and kind != "csv":
+        raise TableError(str(p), "--decimal-comma applies to CSV input only", "a .csv file")
+    return Table(p, kind, analytes, mapping, start, row_groups, decimal_comma=decimal_comma,
+                 field_limit=field_limit)

@@ -29,11 +29,19 @@ app = typer.Typer(add_completion=False, help="Verify, replay or repair a decisio
 def verify(log: Path = typer.Argument(..., help="Decision log (JSON Lines) with its .anchor beside it."),
            witness: Optional[str] = typer.Option(None, "--witness", help="An entry_sha256 kept elsewhere that must "
                                                  "be in the chain (catches a rewritten log and anchor)."),
+           anchor_key_file: Optional[Path] = typer.Option(None, "--anchor-key-file", help="The anchor key (kept "
+                                                          "outside the log's folder): the anchor must carry its HMAC."),
            as_json: bool = typer.Option(False, "--json", help="Print the report as JSON.")) -> None:
     """Check every entry's hashes, the chain, sequence numbers and the anchor."""
     from ..audit import render_verify, verify_log
+    from ..settings import SettingsError, read_anchor_key
 
-    report = verify_log(log, witness=witness)
+    try:
+        key = read_anchor_key(anchor_key_file, log) if anchor_key_file is not None else b""
+    except SettingsError as exc:
+        typer.echo(f"gasrules: {exc}", err=True)
+        raise typer.Exit(exitcodes.USAGE) from None
+    report = verify_log(log, witness=witness, key=key)
     if as_json:
         first = report.first_problem
         typer.echo(json.dumps({"path": report.path, "ok": report.ok, "entries": report.entries,

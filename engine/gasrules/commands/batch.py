@@ -7,9 +7,10 @@
 
 One result row per input row, in order, errors inline; the output is written to a temporary
 file and renamed at the end. The summary (counts by status and by disorder) goes to stderr,
-with a progress bar when stderr is a terminal. Exit codes: 0 the run completed (rejected rows
-are in the output), 2 unusable input, header, mapping or options, 5 broken rulebook, 6 refused
-in strict mode.
+with a progress bar when stderr is a terminal. Exit codes: 0 the run completed and no row was
+rejected, 4 the run completed but some rows were rejected (they are in the output; 0 with
+--allow-rejected, unless every row was), 2 unusable input, header, mapping or options, 5 broken
+rulebook, 6 refused in strict mode.
 """
 
 from __future__ import annotations
@@ -32,18 +33,11 @@ def _fail(code: int, message: str) -> typer.Exit:
     return typer.Exit(code)
 
 
-def _settings_in_use(settings_file: Optional[Path]) -> bool:
-    return settings_file is not None or any(
-        k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in os.environ)
-
-
 def runtime_hooks(settings_file: Optional[Path], rulebook: Optional[Path], strict: bool,
                   distributed: bool = False) -> Any:
-    """RunHooks from the site settings (strict mode, decision records, shadow mode), or None
-    when no settings apply. Raises typer.Exit with the documented code when refused (before
-    any log is opened)."""
-    if not _settings_in_use(settings_file) and not strict:
-        return None
+    """RunHooks from the governed Runtime under the site settings (strict mode, decision
+    records, shadow mode; the defaults when none apply). Raises typer.Exit with the documented
+    code when refused (before any log is opened)."""
     from ..batch import RunHooks
     from ..errors import RulebookError
     from ..reporters import render_problems
@@ -114,6 +108,12 @@ def batch(
     strict: bool = typer.Option(False, "--strict", help="Refuse a rulebook that matches no approved release."),
     summary_json: Optional[Path] = typer.Option(None, "--summary-json", help="Also write the summary as JSON to this file."),
     progress: Optional[bool] = typer.Option(None, "--progress/--no-progress", help="Progress bar (default: only on a terminal)."),
+    allow_rejected: bool = typer.Option(False, "--allow-rejected", help="Exit 0 even when some rows were rejected "
+                                        "(never when every row was)."),
+    decimal_comma: bool = typer.Option(False, "--decimal-comma", help="CSV input writes numbers with a decimal comma "
+                                       "(7,35); needs a semicolon or tab delimiter."),
+    formula_guard: bool = typer.Option(True, "--formula-guard/--no-formula-guard", help="In CSV output, neutralise "
+                                       "pass-through cells a spreadsheet would run as a formula (default: on)."),
 ) -> None:
     """Interpret every row of IN; one result row per input row, in order, errors inline."""
     from ..batch import BatchOptions, run_batch
@@ -138,7 +138,8 @@ def batch(
             workers=workers, chunk_size=chunk_size, full_json=full_json,
             values=tuple(v.strip() for v in values.split(",") if v.strip()) if values else None,
             in_format=None if msg_in else in_format, out_format=None if msg_out else out_format,
-            mapping=load_mapping(mapping) if mapping else None, progress=progress)
+            mapping=load_mapping(mapping) if mapping else None, progress=progress,
+            formula_guard=formula_guard, decimal_comma=decimal_comma)
         previous = signal.signal(signal.SIGTERM, _terminate)
         try:
             if dask or dask_local:
@@ -163,6 +164,8 @@ def batch(
     typer.echo(summary.render(), err=True)
     if summary_json is not None:
         summary_json.write_text(json.dumps(summary.as_dict(), indent=2) + "\n", encoding="utf-8")
+    if summary.rejected and (not allow_rejected or summary.rejected == summary.rows):
+        raise typer.Exit(exitcodes.REJECTED)
 
 
 def _load(rulebook: Optional[Path]) -> Any:

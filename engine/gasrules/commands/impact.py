@@ -3,7 +3,8 @@
 Exit 0 when the replay completed (rejected rows are counted and listed, never a failure by
 themselves), 1 when an expected-transitions file is given and a transition is not in it (or
 is above its ceiling), 2 when the corpus, the expected-transitions file or a cohort file cannot be used,
-5 when either rulebook cannot be loaded.
+4 when more than limits.corpus_unreadable_percent (default 1 %) of the corpus rows could not be
+read, 5 when either rulebook cannot be loaded.
 """
 
 from __future__ import annotations
@@ -101,3 +102,13 @@ def impact(old: Path = typer.Argument(..., help="The current rulebook (or overla
         typer.echo(f"gasrules impact: {len(report.unexpected)} unexpected transition(s), "
                    f"{sum(t.count for t in report.unexpected):,} case(s)", err=True)
         raise typer.Exit(exitcodes.FAILED)
+    from ..settings import SettingsError, load_settings, too_many_unreadable
+
+    try:
+        too_many = too_many_unreadable(report.unreadable, report.rows, load_settings())
+    except SettingsError as exc:
+        typer.echo(f"gasrules impact: {exc}", err=True)
+        raise typer.Exit(exitcodes.USAGE) from None
+    if too_many:
+        typer.echo(f"gasrules impact: {too_many}", err=True)
+        raise typer.Exit(exitcodes.REJECTED)

@@ -54,16 +54,25 @@ def read_cases(source: str) -> Iterator[Any]:
             data = json.loads(text)
         except json.JSONDecodeError as exc:
             raise typer.BadParameter(f"{name}:{exc.lineno}:{exc.colno}: invalid JSON: {exc.msg}") from None
+        except RecursionError:
+            raise typer.BadParameter(f"{name}: JSON nested too deeply to read") from None
+        except ValueError as exc:
+            raise typer.BadParameter(f"{name}: cannot be read: {str(exc).split(';')[0]}") from None
         yield from (data if isinstance(data, list) else [data])
         return
     for lineno, line in enumerate(text.splitlines(), 1):
         if not line.strip():
             continue
         try:
-            yield json.loads(line)
+            case = json.loads(line)
         except json.JSONDecodeError as exc:
             # a bad line is a rejected case, never a lost one
-            yield {"__unreadable__": f"{name}:{lineno}:{exc.colno}: invalid JSON: {exc.msg}"}
+            case = {"__unreadable__": f"{name}:{lineno}:{exc.colno}: invalid JSON: {exc.msg}"}
+        except RecursionError:
+            case = {"__unreadable__": f"{name}:{lineno}: JSON nested too deeply to read"}
+        except ValueError as exc:   # e.g. an integer of thousands of digits
+            case = {"__unreadable__": f"{name}:{lineno}: cannot be read: {str(exc).split(';')[0]}"}
+        yield case
 
 
 def _looks_like_jsonl(text: str) -> bool:
@@ -75,15 +84,13 @@ def _looks_like_jsonl(text: str) -> bool:
         return True
     except json.JSONDecodeError:
         return False
+    except (RecursionError, ValueError):   # one whole value too deep or too long on the first line
+        return True
 
 
 def _runtime(settings_file: Optional[Path], rulebook: Optional[Path]) -> Any:
-    """A Runtime when site settings apply (a --settings file or GASRULES_* variables), else None,
-    so that the plain path imports nothing more than the engine."""
-    import os
-
-    if settings_file is None and not any(k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in os.environ):
-        return None
+    """The governed Runtime under the site settings (a --settings file, GASRULES_* variables,
+    else the defaults): every interpretation goes through it."""
     from ..errors import RulebookError
     from ..reporters import render_problems
     from ..runtime import Runtime, RuntimeRefusal
@@ -125,11 +132,11 @@ def interpret(
     settings: Optional[Path] = typer.Option(None, "--settings", help="Site settings (strict mode, decision log, shadow candidate); GASRULES_* variables also apply."),
     input_format: Optional[str] = typer.Option(None, "--input-format", help="json, jsonl, hl7 or fhir (default: from the file: .hl7 is HL7 v2, JSON with a resourceType is FHIR)."),
     out_format: Optional[str] = typer.Option(None, "--format", "-f", help="text, json, fhir (a FHIR Bundle per case) or hl7 (a preliminary ORU^R01 per case) [default: text]."),
+    allow_rejected: bool = typer.Option(False, "--allow-rejected", help="With several cases, exit 0 even when some "
+                                        "were rejected (never when every one was)."),
 ) -> None:
     """Interpret blood gas cases. Exit 0 interpreted or partial, 3 inconsistent, 4 rejected, 5 broken rulebook."""
-    from .. import interpret_many, load_rulebook
-    from ..errors import RulebookError
-    from ..reporters import render_problems, render_result
+    from ..reporters import render_result
 
     flags = {"ph": ph, "pco2": pco2, "po2": po2, "hco3": hco3, "na": na, "k": k, "cl": cl, "albumin": albumin,
              "lactate": lactate, "fio2": fio2, "age": age, "sample_type": sample_type, "chronicity": chronicity}
@@ -164,16 +171,8 @@ def interpret(
         cases = [given] if case_file is None else read_cases(case_file)
     as_json = out_format != "text"
     runtime = _runtime(settings, rulebook)
-    if runtime is not None:
-        rb = runtime.rulebook
-        results = runtime.interpret_many(cases, trace=as_json or trace)
-    else:
-        try:
-            rb = load_rulebook(rulebook)
-        except RulebookError as exc:
-            typer.echo(render_problems(exc.problems, str(rulebook or "default rulebook")), err=True)
-            raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
-        results = interpret_many(rb, cases, trace=as_json or trace)
+    rb = runtime.rulebook
+    results = runtime.interpret_many(cases, trace=as_json or trace)
     worst = exitcodes.OK
     first = True
     counts: dict[str, int] = {}
@@ -200,9 +199,12 @@ def interpret(
     total = sum(counts.values())
     if total == 1:
         raise typer.Exit(worst)  # one case: the exit code tells its status
-    # several cases: each status is in the output; the run itself succeeded
+    # several cases: each status is in the output; exit 4 when any was rejected (unless allowed)
     summary = ", ".join(f"{n} {s}" for s, n in sorted(counts.items()))
     typer.echo(f"{total} cases: {summary}", err=True)
+    rejected = counts.get("rejected", 0)
+    if rejected and (not allow_rejected or rejected == total):
+        raise typer.Exit(exitcodes.REJECTED)
 
 
 def _read_messages(source: str, fmt: str, rulebook: Optional[Path],

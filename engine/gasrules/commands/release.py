@@ -48,9 +48,18 @@ def release(
         raise typer.Exit(exitcodes.USAGE)
     settings = site_settings(settings_file, release_dir=release_dir, archive_dir=archive)
     target = need_release_dir(settings)
+    roster = None
+    if settings.roster is not None:
+        from ..people import RosterError, load_roster
+
+        try:
+            roster = load_roster(settings.roster)
+        except RosterError as exc:
+            typer.echo(f"gasrules: {exc}", err=True)
+            raise typer.Exit(exitcodes.USAGE) from None
     try:
         outcome = do_release(rulebook, release_dir=target, approvers=[Approver(n, r) for n, r in zip(approver, role)],
-                             authors=author, previous=previous, archive=settings.archive)
+                             authors=author, previous=previous, archive=settings.archive, roster=roster)
     except RulebookError as exc:
         raise broken_rulebook(exc, str(rulebook)) from None
     except ReleaseRefused as exc:

@@ -69,6 +69,12 @@ def run(cases: Path = typer.Argument(..., help="Cases: CSV, JSON Lines or Parque
     where = f" recorded in {settings.shadow_log}" if settings.shadow_log else " (no --log: not recorded)"
     typer.echo(f"shadow: {rows} case(s), {unreadable} unreadable, {disagreements} disagreement(s) with candidate "
                f"{settings.shadow_rulebook}{where}", err=True)
+    from ..settings import too_many_unreadable
+
+    too_many = too_many_unreadable(unreadable, rows, settings)
+    if too_many:
+        typer.echo(f"error: {too_many}", err=True)
+        raise typer.Exit(exitcodes.REJECTED)
 
 
 @app.command()

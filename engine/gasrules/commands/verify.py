@@ -126,7 +126,7 @@ def _text(rb: Any, results: list[Any], report: dict[str, Any]) -> str:
               f"{s['superseded']} base cases superseded; {s['probes']} threshold probes)",
               "  by evidence: " + ", ".join(f"{k} {v}" for k, v in s["by_evidence"].items())]
     rc = report["rule_coverage"]
-    lines.append(f"Rule coverage: {rc['both']}/{rc['rules']} active rules both fired and not fired ({rc['percent']}%)")
+    lines.append(f"Rule coverage: {rc['summary']} active rules both fired and not fired ({rc['percent']}%)")
     if rc["never_fired"]:
         lines.append("  never fired: " + ", ".join(rc["never_fired"]))
     if rc["never_not_fired"]:
@@ -136,8 +136,7 @@ def _text(rb: Any, results: list[Any], report: dict[str, Any]) -> str:
     for e in rc["stale_excuses"]:
         lines.append(f"  stated unreachable but covered ({e['outcome'].replace('_', ' ')}): {e['rule']}")
     tc = report["threshold_coverage"]
-    lines.append(f"Threshold coverage: {tc['probes_found']}/{tc['probes_needed']} sides of {tc['cutpoints']} "
-                 f"cut-points ({tc['percent']}%)")
+    lines.append(f"Threshold coverage: {tc['summary']} sides of {tc['cutpoints']} cut-points ({tc['percent']}%)")
     for m in tc["missing"]:
         lines.append(f"  missing {'/'.join(m['sides'])}: {m['cutpoint']}")
     grouped: dict[str, list[str]] = {}
