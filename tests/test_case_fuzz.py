@@ -28,7 +28,7 @@ def _units(rb: Any) -> Any:
 def test_fuzzed_cases_always_give_valid_strict_results(which: str, count: int, shipped_rb: Any, mini_rb: Any) -> None:
     rb = shipped_rb if which == "shipped" else mini_rb
     rng = random.Random(4242 + count)
-    names = sorted(rb.inputs)
+    names = sorted(n for n in rb.inputs if n not in {s.fallback_marks for s in rb.inputs.values()})  # engine-set flags aside
     problems: list[str] = []
     statuses: dict[str, int] = {}
     for i in range(count):

@@ -356,7 +356,7 @@ def test_edited_base_behind_a_json_overlay_is_a_miss(tmp_path: Path, cache_dir: 
                                                      counted_compiles: list[str]) -> None:
     base = tmp_path / "base" / "rulebook.yaml"
     base.parent.mkdir()
-    base.write_text(MINI.read_text(encoding="utf-8"), encoding="utf-8")
+    base.write_text(portable(MINI.read_text(encoding="utf-8"), MINI), encoding="utf-8")
     site = tmp_path / "site.json"
     site.write_text(json.dumps({"format": "gasrules/1", "extends": "base/rulebook.yaml",
                                 "metadata": {"id": "json-site", "version": "0.1.0", "title": "JSON overlay",
@@ -411,7 +411,7 @@ def test_pickles_only_from_a_private_cache_directory(unsafe: str, tmp_path: Path
     shared.mkdir(mode=0o700)
     monkeypatch.setenv("GASRULES_CACHE_DIR", str(shared))
     path = tmp_path / "rb.yaml"
-    path.write_text(MINI.read_text(encoding="utf-8"), encoding="utf-8")
+    path.write_text(portable(MINI.read_text(encoding="utf-8"), MINI), encoding="utf-8")
     marker = tmp_path / "pickle-ran"
     _planted(shared / f"{cache_module.cache_key(path)}.pickle", marker)
     if unsafe == "world_writable":

@@ -29,6 +29,8 @@ LEGACY = DATA / "legacy_scheme1"
 
 
 def _write(path: Path, data: dict[str, Any]) -> Path:
+    if isinstance(data.get("bibliography"), str):    # written elsewhere: the mini bibliography by its full path
+        data = {**data, "bibliography": str((MINI.parent / data["bibliography"]).resolve())}
     path.write_text(yaml.safe_dump(data, sort_keys=False, allow_unicode=True), encoding="utf-8")
     return path
 

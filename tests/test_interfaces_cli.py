@@ -103,6 +103,8 @@ def test_batch_hl7_to_csv_keeps_every_message_with_errors_inline(tmp_path: Path)
 
     out_path = tmp_path / "out.csv"
     out = run("batch", str(bad_batch(tmp_path)), str(out_path))
+    assert out.exit_code == 4, out.output         # a message was rejected: exit 4 unless allowed
+    out = run("batch", str(bad_batch(tmp_path)), str(out_path), "--allow-rejected")
     assert out.exit_code == 0, out.output
     rows = list(csv.DictReader(out_path.open(encoding="utf-8")))
     assert [r["case_id"] for r in rows] == ["DEMO0011", "BROKEN1", "DEMO0012", "DEMO0013"]

@@ -84,6 +84,7 @@ INPUT_CODES: dict[str, str] = {
     "input.unreadable": "the row or line could not be parsed at all",
     "input.too_large": "an integer too large to read as a number",
     "input.not_strict_json": "context holds NaN, infinity, a huge integer, a non-string key or deep nesting",
+    "input.engine_set": "a flag the engine sets when it calculates an input (e.g. hco3_calculated) was given by the case",
 }
 
 # Codes of problems found while evaluating one case (never abort the case).

@@ -198,8 +198,9 @@ def plausible_case(rng: random.Random, inputs: Mapping[str, Any]) -> dict[str, A
     """A case that reads cleanly: a random subset of the inputs, each a number inside its
     plausible range, a declared code or a flag (so the evaluation itself is exercised)."""
     case: dict[str, Any] = {}
+    engine_set = {getattr(s, "fallback_marks", None) for s in inputs.values()}
     for name, spec in inputs.items():
-        if rng.random() < 0.35:
+        if rng.random() < 0.35 or name in engine_set:     # flags the engine sets are never given by a case
             continue
         if spec.kind == "code":
             if spec.codes:

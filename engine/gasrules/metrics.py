@@ -102,6 +102,15 @@ class _Counting:
         self.metrics.observe_case(str(result.get("status", "unknown")))
         return result
 
+    def prepare(self, case: Any, trace: bool = True) -> tuple[dict[str, Any], Any]:
+        """(result, deliver) of the inner interpreter; the case is counted when it is delivered."""
+        result, deliver = self.inner.prepare(case, trace)
+
+        def counted_deliver() -> None:
+            deliver()
+            self.metrics.observe_case(str(result.get("status", "unknown")))
+        return result, counted_deliver
+
     def record(self, case: Any, result: dict[str, Any]) -> None:
         self.inner.record(case, result)
 
