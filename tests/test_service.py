@@ -220,11 +220,24 @@ def test_batch_past_its_deadline_returns_every_row_and_logs_exactly_those(rulebo
     from gasrules.service import RuntimeInterpreter
     from gasrules.settings import Settings
 
+    import time as real_time
+    import types
+
     log = tmp_path / "d.jsonl"
     runtime = Runtime(rulebook, Settings(decision_log=log, log_fsync=False))
-    app = App(ServiceConfig(timeout=5.0, feedback_log=str(tmp_path / "f.jsonl")), RuntimeInterpreter(runtime))
-    clock = iter([100.0, 101.0, 106.0, 107.0])        # the third row is past the 5 s deadline
-    monkeypatch.setattr(service_module.time, "monotonic", lambda: next(clock))
+
+    class Slow(RuntimeInterpreter):
+        """Each interpreted row takes 3 s of the service's clock: the third row is past 5 s."""
+
+        def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
+            clock.now += 3.0
+            return super().interpret(case, trace)
+
+    clock = types.SimpleNamespace(now=100.0)
+    fake_time = types.SimpleNamespace(**{n: getattr(real_time, n) for n in dir(real_time) if not n.startswith("_")})
+    fake_time.monotonic = lambda: clock.now
+    monkeypatch.setattr(service_module, "time", fake_time)   # the service's clock only
+    app = App(ServiceConfig(timeout=5.0, feedback_log=str(tmp_path / "f.jsonl")), Slow(runtime))
     body = json.dumps(DEMO_ROWS[:3]).encode()
     req = Request("POST", "/interpret/batch", {}, {"content-type": "application/json"}, body, started=100.0)
     resp = app.handle(req)
