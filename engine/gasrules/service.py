@@ -457,21 +457,10 @@ class App:
 
     def _fhir_bundle(self, result: dict[str, Any], refs: Mapping[str, str], subject: str | None,
                      effective: str | None, issues: Any) -> dict[str, Any]:
-        from .fhir import result_to_fhir
+        from .interfaces import Incoming, to_fhir
 
-        extra = {"codesystem_url": self.config.codesystem_url} \
-            if self.config.codesystem_url else {}
-        bundle = result_to_fhir(result, refs, rulebook_info=result.get("rulebook") or
-                                self.rulebook, subject=subject, effective=effective, **extra)
-        if issues:
-            severity = {"error": "error", "warning": "warning", "notice": "information"}
-            bundle["entry"].append({"fullUrl": f"urn:uuid:{_uuid()}", "resource": {
-                "resourceType": "OperationOutcome",
-                "issue": [{"severity": severity[i.severity],
-                           "code": "not-supported" if i.code.startswith("code.") else "invalid",
-                           "details": {"text": i.message}, "diagnostics": i.code,
-                           "expression": [i.path]} for i in issues]}})
-        return bundle
+        incoming = Incoming({}, issues=tuple(issues), kind="fhir", refs=refs, subject=subject, effective=effective)
+        return to_fhir(result, incoming, self.rulebook, self.config.codesystem_url)
 
     def h_batch(self, req: Request) -> Response:
         kind = _require_type(req.headers, (JSON,) + LINES_TYPES)
@@ -605,11 +594,6 @@ class App:
         return Response(200, dumps({"recorded": len(records),
                                     "rules": sorted({r for rec in records for r in rec["rules"]})}))
 
-
-def _uuid() -> str:
-    import uuid
-
-    return str(uuid.uuid4())
 
 
 def build_app(config: ServiceConfig, interpreter: Interpreter | None = None, *,
