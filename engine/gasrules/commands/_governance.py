@@ -3,6 +3,8 @@ settings from --settings / GASRULES_* / flags, and the release directory they ne
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any, Optional
 
@@ -37,3 +39,28 @@ def broken_rulebook(exc: Any, name: str) -> typer.Exit:
 
     typer.echo(render_problems(exc.problems, name), err=True)
     return typer.Exit(exitcodes.BROKEN_RULEBOOK)
+
+
+@contextmanager
+def startup_errors(command: str, usage: tuple[type[BaseException], ...] = ()) -> Iterator[None]:
+    """Errors while a long-running command (serve, listen) starts: a broken rulebook (exit 5, every
+    problem printed), a refusal by the runtime (exit 6), a settings error or one of ``usage``
+    (exit 2), each one line naming the command."""
+    from ..errors import RulebookError
+    from ..runtime import RuntimeRefusal
+    from ..settings import SettingsError
+
+    try:
+        yield
+    except RulebookError as exc:
+        for problem in getattr(exc, "problems", ()):
+            typer.echo(problem.render(), err=True)
+        typer.echo(f"gasrules {command}: the rulebook did not load: {exc}", err=True)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK) from None
+    except RuntimeRefusal as exc:
+        typer.echo(f"gasrules {command}: {exc}", err=True)
+        raise typer.Exit(exitcodes.REFUSED) from None
+    except (SettingsError, *usage) as exc:
+        typer.echo(f"gasrules {command}: {exc}", err=True)
+        raise typer.Exit(exitcodes.USAGE) from None
+

@@ -10,7 +10,8 @@ from typing import Any, Optional
 
 import typer
 
-from ..exitcodes import BROKEN_RULEBOOK, OK, REFUSED, USAGE
+from ..exitcodes import OK, USAGE
+from ._governance import startup_errors
 
 app = typer.Typer(add_completion=False, help="MLLP listener for HL7 v2 ORU^R01.")
 
@@ -35,14 +36,11 @@ def listen(
     """Receive ORU^R01 over MLLP, interpret, file (and forward) the result, then acknowledge."""
     from dataclasses import replace
 
-    from ..errors import RulebookError
     from ..interfaces import interfaces_section
     from ..mllp import ListenConfig, Listener, parse_hostport
-    from ..runtime import RuntimeRefusal
     from ..service import ServiceConfig, make_interpreter
-    from ..settings import SettingsError
 
-    try:
+    with startup_errors("listen", usage=(ValueError,)):
         interfaces = interfaces_section(settings)
         config = ListenConfig(**dict(interfaces.listen))
         flags: dict[str, Any] = {"host": host, "port": port, "outbox": outbox,
@@ -53,17 +51,6 @@ def listen(
         interpreter = make_interpreter(ServiceConfig(
             rulebook=str(rulebook) if rulebook else None,
             settings=str(settings) if settings else None, strict=strict))
-    except RulebookError as exc:
-        for problem in getattr(exc, "problems", ()):
-            typer.echo(problem.render(), err=True)
-        typer.echo(f"gasrules listen: the rulebook did not load: {exc}", err=True)
-        raise typer.Exit(BROKEN_RULEBOOK) from None
-    except RuntimeRefusal as exc:
-        typer.echo(f"gasrules listen: {exc}", err=True)
-        raise typer.Exit(REFUSED) from None
-    except (SettingsError, ValueError) as exc:
-        typer.echo(f"gasrules listen: {exc}", err=True)
-        raise typer.Exit(USAGE) from None
     try:
         asyncio.run(_serve(Listener(interpreter, config, interfaces)))
     except OSError as exc:

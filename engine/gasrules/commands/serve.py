@@ -8,7 +8,8 @@ from typing import Any, Optional
 
 import typer
 
-from ..exitcodes import BROKEN_RULEBOOK, OK, REFUSED, USAGE
+from ..exitcodes import OK, USAGE
+from ._governance import startup_errors
 
 app = typer.Typer(add_completion=False, help="HTTP service with a JSON API and CDS Hooks.")
 
@@ -64,11 +65,8 @@ def serve(
     """Serve POST /interpret, POST /interpret/batch, GET /health, /ready, /metrics,
     /openapi.json and the CDS Hooks endpoints under /cds-services (uvicorn, ASGI)."""
     from ..cdsauth import ConfigError
-    from ..errors import RulebookError
-    from ..runtime import RuntimeRefusal
     from ..service import ServiceConfig, build_app
     from ..servesettings import serve_section
-    from ..settings import SettingsError
 
     flags: dict[str, Any] = {
         "host": host, "port": port, "cds_keys": cds_keys and str(cds_keys),
@@ -76,7 +74,7 @@ def serve(
         "feedback_log": feedback_log and str(feedback_log), "cds_window_minutes": cds_window,
         "max_connections": max_connections, "max_concurrency": max_concurrency,
         "cors_origins": tuple(cors_origin) if cors_origin else None, "access_log": access_log}
-    try:
+    with startup_errors("serve", usage=(ConfigError,)):
         from ..interfaces import interfaces_section
 
         values = {**serve_section(settings),
@@ -86,17 +84,6 @@ def serve(
                                settings=str(settings) if settings else None, strict=strict,
                                **values)
         service = build_app(config)
-    except RulebookError as exc:
-        for problem in getattr(exc, "problems", ()):
-            typer.echo(problem.render(), err=True)
-        typer.echo(f"gasrules serve: the rulebook did not load: {exc}", err=True)
-        raise typer.Exit(BROKEN_RULEBOOK) from None
-    except RuntimeRefusal as exc:
-        typer.echo(f"gasrules serve: {exc}", err=True)
-        raise typer.Exit(REFUSED) from None
-    except (ConfigError, SettingsError) as exc:
-        typer.echo(f"gasrules serve: {exc}", err=True)
-        raise typer.Exit(USAGE) from None
     try:
         from ..asgi import asgi_app
         from ..asgiserver import make_server
