@@ -16,9 +16,9 @@ from __future__ import annotations
 import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterable, Iterator
+from typing import Any, Iterator
 
-from .errors import EngineError, Location, Problem
+from .errors import Location, Problem, ProblemsError
 from .loader import load_document
 from .model import CompiledRulebook
 from .schema import validate_document
@@ -43,12 +43,10 @@ COHORT_CODES: dict[str, str] = {
 _DATA_KEYS = ("seed", "size", "constants", "intervals", "relations")
 
 
-class CohortError(EngineError):
+class CohortError(ProblemsError):
     """The cohort files could not be used: carries every problem, sorted by file and line."""
 
-    def __init__(self, problems: Iterable[Problem]):
-        self.problems = sorted(problems, key=Problem.sort_key)
-        super().__init__(f"{len(self.problems)} cohort file problem(s); first: {self.problems[0].render()}")
+    what = "cohort file"
 
 
 @dataclass(frozen=True)

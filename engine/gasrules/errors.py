@@ -156,5 +156,16 @@ class RulebookError(EngineError):
         return [p for p in self.problems if p.is_warning]
 
 
+class ProblemsError(EngineError):
+    """Some data files could not be used: carries every problem, sorted by file and line.
+    Subclasses name what the files are (``what``)."""
+
+    what = "file"
+
+    def __init__(self, problems: Iterable[Problem]):
+        self.problems = sorted(problems, key=Problem.sort_key)
+        super().__init__(f"{len(self.problems)} {self.what} problem(s); first: {self.problems[0].render()}")
+
+
 class CaseError(EngineError):
     """A case file or stream could not be read (not a single bad value: those go in results)."""

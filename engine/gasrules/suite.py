@@ -23,7 +23,7 @@ from typing import Any, Iterable
 
 import yaml
 
-from .errors import EngineError, Location, Problem
+from .errors import Location, Problem, ProblemsError
 from .expressions import Oracle, round_at
 from .loader import load_document
 from .model import CompiledRulebook
@@ -47,12 +47,10 @@ _OPS = {"<": lambda a, b: a < b, "<=": lambda a, b: a <= b, ">": lambda a, b: a 
 _EPS = 1e-9
 
 
-class SuiteError(EngineError):
+class SuiteError(ProblemsError):
     """Case files could not be loaded: carries every problem, sorted by file and line."""
 
-    def __init__(self, problems: Iterable[Problem]):
-        self.problems = sorted(problems, key=Problem.sort_key)
-        super().__init__(f"{len(self.problems)} case file problem(s); first: {self.problems[0].render()}")
+    what = "case file"
 
 
 # ----------------------------------------------------------------------------- loading
