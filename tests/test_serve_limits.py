@@ -21,29 +21,17 @@ import pytest
 from gasrules.asgi import JsonLog, asgi_app
 from gasrules.asgiserver import make_server
 from gasrules.service import App, EngineInterpreter, ServiceConfig, build_app
-from test_service import DEMO_CASE
+from test_service import DEMO_CASE, Server
 
 HOST = "127.0.0.1"
 
 
-class Live:
-    def __init__(self, app: App, log: io.StringIO | None = None) -> None:
-        self.app = app
-        cfg = app.config
-        self.httpd = make_server(asgi_app(app, log=JsonLog(log is not None, log)), HOST, 0,
-                                 request_timeout=cfg.timeout, keep_alive=cfg.keep_alive,
-                                 max_connections=cfg.max_connections,
-                                 parser=cfg.http_parser)
-        self.port = self.httpd.server_address[1]
-        threading.Thread(target=self.httpd.serve_forever, daemon=True).start()
-        for _ in range(200):
-            if self.httpd.server.started:
-                break
-            time.sleep(0.02)
+class Live(Server):
+    """The service on a real socket (test_service.Server), with its JSON log kept in ``log``
+    (or switched off), and raw-socket helpers for the limit tests."""
 
-    def close(self) -> None:
-        self.httpd.shutdown()
-        self.httpd.server_close()
+    def __init__(self, app: App, log: io.StringIO | None = None) -> None:
+        super().__init__(app, log=JsonLog(log is not None, log))
 
     def raw(self, data: bytes, wait: float = 10.0) -> bytes:
         """Send ``data`` on a new connection; everything the server sends until it closes or

@@ -36,10 +36,10 @@ FHIR_PANEL = json.loads((ROOT / "tests" / "data" / "fhir" / "arterial_panel.json
 
 
 class Server:
-    def __init__(self, app: App) -> None:
+    def __init__(self, app: App, log: Any = None) -> None:
         self.app = app
         cfg = app.config
-        self.httpd = make_server(asgi_app(app), "127.0.0.1", 0, request_timeout=cfg.timeout,
+        self.httpd = make_server(asgi_app(app, log=log), "127.0.0.1", 0, request_timeout=cfg.timeout,
                                  keep_alive=cfg.keep_alive, max_connections=cfg.max_connections,
                                  parser=cfg.http_parser)
         self.port = self.httpd.server_address[1]
