@@ -46,6 +46,7 @@ class Static:
     value_needs: tuple[tuple[int, str, tuple[str, ...], tuple[str, ...]], ...] = ()  # (index, name, inputs, derived)
     fallbacks: tuple[tuple[str, int, str], ...] = ()   # (input, index of its fallback value, flag it sets)
     always_rules: frozenset[str] = frozenset()         # rules that run whatever else happens (critical values)
+    engine_set: dict[str, str] = field(default_factory=dict)   # flag set by the engine -> the input it marks
 
 
 def prepare(rb: CompiledRulebook) -> Static:
@@ -89,6 +90,7 @@ def prepare(rb: CompiledRulebook) -> Static:
     static.fallbacks = tuple((n, value_index[s.fallback], s.fallback_marks) for n, s in rb.inputs.items()
                              if s.fallback is not None and s.fallback_marks is not None and s.fallback in value_index)
     static.always_rules = frozenset(r.id for r in rb.rules if r.always)
+    static.engine_set = {marks: name for name, _i, marks in static.fallbacks}
     return static
 
 
@@ -201,8 +203,8 @@ def read_case(rb: CompiledRulebook, case: Any) -> tuple[dict[str, Any], list[dic
             errors.append(_error(str(key), "input.unknown_key", f"'{key}' is not an input of rulebook {rb.id}",
                                  "one of " + static.accepted_keys + ", case_id, context"))
             continue
-        if any(key == marks for _n, _i, marks in static.fallbacks):
-            owner = next(n for n, _i, marks in static.fallbacks if marks == key)
+        owner = static.engine_set.get(key)
+        if owner is not None:
             errors.append(_error(key, "input.engine_set", f"{key} is set by the engine when {owner} is calculated",
                                  f"leave {key} out; give {owner} when it was measured"))
             continue
@@ -400,8 +402,7 @@ def _rejected(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, An
         if outcome != FIRED or rule.id not in static.always_rules:
             continue
         for j, f in enumerate(rule.findings):
-            findings.append({"code": f.code, "category": f.category, "severity": f.severity,
-                             "text": _render(rb, static.templates[(rule.id, j)], inputs, vals), "rule": rule.id})
+            findings.append(_finding(rb, rule, j, f, inputs, vals))
             if f.headline and f.severity == "critical":
                 phrases.append(f.headline)
     findings.sort(key=lambda f: 0 if f["severity"] == "critical" else 1)
@@ -439,7 +440,6 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
     headlines: list[tuple[int, str, str]] = []
     caution_texts: list[str] = []
     status = "interpreted"
-    templates = static.templates
     for i, outcome in enumerate(outcomes):
         if outcome != FIRED:
             continue
@@ -457,9 +457,9 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
             if code not in qualifiers:
                 qualifiers[code], qual_from[code], qual_where[code] = qual, rule.id, rule.location
         for j, f in enumerate(rule.findings):
-            text = _render(rb, templates[(rule.id, j)], inputs, vals)
-            findings.append({"code": f.code, "category": f.category, "severity": f.severity, "text": text,
-                             "rule": rule.id})
+            finding = _finding(rb, rule, j, f, inputs, vals)
+            text = finding["text"]
+            findings.append(finding)
             if f.headline:
                 headlines.append((0 if f.severity == "critical" else 1, f.category, f.headline))
             if f.caution:
@@ -477,13 +477,20 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
     for n in not_assessed:
         n.pop("core", None)
     findings.sort(key=lambda f: 0 if f["severity"] == "critical" else 1)
-    marks = {m for _n, _i, m in static.fallbacks}
+    marks = static.engine_set
     result.update(status=status, headline=_headline(pres, status, disorders, qualifiers, headlines, core_missing),
                   errors=[], inputs={k: v for k, v in inputs.items() if v is not None and k not in marks},
                   values=values, units=units, findings=findings, disorders=disorders, qualifiers=qualifiers,
                   not_assessed=not_assessed, cautions=caution_texts + list(pres.get("cautions", [])),
                   trace=events if events is not None else [], calculated=list(calculated or ()))
     return result
+
+
+def _finding(rb: CompiledRulebook, rule: Any, j: int, f: Any, inputs: dict[str, Any],
+             vals: tuple[Any, ...]) -> dict[str, Any]:
+    """The result entry of finding ``j`` of a rule that fired, its text rendered."""
+    return {"code": f.code, "category": f.category, "severity": f.severity,
+            "text": _render(rb, rb._static.templates[(rule.id, j)], inputs, vals), "rule": rule.id}
 
 
 def _precision_of(value: float) -> int:
