@@ -21,7 +21,7 @@ from .expressions import CutPoint, Expr, compare_nodes, parse
 from .identity import (HASH_SCHEME, LIFECYCLE_METADATA, canonical_content, canonical_json,  # noqa: F401
                        identity_content, identity_hash, resolved_document)
 from .model import (CompiledRulebook, DerivedSpec, FindingSpec, InputSpec, ParamSpec, RuleSpec,
-                    StepSpec)
+                    StepSpec, reads_closure)
 from .overlay import Ref, Resolved
 
 
@@ -231,7 +231,7 @@ def _check_fallbacks(inputs: dict[str, InputSpec], derived: dict[str, DerivedSpe
             out.append(Problem("RB-E070", f"fallback of input '{spec.name}' names unknown derived value "
                                f"'{spec.fallback}'", loc, "the name of a derived value"))
             continue
-        if spec.name in _reads_closure(spec.fallback, derived):
+        if spec.name in reads_closure(spec.fallback, derived):
             out.append(Problem("RB-E071", f"fallback '{spec.fallback}' of input '{spec.name}' depends on "
                                f"'{spec.name}' itself", loc, "a derived value computed from other inputs"))
         if d.unit != spec.unit:
@@ -242,19 +242,6 @@ def _check_fallbacks(inputs: dict[str, InputSpec], derived: dict[str, DerivedSpe
             out.append(Problem("RB-E073", f"fallback of input '{spec.name}' marks '{spec.fallback_marks}', "
                                "which is not a flag input", loc, "the name of a flag input (kind: flag)"))
     return out
-
-
-def _reads_closure(name: str, derived: dict[str, DerivedSpec]) -> set[str]:
-    """Every input and derived name a derived value reads, directly or through others."""
-    seen: set[str] = set()
-    todo = [name]
-    while todo:
-        for n in derived[todo.pop()].needs:
-            if n not in seen:
-                seen.add(n)
-                if n in derived:
-                    todo.append(n)
-    return seen
 
 
 def _check_names(inputs: dict[str, InputSpec], params: dict[str, ParamSpec], derived: dict[str, DerivedSpec],

@@ -16,7 +16,7 @@ from typing import Any, Mapping
 from . import units as U
 from .codegen import FIRED, HALTED, MISSING, PLACEHOLDER, SKIPPED
 from .expressions import round_at
-from .model import CompiledRulebook
+from .model import CompiledRulebook, reads_closure
 from .trace import RuleTrace
 
 SCHEMA_VERSION = "1.1"
@@ -73,20 +73,8 @@ def prepare(rb: CompiledRulebook) -> Static:
     for r in rb.rules:
         for j, f in enumerate(r.findings):
             static.templates[(r.id, j)] = _template(rb, static, f.text)
-    closure: dict[str, set[str]] = {}
-
-    def inputs_of(name: str, seen: frozenset[str] = frozenset()) -> set[str]:
-        if name not in closure:
-            acc: set[str] = set()
-            for n in rb.derived[name].needs:
-                if n in rb.inputs:
-                    acc.add(n)
-                elif n in rb.derived and n not in seen:
-                    acc |= inputs_of(n, seen | {name})
-            closure[name] = acc
-        return closure[name]
-
-    static.value_needs = tuple((i, name, tuple(sorted(inputs_of(name))), ()) for i, name, _s, _u in reported)
+    static.value_needs = tuple((i, name, tuple(sorted(n for n in reads_closure(name, rb.derived) if n in rb.inputs)), ())
+                               for i, name, _s, _u in reported)
     static.fallbacks = tuple((n, value_index[s.fallback], s.fallback_marks) for n, s in rb.inputs.items()
                              if s.fallback is not None and s.fallback_marks is not None and s.fallback in value_index)
     static.always_rules = frozenset(r.id for r in rb.rules if r.always)

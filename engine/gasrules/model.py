@@ -75,6 +75,19 @@ class DerivedSpec:
         return self.expr.needs | (self.when.needs if self.when else frozenset())
 
 
+def reads_closure(name: str, derived: dict[str, DerivedSpec]) -> set[str]:
+    """Every input, parameter and derived name a derived value needs, directly or through others."""
+    seen: set[str] = set()
+    todo = [name]
+    while todo:
+        for n in derived[todo.pop()].needs:
+            if n not in seen:
+                seen.add(n)
+                if n in derived:
+                    todo.append(n)
+    return seen
+
+
 @dataclass(frozen=True)
 class FindingSpec:
     code: str
