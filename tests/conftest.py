@@ -96,7 +96,7 @@ def mini_rb() -> Any:
 @pytest.fixture(scope="session")
 def result_validator() -> Any:
     """A function returning the list of schema violations of a result (empty when valid)."""
-    from gasrules.schema import validate_instance
+    from gasrules.rulebook.schema import validate_instance
 
     return lambda result: validate_instance(result, "result.schema.json")
 

@@ -14,10 +14,10 @@ import pytest
 
 import gasrules
 from gasrules.cli import main
-from gasrules.records import DecisionLog, RecordConfig, anchor_path
-from gasrules.release import Approver, release
-from gasrules.runtime import Runtime
-from gasrules.settings import Settings
+from gasrules.governance.decision_log import DecisionLog, RecordConfig, anchor_path
+from gasrules.governance.release import Approver, release
+from gasrules.governance.runtime import Runtime
+from gasrules.governance.settings import Settings
 
 DATA = Path(__file__).resolve().parent / "data" / "release"
 # pH values either side of the common-practice interval 7.35-7.45
@@ -158,9 +158,9 @@ def test_verify_reports_any_malformed_line_as_a_finding(bad: bytes, logged: tupl
 
 
 def test_keyed_anchor_detects_a_rewritten_log_and_anchor(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    from gasrules.audit import verify_log
-    from gasrules.records import _write_anchor
-    from gasrules.settings import SettingsError, load_settings
+    from gasrules.governance.audit import verify_log
+    from gasrules.governance.decision_log import _write_anchor
+    from gasrules.governance.settings import SettingsError, load_settings
 
     keys, logs = tmp_path / "keys", tmp_path / "logs"
     keys.mkdir()

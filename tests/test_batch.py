@@ -2,7 +2,7 @@
 identical output on 1 and 2 worker processes, results equal to the engine's own, settings
 honoured, and a killed run that leaves no file looking complete.
 
-The corpus is invented by the seeded demo generator (engine/gasrules/casegen.py); every clinical
+The corpus is invented by the seeded demo generator (engine/gasrules/verification/casegen.py); every clinical
 expectation is the engine's own answer for the same case, never a hard-coded conclusion.
 """
 
@@ -24,10 +24,10 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules.batch import BatchOptions, Progress, run_batch
+from gasrules.integration.batch import BatchOptions, Progress, run_batch
 from gasrules.cli import main
-from gasrules.pool import OrderedPool, PoolError, chunked
-from gasrules.tabular import read_back
+from gasrules.tables.pool import OrderedPool, PoolError, chunked
+from gasrules.tables.readers import read_back
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -269,7 +269,7 @@ def test_strict_mode_refuses_an_unapproved_rulebook(corpus: dict[str, Path], tmp
 
 def test_decision_records_one_entry_per_row_and_shadow(corpus: dict[str, Path], tmp_path: Path,
                                                        capsys: pytest.CaptureFixture[str]) -> None:
-    from gasrules.audit import verify_log
+    from gasrules.governance.audit import verify_log
 
     src = tmp_path / "first.csv"
     src.write_text("\n".join(corpus["csv"].read_text(encoding="utf-8").splitlines()[:301]) + "\n")
@@ -329,7 +329,7 @@ def test_repeated_headers_and_non_text_passthrough_are_kept(rb: Any, tmp_path: P
     lines = tmp_path / "g.jsonl"
     lines.write_text('{"case_id": "J1", "bed": 7, "tags": ["a", "b"], "ph": 7.4}\n'
                      '{"case_id": "J2", "bed": "7b", "ph": 7.4}\n', encoding="utf-8")
-    from gasrules.tabular import load_mapping
+    from gasrules.tables.readers import load_mapping
 
     for out in ("o.parquet", "o2.csv"):
         run_batch(rb, lines, tmp_path / out, BatchOptions(values=(), mapping=load_mapping(mapping)),
@@ -356,8 +356,8 @@ def test_cli_refusals_name_the_problem(corpus: dict[str, Path], tmp_path: Path,
 def test_demo_messages_are_reproducible_and_read_back(tmp_path: Path, rb: Any) -> None:
     """The shipped FHIR bundles and HL7 v2 messages come from the corpus generator: regenerating
     them gives the same bytes, and each reads back to the same case (demo data, invented)."""
-    from gasrules.fhir import case_from_fhir
-    from gasrules.hl7v2 import cases_from_hl7
+    from gasrules.integration.fhir import case_from_fhir
+    from gasrules.integration.hl7v2 import cases_from_hl7
 
     assert TOOL.run(["messages", "--out", str(tmp_path)]) == 0
     shipped = ROOT / "tools" / "demo" / "generated"

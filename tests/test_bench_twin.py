@@ -18,7 +18,7 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules.casegen import generate_cases, malformed_cases
+from gasrules.verification.casegen import generate_cases, malformed_cases
 
 ROOT = Path(__file__).resolve().parents[1]
 RULEBOOK = ROOT / "tools" / "bench" / "rulebook.yaml"

@@ -16,11 +16,11 @@ import pytest
 import yaml
 
 import gasrules
-import gasrules.suite as S
+import gasrules.verification.suite as S
 from conftest import EXAMPLE_SITE, ROOT, SHIPPED
-from gasrules.bibliography import Bibliography, describe, suggest
-from gasrules.loader import load_document
-from gasrules.schema import validate_document
+from gasrules.rulebook.bibliography import Bibliography, describe, suggest
+from gasrules.rulebook.loader import load_document
+from gasrules.rulebook.schema import validate_document
 
 BIBLIOGRAPHY = ROOT / "rulebooks" / "bibliography.yaml"
 BENCH = ROOT / "tools" / "bench" / "rulebook.yaml"
@@ -81,7 +81,7 @@ def test_describe_names_authors_title_journal_and_how_known() -> None:
 
 
 def test_document_lists_the_cited_references_per_rule() -> None:
-    from gasrules.document import build_document, render_markdown
+    from gasrules.governance.review_document import build_document, render_markdown
 
     md = render_markdown(build_document(SHIPPED))
     assert "[batlle1988] Batlle DC, Hizon M, Cohen E, et al. The use of the urinary anion gap" in md

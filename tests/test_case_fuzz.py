@@ -16,8 +16,8 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules.fuzzing import random_case
-from gasrules.schema import validate_instance
+from gasrules.verification.fuzzing import random_case
+from gasrules.rulebook.schema import validate_instance
 
 
 def _units(rb: Any) -> Any:
@@ -73,7 +73,7 @@ def test_hostile_values_in_inputs_and_context_are_rejected_by_field(mini_rb: Any
 def test_interpret_command_reads_hostile_json_lines_row_for_row(tmp_path: Any) -> None:
     from typer.testing import CliRunner
 
-    from gasrules.commands import interpret as interpret_command
+    from gasrules.cli.commands import interpret as interpret_command
 
     path = tmp_path / "cases.jsonl"
     path.write_text('{"ph": 7.4, "context": {"x": ' + "[" * 50_000 + "]" * 50_000 + "}}\n"

@@ -22,7 +22,7 @@ from typing import Any
 import pytest
 import yaml
 
-from gasrules.casegen import (
+from gasrules.verification.casegen import (
     CODED_INPUTS, CONTEXT_KEYS, HAGMA, INPUT_KEYS, MALFORMED_KINDS, METABOLIC_SETS, MIXES,
     RESPIRATORY, generate_cases, generate_corpus, generate_labelled, malformed_cases,
     to_canonical,
@@ -82,7 +82,7 @@ def test_same_seed_gives_the_same_cases_and_another_seed_does_not() -> None:
 
 
 def test_output_does_not_depend_on_the_process_or_its_hash_seed() -> None:
-    code = ("import hashlib, json; from gasrules.casegen import generate_cases; "
+    code = ("import hashlib, json; from gasrules.verification.casegen import generate_cases; "
             "print(hashlib.sha256(json.dumps(list(generate_cases(300, seed=9)), "
             "sort_keys=True).encode()).hexdigest())")
     env = {"PYTHONHASHSEED": "12345", "PATH": ""}

@@ -23,9 +23,9 @@ from cryptography.hazmat.primitives import serialization
 from cryptography.hazmat.primitives.asymmetric import ec, rsa
 
 import gasrules
-from gasrules import cdshooks
-from gasrules.cdsauth import AuthError, ConfigError, ReplayCache, config_from_dict
-from gasrules.fhir import case_from_fhir
+from gasrules.service import cdshooks
+from gasrules.service.cdsauth import AuthError, ConfigError, ReplayCache, config_from_dict
+from gasrules.integration.fhir import case_from_fhir
 from test_service import Server, start
 
 ROOT = Path(__file__).parents[1]
@@ -350,7 +350,7 @@ def test_bad_feedback_is_400_and_nothing_is_recorded(server: Server, keys: dict[
 def test_cards_are_known_again_after_a_restart(server: Server, keys: dict[str, Any],
                                                tmp_path: Path) -> None:
     card = _card(server, keys)
-    from gasrules.service import App, ServiceConfig
+    from gasrules.service.handlers import App, ServiceConfig
     again = App(ServiceConfig(feedback_log=server.app.config.feedback_log),
                 server.app.interpreter)
     assert again.cards.get(card["uuid"]) == server.app.cards.get(card["uuid"])
@@ -433,7 +433,7 @@ def test_bad_tokens_are_401_with_a_reason(server: Server, keys: dict[str, Any], 
 
 def test_a_jwk_used_with_another_algorithm_than_its_own_is_refused(keys: dict[str, Any]
                                                                  ) -> None:
-    from gasrules.cdsauth import TokenVerifier
+    from gasrules.service.cdsauth import TokenVerifier
     rsa_jwk = json.loads(jwt.algorithms.RSAAlgorithm.to_jwk(keys["rsa"].public_key()))
     rsa_jwk.update(kid="r1", alg="RS384")
     config = config_from_dict({"algorithms": ["RS384", "PS384"],

@@ -18,10 +18,10 @@ import pytest
 from typer.testing import CliRunner
 
 import gasrules
-import gasrules.cache as cache_module
+import gasrules.rulebook.build as cache_module
 from conftest import EXAMPLE_SITE, MINI, MINI_OVERLAYS, portable
 from gasrules.cli import COMMANDS, main
-from gasrules.commands import interpret as interpret_command
+from gasrules.cli.commands import interpret as interpret_command
 
 # README example: Na 140, Cl 104, HCO3 11 -> anion gap 140 - (104 + 11) = 25 (arithmetic of the
 # definition); Winter 1.5 x 11 + 8 = 24.5 +/- 2 (Albert, Dell & Winters, Ann Intern Med 1967),
@@ -380,7 +380,7 @@ def test_cache_key_covers_the_whole_package_source(tmp_path: Path) -> None:
     shutil.copytree(src, copy, ignore=shutil.ignore_patterns("__pycache__"))
 
     def key() -> str:
-        code = "import sys; from gasrules import cache; print(cache.cache_key(sys.argv[1]))"
+        code = "import sys; from gasrules.rulebook import build; print(build.cache_key(sys.argv[1]))"
         out = subprocess.run([sys.executable, "-c", code, str(MINI)], capture_output=True, text=True, check=True,
                              env={"PYTHONPATH": str(copy.parent), "PATH": "/usr/bin:/bin"}, cwd=tmp_path)
         return out.stdout.strip()

@@ -14,9 +14,9 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules.fhir import result_to_fhir
-from gasrules.hl7v2 import parse_message, result_to_oru
-from gasrules.terminology import CODES, DEFAULT_BASE, codesystem_bundle
+from gasrules.integration.fhir import result_to_fhir
+from gasrules.integration.hl7v2 import parse_message, result_to_oru
+from gasrules.integration.terminology import CODES, DEFAULT_BASE, codesystem_bundle
 
 ROOT = Path(__file__).parents[1]
 SHIPPED = ROOT / "docs" / "fhir" / "codesystems.json"

@@ -28,9 +28,9 @@ import yaml
 from typer.testing import CliRunner
 
 import gasrules
-from gasrules import cohort_table as T
-from gasrules import cohorts as C
-from gasrules.commands import verify as V
+from gasrules.verification import cohort_table as T
+from gasrules.verification import cohorts as C
+from gasrules.cli.commands import verify as V
 
 HERE = Path(__file__).resolve().parent
 BOOK = HERE / "data" / "cohorts" / "rulebook.yaml"
@@ -284,7 +284,7 @@ def test_verify_passes_when_every_goal_is_met(tmp_path):
 
 
 def test_document_shows_the_table(rb):
-    from gasrules.document import build_document, render_html, render_markdown
+    from gasrules.governance.review_document import build_document, render_html, render_markdown
 
     doc = build_document(BOOK, cohorts=True)
     md, page = render_markdown(doc), render_html(doc)
@@ -294,7 +294,7 @@ def test_document_shows_the_table(rb):
 
 
 def test_release_requires_the_goals_and_records_the_table(tmp_path):
-    from gasrules.release import Approver, ReleaseRefused, release
+    from gasrules.governance.release import Approver, ReleaseRefused, release
 
     book = _copy(tmp_path)
     lead = Approver("B. Reviewer", "clinical lead")
@@ -315,7 +315,7 @@ def test_release_requires_the_goals_and_records_the_table(tmp_path):
 
 
 def test_impact_shows_the_figures_side_by_side(tmp_path):
-    from gasrules.commands import impact as I
+    from gasrules.cli.commands import impact as I
 
     base = _copy(tmp_path)
     site = _overlay(tmp_path, base, None)

@@ -13,10 +13,11 @@ from pathlib import Path
 import pytest
 
 from conftest import portable
-from gasrules import check_rulebook, cli
-from gasrules.commands import diff as diff_command
-from gasrules.resources import default_rulebook_path
-from gasrules.rulediff import diff_paths, render_json, render_markdown, render_text, version_bump
+from gasrules.rulebook.build import check_rulebook
+from gasrules import cli
+from gasrules.cli.commands import diff as diff_command
+from gasrules.core.resources import default_rulebook_path
+from gasrules.governance.diff import diff_paths, render_json, render_markdown, render_text, version_bump
 from typer.testing import CliRunner
 
 SHIPPED = default_rulebook_path()
@@ -191,7 +192,7 @@ def test_parameter_documentation_only_is_patch(tmp_path: Path, edit: tuple[str, 
 
 
 def test_approvals_from_release_manifests_are_metadata(tmp_path: Path) -> None:
-    from gasrules.registry import write_manifest
+    from gasrules.governance.registry import write_manifest
 
     new = tuned(tmp_path, "a", [(AG_HIGH, "  ag_high:\n    value: 13\n")], version="1.0.1")
     old_sha = diff_paths(SHIPPED, SHIPPED).old.sha256

@@ -16,11 +16,11 @@ from typing import Any, Iterator
 import pytest
 
 import gasrules
-from gasrules.batch import BatchOptions, run_batch
-from gasrules.casegen import CODED_INPUTS, generate_cases, to_canonical
+from gasrules.integration.batch import BatchOptions, run_batch
+from gasrules.verification.casegen import CODED_INPUTS, generate_cases, to_canonical
 from gasrules.cli import main
-from gasrules.distributed import SUCCESS, Task, plan_tasks, run_distributed
-from gasrules.tabular import TableError, read_back
+from gasrules.integration.distributed import SUCCESS, Task, plan_tasks, run_distributed
+from gasrules.tables.readers import TableError, read_back
 
 pa = pytest.importorskip("pyarrow")
 pq = pytest.importorskip("pyarrow.parquet")
@@ -126,7 +126,7 @@ def test_failed_run_leaves_no_output_directory(client: Any, rb: Any, warehouse: 
     (src / "b.parquet").unlink()
     real = plan_tasks(src)
     gone = Task(1, str(src / "vanished.parquet"), None, "vanished.parquet")   # fails on a worker
-    monkeypatch.setattr("gasrules.distributed.plan_tasks", lambda *a: [*real, gone])
+    monkeypatch.setattr("gasrules.integration.distributed.plan_tasks", lambda *a: [*real, gone])
     with pytest.raises(TableError, match="no such file"):
         run_distributed(rb, src, out, client=client)
     assert sorted(p.name for p in tmp_path.iterdir()) == ["mixed"]      # no results, no partial directory

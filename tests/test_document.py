@@ -14,7 +14,7 @@ import pytest
 
 import gasrules
 from gasrules.cli import main
-from gasrules.document import build_document, condition_text, render_html, render_markdown
+from gasrules.governance.review_document import build_document, condition_text, render_html, render_markdown
 
 DATA = Path(__file__).resolve().parent / "data" / "release"
 ROOT = Path(__file__).resolve().parents[1]

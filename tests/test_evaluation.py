@@ -16,11 +16,11 @@ import pytest
 
 import gasrules
 from conftest import MINI, portable
-from gasrules.casegen import generate_cases
-from gasrules.codegen import CALC_ERROR
-from gasrules.evaluator import read_case
-from gasrules.reporters import render_trace
-from gasrules.trace import build_trace
+from gasrules.verification.casegen import generate_cases
+from gasrules.rulebook.codegen import CALC_ERROR
+from gasrules.evaluation.evaluator import read_case
+from gasrules.evaluation.render import render_trace
+from gasrules.evaluation.trace import build_trace
 
 # DuBose, Acidosis and alkalosis, Harrison's (table of mixed disorders), example 1.
 DUBOSE_E1 = {"ph": 7.39, "pco2": 24, "hco3": 14, "na": 140, "cl": 106}

@@ -4,7 +4,7 @@ The catalogue follows the "trying to break out" idea of simpleeval's own securit
 dunder and attribute access, imports, calls of functions that are not allowed, subscripts,
 comprehensions, lambdas, huge powers, very long or deeply nested text, f-strings, the walrus,
 starred and keyword arguments, statements. Each is checked twice: by the expression checker
-alone (gasrules.expressions.parse) and inside a whole rulebook (gasrules.check_rulebook), where
+alone (gasrules.rulebook.expressions.parse) and inside a whole rulebook (gasrules.check_rulebook), where
 the problem must point at the condition's line. Then: the generated code runs with no builtins,
 and text from a rulebook (titles, reasons) cannot inject code into it.
 """
@@ -21,8 +21,8 @@ import pytest
 
 import gasrules
 from conftest import portable
-from gasrules.errors import Location
-from gasrules.expressions import parse, runtime_globals
+from gasrules.core.errors import Location
+from gasrules.rulebook.expressions import parse, runtime_globals
 
 ACIDAEMIA_WHEN = "    when: ph < ph_low\n"   # the condition of rule ph_state.acidaemia in the mini rulebook
 AG_EXPR = "    expr: na - (cl + hco3)\n"    # the expression of derived value anion_gap

@@ -20,8 +20,8 @@ from typing import Any
 
 import pytest
 
-from gasrules.codes import Issue
-from gasrules.fhir import FINDING_CS, case_from_fhir, result_to_fhir
+from gasrules.integration.standard_codes import Issue
+from gasrules.integration.fhir import FINDING_CS, case_from_fhir, result_to_fhir
 
 DATA = Path(__file__).parent / "data" / "fhir"
 DEMO = Path(__file__).parents[1] / "tools" / "demo" / "fhir"
@@ -482,7 +482,7 @@ def test_specimen_table_knows_every_gas_code_the_shipped_rulebook_declares() -> 
     """A gas code missing from codes.SPECIMEN_BY_LOINC would silently lose the sample type."""
     import yaml
 
-    from gasrules.codes import SAMPLE_DEFINING_INPUTS, SPECIMEN_BY_LOINC
+    from gasrules.integration.standard_codes import SAMPLE_DEFINING_INPUTS, SPECIMEN_BY_LOINC
     inputs = yaml.safe_load(RULEBOOK_YAML.read_text())["inputs"]
     unknown = {name: code for name in SAMPLE_DEFINING_INPUTS
                for code in inputs.get(name, {}).get("loinc", [])

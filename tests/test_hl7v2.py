@@ -14,7 +14,7 @@ from hypothesis import example, given
 from hypothesis import strategies as st
 from test_fhir import CATALOG, RESULT, _engine, shipped_catalog
 
-from gasrules.hl7v2 import (
+from gasrules.integration.hl7v2 import (
     Encoding,
     case_from_hl7,
     cases_from_hl7,

@@ -33,8 +33,8 @@ def test_overflow_and_nan_at_run_time_are_calculation_errors(tmp_path: Path) -> 
     assert why["Huge"] == "eval.calculation_error: result too large"
     assert why["Not a number"] == "eval.calculation_error: the result is not a number (NaN)"
     json.dumps(result, allow_nan=False)   # strict JSON
-    from gasrules.codegen import CALC_ERROR
-    from gasrules.oracle import oracle_evaluate
+    from gasrules.rulebook.codegen import CALC_ERROR
+    from gasrules.verification.oracle import oracle_evaluate
 
     _values, states, _outcomes, _codes = oracle_evaluate(rb, dict(NORMAL))   # the slow evaluator agrees
     assert states["huge"] == CALC_ERROR and states["nan_value"] == CALC_ERROR
@@ -48,7 +48,7 @@ def test_mutation_fuzzer_finds_no_uncaught_exception(tmp_path: Path) -> None:
     results (strict JSON), never in an exception. tools/fuzz_rulebooks.py runs 50,000 and more."""
     import random
 
-    from gasrules.fuzzing import mutate_rulebook, run_rulebook
+    from gasrules.verification.fuzzing import mutate_rulebook, run_rulebook
 
     text = FUZZ_SEED.read_text(encoding="utf-8")
     data = yaml.safe_load(text)

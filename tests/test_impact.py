@@ -19,11 +19,12 @@ from pathlib import Path
 import pytest
 
 from conftest import portable
-from gasrules import interpret, load_rulebook
-from gasrules.casegen import generate_corpus
-from gasrules.commands import impact as impact_command
-from gasrules.impact import conclusion_label, load_expected, render_html, render_text, replay, ExpectedError
-from gasrules.resources import default_rulebook_path
+from gasrules.evaluation.evaluator import interpret
+from gasrules.rulebook.build import load_rulebook
+from gasrules.verification.casegen import generate_corpus
+from gasrules.cli.commands import impact as impact_command
+from gasrules.governance.impact import conclusion_label, load_expected, render_html, render_text, replay, ExpectedError
+from gasrules.core.resources import default_rulebook_path
 from typer.testing import CliRunner
 
 ROOT = Path(__file__).resolve().parent.parent

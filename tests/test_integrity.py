@@ -18,10 +18,10 @@ import pytest
 import yaml
 
 import gasrules
-from gasrules import registry
-from gasrules.audit import replay_log, verify_log
-from gasrules.runtime import Runtime, RuntimeRefusal
-from gasrules.settings import Settings
+from gasrules.governance import registry
+from gasrules.governance.audit import replay_log, verify_log
+from gasrules.governance.runtime import Runtime, RuntimeRefusal
+from gasrules.governance.settings import Settings
 
 DATA = Path(__file__).resolve().parent / "data"
 MINI = DATA / "mini" / "rulebook.yaml"
@@ -166,9 +166,9 @@ def test_interpret_command_and_service_go_through_the_runtime(tmp_path: Path, mo
     """With no settings at all, both still open the governed Runtime."""
     from typer.testing import CliRunner
 
-    from gasrules import runtime as runtime_module
-    from gasrules.commands import interpret as interpret_command
-    from gasrules.service import ServiceConfig, make_interpreter
+    from gasrules.governance import runtime as runtime_module
+    from gasrules.cli.commands import interpret as interpret_command
+    from gasrules.service.handlers import ServiceConfig, make_interpreter
 
     opened: list[Any] = []
     real = runtime_module.Runtime.from_settings.__func__
@@ -189,7 +189,7 @@ def test_interpret_command_and_service_go_through_the_runtime(tmp_path: Path, mo
 
 
 def test_read_limits_come_from_the_settings_file(tmp_path: Path, mini_data: dict[str, Any]) -> None:
-    from gasrules.settings import load_settings
+    from gasrules.governance.settings import load_settings
 
     path = _write(tmp_path / "book.yaml", mini_data)
     site = tmp_path / "site.yaml"

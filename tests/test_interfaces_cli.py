@@ -15,7 +15,7 @@ import pytest
 from typer.testing import CliRunner
 
 import gasrules
-from gasrules.hl7v2 import cases_from_hl7, iter_messages, parse_message
+from gasrules.integration.hl7v2 import cases_from_hl7, iter_messages, parse_message
 
 ROOT = Path(__file__).parents[1]
 DEMO = ROOT / "tools" / "demo"
@@ -25,7 +25,7 @@ DATA = ROOT / "tests" / "data"
 def run(command: str, *args: str) -> Any:
     import importlib
 
-    app = importlib.import_module(f"gasrules.commands.{command}").app
+    app = importlib.import_module(f"gasrules.cli.commands.{command}").app
     return CliRunner().invoke(app, list(args))
 
 

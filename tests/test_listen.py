@@ -19,9 +19,9 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules.interfaces import InterfaceSettings
-from gasrules.mllp import ListenConfig, Listener
-from gasrules.service import EngineInterpreter
+from gasrules.integration.interfaces import InterfaceSettings
+from gasrules.integration.mllp import ListenConfig, Listener
+from gasrules.service.handlers import EngineInterpreter
 
 DEMO = Path(__file__).parents[1] / "tools" / "demo" / "hl7"
 HOST = "127.0.0.1"
@@ -211,8 +211,8 @@ def test_results_are_forwarded_before_the_ack_and_a_failed_forward_is_retried(
 
 
 def test_listen_settings_are_checked(tmp_path: Path) -> None:
-    from gasrules.interfaces import interfaces_section
-    from gasrules.settings import SettingsError
+    from gasrules.integration.interfaces import interfaces_section
+    from gasrules.governance.settings import SettingsError
 
     good = tmp_path / "site.yaml"
     good.write_text("interfaces:\n  facility: LAB-1\n  listen:\n    port: 0\n    outbox: out\n"

@@ -21,7 +21,7 @@ import yaml
 
 import gasrules
 from gasrules.cli import main
-from gasrules.errors import CODES, Location, Problem, RulebookError
+from gasrules.core.errors import CODES, Location, Problem, RulebookError
 
 HEAD = """\
 format: gasrules/1

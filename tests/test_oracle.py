@@ -1,8 +1,8 @@
-"""The generated function against simpleeval's own evaluator (gasrules.oracle), case by case.
+"""The generated function against simpleeval's own evaluator (gasrules.verification.oracle), case by case.
 
 Both read the same canonical inputs; they must agree on every derived value (exactly: the same
 float operations in the same order), its state, every rule outcome and the set of asserted
-codes. Cases: >= 3,000 seeded synthetic cases (gasrules.casegen, invented demo data) for the
+codes. Cases: >= 3,000 seeded synthetic cases (gasrules.verification.casegen, invented demo data) for the
 shipped rulebook and for its example site overlay, the mini rulebook and its overlay, and
 boundary cases placed exactly on and around every input cut-point.
 """
@@ -17,10 +17,10 @@ import pytest
 
 import gasrules
 from conftest import MINI_OVERLAYS
-from gasrules.casegen import generate_cases
-from gasrules.codegen import OUTCOMES
-from gasrules.evaluator import read_case
-from gasrules.oracle import oracle_evaluate
+from gasrules.verification.casegen import generate_cases
+from gasrules.rulebook.codegen import OUTCOMES
+from gasrules.evaluation.evaluator import read_case
+from gasrules.verification.oracle import oracle_evaluate
 
 N_CASES = 3000
 CHUNKS = 3
@@ -129,7 +129,7 @@ def test_oracle_is_independent_of_the_generated_code() -> None:
     import ast
     import inspect
 
-    import gasrules.oracle as oracle
+    import gasrules.verification.oracle as oracle
 
     tree = ast.parse(inspect.getsource(oracle))
     imported = {a.name for n in ast.walk(tree) if isinstance(n, ast.ImportFrom) for a in n.names}

@@ -19,10 +19,10 @@ import pytest
 
 import gasrules
 from conftest import EXAMPLE_SITE, MINI, MINI_OVERLAYS, ROOT, SHIPPED, portable
-from gasrules.bibliography import load_bibliographies
-from gasrules.compiler import canonical_content, identity_content
-from gasrules.overlay import load_chain, resolve
-from gasrules.reporters import render_result
+from gasrules.rulebook.bibliography import load_bibliographies
+from gasrules.rulebook.compiler import canonical_content, identity_content
+from gasrules.rulebook.overlay import load_chain, resolve
+from gasrules.evaluation.render import render_result
 
 SITE = MINI_OVERLAYS / "site.yaml"
 
@@ -386,8 +386,8 @@ def _overlay_with_use(tmp_path: Path, population: str) -> Path:
 
 
 def test_overlay_intended_use_is_shown_in_diff_and_review_document(tmp_path: Path) -> None:
-    from gasrules.document import build_document, render_markdown
-    from gasrules.rulediff import diff_paths, render_text
+    from gasrules.governance.review_document import build_document, render_markdown
+    from gasrules.governance.diff import diff_paths, render_text
 
     changed = _overlay_with_use(tmp_path, "Children (engine tests only)")
     text = render_text(diff_paths(MINI, changed))

@@ -14,10 +14,10 @@ from pathlib import Path
 import pytest
 
 from conftest import portable
-from gasrules import load_rulebook
-from gasrules.commands import probes as probes_command
-from gasrules.probes import changed_cutpoints, default_bases, feeders, place, run_probes, render_text
-from gasrules.resources import default_rulebook_path
+from gasrules.rulebook.build import load_rulebook
+from gasrules.cli.commands import probes as probes_command
+from gasrules.governance.probes import changed_cutpoints, default_bases, feeders, place, run_probes, render_text
+from gasrules.core.resources import default_rulebook_path
 from typer.testing import CliRunner
 
 SHIPPED = default_rulebook_path()

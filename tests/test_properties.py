@@ -18,7 +18,7 @@ from hypothesis import strategies as st
 
 import gasrules
 from conftest import MINI
-from gasrules import units as U
+from gasrules.core import units as U
 
 # integers a context may carry (strict JSON: larger ones reject the case, tests/test_case_fuzz.py)
 JSON_INTS = st.integers(min_value=-(2 ** 63 - 1), max_value=2 ** 63 - 1)
@@ -149,7 +149,7 @@ def test_case_id_and_context_change_nothing_else(case: dict[str, Any], case_id: 
 @pytest.mark.slow
 def test_interpret_many_with_worker_processes_equals_a_loop() -> None:
     # The compiled rulebook pickles into spawned workers and comes back with the same results, in order.
-    from gasrules.casegen import generate_cases
+    from gasrules.verification.casegen import generate_cases
 
     batch = list(generate_cases(60, seed=9)) + [{"ph": "bad"}, [1, 2], {}]
     looped = [gasrules.interpret(SHIPPED, c) for c in batch]

@@ -19,10 +19,10 @@ from typing import Any
 
 import pytest
 
-from gasrules.audit import (
+from gasrules.governance.audit import (
     Difference, compare_results, render_replay, render_verify, repair_log, replay_log, verify_log,
 )
-from gasrules.records import (
+from gasrules.governance.decision_log import (
     ZERO_SHA, DecisionLog, RecordConfig, RecordError, anchor_path, apply_context_policy,
     canonical_json, entry_hash, mask_value, _compose,
 )

@@ -14,11 +14,11 @@ from pathlib import Path
 import pytest
 
 import gasrules
-from gasrules import registry
+from gasrules.governance import registry
 from gasrules.cli import main
-from gasrules.release import Approver, ReleaseRefused, release
-from gasrules.runtime import Runtime, RuntimeRefusal
-from gasrules.settings import Settings
+from gasrules.governance.release import Approver, ReleaseRefused, release
+from gasrules.governance.runtime import Runtime, RuntimeRefusal
+from gasrules.governance.settings import Settings
 
 DATA = Path(__file__).resolve().parent / "data" / "release"
 LEAD = Approver("B. Reviewer", "clinical lead")
@@ -205,7 +205,7 @@ def _roster(path: Path) -> Path:
 
 def test_roster_refuses_names_not_on_it_and_records_ids(book: Path, tmp_path: Path,
                                                         capsys: pytest.CaptureFixture[str]) -> None:
-    from gasrules.people import load_roster
+    from gasrules.governance.people import load_roster
 
     roster = load_roster(_roster(tmp_path / "people.yaml"))
     with pytest.raises(ReleaseRefused) as exc:
@@ -243,7 +243,7 @@ def test_roster_setting_is_enforced_by_the_command(book: Path, tmp_path: Path, m
 
 def test_coverage_reports_declared_unreachable_apart(book: Path, tmp_path: Path,
                                                     capsys: pytest.CaptureFixture[str]) -> None:
-    from gasrules.document import build_document, render_markdown
+    from gasrules.governance.review_document import build_document, render_markdown
 
     # drop the case that makes ph.alkalaemia fire and declare that outcome unreachable instead
     cases = book.parent / "cases" / "ph.yaml"

@@ -13,7 +13,7 @@ from pathlib import Path
 import pytest
 
 from gasrules.cli import main
-from gasrules.tabular import TableError, analytes_of, open_table, read_back
+from gasrules.tables.readers import TableError, analytes_of, open_table, read_back
 
 
 def _batch(src: Path, out: Path, *extra: str) -> int:
@@ -117,7 +117,7 @@ def test_a_column_that_looks_like_an_input_is_an_error(header: str, likely: str,
 
 
 def test_a_look_alike_column_mapped_or_declared_passthrough_is_accepted(tmp_path: Path, shipped_rb: object) -> None:
-    from gasrules.tabular import mapping_from_data
+    from gasrules.tables.readers import mapping_from_data
 
     src = tmp_path / "in.csv"
     src.write_text("case_id,ph,paco2,area\nA1,7.40,40,x\n", encoding="utf-8")
@@ -132,7 +132,7 @@ def test_a_look_alike_column_mapped_or_declared_passthrough_is_accepted(tmp_path
 
 _POOL_SCRIPT = """
 import os, sys, time
-from gasrules.pool import OrderedPool
+from gasrules.tables.pool import OrderedPool
 
 def slow(payload, chunk):
     with open(os.path.join(payload, f"w{os.getpid()}"), "w") as fh:

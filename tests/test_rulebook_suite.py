@@ -13,7 +13,7 @@ from pathlib import Path
 import pytest
 
 import gasrules
-from gasrules import suite as S
+from gasrules.verification import suite as S
 
 ROOT = Path(__file__).resolve().parent.parent
 ADULT = ROOT / "rulebooks" / "adult" / "rulebook.yaml"

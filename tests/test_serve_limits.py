@@ -18,9 +18,9 @@ from typing import Any
 
 import pytest
 
-from gasrules.asgi import JsonLog, asgi_app
-from gasrules.asgiserver import make_server
-from gasrules.service import App, EngineInterpreter, ServiceConfig, build_app
+from gasrules.service.asgi import JsonLog, asgi_app
+from gasrules.service.server import make_server
+from gasrules.service.handlers import App, EngineInterpreter, ServiceConfig, build_app
 from test_service import DEMO_CASE, Server
 
 HOST = "127.0.0.1"
@@ -374,8 +374,8 @@ def test_cors_is_off_by_default_and_allows_configured_origins(tight: Live,
 
 # ============================================================================ settings
 def test_the_serve_section_of_a_settings_file_is_checked(tmp_path: Path) -> None:
-    from gasrules.servesettings import serve_section
-    from gasrules.settings import SettingsError, load_settings
+    from gasrules.service.settings import serve_section
+    from gasrules.governance.settings import SettingsError, load_settings
 
     good = tmp_path / "site.yaml"
     good.write_text("serve:\n  port: 0\n  max_body: 2048\n  cors_origins: [https://a.example]\n"
@@ -396,8 +396,8 @@ def test_the_serve_section_of_a_settings_file_is_checked(tmp_path: Path) -> None
 
 
 def test_the_shipped_example_settings_file_is_valid() -> None:
-    from gasrules.servesettings import serve_section
-    from gasrules.settings import load_settings
+    from gasrules.service.settings import serve_section
+    from gasrules.governance.settings import load_settings
 
     example = Path(__file__).parents[1] / "docs" / "settings.example.yaml"
     assert serve_section(example)["port"] == 8080

@@ -24,9 +24,9 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules.asgi import asgi_app
-from gasrules.asgiserver import make_server
-from gasrules.service import App, EngineInterpreter, Request, ServiceConfig, build_app
+from gasrules.service.asgi import asgi_app
+from gasrules.service.server import make_server
+from gasrules.service.handlers import App, EngineInterpreter, Request, ServiceConfig, build_app
 
 ROOT = Path(__file__).parents[1]
 DEMO_CASE = json.loads((ROOT / "tools" / "demo" / "case.json").read_text())
@@ -158,7 +158,7 @@ def test_fhir_bundle_in_gives_a_valid_fhir_bundle_out(server: Server, rulebook: 
     derived = {r["reference"] for r in obs["derivedFrom"]}
     assert derived <= inputs and len(derived) >= 3
     assert prov["policy"][0].endswith(f"?sha256={rulebook.sha256}")
-    from gasrules.fhir import case_from_fhir
+    from gasrules.integration.fhir import case_from_fhir
     expected = gasrules.interpret(rulebook, case_from_fhir(FHIR_PANEL, rulebook.inputs).case)
     assert obs["valueString"] == expected["headline"]
 
@@ -214,11 +214,11 @@ def test_batch_past_its_deadline_returns_every_row_and_logs_exactly_those(rulebo
                                                                          monkeypatch: pytest.MonkeyPatch) -> None:
     """N in, N out: the rows not reached before the deadline come back rejected, and the
     decision log holds exactly the results returned."""
-    from gasrules import service as service_module
-    from gasrules.audit import verify_log
-    from gasrules.runtime import Runtime
-    from gasrules.service import RuntimeInterpreter
-    from gasrules.settings import Settings
+    from gasrules.service import handlers as service_module
+    from gasrules.governance.audit import verify_log
+    from gasrules.governance.runtime import Runtime
+    from gasrules.service.handlers import RuntimeInterpreter
+    from gasrules.governance.settings import Settings
 
     import time as real_time
     import types
@@ -442,14 +442,14 @@ def test_every_status_the_service_answers_is_documented(server: Server) -> None:
 # ============================================================================ site settings
 def _approve(release_dir: Path, rb: Any) -> None:
     """A minimal intact release manifest (the release gate is tested in test_release.py)."""
-    from gasrules import registry
+    from gasrules.governance import registry
     registry.write_manifest(release_dir, {"format": registry.MANIFEST_FORMAT,
                                           "rulebook": rb.identity, "date": "2026-01-05T10:00:00Z"})
 
 
 def test_strict_mode_and_decision_records_go_through_the_runtime(tmp_path: Path,
                                                                  rulebook: Any) -> None:
-    from gasrules.audit import verify_log
+    from gasrules.governance.audit import verify_log
 
     releases, log = tmp_path / "releases", tmp_path / "decisions.jsonl"
     _approve(releases, rulebook)
@@ -478,7 +478,7 @@ def test_strict_mode_and_decision_records_go_through_the_runtime(tmp_path: Path,
 
 def test_shadow_mode_answers_with_the_active_rulebook_only(tmp_path: Path,
                                                             rulebook: Any) -> None:
-    from gasrules.resources import default_rulebook_path
+    from gasrules.core.resources import default_rulebook_path
 
     settings = tmp_path / "site.yaml"
     settings.write_text(f"shadow:\n  rulebook: {default_rulebook_path()}\n"
@@ -502,7 +502,7 @@ def test_shadow_mode_answers_with_the_active_rulebook_only(tmp_path: Path,
 def test_strict_mode_refuses_to_serve_an_unapproved_rulebook(tmp_path: Path) -> None:
     from typer.testing import CliRunner
 
-    from gasrules.commands.serve import app
+    from gasrules.cli.commands.serve import app
 
     (tmp_path / "releases").mkdir()
     result = CliRunner().invoke(app, ["--strict", "--port", "0", "--feedback-log",
@@ -537,7 +537,7 @@ def test_gasrules_serve_starts_answers_and_stops_on_sigterm(tmp_path: Path) -> N
 def test_gasrules_serve_with_a_broken_rulebook_exits_5(tmp_path: Path) -> None:
     from typer.testing import CliRunner
 
-    from gasrules.commands.serve import app
+    from gasrules.cli.commands.serve import app
 
     bad = tmp_path / "rb.yaml"
     bad.write_text("id: [unclosed\n")
@@ -549,7 +549,7 @@ def test_gasrules_serve_with_a_broken_rulebook_exits_5(tmp_path: Path) -> None:
 def test_gasrules_serve_with_a_bad_key_file_exits_2(tmp_path: Path) -> None:
     from typer.testing import CliRunner
 
-    from gasrules.commands.serve import app
+    from gasrules.cli.commands.serve import app
 
     keys = tmp_path / "keys.json"
     keys.write_text(json.dumps({"algorithms": ["HS256"], "issuers": {}}))
@@ -560,10 +560,10 @@ def test_gasrules_serve_with_a_bad_key_file_exits_2(tmp_path: Path) -> None:
 
 def test_a_request_that_ends_in_an_error_writes_no_decision_record(rulebook: Any, tmp_path: Path,
                                                                    monkeypatch: pytest.MonkeyPatch) -> None:
-    from gasrules.audit import verify_log
-    from gasrules.runtime import Runtime
-    from gasrules.service import RuntimeInterpreter
-    from gasrules.settings import Settings
+    from gasrules.governance.audit import verify_log
+    from gasrules.governance.runtime import Runtime
+    from gasrules.service.handlers import RuntimeInterpreter
+    from gasrules.governance.settings import Settings
 
     log = tmp_path / "d.jsonl"
     app = App(ServiceConfig(feedback_log=str(tmp_path / "f.jsonl")),

@@ -16,10 +16,10 @@ import pytest
 
 import gasrules
 from gasrules.cli import main
-from gasrules.release import Approver, release
-from gasrules.runtime import Runtime
-from gasrules.settings import Settings
-from gasrules.shadow import render_summary, summarize
+from gasrules.governance.release import Approver, release
+from gasrules.governance.runtime import Runtime
+from gasrules.governance.settings import Settings
+from gasrules.governance.shadow import render_summary, summarize
 
 DATA = Path(__file__).resolve().parent / "data" / "release"
 CASES = [{"case_id": "low", "ph": 7.20}, {"case_id": "edge", "ph": 7.32, "context": {"mrn": "M77", "ward": "ED"}},

@@ -16,10 +16,10 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules import registry
-from gasrules.audit import verify_log
-from gasrules.runtime import Runtime, RuntimeRefusal
-from gasrules.settings import Settings, SettingsError, load_settings
+from gasrules.governance import registry
+from gasrules.governance.audit import verify_log
+from gasrules.governance.runtime import Runtime, RuntimeRefusal
+from gasrules.governance.settings import Settings, SettingsError, load_settings
 
 ADULT = Path(__file__).resolve().parents[1] / "rulebooks" / "adult" / "rulebook.yaml"
 SALT = "strict-test-salt-0123456789"

@@ -15,7 +15,7 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules.tabular import (
+from gasrules.tables.readers import (
     Column, TableError, analytes_of, interpret_row, load_mapping, open_table, open_writer,
     read_back, temp_path_for,
 )

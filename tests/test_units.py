@@ -13,8 +13,8 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules.evaluator import format_quantity, read_case
-from gasrules.units import UCUM_CODES, label, normalise
+from gasrules.evaluation.evaluator import format_quantity, read_case
+from gasrules.core.units import UCUM_CODES, label, normalise
 
 # 1 mmHg = 133.322387415 Pa (conventional millimetre of mercury: BIPM SI Brochure, ISO 80000-4)
 PA_PER_MMHG = 133.322387415

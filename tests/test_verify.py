@@ -1,4 +1,4 @@
-"""gasrules.suite and `gasrules verify`: loading case files, comparing, coverage, probes, the CLI.
+"""gasrules.verification.suite and `gasrules verify`: loading case files, comparing, coverage, probes, the CLI.
 
 Rulebook numbers used below are the shipped adult defaults: ph_low 7.35 (common practice),
 ag_high 12 (Klaestrup et al., Clin Chem Lab Med 2011; Kraut & Madias 2007), Winter's formula
@@ -15,8 +15,8 @@ import pytest
 from typer.testing import CliRunner
 
 import gasrules
-from gasrules import suite as S
-from gasrules.commands import verify as V
+from gasrules.verification import suite as S
+from gasrules.cli.commands import verify as V
 
 ROOT = Path(__file__).resolve().parent.parent
 ADULT = ROOT / "rulebooks" / "adult" / "rulebook.yaml"
@@ -103,7 +103,7 @@ def test_passing_and_failing_expectations(tmp_path, rb):
 def test_error_code_expectation(rb):
     case = S.Case(id="x", note="pH as text", evidence={"tag": "INV", "note": "malformed input"},
                   input={"ph": "seven"}, want=None, want_error_code="input.not_a_number",
-                  location=gasrules.errors.Location(), origin="")
+                  location=gasrules.core.errors.Location(), origin="")
     assert S.compare(rb, case, gasrules.interpret(rb, case.input)) == []
 
 

@@ -116,7 +116,7 @@ def _burn(_payload: object, chunk: list[int]) -> int:
 def control(workers: int, items: int = 400) -> tuple[float, float]:
     """Pure CPU work through the same pool: (wall seconds, cores busy). On an idle machine 2
     workers keep about 2 cores busy; less means the machine was shared during the run."""
-    from gasrules.pool import OrderedPool, chunked
+    from gasrules.tables.pool import OrderedPool, chunked
 
     before_c = resource.getrusage(resource.RUSAGE_CHILDREN)
     before_s = resource.getrusage(resource.RUSAGE_SELF)

@@ -43,8 +43,8 @@ def main() -> None:
     ap.add_argument("--repeat", type=int, default=1)
     args = ap.parse_args()
     import gasrules
-    from gasrules import cohort_table as T
-    from gasrules import cohorts as C
+    from gasrules.verification import cohort_table as T
+    from gasrules.verification import cohorts as C
 
     rb = gasrules.load_rulebook(args.rulebook)
     plan = C.load_plan(args.rulebook)

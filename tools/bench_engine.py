@@ -3,11 +3,11 @@
 Usage: python tools/bench_engine.py [--cases N] [--rounds R] [--cold-runs K] [--profile]
 
 1. Interpretation on the shipped rulebook, full trace and no trace: microseconds per case and
-   cases per second over N (>= 100,000) seeded generated cases (gasrules.casegen).
+   cases per second over N (>= 100,000) seeded generated cases (gasrules.verification.casegen).
 2. The engine's own overhead: the fixed benchmark rulebook (tools/bench/rulebook.yaml) against
    its hand-written Python twin (tools/bench/twin.py), timed in alternating blocks of cases so
    that both see the same machine noise; ratio engine / twin.
-3. For scale: simpleeval's tree walker per case (gasrules.oracle.oracle_evaluate) against the
+3. For scale: simpleeval's tree walker per case (gasrules.verification.oracle.oracle_evaluate) against the
    generated function, values and rule outcomes only, on a small sample.
 4. Where the time goes on the shipped rulebook: reading the case, the generated function
    (with its trace), assembling the result.
@@ -40,9 +40,9 @@ from pathlib import Path
 from typing import Any, Callable
 
 import gasrules
-from gasrules.casegen import generate_cases
-from gasrules.evaluator import read_case
-from gasrules.oracle import oracle_evaluate
+from gasrules.verification.casegen import generate_cases
+from gasrules.evaluation.evaluator import read_case
+from gasrules.verification.oracle import oracle_evaluate
 
 ROOT = Path(__file__).resolve().parents[1]
 BENCH_RULEBOOK = ROOT / "tools" / "bench" / "rulebook.yaml"

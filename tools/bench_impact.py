@@ -41,7 +41,7 @@ def prepare(directory: Path, n: int) -> tuple[Path, Path]:
     if not corpus.exists():
         subprocess.run([sys.executable, str(ROOT / "tools" / "make_demo_data.py"), "corpus", "--n", str(n),
                         "--seed", "7", "--format", "csv", "--out", str(corpus)], check=True)
-    from gasrules.resources import default_rulebook_path
+    from gasrules.core.resources import default_rulebook_path
 
     text = default_rulebook_path().read_text(encoding="utf-8")
     for old, new in EDITS:
@@ -58,7 +58,7 @@ def prepare(directory: Path, n: int) -> tuple[Path, Path]:
 def one_run(corpus: Path, tuned: Path, workers: int) -> dict[str, float]:
     """Runs in a child process: one replay, its rate and this process's peak memory."""
     import gasrules
-    from gasrules.impact import replay
+    from gasrules.governance.impact import replay
 
     old, new = gasrules.load_rulebook(), gasrules.load_rulebook(tuned)
     t0, cpu0 = time.perf_counter(), _cpu()

@@ -12,8 +12,8 @@ import tempfile
 import time
 from pathlib import Path
 
-from gasrules.audit import replay_log, verify_log
-from gasrules.records import DecisionLog, RecordConfig
+from gasrules.governance.audit import replay_log, verify_log
+from gasrules.governance.decision_log import DecisionLog, RecordConfig
 
 RULEBOOK = {"id": "bench", "version": "1.0.0", "sha256": "c3" * 32}
 

@@ -3,7 +3,7 @@ plain gasrules.interpret, Runtime with nothing on, with a decision log (fsync of
 the directory given), with a shadow candidate (the example-site overlay), and strict admission.
 
 Usage: python tools/bench_runtime.py [N] [DIR]
-N invented cases from gasrules.casegen (demo data; default 2000); DIR where the logs go (default:
+N invented cases from gasrules.verification.casegen (demo data; default 2000); DIR where the logs go (default:
 a temporary directory here; fsync cost depends on the disk). Prints cases/s and the ratio to
 plain interpret, measured in the same process one after the other (noisy machine: repeat).
 """
@@ -17,10 +17,10 @@ from pathlib import Path
 from typing import Any, Callable
 
 import gasrules
-from gasrules.casegen import generate_cases
-from gasrules.release import Approver, SuiteSummary, release
-from gasrules.runtime import Runtime
-from gasrules.settings import Settings
+from gasrules.verification.casegen import generate_cases
+from gasrules.governance.release import Approver, SuiteSummary, release
+from gasrules.governance.runtime import Runtime
+from gasrules.governance.settings import Settings
 
 ROOT = Path(__file__).resolve().parents[1]
 ADULT = ROOT / "rulebooks" / "adult" / "rulebook.yaml"

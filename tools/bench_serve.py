@@ -127,7 +127,7 @@ def jwt_verify_cost(n: int = 300) -> list[str]:
     from cryptography.hazmat.primitives.asymmetric import ec, rsa
 
     sys.path.insert(0, str(ROOT / "engine"))
-    from gasrules.cdsauth import Issuer, AuthConfig, TokenVerifier
+    from gasrules.service.cdsauth import Issuer, AuthConfig, TokenVerifier
 
     out = []
     for alg, key in (("ES384", ec.generate_private_key(ec.SECP384R1())),

@@ -19,8 +19,8 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "engine"))
 
 import gasrules  # noqa: E402
-from gasrules.fuzzing import random_case  # noqa: E402
-from gasrules.schema import validate_instance  # noqa: E402
+from gasrules.verification.fuzzing import random_case  # noqa: E402
+from gasrules.rulebook.schema import validate_instance  # noqa: E402
 
 
 def main() -> int:

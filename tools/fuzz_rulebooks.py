@@ -18,7 +18,7 @@ import yaml
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "engine"))
 
-from gasrules.fuzzing import mutate_rulebook, run_rulebook  # noqa: E402
+from gasrules.verification.fuzzing import mutate_rulebook, run_rulebook  # noqa: E402
 
 SEEDS = [ROOT / "tests" / "data" / "fuzz" / "rulebook.yaml", ROOT / "tests" / "data" / "release" / "rulebook.yaml",
          ROOT / "tests" / "data" / "mini" / "rulebook.yaml"]

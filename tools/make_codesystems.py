@@ -19,7 +19,7 @@ sys.path.insert(0, str(ROOT / "engine"))
 
 def main(argv: list[str] | None = None) -> int:
     import gasrules
-    from gasrules.terminology import DEFAULT_BASE, codesystem_bundle
+    from gasrules.integration.terminology import DEFAULT_BASE, codesystem_bundle
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--base", default=DEFAULT_BASE, help="canonical base URL")

@@ -1,4 +1,4 @@
-"""Write invented demo data from the seeded case generator (engine/gasrules/casegen.py).
+"""Write invented demo data from the seeded case generator (engine/gasrules/verification/casegen.py).
 
     python tools/make_demo_data.py corpus --n 100000 --seed 7 --format csv --out /tmp/corpus.csv
     python tools/make_demo_data.py corpus --n 1000 --format jsonl --out -        # to stdout
@@ -37,7 +37,7 @@ from typing import Any, Callable, Iterator, TextIO
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "engine"))
 
-from gasrules.casegen import (  # noqa: E402  (path set just above for a source checkout)
+from gasrules.verification.casegen import (  # noqa: E402  (path set just above for a source checkout)
     HAGMA, MALK, NAGMA, Scenario, generate_corpus, generate_labelled, to_canonical,
 )
 
@@ -252,8 +252,8 @@ def _demo_run(args: argparse.Namespace) -> int:
 # ----------------------------------------------------------------------------- FHIR and HL7 v2
 # The demo cases above written as the messages a hospital system sends: a FHIR R4 Bundle of
 # Observations and an HL7 v2.5.1 ORU^R01. Codes come from the shipped rulebook's input catalogue
-# (InputSpec.loinc) and the adapters' specimen tables (gasrules.codes); every file is read back
-# through gasrules.fhir / gasrules.hl7v2 before it is written and must give the same inputs.
+# (InputSpec.loinc) and the adapters' specimen tables (gasrules.integration.standard_codes); every file is read back
+# through gasrules.integration.fhir / gasrules.integration.hl7v2 before it is written and must give the same inputs.
 # Inputs without a LOINC code in the catalogue (chronicity, pregnant, ventilator settings) have
 # no place in these messages and are left out (listed in generated/README.txt).
 UCUM = "http://unitsofmeasure.org"
@@ -270,7 +270,7 @@ def _catalog() -> Any:
 
 
 def _loinc_for(name: str, spec: Any, sample: str | None) -> str | None:
-    from gasrules.codes import SAMPLE_DEFINING_INPUTS, SPECIMEN_BY_LOINC
+    from gasrules.integration.standard_codes import SAMPLE_DEFINING_INPUTS, SPECIMEN_BY_LOINC
 
     codes = list(spec.loinc)
     if not codes:
@@ -309,7 +309,7 @@ def _uuid(case_id: str, n: int) -> str:
 def fhir_bundle(case: dict[str, Any], catalog: Any) -> dict[str, Any]:
     """A FHIR R4 Bundle (collection): Patient, Specimen, a gas panel Observation with hasMember
     and one Observation per value (LOINC code, UCUM valueQuantity)."""
-    from gasrules.codes import PANEL_SPECIMEN
+    from gasrules.integration.standard_codes import PANEL_SPECIMEN
 
     cid, ctx = case["case_id"], case["context"]
     items, _ = message_items(case, catalog)
@@ -345,8 +345,8 @@ def fhir_bundle(case: dict[str, Any], catalog: Any) -> dict[str, Any]:
 
 def oru_message(case: dict[str, Any], catalog: Any) -> str:
     """An HL7 v2.5.1 ORU^R01 (segments separated by CR): MSH, PID, OBR, SPM and one OBX per value."""
-    from gasrules.codes import PANEL_SPECIMEN
-    from gasrules.hl7v2 import escape
+    from gasrules.integration.standard_codes import PANEL_SPECIMEN
+    from gasrules.integration.hl7v2 import escape
 
     cid, ctx = case["case_id"], case["context"]
     items, _ = message_items(case, catalog)
@@ -367,7 +367,7 @@ def oru_message(case: dict[str, Any], catalog: Any) -> str:
 
 
 def _same_inputs(rb: Any, want: dict[str, Any], got: dict[str, Any], where: str) -> None:
-    from gasrules.evaluator import read_case
+    from gasrules.evaluation.evaluator import read_case
 
     a, errors_a, _, _ = read_case(rb, want)
     b, errors_b, _, _ = read_case(rb, got)
@@ -404,8 +404,8 @@ def _messages_arguments(p: argparse.ArgumentParser) -> None:
 
 def _messages_run(args: argparse.Namespace) -> int:
     import gasrules
-    from gasrules.fhir import case_from_fhir
-    from gasrules.hl7v2 import case_from_hl7
+    from gasrules.integration.fhir import case_from_fhir
+    from gasrules.integration.hl7v2 import case_from_hl7
 
     rb = gasrules.load_rulebook()
     catalog = rb.inputs
@@ -430,8 +430,8 @@ def _messages_run(args: argparse.Namespace) -> int:
     (out / "hl7" / "all.hl7").write_bytes("".join(stream).encode("utf-8"))
     (out / "README.txt").write_text(
         "Invented demo messages (no real patient), written by tools/make_demo_data.py messages from\n"
-        "the same seeded generator as the corpus (gasrules.casegen) and the quick-start cases.\n"
-        "Each file was read back through gasrules.fhir / gasrules.hl7v2 and gave the same inputs.\n\n"
+        "the same seeded generator as the corpus (gasrules.verification.casegen) and the quick-start cases.\n"
+        "Each file was read back through gasrules.integration.fhir / gasrules.integration.hl7v2 and gave the same inputs.\n\n"
         + "\n".join(notes) + "\n", encoding="utf-8")
     print(f"wrote {len(notes)} FHIR bundles and {len(notes)} HL7 v2 messages (+ all.hl7) under {out}",
           file=sys.stderr)

@@ -16,7 +16,7 @@ sys.path.insert(0, str(ROOT / "engine"))
 
 
 def main(argv: list[str] | None = None) -> int:
-    from gasrules.hl7wire import MllpDecoder, frame, split_raw
+    from gasrules.integration.hl7wire import MllpDecoder, frame, split_raw
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("file", type=Path)

@@ -23,8 +23,8 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Any
 from urllib.parse import parse_qs, urlsplit
 
-from gasrules import __version__
-from gasrules.service import App, Request, Response, error_body
+from gasrules.core.version import __version__
+from gasrules.service.handlers import App, Request, Response, error_body
 
 __all__ = ["GasrulesServer", "make_server"]
 
@@ -187,7 +187,7 @@ def make_server(app: App, host: str | None = None, port: int | None = None) -> G
 def main(argv: list[str] | None = None) -> int:
     import argparse
 
-    from gasrules.service import ServiceConfig, build_app
+    from gasrules.service.handlers import ServiceConfig, build_app
 
     ap = argparse.ArgumentParser(description="the former http.server service, for benchmarks")
     ap.add_argument("--port", type=int, default=0)

@@ -1,6 +1,6 @@
 """A plain hand-written Python twin of tools/bench/rulebook.yaml.
 
-It reads a case with the engine's own reader (gasrules.evaluator.read_case, so both sides see
+It reads a case with the engine's own reader (gasrules.evaluation.evaluator.read_case, so both sides see
 the same canonical inputs), then does by hand what the engine does from the rulebook: derived
 values, the 63 rules in order, the trace events, the finding texts, not_assessed, status and
 headline. It must build exactly the result dict gasrules.interpret() builds for that rulebook,
@@ -20,7 +20,7 @@ import math
 import re
 from typing import Any, Mapping
 
-from gasrules.evaluator import read_case
+from gasrules.evaluation.evaluator import read_case
 
 _floor = math.floor
 _log10 = math.log10
