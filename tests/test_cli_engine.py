@@ -387,7 +387,7 @@ def test_cache_key_covers_the_whole_package_source(tmp_path: Path) -> None:
 
     first = key()
     assert first == key() and len(first) == 64
-    loader = copy / "loader.py"
+    loader = copy / "rulebook" / "loader.py"
     loader.write_text(loader.read_text(encoding="utf-8") + "\n# an edit\n", encoding="utf-8")
     assert key() != first
 
