@@ -25,7 +25,7 @@ MINI = Path(__file__).resolve().parent / "data" / "mini" / "rulebook.yaml"
 MINI_OVERLAYS = MINI.parent / "overlays"
 
 
-_CACHE_DIRS: list[tuple[str | None, str]] = []   # (value before the session, our temporary directory)
+_CACHE_DIRS: list[tuple[str | None, str]] = []  # (value before the session, our temporary directory)
 
 
 def portable(text: str, origin: Path) -> str:
@@ -117,6 +117,8 @@ def tuned_release_rulebook(tmp_path: Path) -> Path:
     shutil.copytree(Path(__file__).resolve().parent / "data" / "release", target)
     path = target / "rulebook.yaml"
     text = path.read_text(encoding="utf-8")
-    path.write_text(text.replace("    value: 7.35\n", "    value: 7.30\n").replace("version: 1.0.0", "version: 1.0.1"),
-                    encoding="utf-8")
+    path.write_text(
+        text.replace("    value: 7.35\n", "    value: 7.30\n").replace("version: 1.0.0", "version: 1.0.1"),
+        encoding="utf-8",
+    )
     return path

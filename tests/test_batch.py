@@ -24,8 +24,8 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules.integration.batch import BatchOptions, Progress, run_batch
 from gasrules.cli import main
+from gasrules.integration.batch import BatchOptions, Progress, run_batch
 from gasrules.tables.pool import OrderedPool, PoolError, chunked
 from gasrules.tables.readers import read_back
 
@@ -69,6 +69,7 @@ def corpus(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
 # ----------------------------------------------------------------------------- the pool
 # Worker functions are module-level so spawned workers can import them by name.
 
+
 class Counted:
     """A payload that counts how often it was unpickled in this process."""
 
@@ -105,7 +106,7 @@ def test_pool_keeps_order_and_sends_the_payload_once_per_worker() -> None:
         out = [x for chunk in pool.map(chunked(range(40), 2)) for x in chunk]
     assert [v for v, _, _ in out] == [3 * x for x in range(40)]
     assert len({pid for _, pid, _ in out}) == 2 and os.getpid() not in {pid for _, pid, _ in out}
-    assert {n for _, _, n in out} == {1}                # unpickled once in each worker, never per chunk
+    assert {n for _, _, n in out} == {1}  # unpickled once in each worker, never per chunk
 
 
 def test_pool_same_results_in_process_and_on_workers() -> None:
@@ -126,7 +127,7 @@ def test_pool_reads_input_lazily_within_its_window() -> None:
     with OrderedPool(_scale, Counted(1), workers=2, window=3) as pool:
         results = pool.map(source())
         next(results)
-        assert len(pulled) <= 4                       # window + the one being taken
+        assert len(pulled) <= 4  # window + the one being taken
         results.close()
 
 
@@ -147,6 +148,7 @@ def test_pool_worker_death_is_a_pool_error() -> None:
 
 # ----------------------------------------------------------------------------- batch
 
+
 def _data_rows(path: Path) -> int:
     with path.open(encoding="utf-8", newline="") as f:
         if path.suffix == ".csv":
@@ -155,8 +157,9 @@ def _data_rows(path: Path) -> int:
 
 
 @pytest.mark.parametrize("fmt_in", ["csv", "jsonl"])
-def test_n_rows_in_n_rows_out_identical_on_one_and_two_workers(rb: Any, corpus: dict[str, Path],
-                                                               tmp_path: Path, fmt_in: str) -> None:
+def test_n_rows_in_n_rows_out_identical_on_one_and_two_workers(
+    rb: Any, corpus: dict[str, Path], tmp_path: Path, fmt_in: str
+) -> None:
     src = corpus[fmt_in]
     outs = {}
     for w in (1, 2):
@@ -169,7 +172,7 @@ def test_n_rows_in_n_rows_out_identical_on_one_and_two_workers(rb: Any, corpus: 
     assert [r["case_id"] for r in back] == [f"D{i:06d}" for i in range(1, 1201)]
     counted = Counter(r["status"] for r in back)
     assert dict(counted) == {k: v for k, v in summary.by_status.items() if v}
-    assert counted["rejected"] >= 10                      # the corpus' malformed rows, kept inline
+    assert counted["rejected"] >= 10  # the corpus' malformed rows, kept inline
     assert all(r["errors"] for r in back if r["status"] == "rejected")
 
 
@@ -184,7 +187,10 @@ def test_results_are_the_engines_own(rb: Any, corpus: dict[str, Path], tmp_path:
         want = gasrules.interpret(rb, case, trace=True)
         assert row["result"] == json.loads(json.dumps(want))
         assert (row["status"], row["disorders"], row["findings"]) == (
-            want["status"], want["disorders"], [f["code"] for f in want["findings"]])
+            want["status"],
+            want["disorders"],
+            [f["code"] for f in want["findings"]],
+        )
         assert row["context"] == case["context"]
         assert row["anion_gap"] == want["values"].get("anion_gap")
 
@@ -196,7 +202,11 @@ def test_parquet_out_matches_csv_out(rb: Any, corpus: dict[str, Path], tmp_path:
     assert len(as_pq) == len(as_csv)
     for a, b in zip(as_csv, as_pq):
         assert (a["case_id"], a["ward"], a["status"], a["disorders"]) == (
-            b["case_id"], b["ward"], b["status"], ";".join(b["disorders"]))
+            b["case_id"],
+            b["ward"],
+            b["status"],
+            ";".join(b["disorders"]),
+        )
         assert (float(a["anion_gap"]) if a["anion_gap"] else None) == b["anion_gap"]
 
 
@@ -206,8 +216,17 @@ def test_passthrough_clash_renamed_and_values_option(rb: Any, tmp_path: Path) ->
     out = tmp_path / "o.csv"
     run_batch(rb, src, out, BatchOptions(values=("anion_gap",)), stderr=io.StringIO())
     header = out.read_text(encoding="utf-8").splitlines()[0].split(",")
-    assert header == ["status_input", "case_id", "status", "headline", "disorders", "qualifiers",
-                      "anion_gap", "findings", "errors"]
+    assert header == [
+        "status_input",
+        "case_id",
+        "status",
+        "headline",
+        "disorders",
+        "qualifiers",
+        "anion_gap",
+        "findings",
+        "errors",
+    ]
     [row] = read_back(out)
     want = gasrules.interpret(rb, {"case_id": "X1", "ph": 7.4, "pco2": 40, "hco3": 24, "na": 140, "cl": 104})
     assert row["status_input"] == "archived" and float(row["anion_gap"]) == want["values"]["anion_gap"]
@@ -230,13 +249,24 @@ def test_progress_bar_only_on_a_terminal(rb: Any, corpus: dict[str, Path], tmp_p
 
 # ----------------------------------------------------------------------------- the command
 
-def test_cli_summary_and_usage_errors(corpus: dict[str, Path], tmp_path: Path,
-                                      capsys: pytest.CaptureFixture[str]) -> None:
+
+def test_cli_summary_and_usage_errors(
+    corpus: dict[str, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     summary = tmp_path / "s.json"
-    code = main(["batch", str(corpus["csv"]), str(tmp_path / "o.parquet"), "--workers", "2",
-                 "--summary-json", str(summary)])
+    code = main(
+        [
+            "batch",
+            str(corpus["csv"]),
+            str(tmp_path / "o.parquet"),
+            "--workers",
+            "2",
+            "--summary-json",
+            str(summary),
+        ]
+    )
     err = capsys.readouterr().err
-    assert code == 4, err                       # some rows were rejected (they are in the output)
+    assert code == 4, err  # some rows were rejected (they are in the output)
     assert main(["batch", str(corpus["csv"]), str(tmp_path / "o2.parquet"), "--allow-rejected"]) == 0
     capsys.readouterr()
     data = json.loads(summary.read_text())
@@ -254,41 +284,62 @@ def test_cli_summary_and_usage_errors(corpus: dict[str, Path], tmp_path: Path,
 def test_cli_to_stdout(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     src = tmp_path / "g.csv"
     src.write_text("case_id,ph,pco2,hco3\nS1,7.40,40,24\nS2,7.4O,40,24\n", encoding="utf-8")
-    assert main(["batch", str(src)]) == 4       # S2 rejected
+    assert main(["batch", str(src)]) == 4  # S2 rejected
     out = capsys.readouterr().out
     rows = list(csv.DictReader(io.StringIO(out)))
     assert [(r["case_id"], r["status"] == "rejected") for r in rows] == [("S1", False), ("S2", True)]
 
 
-def test_strict_mode_refuses_an_unapproved_rulebook(corpus: dict[str, Path], tmp_path: Path,
-                                                    capsys: pytest.CaptureFixture[str]) -> None:
+def test_strict_mode_refuses_an_unapproved_rulebook(
+    corpus: dict[str, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     code = main(["batch", str(corpus["csv"]), str(tmp_path / "o.csv"), "--strict"])
     assert code == 6
     assert "strict" in capsys.readouterr().err and not (tmp_path / "o.csv").exists()
 
 
-def test_decision_records_one_entry_per_row_and_shadow(corpus: dict[str, Path], tmp_path: Path,
-                                                       capsys: pytest.CaptureFixture[str]) -> None:
+def test_decision_records_one_entry_per_row_and_shadow(
+    corpus: dict[str, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     from gasrules.governance.audit import verify_log
 
     src = tmp_path / "first.csv"
     src.write_text("\n".join(corpus["csv"].read_text(encoding="utf-8").splitlines()[:301]) + "\n")
     settings = tmp_path / "settings.yaml"
     log = tmp_path / "decisions.jsonl"
-    settings.write_text(f"decision_log:\n  path: {log}\n  fsync: false\n"
-                        f"shadow:\n  rulebook: {ROOT / 'rulebooks' / 'example-site' / 'rulebook.yaml'}\n"
-                        f"  log: {tmp_path / 'shadow.jsonl'}\n", encoding="utf-8")
-    assert main(["batch", str(src), str(tmp_path / "o.csv"), "--workers", "2",
-                 "--settings", str(settings), "--allow-rejected"]) == 0
+    settings.write_text(
+        f"decision_log:\n  path: {log}\n  fsync: false\n"
+        f"shadow:\n  rulebook: {ROOT / 'rulebooks' / 'example-site' / 'rulebook.yaml'}\n"
+        f"  log: {tmp_path / 'shadow.jsonl'}\n",
+        encoding="utf-8",
+    )
+    assert (
+        main(
+            [
+                "batch",
+                str(src),
+                str(tmp_path / "o.csv"),
+                "--workers",
+                "2",
+                "--settings",
+                str(settings),
+                "--allow-rejected",
+            ]
+        )
+        == 0
+    )
     err = capsys.readouterr().err
     report = verify_log(log)
     assert report.entries == 300 and not report.errors
     assert "decision records appended" in err and "shadow candidate disagreed on" in err
     assert main(["batch", str(src), str(tmp_path / "plain.csv"), "--allow-rejected"]) == 0
-    assert (tmp_path / "o.csv").read_bytes() == (tmp_path / "plain.csv").read_bytes()  # only the active result
+    assert (tmp_path / "o.csv").read_bytes() == (
+        tmp_path / "plain.csv"
+    ).read_bytes()  # only the active result
 
 
 # ----------------------------------------------------------------------------- a killed run
+
 
 @pytest.mark.slow
 @pytest.mark.parametrize("sig", [signal.SIGKILL, signal.SIGTERM])
@@ -296,9 +347,20 @@ def test_killed_run_leaves_no_complete_looking_file(tmp_path: Path, sig: int) ->
     src = tmp_path / "big.csv"
     _corpus(src, 30_000, "csv", seed=3, malformed=0.001)
     target = tmp_path / "results.csv"
-    proc = subprocess.Popen([sys.executable, "-c", "import sys; from gasrules.cli import main; sys.exit(main())",
-                             "batch", str(src), str(target), "--chunk-size", "50"],
-                            stderr=subprocess.PIPE, env={**os.environ, "PYTHONPATH": str(ROOT / "engine")})
+    proc = subprocess.Popen(
+        [
+            sys.executable,
+            "-c",
+            "import sys; from gasrules.cli import main; sys.exit(main())",
+            "batch",
+            str(src),
+            str(target),
+            "--chunk-size",
+            "50",
+        ],
+        stderr=subprocess.PIPE,
+        env={**os.environ, "PYTHONPATH": str(ROOT / "engine")},
+    )
     deadline = time.monotonic() + 30
     partial = []
     while time.monotonic() < deadline and proc.poll() is None:
@@ -313,7 +375,7 @@ def test_killed_run_leaves_no_complete_looking_file(tmp_path: Path, sig: int) ->
     assert not target.exists()
     left = sorted(p.name for p in tmp_path.iterdir())
     if sig == signal.SIGTERM:
-        assert left == ["big.csv"]                         # the temporary file was removed
+        assert left == ["big.csv"]  # the temporary file was removed
     else:
         assert left == sorted(["big.csv", partial[0].name])  # hidden, and named as partial
 
@@ -327,31 +389,61 @@ def test_repeated_headers_and_non_text_passthrough_are_kept(rb: Any, tmp_path: P
     mapping = tmp_path / "m.yaml"
     mapping.write_text("passthrough: [bed, tags]\n", encoding="utf-8")
     lines = tmp_path / "g.jsonl"
-    lines.write_text('{"case_id": "J1", "bed": 7, "tags": ["a", "b"], "ph": 7.4}\n'
-                     '{"case_id": "J2", "bed": "7b", "ph": 7.4}\n', encoding="utf-8")
+    lines.write_text(
+        '{"case_id": "J1", "bed": 7, "tags": ["a", "b"], "ph": 7.4}\n'
+        '{"case_id": "J2", "bed": "7b", "ph": 7.4}\n',
+        encoding="utf-8",
+    )
     from gasrules.tables.readers import load_mapping
 
     for out in ("o.parquet", "o2.csv"):
-        run_batch(rb, lines, tmp_path / out, BatchOptions(values=(), mapping=load_mapping(mapping)),
-                  stderr=io.StringIO())
+        run_batch(
+            rb,
+            lines,
+            tmp_path / out,
+            BatchOptions(values=(), mapping=load_mapping(mapping)),
+            stderr=io.StringIO(),
+        )
         back = read_back(tmp_path / out)
-        assert [(r["bed"], r["tags"]) for r in back] == [("7", '["a","b"]'), ("7b", None if out.endswith("parquet") else "")]
+        assert [(r["bed"], r["tags"]) for r in back] == [
+            ("7", '["a","b"]'),
+            ("7b", None if out.endswith("parquet") else ""),
+        ]
 
 
-def test_cli_refusals_name_the_problem(corpus: dict[str, Path], tmp_path: Path,
-                                       capsys: pytest.CaptureFixture[str]) -> None:
-    assert main(["batch", str(corpus["csv"]), str(tmp_path / "o.csv"), "--values", "anion_gap,gap_of_gaps"]) == 2
+def test_cli_refusals_name_the_problem(
+    corpus: dict[str, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    assert (
+        main(["batch", str(corpus["csv"]), str(tmp_path / "o.csv"), "--values", "anion_gap,gap_of_gaps"]) == 2
+    )
     assert "--values: not a derived value of rulebook adult-default: gap_of_gaps" in capsys.readouterr().err
     settings = tmp_path / "s.yaml"
     settings.write_text(f"decision_log:\n  path: {tmp_path / 'log.jsonl'}\n", encoding="utf-8")
-    assert main(["batch", str(corpus["csv"]), str(tmp_path / "out"), "--dask-local", "2",
-                 "--settings", str(settings)]) == 2
+    assert (
+        main(
+            [
+                "batch",
+                str(corpus["csv"]),
+                str(tmp_path / "out"),
+                "--dask-local",
+                "2",
+                "--settings",
+                str(settings),
+            ]
+        )
+        == 2
+    )
     assert "decision records and shadow mode need a single-machine run" in capsys.readouterr().err
-    assert main(["batch", str(corpus["csv"]), str(tmp_path / "out"), "--dask", "tcp://x:1", "--dask-local", "2"]) == 2
+    assert (
+        main(["batch", str(corpus["csv"]), str(tmp_path / "out"), "--dask", "tcp://x:1", "--dask-local", "2"])
+        == 2
+    )
     assert sorted(p.name for p in tmp_path.iterdir()) == ["s.yaml"]
 
 
 # ----------------------------------------------------------------------------- demo messages
+
 
 def test_demo_messages_are_reproducible_and_read_back(tmp_path: Path, rb: Any) -> None:
     """The shipped FHIR bundles and HL7 v2 messages come from the corpus generator: regenerating

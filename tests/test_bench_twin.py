@@ -64,8 +64,10 @@ def _assert_same(rb: Any, twin: Any, cases: list[dict[str, Any]], trace: bool = 
         engine = gasrules.interpret(rb, case, trace=trace)
         hand = twin.interpret(case, trace=trace)
         if engine != hand:
-            pytest.fail(f"case {case.get('case_id')}: {json.dumps(case, default=str)}\n"
-                        + _first_difference(engine, hand))
+            pytest.fail(
+                f"case {case.get('case_id')}: {json.dumps(case, default=str)}\n"
+                + _first_difference(engine, hand)
+            )
         outcomes[engine["status"]] += 1
         for ev in engine["trace"]:
             if ev["outcome"] == "fired":
@@ -108,8 +110,22 @@ def test_twin_equals_engine_with_inputs_missing_and_other_samples(rb: Any, twin:
     """Dropped inputs (skipped rules, not-assessed values, partial status) and sample types the
     generator does not write (capillary, unknown, mixed venous)."""
     rng = random.Random(41)
-    droppable = ["ph", "pco2", "hco3", "na", "cl", "albumin", "sample_type", "po2", "fio2", "k", "lactate",
-                 "age", "chronicity", "pregnant"]
+    droppable = [
+        "ph",
+        "pco2",
+        "hco3",
+        "na",
+        "cl",
+        "albumin",
+        "sample_type",
+        "po2",
+        "fio2",
+        "k",
+        "lactate",
+        "age",
+        "chronicity",
+        "pregnant",
+    ]
     cases = []
     for case in generate_cases(1500, seed=99):
         for key in rng.sample(droppable, rng.randint(1, 4)):
@@ -135,8 +151,15 @@ def test_winter_anchor_case(rb: Any, twin: Any) -> None:
     Check values: Winter's formula 1.5 x 10 + 8 = 23 mmHg, band 21-25 (Albert, Dell & Winters,
     Ann Intern Med 1967; +/- 2 as universally quoted); anion gap 140 - (104 + 10) = 26 mmol/L
     (Na - (Cl + HCO3), Kraut & Madias, Clin J Am Soc Nephrol 2007)."""
-    case = {"case_id": "anchor", "ph": 7.26, "pco2": 23, "hco3": 10, "na": 140, "cl": 104,
-            "sample_type": "arterial"}
+    case = {
+        "case_id": "anchor",
+        "ph": 7.26,
+        "pco2": 23,
+        "hco3": 10,
+        "na": 140,
+        "cl": 104,
+        "sample_type": "arterial",
+    }
     result = gasrules.interpret(rb, case)
     assert result == twin.interpret(case)
     assert result["values"]["expected_pco2"] == 23.0

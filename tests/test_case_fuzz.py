@@ -16,8 +16,8 @@ from typing import Any
 import pytest
 
 import gasrules
-from gasrules.verification.fuzzing import random_case
 from gasrules.rulebook.schema import validate_instance
+from gasrules.verification.fuzzing import random_case
 
 
 def _units(rb: Any) -> Any:
@@ -25,10 +25,14 @@ def _units(rb: Any) -> Any:
 
 
 @pytest.mark.parametrize("which,count", [("shipped", 2500), ("mini", 7500)])
-def test_fuzzed_cases_always_give_valid_strict_results(which: str, count: int, shipped_rb: Any, mini_rb: Any) -> None:
+def test_fuzzed_cases_always_give_valid_strict_results(
+    which: str, count: int, shipped_rb: Any, mini_rb: Any
+) -> None:
     rb = shipped_rb if which == "shipped" else mini_rb
     rng = random.Random(4242 + count)
-    names = sorted(n for n in rb.inputs if n not in {s.fallback_marks for s in rb.inputs.values()})  # engine-set flags aside
+    names = sorted(
+        n for n in rb.inputs if n not in {s.fallback_marks for s in rb.inputs.values()}
+    )  # engine-set flags aside
     problems: list[str] = []
     statuses: dict[str, int] = {}
     for i in range(count):
@@ -37,7 +41,7 @@ def test_fuzzed_cases_always_give_valid_strict_results(which: str, count: int, s
             first = gasrules.interpret(rb, case)
             text = json.dumps(first, allow_nan=False, sort_keys=True)
             again = json.dumps(gasrules.interpret(rb, case), allow_nan=False, sort_keys=True)
-        except Exception as exc:  # noqa: BLE001 - what the fuzzer looks for
+        except Exception as exc:
             problems.append(f"case {i}: {type(exc).__name__}: {exc}")
             continue
         if text != again:
@@ -47,21 +51,23 @@ def test_fuzzed_cases_always_give_valid_strict_results(which: str, count: int, s
         if bad:
             problems.append(f"case {i}: {bad[0]}")
     assert not problems, f"{len(problems)} problems; first: {problems[0]}"
-    assert count - statuses.get("rejected", 0) > count // 4, statuses   # the evaluation itself is reached
+    assert count - statuses.get("rejected", 0) > count // 4, statuses  # the evaluation itself is reached
 
 
 def test_hostile_values_in_inputs_and_context_are_rejected_by_field(mini_rb: Any) -> None:
     deep: Any = 0
     for _ in range(5000):
         deep = [deep]
-    cases = [({"ph": 10 ** 400}, "ph", "input.too_large"),
-             ({"ph": {"value": -(10 ** 400), "unit": "[pH]"}}, "ph", "input.too_large"),
-             ({"ph": math.nan}, "ph", "input.not_finite"),
-             ({"ph": deep}, "ph", "input.not_a_number"),
-             ({"ph": 7.4, "context": {"n": 10 ** 400}}, "context.n", "input.not_strict_json"),
-             ({"ph": 7.4, "context": {"n": [1, math.inf]}}, "context.n[1]", "input.not_strict_json"),
-             ({"ph": 7.4, "context": {"n": deep}}, "context.n" + "[0]" * 31, "input.not_strict_json"),
-             ({"ph": 7.4, "context": {1: "x"}}, "context", "input.not_strict_json")]
+    cases = [
+        ({"ph": 10**400}, "ph", "input.too_large"),
+        ({"ph": {"value": -(10**400), "unit": "[pH]"}}, "ph", "input.too_large"),
+        ({"ph": math.nan}, "ph", "input.not_finite"),
+        ({"ph": deep}, "ph", "input.not_a_number"),
+        ({"ph": 7.4, "context": {"n": 10**400}}, "context.n", "input.not_strict_json"),
+        ({"ph": 7.4, "context": {"n": [1, math.inf]}}, "context.n[1]", "input.not_strict_json"),
+        ({"ph": 7.4, "context": {"n": deep}}, "context.n" + "[0]" * 31, "input.not_strict_json"),
+        ({"ph": 7.4, "context": {1: "x"}}, "context", "input.not_strict_json"),
+    ]
     for case, field, code in cases:
         result = gasrules.interpret(mini_rb, case)
         assert result["status"] == "rejected", case
@@ -76,9 +82,12 @@ def test_interpret_command_reads_hostile_json_lines_row_for_row(tmp_path: Any) -
     from gasrules.cli.commands import interpret as interpret_command
 
     path = tmp_path / "cases.jsonl"
-    path.write_text('{"ph": 7.4, "context": {"x": ' + "[" * 50_000 + "]" * 50_000 + "}}\n"
-                    '{"ph": 7.4, "pco2": 40, "hco3": 24}\n'
-                    '{"ph": 1' + "0" * 5000 + "}\n", encoding="utf-8")
+    path.write_text(
+        '{"ph": 7.4, "context": {"x": ' + "[" * 50_000 + "]" * 50_000 + "}}\n"
+        '{"ph": 7.4, "pco2": 40, "hco3": 24}\n'
+        '{"ph": 1' + "0" * 5000 + "}\n",
+        encoding="utf-8",
+    )
     res = CliRunner().invoke(interpret_command.app, [str(path), "--json"])
     assert res.exit_code == 4, res.output
     results = [json.loads(line) for line in res.stdout.splitlines()]

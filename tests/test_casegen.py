@@ -23,8 +23,18 @@ import pytest
 import yaml
 
 from gasrules.verification.casegen import (
-    CODED_INPUTS, CONTEXT_KEYS, HAGMA, INPUT_KEYS, MALFORMED_KINDS, METABOLIC_SETS, MIXES,
-    RESPIRATORY, generate_cases, generate_corpus, generate_labelled, malformed_cases,
+    CODED_INPUTS,
+    CONTEXT_KEYS,
+    HAGMA,
+    INPUT_KEYS,
+    MALFORMED_KINDS,
+    METABOLIC_SETS,
+    MIXES,
+    RESPIRATORY,
+    generate_cases,
+    generate_corpus,
+    generate_labelled,
+    malformed_cases,
     to_canonical,
 )
 
@@ -34,11 +44,10 @@ N_MIX = 5000
 
 
 def _load_tool() -> Any:
-    spec = importlib.util.spec_from_file_location("make_demo_data",
-                                                  ROOT / "tools" / "make_demo_data.py")
+    spec = importlib.util.spec_from_file_location("make_demo_data", ROOT / "tools" / "make_demo_data.py")
     assert spec and spec.loader
     module = importlib.util.module_from_spec(spec)
-    sys.modules.setdefault("make_demo_data", module)    # dataclasses look their module up
+    sys.modules.setdefault("make_demo_data", module)  # dataclasses look their module up
     spec.loader.exec_module(module)
     return module
 
@@ -58,8 +67,11 @@ def labelled() -> list[tuple[Any, dict[str, Any]]]:
 
 
 def _canonical(case: dict[str, Any]) -> dict[str, float]:
-    return {k: to_canonical(k, v) for k, v in case.items()
-            if k in INPUT_KEYS and k not in CODED_INPUTS and k != "pregnant"}
+    return {
+        k: to_canonical(k, v)
+        for k, v in case.items()
+        if k in INPUT_KEYS and k not in CODED_INPUTS and k != "pregnant"
+    }
 
 
 def _hh_ph(hco3: float, pco2: float) -> float:
@@ -82,12 +94,15 @@ def test_same_seed_gives_the_same_cases_and_another_seed_does_not() -> None:
 
 
 def test_output_does_not_depend_on_the_process_or_its_hash_seed() -> None:
-    code = ("import hashlib, json; from gasrules.verification.casegen import generate_cases; "
-            "print(hashlib.sha256(json.dumps(list(generate_cases(300, seed=9)), "
-            "sort_keys=True).encode()).hexdigest())")
+    code = (
+        "import hashlib, json; from gasrules.verification.casegen import generate_cases; "
+        "print(hashlib.sha256(json.dumps(list(generate_cases(300, seed=9)), "
+        "sort_keys=True).encode()).hexdigest())"
+    )
     env = {"PYTHONHASHSEED": "12345", "PATH": ""}
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                         env=env, check=True).stdout.strip()
+    out = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, env=env, check=True
+    ).stdout.strip()
     assert out == _digest(generate_cases(300, seed=9))
 
 
@@ -103,7 +118,8 @@ def test_shipped_demo_file_is_what_the_tool_generates() -> None:
 
 # ----------------------------------------------------------------------------- contract
 def test_every_case_uses_only_contract_keys_codes_and_declared_units(
-        labelled: list[tuple[Any, dict[str, Any]]], inputs: dict[str, dict[str, Any]]) -> None:
+    labelled: list[tuple[Any, dict[str, Any]]], inputs: dict[str, dict[str, Any]]
+) -> None:
     for _, case in labelled:
         cid = case["case_id"]
         assert set(case) - {"case_id", "context"} <= INPUT_KEYS, cid
@@ -124,23 +140,22 @@ def test_every_case_uses_only_contract_keys_codes_and_declared_units(
 
 
 def test_every_value_lies_inside_the_rulebook_plausible_range(
-        labelled: list[tuple[Any, dict[str, Any]]], inputs: dict[str, dict[str, Any]]) -> None:
+    labelled: list[tuple[Any, dict[str, Any]]], inputs: dict[str, dict[str, Any]]
+) -> None:
     for _, case in labelled:
         for name, value in _canonical(case).items():
             bounds = inputs[name]["plausible"]
             assert bounds["min"] <= value <= bounds["max"], (case["case_id"], name, value)
 
 
-def test_collection_times_are_iso_and_increasing(
-        labelled: list[tuple[Any, dict[str, Any]]]) -> None:
+def test_collection_times_are_iso_and_increasing(labelled: list[tuple[Any, dict[str, Any]]]) -> None:
     times = [case["context"]["collected_at"] for _, case in labelled]
     assert times == sorted(times)
     assert all(len(t) == 20 and t[10] == "T" and t.endswith("Z") for t in times)
 
 
 # ----------------------------------------------------------------------------- scenario mix
-def test_mix_covers_every_allowed_disorder_combination(
-        labelled: list[tuple[Any, dict[str, Any]]]) -> None:
+def test_mix_covers_every_allowed_disorder_combination(labelled: list[tuple[Any, dict[str, Any]]]) -> None:
     # At most one respiratory disorder (two cannot coexist: CMDT "Acid-base disorders",
     # common teaching) with each metabolic set the generator declares.
     resp_labels = ["none"] + [f"{r}/{c}" for r in RESPIRATORY[1:] for c in ("acute", "chronic")]
@@ -152,7 +167,8 @@ def test_mix_covers_every_allowed_disorder_combination(
 
 
 def test_mix_has_wards_samples_units_and_gaps_in_the_declared_shares(
-        labelled: list[tuple[Any, dict[str, Any]]]) -> None:
+    labelled: list[tuple[Any, dict[str, Any]]],
+) -> None:
     n = len(labelled)
     wards = Counter(case["context"]["ward"] for _, case in labelled)
     for ward, share in MIXES["hospital"].items():
@@ -176,12 +192,13 @@ def test_mix_has_wards_samples_units_and_gaps_in_the_declared_shares(
 
 # ----------------------------------------------------------------------------- physiology
 def test_henderson_hasselbalch_holds_except_for_deliberate_errors(
-        labelled: list[tuple[Any, dict[str, Any]]]) -> None:
+    labelled: list[tuple[Any, dict[str, Any]]],
+) -> None:
     for s, case in labelled:
         v = _canonical(case)
         gap = abs(v["ph"] - _hh_ph(v["hco3"], v["pco2"]))
         if s.inconsistent is None:
-            assert gap <= 0.03, (case["case_id"], gap)      # 0.03 pH: the brief's tolerance
+            assert gap <= 0.03, (case["case_id"], gap)  # 0.03 pH: the brief's tolerance
         else:
             assert gap >= 0.05, (case["case_id"], s.inconsistent, gap)
 
@@ -204,11 +221,12 @@ def test_anion_gap_follows_the_scenario(labelled: list[tuple[Any, dict[str, Any]
 
 
 def _arterial(s: Any) -> bool:
-    return (s.inconsistent is None and s.out_of_scope is None and s.sample_type == "arterial")
+    return s.inconsistent is None and s.out_of_scope is None and s.sample_type == "arterial"
 
 
 def test_metabolic_acidosis_alone_has_winters_respiratory_response(
-        labelled: list[tuple[Any, dict[str, Any]]]) -> None:
+    labelled: list[tuple[Any, dict[str, Any]]],
+) -> None:
     # Winter's formula: expected PCO2 = 1.5 x HCO3 + 8 +/- 2 (Albert, Dell & Winters,
     # Ann Intern Med 1967; +/-2 common practice).
     checked = 0
@@ -220,29 +238,31 @@ def test_metabolic_acidosis_alone_has_winters_respiratory_response(
     assert checked > 500
 
 
-@pytest.mark.parametrize("disorder, chronicity, slope", [
-    # HCO3 change per mmHg PCO2 (Adrogue & Madias, J Am Soc Nephrol 2010: adrogue2010)
-    ("respiratory_acidosis", "acute", 0.1),
-    ("respiratory_acidosis", "chronic", 0.35),
-    ("respiratory_alkalosis", "acute", 0.2),
-    ("respiratory_alkalosis", "chronic", 0.4),
-])
+@pytest.mark.parametrize(
+    "disorder, chronicity, slope",
+    [
+        # HCO3 change per mmHg PCO2 (Adrogue & Madias, J Am Soc Nephrol 2010: adrogue2010)
+        ("respiratory_acidosis", "acute", 0.1),
+        ("respiratory_acidosis", "chronic", 0.35),
+        ("respiratory_alkalosis", "acute", 0.2),
+        ("respiratory_alkalosis", "chronic", 0.4),
+    ],
+)
 def test_simple_respiratory_disorders_follow_their_bicarbonate_slope(
-        labelled: list[tuple[Any, dict[str, Any]]], disorder: str, chronicity: str,
-        slope: float) -> None:
+    labelled: list[tuple[Any, dict[str, Any]]], disorder: str, chronicity: str, slope: float
+) -> None:
     checked = 0
     for s, case in labelled:
         if _arterial(s) and s.combination == f"{disorder}/{chronicity}":
             v = _canonical(case)
             expected = 24 + slope * (v["pco2"] - 40)
-            assert abs(v["hco3"] - expected) <= 3, case["case_id"]   # 3: synthesis noise bound
+            assert abs(v["hco3"] - expected) <= 3, case["case_id"]  # 3: synthesis noise bound
             checked += 1
     assert checked > 50
 
 
 # ----------------------------------------------------------------------------- malformed rows
-def test_malformed_cases_are_broken_in_the_declared_way(
-        inputs: dict[str, dict[str, Any]]) -> None:
+def test_malformed_cases_are_broken_in_the_declared_way(inputs: dict[str, dict[str, Any]]) -> None:
     rows = list(malformed_cases(60, seed=4))
     assert Counter(kind for kind, _, _ in rows) == {k: 12 for k in MALFORMED_KINDS}
     for kind, key, case in rows:
@@ -263,7 +283,7 @@ def test_malformed_cases_are_broken_in_the_declared_way(
         else:
             assert kind == "missing_value"
             assert bad is None or bad == "" or (isinstance(bad, dict) and "value" not in bad)
-        rest = {k: v for k, v in case.items() if k != key}   # everything else stays valid
+        rest = {k: v for k, v in case.items() if k != key}  # everything else stays valid
         assert set(rest) - {"case_id", "context"} <= INPUT_KEYS
         assert case["case_id"].startswith("M")
 
@@ -284,8 +304,11 @@ def test_csv_corpus_is_canonical_and_malformed_rows_show_their_defect() -> None:
     header, body = table[0], table[1:]
     assert tuple(header) == TOOL.CSV_HEADER and "pco2" in header and "albumin" in header
     assert written == len(body) == 3000 and malformed > 10
-    broken = {case["case_id"]: (kind, key) for kind, key, case in
-              generate_corpus(3000, 8, malformed_share=0.01) if kind}
+    broken = {
+        case["case_id"]: (kind, key)
+        for kind, key, case in generate_corpus(3000, 8, malformed_share=0.01)
+        if kind
+    }
     assert len(broken) == malformed
     col = {name: i for i, name in enumerate(header)}
     for row in body:
@@ -297,25 +320,25 @@ def test_csv_corpus_is_canonical_and_malformed_rows_show_their_defect() -> None:
                 assert len(row) == col[key]
             elif kind == "out_of_range":
                 assert len(row) == len(header) and float(row[col[key]]) > 10
-            else:                                  # text_value, bad_unit: not a number
+            else:  # text_value, bad_unit: not a number
                 assert len(row) == len(header)
                 with pytest.raises(ValueError):
                     float(row[col[key]])
             continue
         assert len(row) == len(header)
         ph, pco2, hco3 = (float(row[col[n]]) for n in ("ph", "pco2", "hco3"))
-        assert 5 <= pco2 <= 250                   # mmHg, never kPa, in the CSV
+        assert 5 <= pco2 <= 250  # mmHg, never kPa, in the CSV
         if row[col["albumin"]]:
-            assert 10 <= float(row[col["albumin"]]) <= 60   # g/L, never g/dL
+            assert 10 <= float(row[col["albumin"]]) <= 60  # g/L, never g/dL
         if row[col["fio2"]]:
-            assert 0.18 <= float(row[col["fio2"]]) <= 1.0   # fraction, never %
+            assert 0.18 <= float(row[col["fio2"]]) <= 1.0  # fraction, never %
 
 
-def test_cli_writes_jsonl_and_rejects_bad_arguments(tmp_path: Path,
-                                                    capsys: pytest.CaptureFixture[str]) -> None:
+def test_cli_writes_jsonl_and_rejects_bad_arguments(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     target = tmp_path / "corpus.jsonl"
-    assert TOOL.run(["corpus", "--n", "500", "--seed", "2", "--format", "jsonl",
-                     "--out", str(target)]) == 0
+    assert TOOL.run(["corpus", "--n", "500", "--seed", "2", "--format", "jsonl", "--out", str(target)]) == 0
     lines = target.read_text(encoding="utf-8").splitlines()
     assert len(lines) == 500
     expected = [c for _, _, c in generate_corpus(500, 2)]

@@ -29,7 +29,7 @@ from gasrules.cli.commands import interpret as interpret_command
 README = ["--ph", "7.26", "--pco2", "25", "--hco3", "11", "--na", "140", "--cl", "104"]
 # pH 7.40, PCO2 40, HCO3 30: HH HCO3 24.5, inconsistent (NCCLS form, S 0.0307).
 C28 = {"ph": 7.40, "pco2": 40, "hco3": 30}
-MMHG_PER_KPA = 1000 / 133.322387415   # BIPM SI Brochure / ISO 80000-4
+MMHG_PER_KPA = 1000 / 133.322387415  # BIPM SI Brochure / ISO 80000-4
 
 
 def run(capsys: pytest.CaptureFixture[str], *args: str) -> tuple[int, str, str]:
@@ -44,6 +44,7 @@ def json_lines(out: str) -> list[dict[str, Any]]:
 
 # ----------------------------------------------------------------------------- dispatcher
 
+
 def test_help_lists_the_commands(capsys: pytest.CaptureFixture[str]) -> None:
     for flag in ("--help", "-h", "help"):
         code, out, _ = run(capsys, flag)
@@ -52,7 +53,7 @@ def test_help_lists_the_commands(capsys: pytest.CaptureFixture[str]) -> None:
             assert f"  {name} " in out, name
         assert "interpret" in out and "check" in out
         assert "Exit codes: 0 ok" in out and "5 broken rulebook" in out
-        assert "never replaces" in out          # the usual caution
+        assert "never replaces" in out  # the usual caution
     code, out, _ = run(capsys)
     assert code == 0 and "Commands:" in out
 
@@ -73,6 +74,7 @@ def test_command_help(capsys: pytest.CaptureFixture[str]) -> None:
 
 # ----------------------------------------------------------------------------- interpret: inputs
 
+
 def test_flags_text_output(capsys: pytest.CaptureFixture[str]) -> None:
     code, out, _ = run(capsys, "interpret", *README)
     assert code == 0
@@ -81,9 +83,14 @@ def test_flags_text_output(capsys: pytest.CaptureFixture[str]) -> None:
     sections = [line for line in lines if line.endswith(":") and not line.startswith(" ")]
     assert sections[:2] == ["Values:", "Findings:"] and "Cautions:" in sections
     assert lines.index("Values:") < lines.index("Findings:") < lines.index("Cautions:")
-    assert any(line.strip().startswith("Anion gap (Na - Cl - HCO3)") and line.endswith("25.0 mmol/L") for line in lines)
-    assert any(line.strip().startswith("Expected PaCO2 for the metabolic disorder") and line.endswith("24.5 mmHg")
-               for line in lines)
+    assert any(
+        line.strip().startswith("Anion gap (Na - Cl - HCO3)") and line.endswith("25.0 mmol/L")
+        for line in lines
+    )
+    assert any(
+        line.strip().startswith("Expected PaCO2 for the metabolic disorder") and line.endswith("24.5 mmHg")
+        for line in lines
+    )
     assert any("never replaces" in line for line in lines)
     assert "Trace (every rule" not in out
 
@@ -104,8 +111,18 @@ def test_flags_with_kpa(capsys: pytest.CaptureFixture[str], result_validator: An
 
 def test_set_any_input_with_units(capsys: pytest.CaptureFixture[str]) -> None:
     # 3.1 g/dL albumin = 31 g/L (1 dL = 0.1 L); 38.5 Cel as typed
-    code, out, _ = run(capsys, "interpret", *README, "--set", "albumin=3.1g/dL", "--set", "temperature=38.5Cel",
-                       "--set", "sample_type=arterial", "--json")
+    code, out, _ = run(
+        capsys,
+        "interpret",
+        *README,
+        "--set",
+        "albumin=3.1g/dL",
+        "--set",
+        "temperature=38.5Cel",
+        "--set",
+        "sample_type=arterial",
+        "--json",
+    )
     assert code == 0
     inputs = json_lines(out)[0]["inputs"]
     assert math.isclose(inputs["albumin"], 31.0, rel_tol=1e-9)
@@ -123,14 +140,17 @@ def test_parse_value() -> None:
     assert parse("arterial") == "arterial"
 
 
-def test_case_file_object_and_list(tmp_path: Path, capsys: pytest.CaptureFixture[str], result_validator: Any) -> None:
+def test_case_file_object_and_list(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], result_validator: Any
+) -> None:
     one = tmp_path / "case.json"
     one.write_text(json.dumps({"case_id": "A", "ph": 7.26, "pco2": 25, "hco3": 11, "na": 140, "cl": 104}))
     code, out, _ = run(capsys, "interpret", str(one), "--json")
     assert code == 0 and [r["case_id"] for r in json_lines(out)] == ["A"]
     many = tmp_path / "cases.json"
-    many.write_text(json.dumps([{"case_id": "A", "ph": 7.26, "pco2": 25, "hco3": 11},
-                                dict(C28, case_id="B")]))
+    many.write_text(
+        json.dumps([{"case_id": "A", "ph": 7.26, "pco2": 25, "hco3": 11}, dict(C28, case_id="B")])
+    )
     code, out, err = run(capsys, "interpret", str(many), "--json")
     results = json_lines(out)
     assert [(r["case_id"], r["status"]) for r in results] == [("A", "partial"), ("B", "inconsistent")]
@@ -139,15 +159,22 @@ def test_case_file_object_and_list(tmp_path: Path, capsys: pytest.CaptureFixture
     assert all(result_validator(r) == [] for r in results)
 
 
-def test_json_lines_never_lose_a_row(tmp_path: Path, capsys: pytest.CaptureFixture[str], result_validator: Any) -> None:
+def test_json_lines_never_lose_a_row(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], result_validator: Any
+) -> None:
     path = tmp_path / "cases.jsonl"
-    path.write_text("\n".join([
-        json.dumps({"case_id": "ok", "ph": 7.26, "pco2": 25, "hco3": 11, "na": 140, "cl": 104}),
-        '{"case_id": "broken", "ph": 7.4,',                  # not JSON
-        "",
-        json.dumps({"case_id": "bad", "ph": "seven"}),
-        json.dumps(dict(C28, case_id="c28")),
-    ]) + "\n")
+    path.write_text(
+        "\n".join(
+            [
+                json.dumps({"case_id": "ok", "ph": 7.26, "pco2": 25, "hco3": 11, "na": 140, "cl": 104}),
+                '{"case_id": "broken", "ph": 7.4,',  # not JSON
+                "",
+                json.dumps({"case_id": "bad", "ph": "seven"}),
+                json.dumps(dict(C28, case_id="c28")),
+            ]
+        )
+        + "\n"
+    )
     code, out, err = run(capsys, "interpret", str(path), "--json")
     results = json_lines(out)
     assert len(results) == 4
@@ -180,20 +207,26 @@ def test_stdin_through_main(monkeypatch: pytest.MonkeyPatch, capsys: pytest.Capt
 def test_trace_text(capsys: pytest.CaptureFixture[str]) -> None:
     code, out, _ = run(capsys, "interpret", *README, "--trace")
     assert code == 0
-    trace = out[out.index("Trace (every rule, in evaluation order):"):]
+    trace = out[out.index("Trace (every rule, in evaluation order):") :]
     assert "FIRED" in trace and "NOT_FIRED" in trace
     # pH 7.26 against 7.35 (common practice)
     lines = [ln.strip() for ln in trace.splitlines() if "compare ph 7.26 < ph_low" in ln]
-    assert lines and all(ln.startswith("compare ph 7.26 < ph_low 7.35:") and ln.endswith("margin -0.09")
-                         for ln in lines)
+    assert lines and all(
+        ln.startswith("compare ph 7.26 < ph_low 7.35:") and ln.endswith("margin -0.09") for ln in lines
+    )
     assert "(set at " in trace and "rulebook.yaml:" in trace
     code, out, _ = run(capsys, "interpret", *README, "--trace", "--json")
     [result] = json_lines(out)
-    assert result["trace"] and result["trace"][0]["outcome"] in ("fired", "not_fired", "skipped_missing_input")
+    assert result["trace"] and result["trace"][0]["outcome"] in (
+        "fired",
+        "not_fired",
+        "skipped_missing_input",
+    )
 
 
-def test_json_without_trace_flag_still_has_the_trace_field(capsys: pytest.CaptureFixture[str],
-                                                           result_validator: Any) -> None:
+def test_json_without_trace_flag_still_has_the_trace_field(
+    capsys: pytest.CaptureFixture[str], result_validator: Any
+) -> None:
     code, out, _ = run(capsys, "interpret", *README, "--json")
     [result] = json_lines(out)
     assert result_validator(result) == [] and isinstance(result["trace"], list)
@@ -201,30 +234,37 @@ def test_json_without_trace_flag_still_has_the_trace_field(capsys: pytest.Captur
 
 # ----------------------------------------------------------------------------- exit codes
 
+
 def test_exit_codes(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    assert run(capsys, "interpret", *README)[0] == 0                                     # interpreted
-    assert run(capsys, "interpret", "--ph", "7.26")[0] == 0                              # partial
-    assert run(capsys, "interpret", "--ph", "7.40", "--pco2", "40", "--hco3", "30")[0] == 3   # C28 inconsistent
+    assert run(capsys, "interpret", *README)[0] == 0  # interpreted
+    assert run(capsys, "interpret", "--ph", "7.26")[0] == 0  # partial
+    assert (
+        run(capsys, "interpret", "--ph", "7.40", "--pco2", "40", "--hco3", "30")[0] == 3
+    )  # C28 inconsistent
     code, out, _ = run(capsys, "interpret", "--ph", "abc")
     assert code == 4 and "ph = 'abc' is not a number (accepted: a number in [pH])" in out
-    assert run(capsys, "interpret", "--ph", "7.4", "--pco2", "40kg")[0] == 4            # unit mismatch
+    assert run(capsys, "interpret", "--ph", "7.4", "--pco2", "40kg")[0] == 4  # unit mismatch
     case = tmp_path / "one.json"
     case.write_text(json.dumps([C28]))
-    assert run(capsys, "interpret", str(case))[0] == 3                                   # one case from a file
+    assert run(capsys, "interpret", str(case))[0] == 3  # one case from a file
     broken = tmp_path / "broken.yaml"
     broken.write_text("format: gasrules/1\nmetadata: {id: x}\n")
     code, out, err = run(capsys, "interpret", "--rulebook", str(broken), *README)
     assert code == 5 and "RB-E010" in err and out == ""
 
 
-@pytest.mark.parametrize("args", [
-    [],                                           # nothing to interpret
-    ["case.json", "--ph", "7.4"],                 # both a file and flags
-    ["--set", "urea"],                            # NAME=VALUE expected
-    ["missing-file.json"],                        # unreadable file
-])
-def test_usage_errors_exit_2(args: list[str], tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
-                             capsys: pytest.CaptureFixture[str]) -> None:
+@pytest.mark.parametrize(
+    "args",
+    [
+        [],  # nothing to interpret
+        ["case.json", "--ph", "7.4"],  # both a file and flags
+        ["--set", "urea"],  # NAME=VALUE expected
+        ["missing-file.json"],  # unreadable file
+    ],
+)
+def test_usage_errors_exit_2(
+    args: list[str], tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
     monkeypatch.chdir(tmp_path)
     (tmp_path / "case.json").write_text(json.dumps(C28))
     code, out, err = run(capsys, "interpret", *args)
@@ -240,6 +280,7 @@ def test_other_rulebook(capsys: pytest.CaptureFixture[str]) -> None:
 
 
 # ----------------------------------------------------------------------------- compiled-rulebook cache
+
 
 @pytest.fixture
 def counted_compiles(monkeypatch: pytest.MonkeyPatch) -> list[str]:
@@ -261,7 +302,7 @@ def test_second_load_is_a_cache_hit(tmp_path: Path, cache_dir: Path, counted_com
     assert len(counted_compiles) == 1
     assert len(list(cache_dir.glob("*.pickle"))) == 1
     second = gasrules.load_rulebook(path)
-    assert len(counted_compiles) == 1                     # no recompile
+    assert len(counted_compiles) == 1  # no recompile
     assert second is not first and second.sha256 == first.sha256 and second.source == first.source
     case = {"ph": 7.39, "pco2": 24, "hco3": 14, "na": 140, "cl": 106}
     assert gasrules.interpret(second, case) == gasrules.interpret(first, case)
@@ -284,7 +325,9 @@ def test_edited_rulebook_is_a_miss(tmp_path: Path, cache_dir: Path, counted_comp
     assert len(counted_compiles) == 3 and again.sha256 == after.sha256
 
 
-def test_edited_base_of_an_overlay_is_a_miss(tmp_path: Path, cache_dir: Path, counted_compiles: list[str]) -> None:
+def test_edited_base_of_an_overlay_is_a_miss(
+    tmp_path: Path, cache_dir: Path, counted_compiles: list[str]
+) -> None:
     (tmp_path / "overlays").mkdir()
     base = tmp_path / "rulebook.yaml"
     base.write_text(portable(MINI.read_text(encoding="utf-8"), MINI), encoding="utf-8")
@@ -293,7 +336,9 @@ def test_edited_base_of_an_overlay_is_a_miss(tmp_path: Path, cache_dir: Path, co
     gasrules.load_rulebook(site)
     gasrules.load_rulebook(site)
     assert len(counted_compiles) == 1
-    base.write_text(base.read_text(encoding="utf-8").replace("    value: 1.5\n", "    value: 1.4\n"), encoding="utf-8")
+    base.write_text(
+        base.read_text(encoding="utf-8").replace("    value: 1.5\n", "    value: 1.4\n"), encoding="utf-8"
+    )
     assert gasrules.load_rulebook(site).parameters["winter_slope"].value == 1.4
     assert len(counted_compiles) == 2
 
@@ -318,7 +363,10 @@ def test_damaged_cache_entry_is_a_miss(tmp_path: Path, cache_dir: Path, counted_
 
 def test_broken_rulebook_is_never_cached(tmp_path: Path, cache_dir: Path) -> None:
     path = tmp_path / "rb.yaml"
-    path.write_text(portable(MINI.read_text(encoding="utf-8"), MINI).replace("    value: 12\n", "    value: 99\n"), encoding="utf-8")
+    path.write_text(
+        portable(MINI.read_text(encoding="utf-8"), MINI).replace("    value: 12\n", "    value: 99\n"),
+        encoding="utf-8",
+    )
     for _ in range(2):
         with pytest.raises(gasrules.RulebookError):
             gasrules.load_rulebook(path)
@@ -338,31 +386,50 @@ def test_cached_rulebook_pickles_for_worker_pools(mini_rb: Any) -> None:
     assert gasrules.interpret(clone, case) == gasrules.interpret(mini_rb, case)
 
 
-def test_cached_locations_do_not_depend_on_the_compiling_directory(tmp_path: Path, cache_dir: Path,
-                                                                    monkeypatch: pytest.MonkeyPatch) -> None:
+def test_cached_locations_do_not_depend_on_the_compiling_directory(
+    tmp_path: Path, cache_dir: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     (tmp_path / "a").mkdir()
     (tmp_path / "b").mkdir()
-    (tmp_path / "a" / "rb.yaml").write_text(portable(MINI.read_text(encoding="utf-8"), MINI), encoding="utf-8")
+    (tmp_path / "a" / "rb.yaml").write_text(
+        portable(MINI.read_text(encoding="utf-8"), MINI), encoding="utf-8"
+    )
     monkeypatch.chdir(tmp_path / "b")
     fresh = str(gasrules.load_rulebook("../a/rb.yaml", cache=False).parameters["ag_high"].set_by)
     monkeypatch.chdir(tmp_path / "a")
-    gasrules.load_rulebook("rb.yaml")                         # compiled and cached from a/
+    gasrules.load_rulebook("rb.yaml")  # compiled and cached from a/
     monkeypatch.chdir(tmp_path / "b")
     cached = str(gasrules.load_rulebook("../a/rb.yaml").parameters["ag_high"].set_by)
     assert cached == fresh
 
 
-def test_edited_base_behind_a_json_overlay_is_a_miss(tmp_path: Path, cache_dir: Path,
-                                                     counted_compiles: list[str]) -> None:
+def test_edited_base_behind_a_json_overlay_is_a_miss(
+    tmp_path: Path, cache_dir: Path, counted_compiles: list[str]
+) -> None:
     base = tmp_path / "base" / "rulebook.yaml"
     base.parent.mkdir()
     base.write_text(portable(MINI.read_text(encoding="utf-8"), MINI), encoding="utf-8")
     site = tmp_path / "site.json"
-    site.write_text(json.dumps({"format": "gasrules/1", "extends": "base/rulebook.yaml",
-                                "metadata": {"id": "json-site", "version": "0.1.0", "title": "JSON overlay",
-                                             "effective_date": "2026-12-01", "status": "draft"}}), encoding="utf-8")
+    site.write_text(
+        json.dumps(
+            {
+                "format": "gasrules/1",
+                "extends": "base/rulebook.yaml",
+                "metadata": {
+                    "id": "json-site",
+                    "version": "0.1.0",
+                    "title": "JSON overlay",
+                    "effective_date": "2026-12-01",
+                    "status": "draft",
+                },
+            }
+        ),
+        encoding="utf-8",
+    )
     before = gasrules.load_rulebook(site)
-    base.write_text(base.read_text(encoding="utf-8").replace("    value: 1.5\n", "    value: 1.4\n"), encoding="utf-8")
+    base.write_text(
+        base.read_text(encoding="utf-8").replace("    value: 1.5\n", "    value: 1.4\n"), encoding="utf-8"
+    )
     after = gasrules.load_rulebook(site)
     assert len(counted_compiles) == 2
     assert after.parameters["winter_slope"].value == 1.4 and after.sha256 != before.sha256
@@ -381,8 +448,14 @@ def test_cache_key_covers_the_whole_package_source(tmp_path: Path) -> None:
 
     def key() -> str:
         code = "import sys; from gasrules.rulebook import build; print(build.cache_key(sys.argv[1]))"
-        out = subprocess.run([sys.executable, "-c", code, str(MINI)], capture_output=True, text=True, check=True,
-                             env={"PYTHONPATH": str(copy.parent), "PATH": "/usr/bin:/bin"}, cwd=tmp_path)
+        out = subprocess.run(
+            [sys.executable, "-c", code, str(MINI)],
+            capture_output=True,
+            text=True,
+            check=True,
+            env={"PYTHONPATH": str(copy.parent), "PATH": "/usr/bin:/bin"},
+            cwd=tmp_path,
+        )
         return out.stdout.strip()
 
     first = key()
@@ -396,14 +469,16 @@ def _planted(target: Path, marker: Path) -> None:
     class Plant:
         def __reduce__(self) -> Any:
             import os
+
             return (os.mkdir, (str(marker),))
 
     target.write_bytes(pickle.dumps(Plant()))
 
 
 @pytest.mark.parametrize("unsafe", ["world_writable", "group_writable", "other_owner"])
-def test_pickles_only_from_a_private_cache_directory(unsafe: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
-                                                     counted_compiles: list[str]) -> None:
+def test_pickles_only_from_a_private_cache_directory(
+    unsafe: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, counted_compiles: list[str]
+) -> None:
     import os
     import warnings
 
@@ -426,14 +501,18 @@ def test_pickles_only_from_a_private_cache_directory(unsafe: str, tmp_path: Path
         warnings.simplefilter("always")
         for _ in range(3):
             assert gasrules.load_rulebook(path).id == "mini-acid-base"
-    assert not marker.exists()                      # the planted pickle never ran
-    assert len(counted_compiles) == 3               # compiled every time
+    assert not marker.exists()  # the planted pickle never ran
+    assert len(counted_compiles) == 3  # compiled every time
     msgs = [str(w.message) for w in caught if issubclass(w.category, cache_module.CacheWarning)]
     assert len(msgs) == 1 and str(shared) in msgs[0]
-    assert sorted(p.name for p in shared.glob("*.pickle")) == [f"{cache_module.cache_key(path)}.pickle"]  # none written
+    assert sorted(p.name for p in shared.glob("*.pickle")) == [
+        f"{cache_module.cache_key(path)}.pickle"
+    ]  # none written
 
 
-def test_private_cache_directory_is_created_owner_only(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+def test_private_cache_directory_is_created_owner_only(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     import os
     import stat
 

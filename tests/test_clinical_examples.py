@@ -17,7 +17,6 @@ from typing import Any
 import pytest
 
 import gasrules
-
 from conftest import EXAMPLE_SITE, SHIPPED
 
 ARTERIAL = {"sample_type": "arterial"}
@@ -48,11 +47,14 @@ def overlay(tmp_path: Path, parameters: str) -> Any:
         "format: gasrules/1\n"
         f"extends: {SHIPPED}\n"
         "metadata: {id: test-site, version: 1.0.0, title: Test site, effective_date: 2026-12-01, status: draft}\n"
-        f"parameters:\n{parameters}", encoding="utf-8")
+        f"parameters:\n{parameters}",
+        encoding="utf-8",
+    )
     return gasrules.load_rulebook(path, cache=False)
 
 
 # ----------------------------------------------------------------------------- healthy gases
+
 
 def test_a_healthy_gas_with_a_marginal_gap_names_no_disorder(any_rb: Any) -> None:
     # pH 7.41, PCO2 39, HCO3 24 are inside their intervals; AG 139 - 102 - 24 = 13 is one above
@@ -80,7 +82,7 @@ def test_hypoalbuminaemia_still_gets_figges_correction(rb: Any) -> None:
 
 
 def test_a_site_may_choose_figges_correction_at_every_albumin(tmp_path: Path) -> None:
-    site = overlay(tmp_path, "  ag_albumin_correction: {value: always, rationale: \"test\"}\n")
+    site = overlay(tmp_path, '  ag_albumin_correction: {value: always, rationale: "test"}\n')
     # 12 + 0.25 x (44 - 36) = 14.0 (Figge et al., Crit Care Med 1998).
     r = interpret(site, ph=7.40, pco2=40, hco3=24.5, na=140, cl=103.5, albumin=36, **ARTERIAL)
     assert r["values"]["anion_gap_albumin_corrected"] == pytest.approx(14.0)
@@ -88,10 +90,13 @@ def test_a_site_may_choose_figges_correction_at_every_albumin(tmp_path: Path) ->
 
 # ----------------------------------------------------------------------------- compensated respiratory disorders
 
+
 def test_a_chronic_co2_retainer_has_chronic_respiratory_acidosis_only(any_rb: Any) -> None:
     # Expected HCO3 in chronic respiratory acidosis: 24 + 0.35 x (58 - 40) = 30.3 +/- 2
     # (Adrogue & Madias, J Am Soc Nephrol 2010, from memory); HCO3 31 fits. AG 139 - 97 - 31 = 11.
-    r = interpret(any_rb, ph=7.34, pco2=58, hco3=31, na=139, cl=97, albumin=36, chronicity="chronic", **ARTERIAL)
+    r = interpret(
+        any_rb, ph=7.34, pco2=58, hco3=31, na=139, cl=97, albumin=36, chronicity="chronic", **ARTERIAL
+    )
     assert r["disorders"] == ["respiratory_acidosis"]
     assert r["qualifiers"] == {"respiratory_acidosis": "chronic"}
 
@@ -105,6 +110,7 @@ def test_chronic_respiratory_alkalosis_may_bring_the_ph_back_to_normal(rb: Any) 
 
 
 # ----------------------------------------------------------------------------- delta analysis
+
 
 def test_a_severe_combined_acidosis_gets_no_invented_metabolic_alkalosis(rb: Any) -> None:
     # pH 6.80, PCO2 70, HCO3 10.8, AG 40 (excess 30 over the normal 10). Against HCO3 24 the
@@ -126,6 +132,7 @@ def test_delta_analysis_runs_only_beside_a_named_high_gap_acidosis(rb: Any) -> N
 
 
 # ----------------------------------------------------------------------------- missing HCO3
+
 
 def test_missing_hco3_is_calculated_and_the_acidosis_named(rb: Any) -> None:
     # HCO3 = 0.0307 x 30 x 10^(7.20 - 6.1) = 11.59 (Henderson-Hasselbalch, CLSI C46-A2 form);
@@ -168,6 +175,7 @@ def test_no_disorder_is_never_said_beside_an_abnormal_ph(rb: Any) -> None:
 
 # ----------------------------------------------------------------------------- critical values
 
+
 def test_a_rejected_field_does_not_hide_another_critical_value(any_rb: Any) -> None:
     # pH 6.45 is outside the plausible range 6.5-8.0 (rejected); K 7.5 is above the critical 6.2.
     r = interpret(any_rb, ph=6.45, k=7.5, **ARTERIAL)
@@ -199,15 +207,18 @@ def test_a_critical_pf_ratio_reaches_the_headline(rb: Any) -> None:
     r = interpret(rb, ph=7.40, pco2=40, hco3=24.5, po2=60, fio2=0.8, peep=10, **ARTERIAL)
     assert r["values"]["pf_ratio"] == 75
     assert r["headline"].startswith("Severe hypoxaemia (P/F in the Berlin severe band)")
-    assert "; Hypoxaemia" not in r["headline"]   # not said twice
+    assert "; Hypoxaemia" not in r["headline"]  # not said twice
 
 
 # ----------------------------------------------------------------------------- plausibility across fields
 
+
 def test_glucose_in_mg_per_dl_entered_as_mmol_per_l_is_warned(rb: Any) -> None:
     # Calculated osmolality 2 x 140 + 110 + 5 = 395 against measured 290: gap -105, far below the
     # healthy range of about -14 to +10 (Hoffman et al., J Toxicol Clin Toxicol 1993, from memory).
-    r = interpret(rb, ph=7.40, pco2=40, hco3=24.5, na=140, cl=104, glucose=110, urea=5, osmolality=290, **ARTERIAL)
+    r = interpret(
+        rb, ph=7.40, pco2=40, hco3=24.5, na=140, cl=104, glucose=110, urea=5, osmolality=290, **ARTERIAL
+    )
     assert {"plausibility.glucose_units", "osmolal.gap_implausible"} <= codes(r)
     assert "osmolal.gap_normal" not in codes(r)
     assert "check units" in r["headline"]
@@ -234,6 +245,7 @@ def test_lactate_beyond_the_excess_gap_is_a_warning_not_a_reassurance(rb: Any) -
 
 # ----------------------------------------------------------------------------- oxygenation and sample type
 
+
 def test_no_fio2_means_no_aa_gradient_and_no_pf_ratio(rb: Any) -> None:
     r = interpret(rb, ph=7.40, pco2=40, hco3=24.5, po2=70, **ARTERIAL)
     assert "aa_gradient" not in r["values"] and "pf_ratio" not in r["values"]
@@ -242,7 +254,7 @@ def test_no_fio2_means_no_aa_gradient_and_no_pf_ratio(rb: Any) -> None:
 
 
 def test_a_site_may_assume_room_air_with_a_caution(tmp_path: Path) -> None:
-    site = overlay(tmp_path, "  fio2_when_missing: {value: room_air, rationale: \"test\"}\n")
+    site = overlay(tmp_path, '  fio2_when_missing: {value: room_air, rationale: "test"}\n')
     # Alveolar PO2 on air at sea level: 0.21 x (760 - 47) - 40 / 0.8 = 99.7 mmHg (West, from memory).
     r = interpret(site, ph=7.40, pco2=40, hco3=24.5, po2=70, **ARTERIAL)
     assert r["values"]["aa_gradient"] == pytest.approx(29.73, abs=0.01)

@@ -30,8 +30,9 @@ def rulebook() -> Any:
 
 @pytest.fixture(scope="module")
 def results(rulebook: Any) -> list[dict[str, Any]]:
-    cases = [json.loads(x) for x in (ROOT / "tools" / "demo" / "cases.jsonl").read_text()
-             .splitlines() if x.strip()]
+    cases = [
+        json.loads(x) for x in (ROOT / "tools" / "demo" / "cases.jsonl").read_text().splitlines() if x.strip()
+    ]
     return [gasrules.interpret(rulebook, c, trace=False) for c in cases]
 
 
@@ -59,20 +60,25 @@ def test_shipped_codesystems_are_current_and_valid_fhir(rulebook: Any) -> None:
     from fhir.resources.R4B.codesystem import CodeSystem
 
     shipped = json.loads(SHIPPED.read_text(encoding="utf-8"))
-    assert shipped == codesystem_bundle(rulebook), \
+    assert shipped == codesystem_bundle(rulebook), (
         "docs/fhir/codesystems.json is stale: run .venv/bin/python tools/make_codesystems.py"
+    )
     Bundle.model_validate(shipped)
     for entry in shipped["entry"]:
         cs = CodeSystem.model_validate(entry["resource"])
         assert cs.url.startswith(DEFAULT_BASE) and cs.count == len(cs.concept)
 
 
-def test_fhir_outputs_use_only_documented_or_defined_codes(rulebook: Any,
-                                                           results: list[dict[str, Any]]) -> None:
+def test_fhir_outputs_use_only_documented_or_defined_codes(
+    rulebook: Any, results: list[dict[str, Any]]
+) -> None:
     from fhir.resources.R4B.bundle import Bundle
 
-    defined = {(e["resource"]["url"], c["code"])
-               for e in codesystem_bundle(rulebook)["entry"] for c in e["resource"]["concept"]}
+    defined = {
+        (e["resource"]["url"], c["code"])
+        for e in codesystem_bundle(rulebook)["entry"]
+        for c in e["resource"]["concept"]
+    }
     seen_standard = set()
     for result in results:
         bundle = result_to_fhir(result, {}, rulebook_info=rulebook)
@@ -84,7 +90,7 @@ def test_fhir_outputs_use_only_documented_or_defined_codes(rulebook: Any,
             elif c["system"] != "http://unitsofmeasure.org":
                 assert key in STANDARD, key
                 seen_standard.add(key)
-    assert ("http://loinc.org", "33037-3") in seen_standard      # the demo cases have a gap
+    assert ("http://loinc.org", "33037-3") in seen_standard  # the demo cases have a gap
 
 
 def test_the_codesystem_url_is_a_setting(rulebook: Any, results: list[dict[str, Any]]) -> None:
@@ -95,24 +101,29 @@ def test_the_codesystem_url_is_a_setting(rulebook: Any, results: list[dict[str, 
 
 
 def test_a_disorder_with_a_snomed_concept_carries_both_codings(rulebook: Any) -> None:
-    result = {**gasrules.interpret(rulebook, {}, trace=False),
-              "disorders": ["respiratory_alkalosis"], "qualifiers": {}}
+    result = {
+        **gasrules.interpret(rulebook, {}, trace=False),
+        "disorders": ["respiratory_alkalosis"],
+        "qualifiers": {},
+    }
     bundle = result_to_fhir(result, {}, rulebook_info=rulebook)
-    report = next(e["resource"] for e in bundle["entry"]
-                  if e["resource"]["resourceType"] == "DiagnosticReport")
+    report = next(
+        e["resource"] for e in bundle["entry"] if e["resource"]["resourceType"] == "DiagnosticReport"
+    )
     [concept] = report["conclusionCode"]
     assert [(c["system"], c["code"]) for c in concept["coding"]] == [
         (f"{DEFAULT_BASE}/disorder", "respiratory_alkalosis"),
-        ("http://snomed.info/sct", "20165001")]                   # docs/codes.md: from memory
+        ("http://snomed.info/sct", "20165001"),
+    ]  # docs/codes.md: from memory
 
 
 def test_hl7_outputs_use_the_same_codes(results: list[dict[str, Any]]) -> None:
     systems = {"LN": "http://loinc.org", "SCT": "http://snomed.info/sct"}
     seen = set()
     for result in results:
-        msg, issues = parse_message(result_to_oru(result, control_id="C1",
-                                                  message_time="20310402091530",
-                                                  facility="SITE-9"))
+        msg, issues = parse_message(
+            result_to_oru(result, control_id="C1", message_time="20310402091530", facility="SITE-9")
+        )
         assert issues == [] and msg is not None
         assert msg.get(msg.first("MSH"), 4) == "SITE-9"
         for seg in msg.all("OBX"):

@@ -28,16 +28,16 @@ import yaml
 from typer.testing import CliRunner
 
 import gasrules
+from gasrules.cli.commands import verify as V
 from gasrules.verification import cohort_table as T
 from gasrules.verification import cohorts as C
-from gasrules.cli.commands import verify as V
 
 HERE = Path(__file__).resolve().parent
 BOOK = HERE / "data" / "cohorts" / "rulebook.yaml"
 ROOT = HERE.parent
 ADULT = ROOT / "rulebooks" / "adult" / "rulebook.yaml"
 SITE = ROOT / "rulebooks" / "example-site" / "rulebook.yaml"
-ROUND = 0.05 + 1e-9        # half a reporting step of a 1-decimal input
+ROUND = 0.05 + 1e-9  # half a reporting step of a 1-decimal input
 runner = CliRunner()
 
 
@@ -68,13 +68,16 @@ def _overlay(tmp_path: Path, base: Path, cohorts_text: str | None) -> Path:
         "  title: Cohort test site\n  effective_date: 2026-12-01\n  status: draft\n"
         "  owners: [{name: tests, role: authors}]\n"
         "  intended_use: {population: tests, setting: tests}\n"
-        "  changelog: [{version: 0.1.0, date: 2026-12-01, summary: first}]\n", encoding="utf-8")
+        "  changelog: [{version: 0.1.0, date: 2026-12-01, summary: first}]\n",
+        encoding="utf-8",
+    )
     if cohorts_text is not None:
         (folder / "cohorts.yaml").write_text(cohorts_text, encoding="utf-8")
     return folder / "rulebook.yaml"
 
 
 # ----------------------------------------------------------------------------- generator
+
 
 def test_same_seed_same_cases_and_cohorts_draw_independently(rb, plan):
     c = _cohort(plan, "metabolic_acidosis_high_gap")
@@ -94,7 +97,12 @@ def test_healthy_cases_inside_the_intervals_and_henderson_hasselbalch(rb, plan):
         assert 7.35 <= x["ph"] <= 7.45 and 35 <= x["pco2"] <= 45 and 22 <= x["hco3"] <= 26
         # literal intervals of the cohort file: Na 136-144, K 3.5-5.0 (common practice), uncorrected gap
         # 8 to ag_high 12 (Kraut & Madias, Clin J Am Soc Nephrol 2007), albumin 35-50 g/L, PO2 85-100 (common practice)
-        assert 136 <= x["na"] <= 144 and 3.5 <= x["k"] <= 5.0 and 35 <= x["albumin"] <= 50 and 85 <= x["po2"] <= 100
+        assert (
+            136 <= x["na"] <= 144
+            and 3.5 <= x["k"] <= 5.0
+            and 35 <= x["albumin"] <= 50
+            and 85 <= x["po2"] <= 100
+        )
         assert 8 - ROUND <= x["na"] - x["cl"] - x["hco3"] <= 12 + ROUND
         # pH = 6.1 + log10(HCO3 / (0.0307 x PCO2)) (Severinghaus et al., J Appl Physiol 1956), to 2 decimals
         assert abs(x["ph"] - (6.1 + np.log10(x["hco3"] / (0.0307 * x["pco2"])))) <= 0.005 + 1e-9
@@ -112,7 +120,9 @@ def test_metabolic_acidosis_inside_winters_band_with_the_gap_raised_by_the_delta
         assert 8 + 1.0 * fall - 3 * ROUND <= gap <= 12 + 1.6 * fall + 3 * ROUND
 
 
-@pytest.mark.parametrize("cid, slope", [("respiratory_acidosis_acute", 0.1), ("respiratory_alkalosis_chronic", 0.4)])
+@pytest.mark.parametrize(
+    "cid, slope", [("respiratory_acidosis_acute", 0.1), ("respiratory_alkalosis_chronic", 0.4)]
+)
 def test_respiratory_cohorts_inside_their_published_band(rb, plan, cid, slope):
     # acute respiratory acidosis: HCO3 +1 per 10 mmHg (Brackett et al., N Engl J Med 1965); chronic respiratory
     # alkalosis: -4 per 10 mmHg (Adrogue & Madias, J Am Soc Nephrol 2010); band +/- 2 (common practice)
@@ -125,7 +135,11 @@ def test_respiratory_cohorts_inside_their_published_band(rb, plan, cid, slope):
 def test_mixes_lie_beyond_the_band_by_the_stated_margin(rb, plan):
     # high-gap acidosis with respiratory alkalosis: PCO2 below Winter's 1.5 x HCO3 + 8 - 2 by at least 4 (margin)
     for x in C.generate(rb, plan, _cohort(plan, "high_gap_acidosis_with_respiratory_alkalosis"), 1000):
-        assert 1.5 * x["hco3"] + 8 - 2 - 4 - 4 - 3 * ROUND <= x["pco2"] <= 1.5 * x["hco3"] + 8 - 2 - 4 + 3 * ROUND
+        assert (
+            1.5 * x["hco3"] + 8 - 2 - 4 - 4 - 3 * ROUND
+            <= x["pco2"]
+            <= 1.5 * x["hco3"] + 8 - 2 - 4 + 3 * ROUND
+        )
     # respiratory acidosis with metabolic alkalosis: HCO3 above 24 + 0.35 x (PCO2 - 40) + 2 (Adrogue & Madias 2010)
     # by 4 to 10 (margin 4, spread 6)
     for x in C.generate(rb, plan, _cohort(plan, "respiratory_acidosis_with_metabolic_alkalosis"), 1000):
@@ -144,10 +158,15 @@ def test_shipped_cohort_file_generates_plausible_cases_for_both_rulebooks(shippe
                     if k == "case_id":
                         continue
                     spec = book.inputs[k]
-                    assert spec.kind != "number" or spec.plausible_min <= v <= spec.plausible_max, (c.id, k, v)
+                    assert spec.kind != "number" or spec.plausible_min <= v <= spec.plausible_max, (
+                        c.id,
+                        k,
+                        v,
+                    )
 
 
 # ----------------------------------------------------------------------------- the table
+
 
 def _res(*codes: str, status: str = "interpreted") -> dict:
     return {"status": status, "disorders": list(codes), "headline": " + ".join(codes) or "none"}
@@ -160,7 +179,13 @@ def test_row_arithmetic_on_hand_built_results():
         t.add({"case_id": "x", "ph": 7.4}, r)
     row = T.row(t)
     # 5 cases: primary 'a' in 4 (80 %), both named in 3 (60 %), nothing outside {a, b} in 4 (80 %), none in 1
-    assert (row["n"], row["primary"], row["all_named"], row["no_second"], row["no_disorder"]) == (5, 80.0, 60.0, 80.0, 20.0)
+    assert (row["n"], row["primary"], row["all_named"], row["no_second"], row["no_disorder"]) == (
+        5,
+        80.0,
+        60.0,
+        80.0,
+        20.0,
+    )
     assert row["failed_goals"] == ["all_named"] and not row["passed"]
     assert row["status"]["rejected"] == 20.0 and row["generator_problems"] == 1
     assert row["generator_example"]["case"] == {"ph": 7.4}
@@ -208,9 +233,14 @@ def test_one_and_two_workers_give_the_same_table(rb, plan):
 
 # ----------------------------------------------------------------------------- the file and overlays
 
+
 def test_overlay_inherits_cohorts_and_may_raise_a_goal(tmp_path):
-    site = _overlay(tmp_path, BOOK, "format: gasrules-cohorts/1\ngoals:\n  healthy: {no_disorder: 99.5}\n"
-                                    "cohort_goals:\n  high_gap_acidosis_with_respiratory_alkalosis: {all_named: 97}\n")
+    site = _overlay(
+        tmp_path,
+        BOOK,
+        "format: gasrules-cohorts/1\ngoals:\n  healthy: {no_disorder: 99.5}\n"
+        "cohort_goals:\n  high_gap_acidosis_with_respiratory_alkalosis: {all_named: 97}\n",
+    )
     p = C.load_plan(site)
     assert p.file == str(BOOK.parent / "cohorts.yaml") and len(p.cohorts) == 6
     goals = {c.id: c.goal for c in p.cohorts}
@@ -220,14 +250,20 @@ def test_overlay_inherits_cohorts_and_may_raise_a_goal(tmp_path):
 
 
 def test_overlay_lowering_a_goal_is_an_error_with_its_location(tmp_path):
-    site = _overlay(tmp_path, BOOK, "format: gasrules-cohorts/1\ngoals:\n  simple: {primary: 90}\n"
-                                    "cohort_goals:\n  healthy: {no_disorder: 50}\n")
+    site = _overlay(
+        tmp_path,
+        BOOK,
+        "format: gasrules-cohorts/1\ngoals:\n  simple: {primary: 90}\n"
+        "cohort_goals:\n  healthy: {no_disorder: 50}\n",
+    )
     with pytest.raises(C.CohortError) as exc:
         C.load_plan(site)
     text = [p.render() for p in exc.value.problems]
     assert len(text) == 2 and all("CO-E003" in t for t in text)
     assert any("site/cohorts.yaml:3:" in t and "primary 90 % lowers the inherited 95 %" in t for t in text)
-    assert any("site/cohorts.yaml:5:" in t and "no_disorder 50 % lowers the inherited 99 %" in t for t in text)
+    assert any(
+        "site/cohorts.yaml:5:" in t and "no_disorder 50 % lowers the inherited 99 %" in t for t in text
+    )
     out = runner.invoke(V.app, [str(site)])
     assert out.exit_code == 1 and "CO-E003" in out.output
 
@@ -241,25 +277,37 @@ def test_schema_and_name_errors_name_file_line_and_column(tmp_path, rb):
         C.load_plan(book)
     (p,) = exc.value.problems
     # an unknown key is reported at the mapping that holds it (here the document, whose first key is line 4)
-    assert p.code == "CO-E002" and "'sizes' was unexpected" in p.message and "book/cohorts.yaml:4:1" in p.render()
-    f.write_text(text.replace("high: ag_high", "high: ag_top").replace("- metabolic_acidosis_high_anion_gap\n  driver",
-                                                                        "- metabolic_acidosis_hi\n  driver", 1),
-                 encoding="utf-8")
+    assert (
+        p.code == "CO-E002"
+        and "'sizes' was unexpected" in p.message
+        and "book/cohorts.yaml:4:1" in p.render()
+    )
+    f.write_text(
+        text.replace("high: ag_high", "high: ag_top").replace(
+            "- metabolic_acidosis_high_anion_gap\n  driver", "- metabolic_acidosis_hi\n  driver", 1
+        ),
+        encoding="utf-8",
+    )
     problems = C.check_plan(rb, C.load_plan(book))
     assert sorted(p.code for p in problems) == ["CO-E004", "CO-E004"]
     assert any("'ag_top', not a numeric parameter" in p.message and p.location.line > 0 for p in problems)
-    assert any("'metabolic_acidosis_hi'" in p.message and "metabolic_alkalosis" in p.expected for p in problems)
+    assert any(
+        "'metabolic_acidosis_hi'" in p.message and "metabolic_alkalosis" in p.expected for p in problems
+    )
 
 
 def test_implausible_range_is_refused(tmp_path, rb):
     book = _copy(tmp_path)
     f = book.parent / "cohorts.yaml"
-    f.write_text(f.read_text(encoding="utf-8").replace("- 50\n    - 80", "- 50\n    - 300", 1), encoding="utf-8")
+    f.write_text(
+        f.read_text(encoding="utf-8").replace("- 50\n    - 80", "- 50\n    - 300", 1), encoding="utf-8"
+    )
     (p,) = C.check_plan(rb, C.load_plan(book))
     assert p.code == "CO-E006" and "5 to 250 mm[Hg]" in p.expected
 
 
 # ----------------------------------------------------------------------------- commands
+
 
 def test_verify_prints_the_table_and_fails_on_a_goal(tmp_path):
     out = runner.invoke(V.app, [str(BOOK), "--workers", "1"])
@@ -269,7 +317,9 @@ def test_verify_prints_the_table_and_fails_on_a_goal(tmp_path):
     quick = runner.invoke(V.app, [str(BOOK), "--no-cohorts"])
     assert quick.exit_code == 0 and "Cohorts" not in quick.output
     js = json.loads(runner.invoke(V.app, [str(BOOK), "--json", "--cohort-size", "50"]).output)
-    assert js["cohorts"]["size"] == 50 and len(js["cohorts"]["rows"]) == 6 and js["cohorts"]["passed"] is False
+    assert (
+        js["cohorts"]["size"] == 50 and len(js["cohorts"]["rows"]) == 6 and js["cohorts"]["passed"] is False
+    )
 
 
 def test_verify_passes_when_every_goal_is_met(tmp_path):
@@ -301,9 +351,11 @@ def test_release_requires_the_goals_and_records_the_table(tmp_path):
     with pytest.raises(ReleaseRefused) as exc:
         release(book, release_dir=tmp_path / "rel", approvers=[lead], authors=["A. Author"])
     reasons = [r for r in exc.value.reasons if r[0] == "cohorts.goal"]
-    assert [r[1].split(":")[0] for r in reasons] == ["cohort metabolic_acidosis_high_gap",
-                                                      "cohort respiratory_acidosis_acute",
-                                                      "cohort respiratory_alkalosis_chronic"]
+    assert [r[1].split(":")[0] for r in reasons] == [
+        "cohort metabolic_acidosis_high_gap",
+        "cohort respiratory_acidosis_acute",
+        "cohort respiratory_alkalosis_chronic",
+    ]
     f = book.parent / "cohorts.yaml"
     data = yaml.safe_load(f.read_text(encoding="utf-8"))
     data["cohorts"] = [c for c in data["cohorts"] if c["kind"] != "simple"]
@@ -320,8 +372,11 @@ def test_impact_shows_the_figures_side_by_side(tmp_path):
     base = _copy(tmp_path)
     site = _overlay(tmp_path, base, None)
     text = site.read_text(encoding="utf-8")
-    site.write_text(text + "parameters:\n  pco2_low: {value: 30, rationale: 'a lower limit', "
-                    "source: {evidence: CP, note: 'Common practice'}}\n", encoding="utf-8")
+    site.write_text(
+        text + "parameters:\n  pco2_low: {value: 30, rationale: 'a lower limit', "
+        "source: {evidence: CP, note: 'Common practice'}}\n",
+        encoding="utf-8",
+    )
     corpus = tmp_path / "c.jsonl"
     corpus.write_text('{"case_id": "1", "ph": 7.4, "pco2": 40, "hco3": 24}\n', encoding="utf-8")
     out = runner.invoke(I.app, [str(base), str(site), str(corpus), "-w", "1", "--no-progress"])
@@ -330,12 +385,16 @@ def test_impact_shows_the_figures_side_by_side(tmp_path):
     old, new = (float(v) for v in line.split()[4:6])
     # PCO2 below 30 instead of 35 names fewer respiratory alkaloses: more cases with no other disorder
     assert new > old
-    js = json.loads(runner.invoke(I.app, [str(base), str(site), str(corpus), "-w", "1", "--no-progress",
-                                          "-f", "json"]).output)
+    js = json.loads(
+        runner.invoke(
+            I.app, [str(base), str(site), str(corpus), "-w", "1", "--no-progress", "-f", "json"]
+        ).output
+    )
     assert {r["cohort"] for r in js["cohorts"]} == {c.id for c in C.load_plan(base).cohorts}
 
 
 # ----------------------------------------------------------------------------- shipped rulebooks (10,000 each, once)
+
 
 @pytest.fixture(scope="module", params=[ADULT, SITE], ids=["adult", "example-site"])
 def shipped_table(request):
@@ -348,4 +407,6 @@ def test_shipped_cohorts_run_whole_without_generator_problems(shipped_table):
     assert shipped_table["size"] == 10000 and len(shipped_table["rows"]) == 13
     assert all(r["n"] == 10000 for r in shipped_table["rows"])
     assert shipped_table["generator_problems"] == 0
-    assert all(r["status"]["inconsistent"] == 0 and r["status"]["rejected"] == 0 for r in shipped_table["rows"])
+    assert all(
+        r["status"]["inconsistent"] == 0 and r["status"]["rejected"] == 0 for r in shipped_table["rows"]
+    )

@@ -29,15 +29,19 @@ def tuned(tuned_release_rulebook: Path) -> Path:
 def test_parameters_carry_value_unit_bounds_source_and_setter() -> None:
     md = render_markdown(build_document(DATA / "rulebook.yaml"))
     row = next(line for line in md.splitlines() if line.startswith("| `ph_low`"))
-    assert row == ("| `ph_low` | 7.35 [pH] | 7.3 to 7.38 | Common practice (arterial pH reference interval 7.35-7.45) "
-                   f"(CP) | {gasrules.load_rulebook(DATA / 'rulebook.yaml').parameters['ph_low'].set_by.file}:28 | "
-                   "Lower limit of the arterial pH reference interval. |")
+    assert row == (
+        "| `ph_low` | 7.35 [pH] | 7.3 to 7.38 | Common practice (arterial pH reference interval 7.35-7.45) "
+        f"(CP) | {gasrules.load_rulebook(DATA / 'rulebook.yaml').parameters['ph_low'].set_by.file}:28 | "
+        "Lower limit of the arterial pH reference interval. |"
+    )
 
 
 def test_overlay_parameters_name_the_file_that_set_them() -> None:
     doc = build_document(SITE)
     by_name = {p["name"]: p for p in doc.parameters}
-    assert by_name["ag_high"]["set_by"].startswith(str(gasrules.load_rulebook(SITE).parameters["ag_high"].set_by.file))
+    assert by_name["ag_high"]["set_by"].startswith(
+        str(gasrules.load_rulebook(SITE).parameters["ag_high"].set_by.file)
+    )
     assert "example-site" in by_name["ag_high"]["set_by"]
     assert "adult" in by_name["ph_low"]["set_by"] and "example-site" not in by_name["ph_low"]["set_by"]
 
@@ -74,7 +78,7 @@ def test_html_is_self_contained_and_escaped(tuned: Path) -> None:
     page = render_html(build_document(tuned, since=DATA / "rulebook.yaml"))
     assert page.startswith("<!DOCTYPE html>") and page.rstrip().endswith("</html>")
     assert "<script" not in page and not re.search(r"""(src|href)\s*=\s*["']?(https?:)?//""", page)
-    assert "pH &lt; ph_low [7.3 [pH]]" in page                  # escaped, with the new value
+    assert "pH &lt; ph_low [7.3 [pH]]" in page  # escaped, with the new value
     assert '<span class="patch">patch</span>' in page
 
 

@@ -16,11 +16,11 @@ import pytest
 
 import gasrules
 from conftest import MINI, portable
-from gasrules.verification.casegen import generate_cases
-from gasrules.rulebook.codegen import CALC_ERROR
 from gasrules.evaluation.evaluator import read_case
 from gasrules.evaluation.render import render_trace
 from gasrules.evaluation.trace import build_trace
+from gasrules.rulebook.codegen import CALC_ERROR
+from gasrules.verification.casegen import generate_cases
 
 # DuBose, Acidosis and alkalosis, Harrison's (table of mixed disorders), example 1.
 DUBOSE_E1 = {"ph": 7.39, "pco2": 24, "hco3": 14, "na": 140, "cl": 106}
@@ -47,6 +47,7 @@ def whys(result: dict[str, Any]) -> dict[str, str]:
 
 # ----------------------------------------------------------------------------- missing inputs
 
+
 def test_empty_case_never_crashes(mini_rb: Any, result_validator: Any) -> None:
     result = gasrules.interpret(mini_rb, {})
     assert result["status"] == "partial"
@@ -60,7 +61,7 @@ def test_empty_case_never_crashes(mini_rb: Any, result_validator: Any) -> None:
 def test_skipped_rules_name_what_is_missing(mini_rb: Any) -> None:
     result = gasrules.interpret(mini_rb, {"ph": 7.30})
     ev = events(result)
-    assert ev["ph_state.acidaemia"]["outcome"] == "fired"     # pH 7.30 < 7.35 (common practice)
+    assert ev["ph_state.acidaemia"]["outcome"] == "fired"  # pH 7.30 < 7.35 (common practice)
     assert ev["primary.metabolic_acidosis"]["outcome"] == "skipped_missing_input"
     assert ev["primary.metabolic_acidosis"]["missing"] == ["hco3"]
     assert ev["primary.respiratory_acidosis"]["missing"] == ["hco3", "pco2"]
@@ -81,8 +82,8 @@ def test_core_steps_complete_is_interpreted(mini_rb: Any) -> None:
     result = gasrules.interpret(mini_rb, DUBOSE_E1)
     assert result["status"] == "interpreted"
     assert result["disorders"] == ["metabolic_acidosis_high_anion_gap", "respiratory_alkalosis"]
-    assert result["values"]["anion_gap"] == 20.0       # 140 - (106 + 14) (DuBose: AG 20)
-    assert result["values"]["expected_pco2"] == 29.0   # 1.5 x 14 + 8 (Albert, Dell & Winters 1967)
+    assert result["values"]["anion_gap"] == 20.0  # 140 - (106 + 14) (DuBose: AG 20)
+    assert result["values"]["expected_pco2"] == 29.0  # 1.5 x 14 + 8 (Albert, Dell & Winters 1967)
 
 
 def test_shipped_rulebook_missing_optional_inputs(shipped_rb: Any) -> None:
@@ -115,6 +116,7 @@ def test_every_subset_of_inputs(size: int, mini_rb: Any, shipped_rb: Any, result
 
 # ----------------------------------------------------------------------------- calculation errors
 
+
 def test_calculation_error_makes_only_that_value_not_assessable(mini_rb: Any) -> None:
     result = gasrules.interpret(mini_rb, GAP_WITH_NORMAL_HCO3)
     assert result["status"] == "interpreted"
@@ -122,7 +124,9 @@ def test_calculation_error_makes_only_that_value_not_assessable(mini_rb: Any) ->
     # the other values are there: gap 140 - (96 + 24) = 20; HH HCO3 0.0307 x 40 x 10^1.3 = 24.50 (NCCLS form)
     assert result["values"]["anion_gap"] == 20.0
     assert result["values"]["calculated_hco3"] == 24.5
-    assert {"what": "Delta ratio", "why": "eval.calculation_error: division by zero"} in result["not_assessed"]
+    assert {"what": "Delta ratio", "why": "eval.calculation_error: division by zero"} in result[
+        "not_assessed"
+    ]
     # the rule that reads it sees an unavailable value, nothing more
     assert events(result)["delta.ratio"]["outcome"] == "not_fired"
     # inside the generated function: that value's state is a calculation error
@@ -141,17 +145,23 @@ def test_calculation_error_in_a_condition(tmp_path: Path) -> None:
         "    title: Delta ratio high\n"
         "    when: (ag_used - ag_normal) / (hco3_normal - hco3) > winter_slope\n"
         "    findings:\n"
-        "      - {code: delta.ratio_high, category: delta, severity: info, text: \"High delta ratio.\"}\n"
-        "\npresentation:\n", 1)
+        '      - {code: delta.ratio_high, category: delta, severity: info, text: "High delta ratio."}\n'
+        "\npresentation:\n",
+        1,
+    )
     path = tmp_path / "rb.yaml"
     path.write_text(text, encoding="utf-8")
     rb = gasrules.load_rulebook(path, cache=False)
     result = gasrules.interpret(rb, GAP_WITH_NORMAL_HCO3)
     ev = events(result)["delta.ratio_high"]
     assert (ev["outcome"], ev["reason"]) == ("error", "division by zero")
-    assert {"what": "rule delta.ratio_high", "why": "eval.calculation_error: division by zero"} in result["not_assessed"]
+    assert {"what": "rule delta.ratio_high", "why": "eval.calculation_error: division by zero"} in result[
+        "not_assessed"
+    ]
     assert result["status"] == "interpreted"
-    assert "ERROR" in render_trace(result["trace"]) and "reason: division by zero" in render_trace(result["trace"])
+    assert "ERROR" in render_trace(result["trace"]) and "reason: division by zero" in render_trace(
+        result["trace"]
+    )
 
 
 # ----------------------------------------------------------------------------- thresholds at reported precision
@@ -173,18 +183,29 @@ def test_threshold_compared_at_reported_precision(mini_rb: Any) -> None:
     ev = events(result)["oxygenation.pf_moderate"]
     assert ev["outcome"] == "not_fired"
     assert ev["reads"]["pf_ratio"] == 199.99999999999997
-    assert core(ev["comparisons"]) == [{"quantity": "pf_ratio", "value": 199.99999999999997, "compared": 200.0,
-                                  "op": "<", "threshold": "pf_moderate", "threshold_value": 200.0,
-                                  "margin": 0.0}]
+    assert core(ev["comparisons"]) == [
+        {
+            "quantity": "pf_ratio",
+            "value": 199.99999999999997,
+            "compared": 200.0,
+            "op": "<",
+            "threshold": "pf_moderate",
+            "threshold_value": 200.0,
+            "margin": 0.0,
+        }
+    ]
     assert "oxygenation.pf_low" not in [f["code"] for f in result["findings"]]
 
 
-@pytest.mark.parametrize("po2, shown, fires", [
-    (55.9, 200.0, False),   # 199.64 -> 200 on screen
-    (55.8, 199.0, True),    # 199.29 -> 199
-    (55.86, 200.0, False),  # 199.50 -> 200 (half away from zero)
-    (56.2, 201.0, False),   # 200.71 -> 201
-])
+@pytest.mark.parametrize(
+    "po2, shown, fires",
+    [
+        (55.9, 200.0, False),  # 199.64 -> 200 on screen
+        (55.8, 199.0, True),  # 199.29 -> 199
+        (55.86, 200.0, False),  # 199.50 -> 200 (half away from zero)
+        (56.2, 201.0, False),  # 200.71 -> 201
+    ],
+)
 def test_threshold_neighbours(mini_rb: Any, po2: float, shown: float, fires: bool) -> None:
     # Rounding half away from zero at precision 0 (common practice for reported results)
     result = gasrules.interpret(mini_rb, dict(PF_CASE, po2=po2))
@@ -214,6 +235,7 @@ def test_inputs_compared_at_their_precision(mini_rb: Any) -> None:
 
 # ----------------------------------------------------------------------------- inconsistent sample
 
+
 def test_inconsistent_sample(shipped_rb: Any, result_validator: Any) -> None:
     # pH 7.40, PCO2 40, HCO3 30: HH HCO3 0.0307 x 40 x 10^(7.40 - 6.1) = 24.50
     # (NCCLS form with S 0.0307), 5.5 from the reported 30; Henderson [H+] 24 x 40 / 30 = 32.0 vs
@@ -240,45 +262,61 @@ def test_critical_values_survive_a_stop(shipped_rb: Any) -> None:
     assert result["status"] == "inconsistent" and result["disorders"] == []
     critical = [f["code"] for f in result["findings"] if f["severity"] == "critical"]
     assert {"critical.ph_low", "critical.k_high", "consistency.hh_ph"} <= set(critical)
-    assert result["findings"][0]["severity"] == "critical"      # critical findings come first
+    assert result["findings"][0]["severity"] == "critical"  # critical findings come first
     assert result["headline"].startswith("Critical pH")
 
 
 def test_inconsistent_sample_in_the_mini_rulebook(mini_rb: Any) -> None:
     result = gasrules.interpret(mini_rb, {"ph": 7.40, "pco2": 40, "hco3": 30, "na": 140, "cl": 100})
     assert (result["status"], result["disorders"], result["headline"]) == (
-        "inconsistent", [], "Values inconsistent: please recheck")
-    assert result["values"]["calculated_hco3"] == 24.5   # as above (NCCLS form)
+        "inconsistent",
+        [],
+        "Values inconsistent: please recheck",
+    )
+    assert result["values"]["calculated_hco3"] == 24.5  # as above (NCCLS form)
 
 
 # ----------------------------------------------------------------------------- the result contract
+
 
 def test_result_contract(mini_rb: Any, result_validator: Any) -> None:
     case = dict(DUBOSE_E1, case_id="E1", context={"ward": "ICU", "nested": {"a": [1, 2]}})
     before = copy.deepcopy(case)
     result = gasrules.interpret(mini_rb, case)
-    assert case == before                                    # the case is not modified
+    assert case == before  # the case is not modified
     assert result_validator(result) == []
     assert result["case_id"] == "E1" and result["context"] == {"ward": "ICU", "nested": {"a": [1, 2]}}
     assert result["rulebook"] == mini_rb.identity
     assert result["engine_version"] == gasrules.__version__
-    assert result["inputs"] == {"ph": 7.39, "pco2": 24.0, "hco3": 14.0, "na": 140.0, "cl": 106.0,
-                                "sample_type": "unknown"}
+    assert result["inputs"] == {
+        "ph": 7.39,
+        "pco2": 24.0,
+        "hco3": 14.0,
+        "na": 140.0,
+        "cl": 106.0,
+        "sample_type": "unknown",
+    }
     assert result["units"]["anion_gap"] == "mmol/L" and result["units"]["expected_pco2"] == "mm[Hg]"
-    assert "ag_used" not in result["values"]                 # report: false
-    assert result["cautions"] == ["Decision support only: supports, never replaces, clinical judgement.",
-                                  "Local laboratory ranges and protocols prevail."]
-    assert json.loads(json.dumps(result)) == result          # plain JSON data
+    assert "ag_used" not in result["values"]  # report: false
+    assert result["cautions"] == [
+        "Decision support only: supports, never replaces, clinical judgement.",
+        "Local laboratory ranges and protocols prevail.",
+    ]
+    assert json.loads(json.dumps(result)) == result  # plain JSON data
 
 
 def test_findings_and_texts(mini_rb: Any) -> None:
     result = gasrules.interpret(mini_rb, DUBOSE_E1)
     texts = {f["code"]: f["text"] for f in result["findings"]}
     # placeholders render at precision with units: Winter 1.5 x 14 + 8 = 29 (Albert, Dell & Winters 1967)
-    assert texts["compensation.pco2_below_expected"] == \
-        "PaCO2 24.0 mmHg is below the expected 29.0 mmHg (Winter): respiratory alkalosis as well."
-    assert texts["anion_gap.high"] == \
-        "Anion gap 20.0 mmol/L is above 12 mmol/L: high anion gap metabolic acidosis."
+    assert (
+        texts["compensation.pco2_below_expected"]
+        == "PaCO2 24.0 mmHg is below the expected 29.0 mmHg (Winter): respiratory alkalosis as well."
+    )
+    assert (
+        texts["anion_gap.high"]
+        == "Anion gap 20.0 mmol/L is above 12 mmol/L: high anion gap metabolic acidosis."
+    )
     assert all(f["rule"] and f["severity"] in ("info", "warning", "critical") for f in result["findings"])
 
 
@@ -286,15 +324,28 @@ def test_trace_off(mini_rb: Any) -> None:
     with_trace = gasrules.interpret(mini_rb, DUBOSE_E1)
     without = gasrules.interpret(mini_rb, DUBOSE_E1, trace=False)
     assert without["trace"] == []
-    assert {k: v for k, v in with_trace.items() if k != "trace"} == {k: v for k, v in without.items() if k != "trace"}
+    assert {k: v for k, v in with_trace.items() if k != "trace"} == {
+        k: v for k, v in without.items() if k != "trace"
+    }
 
 
-@pytest.mark.parametrize("case", [
-    {}, DUBOSE_E1, GAP_WITH_NORMAL_HCO3, PF_CASE, {"ph": "x"}, {"ph": 7.40, "pco2": 40, "hco3": 30},
-    {"ph": 7.1, "pco2": 70, "hco3": 21, "sample_type": "venous"}, [1], {"unknown": 1},
-])
-def test_results_validate_against_schema(case: Any, mini_rb: Any, shipped_rb: Any, site_rb: Any,
-                                         result_validator: Any) -> None:
+@pytest.mark.parametrize(
+    "case",
+    [
+        {},
+        DUBOSE_E1,
+        GAP_WITH_NORMAL_HCO3,
+        PF_CASE,
+        {"ph": "x"},
+        {"ph": 7.40, "pco2": 40, "hco3": 30},
+        {"ph": 7.1, "pco2": 70, "hco3": 21, "sample_type": "venous"},
+        [1],
+        {"unknown": 1},
+    ],
+)
+def test_results_validate_against_schema(
+    case: Any, mini_rb: Any, shipped_rb: Any, site_rb: Any, result_validator: Any
+) -> None:
     for rb in (mini_rb, shipped_rb, site_rb):
         result = gasrules.interpret(rb, case)
         assert result_validator(result) == [], (rb.id, case)
@@ -310,6 +361,7 @@ def test_generated_cases_validate(shipped_rb: Any, result_validator: Any) -> Non
 
 
 # ----------------------------------------------------------------------------- reference trace builder
+
 
 def project(rb: Any, case: dict[str, Any]) -> dict[str, Any]:
     """The part of a generated case this rulebook declares."""
@@ -340,7 +392,7 @@ def test_reference_trace_equals_generated_trace(which: str, request: pytest.Fixt
 
 def test_results_share_no_mutable_parts(shipped_rb: Any) -> None:
     # An integrator may edit a result it received; the next result must not change with it.
-    case = {"ph": 7.30, "pco2": 30, "hco3": 15}          # invented values (demo)
+    case = {"ph": 7.30, "pco2": 30, "hco3": 15}  # invented values (demo)
     first = gasrules.interpret(shipped_rb, case)
     for event in first["trace"]:
         for entry in (event.get("parameters") or {}).values():

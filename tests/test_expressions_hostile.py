@@ -24,8 +24,8 @@ from conftest import portable
 from gasrules.core.errors import Location
 from gasrules.rulebook.expressions import parse, runtime_globals
 
-ACIDAEMIA_WHEN = "    when: ph < ph_low\n"   # the condition of rule ph_state.acidaemia in the mini rulebook
-AG_EXPR = "    expr: na - (cl + hco3)\n"    # the expression of derived value anion_gap
+ACIDAEMIA_WHEN = "    when: ph < ph_low\n"  # the condition of rule ph_state.acidaemia in the mini rulebook
+AG_EXPR = "    expr: na - (cl + hco3)\n"  # the expression of derived value anion_gap
 
 DEEP_PARENS = "(" * 41 + "ph" + ")" * 41 + " < ph_low"
 LONG = " + ".join(["ph"] * 700) + " < ph_low"
@@ -159,7 +159,7 @@ def mini_text(mini_path: Path) -> str:
 
 
 def _line_of(text: str, snippet: str) -> int:
-    return text[:text.index(snippet)].count("\n") + 1
+    return text[: text.index(snippet)].count("\n") + 1
 
 
 @pytest.mark.parametrize("text, code", CATALOGUE, ids=[_ids(c) for c in CATALOGUE])
@@ -172,18 +172,23 @@ def test_refused_at_load(text: str, code: str, mini_text: str, tmp_path: Path) -
     errors = [p for p in problems if not p.is_warning]
     assert {p.code for p in errors} == {code}, [p.render() for p in errors]
     line = _line_of(rb_text, "    when: " + json.dumps(text))
-    assert all((p.location.line, p.location.col, p.location.path) == (line, 11, "rules[2].when") for p in errors)
+    assert all(
+        (p.location.line, p.location.col, p.location.path) == (line, 11, "rules[2].when") for p in errors
+    )
     with pytest.raises(gasrules.RulebookError):
         gasrules.load_rulebook(path, cache=False)
 
 
-@pytest.mark.parametrize("text, code", [
-    ("__import__('os').getcwd()", "RB-E021"),
-    ("na.__class__", "RB-E021"),
-    ("10 ** 400", "RB-E024"),
-    ("[na for na in (1, 2)]", "RB-E021"),
-    ("open('x')", "RB-E023"),
-])
+@pytest.mark.parametrize(
+    "text, code",
+    [
+        ("__import__('os').getcwd()", "RB-E021"),
+        ("na.__class__", "RB-E021"),
+        ("10 ** 400", "RB-E024"),
+        ("[na for na in (1, 2)]", "RB-E021"),
+        ("open('x')", "RB-E023"),
+    ],
+)
 def test_refused_in_derived_expressions(text: str, code: str, mini_text: str, tmp_path: Path) -> None:
     rb_text = mini_text.replace(AG_EXPR, f"    expr: {json.dumps(text)}\n")
     path = tmp_path / "rb.yaml"
@@ -202,6 +207,7 @@ def test_broken_derived_value_is_not_unknown(mini_text: str, tmp_path: Path) -> 
 
 
 # ----------------------------------------------------------------------------- gaps found and closed
+
 
 def _check_text(mini_text: str, tmp_path: Path, when: str) -> list[str]:
     path = tmp_path / "rb.yaml"
@@ -248,6 +254,7 @@ def test_overflow_at_run_time_is_a_calculation_error(mini_text: str, tmp_path: P
 
 # ----------------------------------------------------------------------------- generated code
 
+
 def test_generated_code_has_no_builtins(mini_rb: object) -> None:
     fn = mini_rb._function  # type: ignore[attr-defined]
     assert fn.__globals__["__builtins__"] == {}
@@ -255,7 +262,7 @@ def test_generated_code_has_no_builtins(mini_rb: object) -> None:
     assert g["__builtins__"] == {}
     for name in ("open", "__import__", "eval", "exec", "getattr", "type", "print"):
         with pytest.raises(NameError):
-            eval(name, g)  # noqa: S307 - proving the namespace has no builtins
+            eval(name, g)
 
 
 def test_generated_code_uses_only_known_globals(mini_rb: object, shipped_rb: object) -> None:
@@ -268,15 +275,22 @@ def test_generated_code_uses_only_known_globals(mini_rb: object, shipped_rb: obj
         assigned = {n.id for n in ast.walk(fn) if isinstance(n, ast.Name) and isinstance(n.ctx, ast.Store)}
         assigned |= {a.arg for a in fn.args.args}
         assigned |= {n.name for n in ast.walk(fn) if isinstance(n, ast.ExceptHandler) and n.name}
-        comprehension_vars = {t.id for c in ast.walk(fn) if isinstance(c, ast.comprehension)
-                              for t in ast.walk(c.target) if isinstance(t, ast.Name)}
+        comprehension_vars = {
+            t.id
+            for c in ast.walk(fn)
+            if isinstance(c, ast.comprehension)
+            for t in ast.walk(c.target)
+            if isinstance(t, ast.Name)
+        }
         available = set(rb._function.__globals__)  # type: ignore[attr-defined]
         read = {n.id for n in ast.walk(fn) if isinstance(n, ast.Name) and isinstance(n.ctx, ast.Load)}
         assert read - assigned - comprehension_vars - available == set()
         attributes = {n.attr for n in ast.walk(fn) if isinstance(n, ast.Attribute)}
         assert attributes <= {"append", "update", "get"}
-        assert not any(isinstance(n, (ast.Import, ast.ImportFrom, ast.Lambda, ast.Global, ast.Nonlocal))
-                       for n in ast.walk(fn))
+        assert not any(
+            isinstance(n, (ast.Import, ast.ImportFrom, ast.Lambda, ast.Global, ast.Nonlocal))
+            for n in ast.walk(fn)
+        )
 
 
 TRICKY = "Quote ' double \" triple ''' \"\"\" back\\\\slash {ph} %s \\n newline; __import__('os')"
@@ -288,17 +302,23 @@ def test_rulebook_text_cannot_inject_code(mini_text: str, tmp_path: Path) -> Non
     base = tmp_path / "rb.yaml"
     base.write_text(text, encoding="utf-8")
     overlay = tmp_path / "site.yaml"
-    overlay.write_text("format: gasrules/1\nextends: rb.yaml\nmetadata: {id: tricky, version: 1.0.0, "
-                       "title: Tricky, effective_date: 2026-12-01, status: draft}\n"
-                       f"suspend:\n  - rule: ph_state.alkalaemia\n    reason: {json.dumps(TRICKY)}\n",
-                       encoding="utf-8")
+    overlay.write_text(
+        "format: gasrules/1\nextends: rb.yaml\nmetadata: {id: tricky, version: 1.0.0, "
+        "title: Tricky, effective_date: 2026-12-01, status: draft}\n"
+        f"suspend:\n  - rule: ph_state.alkalaemia\n    reason: {json.dumps(TRICKY)}\n",
+        encoding="utf-8",
+    )
     rb = gasrules.load_rulebook(overlay, cache=False)
     result = gasrules.interpret(rb, {"ph": 7.30, "pco2": 30, "hco3": 15, "na": 140, "cl": 100})
     events = {e["rule"]: e for e in result["trace"]}
     assert events["ph_state.acidaemia"]["title"] == json.loads(json.dumps(TRICKY))
-    assert events["ph_state.alkalaemia"] == {"rule": "ph_state.alkalaemia", "step": "ph_state",
-                                             "title": "Alkalaemia", "outcome": "suspended",
-                                             "reason": json.loads(json.dumps(TRICKY))}
+    assert events["ph_state.alkalaemia"] == {
+        "rule": "ph_state.alkalaemia",
+        "step": "ph_state",
+        "title": "Alkalaemia",
+        "outcome": "suspended",
+        "reason": json.loads(json.dumps(TRICKY)),
+    }
 
 
 def test_expression_text_never_reaches_the_generated_source(mini_rb: object) -> None:

@@ -8,22 +8,25 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import Any
 
 import yaml
 
 import gasrules
 
 MINI = Path(__file__).resolve().parent / "data" / "mini" / "rulebook.yaml"
-NORMAL = {"ph": 7.40, "pco2": 40, "hco3": 24, "na": 140, "cl": 104}   # common practice normal values
+NORMAL = {"ph": 7.40, "pco2": 40, "hco3": 24, "na": 140, "cl": 104}  # common practice normal values
 
 
 def test_overflow_and_nan_at_run_time_are_calculation_errors(tmp_path: Path) -> None:
     data = yaml.safe_load(MINI.read_text(encoding="utf-8"))
     data["derived"]["huge"] = {"label": "Huge", "expr": "na * 1e308 * 10", "unit": "mmol/L", "precision": 1}
-    data["derived"]["nan_value"] = {"label": "Not a number", "expr": "na * 1e308 * 10 - na * 1e308 * 10",
-                                    "unit": "mmol/L", "precision": 1}
-    data["bibliography"] = str(MINI.parent / data["bibliography"])   # written elsewhere
+    data["derived"]["nan_value"] = {
+        "label": "Not a number",
+        "expr": "na * 1e308 * 10 - na * 1e308 * 10",
+        "unit": "mmol/L",
+        "precision": 1,
+    }
+    data["bibliography"] = str(MINI.parent / data["bibliography"])  # written elsewhere
     path = tmp_path / "rb.yaml"
     path.write_text(yaml.safe_dump(data), encoding="utf-8")
     rb = gasrules.load_rulebook(path)
@@ -32,11 +35,11 @@ def test_overflow_and_nan_at_run_time_are_calculation_errors(tmp_path: Path) -> 
     why = {item["what"]: item["why"] for item in result["not_assessed"]}
     assert why["Huge"] == "eval.calculation_error: result too large"
     assert why["Not a number"] == "eval.calculation_error: the result is not a number (NaN)"
-    json.dumps(result, allow_nan=False)   # strict JSON
+    json.dumps(result, allow_nan=False)  # strict JSON
     from gasrules.rulebook.codegen import CALC_ERROR
     from gasrules.verification.oracle import oracle_evaluate
 
-    _values, states, _outcomes, _codes = oracle_evaluate(rb, dict(NORMAL))   # the slow evaluator agrees
+    _values, states, _outcomes, _codes = oracle_evaluate(rb, dict(NORMAL))  # the slow evaluator agrees
     assert states["huge"] == CALC_ERROR and states["nan_value"] == CALC_ERROR
 
 

@@ -17,15 +17,22 @@ import sys
 from pathlib import Path
 
 import pytest
+from typer.testing import CliRunner
 
 from conftest import portable
+from gasrules.cli.commands import impact as impact_command
+from gasrules.core.resources import default_rulebook_path
 from gasrules.evaluation.evaluator import interpret
+from gasrules.governance.impact import (
+    ExpectedError,
+    conclusion_label,
+    load_expected,
+    render_html,
+    render_text,
+    replay,
+)
 from gasrules.rulebook.build import load_rulebook
 from gasrules.verification.casegen import generate_corpus
-from gasrules.cli.commands import impact as impact_command
-from gasrules.governance.impact import conclusion_label, load_expected, render_html, render_text, replay, ExpectedError
-from gasrules.core.resources import default_rulebook_path
-from typer.testing import CliRunner
 
 ROOT = Path(__file__).resolve().parent.parent
 SHIPPED = default_rulebook_path()
@@ -33,9 +40,25 @@ N, SEED, SHARE = 600, 5, 0.05
 
 
 def make_corpus(path: Path, fmt: str, n: int = N, seed: int = SEED, share: float = SHARE) -> Path:
-    subprocess.run([sys.executable, str(ROOT / "tools" / "make_demo_data.py"), "corpus", "--n", str(n),
-                    "--seed", str(seed), "--format", fmt, "--malformed-share", str(share), "--out", str(path)],
-                   check=True, capture_output=True)
+    subprocess.run(
+        [
+            sys.executable,
+            str(ROOT / "tools" / "make_demo_data.py"),
+            "corpus",
+            "--n",
+            str(n),
+            "--seed",
+            str(seed),
+            "--format",
+            fmt,
+            "--malformed-share",
+            str(share),
+            "--out",
+            str(path),
+        ],
+        check=True,
+        capture_output=True,
+    )
     return path
 
 
@@ -47,22 +70,32 @@ def data(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     assert text.count(anchor) == 1
     tuned = d / "tuned" / "rulebook.yaml"
     tuned.parent.mkdir()
-    tuned.write_text(text.replace(anchor, "  ag_high:\n    value: 13\n").replace("  version: 1.0.0\n", "  version: 1.0.1\n", 1),
-                     encoding="utf-8")
-    return {"tuned": tuned, "csv": make_corpus(d / "corpus.csv", "csv"), "jsonl": make_corpus(d / "corpus.jsonl", "jsonl")}
+    tuned.write_text(
+        text.replace(anchor, "  ag_high:\n    value: 13\n").replace(
+            "  version: 1.0.0\n", "  version: 1.0.1\n", 1
+        ),
+        encoding="utf-8",
+    )
+    return {
+        "tuned": tuned,
+        "csv": make_corpus(d / "corpus.csv", "csv"),
+        "jsonl": make_corpus(d / "corpus.jsonl", "jsonl"),
+    }
 
 
 def malformed_ids(n: int = N, seed: int = SEED, share: float = SHARE) -> dict[str, str]:
     """case id -> malformation kind, from the same seeded generator the tool uses."""
-    return {case["case_id"]: kind for kind, _key, case in generate_corpus(n, seed, malformed_share=share) if kind}
+    return {
+        case["case_id"]: kind for kind, _key, case in generate_corpus(n, seed, malformed_share=share) if kind
+    }
 
 
 def test_malformed_csv_rows_are_counted_and_listed_never_dropped(data: dict[str, Path]) -> None:
     rb = load_rulebook(SHIPPED)
     report = replay(rb, rb, data["csv"])
     bad = malformed_ids()
-    assert 10 <= len(bad) <= 50                     # enough to mean something; all fit in the listing
-    assert report.rows == N                         # N rows in, N counted
+    assert 10 <= len(bad) <= 50  # enough to mean something; all fit in the listing
+    assert report.rows == N  # N rows in, N counted
     assert sum(report.status_pairs.values()) == N
     assert report.rejected["both"] == len(bad) == sum(report.rejected.values())
     assert {m["case_id"] for m in report.malformed} == set(bad)
@@ -79,10 +112,14 @@ def test_malformed_jsonl_rows_are_rejected_with_the_field_named(data: dict[str, 
     report = replay(rb, rb, data["jsonl"])
     assert report.rows == N
     listed = {m["case_id"]: m for m in report.malformed}
-    gen = {case["case_id"]: (kind, key, case) for kind, key, case in generate_corpus(N, SEED, malformed_share=SHARE) if kind}
+    gen = {
+        case["case_id"]: (kind, key, case)
+        for kind, key, case in generate_corpus(N, SEED, malformed_share=SHARE)
+        if kind
+    }
     for cid, (kind, key, case) in gen.items():
         if kind == "missing_value" and case[key] is None:
-            continue                                # JSON null is "not measured": interpreted, not rejected
+            continue  # JSON null is "not measured": interpreted, not rejected
         assert cid in listed, (cid, kind)
         assert key in listed[cid]["errors"], (cid, kind, listed[cid]["errors"])
 
@@ -106,14 +143,19 @@ def test_transitions_match_direct_interpretation(data: dict[str, Path]) -> None:
     direct = 0
     for case in cases.values():
         a, b = interpret(old, case, trace=False), interpret(new, case, trace=False)
-        direct += conclusion_label(a["status"], a["disorders"]) != conclusion_label(b["status"], b["disorders"])
+        direct += conclusion_label(a["status"], a["disorders"]) != conclusion_label(
+            b["status"], b["disorders"]
+        )
     assert direct == report.changed_disorders
     for t in report.transitions.values():
         assert len(t.examples) == min(t.count, 5)
         assert any(r.startswith("anion_gap.") for r in t.rules), t
         for cid in t.examples:
             a, b = interpret(old, cases[cid]), interpret(new, cases[cid])
-            assert (conclusion_label(a["status"], a["disorders"]), conclusion_label(b["status"], b["disorders"])) == (t.old, t.new)
+            assert (
+                conclusion_label(a["status"], a["disorders"]),
+                conclusion_label(b["status"], b["disorders"]),
+            ) == (t.old, t.new)
     assert "anion_gap.high_gap_acidosis" in report.rules or "anion_gap.hidden_high_gap" in report.rules
 
 
@@ -124,7 +166,7 @@ def test_near_threshold_cases_lie_within_the_window(data: dict[str, Path]) -> No
     assert any(report.near_counts.values())
     for i, examples in report.near_examples.items():
         for _case, margin in examples:
-            assert abs(margin) <= 1.0 + 1e-9        # the limit moved by 1 mmol/L
+            assert abs(margin) <= 1.0 + 1e-9  # the limit moved by 1 mmol/L
 
 
 @pytest.mark.slow
@@ -139,21 +181,33 @@ def test_same_report_with_one_and_two_workers(data: dict[str, Path]) -> None:
 def test_expected_transitions_turn_surprises_into_exit_1(data: dict[str, Path], tmp_path: Path) -> None:
     old, new = load_rulebook(SHIPPED), load_rulebook(data["tuned"])
     report = replay(old, new, data["csv"])
-    args = [str(SHIPPED), str(data["tuned"]), str(data["csv"]), "--workers", "1", "--no-progress", "--no-cohorts"]
-    res = CliRunner().invoke(impact_command.app, args)     # this corpus has 5 % malformed rows on purpose
+    args = [
+        str(SHIPPED),
+        str(data["tuned"]),
+        str(data["csv"]),
+        "--workers",
+        "1",
+        "--no-progress",
+        "--no-cohorts",
+    ]
+    res = CliRunner().invoke(impact_command.app, args)  # this corpus has 5 % malformed rows on purpose
     assert res.exit_code == 4 and "more than the limit of 1 %" in res.output, res.output
     runner = CliRunner(env={"GASRULES_CORPUS_UNREADABLE_PERCENT": "50"})
     res = runner.invoke(impact_command.app, args)
     assert res.exit_code == 0, res.output
     everything = tmp_path / "all.yaml"
-    everything.write_text("expected:\n  - {from: '*', to: '*', reason: any change is fine}\n", encoding="utf-8")
+    everything.write_text(
+        "expected:\n  - {from: '*', to: '*', reason: any change is fine}\n", encoding="utf-8"
+    )
     assert runner.invoke(impact_command.app, args + ["--expected", str(everything)]).exit_code == 0
     first = report.sorted_transitions()[0]
     old_codes = [] if first.old == "(no disorder)" else first.old.split(" + ")
     new_codes = [] if first.new == "(no disorder)" else first.new.split(" + ")
     only_one = tmp_path / "one.yaml"
-    only_one.write_text(json.dumps({"expected": [{"from": old_codes, "to": new_codes, "reason": "the limit moved"}]}),
-                        encoding="utf-8")
+    only_one.write_text(
+        json.dumps({"expected": [{"from": old_codes, "to": new_codes, "reason": "the limit moved"}]}),
+        encoding="utf-8",
+    )
     res = runner.invoke(impact_command.app, args + ["--expected", str(only_one)])
     assert res.exit_code == (0 if len(report.transitions) == 1 else 1)
     assert "[expected]" in res.stdout
@@ -178,13 +232,26 @@ def test_html_is_self_contained(data: dict[str, Path]) -> None:
 
 
 def test_unreadable_corpus_is_a_usage_error(tmp_path: Path) -> None:
-    res = CliRunner().invoke(impact_command.app, [str(SHIPPED), str(SHIPPED), str(tmp_path / "nope.csv"), "-w", "1"])
+    res = CliRunner().invoke(
+        impact_command.app, [str(SHIPPED), str(SHIPPED), str(tmp_path / "nope.csv"), "-w", "1"]
+    )
     assert res.exit_code == 2 and "nope.csv" in res.output
 
 
 def test_demo_corpus_format_follows_the_file_name(tmp_path: Path) -> None:
     """The README's corpus step (--out corpus.csv, no --format) writes CSV, not JSON Lines."""
     for name, first in (("c.csv", "case_id,"), ("c.jsonl", "{")):
-        subprocess.run([sys.executable, str(ROOT / "tools" / "make_demo_data.py"), "corpus", "--n", "3",
-                        "--out", str(tmp_path / name)], check=True, capture_output=True)
+        subprocess.run(
+            [
+                sys.executable,
+                str(ROOT / "tools" / "make_demo_data.py"),
+                "corpus",
+                "--n",
+                "3",
+                "--out",
+                str(tmp_path / name),
+            ],
+            check=True,
+            capture_output=True,
+        )
         assert (tmp_path / name).read_text(encoding="utf-8").startswith(first)

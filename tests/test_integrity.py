@@ -11,8 +11,9 @@ from __future__ import annotations
 import copy
 import json
 import shutil
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import pytest
 import yaml
@@ -29,7 +30,7 @@ LEGACY = DATA / "legacy_scheme1"
 
 
 def _write(path: Path, data: dict[str, Any]) -> Path:
-    if isinstance(data.get("bibliography"), str):    # written elsewhere: the mini bibliography by its full path
+    if isinstance(data.get("bibliography"), str):  # written elsewhere: the mini bibliography by its full path
         data = {**data, "bibliography": str((MINI.parent / data["bibliography"]).resolve())}
     path.write_text(yaml.safe_dump(data, sort_keys=False, allow_unicode=True), encoding="utf-8")
     return path
@@ -47,10 +48,14 @@ EDITS: dict[str, Callable[[dict[str, Any]], None]] = {
     "steps.core": lambda d: d["steps"][_first(d["steps"])].__setitem__("core", False),
     "steps.label": lambda d: d["steps"][_first(d["steps"])].__setitem__("label", "Renamed step"),
     "inputs.label": lambda d: d["inputs"]["ph"].__setitem__("label", "pH (edited)"),
-    "parameters.rationale": lambda d: d["parameters"][_first(d["parameters"])].__setitem__("rationale", "edited"),
+    "parameters.rationale": lambda d: d["parameters"][_first(d["parameters"])].__setitem__(
+        "rationale", "edited"
+    ),
     "derived.label": lambda d: d["derived"][_first(d["derived"])].__setitem__("label", "Edited label"),
     "rules.finding_text": lambda d: d["rules"][-1]["findings"][0].__setitem__("text", "Edited finding text"),
-    "presentation.headline": lambda d: d["presentation"]["headline"].__setitem__("no_disorder", "Metabolic acidosis"),
+    "presentation.headline": lambda d: d["presentation"]["headline"].__setitem__(
+        "no_disorder", "Metabolic acidosis"
+    ),
     "display_units": lambda d: d.__setitem__("display_units", {"mm[Hg]": "kPa"}),
     "suspend": lambda d: d.__setitem__("suspend", [{"rule": d["rules"][-1]["id"], "reason": "edited"}]),
 }
@@ -62,13 +67,14 @@ def mini_data() -> dict[str, Any]:
 
 
 @pytest.mark.parametrize("edit", sorted(EDITS))
-def test_every_section_edited_after_approval_is_refused_in_strict_mode(edit: str, tmp_path: Path,
-                                                                       mini_data: dict[str, Any]) -> None:
+def test_every_section_edited_after_approval_is_refused_in_strict_mode(
+    edit: str, tmp_path: Path, mini_data: dict[str, Any]
+) -> None:
     approved = _write(tmp_path / "approved.yaml", mini_data)
     rb = gasrules.load_rulebook(approved)
     release_dir = tmp_path / "rel"
     registry.write_manifest(release_dir, {"format": registry.MANIFEST_FORMAT, "rulebook": rb.identity})
-    Runtime(rb, Settings(strict=True, release_dir=release_dir)).close()   # the approved one runs
+    Runtime(rb, Settings(strict=True, release_dir=release_dir)).close()  # the approved one runs
     edited = copy.deepcopy(mini_data)
     EDITS[edit](edited)
     changed = gasrules.load_rulebook(_write(tmp_path / "edited.yaml", edited))
@@ -79,9 +85,13 @@ def test_every_section_edited_after_approval_is_refused_in_strict_mode(edit: str
     assert "edited after approval" in exc.value.reason
 
 
-@pytest.mark.parametrize("key,value", [("status", "approved"),
-                                       ("changelog", [{"version": "0.1.0", "date": "2026-12-02", "summary": "x"}])])
-def test_lifecycle_metadata_is_not_hashed(key: str, value: Any, tmp_path: Path, mini_data: dict[str, Any]) -> None:
+@pytest.mark.parametrize(
+    "key,value",
+    [("status", "approved"), ("changelog", [{"version": "0.1.0", "date": "2026-12-02", "summary": "x"}])],
+)
+def test_lifecycle_metadata_is_not_hashed(
+    key: str, value: Any, tmp_path: Path, mini_data: dict[str, Any]
+) -> None:
     rb = gasrules.load_rulebook(_write(tmp_path / "a.yaml", mini_data))
     edited = copy.deepcopy(mini_data)
     edited["metadata"][key] = value
@@ -91,13 +101,16 @@ def test_lifecycle_metadata_is_not_hashed(key: str, value: Any, tmp_path: Path, 
 def test_manifest_records_the_hash_scheme(tmp_path: Path, mini_rb: Any) -> None:
     import json
 
-    path = registry.write_manifest(tmp_path, {"format": registry.MANIFEST_FORMAT, "rulebook": mini_rb.identity})
+    path = registry.write_manifest(
+        tmp_path, {"format": registry.MANIFEST_FORMAT, "rulebook": mini_rb.identity}
+    )
     manifest = json.loads(path.read_text(encoding="utf-8"))
     assert manifest["hash_scheme"] == 2
     assert manifest["manifest_sha256"] == registry.manifest_hash(manifest)
 
 
 # ---------------------------------------------------------------- scheme 1, made before the change
+
 
 @pytest.fixture
 def legacy(tmp_path: Path) -> Path:
@@ -127,47 +140,63 @@ def test_legacy_release_still_admits_the_same_rulebook_in_strict_mode(legacy: Pa
 def test_legacy_release_refuses_a_headline_edited_after_approval(legacy: Path) -> None:
     path = legacy / "rulebook.yaml"
     text = path.read_text(encoding="utf-8")
-    path.write_text(text.replace('no_disorder: "No acid-base disorder identified"',
-                                 'no_disorder: "Metabolic acidosis"'), encoding="utf-8")
+    path.write_text(
+        text.replace('no_disorder: "No acid-base disorder identified"', 'no_disorder: "Metabolic acidosis"'),
+        encoding="utf-8",
+    )
     rb = gasrules.load_rulebook(path)
-    assert rb.sha256_v1 == registry.read_manifests(legacy / "releases")[0].rulebook["sha256"]  # scheme 1 blind
+    assert (
+        rb.sha256_v1 == registry.read_manifests(legacy / "releases")[0].rulebook["sha256"]
+    )  # scheme 1 blind
     with pytest.raises(RuntimeRefusal) as exc:
         Runtime(rb, Settings(strict=True, release_dir=legacy / "releases"))
     assert "hash scheme 1" in exc.value.reason
 
 
 def test_legacy_decision_records_replay_with_the_archive(legacy: Path) -> None:
-    report = replay_log(legacy / "decisions.jsonl", registry.archive_loader(legacy / "releases" / "archive"),
-                        gasrules.interpret)
+    report = replay_log(
+        legacy / "decisions.jsonl",
+        registry.archive_loader(legacy / "releases" / "archive"),
+        gasrules.interpret,
+    )
     assert report.ok, report.outcomes
     assert report.counts["same"] == 2
 
 
 # ---------------------------------------------------------------- the governed Python API
 
+
 def test_runtime_is_the_governed_python_api(tmp_path: Path, mini_data: dict[str, Any]) -> None:
     path = _write(tmp_path / "book.yaml", mini_data)
     assert gasrules.Runtime is Runtime and "Runtime" in gasrules.__all__
     release_dir = tmp_path / "rel"
-    with pytest.raises(gasrules.RuntimeRefusal):     # strict, nothing approved
+    with pytest.raises(gasrules.RuntimeRefusal):  # strict, nothing approved
         gasrules.Runtime.open(path, env={"GASRULES_STRICT": "1", "GASRULES_RELEASE_DIR": str(release_dir)})
     rb = gasrules.load_rulebook(path)
     registry.write_manifest(release_dir, {"format": registry.MANIFEST_FORMAT, "rulebook": rb.identity})
     log = tmp_path / "d.jsonl"
-    with gasrules.Runtime.open(path, env={"GASRULES_STRICT": "1", "GASRULES_RELEASE_DIR": str(release_dir),
-                                          "GASRULES_DECISION_LOG": str(log), "GASRULES_LOG_FSYNC": "0"}) as rt:
+    with gasrules.Runtime.open(
+        path,
+        env={
+            "GASRULES_STRICT": "1",
+            "GASRULES_RELEASE_DIR": str(release_dir),
+            "GASRULES_DECISION_LOG": str(log),
+            "GASRULES_LOG_FSYNC": "0",
+        },
+    ) as rt:
         got = rt.interpret({"ph": 7.40, "pco2": 40, "hco3": 24})
-    assert got == gasrules.interpret(rb, {"ph": 7.40, "pco2": 40, "hco3": 24})   # the pure function agrees
+    assert got == gasrules.interpret(rb, {"ph": 7.40, "pco2": 40, "hco3": 24})  # the pure function agrees
     assert verify_log(log).entries == 1
 
 
-def test_interpret_command_and_service_go_through_the_runtime(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
-                                                             mini_data: dict[str, Any]) -> None:
+def test_interpret_command_and_service_go_through_the_runtime(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, mini_data: dict[str, Any]
+) -> None:
     """With no settings at all, both still open the governed Runtime."""
     from typer.testing import CliRunner
 
-    from gasrules.governance import runtime as runtime_module
     from gasrules.cli.commands import interpret as interpret_command
+    from gasrules.governance import runtime as runtime_module
     from gasrules.service.handlers import ServiceConfig, make_interpreter
 
     opened: list[Any] = []
@@ -179,13 +208,13 @@ def test_interpret_command_and_service_go_through_the_runtime(tmp_path: Path, mo
 
     monkeypatch.setattr(runtime_module.Runtime, "from_settings", classmethod(spy))
     path = _write(tmp_path / "book.yaml", mini_data)
-    result = CliRunner().invoke(interpret_command.app, ["--rulebook", str(path), "--ph", "7.4", "--pco2", "40",
-                                      "--hco3", "24"])
+    result = CliRunner().invoke(
+        interpret_command.app, ["--rulebook", str(path), "--ph", "7.4", "--pco2", "40", "--hco3", "24"]
+    )
     assert result.exit_code == 0, result.output
     interp = make_interpreter(ServiceConfig(rulebook=path), environ={})
     interp.close()
     assert len(opened) == 2
-
 
 
 def test_read_limits_come_from_the_settings_file(tmp_path: Path, mini_data: dict[str, Any]) -> None:

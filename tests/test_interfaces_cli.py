@@ -58,8 +58,11 @@ def test_interpret_reads_an_hl7_file_one_case_per_message(rulebook: Any) -> None
 def test_interpret_reads_mllp_framed_files(rulebook: Any) -> None:
     out = run("interpret", str(DATA / "hl7" / "stream_mllp.hl7"), "-f", "json")
     assert out.exit_code == 0, out.output
-    assert [json.loads(x)["case_id"] for x in out.stdout.splitlines() if x.startswith("{")] \
-        == ["MSG00011", "MSG00012", "MSG00013"]
+    assert [json.loads(x)["case_id"] for x in out.stdout.splitlines() if x.startswith("{")] == [
+        "MSG00011",
+        "MSG00012",
+        "MSG00013",
+    ]
 
 
 def test_interpret_hl7_in_fhir_out_is_valid_fhir() -> None:
@@ -75,14 +78,12 @@ def test_interpret_hl7_in_fhir_out_is_valid_fhir() -> None:
 def test_interpret_fhir_in_hl7_out_with_the_facility_from_settings(tmp_path: Path) -> None:
     settings = tmp_path / "site.yaml"
     settings.write_text("interfaces:\n  facility: WARD-LAB\n  application: GR-TEST\n")
-    out = run("interpret", str(DEMO / "fhir" / "venous.json"), "--format", "hl7",
-              "--settings", str(settings))
+    out = run("interpret", str(DEMO / "fhir" / "venous.json"), "--format", "hl7", "--settings", str(settings))
     assert out.exit_code == 0, out.output
     msg, issues = parse_message(out.stdout.strip("\n"))
     assert issues == [] and msg is not None
     msh = msg.first("MSH")
-    assert (msg.get(msh, 3), msg.get(msh, 4), msg.get(msh, 9, 1)) == ("GR-TEST", "WARD-LAB",
-                                                                       "ORU")
+    assert (msg.get(msh, 3), msg.get(msh, 4), msg.get(msh, 9, 1)) == ("GR-TEST", "WARD-LAB", "ORU")
     assert msg.get(msh, 18) == "UNICODE UTF-8"
 
 
@@ -103,7 +104,7 @@ def test_batch_hl7_to_csv_keeps_every_message_with_errors_inline(tmp_path: Path)
 
     out_path = tmp_path / "out.csv"
     out = run("batch", str(bad_batch(tmp_path)), str(out_path))
-    assert out.exit_code == 4, out.output         # a message was rejected: exit 4 unless allowed
+    assert out.exit_code == 4, out.output  # a message was rejected: exit 4 unless allowed
     out = run("batch", str(bad_batch(tmp_path)), str(out_path), "--allow-rejected")
     assert out.exit_code == 0, out.output
     rows = list(csv.DictReader(out_path.open(encoding="utf-8")))
@@ -134,8 +135,10 @@ def test_batch_hl7_to_mllp_frames_and_fhir_list_of_bundles(tmp_path: Path) -> No
     assert out.exit_code == 0, out.output
     data = (tmp_path / "out.mllp").read_bytes()
     assert data.count(b"\x0b") == 3 and data.count(b"\x1c\r") == 3
-    bundles = [json.loads((DEMO / "fhir" / f).read_text()) for f in
-               ("arterial_electrolytes.json", "kpa_units.json", "venous.json")]
+    bundles = [
+        json.loads((DEMO / "fhir" / f).read_text())
+        for f in ("arterial_electrolytes.json", "kpa_units.json", "venous.json")
+    ]
     (tmp_path / "three.json").write_text(json.dumps(bundles))
     out = run("batch", str(tmp_path / "three.json"), str(tmp_path / "three.jsonl"))
     assert out.exit_code == 0, out.output

@@ -47,9 +47,12 @@ class Running:
         self.loop = asyncio.new_event_loop()
         self.outbox = tmp / "out"
         rb = gasrules.load_rulebook()
-        self.listener = Listener(EngineInterpreter(rb),
-                                 ListenConfig(host=HOST, port=0, outbox=self.outbox, **config),
-                                 InterfaceSettings(facility="DEMO-SITE"), log=lambda **_: None)
+        self.listener = Listener(
+            EngineInterpreter(rb),
+            ListenConfig(host=HOST, port=0, outbox=self.outbox, **config),
+            InterfaceSettings(facility="DEMO-SITE"),
+            log=lambda **_: None,
+        )
         threading.Thread(target=self.loop.run_forever, daemon=True).start()
         asyncio.run_coroutine_threadsafe(self.listener.start(), self.loop).result(10)
         self.port = self.listener.port
@@ -90,20 +93,19 @@ def test_a_message_is_interpreted_filed_and_acknowledged(running: Running) -> No
     with running.connect() as sock:
         sock.sendall(framed(message()))
         [ack] = read_acks(sock, 1)
-    assert segment(ack, "MSA")[1:3] == ["AA", "DEMO0001"]          # MSA-2 = MSH-10
-    assert segment(ack, "MSH")[3] == "DEMO-SITE"                    # MSH-4 from settings
+    assert segment(ack, "MSA")[1:3] == ["AA", "DEMO0001"]  # MSA-2 = MSH-10
+    assert segment(ack, "MSH")[3] == "DEMO-SITE"  # MSH-4 from settings
     [filed] = running.filed()
     oru = filed.read_text(encoding="utf-8")
     assert oru.startswith("MSH|^~\\&|GASRULES|DEMO-SITE|") and "|GR-DEMO0001|" in oru
     assert running.listener.interpreted == 1
 
 
-def test_framing_split_across_packets_and_several_messages_per_connection(
-        running: Running) -> None:
+def test_framing_split_across_packets_and_several_messages_per_connection(running: Running) -> None:
     stream = b"".join(framed(message(control=f"SPLIT{i}")) for i in range(3))
     with running.connect() as sock:
-        for i in range(0, len(stream), 97):       # a frame boundary inside many packets
-            sock.sendall(stream[i:i + 97])
+        for i in range(0, len(stream), 97):  # a frame boundary inside many packets
+            sock.sendall(stream[i : i + 97])
             time.sleep(0.002)
         acks = read_acks(sock, 3)
     assert [segment(a, "MSA")[1:3] for a in acks] == [["AA", f"SPLIT{i}"] for i in range(3)]
@@ -114,21 +116,24 @@ def test_a_retransmission_is_answered_again_but_not_interpreted_twice(running: R
     with running.connect() as sock:
         sock.sendall(framed(message(control="RETRY1")))
         first = read_acks(sock, 1)
-    with running.connect() as sock:              # a new connection, as after a lost ACK
+    with running.connect() as sock:  # a new connection, as after a lost ACK
         sock.sendall(framed(message(control="RETRY1")))
         again = read_acks(sock, 1)
     assert again == first
     assert running.listener.interpreted == 1 and len(running.filed()) == 1
 
 
-@pytest.mark.parametrize(("raw", "code", "where", "err"), [
-    (b"MSH|^~\\&|A|B|||20310402||ADT^A01|BAD1|P|2.5.1\r", "AR", "MSH^1^9", "200"),
-    (b"MSH|^~\\&|A|B|||20310402||ORU^R01|BAD2|P|2.5.1||||||KLINGON\r", "AR", "MSH^1^18",
-     "207"),
-    (b"MSH|^~\\&|A|B|||20310402||ORU^R01||P|2.5.1\r", "AR", "MSH^1^10", "101"),
-])
+@pytest.mark.parametrize(
+    ("raw", "code", "where", "err"),
+    [
+        (b"MSH|^~\\&|A|B|||20310402||ADT^A01|BAD1|P|2.5.1\r", "AR", "MSH^1^9", "200"),
+        (b"MSH|^~\\&|A|B|||20310402||ORU^R01|BAD2|P|2.5.1||||||KLINGON\r", "AR", "MSH^1^18", "207"),
+        (b"MSH|^~\\&|A|B|||20310402||ORU^R01||P|2.5.1\r", "AR", "MSH^1^10", "101"),
+    ],
+)
 def test_messages_that_cannot_be_taken_are_rejected_naming_the_field(
-        running: Running, raw: bytes, code: str, where: str, err: str) -> None:
+    running: Running, raw: bytes, code: str, where: str, err: str
+) -> None:
     with running.connect() as sock:
         sock.sendall(framed(raw))
         [ack] = read_acks(sock, 1)
@@ -145,21 +150,20 @@ def test_unusable_content_is_ae_with_the_segment_and_field(running: Running) -> 
         [ack] = read_acks(sock, 1)
     assert segment(ack, "MSA")[1:3] == ["AE", "BADOBX"]
     error = segment(ack, "ERR")
-    assert error[2] == "OBX^1^5" and error[3].startswith("102^")   # HL7 table 0357
+    assert error[2] == "OBX^1^5" and error[3].startswith("102^")  # HL7 table 0357
     assert "seven" in error[8]
     assert running.filed() == []
 
 
 def test_msh18_character_set_is_honoured(running: Running) -> None:
-    raw = message(control="LATIN1").replace(b"Testperson^Alex", "Testpérson^Alex".encode(
-        "latin-1"))
+    raw = message(control="LATIN1").replace(b"Testperson^Alex", "Testpérson^Alex".encode("latin-1"))
     head, rest = raw.split(b"\r", 1)
     raw = head + b"||||||8859/1\r" + rest
     with running.connect() as sock:
         sock.sendall(framed(raw))
         [ack] = read_acks(sock, 1)
     assert segment(ack, "MSA")[1:3] == ["AA", "LATIN1"]
-    assert segment(ack, "MSH")[17] == "8859/1"                      # answered in kind
+    assert segment(ack, "MSH")[17] == "8859/1"  # answered in kind
     undeclared = message(control="RAWBYTES").replace(b"Testperson", b"Test\xe9")
     with running.connect() as sock:
         sock.sendall(framed(undeclared))
@@ -167,8 +171,7 @@ def test_msh18_character_set_is_honoured(running: Running) -> None:
     assert segment(ack, "MSA")[1] == "AR" and segment(ack, "ERR")[2] == "MSH^1^18"
 
 
-def test_results_are_forwarded_before_the_ack_and_a_failed_forward_is_retried(
-        tmp_path: Path) -> None:
+def test_results_are_forwarded_before_the_ack_and_a_failed_forward_is_retried(tmp_path: Path) -> None:
     received: list[bytes] = []
 
     async def destination(reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
@@ -185,10 +188,9 @@ def test_results_are_forwarded_before_the_ack_and_a_failed_forward_is_retried(
 
     loop = asyncio.new_event_loop()
     threading.Thread(target=loop.run_forever, daemon=True).start()
-    dest = asyncio.run_coroutine_threadsafe(asyncio.start_server(destination, HOST, 0),
-                                            loop).result(10)
+    dest = asyncio.run_coroutine_threadsafe(asyncio.start_server(destination, HOST, 0), loop).result(10)
     dest_port = dest.sockets[0].getsockname()[1]
-    with socket.socket() as probe:                      # a port with nobody listening
+    with socket.socket() as probe:  # a port with nobody listening
         probe.bind((HOST, 0))
         dead_port = probe.getsockname()[1]
     srv = Running(tmp_path, forward=(HOST, dead_port), forward_timeout=2.0)
@@ -197,9 +199,10 @@ def test_results_are_forwarded_before_the_ack_and_a_failed_forward_is_retried(
             sock.sendall(framed(message(control="FWD1")))
             [ack] = read_acks(sock, 1)
         assert segment(ack, "MSA")[1] == "AR" and "not delivered" in segment(ack, "ERR")[8]
-        srv.listener.config = ListenConfig(host=HOST, port=0, outbox=srv.outbox,
-                                           forward=(HOST, dest_port), forward_timeout=5.0)
-        with srv.connect() as sock:                     # the sender tries again
+        srv.listener.config = ListenConfig(
+            host=HOST, port=0, outbox=srv.outbox, forward=(HOST, dest_port), forward_timeout=5.0
+        )
+        with srv.connect() as sock:  # the sender tries again
             sock.sendall(framed(message(control="FWD1")))
             [ack] = read_acks(sock, 1)
         assert segment(ack, "MSA")[1:3] == ["AA", "FWD1"]
@@ -211,16 +214,17 @@ def test_results_are_forwarded_before_the_ack_and_a_failed_forward_is_retried(
 
 
 def test_listen_settings_are_checked(tmp_path: Path) -> None:
-    from gasrules.integration.interfaces import interfaces_section
     from gasrules.governance.settings import SettingsError
+    from gasrules.integration.interfaces import interfaces_section
 
     good = tmp_path / "site.yaml"
-    good.write_text("interfaces:\n  facility: LAB-1\n  listen:\n    port: 0\n    outbox: out\n"
-                    "    forward: ehr.example.org:2576\n")
+    good.write_text(
+        "interfaces:\n  facility: LAB-1\n  listen:\n    port: 0\n    outbox: out\n"
+        "    forward: ehr.example.org:2576\n"
+    )
     got = interfaces_section(good)
     assert got.facility == "LAB-1"
-    assert got.listen == {"port": 0, "outbox": tmp_path / "out",
-                          "forward": ("ehr.example.org", 2576)}
+    assert got.listen == {"port": 0, "outbox": tmp_path / "out", "forward": ("ehr.example.org", 2576)}
     bad = tmp_path / "bad.yaml"
     bad.write_text("interfaces:\n  listen:\n    forward: nowhere\n")
     with pytest.raises(SettingsError, match="interfaces.listen.forward.*HOST:PORT"):
@@ -233,12 +237,22 @@ def test_gasrules_listen_runs_acknowledges_and_stops_on_sigterm(tmp_path: Path) 
     import sys
 
     settings = tmp_path / "site.yaml"
-    settings.write_text("interfaces:\n  facility: CLI-SITE\n  listen:\n    port: 0\n"
-                        "    outbox: filed\n")
+    settings.write_text("interfaces:\n  facility: CLI-SITE\n  listen:\n    port: 0\n    outbox: filed\n")
     proc = subprocess.Popen(
-        [sys.executable, "-c", "import sys; from gasrules.cli import main; sys.exit(main())",
-         "listen", "--settings", str(settings), "--host", HOST],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        [
+            sys.executable,
+            "-c",
+            "import sys; from gasrules.cli import main; sys.exit(main())",
+            "listen",
+            "--settings",
+            str(settings),
+            "--host",
+            HOST,
+        ],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
     try:
         line = proc.stdout.readline() if proc.stdout else ""
         assert "MLLP on 127.0.0.1:" in line, line
@@ -271,7 +285,7 @@ def test_an_internal_failure_is_ar_and_not_remembered(tmp_path: Path) -> None:
             [ack] = read_acks(sock, 1)
         assert segment(ack, "MSA")[1:3] == ["AR", "BUG1"] and "boom" not in ack
         srv.listener.interpreter = real
-        with srv.connect() as sock:                      # a retry is processed anew
+        with srv.connect() as sock:  # a retry is processed anew
             sock.sendall(framed(message(control="BUG1")))
             [ack] = read_acks(sock, 1)
         assert segment(ack, "MSA")[1:3] == ["AA", "BUG1"] and len(srv.filed()) == 1
@@ -284,10 +298,10 @@ def test_connections_beyond_the_cap_are_closed_at_once(tmp_path: Path) -> None:
     try:
         with srv.connect() as held:
             held.sendall(framed(message(control="HOLD1")))
-            assert segment(read_acks(held, 1)[0], "MSA")[1] == "AA"    # the one place is taken
+            assert segment(read_acks(held, 1)[0], "MSA")[1] == "AA"  # the one place is taken
             with srv.connect() as extra:
-                assert extra.recv(100) == b""                          # closed without a word
-        for _ in range(100):                                           # the place frees
+                assert extra.recv(100) == b""  # closed without a word
+        for _ in range(100):  # the place frees
             with srv.connect() as again:
                 again.sendall(framed(message(control="HOLD2")))
                 acks = read_acks(again, 1)

@@ -11,15 +11,16 @@ from __future__ import annotations
 
 import itertools
 import math
-from typing import Any, Iterable, Iterator
+from collections.abc import Iterable, Iterator
+from typing import Any
 
 import pytest
 
 import gasrules
 from conftest import MINI_OVERLAYS
-from gasrules.verification.casegen import generate_cases
-from gasrules.rulebook.codegen import OUTCOMES
 from gasrules.evaluation.evaluator import read_case
+from gasrules.rulebook.codegen import OUTCOMES
+from gasrules.verification.casegen import generate_cases
 from gasrules.verification.oracle import oracle_evaluate
 
 N_CASES = 3000
@@ -44,7 +45,9 @@ def compare(rb: Any, inputs: dict[str, Any], label: str) -> dict[str, int]:
         assert states[i] == o_states[name], (label, name, states[i], o_states[name])
     rule_ids = [n for kind, n in rb.plan if kind == "rule"]
     if outcomes != o_outcomes:
-        diff = [(rid, OUTCOMES[a], OUTCOMES[b]) for rid, a, b in zip(rule_ids, outcomes, o_outcomes) if a != b]
+        diff = [
+            (rid, OUTCOMES[a], OUTCOMES[b]) for rid, a, b in zip(rule_ids, outcomes, o_outcomes) if a != b
+        ]
         raise AssertionError(f"{label}: outcomes differ (rule, generated, oracle): {diff[:5]}")
     assert codes == o_codes, (label, codes ^ o_codes)
     counts: dict[str, int] = {}
@@ -88,7 +91,7 @@ def test_generated_cases(which: str, index: int, request: pytest.FixtureRequest)
     assert totals.get("fired", 0) > n and totals.get("not_fired", 0) > n
     assert totals.get("skipped_missing_input", 0) > 0
     if which == "site_rb":
-        assert totals.get("suspended", 0) == n     # ventilation.ve_for_target, suspended by the site
+        assert totals.get("suspended", 0) == n  # ventilation.ve_for_target, suspended by the site
 
 
 @pytest.mark.parametrize("path", [None, MINI_OVERLAYS / "site.yaml"])
@@ -106,8 +109,18 @@ def boundary_cases(rb: Any, bases: list[dict[str, Any]]) -> Iterator[dict[str, A
         spec = rb.inputs.get(name)
         if spec is None or value is None:
             continue
-        step = 10.0 ** -spec.precision
-        for delta in (0.0, 1e-12, -1e-12, step / 2, -step / 2, step / 2 - 1e-9, -step / 2 + 1e-9, step, -step):
+        step = 10.0**-spec.precision
+        for delta in (
+            0.0,
+            1e-12,
+            -1e-12,
+            step / 2,
+            -step / 2,
+            step / 2 - 1e-9,
+            -step / 2 + 1e-9,
+            step,
+            -step,
+        ):
             v = value + delta
             if spec.plausible_min <= v <= spec.plausible_max:
                 for base in bases:

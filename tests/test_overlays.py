@@ -19,10 +19,10 @@ import pytest
 
 import gasrules
 from conftest import EXAMPLE_SITE, MINI, MINI_OVERLAYS, ROOT, SHIPPED, portable
-from gasrules.rulebook.bibliography import load_bibliographies
-from gasrules.rulebook.compiler import canonical_content, identity_content
-from gasrules.rulebook.overlay import load_chain, resolve
 from gasrules.evaluation.render import render_result
+from gasrules.rulebook.bibliography import load_bibliographies
+from gasrules.rulebook.identity import canonical_content, identity_content
+from gasrules.rulebook.overlay import load_chain, resolve
 
 SITE = MINI_OVERLAYS / "site.yaml"
 
@@ -52,7 +52,7 @@ def site_mini() -> Any:
 def _line(path: Path, snippet: str) -> int:
     text = path.read_text(encoding="utf-8")
     assert text.count(snippet) == 1, snippet
-    return text[:text.index(snippet)].count("\n") + 1
+    return text[: text.index(snippet)].count("\n") + 1
 
 
 def _events(result: dict[str, Any]) -> dict[str, dict[str, Any]]:
@@ -60,6 +60,7 @@ def _events(result: dict[str, Any]) -> dict[str, dict[str, Any]]:
 
 
 # ----------------------------------------------------------------------------- accepted overrides
+
 
 def test_override_inside_bounds_is_recorded_with_its_file_and_line(site_mini: Any, mini_rb: Any) -> None:
     p = site_mini.parameters["ag_high"]
@@ -79,8 +80,11 @@ def test_override_is_shown_in_the_trace(site_mini: Any) -> None:
     result = gasrules.interpret(site_mini, DUBOSE_E1)
     event = _events(result)["anion_gap.high"]
     assert event["outcome"] == "fired"
-    assert event["parameters"]["ag_high"] == {"value": 11.0, "unit": "mmol/L",
-                                              "set_by": str(site_mini.parameters["ag_high"].set_by)}
+    assert event["parameters"]["ag_high"] == {
+        "value": 11.0,
+        "unit": "mmol/L",
+        "set_by": str(site_mini.parameters["ag_high"].set_by),
+    }
     assert event["parameters"]["ag_high"]["set_by"].split(":")[0].endswith("overlays/site.yaml")
     # DuBose E1 (anion gap 20 > 11): high-gap acidosis with respiratory alkalosis, as in the base
     assert result["disorders"] == ["metabolic_acidosis_high_anion_gap", "respiratory_alkalosis"]
@@ -119,8 +123,17 @@ def test_by_value_override(site_mini: Any, mini_rb: Any) -> None:
     assert event["outcome"] == "fired"
     assert event["parameters"]["ph_low"]["value"] == 7.31
     assert event["parameters"]["ph_low"]["selected_by"] == "sample_type=venous"
-    assert core(event["comparisons"]) == [{"quantity": "ph", "value": 7.30, "compared": 7.30, "op": "<",
-                                     "threshold": "ph_low", "threshold_value": 7.31, "margin": -0.01}]
+    assert core(event["comparisons"]) == [
+        {
+            "quantity": "ph",
+            "value": 7.30,
+            "compared": 7.30,
+            "op": "<",
+            "threshold": "ph_low",
+            "threshold_value": 7.31,
+            "margin": -0.01,
+        }
+    ]
 
 
 def test_by_value_override_keeps_the_base_as_source_of_other_values(site_mini: Any) -> None:
@@ -149,18 +162,19 @@ def test_overlay_adds_parameters_and_rules(tmp_path: Path) -> None:
         "parameters:\n"
         "  ph_critical_low:\n"
         "    value: 7.10\n"
-        "    unit: \"[pH]\"\n"
+        '    unit: "[pH]"\n'
         "    bounds: {min: 6.9, max: 7.25}\n"
-        "    rationale: \"Life-threatening acidaemia.\"\n"
-        "    source: {evidence: CP, note: \"Common practice\"}\n"
+        '    rationale: "Life-threatening acidaemia."\n'
+        '    source: {evidence: CP, note: "Common practice"}\n'
         "rules:\n"
         "  - id: critical.ph_low\n"
         "    status: active\n"
         "    step: ph_state\n"
         "    when: ph < ph_critical_low\n"
         "    findings:\n"
-        "      - {code: critical.ph_low, category: critical, severity: critical, text: \"pH {ph} is critical.\"}\n",
-        encoding="utf-8")
+        '      - {code: critical.ph_low, category: critical, severity: critical, text: "pH {ph} is critical."}\n',
+        encoding="utf-8",
+    )
     rb = gasrules.load_rulebook(overlay, cache=False)
     assert Path(rb.parameters["ph_critical_low"].set_by.file).resolve() == overlay.resolve()
     # pH 7.05 is below the common-practice critical limit 7.10 (common practice)
@@ -169,6 +183,7 @@ def test_overlay_adds_parameters_and_rules(tmp_path: Path) -> None:
 
 
 # ----------------------------------------------------------------------------- refused overrides
+
 
 def test_outside_bounds_names_both_files(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.chdir(ROOT)
@@ -192,34 +207,46 @@ def test_outside_bounds_names_both_files(monkeypatch: pytest.MonkeyPatch) -> Non
 @pytest.mark.parametrize("value", [8, 20, 8.0, 19.99])
 def test_bounds_are_inclusive(value: float, tmp_path: Path) -> None:
     overlay = tmp_path / "edge.yaml"
-    overlay.write_text(f"format: gasrules/1\nextends: {json.dumps(str(MINI))}\n"
-                       "metadata: {id: mini-edge, version: 0.1.0, title: Edge, effective_date: 2026-12-01, status: draft}\n"
-                       f"parameters:\n  ag_high: {{value: {value}, rationale: \"At the edge.\"}}\n", encoding="utf-8")
+    overlay.write_text(
+        f"format: gasrules/1\nextends: {json.dumps(str(MINI))}\n"
+        "metadata: {id: mini-edge, version: 0.1.0, title: Edge, effective_date: 2026-12-01, status: draft}\n"
+        f'parameters:\n  ag_high: {{value: {value}, rationale: "At the edge."}}\n',
+        encoding="utf-8",
+    )
     assert gasrules.load_rulebook(overlay, cache=False).parameters["ag_high"].value == float(value)
 
 
 @pytest.mark.parametrize("value", [7.99, 20.01, -12, 1e9])
 def test_just_outside_bounds_refused(value: float, tmp_path: Path) -> None:
     overlay = tmp_path / "edge.yaml"
-    overlay.write_text(f"format: gasrules/1\nextends: {json.dumps(str(MINI))}\n"
-                       "metadata: {id: mini-edge, version: 0.1.0, title: Edge, effective_date: 2026-12-01, status: draft}\n"
-                       f"parameters:\n  ag_high: {{value: {value}, rationale: \"Outside.\"}}\n", encoding="utf-8")
+    overlay.write_text(
+        f"format: gasrules/1\nextends: {json.dumps(str(MINI))}\n"
+        "metadata: {id: mini-edge, version: 0.1.0, title: Edge, effective_date: 2026-12-01, status: draft}\n"
+        f'parameters:\n  ag_high: {{value: {value}, rationale: "Outside."}}\n',
+        encoding="utf-8",
+    )
     assert [p.code for p in gasrules.check_rulebook(overlay)] == ["RB-E040"]
 
 
 def test_bad_choice_refused(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.chdir(ROOT)
     got = [p.render() for p in gasrules.check_rulebook("tests/data/mini/overlays/bad_choice.yaml")]
-    assert got[0] == ("tests/data/mini/overlays/bad_choice.yaml:13:12: RB-E042 'carvounis' is not a choice of "
-                      "parameter 'albumin_correction' (at parameters.albumin_correction.value); "
-                      "expected one of figge, none")
+    assert got[0] == (
+        "tests/data/mini/overlays/bad_choice.yaml:13:12: RB-E042 'carvounis' is not a choice of "
+        "parameter 'albumin_correction' (at parameters.albumin_correction.value); "
+        "expected one of figge, none"
+    )
 
 
 def test_bad_choice_and_unknown_suspension_reported_together() -> None:
-    assert [p.code for p in gasrules.check_rulebook(MINI_OVERLAYS / "bad_choice.yaml")] == ["RB-E042", "RB-E043"]
+    assert [p.code for p in gasrules.check_rulebook(MINI_OVERLAYS / "bad_choice.yaml")] == [
+        "RB-E042",
+        "RB-E043",
+    ]
 
 
 # ----------------------------------------------------------------------------- suspension
+
 
 def test_suspended_rule_with_reason(site_mini: Any, mini_rb: Any) -> None:
     # P/F 50 / 0.5 = 100 < 200: the Berlin "moderate" limit (ARDS Definition Task Force, JAMA 2012)
@@ -228,27 +255,37 @@ def test_suspended_rule_with_reason(site_mini: Any, mini_rb: Any) -> None:
     assert _events(base)["oxygenation.pf_moderate"]["outcome"] == "fired"
     assert "oxygenation.pf_low" in [f["code"] for f in base["findings"]]
     assert _events(site)["oxygenation.pf_moderate"] == {
-        "rule": "oxygenation.pf_moderate", "step": "oxygenation",
-        "title": "P/F in the Berlin moderate band or below", "outcome": "suspended",
-        "reason": "Oxygenation is reported by the site's ventilation protocol."}
+        "rule": "oxygenation.pf_moderate",
+        "step": "oxygenation",
+        "title": "P/F in the Berlin moderate band or below",
+        "outcome": "suspended",
+        "reason": "Oxygenation is reported by the site's ventilation protocol.",
+    }
     assert "oxygenation.pf_low" not in [f["code"] for f in site["findings"]]
     # a suspended rule is not a gap in the interpretation
     assert site["status"] == "interpreted"
     assert all(n["what"] != "Oxygenation" for n in site["not_assessed"])
     rule = next(r for r in site_mini.rules if r.id == "oxygenation.pf_moderate")
-    assert (rule.status, rule.suspended_reason) == ("suspended", "Oxygenation is reported by the site's ventilation protocol.")
+    assert (rule.status, rule.suspended_reason) == (
+        "suspended",
+        "Oxygenation is reported by the site's ventilation protocol.",
+    )
 
 
 def test_suspension_needs_a_reason(tmp_path: Path) -> None:
     overlay = tmp_path / "no_reason.yaml"
-    overlay.write_text(f"format: gasrules/1\nextends: {json.dumps(str(MINI))}\n"
-                       "metadata: {id: mini-x, version: 0.1.0, title: X, effective_date: 2026-12-01, status: draft}\n"
-                       "suspend:\n  - {rule: oxygenation.pf_moderate}\n", encoding="utf-8")
+    overlay.write_text(
+        f"format: gasrules/1\nextends: {json.dumps(str(MINI))}\n"
+        "metadata: {id: mini-x, version: 0.1.0, title: X, effective_date: 2026-12-01, status: draft}\n"
+        "suspend:\n  - {rule: oxygenation.pf_moderate}\n",
+        encoding="utf-8",
+    )
     problems = gasrules.check_rulebook(overlay)
     assert [(p.code, p.message) for p in problems] == [("RB-E010", "'reason' is required")]
 
 
 # ----------------------------------------------------------------------------- identity
+
 
 def _variant(tmp_path: Path, name: str, old: str, new: str, source: Path = MINI) -> Path:
     text = portable(source.read_text(encoding="utf-8"), source)
@@ -281,21 +318,28 @@ def test_sha256_is_over_canonical_json_of_resolved_content(mini_rb: Any) -> None
     assert problems == [] and bib.entries
     entries = json.dumps(bib.entries, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
     content_sha = hashlib.sha256(text.encode("utf-8")).hexdigest()
-    expected = hashlib.sha256(f"{content_sha}+bibliography:{hashlib.sha256(entries.encode()).hexdigest()}".encode()).hexdigest()
+    expected = hashlib.sha256(
+        f"{content_sha}+bibliography:{hashlib.sha256(entries.encode()).hexdigest()}".encode()
+    ).hexdigest()
     assert mini_rb.sha256 == expected
     assert mini_rb.identity == {"id": "mini-acid-base", "version": "0.1.0", "sha256": mini_rb.sha256}
 
 
-@pytest.mark.parametrize("old, new", [
-    ("  status: draft\n", "  status: approved\n"),
-    ("  status: draft\n", "  status: active\n"),
-    ('    - {version: 0.1.0, date: 2026-12-01, summary: "First mini rulebook for engine tests."}\n',
-     '    - {version: 0.1.0, date: 2026-12-01, summary: "First mini rulebook for engine tests."}\n'
-     '    - {version: 0.1.0, date: 2026-12-02, summary: "Approved."}\n'),
-    ("# A small real rulebook", "# (a comment changes nothing)\n# A small real rulebook"),
-    ("    value: 12\n", "    value:     12   # same number, other spacing\n"),
-    ("    bounds: {min: 8, max: 20}\n", "    bounds:\n      max: 20\n      min: 8\n"),
-])
+@pytest.mark.parametrize(
+    "old, new",
+    [
+        ("  status: draft\n", "  status: approved\n"),
+        ("  status: draft\n", "  status: active\n"),
+        (
+            '    - {version: 0.1.0, date: 2026-12-01, summary: "First mini rulebook for engine tests."}\n',
+            '    - {version: 0.1.0, date: 2026-12-01, summary: "First mini rulebook for engine tests."}\n'
+            '    - {version: 0.1.0, date: 2026-12-02, summary: "Approved."}\n',
+        ),
+        ("# A small real rulebook", "# (a comment changes nothing)\n# A small real rulebook"),
+        ("    value: 12\n", "    value:     12   # same number, other spacing\n"),
+        ("    bounds: {min: 8, max: 20}\n", "    bounds:\n      max: 20\n      min: 8\n"),
+    ],
+)
 def test_sha256_unchanged_by_lifecycle_metadata(old: str, new: str, tmp_path: Path, mini_rb: Any) -> None:
     assert _sha(_variant(tmp_path, "rb.yaml", old, new)) == mini_rb.sha256
 
@@ -304,24 +348,33 @@ def test_sha256_unchanged_by_number_spelling(tmp_path: Path, mini_rb: Any) -> No
     assert _sha(_variant(tmp_path, "rb.yaml", "    value: 12\n", "    value: 12.0\n")) == mini_rb.sha256
 
 
-@pytest.mark.parametrize("old, new", [
-    ("    value: 12\n", "    value: 11\n"),                                    # ag_high
-    ("    bounds: {min: 8, max: 20}\n", "    bounds: {min: 8, max: 18}\n"),
-    ("    expr: na - (cl + hco3)\n", "    expr: na - cl - hco3\n"),
-    ("    when: ph < ph_low\n", "    when: ph <= ph_low\n"),
-    ("  version: 0.1.0\n", "  version: 0.1.1\n"),
-    ('    - {name: "gasrules engine tests", role: "authors"}\n',                   # owners are hashed (scheme 2)
-     '    - {name: "gasrules engine tests", role: "authors"}\n    - {name: "A reviewer", role: "sign-off"}\n'),
-    ("    status: active\n    step: ph_state\n    title: Acidaemia\n",
-     "    status: suspended\n    step: ph_state\n    title: Acidaemia\n"),
-])
+@pytest.mark.parametrize(
+    "old, new",
+    [
+        ("    value: 12\n", "    value: 11\n"),  # ag_high
+        ("    bounds: {min: 8, max: 20}\n", "    bounds: {min: 8, max: 18}\n"),
+        ("    expr: na - (cl + hco3)\n", "    expr: na - cl - hco3\n"),
+        ("    when: ph < ph_low\n", "    when: ph <= ph_low\n"),
+        ("  version: 0.1.0\n", "  version: 0.1.1\n"),
+        (
+            '    - {name: "gasrules engine tests", role: "authors"}\n',  # owners are hashed (scheme 2)
+            '    - {name: "gasrules engine tests", role: "authors"}\n    - {name: "A reviewer", role: "sign-off"}\n',
+        ),
+        (
+            "    status: active\n    step: ph_state\n    title: Acidaemia\n",
+            "    status: suspended\n    step: ph_state\n    title: Acidaemia\n",
+        ),
+    ],
+)
 def test_sha256_changed_by_content(old: str, new: str, tmp_path: Path, mini_rb: Any) -> None:
     assert _sha(_variant(tmp_path, "rb.yaml", old, new)) != mini_rb.sha256
 
 
 def test_overlay_sha256(tmp_path: Path, site_mini: Any, mini_rb: Any) -> None:
     assert site_mini.sha256 != mini_rb.sha256
-    text = SITE.read_text(encoding="utf-8").replace("extends: ../rulebook.yaml", f"extends: {json.dumps(str(MINI))}")
+    text = SITE.read_text(encoding="utf-8").replace(
+        "extends: ../rulebook.yaml", f"extends: {json.dumps(str(MINI))}"
+    )
     same = tmp_path / "same.yaml"
     same.write_text(text.replace("  status: draft\n", "  status: approved\n"), encoding="utf-8")
     assert _sha(same) == site_mini.sha256
@@ -331,6 +384,7 @@ def test_overlay_sha256(tmp_path: Path, site_mini: Any, mini_rb: Any) -> None:
 
 
 # ----------------------------------------------------------------------------- the shipped example overlay
+
 
 def test_example_site_loads(site_rb: Any, shipped_rb: Any) -> None:
     assert site_rb.id == "example-site-halden-cross"
@@ -374,26 +428,29 @@ def test_bibliography_content_is_part_of_the_identity(tmp_path: Path) -> None:
 
 # ---------------------------------------------------------------- intended use of an overlay
 
+
 def _overlay_with_use(tmp_path: Path, population: str) -> Path:
     path = tmp_path / "site.yaml"
-    path.write_text("format: gasrules/1\n"
-                    f"extends: {json.dumps(str(MINI))}\n"
-                    "metadata:\n  id: use-site\n  version: 0.1.0\n  title: Use site\n  effective_date: 2026-12-01\n"
-                    "  status: draft\n  intended_use:\n"
-                    f"    population: {json.dumps(population)}\n    setting: \"Engine tests; not for clinical use\"\n",
-                    encoding="utf-8")
+    path.write_text(
+        "format: gasrules/1\n"
+        f"extends: {json.dumps(str(MINI))}\n"
+        "metadata:\n  id: use-site\n  version: 0.1.0\n  title: Use site\n  effective_date: 2026-12-01\n"
+        "  status: draft\n  intended_use:\n"
+        f'    population: {json.dumps(population)}\n    setting: "Engine tests; not for clinical use"\n',
+        encoding="utf-8",
+    )
     return path
 
 
 def test_overlay_intended_use_is_shown_in_diff_and_review_document(tmp_path: Path) -> None:
-    from gasrules.governance.review_document import build_document, render_markdown
     from gasrules.governance.diff import diff_paths, render_text
+    from gasrules.governance.review_document import build_document, render_markdown
 
     changed = _overlay_with_use(tmp_path, "Children (engine tests only)")
     text = render_text(diff_paths(MINI, changed))
     assert "[minor] intended_use value" in text and "Children (engine tests only)" in text
     md = render_markdown(build_document(changed))
     assert "| Intended use of the base (differs) | population: Adults (engine tests only)" in md
-    same = _overlay_with_use(tmp_path, "Adults (engine tests only)")       # the base's own words
+    same = _overlay_with_use(tmp_path, "Adults (engine tests only)")  # the base's own words
     assert "intended_use value" not in render_text(diff_paths(MINI, same))
     assert "Intended use of the base" not in render_markdown(build_document(same))

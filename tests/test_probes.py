@@ -12,25 +12,34 @@ import json
 from pathlib import Path
 
 import pytest
-
-from conftest import portable
-from gasrules.rulebook.build import load_rulebook
-from gasrules.cli.commands import probes as probes_command
-from gasrules.governance.probes import changed_cutpoints, default_bases, feeders, place, run_probes, render_text
-from gasrules.core.resources import default_rulebook_path
 from typer.testing import CliRunner
 
+from conftest import portable
+from gasrules.cli.commands import probes as probes_command
+from gasrules.core.resources import default_rulebook_path
+from gasrules.governance.probes import (
+    changed_cutpoints,
+    default_bases,
+    feeders,
+    place,
+    render_text,
+    run_probes,
+)
+from gasrules.rulebook.build import load_rulebook
+
 SHIPPED = default_rulebook_path()
-AG_HIGH = "  ag_high:\n    value: 12\n"      # shipped value 12 mmol/L, bounds 8-20
-PH_LOW = "    by: {input: sample_type, values: {venous: 7.30, mixed_venous: 7.30}}\n    rationale: \"Lower limit of pH"
+AG_HIGH = "  ag_high:\n    value: 12\n"  # shipped value 12 mmol/L, bounds 8-20
+PH_LOW = '    by: {input: sample_type, values: {venous: 7.30, mixed_venous: 7.30}}\n    rationale: "Lower limit of pH'
 
 
 @pytest.fixture(scope="module")
 def tuned(tmp_path_factory: pytest.TempPathFactory) -> Path:
     text = portable(SHIPPED.read_text(encoding="utf-8"), SHIPPED)
-    for old, new in ((AG_HIGH, "  ag_high:\n    value: 13\n"),
-                     (PH_LOW, PH_LOW.replace("venous: 7.30, mixed", "venous: 7.31, mixed")),
-                     ("  version: 1.0.0\n", "  version: 1.0.1\n")):
+    for old, new in (
+        (AG_HIGH, "  ag_high:\n    value: 13\n"),
+        (PH_LOW, PH_LOW.replace("venous: 7.30, mixed", "venous: 7.31, mixed")),
+        ("  version: 1.0.0\n", "  version: 1.0.1\n"),
+    ):
         assert text.count(old) == 1, old
         text = text.replace(old, new)
     path = tmp_path_factory.mktemp("tuned") / "rulebook.yaml"
@@ -69,7 +78,7 @@ def test_probes_flip_between_the_cuts_and_agree_outside(tuned: Path) -> None:
     [probe] = run_probes(old, new, bases, only=["anion_gap.mildly_raised"])
     assert probe.via == "cl"
     targets = [p.target for p in probe.points]
-    assert targets == [11.9, 12.0, 12.1, 12.9, 13.0, 13.1]     # 12 and 13 +/- one step of 0.1
+    assert targets == [11.9, 12.0, 12.1, 12.9, 13.0, 13.1]  # 12 and 13 +/- one step of 0.1
     assert all(p.reached for p in probe.points)
     differs = {p.target: p.differs for p in probe.points}
     # strictly above 12 and up to 13 the rule fires under 1.0.0 only; elsewhere both agree
@@ -85,14 +94,25 @@ def test_selector_cut_uses_that_selector(tuned: Path) -> None:
     [probe] = probes
     assert probe.via is None and probe.points
     assert all(p.case["sample_type"] == "venous" for p in probe.points)
-    assert [p.target for p in probe.points if p.differs] == [7.30]   # venous cut 7.30 -> 7.31
+    assert [p.target for p in probe.points if p.differs] == [7.30]  # venous cut 7.30 -> 7.31
     text = render_text(probes, old.version, new.version)
     assert "ph_state.acidaemia: ph < ph_low [sample_type=venous]: 7.3 -> 7.31 [pH]" in text
 
 
 def test_cli_json(tuned: Path) -> None:
-    res = CliRunner().invoke(probes_command.app, [str(SHIPPED), str(tuned), "--only", "anion_gap.high_gap_acidosis",
-                                                  "--generated", "20", "--format", "json"])
+    res = CliRunner().invoke(
+        probes_command.app,
+        [
+            str(SHIPPED),
+            str(tuned),
+            "--only",
+            "anion_gap.high_gap_acidosis",
+            "--generated",
+            "20",
+            "--format",
+            "json",
+        ],
+    )
     assert res.exit_code == 0, res.output
     data = json.loads(res.stdout)
     assert data["old_version"] == "1.0.0" and data["new_version"] == "1.0.1"
@@ -106,14 +126,20 @@ def test_literal_threshold_change_is_a_changed_cut(tmp_path: Path) -> None:
     anchor = "when: known(ph) and ph < critical_ph_low\n"
     assert text.count(anchor) == 1
     paths = []
-    for name, literal in (("a", "7.1"), ("b", "7.05")):      # invented literals for the test
+    for name, literal in (("a", "7.1"), ("b", "7.05")):  # invented literals for the test
         p = tmp_path / name / "rulebook.yaml"
         p.parent.mkdir()
         p.write_text(text.replace(anchor, f"when: known(ph) and ph < {literal}\n"), encoding="utf-8")
         paths.append(p)
     old, new = load_rulebook(paths[0]), load_rulebook(paths[1])
     [cut] = changed_cutpoints(old, new)
-    assert (cut.owner, cut.kind, cut.quantity, cut.old, cut.new) == ("critical.ph_low", "constant", "ph", 7.1, 7.05)
+    assert (cut.owner, cut.kind, cut.quantity, cut.old, cut.new) == (
+        "critical.ph_low",
+        "constant",
+        "ph",
+        7.1,
+        7.05,
+    )
     [probe] = run_probes(old, new, default_bases([], n_generated=200))
     assert [p.target for p in probe.points] == [7.04, 7.05, 7.06, 7.09, 7.1, 7.11]
     assert [p.target for p in probe.points if p.differs] == [7.05, 7.06, 7.09]

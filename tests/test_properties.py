@@ -21,9 +21,13 @@ from conftest import MINI
 from gasrules.core import units as U
 
 # integers a context may carry (strict JSON: larger ones reject the case, tests/test_case_fuzz.py)
-JSON_INTS = st.integers(min_value=-(2 ** 63 - 1), max_value=2 ** 63 - 1)
-SETTINGS = settings(max_examples=40, deadline=None, derandomize=True,
-                    suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+JSON_INTS = st.integers(min_value=-(2**63 - 1), max_value=2**63 - 1)
+SETTINGS = settings(
+    max_examples=40,
+    deadline=None,
+    derandomize=True,
+    suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large],
+)
 
 # How each UCUM code may be typed: the code itself and every alias the engine maps to it.
 SPELLINGS: dict[str, list[str]] = {}
@@ -40,15 +44,23 @@ def _shrink(lo: float, hi: float) -> tuple[float, float]:
 def number(spec: Any) -> st.SearchStrategy[Any]:
     lo, hi = float(spec.plausible_min), float(spec.plausible_max)
     options = [st.floats(lo, hi, allow_nan=False, allow_infinity=False)]
-    options.append(st.builds(lambda v, u: {"value": v, "unit": u},
-                             st.floats(lo, hi, allow_nan=False, allow_infinity=False),
-                             st.sampled_from(SPELLINGS.get(spec.unit, [spec.unit]))))
+    options.append(
+        st.builds(
+            lambda v, u: {"value": v, "unit": u},
+            st.floats(lo, hi, allow_nan=False, allow_infinity=False),
+            st.sampled_from(SPELLINGS.get(spec.unit, [spec.unit])),
+        )
+    )
     for unit, (factor, offset) in spec.alternatives.items():
         a, b = sorted(((lo - offset) / factor, (hi - offset) / factor))
         a, b = _shrink(a, b)
-        options.append(st.builds(lambda v, u: {"value": v, "unit": u},
-                                 st.floats(a, b, allow_nan=False, allow_infinity=False),
-                                 st.sampled_from(SPELLINGS.get(unit, [unit]))))
+        options.append(
+            st.builds(
+                lambda v, u: {"value": v, "unit": u},
+                st.floats(a, b, allow_nan=False, allow_infinity=False),
+                st.sampled_from(SPELLINGS.get(unit, [unit])),
+            )
+        )
     return st.one_of(options)
 
 
@@ -64,8 +76,9 @@ def cases(rb: Any) -> st.SearchStrategy[dict[str, Any]]:
     engine_set = {spec.fallback_marks for spec in rb.inputs.values() if spec.fallback_marks}
     optional = {name: value_strategy(spec) for name, spec in rb.inputs.items() if name not in engine_set}
     optional["case_id"] = st.text(max_size=12)
-    optional["context"] = st.dictionaries(st.text(max_size=5), st.one_of(JSON_INTS, st.text(max_size=5)),
-                                          max_size=3)
+    optional["context"] = st.dictionaries(
+        st.text(max_size=5), st.one_of(JSON_INTS, st.text(max_size=5)), max_size=3
+    )
     return st.fixed_dictionaries({}, optional=optional)
 
 
@@ -75,7 +88,7 @@ def check_result(rb: Any, case: dict[str, Any], validate: Any) -> dict[str, Any]
     assert case == before
     assert result["status"] in ("interpreted", "partial", "inconsistent"), result["errors"]
     assert validate(result) == []
-    json.dumps(result, allow_nan=False)          # no NaN or infinity anywhere: plain JSON
+    json.dumps(result, allow_nan=False)  # no NaN or infinity anywhere: plain JSON
     if result["status"] == "inconsistent":
         assert result["disorders"] == [] and result["qualifiers"] == {}
     if result["status"] == "partial":
@@ -116,8 +129,9 @@ def test_same_input_same_result(case: dict[str, Any]) -> None:
 def test_interpret_many_equals_a_loop(batch: list[dict[str, Any]]) -> None:
     looped = [gasrules.interpret(SHIPPED, c) for c in batch]
     assert list(gasrules.interpret_many(SHIPPED, batch, workers=1)) == looped
-    assert list(gasrules.interpret_many(SHIPPED, iter(batch), workers=1, trace=False)) == \
-        [gasrules.interpret(SHIPPED, c, trace=False) for c in batch]
+    assert list(gasrules.interpret_many(SHIPPED, iter(batch), workers=1, trace=False)) == [
+        gasrules.interpret(SHIPPED, c, trace=False) for c in batch
+    ]
 
 
 @settings(max_examples=60, deadline=None, derandomize=True)
@@ -127,17 +141,24 @@ def test_out_of_range_value_rejects_the_case_naming_the_field(data: st.DataObjec
     name = data.draw(st.sampled_from(numeric))
     spec = SHIPPED.inputs[name]
     span = spec.plausible_max - spec.plausible_min
-    value = data.draw(st.one_of(
-        st.floats(spec.plausible_max + span * 1e-6, spec.plausible_max + 10 * span + 1, allow_nan=False),
-        st.floats(spec.plausible_min - 10 * span - 1, spec.plausible_min - span * 1e-6, allow_nan=False)))
+    value = data.draw(
+        st.one_of(
+            st.floats(spec.plausible_max + span * 1e-6, spec.plausible_max + 10 * span + 1, allow_nan=False),
+            st.floats(spec.plausible_min - 10 * span - 1, spec.plausible_min - span * 1e-6, allow_nan=False),
+        )
+    )
     result = gasrules.interpret(SHIPPED, {"ph": 7.40, name: value})
     assert result["status"] == "rejected"
     assert [(e["field"], e["code"]) for e in result["errors"]] == [(name, "input.out_of_range")]
 
 
 @settings(max_examples=40, deadline=None, derandomize=True)
-@given(case=cases(MINI_RB), case_id=st.text(max_size=10), context=st.dictionaries(st.text(max_size=4), JSON_INTS))
-def test_case_id_and_context_change_nothing_else(case: dict[str, Any], case_id: str, context: dict[str, int]) -> None:
+@given(
+    case=cases(MINI_RB), case_id=st.text(max_size=10), context=st.dictionaries(st.text(max_size=4), JSON_INTS)
+)
+def test_case_id_and_context_change_nothing_else(
+    case: dict[str, Any], case_id: str, context: dict[str, int]
+) -> None:
     plain = {k: v for k, v in case.items() if k not in ("case_id", "context")}
     a = gasrules.interpret(MINI_RB, plain)
     b = gasrules.interpret(MINI_RB, dict(plain, case_id=case_id, context=context))

@@ -12,7 +12,7 @@ import itertools
 import json
 import multiprocessing
 import shutil
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from types import SimpleNamespace
 from typing import Any
@@ -20,11 +20,25 @@ from typing import Any
 import pytest
 
 from gasrules.governance.audit import (
-    Difference, compare_results, render_replay, render_verify, repair_log, replay_log, verify_log,
+    Difference,
+    compare_results,
+    render_replay,
+    render_verify,
+    repair_log,
+    replay_log,
+    verify_log,
 )
 from gasrules.governance.decision_log import (
-    ZERO_SHA, DecisionLog, RecordConfig, RecordError, anchor_path, apply_context_policy,
-    canonical_json, entry_hash, mask_value, _compose,
+    ZERO_SHA,
+    DecisionLog,
+    RecordConfig,
+    RecordError,
+    _compose,
+    anchor_path,
+    apply_context_policy,
+    canonical_json,
+    entry_hash,
+    mask_value,
 )
 
 SALT = "test-salt-0123456789abcdef"
@@ -35,7 +49,7 @@ class TickClock:
     """A pinned clock advancing one second per reading."""
 
     def __init__(self) -> None:
-        self.t = datetime(2026, 1, 2, 3, 4, 5, tzinfo=timezone.utc)
+        self.t = datetime(2026, 1, 2, 3, 4, 5, tzinfo=UTC)
 
     def __call__(self) -> datetime:
         self.t += timedelta(seconds=1)
@@ -45,9 +59,21 @@ class TickClock:
 def make_case(i: int, pco2: float = 24) -> dict[str, Any]:
     # DuBose, "Acidosis and alkalosis", Harrison's, table of mixed disorders, example 1
     # (DuBose, Harrison's, table of mixed disorders: dubose_harrison): Na 140, K 4.0, Cl 106, HCO3 14, PaCO2 24, pH 7.39.
-    return {"case_id": f"case-{i}", "ph": 7.39, "pco2": pco2, "hco3": 14, "na": 140, "k": 4.0,
-            "cl": 106, "context": {"mrn": f"MRN{i:06d}", "name": "Demo Patient", "ward": "ICU",
-                                   "visit": {"patient_id": i, "bed": 7}}}
+    return {
+        "case_id": f"case-{i}",
+        "ph": 7.39,
+        "pco2": pco2,
+        "hco3": 14,
+        "na": 140,
+        "k": 4.0,
+        "cl": 106,
+        "context": {
+            "mrn": f"MRN{i:06d}",
+            "name": "Demo Patient",
+            "ward": "ICU",
+            "visit": {"patient_id": i, "bed": 7},
+        },
+    }
 
 
 def winter_interpret(rulebook: dict[str, Any], case: dict[str, Any]) -> dict[str, Any]:
@@ -62,18 +88,31 @@ def winter_interpret(rulebook: dict[str, Any], case: dict[str, Any]) -> dict[str
     if case["pco2"] < expected - tol:
         disorders.append("respiratory_alkalosis")
     return {
-        "schema_version": 1, "case_id": case.get("case_id"), "context": case.get("context"),
+        "schema_version": 1,
+        "case_id": case.get("case_id"),
+        "context": case.get("context"),
         "rulebook": {k: rulebook[k] for k in ("id", "version", "sha256")},
-        "engine_version": "0.1.0", "status": "interpreted", "headline": "demo",
-        "errors": [], "units": {"anion_gap": "mmol/L", "expected_pco2": "mm[Hg]"},
+        "engine_version": "0.1.0",
+        "status": "interpreted",
+        "headline": "demo",
+        "errors": [],
+        "units": {"anion_gap": "mmol/L", "expected_pco2": "mm[Hg]"},
         # [H+] in mol/L = 10^-pH (definition of pH): 4.07e-08 exercises exponent floats.
         "values": {"anion_gap": ag, "expected_pco2": expected, "h_plus": 10 ** -case["ph"]},
-        "findings": [{"code": "ag.high", "category": "acid_base", "severity": "warning",
-                      "text": "Anion gap is high.", "rule": "ag.high"}],
-        "disorders": disorders, "qualifiers": {}, "not_assessed": [],
+        "findings": [
+            {
+                "code": "ag.high",
+                "category": "acid_base",
+                "severity": "warning",
+                "text": "Anion gap is high.",
+                "rule": "ag.high",
+            }
+        ],
+        "disorders": disorders,
+        "qualifiers": {},
+        "not_assessed": [],
         "cautions": ["Supports, never replaces, clinical judgement."],
-        "trace": [{"op": "fired", "rule": "ag.high", "inputs": {"na": 140}},
-                  {"op": "timing", "ms": 0.12}],
+        "trace": [{"op": "fired", "rule": "ag.high", "inputs": {"na": 140}}, {"op": "timing", "ms": 0.12}],
     }
 
 
@@ -118,11 +157,13 @@ def first(path: Path) -> tuple[str, int | None, int | None]:
 
 # ---------------------------------------------------------------- canonical form
 
+
 def test_composed_entry_bytes_equal_the_standard_library_canonical_form() -> None:
     obj = {"z": [1, 2.5, 4.07e-08, 1e16], "a": {"é": "ü", "b": None}, "m": True}
     parts = {k: canonical_json(v) for k, v in obj.items()}
-    assert _compose(parts) == json.dumps(obj, sort_keys=True, separators=(",", ":"),
-                                         ensure_ascii=False).encode()
+    assert (
+        _compose(parts) == json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=False).encode()
+    )
     assert canonical_json(4.07e-08) == b"4.07e-08"  # the stdlib form, not orjson's 4.07e-8
 
 
@@ -130,17 +171,22 @@ def test_an_unencodable_result_names_the_field(tmp_path: Path) -> None:
     case = make_case(1)
     result = winter_interpret(RULEBOOK_V1, case)
     result["values"] = {1: 2.0}
-    with DecisionLog(tmp_path / "l.jsonl", RecordConfig(fsync=False)) as log, \
-            pytest.raises(RecordError) as err:
+    with (
+        DecisionLog(tmp_path / "l.jsonl", RecordConfig(fsync=False)) as log,
+        pytest.raises(RecordError) as err,
+    ):
         log.append(case, result)
     assert err.value.code == "record.not_json" and err.value.field == "result.values"
     result["values"] = {"x": float("nan")}
-    with DecisionLog(tmp_path / "l.jsonl", RecordConfig(fsync=False)) as log, \
-            pytest.raises(RecordError, match="field result"):
+    with (
+        DecisionLog(tmp_path / "l.jsonl", RecordConfig(fsync=False)) as log,
+        pytest.raises(RecordError, match="field result"),
+    ):
         log.append(case, result)
 
 
 # ---------------------------------------------------------------- a clean log
+
 
 def test_a_clean_log_of_200_entries_verifies(log200: Path) -> None:
     report = verify_log(log200)
@@ -148,8 +194,7 @@ def test_a_clean_log_of_200_entries_verifies(log200: Path) -> None:
     assert report.entries == 200
     anchor = json.loads(anchor_path(log200).read_text())
     last = json.loads(lines_of(log200)[-1])
-    assert anchor == {"count": 200, "last_sha256": last["entry_sha256"],
-                      "log_size": log200.stat().st_size}
+    assert anchor == {"count": 200, "last_sha256": last["entry_sha256"], "log_size": log200.stat().st_size}
     assert "ok, 200 entries" in render_verify(report)
 
 
@@ -173,6 +218,7 @@ def test_a_reopened_writer_resumes_the_chain(log200: Path) -> None:
 
 # ---------------------------------------------------------------- damage, each named
 
+
 def test_an_edited_value_is_an_entry_hash_mismatch_at_its_line(log200: Path) -> None:
     lines = lines_of(log200)
     entry = json.loads(lines[56])
@@ -191,8 +237,7 @@ def test_an_edited_and_rehashed_entry_breaks_the_chain_at_the_next_line(log200: 
     lines[56] = canonical_json(entry) + b"\n"
     set_lines(log200, lines)
     assert first(log200) == ("output_hash_mismatch", 57, 57)
-    entry["output_sha256"] = hashlib.sha256(
-        canonical_json(entry["result"])).hexdigest()
+    entry["output_sha256"] = hashlib.sha256(canonical_json(entry["result"])).hexdigest()
     entry["entry_sha256"] = entry_hash(entry)
     lines[56] = canonical_json(entry) + b"\n"
     set_lines(log200, lines)
@@ -240,8 +285,7 @@ def test_a_log_edited_without_the_anchor_is_an_anchor_mismatch(log200: Path) -> 
     lines = lines_of(log200)
     entry = json.loads(lines[-1])
     entry["result"]["status"] = "partial"
-    entry["output_sha256"] = hashlib.sha256(
-        canonical_json(entry["result"])).hexdigest()
+    entry["output_sha256"] = hashlib.sha256(canonical_json(entry["result"])).hexdigest()
     entry["entry_sha256"] = entry_hash(entry)
     lines[-1] = canonical_json(entry) + b"\n"
     set_lines(log200, lines)
@@ -262,6 +306,7 @@ def test_a_witness_must_be_in_the_chain(log200: Path) -> None:
 
 
 # ---------------------------------------------------------------- crash handling and repair
+
 
 def test_a_crash_before_the_anchor_update_is_a_warning_healed_on_reopen(log200: Path) -> None:
     before = anchor_path(log200).read_bytes()
@@ -373,6 +418,7 @@ def test_every_entry_is_written_with_rulebook_time_and_no_temp_files(tmp_path: P
 
 # ---------------------------------------------------------------- identifiers in context
 
+
 def test_mask_replaces_identifiers_by_a_salted_hash_prefix(tmp_path: Path) -> None:
     cfg = RecordConfig(context_policy="mask", salt=SALT, fsync=False, clock=TickClock())
     case = make_case(7)
@@ -420,6 +466,7 @@ def test_bad_record_settings_name_the_field_and_the_accepted_form() -> None:
 
 # ---------------------------------------------------------------- two processes, one log
 
+
 def _append_many(path: str, start: int, n: int, go: Any) -> None:
     go.wait(30)  # both writers start together, so their appends overlap
     write_log(Path(path), n, start=start)
@@ -442,12 +489,16 @@ def test_two_processes_appending_produce_one_valid_chain(tmp_path: Path) -> None
     second = [int(i.split("-")[1]) > 1000 for i in ids]
     assert any(a != b for a, b in itertools.pairwise(second)), "the writers did not overlap"
     for start in (1, 1001):  # each writer's own entries stay in its order
-        mine = [int(i.split("-")[1]) for i in ids if int(i.split("-")[1]) >= start
-                and int(i.split("-")[1]) < start + 60]
+        mine = [
+            int(i.split("-")[1])
+            for i in ids
+            if int(i.split("-")[1]) >= start and int(i.split("-")[1]) < start + 60
+        ]
         assert mine == list(range(start, start + 60))
 
 
 # ---------------------------------------------------------------- replay
+
 
 def test_compare_results_ignores_trace_and_timing_and_names_what_changed() -> None:
     a = winter_interpret(RULEBOOK_V1, make_case(1))
@@ -481,9 +532,13 @@ def test_replay_reports_changed_results_and_missing_rulebooks(tmp_path: Path) ->
     assert report.counts["rulebook_missing"] == 1
     differs = [o for o in report.outcomes if o.outcome == "differs"]
     assert [o.seq for o in differs] == [1, 3, 5]
-    assert differs[0].differences == (Difference(
-        "disorders", ["metabolic_acidosis_high_anion_gap", "respiratory_alkalosis"],
-        ["metabolic_acidosis_high_anion_gap"]),)
+    assert differs[0].differences == (
+        Difference(
+            "disorders",
+            ["metabolic_acidosis_high_anion_gap", "respiratory_alkalosis"],
+            ["metabolic_acidosis_high_anion_gap"],
+        ),
+    )
     assert "line 7 (seq 7): rulebook_missing" in render_replay(report)
     faithful = {RULEBOOK_V1["sha256"]: RULEBOOK_V1, rulebook_v2["sha256"]: rulebook_v2}
     assert replay_log(path, faithful.__getitem__, winter_interpret).ok

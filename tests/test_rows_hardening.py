@@ -27,8 +27,12 @@ def _rows(path: Path) -> list[dict[str, str]]:
 @pytest.mark.parametrize("delimiter,bom", [(";", True), ("\t", False), (",", True)])
 def test_delimiter_and_bom_are_detected(delimiter: str, bom: bool, tmp_path: Path) -> None:
     src = tmp_path / "in.csv"
-    text = delimiter.join(["case_id", "ph", "pco2", "hco3", "ward"]) + "\n" + \
-        delimiter.join(["A1", "7.40", "40", "24", "ICU"]) + "\n"
+    text = (
+        delimiter.join(["case_id", "ph", "pco2", "hco3", "ward"])
+        + "\n"
+        + delimiter.join(["A1", "7.40", "40", "24", "ICU"])
+        + "\n"
+    )
     src.write_bytes((b"\xef\xbb\xbf" if bom else b"") + text.encode("utf-8"))
     assert _batch(src, tmp_path / "out.csv") == 0
     [row] = _rows(tmp_path / "out.csv")
@@ -43,19 +47,24 @@ def test_utf16_file_is_refused(tmp_path: Path, shipped_rb: object) -> None:
     assert "the file is UTF-16" in str(exc.value)
 
 
-def test_header_collapsed_into_one_column_is_refused(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_header_collapsed_into_one_column_is_refused(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     src = tmp_path / "in.csv"
     src.write_text("case_id ph pco2 hco3\nA1;7.40;40;24\n", encoding="utf-8")
     assert _batch(src, tmp_path / "out.csv") == 2
-    assert "in.csv:1: the header is one column but line 2 holds semicolon delimiters" in capsys.readouterr().err
+    assert (
+        "in.csv:1: the header is one column but line 2 holds semicolon delimiters" in capsys.readouterr().err
+    )
     assert not (tmp_path / "out.csv").exists()
 
 
-def test_decimal_comma_when_asked_and_refused_when_ambiguous(tmp_path: Path,
-                                                             capsys: pytest.CaptureFixture[str]) -> None:
+def test_decimal_comma_when_asked_and_refused_when_ambiguous(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     src = tmp_path / "in.csv"
     src.write_text("case_id;ph;pco2;hco3\nA1;7,40;40,0;24\n", encoding="utf-8")
-    assert _batch(src, tmp_path / "plain.csv") == 4              # "7,40" is not a number without the option
+    assert _batch(src, tmp_path / "plain.csv") == 4  # "7,40" is not a number without the option
     assert _rows(tmp_path / "plain.csv")[0]["status"] == "rejected"
     assert _batch(src, tmp_path / "out.csv", "--decimal-comma") == 0
     assert _rows(tmp_path / "out.csv")[0]["status"] != "rejected"
@@ -69,14 +78,16 @@ def test_decimal_comma_when_asked_and_refused_when_ambiguous(tmp_path: Path,
 def test_huge_quoted_field_and_non_utf8_cell_reject_only_their_row(tmp_path: Path) -> None:
     src = tmp_path / "in.csv"
     big = "x" * 1_100_000
-    src.write_bytes(b"case_id,ph,pco2,hco3,note\n"
-                    b"A1,7.40,40,24,ok\n"
-                    b'A2,7.40,40,24,"' + big.encode() + b'\nsecond line of the note"\n'
-                    b"A3,7.40,40,24,caf\xe9\n"
-                    b"A4,7.40,40,24,fine\n")
+    src.write_bytes(
+        b"case_id,ph,pco2,hco3,note\n"
+        b"A1,7.40,40,24,ok\n"
+        b'A2,7.40,40,24,"' + big.encode() + b'\nsecond line of the note"\n'
+        b"A3,7.40,40,24,caf\xe9\n"
+        b"A4,7.40,40,24,fine\n"
+    )
     assert _batch(src, tmp_path / "out.jsonl") == 4
     rows = read_back(tmp_path / "out.jsonl")
-    assert [r["status"] == "rejected" for r in rows] == [False, True, True, False]   # 4 rows in, 4 out
+    assert [r["status"] == "rejected" for r in rows] == [False, True, True, False]  # 4 rows in, 4 out
     assert "longer than the limit of 1048576 bytes" in rows[1]["errors"][0]["message"]
     assert rows[1]["errors"][0]["message"].startswith("in.csv:3:")
     assert "cell 5 holds byte 0xe9, which is not UTF-8" in rows[2]["errors"][0]["message"]
@@ -85,11 +96,13 @@ def test_huge_quoted_field_and_non_utf8_cell_reject_only_their_row(tmp_path: Pat
 
 def test_formula_like_passthrough_cells_are_neutralised(tmp_path: Path) -> None:
     src = tmp_path / "in.csv"
-    src.write_text("case_id,ph,pco2,hco3,a,b,c,d,e\n"
-                   'A1,7.40,40,24,=HYPERLINK("x"),-4.2,-cmd,@SUM(A1),+1\n', encoding="utf-8")
+    src.write_text(
+        'case_id,ph,pco2,hco3,a,b,c,d,e\nA1,7.40,40,24,=HYPERLINK("x"),-4.2,-cmd,@SUM(A1),+1\n',
+        encoding="utf-8",
+    )
     assert _batch(src, tmp_path / "out.csv") == 0
     [row] = _rows(tmp_path / "out.csv")
-    assert [row[k] for k in "abcde"] == ["'=HYPERLINK(\"x\")", "-4.2", "'-cmd", "'@SUM(A1)", "+1"]
+    assert [row[k] for k in "abcde"] == ['\'=HYPERLINK("x")', "-4.2", "'-cmd", "'@SUM(A1)", "+1"]
     assert _batch(src, tmp_path / "raw.csv", "--no-formula-guard") == 0
     assert _rows(tmp_path / "raw.csv")[0]["a"] == '=HYPERLINK("x")'
 
@@ -104,11 +117,21 @@ def test_a_file_where_every_row_is_rejected_never_exits_0(tmp_path: Path) -> Non
     assert _batch(mixed, tmp_path / "m2.csv", "--allow-rejected") == 0
 
 
-@pytest.mark.parametrize("header,likely", [("paco2", "pco2"), ("PaCO2 (kPa)", "pco2"), ("bicarb", "hco3"),
-                                           ("HCO3-", "hco3"), ("Sodium", "na"), ("albumn", "albumin"),
-                                           ("lactat", "lactate")])
-def test_a_column_that_looks_like_an_input_is_an_error(header: str, likely: str, tmp_path: Path,
-                                                      shipped_rb: object) -> None:
+@pytest.mark.parametrize(
+    "header,likely",
+    [
+        ("paco2", "pco2"),
+        ("PaCO2 (kPa)", "pco2"),
+        ("bicarb", "hco3"),
+        ("HCO3-", "hco3"),
+        ("Sodium", "na"),
+        ("albumn", "albumin"),
+        ("lactat", "lactate"),
+    ],
+)
+def test_a_column_that_looks_like_an_input_is_an_error(
+    header: str, likely: str, tmp_path: Path, shipped_rb: object
+) -> None:
     src = tmp_path / "in.csv"
     src.write_text(f"case_id,ph,{header}\nA1,7.40,1\n", encoding="utf-8")
     with pytest.raises(TableError) as exc:
@@ -116,7 +139,9 @@ def test_a_column_that_looks_like_an_input_is_an_error(header: str, likely: str,
     assert f"column 3 '{header}': looks like input '{likely}'" in str(exc.value)
 
 
-def test_a_look_alike_column_mapped_or_declared_passthrough_is_accepted(tmp_path: Path, shipped_rb: object) -> None:
+def test_a_look_alike_column_mapped_or_declared_passthrough_is_accepted(
+    tmp_path: Path, shipped_rb: object
+) -> None:
     from gasrules.tables.readers import mapping_from_data
 
     src = tmp_path / "in.csv"
@@ -168,8 +193,9 @@ def test_workers_exit_when_the_parent_is_killed(tmp_path: Path) -> None:
     script = tmp_path / "parent.py"
     script.write_text(_POOL_SCRIPT, encoding="utf-8")
     root = Path(__file__).resolve().parents[1]
-    proc = subprocess.Popen([sys.executable, str(script), str(tmp_path)],
-                            env={**os.environ, "PYTHONPATH": str(root / "engine")})
+    proc = subprocess.Popen(
+        [sys.executable, str(script), str(tmp_path)], env={**os.environ, "PYTHONPATH": str(root / "engine")}
+    )
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline and len(list(tmp_path.glob("w*"))) < 2:
         time.sleep(0.05)
@@ -192,9 +218,9 @@ def test_next_run_removes_hidden_partials_of_killed_runs(tmp_path: Path) -> None
     target = tmp_path / "out.csv"
     stale = tmp_path / f".out.csv.partial-{dead.pid}"
     stale.write_text("half a result", encoding="utf-8")
-    live = tmp_path / ".out.csv.partial-1"                       # pid 1 is running: its partial stays
+    live = tmp_path / ".out.csv.partial-1"  # pid 1 is running: its partial stays
     live.write_text("another run", encoding="utf-8")
-    other = tmp_path / f".other.csv.partial-{dead.pid}"          # another target: not ours to remove
+    other = tmp_path / f".other.csv.partial-{dead.pid}"  # another target: not ours to remove
     other.write_text("x", encoding="utf-8")
     src = tmp_path / "in.csv"
     src.write_text("case_id,ph,pco2,hco3\nA1,7.40,40,24\n", encoding="utf-8")
@@ -204,10 +230,17 @@ def test_next_run_removes_hidden_partials_of_killed_runs(tmp_path: Path) -> None
 
 def test_a_stray_quote_inside_an_unquoted_field_does_not_merge_rows(tmp_path: Path) -> None:
     src = tmp_path / "in.csv"
-    src.write_text("case_id,ph,pco2,hco3,height\n"
-                   "A1,7.40,40,24,5'11\"\n"
-                   "A2,7.40,40,24,6'0\"\n"
-                   "A3,7.40,40,24,\"two\nlines\"\n", encoding="utf-8")
+    src.write_text(
+        "case_id,ph,pco2,hco3,height\n"
+        "A1,7.40,40,24,5'11\"\n"
+        "A2,7.40,40,24,6'0\"\n"
+        'A3,7.40,40,24,"two\nlines"\n',
+        encoding="utf-8",
+    )
     assert _batch(src, tmp_path / "out.jsonl") == 0
     rows = read_back(tmp_path / "out.jsonl")
-    assert [(r["case_id"], r["height"]) for r in rows] == [("A1", "5'11\""), ("A2", "6'0\""), ("A3", "two\nlines")]
+    assert [(r["case_id"], r["height"]) for r in rows] == [
+        ("A1", "5'11\""),
+        ("A2", "6'0\""),
+        ("A3", "two\nlines"),
+    ]

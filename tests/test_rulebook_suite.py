@@ -35,7 +35,9 @@ def verified(request):
 
 def test_every_case_passes(verified):
     _rb, _suite, results = verified
-    failed = {r.case.id: [(f.what, f.expected, f.got) for f in r.failures] for r in results if r.outcome == "failed"}
+    failed = {
+        r.case.id: [(f.what, f.expected, f.got) for f in r.failures] for r in results if r.outcome == "failed"
+    }
     assert failed == {}
 
 
@@ -57,8 +59,10 @@ def test_no_missing_threshold_probes(verified):
 
 def test_every_case_carries_an_evidence_tag(verified):
     _rb, suite, _results = verified
-    assert all(c.evidence["tag"] in S.EVIDENCE_TAGS and (c.evidence.get("ref") or c.evidence.get("note"))
-               for c in suite.cases)
+    assert all(
+        c.evidence["tag"] in S.EVIDENCE_TAGS and (c.evidence.get("ref") or c.evidence.get("note"))
+        for c in suite.cases
+    )
     for c in suite.cases:
         for spec in ((c.want or {}).get("values") or {}).values():
             assert spec["evidence"]["tag"] in S.EVIDENCE_TAGS
@@ -67,7 +71,7 @@ def test_every_case_carries_an_evidence_tag(verified):
 def test_adult_suite_size_and_worked_examples():
     suite = S.load_suite(ADULT)
     reference = [c for c in suite.cases if c.probe is None]
-    assert len(reference) >= 80          # issue 3: at least 80 reference cases
+    assert len(reference) >= 80  # issue 3: at least 80 reference cases
     ids = {c.id.split("-")[0] for c in reference}
     # The worked examples are numbered E1-E10 and E13-E31 (there is no E11 or E12).
     wanted = {f"E{i}" for i in list(range(1, 11)) + list(range(13, 32))}
@@ -87,9 +91,11 @@ def test_overlay_supersedes_with_reasons_and_derives_its_own_probes():
 
 def _overlay(tmp_path: Path, parameters: str) -> Path:
     base = os.path.relpath(ADULT, tmp_path)
-    text = (f"format: gasrules/1\nextends: {base}\nmetadata:\n  id: test-overlay\n  version: 0.0.1\n"
-            f"  title: test overlay\n  effective_date: 2026-12-01\n  status: draft\n"
-            f"parameters:\n{parameters}")
+    text = (
+        f"format: gasrules/1\nextends: {base}\nmetadata:\n  id: test-overlay\n  version: 0.0.1\n"
+        f"  title: test overlay\n  effective_date: 2026-12-01\n  status: draft\n"
+        f"parameters:\n{parameters}"
+    )
     path = tmp_path / "rulebook.yaml"
     path.write_text(text, encoding="utf-8")
     return path
@@ -98,8 +104,11 @@ def _overlay(tmp_path: Path, parameters: str) -> Path:
 def test_capillary_screen_only_is_reachable_for_a_site(tmp_path):
     # The shipped rulebook states sample.capillary_screen_only unreachable; a site choosing
     # screen_only reaches it. Gas values invented for the demonstration (an E29-like gas).
-    path = _overlay(tmp_path, "  capillary_pco2_use:\n    value: screen_only\n    rationale: test\n"
-                              "    source: {evidence: CP, note: test}\n")
+    path = _overlay(
+        tmp_path,
+        "  capillary_pco2_use:\n    value: screen_only\n    rationale: test\n"
+        "    source: {evidence: CP, note: test}\n",
+    )
     rb = gasrules.load_rulebook(path, cache=False)
     res = gasrules.interpret(rb, {"sample_type": "capillary", "ph": 7.26, "pco2": 60, "hco3": 26})
     fired = {e["rule"] for e in res["trace"] if e["outcome"] == "fired"}
@@ -112,12 +121,24 @@ def test_delta_gap_low_is_reachable_with_wider_delta_gap_use(tmp_path):
     # it below) and no spread of the normal gap, the delta gap is read for falls in HCO3 up to 8:
     # AG 12.5 and HCO3 16.2 give a delta gap of 0.6 - 7.8 = -7.2, below -6
     # (Wrenn 1990, from memory: a normal-gap acidosis beside the gap acidosis).
-    params = ("  delta_min_dhco3:\n    value: 8\n    rationale: test\n    source: {evidence: CP, note: test}\n"
-              "  ag_normal:\n    value: 11.9\n    rationale: test\n    source: {evidence: CP, note: test}\n"
-              "  ag_normal_spread:\n    value: 0\n    rationale: test\n    source: {evidence: CP, note: test}\n")
+    params = (
+        "  delta_min_dhco3:\n    value: 8\n    rationale: test\n    source: {evidence: CP, note: test}\n"
+        "  ag_normal:\n    value: 11.9\n    rationale: test\n    source: {evidence: CP, note: test}\n"
+        "  ag_normal_spread:\n    value: 0\n    rationale: test\n    source: {evidence: CP, note: test}\n"
+    )
     rb = gasrules.load_rulebook(_overlay(tmp_path, params), cache=False)
-    res = gasrules.interpret(rb, {"sample_type": "arterial", "ph": 7.34, "pco2": 31, "hco3": 16.2,
-                                  "na": 140, "cl": 111.3, "albumin": 44})
+    res = gasrules.interpret(
+        rb,
+        {
+            "sample_type": "arterial",
+            "ph": 7.34,
+            "pco2": 31,
+            "hco3": 16.2,
+            "na": 140,
+            "cl": 111.3,
+            "albumin": 44,
+        },
+    )
     assert res["values"]["delta_gap"] == pytest.approx(-7.2, abs=0.05)
     assert any(e["rule"] == "delta.gap_low" and e["outcome"] == "fired" for e in res["trace"])
     assert "metabolic_acidosis_normal_anion_gap" in res["disorders"]

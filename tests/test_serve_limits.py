@@ -19,8 +19,8 @@ from typing import Any
 import pytest
 
 from gasrules.service.asgi import JsonLog, asgi_app
-from gasrules.service.server import make_server
 from gasrules.service.handlers import App, EngineInterpreter, ServiceConfig, build_app
+from gasrules.service.server import make_server
 from test_service import DEMO_CASE, Server
 
 HOST = "127.0.0.1"
@@ -40,13 +40,13 @@ class Live(Server):
             sock.sendall(data)
             return _read_all(sock, wait)
 
-    def request(self, method: str, path: str, body: Any = None,
-                headers: dict[str, str] | None = None) -> tuple[int, dict[str, str], bytes]:
+    def request(
+        self, method: str, path: str, body: Any = None, headers: dict[str, str] | None = None
+    ) -> tuple[int, dict[str, str], bytes]:
         import http.client
 
         conn = http.client.HTTPConnection(HOST, self.port, timeout=10)
-        data = None if body is None else body if isinstance(body, bytes) else \
-            json.dumps(body).encode()
+        data = None if body is None else body if isinstance(body, bytes) else json.dumps(body).encode()
         hdrs = {"Content-Type": "application/json", **(headers or {})}
         conn.request(method, path, body=data, headers=hdrs)
         resp = conn.getresponse()
@@ -70,17 +70,22 @@ def _read_all(sock: socket.socket, wait: float) -> bytes:
 
 
 def live(tmp: Path, log: io.StringIO | None = None, **config: Any) -> Live:
-    cfg = ServiceConfig(port=0, feedback_log=str(tmp / "feedback.jsonl"), access_log=False,
-                        **config)
+    cfg = ServiceConfig(port=0, feedback_log=str(tmp / "feedback.jsonl"), access_log=False, **config)
     return Live(build_app(cfg, environ={}), log)
 
 
 @pytest.fixture(scope="module", params=["httptools", "h11"])
-def tight(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory
-          ) -> Iterator[Live]:
+def tight(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory) -> Iterator[Live]:
     """A 1 s request deadline, 8 API requests in progress, 64 connections; on each parser."""
-    srv = live(tmp_path_factory.mktemp("tight"), timeout=1.0, max_concurrency=8,
-               max_connections=64, max_depth=16, max_case_fields=40, http_parser=request.param)
+    srv = live(
+        tmp_path_factory.mktemp("tight"),
+        timeout=1.0,
+        max_concurrency=8,
+        max_connections=64,
+        max_depth=16,
+        max_case_fields=40,
+        http_parser=request.param,
+    )
     yield srv
     srv.close()
 
@@ -92,21 +97,23 @@ def _post(body: bytes, *extra: str) -> bytes:
 
 # ============================================================================ framing
 @pytest.mark.parametrize("lengths", [("2", "3"), ("2, 3",), ("+2",), ("0x2",), ("2 2",)])
-def test_differing_or_malformed_content_length_is_400(tight: Live, lengths: tuple[str, ...]
-                                                      ) -> None:
+def test_differing_or_malformed_content_length_is_400(tight: Live, lengths: tuple[str, ...]) -> None:
     data = tight.raw(_post(b"{}", *(f"Content-Length: {n}" for n in lengths)))
     assert data.startswith(b"HTTP/1.1 400"), data[:80]
     error = json.loads(data.partition(b"\r\n\r\n")[2])["error"]
     assert error["code"] == "http.bad_request" and "Content-Length" in error["message"]
 
 
-def test_identical_duplicate_content_length_is_merged_by_h11_refused_by_llhttp(tight: Live
-                                                                             ) -> None:
+def test_identical_duplicate_content_length_is_merged_by_h11_refused_by_llhttp(tight: Live) -> None:
     """RFC 9110 section 8.6 lets a recipient merge identical duplicates; h11 does, llhttp
     refuses them. Neither ever reads a body of the wrong length."""
-    data = tight.raw(_post(json.dumps(DEMO_CASE).encode(),
-                           *[f"Content-Length: {len(json.dumps(DEMO_CASE))}"] * 2,
-                           "Connection: close"))
+    data = tight.raw(
+        _post(
+            json.dumps(DEMO_CASE).encode(),
+            *[f"Content-Length: {len(json.dumps(DEMO_CASE))}"] * 2,
+            "Connection: close",
+        )
+    )
     want = b"HTTP/1.1 200" if tight.app.config.http_parser == "h11" else b"HTTP/1.1 400"
     assert data.startswith(want), data[:80]
 
@@ -116,13 +123,19 @@ def test_headers_dribbled_past_the_deadline_get_408_and_are_dropped(tight: Live)
     with socket.create_connection((HOST, tight.port), timeout=10) as sock:
         t0 = time.monotonic()
         got = b""
-        for piece in (b"POST /interpret HTTP/1.1\r\n", b"Host: x\r\n", b"X-A: 1\r\n",
-                      b"X-B: 2\r\n", b"X-C: 3\r\n", b"X-D: 4\r\n"):
+        for piece in (
+            b"POST /interpret HTTP/1.1\r\n",
+            b"Host: x\r\n",
+            b"X-A: 1\r\n",
+            b"X-B: 2\r\n",
+            b"X-C: 3\r\n",
+            b"X-D: 4\r\n",
+        ):
             try:
                 sock.sendall(piece)
             except OSError:
                 break
-            time.sleep(0.4)          # each piece well inside any per-read timeout
+            time.sleep(0.4)  # each piece well inside any per-read timeout
         got = _read_all(sock, 5)
         elapsed = time.monotonic() - t0
     assert got.startswith(b"HTTP/1.1 408"), got[:80]
@@ -133,10 +146,10 @@ def test_headers_dribbled_past_the_deadline_get_408_and_are_dropped(tight: Live)
 def test_a_body_dribbled_past_the_deadline_gets_408(tight: Live) -> None:
     body = json.dumps(DEMO_CASE).encode()
     with socket.create_connection((HOST, tight.port), timeout=10) as sock:
-        sock.sendall(_post(b"", f"Content-Length: {len(body)}")[:-0 or None])
+        sock.sendall(_post(b"", f"Content-Length: {len(body)}")[: -0 or None])
         for i in range(0, min(len(body), 12), 2):
             try:
-                sock.sendall(body[i:i + 2])
+                sock.sendall(body[i : i + 2])
             except OSError:
                 break
             time.sleep(0.3)
@@ -186,7 +199,7 @@ def test_256_slow_connections_do_not_starve_the_probes(tmp_path: Path) -> None:
             assert srv.request("GET", path)[0] == 200, path
         status, _, _ = srv.request("POST", "/interpret?trace=0", DEMO_CASE)
         assert status == 200 and time.monotonic() - t0 < 5
-        time.sleep(2.5)                                  # past the deadline: all dropped
+        time.sleep(2.5)  # past the deadline: all dropped
         closed = sum(1 for sock in slow if _read_all(sock, 0.5).startswith(b"HTTP/1.1 408"))
         assert closed == 256
     finally:
@@ -207,21 +220,35 @@ def test_tls_from_the_settings_serves_https(tmp_path: Path) -> None:
     key = ec.generate_private_key(ec.SECP256R1())
     name = x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, "localhost")])
     now = datetime.datetime.now(datetime.UTC)
-    cert = (x509.CertificateBuilder().subject_name(name).issuer_name(name)
-            .public_key(key.public_key()).serial_number(x509.random_serial_number())
-            .not_valid_before(now - datetime.timedelta(minutes=1))
-            .not_valid_after(now + datetime.timedelta(hours=1))
-            .add_extension(x509.SubjectAlternativeName([x509.DNSName("localhost")]), False)
-            .sign(key, hashes.SHA256()))
+    cert = (
+        x509.CertificateBuilder()
+        .subject_name(name)
+        .issuer_name(name)
+        .public_key(key.public_key())
+        .serial_number(x509.random_serial_number())
+        .not_valid_before(now - datetime.timedelta(minutes=1))
+        .not_valid_after(now + datetime.timedelta(hours=1))
+        .add_extension(x509.SubjectAlternativeName([x509.DNSName("localhost")]), False)
+        .sign(key, hashes.SHA256())
+    )
     (tmp_path / "cert.pem").write_bytes(cert.public_bytes(serialization.Encoding.PEM))
-    (tmp_path / "key.pem").write_bytes(key.private_bytes(
-        serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8,
-        serialization.NoEncryption()))
+    (tmp_path / "key.pem").write_bytes(
+        key.private_bytes(
+            serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8, serialization.NoEncryption()
+        )
+    )
     cfg = ServiceConfig(port=0, feedback_log=str(tmp_path / "f.jsonl"), access_log=False)
     app = build_app(cfg, environ={})
-    httpd = make_server(asgi_app(app), HOST, 0, request_timeout=5, keep_alive=5,
-                        max_connections=16, ssl_certfile=str(tmp_path / "cert.pem"),
-                        ssl_keyfile=str(tmp_path / "key.pem"))
+    httpd = make_server(
+        asgi_app(app),
+        HOST,
+        0,
+        request_timeout=5,
+        keep_alive=5,
+        max_connections=16,
+        ssl_certfile=str(tmp_path / "cert.pem"),
+        ssl_keyfile=str(tmp_path / "key.pem"),
+    )
     threading.Thread(target=httpd.serve_forever, daemon=True).start()
     try:
         for _ in range(200):
@@ -239,8 +266,9 @@ def test_tls_from_the_settings_serves_https(tmp_path: Path) -> None:
         httpd.server_close()
 
 
-def test_requests_beyond_the_concurrency_limit_get_503_but_probes_do_not(tmp_path: Path,
-                                                                      rulebook: Any) -> None:
+def test_requests_beyond_the_concurrency_limit_get_503_but_probes_do_not(
+    tmp_path: Path, rulebook: Any
+) -> None:
     release = threading.Event()
     entered = threading.Event()
 
@@ -250,11 +278,9 @@ def test_requests_beyond_the_concurrency_limit_get_503_but_probes_do_not(tmp_pat
             release.wait(10)
             return super().interpret(case, trace)
 
-    cfg = ServiceConfig(feedback_log=str(tmp_path / "f.jsonl"), access_log=False,
-                        max_concurrency=1)
+    cfg = ServiceConfig(feedback_log=str(tmp_path / "f.jsonl"), access_log=False, max_concurrency=1)
     srv = Live(App(cfg, Held(rulebook)))
-    holder = threading.Thread(target=srv.request, args=("POST", "/interpret/batch",
-                                                        [DEMO_CASE]))
+    holder = threading.Thread(target=srv.request, args=("POST", "/interpret/batch", [DEMO_CASE]))
     try:
         holder.start()
         assert entered.wait(10)
@@ -295,14 +321,15 @@ def test_a_case_with_too_many_fields_is_400_not_a_huge_answer(tight: Live) -> No
 def test_a_response_beyond_its_bound_is_refused(tmp_path: Path) -> None:
     srv = live(tmp_path, response_floor=65536, response_ratio=8)
     try:
-        body = json.dumps([{}] * 20).encode()          # 20 traced results: far beyond 64 KiB
+        body = json.dumps([{}] * 20).encode()  # 20 traced results: far beyond 64 KiB
         status, _, data = srv.request("POST", "/interpret/batch", body)
         assert status == 413 and json.loads(data)["error"]["code"] == "response.too_large"
         status, _, data = srv.request("POST", "/interpret/batch?trace=0", [{}] * 2)
         assert status == 200 and len(json.loads(data)) == 2
         lines = b"{}\n" * 20
-        status, _, data = srv.request("POST", "/interpret/batch", lines,
-                                      {"Content-Type": "application/x-ndjson"})
+        status, _, data = srv.request(
+            "POST", "/interpret/batch", lines, {"Content-Type": "application/x-ndjson"}
+        )
         assert status == 413
     finally:
         srv.close()
@@ -351,12 +378,13 @@ def test_request_ids_are_propagated_and_logged_as_json(tmp_path: Path) -> None:
     lines = [json.loads(line) for line in log.getvalue().splitlines()]
     requests = [x for x in lines if x.get("event") == "request"]
     assert [(x["request_id"], x["path"], x["status"]) for x in requests] == [
-        ("abc-123", "/interpret", 200), (fresh, "/health", 200)]
+        ("abc-123", "/interpret", 200),
+        (fresh, "/health", 200),
+    ]
     assert all(isinstance(x["ms"], float) for x in requests)
 
 
-def test_cors_is_off_by_default_and_allows_configured_origins(tight: Live,
-                                                              tmp_path: Path) -> None:
+def test_cors_is_off_by_default_and_allows_configured_origins(tight: Live, tmp_path: Path) -> None:
     preflight = {"Origin": "https://ehr.example.org", "Access-Control-Request-Method": "POST"}
     _, headers, _ = tight.request("OPTIONS", "/cds-services", None, preflight)
     assert "access-control-allow-origin" not in headers
@@ -365,8 +393,7 @@ def test_cors_is_off_by_default_and_allows_configured_origins(tight: Live,
         status, headers, _ = srv.request("OPTIONS", "/cds-services", None, preflight)
         assert status == 200
         assert headers["access-control-allow-origin"] == "https://ehr.example.org"
-        _, headers, _ = srv.request("GET", "/cds-services", None,
-                                    {"Origin": "https://other.example.org"})
+        _, headers, _ = srv.request("GET", "/cds-services", None, {"Origin": "https://other.example.org"})
         assert "access-control-allow-origin" not in headers
     finally:
         srv.close()
@@ -374,16 +401,20 @@ def test_cors_is_off_by_default_and_allows_configured_origins(tight: Live,
 
 # ============================================================================ settings
 def test_the_serve_section_of_a_settings_file_is_checked(tmp_path: Path) -> None:
-    from gasrules.service.settings import serve_section
     from gasrules.governance.settings import SettingsError, load_settings
+    from gasrules.service.settings import serve_section
 
     good = tmp_path / "site.yaml"
-    good.write_text("serve:\n  port: 0\n  max_body: 2048\n  cors_origins: [https://a.example]\n"
-                    "  feedback_log: fb.jsonl\n")
-    assert serve_section(good) == {"port": 0, "max_body": 2048,
-                                   "cors_origins": ("https://a.example",),
-                                   "feedback_log": str(tmp_path / "fb.jsonl")}
-    load_settings(good, env={})     # the runtime's own reader accepts the section
+    good.write_text(
+        "serve:\n  port: 0\n  max_body: 2048\n  cors_origins: [https://a.example]\n  feedback_log: fb.jsonl\n"
+    )
+    assert serve_section(good) == {
+        "port": 0,
+        "max_body": 2048,
+        "cors_origins": ("https://a.example",),
+        "feedback_log": str(tmp_path / "fb.jsonl"),
+    }
+    load_settings(good, env={})  # the runtime's own reader accepts the section
     bad = tmp_path / "bad.yaml"
     bad.write_text("serve:\n  port: 70000\n")
     with pytest.raises(SettingsError) as err:
@@ -396,8 +427,8 @@ def test_the_serve_section_of_a_settings_file_is_checked(tmp_path: Path) -> None
 
 
 def test_the_shipped_example_settings_file_is_valid() -> None:
-    from gasrules.service.settings import serve_section
     from gasrules.governance.settings import load_settings
+    from gasrules.service.settings import serve_section
 
     example = Path(__file__).parents[1] / "docs" / "settings.example.yaml"
     assert serve_section(example)["port"] == 8080
@@ -415,12 +446,25 @@ def test_gasrules_serve_takes_address_and_limits_from_the_settings_file(tmp_path
     import sys
 
     settings = tmp_path / "site.yaml"
-    settings.write_text("serve:\n  host: 127.0.0.1\n  port: 0\n  max_body: 2048\n"
-                        "  max_concurrency: 3\n  access_log: false\n  feedback_log: fb.jsonl\n")
+    settings.write_text(
+        "serve:\n  host: 127.0.0.1\n  port: 0\n  max_body: 2048\n"
+        "  max_concurrency: 3\n  access_log: false\n  feedback_log: fb.jsonl\n"
+    )
     proc = subprocess.Popen(
-        [sys.executable, "-c", "import sys; from gasrules.cli import main; sys.exit(main())",
-         "serve", "--settings", str(settings), "--max-batch", "5"],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        [
+            sys.executable,
+            "-c",
+            "import sys; from gasrules.cli import main; sys.exit(main())",
+            "serve",
+            "--settings",
+            str(settings),
+            "--max-batch",
+            "5",
+        ],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
     try:
         line = proc.stdout.readline() if proc.stdout else ""
         assert "listening on http://127.0.0.1:" in line, line
@@ -431,8 +475,11 @@ def test_gasrules_serve_takes_address_and_limits_from_the_settings_file(tmp_path
         conn.request("GET", "/health")
         limits = json.loads(conn.getresponse().read())["limits"]
         conn.close()
-        assert (limits["max_body_bytes"], limits["max_concurrency"],
-                limits["max_batch_cases"]) == (2048, 3, 5)      # file, file, flag
+        assert (limits["max_body_bytes"], limits["max_concurrency"], limits["max_batch_cases"]) == (
+            2048,
+            3,
+            5,
+        )  # file, file, flag
     finally:
         proc.terminate()
         proc.wait(timeout=20)

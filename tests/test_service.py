@@ -25,13 +25,14 @@ import pytest
 
 import gasrules
 from gasrules.service.asgi import asgi_app
-from gasrules.service.server import make_server
 from gasrules.service.handlers import App, EngineInterpreter, Request, ServiceConfig, build_app
+from gasrules.service.server import make_server
 
 ROOT = Path(__file__).parents[1]
 DEMO_CASE = json.loads((ROOT / "tools" / "demo" / "case.json").read_text())
-DEMO_ROWS = [json.loads(line) for line in
-             (ROOT / "tools" / "demo" / "cases.jsonl").read_text().splitlines()[:20]]
+DEMO_ROWS = [
+    json.loads(line) for line in (ROOT / "tools" / "demo" / "cases.jsonl").read_text().splitlines()[:20]
+]
 FHIR_PANEL = json.loads((ROOT / "tests" / "data" / "fhir" / "arterial_panel.json").read_text())
 
 
@@ -39,13 +40,19 @@ class Server:
     def __init__(self, app: App, log: Any = None) -> None:
         self.app = app
         cfg = app.config
-        self.httpd = make_server(asgi_app(app, log=log), "127.0.0.1", 0, request_timeout=cfg.timeout,
-                                 keep_alive=cfg.keep_alive, max_connections=cfg.max_connections,
-                                 parser=cfg.http_parser)
+        self.httpd = make_server(
+            asgi_app(app, log=log),
+            "127.0.0.1",
+            0,
+            request_timeout=cfg.timeout,
+            keep_alive=cfg.keep_alive,
+            max_connections=cfg.max_connections,
+            parser=cfg.http_parser,
+        )
         self.port = self.httpd.server_address[1]
         self.thread = threading.Thread(target=self.httpd.serve_forever, daemon=True)
         self.thread.start()
-        for _ in range(200):                   # uvicorn is up once it answers a probe
+        for _ in range(200):  # uvicorn is up once it answers a probe
             if self.httpd.server.started:
                 break
             time.sleep(0.02)
@@ -54,8 +61,14 @@ class Server:
         self.httpd.shutdown()
         self.httpd.server_close()
 
-    def call(self, method: str, path: str, body: Any = None, ctype: str | None = "application/json",
-             headers: dict[str, str] | None = None) -> tuple[int, dict[str, str], bytes]:
+    def call(
+        self,
+        method: str,
+        path: str,
+        body: Any = None,
+        ctype: str | None = "application/json",
+        headers: dict[str, str] | None = None,
+    ) -> tuple[int, dict[str, str], bytes]:
         conn = http.client.HTTPConnection("127.0.0.1", self.port, timeout=30)
         data = body if body is None or isinstance(body, bytes) else json.dumps(body).encode()
         hdrs = dict(headers or {})
@@ -74,8 +87,7 @@ class Server:
 
 def start(tmp: Path, environ: dict[str, str] | None = None, **config: Any) -> Server:
     """A server in a thread; site settings only from ``environ`` (never the developer's own)."""
-    cfg = ServiceConfig(port=0, feedback_log=str(tmp / "feedback.jsonl"), access_log=False,
-                        **config)
+    cfg = ServiceConfig(port=0, feedback_log=str(tmp / "feedback.jsonl"), access_log=False, **config)
     return Server(build_app(cfg, environ=environ or {}))
 
 
@@ -146,19 +158,19 @@ def test_a_bad_field_is_a_rejected_result_naming_the_field(server: Server) -> No
 
 
 def test_fhir_bundle_in_gives_a_valid_fhir_bundle_out(server: Server, rulebook: Any) -> None:
-    status, headers, data = server.call("POST", "/interpret", FHIR_PANEL,
-                                        ctype="application/fhir+json")
+    status, headers, data = server.call("POST", "/interpret", FHIR_PANEL, ctype="application/fhir+json")
     assert status == 200 and headers["content-type"] == "application/fhir+json"
     bundle = json.loads(data)
     validate_bundle(bundle)
     kinds = [e["resource"]["resourceType"] for e in bundle["entry"]]
     assert kinds == ["Observation", "DiagnosticReport", "Device", "Provenance"]
     obs, prov = bundle["entry"][0]["resource"], bundle["entry"][3]["resource"]
-    inputs = {e["fullUrl"] for e in FHIR_PANEL["entry"]}   # Observations, and the Patient (age)
+    inputs = {e["fullUrl"] for e in FHIR_PANEL["entry"]}  # Observations, and the Patient (age)
     derived = {r["reference"] for r in obs["derivedFrom"]}
     assert derived <= inputs and len(derived) >= 3
     assert prov["policy"][0].endswith(f"?sha256={rulebook.sha256}")
     from gasrules.integration.fhir import case_from_fhir
+
     expected = gasrules.interpret(rulebook, case_from_fhir(FHIR_PANEL, rulebook.inputs).case)
     assert obs["valueString"] == expected["headline"]
 
@@ -166,12 +178,13 @@ def test_fhir_bundle_in_gives_a_valid_fhir_bundle_out(server: Server, rulebook: 
 def test_fhir_reading_issues_come_back_as_an_operation_outcome(server: Server) -> None:
     panel = copy.deepcopy(FHIR_PANEL)
     lactate = next(e for e in panel["entry"] if e["resource"].get("id") == "lac-0001")
-    lactate["resource"]["code"]["coding"][0]["code"] = "99999-9"   # a code no input reads
+    lactate["resource"]["code"]["coding"][0]["code"] = "99999-9"  # a code no input reads
     status, bundle = server.json("POST", "/interpret", panel)
     assert status == 200
     validate_bundle(bundle)
-    [outcome] = [e["resource"] for e in bundle["entry"]
-                 if e["resource"]["resourceType"] == "OperationOutcome"]
+    [outcome] = [
+        e["resource"] for e in bundle["entry"] if e["resource"]["resourceType"] == "OperationOutcome"
+    ]
     [issue] = outcome["issue"]
     assert issue["diagnostics"] == "code.unknown" and issue["severity"] == "warning"
     index = panel["entry"].index(lactate)
@@ -185,8 +198,7 @@ def test_fhir_output_on_request_for_a_plain_case(server: Server) -> None:
 
 
 # ============================================================================ batch
-def test_batch_array_n_in_n_out_in_order_with_errors_inline(server: Server,
-                                                            rulebook: Any) -> None:
+def test_batch_array_n_in_n_out_in_order_with_errors_inline(server: Server, rulebook: Any) -> None:
     rows: list[Any] = DEMO_ROWS[:4] + [42] + DEMO_ROWS[4:6]
     status, body = server.json("POST", "/interpret/batch?trace=0", rows)
     assert status == 200 and len(body) == len(rows)
@@ -196,10 +208,10 @@ def test_batch_array_n_in_n_out_in_order_with_errors_inline(server: Server,
 
 
 def test_batch_json_lines_keeps_a_broken_line_as_a_rejected_row(server: Server) -> None:
-    lines = [json.dumps(DEMO_ROWS[0]), '{"case_id": "bad", "ph": ', "",
-             json.dumps(DEMO_ROWS[1])]
-    status, headers, data = server.call("POST", "/interpret/batch?trace=0",
-                                        "\n".join(lines).encode(), ctype="application/x-ndjson")
+    lines = [json.dumps(DEMO_ROWS[0]), '{"case_id": "bad", "ph": ', "", json.dumps(DEMO_ROWS[1])]
+    status, headers, data = server.call(
+        "POST", "/interpret/batch?trace=0", "\n".join(lines).encode(), ctype="application/x-ndjson"
+    )
     assert status == 200 and headers["content-type"] == "application/x-ndjson"
     out = [json.loads(x) for x in data.decode().splitlines()]
     assert [r["case_id"] for r in out] == [DEMO_ROWS[0]["case_id"], None, DEMO_ROWS[1]["case_id"]]
@@ -210,18 +222,19 @@ def test_batch_json_lines_keeps_a_broken_line_as_a_rejected_row(server: Server) 
     result_validator().validate(bad)
 
 
-def test_batch_past_its_deadline_returns_every_row_and_logs_exactly_those(rulebook: Any, tmp_path: Path,
-                                                                         monkeypatch: pytest.MonkeyPatch) -> None:
+def test_batch_past_its_deadline_returns_every_row_and_logs_exactly_those(
+    rulebook: Any, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     """N in, N out: the rows not reached before the deadline come back rejected, and the
     decision log holds exactly the results returned."""
-    from gasrules.service import handlers as service_module
-    from gasrules.governance.audit import verify_log
-    from gasrules.governance.runtime import Runtime
-    from gasrules.service.handlers import RuntimeInterpreter
-    from gasrules.governance.settings import Settings
-
     import time as real_time
     import types
+
+    from gasrules.governance.audit import verify_log
+    from gasrules.governance.runtime import Runtime
+    from gasrules.governance.settings import Settings
+    from gasrules.service import handlers as service_module
+    from gasrules.service.handlers import RuntimeInterpreter
 
     log = tmp_path / "d.jsonl"
     runtime = Runtime(rulebook, Settings(decision_log=log, log_fsync=False))
@@ -234,9 +247,11 @@ def test_batch_past_its_deadline_returns_every_row_and_logs_exactly_those(rulebo
             return super().interpret(case, trace)
 
     clock = types.SimpleNamespace(now=100.0)
-    fake_time = types.SimpleNamespace(**{n: getattr(real_time, n) for n in dir(real_time) if not n.startswith("_")})
+    fake_time = types.SimpleNamespace(
+        **{n: getattr(real_time, n) for n in dir(real_time) if not n.startswith("_")}
+    )
     fake_time.monotonic = lambda: clock.now
-    monkeypatch.setattr(service_module, "time", fake_time)   # the service's clock only
+    monkeypatch.setattr(service_module, "time", fake_time)  # the service's clock only
     app = App(ServiceConfig(timeout=5.0, feedback_log=str(tmp_path / "f.jsonl")), Slow(runtime))
     body = json.dumps(DEMO_ROWS[:3]).encode()
     req = Request("POST", "/interpret/batch", {}, {"content-type": "application/json"}, body, started=100.0)
@@ -251,8 +266,7 @@ def test_batch_past_its_deadline_returns_every_row_and_logs_exactly_those(rulebo
     assert verify_log(log).entries == 3
 
 
-def test_an_engine_failure_on_one_row_rejects_that_row_only(rulebook: Any,
-                                                           tmp_path: Path) -> None:
+def test_an_engine_failure_on_one_row_rejects_that_row_only(rulebook: Any, tmp_path: Path) -> None:
     class FailsOnX(EngineInterpreter):
         def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
             if isinstance(case, dict) and case.get("case_id") == "X":
@@ -261,8 +275,15 @@ def test_an_engine_failure_on_one_row_rejects_that_row_only(rulebook: Any,
 
     app = App(ServiceConfig(feedback_log=str(tmp_path / "f.jsonl")), FailsOnX(rulebook))
     rows = [DEMO_ROWS[0], {"case_id": "X", "ph": 7.4}, DEMO_ROWS[1]]
-    resp = app.handle(Request("POST", "/interpret/batch", {"trace": ["0"]},
-                              {"content-type": "application/json"}, json.dumps(rows).encode()))
+    resp = app.handle(
+        Request(
+            "POST",
+            "/interpret/batch",
+            {"trace": ["0"]},
+            {"content-type": "application/json"},
+            json.dumps(rows).encode(),
+        )
+    )
     out = json.loads(resp.body)
     assert [r["case_id"] for r in out] == [DEMO_ROWS[0]["case_id"], "X", DEMO_ROWS[1]["case_id"]]
     assert out[1]["status"] == "rejected" and out[1]["errors"][0]["code"] == "input.unreadable"
@@ -284,8 +305,10 @@ def test_body_over_the_limit_is_413_before_it_is_used(small: Server) -> None:
 
 def test_a_body_that_never_arrives_is_408(small: Server) -> None:
     with socket.create_connection(("127.0.0.1", small.port), timeout=10) as sock:
-        sock.sendall(b"POST /interpret HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
-                     b"Content-Length: 100\r\n\r\n{\"ph\":")
+        sock.sendall(
+            b"POST /interpret HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
+            b'Content-Length: 100\r\n\r\n{"ph":'
+        )
         data = b""
         while chunk := sock.recv(65536):
             data += chunk
@@ -296,28 +319,32 @@ def test_a_body_that_never_arrives_is_408(small: Server) -> None:
 
 def test_missing_content_length_is_411(server: Server) -> None:
     with socket.create_connection(("127.0.0.1", server.port), timeout=10) as sock:
-        sock.sendall(b"POST /interpret HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
-                     b"Transfer-Encoding: chunked\r\n\r\n2\r\n{}\r\n0\r\n\r\n")
+        sock.sendall(
+            b"POST /interpret HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
+            b"Transfer-Encoding: chunked\r\n\r\n2\r\n{}\r\n0\r\n\r\n"
+        )
         data = sock.recv(65536)
     assert data.startswith(b"HTTP/1.1 411")
 
 
-@pytest.mark.parametrize(("method", "path", "body", "ctype", "status", "code"), [
-    ("GET", "/nowhere", None, None, 404, "http.not_found"),
-    ("DELETE", "/interpret", None, None, 405, "http.method"),
-    ("GET", "/interpret", None, None, 405, "http.method"),
-    ("POST", "/interpret", b"{}", "text/plain", 415, "http.content_type"),
-    ("POST", "/interpret", b"{}", "application/json; charset=latin-1", 415, "http.charset"),
-    ("POST", "/interpret", b'{"ph": 7.4,', "application/json", 400, "json.invalid"),
-    ("POST", "/interpret", b"[{}]", "application/json", 400, "request.not_a_case"),
-    ("POST", "/interpret?trace=maybe", b"{}", "application/json", 400, "http.query"),
-    ("POST", "/interpret/batch", b"{}", "application/json", 400, "request.not_a_list"),
-    ("POST", "/cds-services/no-such-service", b"{}", "application/json", 404,
-     "cds.unknown_service"),
-])
-def test_errors_are_json_with_the_right_status(server: Server, method: str, path: str,
-                                               body: bytes | None, ctype: str | None,
-                                               status: int, code: str) -> None:
+@pytest.mark.parametrize(
+    ("method", "path", "body", "ctype", "status", "code"),
+    [
+        ("GET", "/nowhere", None, None, 404, "http.not_found"),
+        ("DELETE", "/interpret", None, None, 405, "http.method"),
+        ("GET", "/interpret", None, None, 405, "http.method"),
+        ("POST", "/interpret", b"{}", "text/plain", 415, "http.content_type"),
+        ("POST", "/interpret", b"{}", "application/json; charset=latin-1", 415, "http.charset"),
+        ("POST", "/interpret", b'{"ph": 7.4,', "application/json", 400, "json.invalid"),
+        ("POST", "/interpret", b"[{}]", "application/json", 400, "request.not_a_case"),
+        ("POST", "/interpret?trace=maybe", b"{}", "application/json", 400, "http.query"),
+        ("POST", "/interpret/batch", b"{}", "application/json", 400, "request.not_a_list"),
+        ("POST", "/cds-services/no-such-service", b"{}", "application/json", 404, "cds.unknown_service"),
+    ],
+)
+def test_errors_are_json_with_the_right_status(
+    server: Server, method: str, path: str, body: bytes | None, ctype: str | None, status: int, code: str
+) -> None:
     got, headers, data = server.call(method, path, body, ctype=ctype)
     assert got == status
     assert headers["content-type"] == "application/json"
@@ -328,7 +355,7 @@ def test_errors_are_json_with_the_right_status(server: Server, method: str, path
 
 def test_invalid_json_error_gives_line_and_column(server: Server) -> None:
     _, body = server.json("POST", "/interpret", b'{\n  "ph": 7.4,\n  }')
-    assert "line 2 column 12" in body["error"]["message"]   # the trailing comma
+    assert "line 2 column 12" in body["error"]["message"]  # the trailing comma
 
 
 def test_an_internal_failure_is_a_json_500(tmp_path: Path, rulebook: Any) -> None:
@@ -336,13 +363,14 @@ def test_an_internal_failure_is_a_json_500(tmp_path: Path, rulebook: Any) -> Non
         def interpret(self, case: Any, trace: bool = True) -> dict[str, Any]:
             raise RuntimeError("boom")
 
-    srv = Server(App(ServiceConfig(feedback_log=str(tmp_path / "f.jsonl"), access_log=False),
-                     Broken(rulebook)))
+    srv = Server(
+        App(ServiceConfig(feedback_log=str(tmp_path / "f.jsonl"), access_log=False), Broken(rulebook))
+    )
     try:
         status, body = srv.json("POST", "/interpret", {})
         assert status == 500 and body["error"]["code"] == "internal"
-        assert "boom" not in json.dumps(body)   # no internals leak to the client
-        assert srv.json("GET", "/health")[0] == 200   # and the server keeps serving
+        assert "boom" not in json.dumps(body)  # no internals leak to the client
+        assert srv.json("GET", "/health")[0] == 200  # and the server keeps serving
     finally:
         srv.close()
 
@@ -351,8 +379,12 @@ def test_keep_alive_serves_several_requests_on_one_connection(server: Server) ->
     conn = http.client.HTTPConnection("127.0.0.1", server.port, timeout=10)
     try:
         for _ in range(3):
-            conn.request("POST", "/interpret?trace=0", body=json.dumps(DEMO_CASE),
-                         headers={"Content-Type": "application/json"})
+            conn.request(
+                "POST",
+                "/interpret?trace=0",
+                body=json.dumps(DEMO_CASE),
+                headers={"Content-Type": "application/json"},
+            )
             resp = conn.getresponse()
             assert resp.status == 200 and json.loads(resp.read())["case_id"] == "D000002"
     finally:
@@ -381,13 +413,13 @@ def test_connections_beyond_the_limit_get_503(tmp_path: Path) -> None:
     held = http.client.HTTPConnection("127.0.0.1", srv.port, timeout=10)
     try:
         held.request("GET", "/health")
-        assert held.getresponse().read() and True     # the one slot stays taken (keep-alive)
+        assert held.getresponse().read() and True  # the one slot stays taken (keep-alive)
         status, headers, data = srv.call("GET", "/health")
         assert status == 503 and headers["retry-after"] == "1"
         assert json.loads(data)["error"]["code"] == "http.busy"
     finally:
         held.close()
-    for _ in range(50):                                # the slot frees when the client leaves
+    for _ in range(50):  # the slot frees when the client leaves
         if srv.call("GET", "/health")[0] == 200:
             break
         time.sleep(0.05)
@@ -403,8 +435,7 @@ def _openapi_validator(doc: dict[str, Any], name: str) -> Any:
     from referencing.jsonschema import DRAFT202012
 
     registry = Registry().with_resource("urn:openapi", Resource(doc, DRAFT202012))
-    return Draft202012Validator({"$ref": f"urn:openapi#/components/schemas/{name}"},
-                                registry=registry)
+    return Draft202012Validator({"$ref": f"urn:openapi#/components/schemas/{name}"}, registry=registry)
 
 
 def test_openapi_describes_every_route_and_method(server: Server) -> None:
@@ -414,8 +445,9 @@ def test_openapi_describes_every_route_and_method(server: Server) -> None:
         path = "/" + "/".join(pattern)
         assert path in doc["paths"], path
         assert set(doc["paths"][path]) == {m.lower() for m in methods}
-    assert {"/ready", "/metrics"} <= set(doc["paths"])      # served by the ASGI layer
+    assert {"/ready", "/metrics"} <= set(doc["paths"])  # served by the ASGI layer
     from jsonschema import Draft202012Validator
+
     for name, schema in doc["components"]["schemas"].items():
         Draft202012Validator.check_schema(schema), name
 
@@ -427,8 +459,7 @@ def test_real_responses_match_the_openapi_schemas(server: Server) -> None:
     _openapi_validator(doc, "Result").validate(server.json("POST", "/interpret", DEMO_CASE)[1])
     _openapi_validator(doc, "Error").validate(server.json("GET", "/nowhere")[1])
     _openapi_validator(doc, "CdsDiscovery").validate(server.json("GET", "/cds-services")[1])
-    _openapi_validator(doc, "FhirBundle").validate(server.json("POST", "/interpret",
-                                                               FHIR_PANEL)[1])
+    _openapi_validator(doc, "FhirBundle").validate(server.json("POST", "/interpret", FHIR_PANEL)[1])
 
 
 def test_every_status_the_service_answers_is_documented(server: Server) -> None:
@@ -443,18 +474,23 @@ def test_every_status_the_service_answers_is_documented(server: Server) -> None:
 def _approve(release_dir: Path, rb: Any) -> None:
     """A minimal intact release manifest (the release gate is tested in test_release.py)."""
     from gasrules.governance import registry
-    registry.write_manifest(release_dir, {"format": registry.MANIFEST_FORMAT,
-                                          "rulebook": rb.identity, "date": "2026-01-05T10:00:00Z"})
+
+    registry.write_manifest(
+        release_dir,
+        {"format": registry.MANIFEST_FORMAT, "rulebook": rb.identity, "date": "2026-01-05T10:00:00Z"},
+    )
 
 
-def test_strict_mode_and_decision_records_go_through_the_runtime(tmp_path: Path,
-                                                                 rulebook: Any) -> None:
+def test_strict_mode_and_decision_records_go_through_the_runtime(tmp_path: Path, rulebook: Any) -> None:
     from gasrules.governance.audit import verify_log
 
     releases, log = tmp_path / "releases", tmp_path / "decisions.jsonl"
     _approve(releases, rulebook)
-    env = {"GASRULES_RELEASE_DIR": str(releases), "GASRULES_DECISION_LOG": str(log),
-           "GASRULES_LOG_FSYNC": "0"}
+    env = {
+        "GASRULES_RELEASE_DIR": str(releases),
+        "GASRULES_DECISION_LOG": str(log),
+        "GASRULES_LOG_FSYNC": "0",
+    }
     srv = start(tmp_path, env, strict=True)
     try:
         health = srv.json("GET", "/health")[1]
@@ -463,26 +499,25 @@ def test_strict_mode_and_decision_records_go_through_the_runtime(tmp_path: Path,
         assert health["runtime"]["release_manifest"]
         status, body = srv.json("POST", "/interpret?trace=0", DEMO_CASE)
         assert status == 200 and body["trace"] == []
-        assert body == json.loads(json.dumps(gasrules.interpret(rulebook, DEMO_CASE,
-                                                                trace=False)))
+        assert body == json.loads(json.dumps(gasrules.interpret(rulebook, DEMO_CASE, trace=False)))
         lines = (json.dumps(DEMO_ROWS[0]) + "\n{broken\n" + json.dumps(DEMO_ROWS[1])).encode()
-        status, _, data = srv.call("POST", "/interpret/batch", lines,
-                                   ctype="application/x-ndjson")
+        status, _, data = srv.call("POST", "/interpret/batch", lines, ctype="application/x-ndjson")
         assert status == 200 and len(data.splitlines()) == 3
     finally:
         srv.close()
         srv.app.close()
     report = verify_log(log)
-    assert report.errors == () and report.entries == 4   # 1 + 3 rows, the broken one too
+    assert report.errors == () and report.entries == 4  # 1 + 3 rows, the broken one too
 
 
-def test_shadow_mode_answers_with_the_active_rulebook_only(tmp_path: Path,
-                                                            rulebook: Any) -> None:
+def test_shadow_mode_answers_with_the_active_rulebook_only(tmp_path: Path, rulebook: Any) -> None:
     from gasrules.core.resources import default_rulebook_path
 
     settings = tmp_path / "site.yaml"
-    settings.write_text(f"shadow:\n  rulebook: {default_rulebook_path()}\n"
-                        f"  log: {tmp_path / 'disagreements.jsonl'}\n", encoding="utf-8")
+    settings.write_text(
+        f"shadow:\n  rulebook: {default_rulebook_path()}\n  log: {tmp_path / 'disagreements.jsonl'}\n",
+        encoding="utf-8",
+    )
     srv = start(tmp_path, settings=str(settings))
     try:
         health = srv.json("GET", "/health")[1]
@@ -490,10 +525,11 @@ def test_shadow_mode_answers_with_the_active_rulebook_only(tmp_path: Path,
         assert health["runtime"]["decision_records"] is False
         status, body = srv.json("POST", "/interpret/batch?trace=0", DEMO_ROWS[:5])
         assert status == 200
-        assert body == [json.loads(json.dumps(gasrules.interpret(rulebook, r, trace=False)))
-                        for r in DEMO_ROWS[:5]]
+        assert body == [
+            json.loads(json.dumps(gasrules.interpret(rulebook, r, trace=False))) for r in DEMO_ROWS[:5]
+        ]
         runtime = srv.app.interpreter.runtime
-        assert runtime.shadowing and runtime.disagreements == 0   # same rulebook both sides
+        assert runtime.shadowing and runtime.disagreements == 0  # same rulebook both sides
     finally:
         srv.close()
         srv.app.close()
@@ -505,9 +541,11 @@ def test_strict_mode_refuses_to_serve_an_unapproved_rulebook(tmp_path: Path) -> 
     from gasrules.cli.commands.serve import app
 
     (tmp_path / "releases").mkdir()
-    result = CliRunner().invoke(app, ["--strict", "--port", "0", "--feedback-log",
-                                      str(tmp_path / "f.jsonl")],
-                                env={"GASRULES_RELEASE_DIR": str(tmp_path / "releases")})
+    result = CliRunner().invoke(
+        app,
+        ["--strict", "--port", "0", "--feedback-log", str(tmp_path / "f.jsonl")],
+        env={"GASRULES_RELEASE_DIR": str(tmp_path / "releases")},
+    )
     assert result.exit_code == 6
     assert "strict.not_approved" in result.output
 
@@ -516,10 +554,21 @@ def test_strict_mode_refuses_to_serve_an_unapproved_rulebook(tmp_path: Path) -> 
 @pytest.mark.slow
 def test_gasrules_serve_starts_answers_and_stops_on_sigterm(tmp_path: Path) -> None:
     proc = subprocess.Popen(
-        [sys.executable, "-c", "import sys; from gasrules.cli import main; sys.exit(main())",
-         "serve", "--port", "0", "--no-access-log", "--feedback-log",
-         str(tmp_path / "fb.jsonl")],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        [
+            sys.executable,
+            "-c",
+            "import sys; from gasrules.cli import main; sys.exit(main())",
+            "serve",
+            "--port",
+            "0",
+            "--no-access-log",
+            "--feedback-log",
+            str(tmp_path / "fb.jsonl"),
+        ],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
     try:
         line = proc.stdout.readline() if proc.stdout else ""
         assert "listening on http://127.0.0.1:" in line, line
@@ -558,25 +607,30 @@ def test_gasrules_serve_with_a_bad_key_file_exits_2(tmp_path: Path) -> None:
     assert "$.algorithms" in result.output
 
 
-def test_a_request_that_ends_in_an_error_writes_no_decision_record(rulebook: Any, tmp_path: Path,
-                                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+def test_a_request_that_ends_in_an_error_writes_no_decision_record(
+    rulebook: Any, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     from gasrules.governance.audit import verify_log
     from gasrules.governance.runtime import Runtime
-    from gasrules.service.handlers import RuntimeInterpreter
     from gasrules.governance.settings import Settings
+    from gasrules.service.handlers import RuntimeInterpreter
 
     log = tmp_path / "d.jsonl"
-    app = App(ServiceConfig(feedback_log=str(tmp_path / "f.jsonl")),
-              RuntimeInterpreter(Runtime(rulebook, Settings(decision_log=log, log_fsync=False))))
+    app = App(
+        ServiceConfig(feedback_log=str(tmp_path / "f.jsonl")),
+        RuntimeInterpreter(Runtime(rulebook, Settings(decision_log=log, log_fsync=False))),
+    )
 
     def broken(*args: Any, **kwargs: Any) -> Any:
         raise RuntimeError("building the response failed")
 
     monkeypatch.setattr(App, "_fhir_bundle", broken)
     body = json.dumps(DEMO_CASE).encode()
-    resp = app.handle(Request("POST", "/interpret", {"fhir": ["1"]}, {"content-type": "application/json"}, body))
+    resp = app.handle(
+        Request("POST", "/interpret", {"fhir": ["1"]}, {"content-type": "application/json"}, body)
+    )
     assert resp.status == 500
     resp = app.handle(Request("POST", "/interpret", {}, {"content-type": "application/json"}, body))
     assert resp.status == 200
     app.close()
-    assert verify_log(log).entries == 1          # only the delivered result
+    assert verify_log(log).entries == 1  # only the delivered result

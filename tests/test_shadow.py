@@ -22,8 +22,12 @@ from gasrules.governance.settings import Settings
 from gasrules.governance.shadow import render_summary, summarize
 
 DATA = Path(__file__).resolve().parent / "data" / "release"
-CASES = [{"case_id": "low", "ph": 7.20}, {"case_id": "edge", "ph": 7.32, "context": {"mrn": "M77", "ward": "ED"}},
-         {"case_id": "mid", "ph": 7.40}, {"case_id": "high", "ph": 7.55}]
+CASES = [
+    {"case_id": "low", "ph": 7.20},
+    {"case_id": "edge", "ph": 7.32, "context": {"mrn": "M77", "ward": "ED"}},
+    {"case_id": "mid", "ph": 7.40},
+    {"case_id": "high", "ph": 7.55},
+]
 
 
 @pytest.fixture
@@ -39,7 +43,7 @@ def test_only_the_active_result_is_shown_and_disagreements_recorded(candidate: P
         shown = [rt.interpret(c) for c in CASES[:2]] + list(rt.interpret_many(CASES[2:]))
         assert (rt.disagreements, rt._shadow.compared) == (1, 4)
     assert [r["rulebook"]["sha256"] for r in shown] == [active.sha256] * 4
-    assert [f["code"] for f in shown[1]["findings"]] == ["ph.acidaemia"]     # the active conclusion
+    assert [f["code"] for f in shown[1]["findings"]] == ["ph.acidaemia"]  # the active conclusion
     records = [json.loads(line) for line in log.read_text().splitlines()]
     assert len(records) == 1
     rec = records[0]
@@ -53,30 +57,53 @@ def test_only_the_active_result_is_shown_and_disagreements_recorded(candidate: P
     assert "same disorders, other differences: 1" in render_summary(summary)
 
 
-def test_strict_mode_applies_to_the_active_rulebook_not_the_candidate(candidate: Path, tmp_path: Path) -> None:
+def test_strict_mode_applies_to_the_active_rulebook_not_the_candidate(
+    candidate: Path, tmp_path: Path
+) -> None:
     rel = tmp_path / "rel"
     book = tmp_path / "active"
     shutil.copytree(DATA, book)
-    release(book / "rulebook.yaml", release_dir=rel, approvers=[Approver("B. Reviewer", "clinical lead")],
-            authors=["A. Author"])
-    settings = Settings(strict=True, release_dir=rel, shadow_rulebook=candidate)     # candidate never released
+    release(
+        book / "rulebook.yaml",
+        release_dir=rel,
+        approvers=[Approver("B. Reviewer", "clinical lead")],
+        authors=["A. Author"],
+    )
+    settings = Settings(strict=True, release_dir=rel, shadow_rulebook=candidate)  # candidate never released
     with Runtime.from_settings(settings, book / "rulebook.yaml") as rt:
         assert rt.interpret(CASES[1])["findings"][0]["code"] == "ph.acidaemia"
         assert rt.disagreements == 1
 
 
-def test_shadow_command_run_and_report(candidate: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_shadow_command_run_and_report(
+    candidate: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     cases = tmp_path / "cases.jsonl"
     cases.write_text("\n".join(json.dumps(c) for c in CASES) + "\n{not json\n", encoding="utf-8")
     log = tmp_path / "d.jsonl"
-    code = main(["shadow", "run", str(cases), "--rulebook", str(DATA / "rulebook.yaml"), "--candidate", str(candidate),
-                 "--log", str(log)])
+    code = main(
+        [
+            "shadow",
+            "run",
+            str(cases),
+            "--rulebook",
+            str(DATA / "rulebook.yaml"),
+            "--candidate",
+            str(candidate),
+            "--log",
+            str(log),
+        ]
+    )
     out = capsys.readouterr()
-    assert code == 4                       # 1 of 5 rows unreadable: above the 1 % corpus limit
+    assert code == 4  # 1 of 5 rows unreadable: above the 1 % corpus limit
     assert "more than the limit of 1 % (setting limits.corpus_unreadable_percent)" in out.err
     assert [line.split("\t")[:2] for line in out.out.splitlines()] == [
-        ["low", "interpreted"], ["edge", "interpreted"], ["mid", "interpreted"], ["high", "interpreted"],
-        ["cases.jsonl:5", "rejected"]]
+        ["low", "interpreted"],
+        ["edge", "interpreted"],
+        ["mid", "interpreted"],
+        ["high", "interpreted"],
+        ["cases.jsonl:5", "rejected"],
+    ]
     assert out.err.startswith("shadow: 5 case(s), 1 unreadable, 1 disagreement(s) with candidate ")
     code = main(["shadow", "report", str(log), "--json"])
     report = json.loads(capsys.readouterr().out)
@@ -84,11 +111,22 @@ def test_shadow_command_run_and_report(candidate: Path, tmp_path: Path, capsys: 
     assert report["rulebooks"][0]["candidate"].startswith("release-test 1.0.1")
 
 
-def test_shadow_command_refuses_an_unapproved_active_rulebook(candidate: Path, tmp_path: Path,
-                                                              capsys: pytest.CaptureFixture[str]) -> None:
+def test_shadow_command_refuses_an_unapproved_active_rulebook(
+    candidate: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     cases = tmp_path / "cases.jsonl"
     cases.write_text(json.dumps(CASES[0]) + "\n", encoding="utf-8")
-    code = main(["shadow", "run", str(cases), "--rulebook", str(DATA / "rulebook.yaml"), "--candidate", str(candidate),
-                 "--strict"])
+    code = main(
+        [
+            "shadow",
+            "run",
+            str(cases),
+            "--rulebook",
+            str(DATA / "rulebook.yaml"),
+            "--candidate",
+            str(candidate),
+            "--strict",
+        ]
+    )
     assert code == 6
     assert "strict.no_release_dir" in capsys.readouterr().err

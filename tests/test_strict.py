@@ -25,15 +25,26 @@ ADULT = Path(__file__).resolve().parents[1] / "rulebooks" / "adult" / "rulebook.
 SALT = "strict-test-salt-0123456789"
 
 # DuBose, Harrison's, table of mixed disorders, example 1 (rulebook case E1)
-E1 = {"case_id": "E1", "sample_type": "arterial", "ph": 7.39, "pco2": 24, "hco3": 14, "na": 140, "k": 4.0,
-      "cl": 106, "context": {"mrn": "MRN000123", "ward": "ICU"}}
+E1 = {
+    "case_id": "E1",
+    "sample_type": "arterial",
+    "ph": 7.39,
+    "pco2": 24,
+    "hco3": 14,
+    "na": 140,
+    "k": 4.0,
+    "cl": 106,
+    "context": {"mrn": "MRN000123", "ward": "ICU"},
+}
 E1_DISORDERS = {"metabolic_acidosis_high_anion_gap", "respiratory_alkalosis"}  # DuBose, Harrison's, example 1
 
 
 def approve(release_dir: Path, rb: Any) -> Path:
     """A minimal intact manifest (the release gate itself is tested in test_release.py)."""
-    return registry.write_manifest(release_dir, {"format": registry.MANIFEST_FORMAT, "rulebook": rb.identity,
-                                                 "date": "2026-01-05T10:00:00Z"})
+    return registry.write_manifest(
+        release_dir,
+        {"format": registry.MANIFEST_FORMAT, "rulebook": rb.identity, "date": "2026-01-05T10:00:00Z"},
+    )
 
 
 @pytest.fixture
@@ -41,7 +52,9 @@ def copy_rulebook(tmp_path: Path) -> Path:
     target = tmp_path / "book" / "rulebook.yaml"
     target.parent.mkdir()
     shutil.copy(ADULT, target)
-    shutil.copy(ADULT.parent.parent / "bibliography.yaml", tmp_path / "bibliography.yaml")   # ../bibliography.yaml
+    shutil.copy(
+        ADULT.parent.parent / "bibliography.yaml", tmp_path / "bibliography.yaml"
+    )  # ../bibliography.yaml
     return target
 
 
@@ -61,13 +74,17 @@ def edit_parameter(path: Path, name: str, new: str) -> None:
 
 # ---------------------------------------------------------------- settings
 
+
 def test_settings_file_env_and_flags_in_order(tmp_path: Path) -> None:
     f = tmp_path / "site.yaml"
-    f.write_text("strict: true\nreleases: {dir: rel}\ndecision_log:\n  path: logs/d.jsonl\n"
-                 "  context_policy: keep\nshadow: {rulebook: cand.yaml}\n", encoding="utf-8")
+    f.write_text(
+        "strict: true\nreleases: {dir: rel}\ndecision_log:\n  path: logs/d.jsonl\n"
+        "  context_policy: keep\nshadow: {rulebook: cand.yaml}\n",
+        encoding="utf-8",
+    )
     s = load_settings(f, env={})
     assert s.strict is True
-    assert s.release_dir == tmp_path / "rel"            # relative to the file
+    assert s.release_dir == tmp_path / "rel"  # relative to the file
     assert s.archive == tmp_path / "rel" / "archive"
     assert s.decision_log == tmp_path / "logs" / "d.jsonl"
     assert s.shadow_rulebook == tmp_path / "cand.yaml"
@@ -82,16 +99,25 @@ def test_settings_errors_name_the_setting_and_place(tmp_path: Path) -> None:
     f.write_text("strict: true\ndecision_log:\n  path: d.jsonl\n  context_policy: hide\n", encoding="utf-8")
     with pytest.raises(SettingsError) as exc:
         load_settings(f, env={})
-    assert str(exc.value) == f"{f}:4:19: setting decision_log.context_policy: unknown policy 'hide'; " \
-                             "accepted: keep | mask | drop"
+    assert (
+        str(exc.value) == f"{f}:4:19: setting decision_log.context_policy: unknown policy 'hide'; "
+        "accepted: keep | mask | drop"
+    )
     f.write_text("strikt: true\n", encoding="utf-8")
-    with pytest.raises(SettingsError, match=r"bad.yaml:1:9: setting strikt: unknown setting; accepted: "
-                                            r"decision_log, interfaces, limits, releases, rulebook, rulebook_roots, serve, shadow, strict"):
+    with pytest.raises(
+        SettingsError,
+        match=r"bad.yaml:1:9: setting strikt: unknown setting; accepted: "
+        r"decision_log, interfaces, limits, releases, rulebook, rulebook_roots, serve, shadow, strict",
+    ):
         load_settings(f, env={})
-    with pytest.raises(SettingsError, match="GASRULES_STRICT: setting GASRULES_STRICT: 'maybe' is not a yes/no"):
+    with pytest.raises(
+        SettingsError, match="GASRULES_STRICT: setting GASRULES_STRICT: 'maybe' is not a yes/no"
+    ):
         load_settings(env={"GASRULES_STRICT": "maybe"})
     with pytest.raises(SettingsError, match="GASRULES_MASK_SALT.*at least 16 characters"):
-        load_settings(env={"GASRULES_DECISION_LOG": str(tmp_path / "d.jsonl"), "GASRULES_CONTEXT_POLICY": "mask"})
+        load_settings(
+            env={"GASRULES_DECISION_LOG": str(tmp_path / "d.jsonl"), "GASRULES_CONTEXT_POLICY": "mask"}
+        )
 
 
 def test_salt_is_never_read_from_a_file(tmp_path: Path) -> None:
@@ -103,6 +129,7 @@ def test_salt_is_never_read_from_a_file(tmp_path: Path) -> None:
 
 
 # ---------------------------------------------------------------- strict mode
+
 
 def test_strict_without_release_dir_refuses() -> None:
     rb = gasrules.load_rulebook(ADULT)
@@ -126,7 +153,7 @@ def test_strict_refuses_unapproved_and_accepts_approved(tmp_path: Path) -> None:
 def test_rulebook_edited_after_approval_is_refused(tmp_path: Path, copy_rulebook: Path) -> None:
     rb = gasrules.load_rulebook(copy_rulebook)
     approve(tmp_path / "rel", rb)
-    edit_parameter(copy_rulebook, "ag_high", "13")     # inside its bounds: still a valid rulebook
+    edit_parameter(copy_rulebook, "ag_high", "13")  # inside its bounds: still a valid rulebook
     edited = gasrules.load_rulebook(copy_rulebook)
     assert edited.sha256 != rb.sha256 and edited.version == rb.version
     settings = Settings(strict=True, release_dir=tmp_path / "rel")
@@ -152,10 +179,18 @@ def test_manifest_edited_after_release_does_not_approve(tmp_path: Path) -> None:
 
 # ---------------------------------------------------------------- suspensions
 
-def _suspend(release_dir: Path, rb: Any, rule: str | None, action: str = "suspend",
-             variant: str = "") -> dict[str, Any]:
-    event = {"action": action, "rulebook": rb.identity, "rule": rule, "reason": "under review", "by": "A. Tester",
-             "time": "2026-01-06T09:00:00Z"}
+
+def _suspend(
+    release_dir: Path, rb: Any, rule: str | None, action: str = "suspend", variant: str = ""
+) -> dict[str, Any]:
+    event = {
+        "action": action,
+        "rulebook": rb.identity,
+        "rule": rule,
+        "reason": "under review",
+        "by": "A. Tester",
+        "time": "2026-01-06T09:00:00Z",
+    }
     if variant:
         event["variant_sha256"] = variant
     return registry.append_suspension(release_dir, event)
@@ -175,7 +210,9 @@ def test_suspended_rulebook_is_refused_even_without_strict(tmp_path: Path) -> No
 def test_suspended_rule_runs_from_the_archived_variant(tmp_path: Path) -> None:
     rb = gasrules.load_rulebook(ADULT)
     approve(tmp_path, rb)
-    variant = registry.archive_rulebook(tmp_path / "archive", ADULT, [("prompt.high_gap_acidosis", "under review")])
+    variant = registry.archive_rulebook(
+        tmp_path / "archive", ADULT, [("prompt.high_gap_acidosis", "under review")]
+    )
     _suspend(tmp_path, rb, "prompt.high_gap_acidosis", variant=variant)
     with Runtime(rb, Settings(strict=True, release_dir=tmp_path)) as rt:
         assert rt.rulebook.sha256 == variant != rb.sha256
@@ -192,10 +229,10 @@ def test_tampered_suspension_register_fails_closed(tmp_path: Path) -> None:
     _suspend(tmp_path, rb, None, action="lift")
     reg = registry.register_path(tmp_path)
     lines = reg.read_bytes().splitlines(keepends=True)
-    reg.write_bytes(lines[0])                          # the lift removed: the first event stands alone
+    reg.write_bytes(lines[0])  # the lift removed: the first event stands alone
     with pytest.raises(RuntimeRefusal, match="rulebook.suspended"):
         Runtime(rb, Settings(release_dir=tmp_path))
-    reg.write_bytes(lines[1] + lines[0])               # reordered
+    reg.write_bytes(lines[1] + lines[0])  # reordered
     with pytest.raises(RuntimeRefusal) as exc:
         Runtime(rb, Settings(release_dir=tmp_path))
     assert exc.value.code == "registry.damaged" and "suspensions.jsonl:1" in exc.value.reason
@@ -203,10 +240,16 @@ def test_tampered_suspension_register_fails_closed(tmp_path: Path) -> None:
 
 # ---------------------------------------------------------------- decision records via the runtime
 
+
 def test_runtime_appends_masked_decision_records(tmp_path: Path) -> None:
-    settings = load_settings(env={"GASRULES_DECISION_LOG": str(tmp_path / "d.jsonl"),
-                                  "GASRULES_CONTEXT_POLICY": "mask", "GASRULES_MASK_SALT": SALT,
-                                  "GASRULES_LOG_FSYNC": "0"})
+    settings = load_settings(
+        env={
+            "GASRULES_DECISION_LOG": str(tmp_path / "d.jsonl"),
+            "GASRULES_CONTEXT_POLICY": "mask",
+            "GASRULES_MASK_SALT": SALT,
+            "GASRULES_LOG_FSYNC": "0",
+        }
+    )
     with Runtime.from_settings(settings, ADULT) as rt:
         shown = list(rt.interpret_many([E1, {"case_id": "bad", "ph": "high"}, E1], trace=False))
     assert [r["case_id"] for r in shown] == ["E1", "bad", "E1"]

@@ -8,7 +8,7 @@ asserts a converted value, the conversion factor's source is named beside it.
 from __future__ import annotations
 
 import json
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -16,8 +16,15 @@ import pytest
 
 import gasrules
 from gasrules.tables.readers import (
-    Column, TableError, analytes_of, interpret_row, load_mapping, open_table, open_writer,
-    read_back, temp_path_for,
+    Column,
+    TableError,
+    analytes_of,
+    interpret_row,
+    load_mapping,
+    open_table,
+    open_writer,
+    read_back,
+    temp_path_for,
 )
 
 HEADER = "case_id,ward,record_number,ph,pco2[kPa],hco3,Na,cl,note\n"
@@ -40,12 +47,19 @@ def _rows(path: Path, analytes: Any, **kw: Any) -> list[Any]:
 
 # ----------------------------------------------------------------------------- headers
 
+
 def test_units_in_header_both_spellings_and_case_insensitive_names(tmp_path: Path, analytes: Any) -> None:
     p = tmp_path / "g.csv"
     p.write_text("PH,pco2 (kPa),po2[mmHg],HCO3\n7.40,5.33,90,24\n", encoding="utf-8")
     [row] = _rows(p, analytes)
-    assert row.case == {"case_id": None, "context": {}, "ph": "7.40",
-                        "pco2": {"value": "5.33", "unit": "kPa"}, "po2": "90", "hco3": "24"}
+    assert row.case == {
+        "case_id": None,
+        "context": {},
+        "ph": "7.40",
+        "pco2": {"value": "5.33", "unit": "kPa"},
+        "po2": "90",
+        "hco3": "24",
+    }
     assert row.errors == []
 
 
@@ -58,15 +72,19 @@ def test_header_unit_converted_by_the_engine(tmp_path: Path, rb: Any, analytes: 
     assert result["inputs"]["pco2"] == pytest.approx(5.33 * 1000 / 133.322, abs=0.01)
 
 
-@pytest.mark.parametrize("header, where, expected", [
-    ("ph,pco2[mg/dL]\n", "column 2 'pco2[mg/dL]'", "one of mm[Hg], kPa"),
-    ("ph,pco2[furlongs]\n", "column 2 'pco2[furlongs]'", "one of mm[Hg], kPa"),
-    ("ph[kPa],pco2\n", "column 1 'ph[kPa]'", "one of [pH]"),
-    ("sample_type[kPa]\n", "column 1 'sample_type[kPa]'", "no unit"),
-    ("ph,PH\n", "column 2 'PH'", "one column per input"),
-])
-def test_unusable_header_names_the_column(tmp_path: Path, analytes: Any, header: str, where: str,
-                                          expected: str) -> None:
+@pytest.mark.parametrize(
+    "header, where, expected",
+    [
+        ("ph,pco2[mg/dL]\n", "column 2 'pco2[mg/dL]'", "one of mm[Hg], kPa"),
+        ("ph,pco2[furlongs]\n", "column 2 'pco2[furlongs]'", "one of mm[Hg], kPa"),
+        ("ph[kPa],pco2\n", "column 1 'ph[kPa]'", "one of [pH]"),
+        ("sample_type[kPa]\n", "column 1 'sample_type[kPa]'", "no unit"),
+        ("ph,PH\n", "column 2 'PH'", "one column per input"),
+    ],
+)
+def test_unusable_header_names_the_column(
+    tmp_path: Path, analytes: Any, header: str, where: str, expected: str
+) -> None:
     p = tmp_path / "bad.csv"
     p.write_text(header + "7.4,40\n", encoding="utf-8")
     with pytest.raises(TableError) as err:
@@ -76,17 +94,27 @@ def test_unusable_header_names_the_column(tmp_path: Path, analytes: Any, header:
 
 # ----------------------------------------------------------------------------- mapping
 
+
 def test_mapping_file_yaml(tmp_path: Path, rb: Any, analytes: Any) -> None:
     m = tmp_path / "map.yaml"
-    m.write_text("columns:\n  Lab no: case_id\n  Sodium: na\n  PaCO2 value: {input: pco2, unit: kPa}\n"
-                 "  Comment: pass\n", encoding="utf-8")
+    m.write_text(
+        "columns:\n  Lab no: case_id\n  Sodium: na\n  PaCO2 value: {input: pco2, unit: kPa}\n"
+        "  Comment: pass\n",
+        encoding="utf-8",
+    )
     p = tmp_path / "g.csv"
     p.write_text("Lab no,ph,PaCO2 value,hco3,Sodium,Comment\nL1,7.40,5.33,24,140,ok\n", encoding="utf-8")
     with open_table(p, analytes, mapping=load_mapping(m)) as t:
         assert t.passthrough == ["Comment"]
         [row] = list(t)
-    assert row.case == {"case_id": "L1", "context": {"Comment": "ok"}, "ph": "7.40",
-                        "pco2": {"value": "5.33", "unit": "kPa"}, "hco3": "24", "na": "140"}
+    assert row.case == {
+        "case_id": "L1",
+        "context": {"Comment": "ok"},
+        "ph": "7.40",
+        "pco2": {"value": "5.33", "unit": "kPa"},
+        "hco3": "24",
+        "na": "140",
+    }
 
 
 def test_mapping_file_json_and_its_errors(tmp_path: Path, analytes: Any) -> None:
@@ -110,6 +138,7 @@ def test_mapping_file_json_and_its_errors(tmp_path: Path, analytes: Any) -> None
 
 # ----------------------------------------------------------------------------- CSV rows
 
+
 def test_csv_passthrough_untouched_and_case_id_kept(tmp_path: Path, analytes: Any) -> None:
     p = tmp_path / "g.csv"
     p.write_text(HEADER + 'A-1,ICU, 007 ,7.31,4.1,20,139,104,"a, quoted; note"\n', encoding="utf-8")
@@ -122,14 +151,17 @@ def test_csv_passthrough_untouched_and_case_id_kept(tmp_path: Path, analytes: An
 
 def test_malformed_csv_rows_are_rows_with_errors(tmp_path: Path, rb: Any, analytes: Any) -> None:
     p = tmp_path / "g.csv"
-    p.write_text(HEADER
-                 + "A1,ICU,1,7.31,4.1,20,139,104,x\n"
-                 + "A2,ICU,2,7.31,4.1,20,139,104,x,surplus\n"
-                 + "\n"
-                 + "A3,ED,3,7.31\n"
-                 + "A4,ED,4,7.3O,4.1,20,139,104,y\n", encoding="utf-8")
+    p.write_text(
+        HEADER
+        + "A1,ICU,1,7.31,4.1,20,139,104,x\n"
+        + "A2,ICU,2,7.31,4.1,20,139,104,x,surplus\n"
+        + "\n"
+        + "A3,ED,3,7.31\n"
+        + "A4,ED,4,7.3O,4.1,20,139,104,y\n",
+        encoding="utf-8",
+    )
     rows = _rows(p, analytes)
-    assert [r.case["case_id"] for r in rows] == ["A1", "A2", "A3", "A4"]   # blank line is no row
+    assert [r.case["case_id"] for r in rows] == ["A1", "A2", "A3", "A4"]  # blank line is no row
     assert [r.index for r in rows] == [0, 1, 2, 3]
     results = [interpret_row(rb, r) for r in rows]
     assert [r["status"] for r in results][1:] == ["rejected"] * 3
@@ -151,13 +183,17 @@ def test_bad_bytes_in_csv_are_a_rejected_row_not_a_crash(tmp_path: Path, rb: Any
 
 # ----------------------------------------------------------------------------- JSON Lines
 
+
 def test_jsonl_lines_bad_json_and_unknown_keys(tmp_path: Path, rb: Any, analytes: Any) -> None:
     p = tmp_path / "g.jsonl"
-    p.write_text('{"case_id": "J1", "ph": 7.4, "pco2[kPa]": 5.33, "hco3": 24, "context": {"ward": "ED"}}\n'
-                 '{"case_id": "J2", "ph": 7.4,\n'
-                 '\n'
-                 '[1, 2]\n'
-                 '{"case_id": "J4", "paco2": 41}\n', encoding="utf-8")
+    p.write_text(
+        '{"case_id": "J1", "ph": 7.4, "pco2[kPa]": 5.33, "hco3": 24, "context": {"ward": "ED"}}\n'
+        '{"case_id": "J2", "ph": 7.4,\n'
+        "\n"
+        "[1, 2]\n"
+        '{"case_id": "J4", "paco2": 41}\n',
+        encoding="utf-8",
+    )
     with open_table(p, analytes) as t:
         assert t.passthrough == ["context"]
         rows = list(t)
@@ -175,8 +211,9 @@ def test_jsonl_listed_passthrough_keys_go_to_context(tmp_path: Path, rb: Any, an
     m = tmp_path / "m.yaml"
     m.write_text("passthrough: [ward, bed]\n", encoding="utf-8")
     p = tmp_path / "g.jsonl"
-    p.write_text('{"case_id": "J1", "ward": "ICU", "bed": 7, "ph": 7.4, "pco2": 40, "hco3": 24}\n',
-                 encoding="utf-8")
+    p.write_text(
+        '{"case_id": "J1", "ward": "ICU", "bed": 7, "ph": 7.4, "pco2": 40, "hco3": 24}\n', encoding="utf-8"
+    )
     with open_table(p, analytes, mapping=load_mapping(m)) as t:
         assert t.passthrough == ["ward", "bed", "context"]
         [row] = list(t)
@@ -187,6 +224,7 @@ def test_jsonl_listed_passthrough_keys_go_to_context(tmp_path: Path, rb: Any, an
 
 # ----------------------------------------------------------------------------- Parquet
 
+
 def _parquet(path: Path, records: list[dict[str, Any]], **kw: Any) -> None:
     import pyarrow as pa
     import pyarrow.parquet as pq
@@ -194,12 +232,18 @@ def _parquet(path: Path, records: list[dict[str, Any]], **kw: Any) -> None:
     pq.write_table(pa.Table.from_pylist(records), path, **kw)
 
 
-def test_parquet_types_kept_for_passthrough_and_json_safe_in_context(tmp_path: Path, rb: Any,
-                                                                      analytes: Any) -> None:
-    when = datetime(2026, 3, 2, 7, 30, tzinfo=timezone.utc)
+def test_parquet_types_kept_for_passthrough_and_json_safe_in_context(
+    tmp_path: Path, rb: Any, analytes: Any
+) -> None:
+    when = datetime(2026, 3, 2, 7, 30, tzinfo=UTC)
     p = tmp_path / "g.parquet"
-    _parquet(p, [{"case_id": 11, "bed": 4, "taken": when, "ph": 7.40, "pco2 (kPa)": 5.33, "hco3": 24.0},
-                 {"case_id": 12, "bed": None, "taken": when, "ph": None, "pco2 (kPa)": None, "hco3": float("nan")}])
+    _parquet(
+        p,
+        [
+            {"case_id": 11, "bed": 4, "taken": when, "ph": 7.40, "pco2 (kPa)": 5.33, "hco3": 24.0},
+            {"case_id": 12, "bed": None, "taken": when, "ph": None, "pco2 (kPa)": None, "hco3": float("nan")},
+        ],
+    )
     with open_table(p, analytes) as t:
         assert t.passthrough == ["bed", "taken"]
         assert str(t.passthrough_types["taken"]).startswith("timestamp")
@@ -207,7 +251,7 @@ def test_parquet_types_kept_for_passthrough_and_json_safe_in_context(tmp_path: P
     assert rows[0].passthrough == {"bed": 4, "taken": when}
     assert rows[0].case["context"] == {"bed": 4, "taken": "2026-03-02T07:30:00+00:00"}
     assert rows[0].case["case_id"] == "11" and rows[0].case["pco2"] == {"value": 5.33, "unit": "kPa"}
-    assert set(rows[1].case) == {"case_id", "context"}        # null and NaN: not measured
+    assert set(rows[1].case) == {"case_id", "context"}  # null and NaN: not measured
     assert interpret_row(rb, rows[0])["status"] in ("interpreted", "partial")
 
 
@@ -237,13 +281,32 @@ def test_unknown_format_and_missing_file(tmp_path: Path, analytes: Any) -> None:
 
 # ----------------------------------------------------------------------------- writers
 
-COLUMNS = [Column("ward", "raw"), Column("case_id"), Column("anion_gap", "number"),
-           Column("disorders", "texts"), Column("errors", "records", fields=("field", "code")),
-           Column("result", "json")]
-RECORDS = [{"ward": "ICU", "case_id": "A", "anion_gap": 12.5, "disorders": ["x", "y"], "errors": [],
-            "result": {"k": [1, 2]}},
-           {"ward": None, "case_id": "B", "anion_gap": None, "disorders": [],
-            "errors": [{"field": "ph", "code": "input.not_a_number"}], "result": None}]
+COLUMNS = [
+    Column("ward", "raw"),
+    Column("case_id"),
+    Column("anion_gap", "number"),
+    Column("disorders", "texts"),
+    Column("errors", "records", fields=("field", "code")),
+    Column("result", "json"),
+]
+RECORDS = [
+    {
+        "ward": "ICU",
+        "case_id": "A",
+        "anion_gap": 12.5,
+        "disorders": ["x", "y"],
+        "errors": [],
+        "result": {"k": [1, 2]},
+    },
+    {
+        "ward": None,
+        "case_id": "B",
+        "anion_gap": None,
+        "disorders": [],
+        "errors": [{"field": "ph", "code": "input.not_a_number"}],
+        "result": None,
+    },
+]
 
 
 @pytest.mark.parametrize("fmt", ["csv", "jsonl", "parquet"])

@@ -15,8 +15,8 @@ import pytest
 from typer.testing import CliRunner
 
 import gasrules
-from gasrules.verification import suite as S
 from gasrules.cli.commands import verify as V
+from gasrules.verification import suite as S
 
 ROOT = Path(__file__).resolve().parent.parent
 ADULT = ROOT / "rulebooks" / "adult" / "rulebook.yaml"
@@ -50,14 +50,18 @@ cases:
 
 # ----------------------------------------------------------------------------- loading
 
+
 def test_schema_error_names_file_line_and_column(tmp_path):
-    folder = _cases(tmp_path, """\
+    folder = _cases(
+        tmp_path,
+        """\
         cases:
           - id: no-evidence
             note: "missing its evidence"
             input: {ph: 7.4}
             want: {disorders: []}
-        """)
+        """,
+    )
     with pytest.raises(S.SuiteError) as exc:
         S.load_suite(ADULT, folder)
     p = exc.value.problems[0]
@@ -78,59 +82,86 @@ def test_duplicate_ids_and_unknown_supersedes(tmp_path):
 
 
 def test_unknown_names_are_reported(tmp_path, rb):
-    folder = _cases(tmp_path, GOOD.replace("disorders: [metabolic_acidosis_normal_anion_gap]",
-                                           "rules_fired: [no.such.rule]"))
+    folder = _cases(
+        tmp_path,
+        GOOD.replace("disorders: [metabolic_acidosis_normal_anion_gap]", "rules_fired: [no.such.rule]"),
+    )
     problems = S.check_names(rb, S.load_suite(ADULT, folder))
     assert [p.code for p in problems] == ["CS-E005"] and "no.such.rule" in problems[0].message
 
 
 # ----------------------------------------------------------------------------- comparing
 
+
 def test_passing_and_failing_expectations(tmp_path, rb):
-    wrong = GOOD.replace("value: 29.0", "value: 31.0").replace("metabolic_acidosis_normal_anion_gap]",
-                                                               "metabolic_acidosis_high_anion_gap]")
+    wrong = GOOD.replace("value: 29.0", "value: 31.0").replace(
+        "metabolic_acidosis_normal_anion_gap]", "metabolic_acidosis_high_anion_gap]"
+    )
     ok = S.run_suite(rb, S.load_suite(ADULT, _cases(tmp_path, GOOD)))
     assert [r.outcome for r in ok] == ["passed"]
     bad = S.run_suite(rb, S.load_suite(ADULT, _cases(tmp_path, wrong)))[0]
     assert bad.outcome == "failed"
     whats = {f.what: (f.expected, f.got) for f in bad.failures}
     assert whats["value expected_pco2"] == ("31.0 +/- 0.05", 29.0)
-    assert whats["disorders"] == (["metabolic_acidosis_high_anion_gap"], ["metabolic_acidosis_normal_anion_gap"])
+    assert whats["disorders"] == (
+        ["metabolic_acidosis_high_anion_gap"],
+        ["metabolic_acidosis_normal_anion_gap"],
+    )
     # the failure points at the rules that assert the disorders in question
     assert "anion_gap.high_gap_acidosis" in bad.failures[0].rules
 
 
 def test_error_code_expectation(rb):
-    case = S.Case(id="x", note="pH as text", evidence={"tag": "INV", "note": "malformed input"},
-                  input={"ph": "seven"}, want=None, want_error_code="input.not_a_number",
-                  location=gasrules.core.errors.Location(), origin="")
+    case = S.Case(
+        id="x",
+        note="pH as text",
+        evidence={"tag": "INV", "note": "malformed input"},
+        input={"ph": "seven"},
+        want=None,
+        want_error_code="input.not_a_number",
+        location=gasrules.core.errors.Location(),
+        origin="",
+    )
     assert S.compare(rb, case, gasrules.interpret(rb, case.input)) == []
 
 
 # ----------------------------------------------------------------------------- coverage pieces
 
-@pytest.mark.parametrize("margin,threshold,step,side", [
-    (-0.01, 7.35, 0.01, "below"),    # pH 7.34 against ph_low 7.35 (precision 2)
-    (0.0, 7.35, 0.01, "at"),
-    (0.01, 7.35, 0.01, "above"),
-    (0.02, 7.35, 0.01, None),        # two steps away: not a probe
-    (0.1, 12.0, 0.1, "above"),       # AG 12.1 against ag_high 12 (precision 1)
-])
+
+@pytest.mark.parametrize(
+    "margin,threshold,step,side",
+    [
+        (-0.01, 7.35, 0.01, "below"),  # pH 7.34 against ph_low 7.35 (precision 2)
+        (0.0, 7.35, 0.01, "at"),
+        (0.01, 7.35, 0.01, "above"),
+        (0.02, 7.35, 0.01, None),  # two steps away: not a probe
+        (0.1, 12.0, 0.1, "above"),  # AG 12.1 against ag_high 12 (precision 1)
+    ],
+)
 def test_side_of(margin, threshold, step, side):
     assert S.side_of(margin, threshold, step) == side
 
 
-@pytest.mark.parametrize("op,below,at,above", [
-    ("<", True, False, False), ("<=", True, True, False), (">", False, False, True),
-    (">=", False, True, True), ("==", False, True, False),
-])
+@pytest.mark.parametrize(
+    "op,below,at,above",
+    [
+        ("<", True, False, False),
+        ("<=", True, True, False),
+        (">", False, False, True),
+        (">=", False, True, True),
+        ("==", False, True, False),
+    ],
+)
 def test_op_truth(op, below, at, above):
     assert [S.op_truth(op, s) for s in S.SIDES] == [below, at, above]
 
 
 def _cp(rb, owner, quantity, threshold):
-    return next(cp for cp in S.unique_cutpoints(rb)
-                if (cp["owner"], cp["quantity"], cp["threshold"]) == (owner, quantity, threshold))
+    return next(
+        cp
+        for cp in S.unique_cutpoints(rb)
+        if (cp["owner"], cp["quantity"], cp["threshold"]) == (owner, quantity, threshold)
+    )
 
 
 def test_decisive_comparison(rb):
@@ -149,14 +180,22 @@ def test_rule_coverage_with_a_stated_exception(rb, tmp_path):
     results = S.run_suite(rb, S.load_suite(ADULT, _cases(tmp_path, GOOD)))
     plain = S.rule_coverage(rb, results)
     assert "critical.ph_low" in plain["never_fired"]
-    excused = S.rule_coverage(rb, results, [{"rule": "critical.ph_low", "outcome": "fired", "reason": "a test"}])
-    assert "critical.ph_low" not in excused["never_fired"] and excused["excused"][0]["rule"] == "critical.ph_low"
-    stale = S.rule_coverage(rb, results, [{"rule": "anion_gap.normal_gap_acidosis", "outcome": "fired",
-                                           "reason": "wrongly stated"}])
+    excused = S.rule_coverage(
+        rb, results, [{"rule": "critical.ph_low", "outcome": "fired", "reason": "a test"}]
+    )
+    assert (
+        "critical.ph_low" not in excused["never_fired"] and excused["excused"][0]["rule"] == "critical.ph_low"
+    )
+    stale = S.rule_coverage(
+        rb,
+        results,
+        [{"rule": "anion_gap.normal_gap_acidosis", "outcome": "fired", "reason": "wrongly stated"}],
+    )
     assert stale["stale_excuses"] == [{"rule": "anion_gap.normal_gap_acidosis", "outcome": "fired"}]
 
 
 # ----------------------------------------------------------------------------- probes
+
 
 def test_probe_found_by_bisection_over_chloride(rb, tmp_path):
     """AG = Na - Cl - HCO3 against ag_high 12: the probe moves Cl until the gap is 12.1."""
@@ -181,6 +220,7 @@ def test_probe_found_by_bisection_over_chloride(rb, tmp_path):
 
 
 # ----------------------------------------------------------------------------- the command
+
 
 def test_cli_failure_output_and_exit_code(tmp_path):
     folder = _cases(tmp_path, GOOD.replace("value: 29.0", "value: 31.0"))

@@ -76,16 +76,39 @@ def make_corpus(path: Path, n: int, seed: int = 7) -> None:
     if path.exists() and path.with_suffix(".done").exists():
         return
     t0 = time.perf_counter()
-    subprocess.run([sys.executable, str(ROOT / "tools" / "make_demo_data.py"), "corpus", "--n", str(n),
-                    "--seed", str(seed), "--format", "csv", "--out", str(path)], check=True,
-                   stderr=subprocess.DEVNULL)
+    subprocess.run(
+        [
+            sys.executable,
+            str(ROOT / "tools" / "make_demo_data.py"),
+            "corpus",
+            "--n",
+            str(n),
+            "--seed",
+            str(seed),
+            "--format",
+            "csv",
+            "--out",
+            str(path),
+        ],
+        check=True,
+        stderr=subprocess.DEVNULL,
+    )
     path.with_suffix(".done").write_text(f"{n}\n")
     print(f"  made {path} ({n:,} invented cases) in {time.perf_counter() - t0:.0f} s", flush=True)
 
 
 def run_once(src: Path, out: Path, workers: int) -> dict[str, float]:
-    cmd = [sys.executable, "-c", "import sys; from gasrules.cli import main; sys.exit(main())",
-           "batch", str(src), str(out), "--workers", str(workers), "--no-progress"]
+    cmd = [
+        sys.executable,
+        "-c",
+        "import sys; from gasrules.cli import main; sys.exit(main())",
+        "batch",
+        str(src),
+        str(out),
+        "--workers",
+        str(workers),
+        "--no-progress",
+    ]
     env = {**os.environ, "PYTHONPATH": str(ROOT / "engine")}
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t0 = time.perf_counter()
@@ -94,15 +117,21 @@ def run_once(src: Path, out: Path, workers: int) -> dict[str, float]:
     sampler.start()
     _, err = proc.communicate()
     seconds = time.perf_counter() - t0
-    after = resource.getrusage(resource.RUSAGE_CHILDREN)       # the run and its reaped workers
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)  # the run and its reaped workers
     cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
     sampler.halt.set()
     sampler.join()
     if proc.returncode != 0:
         raise SystemExit(f"batch failed ({proc.returncode}): {err.decode()[-2000:]}")
     rows = int(err.decode().split(" rows in", 1)[0].replace(",", "").split()[-1])
-    return {"rows": rows, "seconds": seconds, "rate": rows / seconds, "cpu": cpu,
-            "tree_mib": sampler.peak_tree / 1024, "single_mib": sampler.peak_single / 1024}
+    return {
+        "rows": rows,
+        "seconds": seconds,
+        "rate": rows / seconds,
+        "cpu": cpu,
+        "tree_mib": sampler.peak_tree / 1024,
+        "single_mib": sampler.peak_single / 1024,
+    }
 
 
 def _burn(_payload: object, chunk: list[int]) -> int:
@@ -127,16 +156,20 @@ def control(workers: int, items: int = 400) -> tuple[float, float]:
     wall = time.perf_counter() - t0
     after_c = resource.getrusage(resource.RUSAGE_CHILDREN)
     after_s = resource.getrusage(resource.RUSAGE_SELF)
-    cpu = sum(getattr(after_c, f) - getattr(before_c, f) + getattr(after_s, f) - getattr(before_s, f)
-              for f in ("ru_utime", "ru_stime"))
+    cpu = sum(
+        getattr(after_c, f) - getattr(before_c, f) + getattr(after_s, f) - getattr(before_s, f)
+        for f in ("ru_utime", "ru_stime")
+    )
     return wall, cpu / wall
 
 
 def _line(label: str, r: dict[str, float]) -> str:
-    return (f"  {label:<34} {r['rows']:>10,.0f} rows  {r['seconds']:7.1f} s  {r['rate']:8,.0f} cases/s  "
-            f"CPU {r['cpu']:6.1f} s ({r['rows'] / max(r['cpu'], 1e-9):6,.0f} cases per CPU-second, "
-            f"{r['cpu'] / r['seconds']:4.2f} cores busy)  "
-            f"peak RSS {r['tree_mib']:5.0f} MiB (all processes), {r['single_mib']:4.0f} MiB (largest one)")
+    return (
+        f"  {label:<34} {r['rows']:>10,.0f} rows  {r['seconds']:7.1f} s  {r['rate']:8,.0f} cases/s  "
+        f"CPU {r['cpu']:6.1f} s ({r['rows'] / max(r['cpu'], 1e-9):6,.0f} cases per CPU-second, "
+        f"{r['cpu'] / r['seconds']:4.2f} cores busy)  "
+        f"peak RSS {r['tree_mib']:5.0f} MiB (all processes), {r['single_mib']:4.0f} MiB (largest one)"
+    )
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -144,8 +177,12 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--n", type=int, default=100_000, help="cases for the 1-vs-2-worker comparison")
     ap.add_argument("--big", type=int, default=1_000_000, help="cases for the memory run (0: skip)")
     ap.add_argument("--small", type=int, default=1_000, help="cases for the flat-memory baseline")
-    ap.add_argument("--big-workers", type=lambda t: tuple(int(x) for x in t.split(",")), default=(2,),
-                    help="worker counts for the memory run, comma separated (default 2)")
+    ap.add_argument(
+        "--big-workers",
+        type=lambda t: tuple(int(x) for x in t.split(",")),
+        default=(2,),
+        help="worker counts for the memory run, comma separated (default 2)",
+    )
     ap.add_argument("--formats", default="csv", help="output formats to time, comma separated")
     ap.add_argument("--dir", type=Path, default=Path("/tmp/gasrules-bench-batch"))
     args = ap.parse_args(argv)
@@ -153,8 +190,11 @@ def main(argv: list[str] | None = None) -> int:
     print(f"gasrules batch benchmark: {os.cpu_count()} CPUs, corpus under {args.dir}", flush=True)
     for workers in (1, 2):
         wall, busy = control(workers)
-        print(f"  control: pure CPU work through the pool, {workers} worker(s): {wall:5.1f} s, "
-              f"{busy:4.2f} cores busy", flush=True)
+        print(
+            f"  control: pure CPU work through the pool, {workers} worker(s): {wall:5.1f} s, "
+            f"{busy:4.2f} cores busy",
+            flush=True,
+        )
     sizes = [s for s in (args.small, args.n, args.big) if s > 0]
     for n in sizes:
         make_corpus(args.dir / f"corpus-{n}.csv", n)
@@ -162,7 +202,9 @@ def main(argv: list[str] | None = None) -> int:
     for fmt in args.formats.split(",") if args.n > 0 else ():
         for workers in (1, 2):
             label = f"{args.n:,} cases, {workers} worker{'s' if workers > 1 else ''}, -> {fmt}"
-            r = run_once(args.dir / f"corpus-{args.n}.csv", args.dir / f"out-{args.n}-{workers}.{fmt}", workers)
+            r = run_once(
+                args.dir / f"corpus-{args.n}.csv", args.dir / f"out-{args.n}-{workers}.{fmt}", workers
+            )
             results[label] = r
             print(_line(label, r), flush=True)
         one, two = (results[k] for k in list(results)[-2:])

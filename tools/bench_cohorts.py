@@ -54,10 +54,14 @@ def main() -> None:
     size = args.size or plan.size
     n = size * len(plan.cohorts)
     wall, cpu = _timed(lambda: [C.generate(rb, plan, c, size) for c in plan.cohorts], args.repeat)
-    print(f"generate {len(plan.cohorts)} cohorts x {size:,} = {n:,} cases: {wall:.2f} s wall, {cpu:.2f} s CPU")
+    print(
+        f"generate {len(plan.cohorts)} cohorts x {size:,} = {n:,} cases: {wall:.2f} s wall, {cpu:.2f} s CPU"
+    )
     for workers in (1, 2):
         wall, cpu = _timed(lambda: T.run_cohorts(rb, plan, workers=workers, size=size), args.repeat)
-        print(f"table with {workers} worker(s): {wall:.2f} s wall ({n / wall:,.0f} cases/s), {cpu:.2f} s CPU here")
+        print(
+            f"table with {workers} worker(s): {wall:.2f} s wall ({n / wall:,.0f} cases/s), {cpu:.2f} s CPU here"
+        )
     cli = [sys.executable, "-m", "gasrules.cli", "verify", args.rulebook]
     for extra in (["--no-cohorts"], []):
         w = time.perf_counter()

@@ -36,20 +36,24 @@ import subprocess
 import sys
 import tempfile
 import time
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import gasrules
-from gasrules.verification.casegen import generate_cases
 from gasrules.evaluation.evaluator import read_case
+from gasrules.verification.casegen import generate_cases
 from gasrules.verification.oracle import oracle_evaluate
 
 ROOT = Path(__file__).resolve().parents[1]
 BENCH_RULEBOOK = ROOT / "tools" / "bench" / "rulebook.yaml"
 SEED = 20260301
-BLOCK = 2000          # cases per alternating block in the engine-vs-twin comparison
-TARGETS = {"full trace": "design target <= 30 us/case", "ratio": "design target <= 1.5x",
-           "cold": "design target <= 0.3 s"}
+BLOCK = 2000  # cases per alternating block in the engine-vs-twin comparison
+TARGETS = {
+    "full trace": "design target <= 30 us/case",
+    "ratio": "design target <= 1.5x",
+    "cold": "design target <= 0.3 s",
+}
 
 
 def load_twin() -> Any:
@@ -61,6 +65,7 @@ def load_twin() -> Any:
 
 
 # ----------------------------------------------------------------------------- timing helpers
+
 
 def clocks() -> tuple[float, float]:
     return time.perf_counter(), time.process_time()
@@ -92,9 +97,12 @@ def header(title: str) -> None:
 
 # ----------------------------------------------------------------------------- sections
 
+
 def section_shipped(rb: Any, cases: list[Any], rounds: int) -> None:
-    header(f"1. Shipped rulebook {rb.id} {rb.version} ({len(rb.rules)} rules, {len(rb.derived)} derived), "
-           f"{len(cases):,} cases, median of {rounds} rounds")
+    header(
+        f"1. Shipped rulebook {rb.id} {rb.version} ({len(rb.rules)} rules, {len(rb.derived)} derived), "
+        f"{len(cases):,} cases, median of {rounds} rounds"
+    )
     full: list[tuple[float, float]] = []
     bare: list[tuple[float, float]] = []
     for r in range(rounds):  # alternate the order so drift hits both alike
@@ -102,26 +110,32 @@ def section_shipped(rb: Any, cases: list[Any], rounds: int) -> None:
         for trace, sink in order:
             sink.append(run_pass(lambda c, t=trace: gasrules.interpret(rb, c, t), cases))
     n = len(cases)
-    for label, runs, note in (("interpret, full trace", full, TARGETS["full trace"]),
-                              ("interpret, no trace", bare, "")):
+    for label, runs, note in (
+        ("interpret, full trace", full, TARGETS["full trace"]),
+        ("interpret, no trace", bare, ""),
+    ):
         row(label, statistics.median(w for w, _ in runs), statistics.median(c for _, c in runs), n, note)
     spread = [per_case(w, n) for w, _ in full]
     print(f"  (full trace, wall us/case per round: {', '.join(f'{x:.1f}' for x in spread)})")
 
 
 def section_twin(brb: Any, twin: Any, cases: list[Any], rounds: int) -> None:
-    header(f"2. Engine overhead: benchmark rulebook {brb.id} ({len(brb.rules)} rules, {len(brb.derived)} derived) "
-           f"vs hand-written twin, {len(cases):,} cases x {rounds} rounds, alternating blocks of {BLOCK}")
+    header(
+        f"2. Engine overhead: benchmark rulebook {brb.id} ({len(brb.rules)} rules, {len(brb.derived)} derived) "
+        f"vs hand-written twin, {len(cases):,} cases x {rounds} rounds, alternating blocks of {BLOCK}"
+    )
     for trace in (True, False):
         tot = {"engine": [0.0, 0.0], "twin": [0.0, 0.0]}
         ratios_w: list[float] = []
         ratios_c: list[float] = []
-        fns = {"engine": lambda c, t=trace: gasrules.interpret(brb, c, t),
-               "twin": lambda c, t=trace: twin.interpret(c, t)}
+        fns = {
+            "engine": lambda c, t=trace: gasrules.interpret(brb, c, t),
+            "twin": lambda c, t=trace: twin.interpret(c, t),
+        }
         k = 0
         for _ in range(rounds):
             for start in range(0, len(cases), BLOCK):
-                block = cases[start:start + BLOCK]
+                block = cases[start : start + BLOCK]
                 order = ("engine", "twin") if k % 2 == 0 else ("twin", "engine")
                 k += 1
                 got = {}
@@ -135,16 +149,24 @@ def section_twin(brb: Any, twin: Any, cases: list[Any], rounds: int) -> None:
         label = "full trace" if trace else "no trace"
         row(f"engine, {label}", tot["engine"][0], tot["engine"][1], n)
         row(f"hand-written twin, {label}", tot["twin"][0], tot["twin"][1], n)
-        med_c = statistics.median(x for x in ratios_c if x == x) if any(x == x for x in ratios_c) else float("nan")
-        print(f"  {'ratio engine/twin, ' + label:<52} wall {tot['engine'][0] / tot['twin'][0]:.2f}x "
-              f"(median of {len(ratios_w)} blocks {statistics.median(ratios_w):.2f}x), "
-              f"cpu {tot['engine'][1] / tot['twin'][1]:.2f}x (median {med_c:.2f}x)  "
-              f"{TARGETS['ratio'] if trace else ''}")
+        med_c = (
+            statistics.median(x for x in ratios_c if x == x)
+            if any(x == x for x in ratios_c)
+            else float("nan")
+        )
+        print(
+            f"  {'ratio engine/twin, ' + label:<52} wall {tot['engine'][0] / tot['twin'][0]:.2f}x "
+            f"(median of {len(ratios_w)} blocks {statistics.median(ratios_w):.2f}x), "
+            f"cpu {tot['engine'][1] / tot['twin'][1]:.2f}x (median {med_c:.2f}x)  "
+            f"{TARGETS['ratio'] if trace else ''}"
+        )
 
 
 def section_oracle(rb: Any, brb: Any, cases: list[Any], sample: int, rounds: int) -> None:
-    header(f"3. For scale: values and rule outcomes only (no trace, no result), {sample} cases, "
-           f"median of {rounds} rounds")
+    header(
+        f"3. For scale: values and rule outcomes only (no trace, no result), {sample} cases, "
+        f"median of {rounds} rounds"
+    )
     for book in (rb, brb):
         read = [read_case(book, c) for c in cases[:sample]]
         inputs = [r[0] for r in read if not r[1]]
@@ -153,7 +175,13 @@ def section_oracle(rb: Any, brb: Any, cases: list[Any], sample: int, rounds: int
         gw, gc = statistics.median(w for w, _ in gen), statistics.median(c for _, c in gen)
         ow, oc = statistics.median(w for w, _ in orc), statistics.median(c for _, c in orc)
         row(f"{book.id}: generated function", gw, gc, len(inputs))
-        row(f"{book.id}: simpleeval per case (oracle)", ow, oc, len(inputs), f"{ow / gw:.0f}x the generated function")
+        row(
+            f"{book.id}: simpleeval per case (oracle)",
+            ow,
+            oc,
+            len(inputs),
+            f"{ow / gw:.0f}x the generated function",
+        )
 
 
 def section_stages(rb: Any, cases: list[Any], rounds: int) -> None:
@@ -177,26 +205,47 @@ def section_stages(rb: Any, cases: list[Any], rounds: int) -> None:
     def bare(case: Any) -> Any:
         return gasrules.interpret(rb, case, False)
 
-    passes = {"read": read_only, "function": read_and_function, "full": full,
-              "function_bare": read_and_function_bare, "bare": bare}
+    passes = {
+        "read": read_only,
+        "function": read_and_function,
+        "full": full,
+        "function_bare": read_and_function_bare,
+        "bare": bare,
+    }
     runs: dict[str, list[tuple[float, float]]] = {k: [] for k in passes}
     for _ in range(rounds):
         for name, fn in passes.items():
             runs[name].append(run_pass(fn, cases))
-    med = {k: (statistics.median(w for w, _ in v), statistics.median(c for _, c in v)) for k, v in runs.items()}
+    med = {
+        k: (statistics.median(w for w, _ in v), statistics.median(c for _, c in v)) for k, v in runs.items()
+    }
     n = len(cases)
     row("read_case (units, plausibility)", *med["read"], n)
     for label, fn_key, all_key in (("full trace", "function", "full"), ("no trace", "function_bare", "bare")):
-        row(f"generated function, {label}", med[fn_key][0] - med["read"][0],
-            med[fn_key][1] - med["read"][1], n, "(read+function minus read)")
-        row(f"assemble, {label} (texts, not assessed, headline)", med[all_key][0] - med[fn_key][0],
-            med[all_key][1] - med[fn_key][1], n, "(interpret minus read+function)")
+        row(
+            f"generated function, {label}",
+            med[fn_key][0] - med["read"][0],
+            med[fn_key][1] - med["read"][1],
+            n,
+            "(read+function minus read)",
+        )
+        row(
+            f"assemble, {label} (texts, not assessed, headline)",
+            med[all_key][0] - med[fn_key][0],
+            med[all_key][1] - med[fn_key][1],
+            n,
+            "(interpret minus read+function)",
+        )
     nev = sum(len(gasrules.interpret(rb, c)["trace"]) for c in cases[:200]) / min(200, n)
     print(f"  (trace events per case: {nev:.0f}; identity {static.identity['id']})")
     floor = [run_pass(lambda _c: _bare_events(int(nev)), cases[:5000]) for _ in range(rounds)]
-    row(f"floor: {nev:.0f} bare events (4 small dicts each), plain Python",
-        statistics.median(w for w, _ in floor), statistics.median(c for _, c in floor), len(cases[:5000]),
-        "what any trace of this size costs")
+    row(
+        f"floor: {nev:.0f} bare events (4 small dicts each), plain Python",
+        statistics.median(w for w, _ in floor),
+        statistics.median(c for _, c in floor),
+        len(cases[:5000]),
+        "what any trace of this size costs",
+    )
     # Keeping every result alive (as a caller collecting a batch does) makes the cyclic garbage
     # collector rescan a growing heap; results hold no cycles, so that work is wasted.
     sample = cases[:3000]
@@ -214,10 +263,18 @@ def section_stages(rb: Any, cases: list[Any], rounds: int) -> None:
             gc.enable()
         del out2
         gc.collect()
-    row(f"interpret, results kept in a list ({len(sample):,} cases)", statistics.median(w for w, _ in kept),
-        statistics.median(c for _, c in kept), len(sample))
-    row("  the same with the cyclic GC disabled", statistics.median(w for w, _ in kept_nogc),
-        statistics.median(c for _, c in kept_nogc), len(sample))
+    row(
+        f"interpret, results kept in a list ({len(sample):,} cases)",
+        statistics.median(w for w, _ in kept),
+        statistics.median(c for _, c in kept),
+        len(sample),
+    )
+    row(
+        "  the same with the cyclic GC disabled",
+        statistics.median(w for w, _ in kept_nogc),
+        statistics.median(c for _, c in kept_nogc),
+        len(sample),
+    )
 
 
 _PARAM = {"value": 7.1, "unit": "[pH]", "set_by": "rulebook.yaml:1:1"}
@@ -227,10 +284,27 @@ def _bare_events(n: int, v: float = 7.25, r: float = 7.25) -> list[Any]:
     """The smallest event a rule with one read, one parameter and one comparison can have."""
     out = []
     for _ in range(n):
-        out.append({"rule": "r", "step": "s", "title": "t", "outcome": "not_fired", "reads": {"ph": v},
-                    "parameters": {"p": _PARAM},
-                    "comparisons": [{"quantity": "ph", "value": v, "compared": r, "op": "<", "threshold": "p",
-                                     "threshold_value": 7.1, "margin": round(r - 7.1, 9)}]})
+        out.append(
+            {
+                "rule": "r",
+                "step": "s",
+                "title": "t",
+                "outcome": "not_fired",
+                "reads": {"ph": v},
+                "parameters": {"p": _PARAM},
+                "comparisons": [
+                    {
+                        "quantity": "ph",
+                        "value": v,
+                        "compared": r,
+                        "op": "<",
+                        "threshold": "p",
+                        "threshold_value": 7.1,
+                        "margin": round(r - 7.1, 9),
+                    }
+                ],
+            }
+        )
     return out
 
 
@@ -254,8 +328,18 @@ def gasrules_command() -> list[str]:
 
 def section_cold_start(runs: int) -> None:
     print()
-    print(f"5. Cold start of `gasrules interpret CASE` (subprocess; median of {runs} runs; wall / cpu of the child)")
-    case = {"case_id": "cold", "ph": 7.26, "pco2": 23, "hco3": 10, "na": 140, "cl": 104, "sample_type": "arterial"}
+    print(
+        f"5. Cold start of `gasrules interpret CASE` (subprocess; median of {runs} runs; wall / cpu of the child)"
+    )
+    case = {
+        "case_id": "cold",
+        "ph": 7.26,
+        "pco2": 23,
+        "hco3": 10,
+        "na": 140,
+        "cl": 104,
+        "sample_type": "arterial",
+    }
     with tempfile.TemporaryDirectory() as tmp:
         case_file = Path(tmp) / "case.json"
         case_file.write_text(json.dumps(case))
@@ -268,22 +352,34 @@ def section_cold_start(runs: int) -> None:
         warm = [_timed(cmd, warm_env) for _ in range(runs)]
         bare = [_timed([sys.executable, "-c", "pass"], base_env) for _ in range(runs)]
         imp = [_timed([sys.executable, "-c", "import gasrules.cli"], base_env) for _ in range(runs)]
-        lib_code = ("import sys, json, gasrules; rb = gasrules.load_rulebook(); "
-                    "print(gasrules.interpret(rb, json.load(open(sys.argv[1])))['headline'])")
+        lib_code = (
+            "import sys, json, gasrules; rb = gasrules.load_rulebook(); "
+            "print(gasrules.interpret(rb, json.load(open(sys.argv[1])))['headline'])"
+        )
         lib = [_timed([sys.executable, "-c", lib_code, str(case_file)], warm_env) for _ in range(runs)]
         codes = {c for _, _, c in warm} | {cold[2]}
-        print(f"  {'warm compiled-rulebook cache':<52} {statistics.median(w for w, _, _ in warm):7.3f} s "
-              f"cpu {statistics.median(c for _, c, _ in warm):6.3f} s   {TARGETS['cold']}")
+        print(
+            f"  {'warm compiled-rulebook cache':<52} {statistics.median(w for w, _, _ in warm):7.3f} s "
+            f"cpu {statistics.median(c for _, c, _ in warm):6.3f} s   {TARGETS['cold']}"
+        )
         print(f"    (runs, wall s: {', '.join(f'{w:.3f}' for w, _, _ in warm)})")
-        print(f"  {'cold cache (load, check, compile, store)':<52} {cold[0]:7.3f} s cpu {cold[1]:6.3f} s  (one run)")
-        print(f"  {'bare interpreter: python -c pass':<52} {statistics.median(w for w, _, _ in bare):7.3f} s "
-              f"cpu {statistics.median(c for _, c, _ in bare):6.3f} s")
+        print(
+            f"  {'cold cache (load, check, compile, store)':<52} {cold[0]:7.3f} s cpu {cold[1]:6.3f} s  (one run)"
+        )
+        print(
+            f"  {'bare interpreter: python -c pass':<52} {statistics.median(w for w, _, _ in bare):7.3f} s "
+            f"cpu {statistics.median(c for _, c, _ in bare):6.3f} s"
+        )
         label = 'python -c "import gasrules.cli"'
-        print(f"  {label:<52} {statistics.median(w for w, _, _ in imp):7.3f} s "
-              f"cpu {statistics.median(c for _, c, _ in imp):6.3f} s")
+        print(
+            f"  {label:<52} {statistics.median(w for w, _, _ in imp):7.3f} s "
+            f"cpu {statistics.median(c for _, c, _ in imp):6.3f} s"
+        )
         label = "library only: load_rulebook + interpret, no CLI"
-        print(f"  {label:<52} {statistics.median(w for w, _, _ in lib):7.3f} s "
-              f"cpu {statistics.median(c for _, c, _ in lib):6.3f} s   (same warm cache)")
+        print(
+            f"  {label:<52} {statistics.median(w for w, _, _ in lib):7.3f} s "
+            f"cpu {statistics.median(c for _, c, _ in lib):6.3f} s   (same warm cache)"
+        )
         print(f"  (exit codes seen: {sorted(codes)})")
         import_breakdown(warm_env, case_file)
 
@@ -292,8 +388,13 @@ def import_breakdown(env: dict[str, str], case_file: Path, top: int = 14) -> Non
     """python -X importtime on the same command, summarised by top-level package (cumulative
     time of each outermost import) and listing the slowest single modules."""
     code = "import sys; from gasrules.cli import main; sys.exit(main(sys.argv[1:]))"
-    proc = subprocess.run([sys.executable, "-X", "importtime", "-c", code, "interpret", str(case_file)],
-                          env=env, capture_output=True, text=True, check=False)
+    proc = subprocess.run(
+        [sys.executable, "-X", "importtime", "-c", code, "interpret", str(case_file)],
+        env=env,
+        capture_output=True,
+        text=True,
+        check=False,
+    )
     outer: dict[str, int] = {}
     self_by_module: dict[str, int] = {}
     total = 0
@@ -312,8 +413,10 @@ def import_breakdown(env: dict[str, str], case_file: Path, top: int = 14) -> Non
             pkg = module.split(".")[0]
             outer[pkg] = outer.get(pkg, 0) + int(cum_us)
             total += int(cum_us)
-    print(f"  import time (python -X importtime, one warm-cache run): {total / 1e3:.1f} ms in all; "
-          f"top packages by cumulative time:")
+    print(
+        f"  import time (python -X importtime, one warm-cache run): {total / 1e3:.1f} ms in all; "
+        f"top packages by cumulative time:"
+    )
     for pkg, us in sorted(outer.items(), key=lambda kv: -kv[1])[:top]:
         print(f"    {pkg:<30} {us / 1e3:7.1f} ms")
     print("  slowest single modules (self time):")
@@ -332,15 +435,20 @@ def section_profile(rb: Any, cases: list[Any]) -> None:
     stats = pstats.Stats(prof)
     stats.sort_stats("tottime")
     total = stats.total_tt  # type: ignore[attr-defined]
-    print(f"  total {total:.2f} s under the profiler ({per_case(total, len(cases)):.0f} us/case with its overhead)")
+    print(
+        f"  total {total:.2f} s under the profiler ({per_case(total, len(cases)):.0f} us/case with its overhead)"
+    )
     width = 62
     for func, (cc, nc, tt, ct, _callers) in sorted(stats.stats.items(), key=lambda kv: -kv[1][2])[:15]:  # type: ignore[attr-defined]
         file, line, name = func
         where = f"{Path(file).name}:{line} {name}" if line else name
-        print(f"    {where[:width]:<{width}} {tt:7.2f} s own {tt / total * 100:5.1f} %  {nc / len(cases):6.1f} calls/case")
+        print(
+            f"    {where[:width]:<{width}} {tt:7.2f} s own {tt / total * 100:5.1f} %  {nc / len(cases):6.1f} calls/case"
+        )
 
 
 # ----------------------------------------------------------------------------- main
+
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
@@ -353,17 +461,23 @@ def main(argv: list[str] | None = None) -> int:
     args = ap.parse_args(argv)
 
     load = os.getloadavg()
-    print(f"gasrules {gasrules.__version__} engine benchmark; Python {sys.version.split()[0]}; "
-          f"{os.cpu_count()} CPUs; load average {load[0]:.2f} {load[1]:.2f} {load[2]:.2f}")
-    print("Noisy shared machine (2 cores): read ratios measured side by side here, not absolute figures "
-          "across runs.")
+    print(
+        f"gasrules {gasrules.__version__} engine benchmark; Python {sys.version.split()[0]}; "
+        f"{os.cpu_count()} CPUs; load average {load[0]:.2f} {load[1]:.2f} {load[2]:.2f}"
+    )
+    print(
+        "Noisy shared machine (2 cores): read ratios measured side by side here, not absolute figures "
+        "across runs."
+    )
     w0 = time.perf_counter()
     rb = gasrules.load_rulebook()
     brb = gasrules.load_rulebook(BENCH_RULEBOOK)
     twin = load_twin().Twin(brb)
     cases = list(generate_cases(args.cases, seed=SEED))
-    print(f"{len(cases):,} cases generated with seed {SEED} in {time.perf_counter() - w0:.1f} s "
-          f"(not counted); rulebooks loaded from the compiled-rulebook cache when warm.")
+    print(
+        f"{len(cases):,} cases generated with seed {SEED} in {time.perf_counter() - w0:.1f} s "
+        f"(not counted); rulebooks loaded from the compiled-rulebook cache when warm."
+    )
 
     section_shipped(rb, cases, args.rounds)
     section_twin(brb, twin, cases, args.rounds)

@@ -30,17 +30,33 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "engine"))
 
-EDITS = (("  ag_high:\n    value: 12\n", "  ag_high:\n    value: 13\n"),
-         ("  ph_low:\n    value: 7.35\n", "  ph_low:\n    value: 7.34\n"),
-         ("  version: 1.0.0\n", "  version: 1.0.1\n"))
+EDITS = (
+    ("  ag_high:\n    value: 12\n", "  ag_high:\n    value: 13\n"),
+    ("  ph_low:\n    value: 7.35\n", "  ph_low:\n    value: 7.34\n"),
+    ("  version: 1.0.0\n", "  version: 1.0.1\n"),
+)
 
 
 def prepare(directory: Path, n: int) -> tuple[Path, Path]:
     directory.mkdir(parents=True, exist_ok=True)
     corpus = directory / f"corpus-{n}.csv"
     if not corpus.exists():
-        subprocess.run([sys.executable, str(ROOT / "tools" / "make_demo_data.py"), "corpus", "--n", str(n),
-                        "--seed", "7", "--format", "csv", "--out", str(corpus)], check=True)
+        subprocess.run(
+            [
+                sys.executable,
+                str(ROOT / "tools" / "make_demo_data.py"),
+                "corpus",
+                "--n",
+                str(n),
+                "--seed",
+                "7",
+                "--format",
+                "csv",
+                "--out",
+                str(corpus),
+            ],
+            check=True,
+        )
     from gasrules.core.resources import default_rulebook_path
 
     text = default_rulebook_path().read_text(encoding="utf-8")
@@ -64,11 +80,18 @@ def one_run(corpus: Path, tuned: Path, workers: int) -> dict[str, float]:
     t0, cpu0 = time.perf_counter(), _cpu()
     report = replay(old, new, corpus, workers=workers)
     seconds, cpu = time.perf_counter() - t0, _cpu() - cpu0
-    return {"workers": workers, "rows": report.rows, "seconds": seconds, "rate": report.rows / seconds,
-            "cpu_seconds": cpu, "load": os.getloadavg()[0],
-            "changed": report.changed_any, "rejected": sum(report.rejected.values()),
-            "rss_parent_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
-            "rss_worker_mb": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024}
+    return {
+        "workers": workers,
+        "rows": report.rows,
+        "seconds": seconds,
+        "rate": report.rows / seconds,
+        "cpu_seconds": cpu,
+        "load": os.getloadavg()[0],
+        "changed": report.changed_any,
+        "rejected": sum(report.rejected.values()),
+        "rss_parent_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+        "rss_worker_mb": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024,
+    }
 
 
 def _cpu() -> float:
@@ -102,8 +125,12 @@ def control() -> float:
 
 
 def measure(corpus: Path, tuned: Path, workers: int) -> dict[str, float]:
-    out = subprocess.run([sys.executable, __file__, "--child", str(corpus), str(tuned), str(workers)],
-                         check=True, capture_output=True, text=True)
+    out = subprocess.run(
+        [sys.executable, __file__, "--child", str(corpus), str(tuned), str(workers)],
+        check=True,
+        capture_output=True,
+        text=True,
+    )
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
@@ -120,8 +147,10 @@ def main() -> None:
         return
     big, tuned = prepare(args.dir, args.n)
     small, _ = prepare(args.dir, args.small)
-    print(f"{'corpus':>8} {'workers':>7} {'seconds':>8} {'cases/s':>8} {'CPU s':>7} {'cases/CPU s':>11} {'load':>5} "
-          f"{'changed':>8} {'rejected':>8} {'parent MB':>9} {'worker MB':>9}")
+    print(
+        f"{'corpus':>8} {'workers':>7} {'seconds':>8} {'cases/s':>8} {'CPU s':>7} {'cases/CPU s':>11} {'load':>5} "
+        f"{'changed':>8} {'rejected':>8} {'parent MB':>9} {'worker MB':>9}"
+    )
     rates: dict[int, list[float]] = {1: [], 2: []}
     ceilings = [control()]
     for corpus, rounds in ((small, 1), (big, args.rounds)):
@@ -130,14 +159,22 @@ def main() -> None:
                 r = measure(corpus, tuned, w)
                 if corpus == big:
                     rates[w].append(r["rate"])
-                print(f"{r['rows']:>8,} {w:>7} {r['seconds']:>8.1f} {r['rate']:>8,.0f} {r['cpu_seconds']:>7.1f} "
-                      f"{r['rows'] / r['cpu_seconds']:>11,.0f} {r['load']:>5.1f} {r['changed']:>8,} {r['rejected']:>8,} "
-                      f"{r['rss_parent_mb']:>9.0f} {r['rss_worker_mb'] if w > 1 else 0:>9.0f}", flush=True)
+                print(
+                    f"{r['rows']:>8,} {w:>7} {r['seconds']:>8.1f} {r['rate']:>8,.0f} {r['cpu_seconds']:>7.1f} "
+                    f"{r['rows'] / r['cpu_seconds']:>11,.0f} {r['load']:>5.1f} {r['changed']:>8,} {r['rejected']:>8,} "
+                    f"{r['rss_parent_mb']:>9.0f} {r['rss_worker_mb'] if w > 1 else 0:>9.0f}",
+                    flush=True,
+                )
     ceilings.append(control())
     m1, m2 = statistics.median(rates[1]), statistics.median(rates[2])
-    print(f"\nmedian over {args.n:,} cases: 1 worker {m1:,.0f} cases/s, 2 workers {m2:,.0f} cases/s, ratio {m2 / m1:.2f}")
-    print("machine control (pure-Python loop, 2 processes vs 1; 2.00 = two free cores): "
-          + ", ".join(f"{c:.2f}" for c in ceilings) + " (before, after)")
+    print(
+        f"\nmedian over {args.n:,} cases: 1 worker {m1:,.0f} cases/s, 2 workers {m2:,.0f} cases/s, ratio {m2 / m1:.2f}"
+    )
+    print(
+        "machine control (pure-Python loop, 2 processes vs 1; 2.00 = two free cores): "
+        + ", ".join(f"{c:.2f}" for c in ceilings)
+        + " (before, after)"
+    )
 
 
 if __name__ == "__main__":

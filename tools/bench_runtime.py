@@ -13,14 +13,15 @@ from __future__ import annotations
 import sys
 import tempfile
 import time
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import gasrules
-from gasrules.verification.casegen import generate_cases
 from gasrules.governance.release import Approver, SuiteSummary, release
 from gasrules.governance.runtime import Runtime
 from gasrules.governance.settings import Settings
+from gasrules.verification.casegen import generate_cases
 
 ROOT = Path(__file__).resolve().parents[1]
 ADULT = ROOT / "rulebooks" / "adult" / "rulebook.yaml"
@@ -46,31 +47,60 @@ def main() -> None:
         d = Path(tmp)
         # admission only needs a manifest: bypass the suite here (the gate is not what is timed)
         whole = SuiteSummary("0" * 64, [], 1, 1, 0, 0, [], 1, 1, [], [])
-        release(ADULT, release_dir=d / "rel", approvers=[Approver("bench", "bench")], authors=["bench author"],
-                validate=lambda path, book: whole)
+        release(
+            ADULT,
+            release_dir=d / "rel",
+            approvers=[Approver("bench", "bench")],
+            authors=["bench author"],
+            validate=lambda path, book: whole,
+        )
 
         def with_runtime(settings: Settings, trace: bool = True) -> Callable[[], None]:
             def go() -> None:
-                with Runtime(rb, settings, candidate=gasrules.load_rulebook(SITE) if settings.shadow_rulebook else None) as rt:
+                with Runtime(
+                    rb, settings, candidate=gasrules.load_rulebook(SITE) if settings.shadow_rulebook else None
+                ) as rt:
                     for c in cases:
                         rt.interpret(c, trace=trace)
+
             return go
 
-        for c in cases[:200]:                      # warm up (first calls pay for imports and caches)
+        for c in cases[:200]:  # warm up (first calls pay for imports and caches)
             gasrules.interpret(rb, c)
+
         def plain() -> None:
             for c in cases:
                 gasrules.interpret(rb, c)
 
         base = timed("plain gasrules.interpret (trace)", n, plain, None)
         timed("Runtime, nothing on", n, with_runtime(Settings()), base)
-        timed("Runtime, strict (admitted once)", n, with_runtime(Settings(strict=True, release_dir=d / "rel")), base)
-        timed("Runtime + decision log, masked, fsync off", n, with_runtime(Settings(
-            decision_log=d / "a.jsonl", context_policy="mask", mask_salt=SALT, log_fsync=False)), base)
+        timed(
+            "Runtime, strict (admitted once)",
+            n,
+            with_runtime(Settings(strict=True, release_dir=d / "rel")),
+            base,
+        )
+        timed(
+            "Runtime + decision log, masked, fsync off",
+            n,
+            with_runtime(
+                Settings(decision_log=d / "a.jsonl", context_policy="mask", mask_salt=SALT, log_fsync=False)
+            ),
+            base,
+        )
         few = cases[: max(1, n // 4)]
-        timed("Runtime + decision log, masked, fsync on", len(few), lambda: _subset(rb, few, d / "b.jsonl"), base)
-        timed("Runtime + shadow candidate (log fsync off)", n, with_runtime(Settings(
-            shadow_rulebook=SITE, shadow_log=d / "s.jsonl", log_fsync=False)), base)
+        timed(
+            "Runtime + decision log, masked, fsync on",
+            len(few),
+            lambda: _subset(rb, few, d / "b.jsonl"),
+            base,
+        )
+        timed(
+            "Runtime + shadow candidate (log fsync off)",
+            n,
+            with_runtime(Settings(shadow_rulebook=SITE, shadow_log=d / "s.jsonl", log_fsync=False)),
+            base,
+        )
         size = (d / "a.jsonl").stat().st_size
         print(f"decision log: {size / n / 1024:.1f} KiB per entry (trace included)")
 

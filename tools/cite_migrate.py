@@ -30,63 +30,114 @@ from pathlib import Path
 # (key, pattern): a citation fragment naming the publication. Order does not matter.
 PATTERNS: list[tuple[str, str]] = [
     ("adrogue2010", r"Adrogu[eé] (?:&|and) Madias(?:,? J Am Soc Nephrol)?(?:,? 2010)?"),
-    ("albert1967", r"Albert,? Dell (?:&|and) Winters(?:,? Ann Intern Med)?(?:,? 1967)?|Winter's formula|\(Winter\)|\bWinter \d"),
+    (
+        "albert1967",
+        r"Albert,? Dell (?:&|and) Winters(?:,? Ann Intern Med)?(?:,? 1967)?|Winter's formula|\(Winter\)|\bWinter \d",
+    ),
     ("berend2014", r"Berend(?: et al\.?)?(?:,? N Engl J Med)?(?:,? 2014)?"),
     ("brackett1965", r"Brackett,? Cohen (?:&|and) Schwartz(?:,? N Engl J Med)?(?:,? 1965)?"),
     ("javaheri1987", r"Javaheri (?:&|and) Kazemi(?:,? Am Rev Respir Dis)?(?:,? 1987)?"),
     ("kassirer1965", r"Kassirer (?:&|and) Bleich(?:,? N Engl J Med)?(?:,? 1965)?"),
     ("dubose_harrison", r"DuBose(?:,? Acidosis and alkalosis)?(?:,? Harrison's)?(?: table)?"),
-    ("schlichtig1998", r"Schlichtig(?:,? Grogono (?:&|and) Severinghaus| et al\.?)?(?:,? Crit Care Med)?(?:,? 1998)?"),
+    (
+        "schlichtig1998",
+        r"Schlichtig(?:,? Grogono (?:&|and) Severinghaus| et al\.?)?(?:,? Crit Care Med)?(?:,? 1998)?",
+    ),
     ("siggaard1977", r"Siggaard-Andersen(?:,? Scand J Clin Lab Invest Suppl)?,? 1977"),
-    ("nccls_c46", r"(?:NCCLS(?:/CLSI)? C46(?:-A)?(?: / CLSI C46-A2)?|Siggaard-Andersen / NCCLS(?: pH)? form)"),
+    (
+        "nccls_c46",
+        r"(?:NCCLS(?:/CLSI)? C46(?:-A)?(?: / CLSI C46-A2)?|Siggaard-Andersen / NCCLS(?: pH)? form)",
+    ),
     ("nccls1994", r"NCCLS 1994|NCCLS HH form"),
     ("lang2002", r"Lang (?:&|and) Zander(?:,? Clin Chem Lab Med)?(?:,? 2002)?"),
-    ("winter1990", r"Winter,? Pearson(?:,? Gabow,? Schultz (?:&|and) Lepoff)?(?:,? Arch Intern Med)?(?:,? 1990)?"),
-    ("sadjadi2013", r"Sadjadi(?:,? Manalo,? Jaipaul (?:&|and) McMillan| et al\.?)?(?:,? Int J Nephrol Renovasc Dis)?(?:,? 2013)?"),
+    (
+        "winter1990",
+        r"Winter,? Pearson(?:,? Gabow,? Schultz (?:&|and) Lepoff)?(?:,? Arch Intern Med)?(?:,? 1990)?",
+    ),
+    (
+        "sadjadi2013",
+        r"Sadjadi(?:,? Manalo,? Jaipaul (?:&|and) McMillan| et al\.?)?(?:,? Int J Nephrol Renovasc Dis)?(?:,? 2013)?",
+    ),
     ("kraut2007", r"Kraut (?:&|and) Madias(?:,? Clin J Am Soc Nephrol)?,? 2007"),
     ("kraut2012", r"Kraut (?:&|and) Madias(?:,? Clin J Am Soc Nephrol)?,? 2012"),
     ("figge1998", r"Figge(?:,? Jabor,? Kazda (?:&|and) Fencl| et al\.?)(?:,? Crit Care Med)?(?:,? 1998)?"),
     ("figge1991", r"Figge-Fencl model"),
     ("figge1992", r"Figge-Fencl model"),
     ("carvounis2000", r"Carvounis (?:&|and) Feinfeld(?:,? Arch Intern Med)?(?:,? 2000)?"),
-    ("madias1979", r"Madias et al\.?(?:,? Increased anion gap in metabolic alkalosis)?(?:,? N Engl J Med)?(?:,? 1979)?"),
+    (
+        "madias1979",
+        r"Madias et al\.?(?:,? Increased anion gap in metabolic alkalosis)?(?:,? N Engl J Med)?(?:,? 1979)?",
+    ),
     ("rastegar2007", r"Rastegar(?:,? J Am Soc Nephrol)?(?:,? 2007)?"),
     ("wrenn1990", r"Wrenn(?:,? Ann Emerg Med)?(?:,? 1990)?"),
     ("gabow1980", r"Gabow et al\.?(?:,? N Engl J Med)?(?:,? 1980)?"),
-    ("kost1990", r"Kost GJ(?:,? Critical limits for urgent clinician notification at US medical centers)?(?:,? JAMA)?(?:,? 1990)?"),
-    ("hoffman1993", r"Hoffman(?:,? Smilkstein,? Howland (?:&|and) Goldfrank| et al\.?)?(?:,? J Toxicol Clin Toxicol)?(?:,? 1993)?"),
-    ("batlle1988", r"Batlle(?:,? Hizon,? Cohen,? Gutterman (?:&|and) Gupta| et al\.?)?(?:,? N Engl J Med)?(?:,? 1988)?"),
-    ("nacl_surrogates2013", r"(?:Use of sodium-chloride difference and corrected anion gap as surrogates of Stewart variables,? )?PLOS ONE 2013(?:;8\(2\):e56635)?"),
+    (
+        "kost1990",
+        r"Kost GJ(?:,? Critical limits for urgent clinician notification at US medical centers)?(?:,? JAMA)?(?:,? 1990)?",
+    ),
+    (
+        "hoffman1993",
+        r"Hoffman(?:,? Smilkstein,? Howland (?:&|and) Goldfrank| et al\.?)?(?:,? J Toxicol Clin Toxicol)?(?:,? 1993)?",
+    ),
+    (
+        "batlle1988",
+        r"Batlle(?:,? Hizon,? Cohen,? Gutterman (?:&|and) Gupta| et al\.?)?(?:,? N Engl J Med)?(?:,? 1988)?",
+    ),
+    (
+        "nacl_surrogates2013",
+        r"(?:Use of sodium-chloride difference and corrected anion gap as surrogates of Stewart variables,? )?PLOS ONE 2013(?:;8\(2\):e56635)?",
+    ),
     ("purssell2001", r"Purssell(?: et al\.?)?(?:,? Ann Emerg Med)?(?:,? 2001)?"),
     ("lynd2008", r"Lynd(?: et al\.?)?(?:,? BMC Emerg Med)?(?:,? 2008)?"),
-    ("osmolal_ri2020", r"(?:Reference values for osmolal gap in healthy subjects and in medical inpatients,? )?Scand J Clin Lab Invest 2020(?:;80:1-5)?"),
+    (
+        "osmolal_ri2020",
+        r"(?:Reference values for osmolal gap in healthy subjects and in medical inpatients,? )?Scand J Clin Lab Invest 2020(?:;80:1-5)?",
+    ),
     ("krasowski2012", r"Krasowski(?:,? Wilcoxon (?:&|and) Miron)?(?:,? BMC Clin Pathol)?(?:,? 2012)?"),
     ("ethanol_osm2019", r"Osmotic contribution of ethanol to serum osmolality(?:,? Front Med)?(?:,? 2019)?"),
     ("kellum1995", r"Kellum et al\.?(?:,? J Crit Care)?(?:,? 1995)?"),
     ("kellum2000", r"Kellum \(reviews"),
     ("kellum2005", r"Kellum \(reviews"),
     ("fencl2000", r"Fencl et al\.?(?:,? Am J Respir Crit Care Med)?(?:,? 2000)?"),
-    ("story2016", r"Story(?:,? Stewart acid-base: a simplified bedside approach)?(?:,? Anesth Analg)?(?:,? 2016)?"),
+    (
+        "story2016",
+        r"Story(?:,? Stewart acid-base: a simplified bedside approach)?(?:,? Anesth Analg)?(?:,? 2016)?",
+    ),
     ("klaestrup2011", r"Kl(?:ae|æ)strup(?: et al\.?)?(?:,? Clin Chem Lab Med)?(?:,? 2011)?"),
     ("byrne2014", r"Byrne(?: et al\.?)?(?:,? Respirology)?(?:,? 2014)?"),
     ("kelly2010", r"Kelly(?:,? Emerg Med Australas)?,? 2010"),
-    ("kelly2013", r"Kelly(?: AM)?,? systematic review[^;)]*?(?:\((?:search )?to (?:Sept )?(?:2012)\)|search to Sept 2012\)?)"),
-    ("venous_ri2021", r"(?:'Reference intervals for venous blood gas measurement in adults'|venous RI),? Clin Chem Lab Med c\. 2021"),
+    (
+        "kelly2013",
+        r"Kelly(?: AM)?,? systematic review[^;)]*?(?:\((?:search )?to (?:Sept )?(?:2012)\)|search to Sept 2012\)?)",
+    ),
+    (
+        "venous_ri2021",
+        r"(?:'Reference intervals for venous blood gas measurement in adults'|venous RI),? Clin Chem Lab Med c\. 2021",
+    ),
     ("ards2012", r"ARDS Definition Task Force(?:,? JAMA)?(?:,? 2012)?"),
     ("mellemgaard1966", r"Mellemgaard(?:,? Acta Physiol Scand)?(?:,? 1966)?"),
-    ("west_resp", r"West(?:,? Respiratory Physiology(?:: The Essentials)?)?(?=[,;)( ]|$)|Respiratory Physiology: The Essentials"),
+    (
+        "west_resp",
+        r"West(?:,? Respiratory Physiology(?:: The Essentials)?)?(?=[,;)( ]|$)|Respiratory Physiology: The Essentials",
+    ),
     ("sinha2009", r"Sinha et al\.?(?:,? ventilatory ratio)?"),
     ("enghoff1938", r"(?:Bohr-)?Enghoff(?: modification of the Bohr equation)?"),
     ("severinghaus1979", r"Severinghaus(?:,? J Appl Physiol)?,? 1979(?:,? Eq\. 3)?"),
     ("nunn1965", r"Nunn et al\.?(?:,? J Appl Physiol)?(?:,? 1965)?"),
-    ("clinchem_osm_case", r"Clinical Chemistry (?:clinical )?case study(?:,? ethylene glycol| 'Osmolal gap without anion gap in a 43-year-old man')?"),
-    ("em_aka_chapter", r"Emergency-medicine (?:textbook )?chapter on alcoholic ketoacidosis(?: \(book not identified\))?"),
+    (
+        "clinchem_osm_case",
+        r"Clinical Chemistry (?:clinical )?case study(?:,? ethylene glycol| 'Osmolal gap without anion gap in a 43-year-old man')?",
+    ),
+    (
+        "em_aka_chapter",
+        r"Emergency-medicine (?:textbook )?chapter on alcoholic ketoacidosis(?: \(book not identified\))?",
+    ),
     ("uw_med610_case7", r"University of Washington,? MED 610 ABG cases,? Case 7"),
 ]
 _COMPILED = [(k, re.compile(p)) for k, p in PATTERNS]
 
 # A mention of the former internal dossier, with its section numbers; removed from notes.
-_NAME = "methods" + ".md"   # the former internal dossier (spelt so that a search for it finds nothing)
+_NAME = "methods" + ".md"  # the former internal dossier (spelt so that a search for it finds nothing)
 _TOKEN = r"(?:section\s+)?(?:\d+(?:\.\d+)*|[CE]\d+|(?:item|step|check|caveat|point)\s+\w+)"
 _DOSSIER = re.compile(
     r"\((?:E\d+)\)|"
@@ -94,7 +145,8 @@ _DOSSIER = re.compile(
     r"\s+(?:in|from)\s+|as in\s+|from\s+))?"
     r"(?:/work/)?(?:shared/)?methods\.md"
     r"(?:(?:\s*(?:,|and|/)\s*|\s+|[:;]\s*(?=[CE]\d))" + _TOKEN + r")*"
-    r"(?:\s*\((?:synthesis)\))?")
+    r"(?:\s*\((?:synthesis)\))?"
+)
 
 # Check values and worked examples the former dossier numbered (C.., E..): what they compute or
 # where their inputs come from, so the note says it in words: id -> (keys, description).
@@ -108,28 +160,58 @@ CHECKS: dict[str, tuple[list[str], str]] = {
     "C7": (["adrogue2010"], "respiratory acidosis: HCO3 +0.1 (acute) / +0.35 (chronic) per mmHg"),
     "C8": (["adrogue2010"], "respiratory alkalosis: HCO3 -0.2 (acute) / -0.4 (chronic) per mmHg"),
     "C9": (["schlichtig1998"], "SBE compensation rules"),
-    "C10": (["siggaard1977", "nccls_c46"], "standard base excess, Van Slyke (Siggaard-Andersen) and CLSI C46 forms"),
+    "C10": (
+        ["siggaard1977", "nccls_c46"],
+        "standard base excess, Van Slyke (Siggaard-Andersen) and CLSI C46 forms",
+    ),
     "C12": (["kraut2007"], "anion gap Na - (Cl + HCO3), with K added"),
     "C13": (["figge1998"], "albumin-corrected anion gap, 0.25 per g/L"),
     "C14": (["rastegar2007"], "delta ratio (AG - normal AG) / (24 - HCO3)"),
     "C15": (["lynd2008"], "calculated osmolality 2 Na + glucose/18 + BUN/2.8 and osmolal gap"),
     "C16": (["batlle1988"], "urine anion gap U_Na + U_K - U_Cl"),
-    "C17": (["figge1992", "kraut2007", "kellum1995"], "apparent and effective SID, albumin and phosphate charge, strong ion gap"),
-    "C18": (["figge1992", "kraut2007", "kellum1995"], "apparent and effective SID, albumin and phosphate charge, strong ion gap"),
+    "C17": (
+        ["figge1992", "kraut2007", "kellum1995"],
+        "apparent and effective SID, albumin and phosphate charge, strong ion gap",
+    ),
+    "C18": (
+        ["figge1992", "kraut2007", "kellum1995"],
+        "apparent and effective SID, albumin and phosphate charge, strong ion gap",
+    ),
     "C21": (["west_resp"], "alveolar gas equation FiO2 x (PB - 47) - PaCO2 / 0.8"),
     "C22": (["mellemgaard1966"], "A-a gradient; age norm age/4 + 4 or 2.5 + 0.21 x age"),
     "C23": (["ards2012"], "P/F ratio PaO2 / FiO2"),
     "C24": (["west_resp"], "oxygen content 1.34 x Hb x SaO2 + 0.003 x PaO2"),
-    "C25": (["nccls_c46", "nunn1965", "severinghaus1979"], "temperature correction of pH, PCO2 (Nunn) and PO2 (Severinghaus Eq. 3)"),
+    "C25": (
+        ["nccls_c46", "nunn1965", "severinghaus1979"],
+        "temperature correction of pH, PCO2 (Nunn) and PO2 (Severinghaus Eq. 3)",
+    ),
     "C27": ([], "unit conversion"),
-    "C28": (["nccls1994", "kassirer1965"], "consistency check: Henderson-Hasselbalch HCO3 and Henderson [H+]"),
-    "C29": (["nccls1994", "kassirer1965"], "consistency check: Henderson-Hasselbalch HCO3 and Henderson [H+]"),
-    **{f"E{i}": (["dubose_harrison"], "worked example, inputs and interpretation read in the table of mixed disorders") for i in (1, 2, 3, 4)},
-    **{f"E{i}": (["dubose_harrison"], "worked example recalled from the mixed metabolic section") for i in (5, 6)},
+    "C28": (
+        ["nccls1994", "kassirer1965"],
+        "consistency check: Henderson-Hasselbalch HCO3 and Henderson [H+]",
+    ),
+    "C29": (
+        ["nccls1994", "kassirer1965"],
+        "consistency check: Henderson-Hasselbalch HCO3 and Henderson [H+]",
+    ),
+    **{
+        f"E{i}": (
+            ["dubose_harrison"],
+            "worked example, inputs and interpretation read in the table of mixed disorders",
+        )
+        for i in (1, 2, 3, 4)
+    },
+    **{
+        f"E{i}": (["dubose_harrison"], "worked example recalled from the mixed metabolic section")
+        for i in (5, 6)
+    },
     "E7": (["story2016"], "worked example, inputs read, interpretation reconstructed"),
     "E8": (["em_aka_chapter"], "worked example, inputs read in the chapter"),
     "E9": (["clinchem_osm_case"], "worked example, inputs read in the case study (2 h sample)"),
-    "E10": (["clinchem_osm_case"], "worked example, inputs read in the case study (8 h sample), follow-up not captured"),
+    "E10": (
+        ["clinchem_osm_case"],
+        "worked example, inputs read in the case study (8 h sample), follow-up not captured",
+    ),
     "E13": (["uw_med610_case7"], "worked example, values read, answer not captured"),
     **{f"E{i}": (["batlle1988"], "published urine anion gap group") for i in range(14, 19)},
     "E19": (["sadjadi2013"], "published anion gap figures"),
@@ -140,8 +222,10 @@ CHECKS: dict[str, tuple[list[str], str]] = {
 
 # Topics of the former dossier's sections: the note when nothing else is left of a text.
 TOPICS: dict[str, tuple[list[str], str]] = {
-    "0.2": ([], "units convention"), "1.1": ([], "arterial reference intervals"),
-    "1.2": ([], "anion gap reference intervals depend on the analyser"), "1.3": ([], "osmolal gap reference values"),
+    "0.2": ([], "units convention"),
+    "1.1": ([], "arterial reference intervals"),
+    "1.2": ([], "anion gap reference intervals depend on the analyser"),
+    "1.3": ([], "osmolal gap reference values"),
     "1.4": (["kelly2010", "byrne2014"], "venous and arterial samples"),
     "2.1": (["nccls1994"], "Henderson-Hasselbalch consistency check"),
     "2.2": (["adrogue2010", "berend2014"], "physiological compensation rules"),
@@ -150,50 +234,74 @@ TOPICS: dict[str, tuple[list[str], str]] = {
     "2.6": (["rastegar2007", "wrenn1990"], "delta ratio and delta gap"),
     "2.7": (["lynd2008"], "calculated osmolality and osmolal gap"),
     "2.9": (["figge1992", "kellum1995", "fencl2000"], "physicochemical (Stewart) approach"),
-    "2.10": (["west_resp"], "oxygenation"), "2.11": (["nccls_c46", "nunn1965", "severinghaus1979"], "temperature correction"),
-    "2.12": ([], "unit conversions"), "3.1": ([], "stepwise interpretation"),
-    "3.2": ([], "edge cases and scope"), "3.3": ([], "which conclusions need which inputs"),
-    "4.2": (["ards2012"], "published interpretation bands"), "5": ([], "clinical cautions"),
+    "2.10": (["west_resp"], "oxygenation"),
+    "2.11": (["nccls_c46", "nunn1965", "severinghaus1979"], "temperature correction"),
+    "2.12": ([], "unit conversions"),
+    "3.1": ([], "stepwise interpretation"),
+    "3.2": ([], "edge cases and scope"),
+    "3.3": ([], "which conclusions need which inputs"),
+    "4.2": (["ards2012"], "published interpretation bands"),
+    "5": ([], "clinical cautions"),
 }
 
 # Whole citation texts that name no publication, or need a different reading than the patterns give:
 # text -> (keys, evidence or None to keep, note).
-OVERRIDES: dict[str, tuple[list[str], str | None, str]] = {k.replace("{M}", _NAME): v for k, v in {
-    "Common teaching ({M} 3.1 step 8)":
-        ([], "CP", "Common teaching: no single published source"),
-    "Standard physiology texts ({M} 2.10)":
-        ([], "CP", "Standard physiology texts: no single published source identified"),
-    "{M} 3.1 step 8 (from memory)":
-        ([], "CP", "Common teaching (urine chloride in metabolic alkalosis): no single published source"),
-    "{M} 3.2 (pregnancy intervals from memory)":
-        ([], "CP", "Pregnancy intervals from memory: no single published source named"),
-    "Common practice; suggested default in {M} 2.1 (check A)":
-        ([], "CP", "Common practice: tolerance of the Henderson-Hasselbalch consistency check"),
-    "Common practice; {M} 2.1 check C and 4.3":
-        ([], "CP", "Common practice: tolerance of the Henderson [H+] consistency check"),
-    "Standard physiology texts (from memory)":
-        ([], None, "Standard physiology texts: no single published source identified"),
-}.items()}
+OVERRIDES: dict[str, tuple[list[str], str | None, str]] = {
+    k.replace("{M}", _NAME): v
+    for k, v in {
+        "Common teaching ({M} 3.1 step 8)": ([], "CP", "Common teaching: no single published source"),
+        "Standard physiology texts ({M} 2.10)": (
+            [],
+            "CP",
+            "Standard physiology texts: no single published source identified",
+        ),
+        "{M} 3.1 step 8 (from memory)": (
+            [],
+            "CP",
+            "Common teaching (urine chloride in metabolic alkalosis): no single published source",
+        ),
+        "{M} 3.2 (pregnancy intervals from memory)": (
+            [],
+            "CP",
+            "Pregnancy intervals from memory: no single published source named",
+        ),
+        "Common practice; suggested default in {M} 2.1 (check A)": (
+            [],
+            "CP",
+            "Common practice: tolerance of the Henderson-Hasselbalch consistency check",
+        ),
+        "Common practice; {M} 2.1 check C and 4.3": (
+            [],
+            "CP",
+            "Common practice: tolerance of the Henderson [H+] consistency check",
+        ),
+        "Standard physiology texts (from memory)": (
+            [],
+            None,
+            "Standard physiology texts: no single published source identified",
+        ),
+    }.items()
+}
 
 # Free text (comments, doc.why, case notes) naming the former dossier: exact replacements first,
 # then the generic scrub of :func:`scrub_line`.
-TEXT_OVERRIDES: dict[str, str] = {k.replace("{M}", _NAME): v for k, v in {
-    "(evidence tag carried over from /work/shared/{M}: S read, M from memory,":
-        "(bibliography keys in ../bibliography.yaml; evidence S read, M from memory,",
-    "{M} 2.6 caveats 1-5.":
-        "Known limits of the delta ratio: assumed normal values, a raised baseline HCO3, urinary ketoanion loss.",
-    "{M} 3.1 step 8 (from memory).":
-        "Urine chloride separates chloride-responsive from chloride-resistant metabolic alkalosis (common teaching, from memory).",
-    "{M} 3.1 step 8.":
-        "Common causes of metabolic alkalosis; urine chloride helps separate them (common teaching).",
-    "# Worked examples of {M} section 4.1 (E1-E10, E13-E31), evidence tags carried over.":
-        "# Worked examples from published tables, case studies and teaching cases (see ../../bibliography.yaml).",
-    "({M} 4.1 E10, from memory)": "(from memory)",
-    "strong ion gap ({M} C17, C18).": "strong ion gap, with two worked check examples.",
-    "so the expectation applies {M} section 2:": "so the expectation applies the rulebook's published formulas:",
-}.items()}
+TEXT_OVERRIDES: dict[str, str] = {
+    k.replace("{M}", _NAME): v
+    for k, v in {
+        "(evidence tag carried over from /work/shared/{M}: S read, M from memory,": "(bibliography keys in ../bibliography.yaml; evidence S read, M from memory,",
+        "{M} 2.6 caveats 1-5.": "Known limits of the delta ratio: assumed normal values, a raised baseline HCO3, urinary ketoanion loss.",
+        "{M} 3.1 step 8 (from memory).": "Urine chloride separates chloride-responsive from chloride-resistant metabolic alkalosis (common teaching, from memory).",
+        "{M} 3.1 step 8.": "Common causes of metabolic alkalosis; urine chloride helps separate them (common teaching).",
+        "# Worked examples of {M} section 4.1 (E1-E10, E13-E31), evidence tags carried over.": "# Worked examples from published tables, case studies and teaching cases (see ../../bibliography.yaml).",
+        "({M} 4.1 E10, from memory)": "(from memory)",
+        "strong ion gap ({M} C17, C18).": "strong ion gap, with two worked check examples.",
+        "so the expectation applies {M} section 2:": "so the expectation applies the rulebook's published formulas:",
+    }.items()
+}
 
-_RECONSTRUCTED = re.compile(r"reconstructed|values only|(?:answers?|follow-up) not captured|\(8 h sample", re.I)
+_RECONSTRUCTED = re.compile(
+    r"reconstructed|values only|(?:answers?|follow-up) not captured|\(8 h sample", re.I
+)
 
 
 def find_keys(text: str) -> list[str]:
@@ -220,9 +328,14 @@ def dossier_refs(text: str) -> tuple[str, list[str], list[str], str]:
         words: list[str] = []
         if span.startswith("(") and not ids:
             return span
-        for letter, desc in (("A", "Henderson-Hasselbalch consistency check"), ("C", "Henderson [H+] consistency check")):
+        for letter, desc in (
+            ("A", "Henderson-Hasselbalch consistency check"),
+            ("C", "Henderson [H+] consistency check"),
+        ):
             if re.search(rf"check {letter}\b", span):
-                keys.extend(k for k in (["nccls1994"] if letter == "A" else ["kassirer1965"]) if k not in keys)
+                keys.extend(
+                    k for k in (["nccls1994"] if letter == "A" else ["kassirer1965"]) if k not in keys
+                )
                 words.append(desc)
         for i in ids:
             if i in CHECKS:
@@ -230,7 +343,10 @@ def dossier_refs(text: str) -> tuple[str, list[str], list[str], str]:
                 keys.extend(k for k in ks if k not in keys)
                 if desc not in words:
                     words.append(desc)
-        for sec in re.findall(r"(?<![\w.])(\d+(?:\.\d+)?)(?![\w.])", re.sub(r"\b(?:item|step|check|caveat|point)\s+\w+", "", span)):
+        for sec in re.findall(
+            r"(?<![\w.])(\d+(?:\.\d+)?)(?![\w.])",
+            re.sub(r"\b(?:item|step|check|caveat|point)\s+\w+", "", span),
+        ):
             if sec in TOPICS:
                 section_keys.extend(k for k in TOPICS[sec][0] if k not in section_keys)
                 topics.append(TOPICS[sec][1])
@@ -245,10 +361,22 @@ def clean_note(text: str) -> str:
 
 
 def _tidy(out: str) -> str:
-    for a, b in ((r"\(\s*[:;,]\s*", "("), (r"\s*[:;,]\s*\)", ")"), (r"\(\s*\)", ""), (r"\s+\)", ")"),
-                 (r"\(\s+", "("), (r"\s*;\s*;", ";"), (r"\s{2,}", " "), (r"\s+([,;:.])", r"\1"),
-                 (r"^[\s;:,]+|[\s;:,]+$", ""), (r"\(\s*(?:and|,)\s*", "("), (r"\s+(?:in|from)$", ""),
-                 (r"^:\s*", ""), (r";\s*\(([^()]*)\)$", r"; \1"), (r",\s*\(", " (")):
+    for a, b in (
+        (r"\(\s*[:;,]\s*", "("),
+        (r"\s*[:;,]\s*\)", ")"),
+        (r"\(\s*\)", ""),
+        (r"\s+\)", ")"),
+        (r"\(\s+", "("),
+        (r"\s*;\s*;", ";"),
+        (r"\s{2,}", " "),
+        (r"\s+([,;:.])", r"\1"),
+        (r"^[\s;:,]+|[\s;:,]+$", ""),
+        (r"\(\s*(?:and|,)\s*", "("),
+        (r"\s+(?:in|from)$", ""),
+        (r"^:\s*", ""),
+        (r";\s*\(([^()]*)\)$", r"; \1"),
+        (r",\s*\(", " ("),
+    ):
         out = re.sub(a, b, out)
     return out.strip()
 
@@ -345,6 +473,7 @@ def _unquote(s: str) -> str:
 
 def _parse_flow_list(text: str) -> list[str] | None:
     import yaml
+
     try:
         value = yaml.safe_load(text)
     except yaml.YAMLError:
@@ -354,13 +483,18 @@ def _parse_flow_list(text: str) -> list[str] | None:
 
 def rewrite(text: str, problems: list[str], where: str) -> str:
     """The file's text with every old-form citation rewritten (new-form text is left alone)."""
+
     def param(m: re.Match[str]) -> str:
         cite, ev = _unquote(m.group(1)), m.group(2)
         keys, ev2, note, prob = convert(cite, ev, for_case=False)
         if prob:
             problems.append(f"{where}: {prob}")
             return m.group(0)
-        parts = ([f"ref: {_refs(keys)}"] if keys else []) + [f"evidence: {ev2}"] + ([f"note: {_q(note)}"] if note else [])
+        parts = (
+            ([f"ref: {_refs(keys)}"] if keys else [])
+            + [f"evidence: {ev2}"]
+            + ([f"note: {_q(note)}"] if note else [])
+        )
         return "source: {" + ", ".join(parts) + "}"
 
     def case(m: re.Match[str]) -> str:
@@ -369,7 +503,11 @@ def rewrite(text: str, problems: list[str], where: str) -> str:
         if prob:
             problems.append(f"{where}: {prob}")
             return m.group(0)
-        parts = [f"tag: {tag2}"] + ([f"ref: {_refs(keys)}"] if keys else []) + ([f"note: {_q(note)}"] if note else [])
+        parts = (
+            [f"tag: {tag2}"]
+            + ([f"ref: {_refs(keys)}"] if keys else [])
+            + ([f"note: {_q(note)}"] if note else [])
+        )
         return "evidence: {" + ", ".join(parts) + "}"
 
     text = _SOURCE.sub(param, text)
@@ -380,7 +518,7 @@ def rewrite(text: str, problems: list[str], where: str) -> str:
         items = _parse_flow_list(m.group(1)) if m else None
         if m and items is not None and any(not re.fullmatch(r"[a-z][a-z0-9_]*", i) for i in items):
             new = convert_references(items)
-            line = line[:m.start(1)] + "[" + ", ".join(new) + "]" + line[m.end(1):]
+            line = line[: m.start(1)] + "[" + ", ".join(new) + "]" + line[m.end(1) :]
         out_lines.append(scrub_line(line) if _NAME in line else line)
     return "".join(out_lines)
 
@@ -390,8 +528,13 @@ def scrub_line(line: str) -> str:
     for old, new in TEXT_OVERRIDES.items():
         line = line.replace(old, new)
     line = _DOSSIER.sub(lambda m: dossier_refs(m.group(0))[0], line)
-    for a, b in ((r"\(\s*[;,]\s*", "("), (r"\s*[;,]\s*\)", ")"), (r"\s*\(\s*\)", ""), (r" +\.(?=[\s\"]|$)", "."),
-                 (r"\(\s*(?:and|,)\s*", "(")):
+    for a, b in (
+        (r"\(\s*[;,]\s*", "("),
+        (r"\s*[;,]\s*\)", ")"),
+        (r"\s*\(\s*\)", ""),
+        (r" +\.(?=[\s\"]|$)", "."),
+        (r"\(\s*(?:and|,)\s*", "("),
+    ):
         line = re.sub(a, b, line)
     return line
 
@@ -410,7 +553,9 @@ def main(argv: list[str] | None = None) -> int:
             changed += 1
             if not args.check:
                 path.write_text(new, encoding="utf-8")
-        print(f"{path}: {'would change' if args.check and new != old else 'rewritten' if new != old else 'unchanged'}")
+        print(
+            f"{path}: {'would change' if args.check and new != old else 'rewritten' if new != old else 'unchanged'}"
+        )
     for p in problems:
         print("unresolved: " + p, file=sys.stderr)
     return 1 if problems or (args.check and changed) else 0

@@ -19,8 +19,8 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "engine"))
 
 import gasrules  # noqa: E402
-from gasrules.verification.fuzzing import random_case  # noqa: E402
 from gasrules.rulebook.schema import validate_instance  # noqa: E402
+from gasrules.verification.fuzzing import random_case  # noqa: E402
 
 
 def main() -> int:
@@ -29,25 +29,34 @@ def main() -> int:
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--validate-every", type=int, default=100)
     args = ap.parse_args()
-    books = [gasrules.load_rulebook(), gasrules.load_rulebook(ROOT / "tests" / "data" / "mini" / "rulebook.yaml")]
+    books = [
+        gasrules.load_rulebook(),
+        gasrules.load_rulebook(ROOT / "tests" / "data" / "mini" / "rulebook.yaml"),
+    ]
     rng = random.Random(args.seed)
     counts = {"cases": 0, "exceptions": 0, "not_strict": 0, "unstable": 0, "validated": 0, "invalid": 0}
     statuses: dict[str, int] = {}
     start = time.perf_counter()
     for i in range(args.n):
         rb = books[0] if i % 4 else books[1]
-        names = sorted(n for n in rb.inputs if n not in {s.fallback_marks for s in rb.inputs.values()})  # engine-set flags aside
-        case = random_case(rng, names, lambda n, rb=rb: [rb.inputs[n].unit, *rb.inputs[n].alternatives], rb.inputs)
+        names = sorted(
+            n for n in rb.inputs if n not in {s.fallback_marks for s in rb.inputs.values()}
+        )  # engine-set flags aside
+        case = random_case(
+            rng, names, lambda n, rb=rb: [rb.inputs[n].unit, *rb.inputs[n].alternatives], rb.inputs
+        )
         counts["cases"] += 1
         try:
             result = gasrules.interpret(rb, case)
             again = gasrules.interpret(rb, case)
-        except Exception as exc:  # noqa: BLE001
+        except Exception as exc:
             counts["exceptions"] += 1
             print(f"case {i}: {type(exc).__name__}: {exc}", file=sys.stderr)
             continue
         try:
-            if json.dumps(result, allow_nan=False, sort_keys=True) != json.dumps(again, allow_nan=False, sort_keys=True):
+            if json.dumps(result, allow_nan=False, sort_keys=True) != json.dumps(
+                again, allow_nan=False, sort_keys=True
+            ):
                 counts["unstable"] += 1
         except ValueError:
             counts["not_strict"] += 1
@@ -61,9 +70,11 @@ def main() -> int:
         if (i + 1) % 100_000 == 0:
             print(f"{i + 1} cases, {time.perf_counter() - start:.0f} s, {counts}", flush=True)
     elapsed = time.perf_counter() - start
-    print(f"cases: {counts['cases']}; uncaught exceptions: {counts['exceptions']}; not strict JSON: "
-          f"{counts['not_strict']}; different on repeat: {counts['unstable']}; schema-checked: {counts['validated']}, "
-          f"invalid: {counts['invalid']}; {elapsed:.1f} s ({counts['cases'] / elapsed:,.0f} cases/s)")
+    print(
+        f"cases: {counts['cases']}; uncaught exceptions: {counts['exceptions']}; not strict JSON: "
+        f"{counts['not_strict']}; different on repeat: {counts['unstable']}; schema-checked: {counts['validated']}, "
+        f"invalid: {counts['invalid']}; {elapsed:.1f} s ({counts['cases'] / elapsed:,.0f} cases/s)"
+    )
     print("statuses: " + ", ".join(f"{k} {v}" for k, v in sorted(statuses.items())))
     return 1 if counts["exceptions"] or counts["not_strict"] or counts["unstable"] or counts["invalid"] else 0
 

@@ -20,8 +20,11 @@ sys.path.insert(0, str(ROOT / "engine"))
 
 from gasrules.verification.fuzzing import mutate_rulebook, run_rulebook  # noqa: E402
 
-SEEDS = [ROOT / "tests" / "data" / "fuzz" / "rulebook.yaml", ROOT / "tests" / "data" / "release" / "rulebook.yaml",
-         ROOT / "tests" / "data" / "mini" / "rulebook.yaml"]
+SEEDS = [
+    ROOT / "tests" / "data" / "fuzz" / "rulebook.yaml",
+    ROOT / "tests" / "data" / "release" / "rulebook.yaml",
+    ROOT / "tests" / "data" / "mini" / "rulebook.yaml",
+]
 
 
 def main() -> int:
@@ -48,7 +51,10 @@ def main() -> int:
                     args.out.mkdir(parents=True, exist_ok=True)
                     (args.out / f"crash-{i}.yaml").write_bytes(path.read_bytes())
             if (i + 1) % 10_000 == 0:
-                print(f"{i + 1} variants, {crashes} uncaught exceptions, {time.perf_counter() - start:.0f} s", flush=True)
+                print(
+                    f"{i + 1} variants, {crashes} uncaught exceptions, {time.perf_counter() - start:.0f} s",
+                    flush=True,
+                )
     print(f"variants: {args.n}; uncaught exceptions: {crashes}; {time.perf_counter() - start:.1f} s")
     for what, count in sorted(outcomes.items(), key=lambda kv: -kv[1]):
         print(f"  {what:20s} {count}")

@@ -26,10 +26,11 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--out", type=Path, default=ROOT / "docs" / "fhir" / "codesystems.json")
     args = ap.parse_args(argv)
     bundle = codesystem_bundle(gasrules.load_rulebook(), args.base)
-    args.out.write_text(json.dumps(bundle, indent=1, ensure_ascii=False) + "\n",
-                        encoding="utf-8")
-    print(f"wrote {args.out}: " + ", ".join(
-        f"{e['resource']['id']} ({e['resource']['count']})" for e in bundle["entry"]))
+    args.out.write_text(json.dumps(bundle, indent=1, ensure_ascii=False) + "\n", encoding="utf-8")
+    print(
+        f"wrote {args.out}: "
+        + ", ".join(f"{e['resource']['id']} ({e['resource']['count']})" for e in bundle["entry"])
+    )
     return 0
 
 

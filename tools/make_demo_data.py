@@ -30,25 +30,61 @@ import csv
 import json
 import sys
 import time
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable, Iterator, TextIO
+from typing import Any, TextIO
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "engine"))
 
-from gasrules.verification.casegen import (  # noqa: E402  (path set just above for a source checkout)
-    HAGMA, MALK, NAGMA, Scenario, generate_corpus, generate_labelled, to_canonical,
+from gasrules.verification.casegen import (
+    HAGMA,
+    MALK,
+    NAGMA,
+    Scenario,
+    generate_corpus,
+    generate_labelled,
+    to_canonical,
 )
 
 CONTEXT_COLUMNS = ("case_id", "ward", "collected_at", "record_number")
 CSV_ANALYTES: tuple[str, ...] = (
-    "sample_type", "chronicity", "age", "pregnant",
-    "ph", "pco2", "po2", "hco3", "tco2", "base_excess", "so2", "hb",
-    "na", "k", "cl", "albumin", "lactate", "glucose", "urea", "creatinine", "osmolality",
-    "ethanol", "phosphate", "ionized_calcium", "magnesium",
-    "fio2", "peep", "etco2", "minute_ventilation", "predicted_body_weight",
-    "barometric_pressure", "temperature", "urine_na", "urine_k", "urine_cl",
+    "sample_type",
+    "chronicity",
+    "age",
+    "pregnant",
+    "ph",
+    "pco2",
+    "po2",
+    "hco3",
+    "tco2",
+    "base_excess",
+    "so2",
+    "hb",
+    "na",
+    "k",
+    "cl",
+    "albumin",
+    "lactate",
+    "glucose",
+    "urea",
+    "creatinine",
+    "osmolality",
+    "ethanol",
+    "phosphate",
+    "ionized_calcium",
+    "magnesium",
+    "fio2",
+    "peep",
+    "etco2",
+    "minute_ventilation",
+    "predicted_body_weight",
+    "barometric_pressure",
+    "temperature",
+    "urine_na",
+    "urine_k",
+    "urine_cl",
 )
 CSV_HEADER = CONTEXT_COLUMNS + CSV_ANALYTES
 # Decimals for values converted to the canonical unit (analyser precision).
@@ -72,8 +108,9 @@ def _cell(name: str, value: Any) -> str:
 def csv_row(case: dict[str, Any]) -> list[str]:
     """A valid generated case as a CSV row in canonical units."""
     ctx = case["context"]
-    return ([case["case_id"], ctx["ward"], ctx["collected_at"], ctx["record_number"]]
-            + [_cell(name, case.get(name)) for name in CSV_ANALYTES])
+    return [case["case_id"], ctx["ward"], ctx["collected_at"], ctx["record_number"]] + [
+        _cell(name, case.get(name)) for name in CSV_ANALYTES
+    ]
 
 
 def malformed_csv_row(kind: str, key: str, case: dict[str, Any]) -> list[str]:
@@ -88,7 +125,7 @@ def malformed_csv_row(kind: str, key: str, case: dict[str, Any]) -> list[str]:
         return row[:col]
     if kind == "bad_unit":
         row[col] = f"{bad['value']} {bad['unit']}"
-    else:                                   # text_value, out_of_range
+    else:  # text_value, out_of_range
         row[col] = str(bad)
     return row
 
@@ -105,8 +142,9 @@ def _open_out(out: str) -> Iterator[TextIO]:
         yield f
 
 
-def write_corpus(out: TextIO, n: int, seed: int, fmt: str, mix: str,
-                 malformed_share: float) -> tuple[int, int]:
+def write_corpus(
+    out: TextIO, n: int, seed: int, fmt: str, mix: str, malformed_share: float
+) -> tuple[int, int]:
     """Stream ``n`` rows to ``out``; return (rows written, malformed rows)."""
     written = malformed = 0
     rows = generate_corpus(n, seed, mix=mix, malformed_share=malformed_share)
@@ -134,11 +172,19 @@ def write_corpus(out: TextIO, n: int, seed: int, fmt: str, mix: str,
 def _corpus_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--n", type=int, default=100_000, help="number of rows (default 100000)")
     p.add_argument("--seed", type=int, default=7, help="generator seed (default 7)")
-    p.add_argument("--format", choices=("csv", "jsonl"), default=None,
-                   help="csv or jsonl (default: from the --out suffix, .csv -> csv, else jsonl)")
+    p.add_argument(
+        "--format",
+        choices=("csv", "jsonl"),
+        default=None,
+        help="csv or jsonl (default: from the --out suffix, .csv -> csv, else jsonl)",
+    )
     p.add_argument("--mix", choices=("hospital", "icu", "ed", "ward"), default="hospital")
-    p.add_argument("--malformed-share", type=float, default=0.001,
-                   help="share of deliberately malformed rows (default 0.001)")
+    p.add_argument(
+        "--malformed-share",
+        type=float,
+        default=0.001,
+        help="share of deliberately malformed rows (default 0.001)",
+    )
     p.add_argument("--out", required=True, help="output file, or - for stdout")
 
 
@@ -147,18 +193,18 @@ def _corpus_run(args: argparse.Namespace) -> int:
         print(f"--n must be 0 or more, got {args.n}", file=sys.stderr)
         return 2
     if not 0.0 <= args.malformed_share <= 1.0:
-        print(f"--malformed-share must be between 0 and 1, got {args.malformed_share}",
-              file=sys.stderr)
+        print(f"--malformed-share must be between 0 and 1, got {args.malformed_share}", file=sys.stderr)
         return 2
-    if args.format is None:   # the file name says the format: never JSON Lines in a .csv
+    if args.format is None:  # the file name says the format: never JSON Lines in a .csv
         args.format = "csv" if str(args.out).lower().endswith(".csv") else "jsonl"
     t0 = time.perf_counter()
     with _open_out(args.out) as f:
-        written, malformed = write_corpus(f, args.n, args.seed, args.format, args.mix,
-                                          args.malformed_share)
+        written, malformed = write_corpus(f, args.n, args.seed, args.format, args.mix, args.malformed_share)
     dt = time.perf_counter() - t0
-    print(f"wrote {written} invented cases ({malformed} deliberately malformed) to {args.out} "
-          f"in {dt:.1f} s", file=sys.stderr)
+    print(
+        f"wrote {written} invented cases ({malformed} deliberately malformed) to {args.out} in {dt:.1f} s",
+        file=sys.stderr,
+    )
     return 0
 
 
@@ -177,32 +223,56 @@ def _plain(s: Scenario) -> bool:
 
 DEMO_WANTS: tuple[_Want, ...] = (
     ("normal values", lambda s, c: _plain(s) and s.combination == "none" and s.albumin),
-    ("high-gap acidosis with respiratory compensation",
-     lambda s, c: _plain(s) and s.combination == f"none+{HAGMA}" and s.albumin
-     and "lactate" in c),
-    ("acute respiratory acidosis", lambda s, c: _plain(s) and s.electrolytes
-     and s.combination == "respiratory_acidosis/acute"),
-    ("chronic respiratory acidosis in kPa", lambda s, c: _clean(s) and s.kpa
-     and s.sample_type == "arterial" and s.combination == "respiratory_acidosis/chronic"
-     and c.get("chronicity") == "chronic"),
-    ("acute respiratory alkalosis", lambda s, c: _plain(s)
-     and s.combination == "respiratory_alkalosis/acute"),
-    ("mixed: high-gap acidosis with respiratory acidosis", lambda s, c: _plain(s) and s.albumin
-     and s.combination == f"respiratory_acidosis/acute+{HAGMA}"),
-    ("triple: high-gap acidosis, metabolic alkalosis, respiratory alkalosis",
-     lambda s, c: _plain(s) and s.albumin and s.respiratory == "respiratory_alkalosis"
-     and s.metabolic == (HAGMA, MALK)),
-    ("normal-gap acidosis", lambda s, c: _plain(s) and s.albumin
-     and s.combination == f"none+{NAGMA}"),
-    ("metabolic alkalosis", lambda s, c: _plain(s) and s.combination == f"none+{MALK}"
-     and "urine_cl" in c),
+    (
+        "high-gap acidosis with respiratory compensation",
+        lambda s, c: _plain(s) and s.combination == f"none+{HAGMA}" and s.albumin and "lactate" in c,
+    ),
+    (
+        "acute respiratory acidosis",
+        lambda s, c: _plain(s) and s.electrolytes and s.combination == "respiratory_acidosis/acute",
+    ),
+    (
+        "chronic respiratory acidosis in kPa",
+        lambda s, c: (
+            _clean(s)
+            and s.kpa
+            and s.sample_type == "arterial"
+            and s.combination == "respiratory_acidosis/chronic"
+            and c.get("chronicity") == "chronic"
+        ),
+    ),
+    (
+        "acute respiratory alkalosis",
+        lambda s, c: _plain(s) and s.combination == "respiratory_alkalosis/acute",
+    ),
+    (
+        "mixed: high-gap acidosis with respiratory acidosis",
+        lambda s, c: _plain(s) and s.albumin and s.combination == f"respiratory_acidosis/acute+{HAGMA}",
+    ),
+    (
+        "triple: high-gap acidosis, metabolic alkalosis, respiratory alkalosis",
+        lambda s, c: (
+            _plain(s)
+            and s.albumin
+            and s.respiratory == "respiratory_alkalosis"
+            and s.metabolic == (HAGMA, MALK)
+        ),
+    ),
+    ("normal-gap acidosis", lambda s, c: _plain(s) and s.albumin and s.combination == f"none+{NAGMA}"),
+    ("metabolic alkalosis", lambda s, c: _plain(s) and s.combination == f"none+{MALK}" and "urine_cl" in c),
     ("venous sample", lambda s, c: _clean(s) and s.sample_type == "venous" and s.electrolytes),
-    ("high-gap acidosis, albumin missing", lambda s, c: _plain(s) and s.electrolytes
-     and not s.albumin and s.combination == f"none+{HAGMA}"),
-    ("ventilated ICU patient", lambda s, c: _clean(s) and s.ventilated and s.electrolytes
-     and s.sample_type == "arterial"),
-    ("inconsistent values (transcription-like error)",
-     lambda s, c: s.inconsistent is not None and s.out_of_scope is None),
+    (
+        "high-gap acidosis, albumin missing",
+        lambda s, c: _plain(s) and s.electrolytes and not s.albumin and s.combination == f"none+{HAGMA}",
+    ),
+    (
+        "ventilated ICU patient",
+        lambda s, c: _clean(s) and s.ventilated and s.electrolytes and s.sample_type == "arterial",
+    ),
+    (
+        "inconsistent values (transcription-like error)",
+        lambda s, c: s.inconsistent is not None and s.out_of_scope is None,
+    ),
 )
 
 
@@ -229,8 +299,11 @@ def demo_cases(seed: int = DEMO_SEED, limit: int = 200_000) -> list[tuple[str, d
 
 def _demo_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=int, default=DEMO_SEED, help=f"default {DEMO_SEED}")
-    p.add_argument("--out", default=str(Path(__file__).resolve().parent / "demo"),
-                   help="directory for cases.jsonl and case.json (default tools/demo)")
+    p.add_argument(
+        "--out",
+        default=str(Path(__file__).resolve().parent / "demo"),
+        help="directory for cases.jsonl and case.json (default tools/demo)",
+    )
 
 
 def _demo_run(args: argparse.Namespace) -> int:
@@ -240,12 +313,14 @@ def _demo_run(args: argparse.Namespace) -> int:
     with (out / "cases.jsonl").open("w", encoding="utf-8", newline="\n") as f:
         for _, case in picked:
             f.write(json.dumps(case, ensure_ascii=False) + "\n")
-    (out / "case.json").write_text(json.dumps(picked[1][1], indent=2, ensure_ascii=False)
-                                   + "\n", encoding="utf-8")
+    (out / "case.json").write_text(
+        json.dumps(picked[1][1], indent=2, ensure_ascii=False) + "\n", encoding="utf-8"
+    )
     for label, case in picked:
         print(f"{case['case_id']}  {label}", file=sys.stderr)
-    print(f"wrote {out / 'cases.jsonl'} ({len(picked)} invented cases) and {out / 'case.json'}",
-          file=sys.stderr)
+    print(
+        f"wrote {out / 'cases.jsonl'} ({len(picked)} invented cases) and {out / 'case.json'}", file=sys.stderr
+    )
     return 0
 
 
@@ -257,9 +332,11 @@ def _demo_run(args: argparse.Namespace) -> int:
 # Inputs without a LOINC code in the catalogue (chronicity, pregnant, ventilator settings) have
 # no place in these messages and are left out (listed in generated/README.txt).
 UCUM = "http://unitsofmeasure.org"
-_SPECIMEN_SNOMED = {"arterial": ("122552005", "Arterial blood specimen"),
-                    "venous": ("122555007", "Venous blood specimen"),
-                    "capillary": ("122554006", "Capillary blood specimen")}
+_SPECIMEN_SNOMED = {
+    "arterial": ("122552005", "Arterial blood specimen"),
+    "venous": ("122555007", "Venous blood specimen"),
+    "capillary": ("122554006", "Capillary blood specimen"),
+}
 _UNSPECIFIED_SPECIMEN = ("119297000", "Blood specimen")
 
 
@@ -282,7 +359,9 @@ def _loinc_for(name: str, spec: Any, sample: str | None) -> str | None:
     return codes[0]
 
 
-def message_items(case: dict[str, Any], catalog: Any) -> tuple[list[tuple[str, str, str, Any, str]], list[str]]:
+def message_items(
+    case: dict[str, Any], catalog: Any
+) -> tuple[list[tuple[str, str, str, Any, str]], list[str]]:
     """[(input, loinc, label, value, UCUM unit)] for the inputs a message can carry, and the
     names of those it cannot."""
     sample = case.get("sample_type")
@@ -319,34 +398,65 @@ def fhir_bundle(case: dict[str, Any], catalog: Any) -> dict[str, Any]:
     snomed, text = _SPECIMEN_SNOMED.get(sample or "", _UNSPECIFIED_SPECIMEN)
     panel = next((c for c, s in PANEL_SPECIMEN.items() if s == sample), "24338-6")
     entries = [
-        {"fullUrl": patient, "resource": {"resourceType": "Patient", "id": f"pt-{cid}",
-                                          "identifier": [{"system": "urn:example:demo-record",
-                                                          "value": ctx["record_number"]}]}},
-        {"fullUrl": specimen, "resource": {"resourceType": "Specimen", "id": f"spec-{cid}", "type": {
-            "coding": [{"system": "http://snomed.info/sct", "code": snomed, "display": text}]}}},
+        {
+            "fullUrl": patient,
+            "resource": {
+                "resourceType": "Patient",
+                "id": f"pt-{cid}",
+                "identifier": [{"system": "urn:example:demo-record", "value": ctx["record_number"]}],
+            },
+        },
+        {
+            "fullUrl": specimen,
+            "resource": {
+                "resourceType": "Specimen",
+                "id": f"spec-{cid}",
+                "type": {"coding": [{"system": "http://snomed.info/sct", "code": snomed, "display": text}]},
+            },
+        },
     ]
     members = []
     for n, (name, code, label, value, unit) in enumerate(items, start=3):
         url = _uuid(cid, n)
         members.append({"reference": url})
-        entries.append({"fullUrl": url, "resource": {
-            "resourceType": "Observation", "id": f"{cid}-{name.replace('_', '-')}", "status": "final",
-            "code": {"coding": [{"system": "http://loinc.org", "code": code, "display": label}]},
-            "subject": {"reference": patient}, "effectiveDateTime": when,
-            "specimen": {"reference": specimen},
-            "valueQuantity": {"value": value, "unit": unit, "system": UCUM, "code": unit}}})
-    entries.insert(2, {"fullUrl": _uuid(cid, 2), "resource": {
-        "resourceType": "Observation", "id": f"{cid}-panel", "status": "final",
-        "code": {"coding": [{"system": "http://loinc.org", "code": panel, "display": "Gas panel"}]},
-        "subject": {"reference": patient}, "effectiveDateTime": when,
-        "specimen": {"reference": specimen}, "hasMember": members}})
+        entries.append(
+            {
+                "fullUrl": url,
+                "resource": {
+                    "resourceType": "Observation",
+                    "id": f"{cid}-{name.replace('_', '-')}",
+                    "status": "final",
+                    "code": {"coding": [{"system": "http://loinc.org", "code": code, "display": label}]},
+                    "subject": {"reference": patient},
+                    "effectiveDateTime": when,
+                    "specimen": {"reference": specimen},
+                    "valueQuantity": {"value": value, "unit": unit, "system": UCUM, "code": unit},
+                },
+            }
+        )
+    entries.insert(
+        2,
+        {
+            "fullUrl": _uuid(cid, 2),
+            "resource": {
+                "resourceType": "Observation",
+                "id": f"{cid}-panel",
+                "status": "final",
+                "code": {"coding": [{"system": "http://loinc.org", "code": panel, "display": "Gas panel"}]},
+                "subject": {"reference": patient},
+                "effectiveDateTime": when,
+                "specimen": {"reference": specimen},
+                "hasMember": members,
+            },
+        },
+    )
     return {"resourceType": "Bundle", "id": f"demo-{cid}", "type": "collection", "entry": entries}
 
 
 def oru_message(case: dict[str, Any], catalog: Any) -> str:
     """An HL7 v2.5.1 ORU^R01 (segments separated by CR): MSH, PID, OBR, SPM and one OBX per value."""
-    from gasrules.integration.standard_codes import PANEL_SPECIMEN
     from gasrules.integration.hl7v2 import escape
+    from gasrules.integration.standard_codes import PANEL_SPECIMEN
 
     cid, ctx = case["case_id"], case["context"]
     items, _ = message_items(case, catalog)
@@ -398,8 +508,11 @@ def _fhir_model_check(bundle: dict[str, Any], cid: str) -> None:
 
 def _messages_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=int, default=DEMO_SEED, help=f"default {DEMO_SEED}")
-    p.add_argument("--out", default=str(Path(__file__).resolve().parent / "demo" / "generated"),
-                   help="directory for fhir/*.json and hl7/*.hl7 (default tools/demo/generated)")
+    p.add_argument(
+        "--out",
+        default=str(Path(__file__).resolve().parent / "demo" / "generated"),
+        help="directory for fhir/*.json and hl7/*.hl7 (default tools/demo/generated)",
+    )
 
 
 def _messages_run(args: argparse.Namespace) -> int:
@@ -417,7 +530,10 @@ def _messages_run(args: argparse.Namespace) -> int:
         cid = case["case_id"]
         bundle, message = fhir_bundle(case, catalog), oru_message(case, catalog)
         want = _expressible(case, catalog)
-        for kind, read in (("FHIR", case_from_fhir(bundle, catalog)), ("HL7", case_from_hl7(message, catalog))):
+        for kind, read in (
+            ("FHIR", case_from_fhir(bundle, catalog)),
+            ("HL7", case_from_hl7(message, catalog)),
+        ):
             if read.issues:
                 raise RuntimeError(f"{cid} {kind}: the adapter reports {[str(i) for i in read.issues]}")
             _same_inputs(rb, want, {k: v for k, v in read.case.items() if k != "case_id"}, f"{cid} {kind}")
@@ -426,15 +542,22 @@ def _messages_run(args: argparse.Namespace) -> int:
         (out / "hl7" / f"{cid}.hl7").write_bytes(message.encode("utf-8"))
         stream.append(message)
         _, left_out = message_items(case, catalog)
-        notes.append(f"{cid}  {label}" + (f"  (not in the messages: {', '.join(left_out)})" if left_out else ""))
+        notes.append(
+            f"{cid}  {label}" + (f"  (not in the messages: {', '.join(left_out)})" if left_out else "")
+        )
     (out / "hl7" / "all.hl7").write_bytes("".join(stream).encode("utf-8"))
     (out / "README.txt").write_text(
         "Invented demo messages (no real patient), written by tools/make_demo_data.py messages from\n"
         "the same seeded generator as the corpus (gasrules.verification.casegen) and the quick-start cases.\n"
         "Each file was read back through gasrules.integration.fhir / gasrules.integration.hl7v2 and gave the same inputs.\n\n"
-        + "\n".join(notes) + "\n", encoding="utf-8")
-    print(f"wrote {len(notes)} FHIR bundles and {len(notes)} HL7 v2 messages (+ all.hl7) under {out}",
-          file=sys.stderr)
+        + "\n".join(notes)
+        + "\n",
+        encoding="utf-8",
+    )
+    print(
+        f"wrote {len(notes)} FHIR bundles and {len(notes)} HL7 v2 messages (+ all.hl7) under {out}",
+        file=sys.stderr,
+    )
     return 0
 
 
@@ -447,20 +570,23 @@ class Subcommand:
 
 
 SUBCOMMANDS: dict[str, Subcommand] = {
-    "corpus": Subcommand("stream a large invented corpus as CSV or JSON Lines",
-                         _corpus_arguments, _corpus_run),
-    "demo": Subcommand("write the shipped quick-start files (tools/demo)",
-                       _demo_arguments, _demo_run),
-    "messages": Subcommand("write the quick-start cases as FHIR R4 bundles and HL7 v2 ORU^R01 "
-                           "messages (tools/demo/generated), each checked by reading it back",
-                           _messages_arguments, _messages_run),
+    "corpus": Subcommand(
+        "stream a large invented corpus as CSV or JSON Lines", _corpus_arguments, _corpus_run
+    ),
+    "demo": Subcommand("write the shipped quick-start files (tools/demo)", _demo_arguments, _demo_run),
+    "messages": Subcommand(
+        "write the quick-start cases as FHIR R4 bundles and HL7 v2 ORU^R01 "
+        "messages (tools/demo/generated), each checked by reading it back",
+        _messages_arguments,
+        _messages_run,
+    ),
 }
 
 
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
-        prog="make_demo_data.py",
-        description="Write invented blood gas demo data (no real patients).")
+        prog="make_demo_data.py", description="Write invented blood gas demo data (no real patients)."
+    )
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     for name, cmd in SUBCOMMANDS.items():
         cmd.add_arguments(sub.add_parser(name, help=cmd.help, description=cmd.help))

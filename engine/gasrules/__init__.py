@@ -34,8 +34,17 @@ if TYPE_CHECKING:  # pragma: no cover
     from gasrules.rulebook.compiler import list_cutpoints
     from gasrules.tables.pool import interpret_many
 
-__all__ = ["RulebookError", "Runtime", "RuntimeRefusal", "__version__", "check_rulebook", "interpret",
-           "interpret_many", "list_cutpoints", "load_rulebook"]
+__all__ = [
+    "RulebookError",
+    "Runtime",
+    "RuntimeRefusal",
+    "__version__",
+    "check_rulebook",
+    "interpret",
+    "interpret_many",
+    "list_cutpoints",
+    "load_rulebook",
+]
 
 # public name -> the module that defines it, imported on first use (importing gasrules stays cheap)
 _HOMES = {

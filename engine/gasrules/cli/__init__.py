@@ -13,35 +13,68 @@ import sys
 # command -> (module, one-line help). Order is the order of `gasrules --help`.
 COMMANDS: dict[str, tuple[str, str]] = {
     "interpret": ("gasrules.cli.commands.interpret", "Interpret one or more blood gas cases."),
-    "check": ("gasrules.cli.commands.check", "Check a rulebook: schema, names, units, cycles; every problem with file:line:column."),
-    "verify": ("gasrules.cli.commands.verify", "Run a rulebook's validation suite with rule and threshold coverage."),
+    "check": (
+        "gasrules.cli.commands.check",
+        "Check a rulebook: schema, names, units, cycles; every problem with file:line:column.",
+    ),
+    "verify": (
+        "gasrules.cli.commands.verify",
+        "Run a rulebook's validation suite with rule and threshold coverage.",
+    ),
     "diff": ("gasrules.cli.commands.diff", "Semantic diff of two rulebooks, with each change classed."),
-    "impact": ("gasrules.cli.commands.impact", "Replay a corpus under two rulebooks and report what would change."),
-    "probes": ("gasrules.cli.commands.probes", "Boundary cases around changed thresholds, under both rulebooks."),
-    "release": ("gasrules.cli.commands.release", "Approve a rulebook version after its suite passes; write the release manifest."),
+    "impact": (
+        "gasrules.cli.commands.impact",
+        "Replay a corpus under two rulebooks and report what would change.",
+    ),
+    "probes": (
+        "gasrules.cli.commands.probes",
+        "Boundary cases around changed thresholds, under both rulebooks.",
+    ),
+    "release": (
+        "gasrules.cli.commands.release",
+        "Approve a rulebook version after its suite passes; write the release manifest.",
+    ),
     "suspend": ("gasrules.cli.commands.suspend", "Suspend a rule or a rulebook, with a recorded reason."),
     "audit": ("gasrules.cli.commands.audit", "Verify or replay a decision log."),
-    "shadow": ("gasrules.cli.commands.shadow", "Interpret with the active and a candidate rulebook; record disagreements."),
+    "shadow": (
+        "gasrules.cli.commands.shadow",
+        "Interpret with the active and a candidate rulebook; record disagreements.",
+    ),
     "document": ("gasrules.cli.commands.document", "Render a rulebook for review (HTML and Markdown)."),
     "batch": ("gasrules.cli.commands.batch", "Interpret a CSV, JSON Lines or Parquet file row by row."),
     "serve": ("gasrules.cli.commands.serve", "HTTP service with a JSON API and CDS Hooks."),
-    "listen": ("gasrules.cli.commands.listen", "MLLP listener: HL7 v2 ORU^R01 in, results filed and forwarded, ACKs."),
+    "listen": (
+        "gasrules.cli.commands.listen",
+        "MLLP listener: HL7 v2 ORU^R01 in, results filed and forwarded, ACKs.",
+    ),
     "cutpoints": ("gasrules.cli.commands.cutpoints", "List every numeric threshold of every rule condition."),
 }
 
-_CAUTION = ("Decision support only: it supports, and never replaces, clinical judgement; "
-            "local laboratory ranges and protocols prevail.")
+_CAUTION = (
+    "Decision support only: it supports, and never replaces, clinical judgement; "
+    "local laboratory ranges and protocols prevail."
+)
 
 
 def _usage() -> str:
     width = max(map(len, COMMANDS))
-    lines = ["Usage: gasrules COMMAND [ARGS]...", "",
-             "Auditable blood gas interpretation driven by versioned YAML rulebooks.", "", "Commands:"]
+    lines = [
+        "Usage: gasrules COMMAND [ARGS]...",
+        "",
+        "Auditable blood gas interpretation driven by versioned YAML rulebooks.",
+        "",
+        "Commands:",
+    ]
     for name, (_module, text) in COMMANDS.items():
         lines.append(f"  {name.ljust(width)}  {text}")
-    lines += ["", "Run 'gasrules COMMAND --help' for a command's options.",
-              "Exit codes: 0 ok, 1 check failed, 2 usage, 3 inconsistent sample, 4 input rejected, "
-              "5 broken rulebook, 6 refused in strict mode.", "", _CAUTION]
+    lines += [
+        "",
+        "Run 'gasrules COMMAND --help' for a command's options.",
+        "Exit codes: 0 ok, 1 check failed, 2 usage, 3 inconsistent sample, 4 input rejected, "
+        "5 broken rulebook, 6 refused in strict mode.",
+        "",
+        _CAUTION,
+    ]
     return "\n".join(lines)
 
 

@@ -8,8 +8,8 @@ collected (``gasrules check`` shows them all, sorted) and raised together as a
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass, field
-from typing import Iterable
 
 # Stable codes. Never reuse a retired code for a new meaning.
 CODES: dict[str, str] = {

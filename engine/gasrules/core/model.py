@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any, Callable
+from typing import TYPE_CHECKING, Any
 
 from gasrules.core.errors import Location
 
@@ -15,7 +16,7 @@ if TYPE_CHECKING:  # the checked expression types are the rulebook layer's
 class InputSpec:
     name: str
     label: str
-    kind: str                                   # number | code | flag
+    kind: str  # number | code | flag
     unit: str = ""
     precision: int = 0
     plausible_min: float | None = None
@@ -25,8 +26,8 @@ class InputSpec:
     codes: tuple[str, ...] = ()
     default: Any = None
     location: Location = field(default_factory=Location)
-    fallback: str | None = None                 # derived value used when the input is not given
-    fallback_marks: str | None = None           # flag input the engine sets when it used the fallback
+    fallback: str | None = None  # derived value used when the input is not given
+    fallback_marks: str | None = None  # flag input the engine sets when it used the fallback
     fallback_location: Location = field(default_factory=Location)
 
 
@@ -42,9 +43,9 @@ class ParamSpec:
     rationale: str
     source: dict[str, str]
     label: str
-    location: Location                           # where the parameter was declared
-    set_by: Location                             # where its value was last set (base or overlay)
-    by_set_by: dict[str, Location] = field(default_factory=dict)   # code -> where by.values[code] was set
+    location: Location  # where the parameter was declared
+    set_by: Location  # where its value was last set (base or overlay)
+    by_set_by: dict[str, Location] = field(default_factory=dict)  # code -> where by.values[code] was set
 
     @property
     def is_choice(self) -> bool:
@@ -138,23 +139,23 @@ class CompiledRulebook:
     inputs: dict[str, InputSpec]
     parameters: dict[str, ParamSpec]
     derived: dict[str, DerivedSpec]
-    rules: list[RuleSpec]                  # evaluation order (active and suspended)
+    rules: list[RuleSpec]  # evaluation order (active and suspended)
     steps: dict[str, StepSpec]
     presentation: dict[str, Any]
     display_units: dict[str, tuple[str, int | None]]
-    plan: list[tuple[str, str]]            # ('derived', name) | ('rule', id) in evaluation order
-    value_names: tuple[str, ...]           # order of the value tuples the generated code returns
-    source: str                            # the generated Python source
+    plan: list[tuple[str, str]]  # ('derived', name) | ('rule', id) in evaluation order
+    value_names: tuple[str, ...]  # order of the value tuples the generated code returns
+    source: str  # the generated Python source
     sha256: str
     files: tuple[str, ...]
     cutpoints: tuple[CutPoint, ...]
     warnings: tuple[Any, ...] = ()
     engine_version: str = ""
-    bibliography: Any = None               # gasrules.rulebook.bibliography.Bibliography: the cited publications
-    sha256_v1: str = ""                     # identity under hash scheme 1 (releases made before scheme 2)
+    bibliography: Any = None  # gasrules.rulebook.bibliography.Bibliography: the cited publications
+    sha256_v1: str = ""  # identity under hash scheme 1 (releases made before scheme 2)
     _function: Callable[..., Any] | None = field(default=None, repr=False)
     _static: Any = field(default=None, repr=False)
-    _code: bytes | None = field(default=None, repr=False)   # marshalled code of `source` (same Python only)
+    _code: bytes | None = field(default=None, repr=False)  # marshalled code of `source` (same Python only)
 
     @property
     def id(self) -> str:

@@ -10,14 +10,15 @@ from __future__ import annotations
 
 import math
 import re
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any, Mapping
+from typing import Any
 
 from gasrules.core import units as U
-from gasrules.rulebook.codegen import FIRED, HALTED, MISSING, PLACEHOLDER, SKIPPED, link
-from gasrules.rulebook.expressions import round_at
 from gasrules.core.model import CompiledRulebook, reads_closure
 from gasrules.evaluation.trace import RuleTrace
+from gasrules.rulebook.codegen import FIRED, HALTED, MISSING, PLACEHOLDER, SKIPPED, link
+from gasrules.rulebook.expressions import round_at
 
 SCHEMA_VERSION = "1.1"
 NOT_ANALYTES = ("case_id", "context")
@@ -37,16 +38,18 @@ class Static:
     identity: dict[str, str]
     rule_traces: list[RuleTrace]
     value_index: dict[str, int]
-    reported: tuple[tuple[int, str, float, str], ...]       # (index, name, scale, unit)
+    reported: tuple[tuple[int, str, float, str], ...]  # (index, name, scale, unit)
     step_rules: dict[str, list[int]]
     conversions: dict[tuple[str, str], tuple[float, float]]
     known_units: frozenset[str]
     accepted_keys: str
     templates: dict[tuple[str, int], tuple[Any, ...]] = field(default_factory=dict)
-    value_needs: tuple[tuple[int, str, tuple[str, ...], tuple[str, ...]], ...] = ()  # (index, name, inputs, derived)
-    fallbacks: tuple[tuple[str, int, str], ...] = ()   # (input, index of its fallback value, flag it sets)
-    always_rules: frozenset[str] = frozenset()         # rules that run whatever else happens (critical values)
-    engine_set: dict[str, str] = field(default_factory=dict)   # flag set by the engine -> the input it marks
+    value_needs: tuple[
+        tuple[int, str, tuple[str, ...], tuple[str, ...]], ...
+    ] = ()  # (index, name, inputs, derived)
+    fallbacks: tuple[tuple[str, int, str], ...] = ()  # (input, index of its fallback value, flag it sets)
+    always_rules: frozenset[str] = frozenset()  # rules that run whatever else happens (critical values)
+    engine_set: dict[str, str] = field(default_factory=dict)  # flag set by the engine -> the input it marks
 
 
 def prepare(rb: CompiledRulebook) -> Static:
@@ -54,8 +57,11 @@ def prepare(rb: CompiledRulebook) -> Static:
     by_id = {r.id: r for r in rb.rules}
     value_index = {n: i for i, n in enumerate(rb.value_names)}
     traces = [RuleTrace.of(by_id[rid], rb) for rid in rule_order]
-    reported = tuple((value_index[n], n, 10.0 ** d.precision, d.unit)
-                     for n, d in rb.derived.items() if d.report and n in value_index)
+    reported = tuple(
+        (value_index[n], n, 10.0**d.precision, d.unit)
+        for n, d in rb.derived.items()
+        if d.report and n in value_index
+    )
     reported = tuple(sorted(reported))
     step_rules: dict[str, list[int]] = {}
     for i, rid in enumerate(rule_order):
@@ -64,19 +70,35 @@ def prepare(rb: CompiledRulebook) -> Static:
     for spec in rb.inputs.values():
         for alt, (factor, offset) in spec.alternatives.items():
             conversions[(spec.unit, alt)] = (factor, offset)
-    known = frozenset(U.UCUM_CODES) | {s.unit for s in rb.inputs.values()} | {
-        a for s in rb.inputs.values() for a in s.alternatives}
+    known = (
+        frozenset(U.UCUM_CODES)
+        | {s.unit for s in rb.inputs.values()}
+        | {a for s in rb.inputs.values() for a in s.alternatives}
+    )
     blank = {n: (s.default if s.kind != "number" else None) for n, s in rb.inputs.items()}
-    static = Static(blank=blank, identity=rb.identity, rule_traces=traces,
-                    value_index=value_index, reported=reported, step_rules=step_rules, conversions=conversions,
-                    known_units=known, accepted_keys=", ".join(sorted(rb.inputs)))
+    static = Static(
+        blank=blank,
+        identity=rb.identity,
+        rule_traces=traces,
+        value_index=value_index,
+        reported=reported,
+        step_rules=step_rules,
+        conversions=conversions,
+        known_units=known,
+        accepted_keys=", ".join(sorted(rb.inputs)),
+    )
     for r in rb.rules:
         for j, f in enumerate(r.findings):
             static.templates[(r.id, j)] = _template(rb, static, f.text)
-    static.value_needs = tuple((i, name, tuple(sorted(n for n in reads_closure(name, rb.derived) if n in rb.inputs)), ())
-                               for i, name, _s, _u in reported)
-    static.fallbacks = tuple((n, value_index[s.fallback], s.fallback_marks) for n, s in rb.inputs.items()
-                             if s.fallback is not None and s.fallback_marks is not None and s.fallback in value_index)
+    static.value_needs = tuple(
+        (i, name, tuple(sorted(n for n in reads_closure(name, rb.derived) if n in rb.inputs)), ())
+        for i, name, _s, _u in reported
+    )
+    static.fallbacks = tuple(
+        (n, value_index[s.fallback], s.fallback_marks)
+        for n, s in rb.inputs.items()
+        if s.fallback is not None and s.fallback_marks is not None and s.fallback in value_index
+    )
     static.always_rules = frozenset(r.id for r in rb.rules if r.always)
     static.engine_set = {marks: name for name, _i, marks in static.fallbacks}
     return static
@@ -100,7 +122,7 @@ def _template(rb: CompiledRulebook, static: Static, text: str) -> tuple[Any, ...
     parts: list[Any] = []
     pos = 0
     for m in PLACEHOLDER.finditer(text):
-        parts.append(text[pos:m.start()])
+        parts.append(text[pos : m.start()])
         pos = m.end()
         name = m.group(1)
         if name in static.value_index:
@@ -122,7 +144,9 @@ def _template(rb: CompiledRulebook, static: Static, text: str) -> tuple[Any, ...
     return tuple(x for x in parts if x != "")
 
 
-def _display_spec(rb: CompiledRulebook, static: Static, unit: str, precision: int) -> tuple[float, float, float, int, str]:
+def _display_spec(
+    rb: CompiledRulebook, static: Static, unit: str, precision: int
+) -> tuple[float, float, float, int, str]:
     """(factor, offset, scale, precision, label) turning a canonical value into displayed text."""
     target = rb.display_units.get(unit)
     factor, offset, to_unit, to_prec = 1.0, 0.0, unit, precision
@@ -131,7 +155,7 @@ def _display_spec(rb: CompiledRulebook, static: Static, unit: str, precision: in
         to_unit = target[0]
         to_prec = target[1] if target[1] is not None else max(0, precision + round(math.log10(abs(factor))))
     lab = U.label(to_unit)
-    return (factor, offset, 10.0 ** to_prec, to_prec, (" " + lab) if lab else "")
+    return (factor, offset, 10.0**to_prec, to_prec, (" " + lab) if lab else "")
 
 
 def _show(value: float, spec: tuple[float, float, float, int, str]) -> str:
@@ -146,7 +170,9 @@ def _param_text(rb: CompiledRulebook, static: Static, p: Any, value: Any) -> str
     return _show(value, _display_spec(rb, static, p.unit, _precision_of(value)))
 
 
-def _render(rb: CompiledRulebook, parts: tuple[Any, ...], inputs: dict[str, Any], vals: tuple[Any, ...]) -> str:
+def _render(
+    rb: CompiledRulebook, parts: tuple[Any, ...], inputs: dict[str, Any], vals: tuple[Any, ...]
+) -> str:
     out = []
     for part in parts:
         if part.__class__ is str:
@@ -167,6 +193,7 @@ def _render(rb: CompiledRulebook, parts: tuple[Any, ...], inputs: dict[str, Any]
 
 # ----------------------------------------------------------------------------- reading a case
 
+
 def _error(field_: str, code: str, message: str, accepted: str) -> dict[str, str]:
     return {"field": field_, "code": code, "message": message, "accepted": accepted}
 
@@ -176,16 +203,37 @@ def read_case(rb: CompiledRulebook, case: Any) -> tuple[dict[str, Any], list[dic
     static = ready(rb)
     values = dict(static.blank)
     if not isinstance(case, Mapping):
-        return values, [_error("", "input.not_an_object", f"a case must be a JSON object, not {type(case).__name__}",
-                               "an object of input names to values")], None, None
+        return (
+            values,
+            [
+                _error(
+                    "",
+                    "input.not_an_object",
+                    f"a case must be a JSON object, not {type(case).__name__}",
+                    "an object of input names to values",
+                )
+            ],
+            None,
+            None,
+        )
     errors: list[dict[str, str]] = []
     if UNREADABLE in case:
-        return values, [_error("", "input.unreadable", str(case[UNREADABLE]), "a JSON object per case")], \
-            case.get("case_id"), None
+        return (
+            values,
+            [_error("", "input.unreadable", str(case[UNREADABLE]), "a JSON object per case")],
+            case.get("case_id"),
+            None,
+        )
     case_id = case.get("case_id")
     if case_id is not None and not isinstance(case_id, str):
-        errors.append(_error("case_id", "input.bad_case_id", f"case_id must be a string, not {type(case_id).__name__}",
-                             "a string"))
+        errors.append(
+            _error(
+                "case_id",
+                "input.bad_case_id",
+                f"case_id must be a string, not {type(case_id).__name__}",
+                "a string",
+            )
+        )
     context = case.get("context")
     if context is not None and not isinstance(context, Mapping):
         errors.append(_error("context", "input.bad_context", "context must be an object", "a JSON object"))
@@ -199,13 +247,25 @@ def read_case(rb: CompiledRulebook, case: Any) -> tuple[dict[str, Any], list[dic
             continue
         spec = rb.inputs.get(key)
         if spec is None:
-            errors.append(_error(str(key), "input.unknown_key", f"'{key}' is not an input of rulebook {rb.id}",
-                                 "one of " + static.accepted_keys + ", case_id, context"))
+            errors.append(
+                _error(
+                    str(key),
+                    "input.unknown_key",
+                    f"'{key}' is not an input of rulebook {rb.id}",
+                    "one of " + static.accepted_keys + ", case_id, context",
+                )
+            )
             continue
         owner = static.engine_set.get(key)
         if owner is not None:
-            errors.append(_error(key, "input.engine_set", f"{key} is set by the engine when {owner} is calculated",
-                                 f"leave {key} out; give {owner} when it was measured"))
+            errors.append(
+                _error(
+                    key,
+                    "input.engine_set",
+                    f"{key} is set by the engine when {owner} is calculated",
+                    f"leave {key} out; give {owner} when it was measured",
+                )
+            )
             continue
         if raw is None:
             continue
@@ -214,13 +274,23 @@ def read_case(rb: CompiledRulebook, case: Any) -> tuple[dict[str, Any], list[dic
             if text in spec.codes:
                 values[key] = text
             else:
-                errors.append(_error(key, "input.unknown_code", f"{key} = {_brief(raw)} is not an accepted code",
-                                     "one of " + ", ".join(spec.codes)))
+                errors.append(
+                    _error(
+                        key,
+                        "input.unknown_code",
+                        f"{key} = {_brief(raw)} is not an accepted code",
+                        "one of " + ", ".join(spec.codes),
+                    )
+                )
             continue
         if spec.kind == "flag":
             flag = _flag(raw)
             if flag is None:
-                errors.append(_error(key, "input.bad_flag", f"{key} = {_brief(raw)} is not true or false", "true or false"))
+                errors.append(
+                    _error(
+                        key, "input.bad_flag", f"{key} = {_brief(raw)} is not true or false", "true or false"
+                    )
+                )
             else:
                 values[key] = flag
             continue
@@ -233,9 +303,11 @@ def read_case(rb: CompiledRulebook, case: Any) -> tuple[dict[str, Any], list[dic
 
 
 MAX_CONTEXT_DEPTH = 32
-MAX_INT = 2 ** 63 - 1
-_STRICT_JSON = (f"strict JSON: finite numbers, integers within \u00b1{MAX_INT}, string keys, at most "
-                f"{MAX_CONTEXT_DEPTH} levels of nesting")
+MAX_INT = 2**63 - 1
+_STRICT_JSON = (
+    f"strict JSON: finite numbers, integers within \u00b1{MAX_INT}, string keys, at most "
+    f"{MAX_CONTEXT_DEPTH} levels of nesting"
+)
 
 
 def _brief(raw: Any) -> str:
@@ -291,22 +363,35 @@ def _flag(raw: Any) -> bool | None:
     return None
 
 
-def _number(rb: CompiledRulebook, spec: Any, key: str, raw: Any) -> tuple[float | None, dict[str, str] | None]:
+def _number(
+    rb: CompiledRulebook, spec: Any, key: str, raw: Any
+) -> tuple[float | None, dict[str, str] | None]:
     cls = raw.__class__
     if cls is float or (cls is int and -MAX_INT <= raw <= MAX_INT):  # the common case: a plain number
         value = float(raw)
         lo, hi = spec.plausible_min, spec.plausible_max
-        if value == value and (lo is None or value >= lo) and (hi is None or value <= hi) and value - value == 0:
+        if (
+            value == value
+            and (lo is None or value >= lo)
+            and (hi is None or value <= hi)
+            and value - value == 0
+        ):
             return value, None
     static: Static = rb._static
     unit = spec.unit
     accepted_units = ", ".join([spec.unit] + list(spec.alternatives))
     if isinstance(raw, int) and not isinstance(raw, bool) and abs(raw) > MAX_INT:
-        return None, _error(key, "input.too_large", f"{key} is an integer too large to read", f"a number in {spec.unit}")
+        return None, _error(
+            key, "input.too_large", f"{key} is an integer too large to read", f"a number in {spec.unit}"
+        )
     if isinstance(raw, Mapping):
         if "value" not in raw or set(raw) - {"value", "unit"}:
-            return None, _error(key, "input.bad_form", f"{key} must be a number or {{value, unit}}",
-                                f'a number in {spec.unit}, or {{"value": x, "unit": one of {accepted_units}}}')
+            return None, _error(
+                key,
+                "input.bad_form",
+                f"{key} must be a number or {{value, unit}}",
+                f'a number in {spec.unit}, or {{"value": x, "unit": one of {accepted_units}}}',
+            )
         given = raw.get("unit")
         raw = raw["value"]
         if given is not None:
@@ -314,21 +399,38 @@ def _number(rb: CompiledRulebook, spec: Any, key: str, raw: Any) -> tuple[float 
                 return None, _error(key, "input.unknown_unit", f"unit of {key} must be text", accepted_units)
             code = U.normalise(given)
             if code is None or (code not in static.known_units):
-                return None, _error(key, "input.unknown_unit", f"unit '{given}' of {key} is not a known unit",
-                                    "one of " + accepted_units)
+                return None, _error(
+                    key,
+                    "input.unknown_unit",
+                    f"unit '{given}' of {key} is not a known unit",
+                    "one of " + accepted_units,
+                )
             if code != spec.unit and code not in spec.alternatives:
-                return None, _error(key, "input.unit_mismatch", f"unit '{given}' does not fit {key}",
-                                    "one of " + accepted_units)
+                return None, _error(
+                    key,
+                    "input.unit_mismatch",
+                    f"unit '{given}' does not fit {key}",
+                    "one of " + accepted_units,
+                )
             unit = code
     if isinstance(raw, bool) or not isinstance(raw, (int, float, str)):
-        return None, _error(key, "input.not_a_number", f"{key} = {_brief(raw)} is not a number", f"a number in {spec.unit}")
+        return None, _error(
+            key, "input.not_a_number", f"{key} = {_brief(raw)} is not a number", f"a number in {spec.unit}"
+        )
     if isinstance(raw, int) and not isinstance(raw, bool) and abs(raw) > MAX_INT:
-        return None, _error(key, "input.too_large", f"{key} is an integer too large to read", f"a number in {spec.unit}")
+        return None, _error(
+            key, "input.too_large", f"{key} is an integer too large to read", f"a number in {spec.unit}"
+        )
     if isinstance(raw, str):
         try:
             raw = float(raw.strip())
         except ValueError:
-            return None, _error(key, "input.not_a_number", f"{key} = {_brief(raw)} is not a number", f"a number in {spec.unit}")
+            return None, _error(
+                key,
+                "input.not_a_number",
+                f"{key} = {_brief(raw)} is not a number",
+                f"a number in {spec.unit}",
+            )
     value = float(raw)
     if not math.isfinite(value):
         return None, _error(key, "input.not_finite", f"{key} is {value}", "a finite number")
@@ -338,21 +440,28 @@ def _number(rb: CompiledRulebook, spec: Any, key: str, raw: Any) -> tuple[float 
     lo, hi = spec.plausible_min, spec.plausible_max
     if (lo is not None and value < lo) or (hi is not None and value > hi):
         shown = f"{value:g} {U.label(spec.unit)}".strip()
-        return None, _error(key, "input.out_of_range", f"{key} = {shown} is outside the plausible range",
-                            f"{lo:g} to {hi:g} {U.label(spec.unit)}".strip())
+        return None, _error(
+            key,
+            "input.out_of_range",
+            f"{key} = {shown} is outside the plausible range",
+            f"{lo:g} to {hi:g} {U.label(spec.unit)}".strip(),
+        )
     return value, None
 
 
 # ----------------------------------------------------------------------------- evaluating
+
 
 def interpret(rb: CompiledRulebook, case: Any, trace: bool = True) -> dict[str, Any]:
     """The result contract for one case. Never raises for bad input: it is rejected with errors."""
     static = ready(rb)
     inputs, errors, case_id, context = read_case(rb, case)
     result: dict[str, Any] = {
-        "schema_version": SCHEMA_VERSION, "case_id": case_id if isinstance(case_id, str) else None,
+        "schema_version": SCHEMA_VERSION,
+        "case_id": case_id if isinstance(case_id, str) else None,
         "context": dict(context) if isinstance(context, Mapping) else {},
-        "rulebook": dict(static.identity), "engine_version": rb.engine_version,
+        "rulebook": dict(static.identity),
+        "engine_version": rb.engine_version,
     }
     if errors:
         return _rejected(rb, result, inputs, errors, trace)
@@ -377,16 +486,22 @@ def _apply_fallbacks(rb: CompiledRulebook, inputs: dict[str, Any]) -> tuple[dict
         spec = rb.inputs[name]
         if value is None or not math.isfinite(value):
             continue
-        if (spec.plausible_min is not None and value < spec.plausible_min) or \
-                (spec.plausible_max is not None and value > spec.plausible_max):
+        if (spec.plausible_min is not None and value < spec.plausible_min) or (
+            spec.plausible_max is not None and value > spec.plausible_max
+        ):
             continue
-        out[name], out[marks] = round_at(value, 10.0 ** spec.precision), True   # as it will be shown
+        out[name], out[marks] = round_at(value, 10.0**spec.precision), True  # as it will be shown
         calculated.append(name)
     return out, calculated
 
 
-def _rejected(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any], errors: list[dict[str, str]],
-              trace: bool) -> dict[str, Any]:
+def _rejected(
+    rb: CompiledRulebook,
+    result: dict[str, Any],
+    inputs: dict[str, Any],
+    errors: list[dict[str, str]],
+    trace: bool,
+) -> dict[str, Any]:
     """A rejected case is not interpreted, but the rules that always run (critical values) still
     run on the fields that were read, so that a critical value is never hidden by another field's
     error. Their findings and headline phrases are returned; everything else stays empty."""
@@ -409,17 +524,37 @@ def _rejected(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, An
     named = ", ".join(_unique([e["field"] for e in errors if e["field"]]))
     headline = "; ".join(_unique(phrases + [rejected + (f" ({named})" if named else "")]))
     kept = [e for e in (events or []) if e.get("rule") in static.always_rules]
-    result.update(status="rejected", headline=headline, errors=errors,
-                  inputs={}, values={}, units={}, findings=findings, disorders=[], qualifiers={},
-                  not_assessed=[{"what": "interpretation", "why": "input rejected: " + "; ".join(
-                      e["message"] for e in errors)}],
-                  cautions=list(pres.get("cautions", [])), trace=kept, calculated=[])
+    result.update(
+        status="rejected",
+        headline=headline,
+        errors=errors,
+        inputs={},
+        values={},
+        units={},
+        findings=findings,
+        disorders=[],
+        qualifiers={},
+        not_assessed=[
+            {"what": "interpretation", "why": "input rejected: " + "; ".join(e["message"] for e in errors)}
+        ],
+        cautions=list(pres.get("cautions", [])),
+        trace=kept,
+        calculated=[],
+    )
     return result
 
 
-def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any], vals: tuple[Any, ...],
-             states: tuple[int, ...], calc_errors: dict[str, str], outcomes: list[int],
-             events: list[Any] | None, calculated: list[str] | None = None) -> dict[str, Any]:
+def assemble(
+    rb: CompiledRulebook,
+    result: dict[str, Any],
+    inputs: dict[str, Any],
+    vals: tuple[Any, ...],
+    states: tuple[int, ...],
+    calc_errors: dict[str, str],
+    outcomes: list[int],
+    events: list[Any] | None,
+    calculated: list[str] | None = None,
+) -> dict[str, Any]:
     static: Static = rb._static
     pres = rb.presentation
     values: dict[str, float] = {}
@@ -451,8 +586,9 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
                 disorders.append(code)
         for code, qual in rule.qualifiers.items():
             if code in qualifiers and qualifiers[code] != qual:
-                conflicts.setdefault(code, [f"{qualifiers[code]} ({qual_from[code]}, {qual_where[code]})"]).append(
-                    f"{qual} ({rule.id}, {rule.location})")
+                conflicts.setdefault(
+                    code, [f"{qualifiers[code]} ({qual_from[code]}, {qual_where[code]})"]
+                ).append(f"{qual} ({rule.id}, {rule.location})")
             if code not in qualifiers:
                 qualifiers[code], qual_from[code], qual_where[code] = qual, rule.id, rule.location
         for j, f in enumerate(rule.findings):
@@ -466,8 +602,9 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
     not_assessed = _not_assessed(rb, static, outcomes, states, vals, calc_errors, inputs)
     for code, quals in conflicts.items():
         qualifiers.pop(code, None)
-        not_assessed.append({"what": f"qualifier of {code}",
-                             "why": "eval.conflict: rules asserted " + " and ".join(quals)})
+        not_assessed.append(
+            {"what": f"qualifier of {code}", "why": "eval.conflict: rules asserted " + " and ".join(quals)}
+        )
     if status == "inconsistent":
         disorders, qualifiers = [], {}
     elif status == "interpreted" and any(n.get("core") for n in not_assessed):
@@ -477,19 +614,35 @@ def assemble(rb: CompiledRulebook, result: dict[str, Any], inputs: dict[str, Any
         n.pop("core", None)
     findings.sort(key=lambda f: 0 if f["severity"] == "critical" else 1)
     marks = static.engine_set
-    result.update(status=status, headline=_headline(pres, status, disorders, qualifiers, headlines, core_missing),
-                  errors=[], inputs={k: v for k, v in inputs.items() if v is not None and k not in marks},
-                  values=values, units=units, findings=findings, disorders=disorders, qualifiers=qualifiers,
-                  not_assessed=not_assessed, cautions=caution_texts + list(pres.get("cautions", [])),
-                  trace=events if events is not None else [], calculated=list(calculated or ()))
+    result.update(
+        status=status,
+        headline=_headline(pres, status, disorders, qualifiers, headlines, core_missing),
+        errors=[],
+        inputs={k: v for k, v in inputs.items() if v is not None and k not in marks},
+        values=values,
+        units=units,
+        findings=findings,
+        disorders=disorders,
+        qualifiers=qualifiers,
+        not_assessed=not_assessed,
+        cautions=caution_texts + list(pres.get("cautions", [])),
+        trace=events if events is not None else [],
+        calculated=list(calculated or ()),
+    )
     return result
 
 
-def _finding(rb: CompiledRulebook, rule: Any, j: int, f: Any, inputs: dict[str, Any],
-             vals: tuple[Any, ...]) -> dict[str, Any]:
+def _finding(
+    rb: CompiledRulebook, rule: Any, j: int, f: Any, inputs: dict[str, Any], vals: tuple[Any, ...]
+) -> dict[str, Any]:
     """The result entry of finding ``j`` of a rule that fired, its text rendered."""
-    return {"code": f.code, "category": f.category, "severity": f.severity,
-            "text": _render(rb, rb._static.templates[(rule.id, j)], inputs, vals), "rule": rule.id}
+    return {
+        "code": f.code,
+        "category": f.category,
+        "severity": f.severity,
+        "text": _render(rb, rb._static.templates[(rule.id, j)], inputs, vals),
+        "rule": rule.id,
+    }
 
 
 def _precision_of(value: float) -> int:
@@ -504,8 +657,15 @@ def format_quantity(rb: CompiledRulebook, value: Any, unit: str, precision: int)
     return _show(float(value), _display_spec(rb, ready(rb), unit, precision))
 
 
-def _not_assessed(rb: CompiledRulebook, static: Static, outcomes: list[int], states: tuple[int, ...],
-                  vals: tuple[Any, ...], calc_errors: dict[str, str], inputs: dict[str, Any]) -> list[dict[str, Any]]:
+def _not_assessed(
+    rb: CompiledRulebook,
+    static: Static,
+    outcomes: list[int],
+    states: tuple[int, ...],
+    vals: tuple[Any, ...],
+    calc_errors: dict[str, str],
+    inputs: dict[str, Any],
+) -> list[dict[str, Any]]:
     out: list[dict[str, Any]] = []
     traces = static.rule_traces
     halted: list[str] = []
@@ -519,10 +679,21 @@ def _not_assessed(rb: CompiledRulebook, static: Static, outcomes: list[int], sta
             halted.append(rb.steps[step].label)
             continue
         if all(outcomes[i] in (SKIPPED, HALTED) for i in live):
-            missing = sorted({n for i in live if outcomes[i] == SKIPPED
-                              for n in traces[i].missing(inputs, vals, static.value_index)})
-            out.append({"what": rb.steps[step].label, "why": "needs " + ", ".join(missing),
-                        "core": rb.steps[step].core})
+            missing = sorted(
+                {
+                    n
+                    for i in live
+                    if outcomes[i] == SKIPPED
+                    for n in traces[i].missing(inputs, vals, static.value_index)
+                }
+            )
+            out.append(
+                {
+                    "what": rb.steps[step].label,
+                    "why": "needs " + ", ".join(missing),
+                    "core": rb.steps[step].core,
+                }
+            )
     groups: dict[str, list[str]] = {}
     for i, name, need_inputs, need_derived in static.value_needs:
         if states[i] != MISSING:
@@ -530,20 +701,37 @@ def _not_assessed(rb: CompiledRulebook, static: Static, outcomes: list[int], sta
         missing = [n for n in need_inputs if inputs.get(n) is None]
         groups.setdefault(", ".join(missing), []).append(name)
     for why, names in groups.items():
-        out.append({"what": ", ".join(names), "core": False,
-                    "why": "needs " + why if why else "a value it depends on does not apply to this case"})
+        out.append(
+            {
+                "what": ", ".join(names),
+                "core": False,
+                "why": "needs " + why if why else "a value it depends on does not apply to this case",
+            }
+        )
     if halted:
         stoppers = [traces[i].rule.id for i, o in enumerate(outcomes) if o == FIRED and traces[i].rule.stop]
-        out.insert(0, {"what": ", ".join(halted), "core": False,
-                       "why": "not evaluated: rule " + ", ".join(stoppers) + " stopped the interpretation"})
+        out.insert(
+            0,
+            {
+                "what": ", ".join(halted),
+                "core": False,
+                "why": "not evaluated: rule " + ", ".join(stoppers) + " stopped the interpretation",
+            },
+        )
     for name, err in calc_errors.items():
         what = rb.derived[name].label if name in rb.derived else f"rule {name}"
         out.append({"what": what, "why": f"eval.calculation_error: {err}", "core": False})
     return out
 
 
-def _headline(pres: dict[str, Any], status: str, disorders: list[str], qualifiers: dict[str, str],
-              headlines: list[tuple[int, str, str]], core_missing: list[str] | None = None) -> str:
+def _headline(
+    pres: dict[str, Any],
+    status: str,
+    disorders: list[str],
+    qualifiers: dict[str, str],
+    headlines: list[tuple[int, str, str]],
+    core_missing: list[str] | None = None,
+) -> str:
     """Critical phrases first, then the pH state, the disorders, then other phrases (e.g. hypoxaemia).
     A phrase already said by a disorder's label is not repeated. "No disorder" is never said beside
     an abnormal pH: the headline then says the cause was not identified and what was not assessed."""

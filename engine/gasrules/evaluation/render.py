@@ -7,12 +7,13 @@ rulebook's display units, what could not be assessed, then the cautions.
 
 from __future__ import annotations
 
-from typing import Any, Iterable
+from collections.abc import Iterable
+from typing import Any
 
 from gasrules.core import units as U
 from gasrules.core.errors import Problem
-from gasrules.evaluation.evaluator import format_quantity
 from gasrules.core.model import CompiledRulebook
+from gasrules.evaluation.evaluator import format_quantity
 
 _MARK = {"critical": "!!", "warning": " !", "info": "  "}
 
@@ -50,7 +51,9 @@ def render_result(rb: CompiledRulebook, result: dict[str, Any], trace: bool = Fa
         lines.append(f"  * {c}")
     rbid = result["rulebook"]
     lines.append("")
-    lines.append(f"Rulebook {rbid['id']} {rbid['version']} (sha256 {rbid['sha256'][:12]}), engine {result['engine_version']}")
+    lines.append(
+        f"Rulebook {rbid['id']} {rbid['version']} (sha256 {rbid['sha256'][:12]}), engine {result['engine_version']}"
+    )
     if trace:
         lines.append("")
         lines.append(render_trace(result["trace"]))
@@ -58,8 +61,12 @@ def render_result(rb: CompiledRulebook, result: dict[str, Any], trace: bool = Fa
 
 
 def _status_word(status: str) -> str:
-    return {"interpreted": "INTERPRETED", "partial": "PARTIAL", "inconsistent": "INCONSISTENT",
-            "rejected": "REJECTED"}.get(status, status.upper())
+    return {
+        "interpreted": "INTERPRETED",
+        "partial": "PARTIAL",
+        "inconsistent": "INCONSISTENT",
+        "rejected": "REJECTED",
+    }.get(status, status.upper())
 
 
 def _label(rb: CompiledRulebook, name: str) -> str:
@@ -83,20 +90,31 @@ def render_trace(events: Iterable[dict[str, Any]], only: Iterable[str] | None = 
         lines.append(f"  {ev['outcome'].upper():<22} {ev['rule']}  ({ev['title']})")
         reads = ev.get("reads") or {}
         if reads:
-            lines.append("      read: " + ", ".join(f"{k}={_fmt(v) if v is not None else 'missing'}" for k, v in reads.items()))
+            lines.append(
+                "      read: "
+                + ", ".join(f"{k}={_fmt(v) if v is not None else 'missing'}" for k, v in reads.items())
+            )
         for name, p in (ev.get("parameters") or {}).items():
             sel = f", {p['selected_by']}" if "selected_by" in p else ""
-            lines.append(f"      param {name}={_fmt(p['value'])} {U.label(p['unit'])}".rstrip() + f"  (set at {p['set_by']}{sel})")
+            lines.append(
+                f"      param {name}={_fmt(p['value'])} {U.label(p['unit'])}".rstrip()
+                + f"  (set at {p['set_by']}{sel})"
+            )
         for c in ev.get("comparisons") or []:
             if c["compared"] is None:
-                lines.append(f"      compare {c['quantity']} {c['op']} {c['threshold']}: {c['quantity']} unavailable")
+                lines.append(
+                    f"      compare {c['quantity']} {c['op']} {c['threshold']}: {c['quantity']} unavailable"
+                )
                 continue
             shown = _fmt(c["compared"])
             full = "" if c["value"] == c["compared"] else f" (full value {_fmt(c['value'])})"
-            state = ("not evaluated" if c.get("holds") is None else ("true" if c["holds"] else "false")) + \
-                (", decisive" if c.get("decisive") else "")
-            lines.append(f"      compare {c['quantity']} {shown}{full} {c['op']} {c['threshold']} {_fmt(c['threshold_value'])}"
-                         f": {state}; margin {_fmt(c['margin']) if c['margin'] is not None else 'n/a'}")
+            state = ("not evaluated" if c.get("holds") is None else ("true" if c["holds"] else "false")) + (
+                ", decisive" if c.get("decisive") else ""
+            )
+            lines.append(
+                f"      compare {c['quantity']} {shown}{full} {c['op']} {c['threshold']} {_fmt(c['threshold_value'])}"
+                f": {state}; margin {_fmt(c['margin']) if c['margin'] is not None else 'n/a'}"
+            )
         if ev.get("missing"):
             lines.append("      missing: " + ", ".join(ev["missing"]))
         if ev.get("reason"):

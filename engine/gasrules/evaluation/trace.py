@@ -14,34 +14,34 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any, TypedDict
 
+from gasrules.core.model import CompiledRulebook, RuleSpec
 from gasrules.rulebook.codegen import ERROR, FIRED, HALTED, NOT_FIRED, OUTCOMES, SKIPPED, SUSPENDED
 from gasrules.rulebook.expressions import Oracle, round_at
-from gasrules.core.model import CompiledRulebook, RuleSpec
 
 
 class Comparison(TypedDict):
     quantity: str
-    value: float | None          # full value
-    compared: float | None       # the value at its reported precision (what the rule compared)
+    value: float | None  # full value
+    compared: float | None  # the value at its reported precision (what the rule compared)
     op: str
-    threshold: str               # a parameter name or a literal
+    threshold: str  # a parameter name or a literal
     threshold_value: float | None
-    margin: float | None         # compared - threshold_value
-    holds: bool | None           # the comparison's value; None when it was not evaluated (short-circuit)
-    decisive: bool               # forcing this comparison alone the other way would change the outcome
+    margin: float | None  # compared - threshold_value
+    holds: bool | None  # the comparison's value; None when it was not evaluated (short-circuit)
+    decisive: bool  # forcing this comparison alone the other way would change the outcome
 
 
 class TraceEvent(TypedDict, total=False):
     rule: str
     step: str
     title: str
-    outcome: str                 # one of OUTCOMES
-    reads: dict[str, Any]        # input and derived names -> value (None when unavailable)
-    parameters: dict[str, dict[str, Any]]   # name -> {value, unit, set_by}
+    outcome: str  # one of OUTCOMES
+    reads: dict[str, Any]  # input and derived names -> value (None when unavailable)
+    parameters: dict[str, dict[str, Any]]  # name -> {value, unit, set_by}
     comparisons: list[Comparison]
-    missing: list[str]           # skipped_missing_input: the needed names that were unavailable
-    reason: str                  # suspended: why; error: the calculation error
-    asserted: list[str]          # fired: the finding and disorder codes it asserted
+    missing: list[str]  # skipped_missing_input: the needed names that were unavailable
+    reason: str  # suspended: why; error: the calculation error
+    asserted: list[str]  # fired: the finding and disorder codes it asserted
 
 
 @dataclass
@@ -50,16 +50,18 @@ class RuleTrace:
 
     rule: RuleSpec
     head: dict[str, str]
-    value_reads: tuple[tuple[str, bool], ...]     # (name, is_input)
+    value_reads: tuple[tuple[str, bool], ...]  # (name, is_input)
     needs: tuple[tuple[str, bool], ...]
     parameters: dict[str, dict[str, Any]]
-    by_params: tuple[tuple[str, str, Any], ...]   # (param, selecting input, ParamSpec)
-    comparisons: tuple[tuple[str, bool, float, str, str, str, float, int], ...]  # (quantity, is_input, scale, op, threshold, kind, scale, node)
+    by_params: tuple[tuple[str, str, Any], ...]  # (param, selecting input, ParamSpec)
+    comparisons: tuple[
+        tuple[str, bool, float, str, str, str, float, int], ...
+    ]  # (quantity, is_input, scale, op, threshold, kind, scale, node)
     asserted: list[str]
-    scales: dict[str, float]                      # numeric reads -> 10**precision (compared rounded)
+    scales: dict[str, float]  # numeric reads -> 10**precision (compared rounded)
 
     @classmethod
-    def of(cls, rule: RuleSpec, rb: CompiledRulebook) -> "RuleTrace":
+    def of(cls, rule: RuleSpec, rb: CompiledRulebook) -> RuleTrace:
         reads = set(rule.when.reads) if rule.when else set()
         reads |= set(rule.needs)
         value_reads = tuple((n, n in rb.inputs) for n in sorted(reads) if n in rb.inputs or n in rb.derived)
@@ -77,13 +79,35 @@ class RuleTrace:
         for c in rb.cutpoints:
             if c.owner != rule.id or c.field != "when":
                 continue
-            comps.append((c.quantity, c.quantity in rb.inputs, _scale(rb, c.quantity), c.op, c.threshold,
-                          c.threshold_kind, _scale(rb, c.threshold), c.node))
+            comps.append(
+                (
+                    c.quantity,
+                    c.quantity in rb.inputs,
+                    _scale(rb, c.quantity),
+                    c.op,
+                    c.threshold,
+                    c.threshold_kind,
+                    _scale(rb, c.threshold),
+                    c.node,
+                )
+            )
         head = {"rule": rule.id, "step": rule.step, "title": rule.title}
-        scales = {n: _scale(rb, n) for n, is_input in value_reads
-                  if (rb.inputs[n].kind == "number" if is_input else True)}
-        return cls(rule, head, value_reads, needs, params, tuple(by_params), tuple(comps), sorted(rule.asserts),
-                   scales)
+        scales = {
+            n: _scale(rb, n)
+            for n, is_input in value_reads
+            if (rb.inputs[n].kind == "number" if is_input else True)
+        }
+        return cls(
+            rule,
+            head,
+            value_reads,
+            needs,
+            params,
+            tuple(by_params),
+            tuple(comps),
+            sorted(rule.asserts),
+            scales,
+        )
 
     def missing(self, inputs: dict[str, Any], vals: tuple[Any, ...], index: dict[str, int]) -> list[str]:
         out = []
@@ -102,14 +126,22 @@ def _scale(rb: CompiledRulebook, name: str) -> float:
     return 1.0
 
 
-def _value(name: str, is_input: bool, inputs: dict[str, Any], vals: tuple[Any, ...], index: dict[str, int]) -> Any:
+def _value(
+    name: str, is_input: bool, inputs: dict[str, Any], vals: tuple[Any, ...], index: dict[str, int]
+) -> Any:
     return inputs.get(name) if is_input else vals[index[name]]
 
 
-def build_trace(traces: list[RuleTrace], outcomes: list[int], inputs: dict[str, Any], vals: tuple[Any, ...],
-                index: dict[str, int], calc_errors: dict[str, str]) -> list[TraceEvent]:
+def build_trace(
+    traces: list[RuleTrace],
+    outcomes: list[int],
+    inputs: dict[str, Any],
+    vals: tuple[Any, ...],
+    index: dict[str, int],
+    calc_errors: dict[str, str],
+) -> list[TraceEvent]:
     events: list[TraceEvent] = []
-    codes: set[str] = set()          # asserted by the rules before this one
+    codes: set[str] = set()  # asserted by the rules before this one
     for rt, outcome in zip(traces, outcomes):
         ev: TraceEvent = dict(rt.head)  # type: ignore[assignment]
         ev["outcome"] = OUTCOMES[outcome]
@@ -141,7 +173,9 @@ def build_trace(traces: list[RuleTrace], outcomes: list[int], inputs: dict[str, 
     return events
 
 
-def _decisions(rt: RuleTrace, ev: TraceEvent, codes: set[str], fired: bool) -> tuple[dict[int, bool], dict[int, bool]]:
+def _decisions(
+    rt: RuleTrace, ev: TraceEvent, codes: set[str], fired: bool
+) -> tuple[dict[int, bool], dict[int, bool]]:
     """(value of each evaluated comparison, whether forcing it alone the other way changes the
     outcome), by simpleeval's own evaluator."""
     values: dict[str, Any] = dict(ev.get("reads", {}))
@@ -163,8 +197,15 @@ def _decisions(rt: RuleTrace, ev: TraceEvent, codes: set[str], fired: bool) -> t
     return seen, decisive
 
 
-def _comparisons(rt: RuleTrace, ev: TraceEvent, inputs: dict[str, Any], vals: tuple[Any, ...],
-                 index: dict[str, int], codes: set[str], fired: bool) -> list[Comparison]:
+def _comparisons(
+    rt: RuleTrace,
+    ev: TraceEvent,
+    inputs: dict[str, Any],
+    vals: tuple[Any, ...],
+    index: dict[str, int],
+    codes: set[str],
+    fired: bool,
+) -> list[Comparison]:
     out: list[Comparison] = []
     params = ev.get("parameters", {})
     seen, decisive = _decisions(rt, ev, codes, fired)
@@ -179,7 +220,17 @@ def _comparisons(rt: RuleTrace, ev: TraceEvent, inputs: dict[str, Any], vals: tu
             tvalue = None if tv is None else round_at(tv, tscale)
         compared = None if v is None else round_at(v, scale)
         margin = None if compared is None or tvalue is None else round(compared - tvalue, 9)
-        out.append({"quantity": quantity, "value": v, "compared": compared, "op": op, "threshold": threshold,
-                    "threshold_value": tvalue, "margin": margin, "holds": seen.get(node),
-                    "decisive": decisive.get(node, False)})
+        out.append(
+            {
+                "quantity": quantity,
+                "value": v,
+                "compared": compared,
+                "op": op,
+                "threshold": threshold,
+                "threshold_value": tvalue,
+                "margin": margin,
+                "holds": seen.get(node),
+                "decisive": decisive.get(node, False),
+            }
+        )
     return out

@@ -47,19 +47,48 @@ import json
 import math
 import os
 from bisect import bisect_left
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
-from typing import Any, Callable, Mapping
+from typing import Any
 
-from gasrules.governance.decision_log import _DECISION_FIELDS, _ENTRY_FIELDS, WARNING_CODES, ZERO_SHA, RecordError, _anchor_verdict, _compose, _engine_version, _now, _read_anchor, anchor_hmac, _read_tail, _Store, anchor_path, canonical_json, sha256_hex
+from gasrules.governance.decision_log import (
+    _DECISION_FIELDS,
+    _ENTRY_FIELDS,
+    WARNING_CODES,
+    ZERO_SHA,
+    RecordError,
+    _anchor_verdict,
+    _compose,
+    _engine_version,
+    _now,
+    _read_anchor,
+    _read_tail,
+    _Store,
+    anchor_hmac,
+    anchor_path,
+    canonical_json,
+    sha256_hex,
+)
 
 __all__ = [
-    "Difference", "LogIssue", "RepairReport", "ReplayOutcome", "ReplayReport", "VerifyReport",
-    "compare_results", "render_replay", "render_verify", "repair_log", "replay_log", "verify_log",
+    "Difference",
+    "LogIssue",
+    "RepairReport",
+    "ReplayOutcome",
+    "ReplayReport",
+    "VerifyReport",
+    "compare_results",
+    "render_replay",
+    "render_verify",
+    "repair_log",
+    "replay_log",
+    "verify_log",
 ]
 
 # ---------------------------------------------------------------- verification
+
 
 @dataclass(frozen=True)
 class LogIssue:
@@ -81,12 +110,12 @@ class LogIssue:
 @dataclass(frozen=True)
 class VerifyReport:
     path: str
-    entries: int                                # complete lines read
-    issues: tuple[LogIssue, ...]                # in line order, anchor checks last
+    entries: int  # complete lines read
+    issues: tuple[LogIssue, ...]  # in line order, anchor checks last
     anchor: dict[str, Any] | None
     last_sha256: str
-    repairs: tuple[tuple[int, str], ...] = ()   # (seq, actions) of repair entries
-    torn_bytes: int = 0                         # length of a torn tail, if any
+    repairs: tuple[tuple[int, str], ...] = ()  # (seq, actions) of repair entries
+    torn_bytes: int = 0  # length of a torn tail, if any
 
     @property
     def errors(self) -> tuple[LogIssue, ...]:
@@ -115,8 +144,7 @@ def _field_problem(entry: Mapping[str, Any]) -> str:
         if name not in entry:
             return f"field {name!r} is missing"
         value = entry[name]
-        wrong = type(value) is not int if typ is int else \
-            typ is not object and not isinstance(value, typ)
+        wrong = type(value) is not int if typ is int else typ is not object and not isinstance(value, typ)
         if wrong:
             return f"field {name!r} is not of type {typ.__name__}"
     return ""
@@ -131,8 +159,9 @@ class _Seen:
     length: int
 
 
-def _scan(f: Any, size: int, witness: str | None) -> tuple[list[_Seen], list[LogIssue],
-                                                            int, list[tuple[int, str]], bool]:
+def _scan(
+    f: Any, size: int, witness: str | None
+) -> tuple[list[_Seen], list[LogIssue], int, list[tuple[int, str]], bool]:
     """Read complete lines up to ``size``: per-line facts and per-entry issues."""
     seen: list[_Seen] = []
     issues: list[LogIssue] = []
@@ -173,18 +202,32 @@ def _scan(f: Any, size: int, witness: str | None) -> tuple[list[_Seen], list[Log
             issues.append(LogIssue("malformed_entry", str(exc), number, seq))
             continue
         except (RecursionError, ValueError, TypeError) as exc:
-            issues.append(LogIssue("malformed_entry", f"cannot be canonicalised ({type(exc).__name__})", number, seq))
+            issues.append(
+                LogIssue("malformed_entry", f"cannot be canonicalised ({type(exc).__name__})", number, seq)
+            )
             continue
         if sha256_hex(_compose(parts)) != rec.sha:
-            issues.append(LogIssue("entry_hash_mismatch", "the entry was modified: its content "
-                                   "does not hash to its entry_sha256", number, seq))
+            issues.append(
+                LogIssue(
+                    "entry_hash_mismatch",
+                    "the entry was modified: its content does not hash to its entry_sha256",
+                    number,
+                    seq,
+                )
+            )
         elif entry["kind"] == "repair":
             repairs.append((seq or 0, ",".join(map(str, entry["repair"].get("actions", [])))))
         else:
             for key, part in (("input", "input"), ("output", "result")):
                 if sha256_hex(parts[part]) != entry[f"{key}_sha256"]:
-                    issues.append(LogIssue(f"{key}_hash_mismatch", f"{key}_sha256 does not "
-                                           f"match the logged {part}", number, seq))
+                    issues.append(
+                        LogIssue(
+                            f"{key}_hash_mismatch",
+                            f"{key}_sha256 does not match the logged {part}",
+                            number,
+                            seq,
+                        )
+                    )
     return seen, issues, torn, repairs, witnessed
 
 
@@ -201,26 +244,55 @@ def _chain_issues(seen: list[_Seen]) -> list[LogIssue]:
             elsewhere = bisect_left(present, rec.seq) - bisect_left(present, expected)
             if rec.seq > expected and elsewhere <= 0:
                 last = f"-{rec.seq - 1}" if rec.seq - 1 > expected else ""
-                issues.append(LogIssue("seq_gap", f"seq jumps from {prev_seq} to {rec.seq}: "
-                                       f"entry {expected}{last} missing (deleted)",
-                                       rec.line, rec.seq))
+                issues.append(
+                    LogIssue(
+                        "seq_gap",
+                        f"seq jumps from {prev_seq} to {rec.seq}: entry {expected}{last} missing (deleted)",
+                        rec.line,
+                        rec.seq,
+                    )
+                )
             elif rec.seq == expected:
-                issues.append(LogIssue("chain_break", f"prev does not match the entry_sha256 "
-                                       f"of line {rec.line - 1}: that entry was replaced or "
-                                       "re-hashed, or logs were spliced", rec.line, rec.seq))
+                issues.append(
+                    LogIssue(
+                        "chain_break",
+                        f"prev does not match the entry_sha256 "
+                        f"of line {rec.line - 1}: that entry was replaced or "
+                        "re-hashed, or logs were spliced",
+                        rec.line,
+                        rec.seq,
+                    )
+                )
             else:
-                issues.append(LogIssue("chain_break", f"seq {rec.seq} found where {expected} "
-                                       "was expected: entries reordered or duplicated",
-                                       rec.line, rec.seq))
+                issues.append(
+                    LogIssue(
+                        "chain_break",
+                        f"seq {rec.seq} found where {expected} was expected: entries reordered or duplicated",
+                        rec.line,
+                        rec.seq,
+                    )
+                )
         prev_seq, prev_sha, known = rec.seq, rec.sha, True
     return issues
 
 
-def _verify_open(f: Any, size: int, anchor: dict[str, Any] | None, anchor_problem: str,
-                 witness: str | None, path: str, key: bytes = b"") -> VerifyReport:
+def _verify_open(
+    f: Any,
+    size: int,
+    anchor: dict[str, Any] | None,
+    anchor_problem: str,
+    witness: str | None,
+    path: str,
+    key: bytes = b"",
+) -> VerifyReport:
     seen, issues, torn, repairs, witnessed = _scan(f, size, witness)
-    if not torn and seen and seen[-1].sha is None and anchor is not None \
-            and anchor["log_size"] == size - seen[-1].length:
+    if (
+        not torn
+        and seen
+        and seen[-1].sha is None
+        and anchor is not None
+        and anchor["log_size"] == size - seen[-1].length
+    ):
         # an unreadable last line the anchor never counted: also left by a crash
         torn = seen.pop().length
         issues = [i for i in issues if i.line != len(seen) + 1]
@@ -230,20 +302,32 @@ def _verify_open(f: Any, size: int, anchor: dict[str, Any] | None, anchor_proble
     last_seq = last.seq if last and last.seq is not None else len(seen)
     last_sha = (last.sha or "") if last else ZERO_SHA
     if torn:
-        issues.append(LogIssue("torn_tail", f"the last {torn} bytes are an incomplete line the "
-                               "anchor never counted (crash mid-write); run repair_log()",
-                               len(seen) + 1, last_seq + 1))
+        issues.append(
+            LogIssue(
+                "torn_tail",
+                f"the last {torn} bytes are an incomplete line the "
+                "anchor never counted (crash mid-write); run repair_log()",
+                len(seen) + 1,
+                last_seq + 1,
+            )
+        )
     good_end = size - torn
     if anchor_problem == "anchor_missing":
         if seen or torn:
             issues.append(LogIssue("anchor_missing", f"{anchor_path(path).name} not found"))
     elif anchor_problem:
-        issues.append(LogIssue(anchor_problem, f"{anchor_path(path).name} is not "
-                               "{count, last_sha256, log_size}"))
+        issues.append(
+            LogIssue(anchor_problem, f"{anchor_path(path).name} is not {{count, last_sha256, log_size}}")
+        )
     elif anchor is not None:
-        code, why = _anchor_verdict(anchor, last_seq, last_sha,
-                                    (last.prev or "") if last else ZERO_SHA,
-                                    last.length if last else 0, good_end)
+        code, why = _anchor_verdict(
+            anchor,
+            last_seq,
+            last_sha,
+            (last.prev or "") if last else ZERO_SHA,
+            last.length if last else 0,
+            good_end,
+        )
         if code == "truncated":
             issues.append(LogIssue(code, why, len(seen) + 1, last_seq + 1))
         elif code:
@@ -254,9 +338,14 @@ def _verify_open(f: Any, size: int, anchor: dict[str, Any] | None, anchor_proble
         want = anchor_hmac(key, anchor["count"], anchor["last_sha256"], anchor["log_size"])
         got = anchor.get("hmac")
         if not isinstance(got, str) or not hmac.compare_digest(got, want):
-            issues.append(LogIssue("anchor_unkeyed" if got is None else "anchor_hmac_mismatch",
-                                   "the anchor carries no HMAC" if got is None else
-                                   "the anchor's HMAC does not match (log and anchor rewritten without the key?)"))
+            issues.append(
+                LogIssue(
+                    "anchor_unkeyed" if got is None else "anchor_hmac_mismatch",
+                    "the anchor carries no HMAC"
+                    if got is None
+                    else "the anchor's HMAC does not match (log and anchor rewritten without the key?)",
+                )
+            )
     return VerifyReport(path, len(seen), tuple(issues), anchor, last_sha, tuple(repairs), torn)
 
 
@@ -279,20 +368,27 @@ def verify_log(path: str | os.PathLike[str], *, witness: str | None = None, key:
 
 # ---------------------------------------------------------------- repair
 
+
 @dataclass(frozen=True)
 class RepairReport:
     path: str
-    actions: tuple[str, ...]       # truncated_torn_tail, reanchored, anchor_refreshed
+    actions: tuple[str, ...]  # truncated_torn_tail, reanchored, anchor_refreshed
     removed_bytes: int = 0
-    saved_to: str = ""             # where the torn bytes were kept
-    note_seq: int | None = None    # seq of the repair entry written
+    saved_to: str = ""  # where the torn bytes were kept
+    note_seq: int | None = None  # seq of the repair entry written
 
 
 _ANCHOR_CODES = {"truncated", "anchor_missing", "anchor_malformed", "anchor_mismatch"}
 
 
-def repair_log(path: str | os.PathLike[str], *, acknowledge_anchor: bool = False,
-               clock: Callable[[], datetime] | None = None, fsync: bool = True, key: bytes = b"") -> RepairReport:
+def repair_log(
+    path: str | os.PathLike[str],
+    *,
+    acknowledge_anchor: bool = False,
+    clock: Callable[[], datetime] | None = None,
+    fsync: bool = True,
+    key: bytes = b"",
+) -> RepairReport:
     """Make a crashed log appendable again, recording what was done in a chained entry.
 
     Cuts a torn tail (kept in ``LOG.torn-<seq>-<time>``); with ``acknowledge_anchor`` also
@@ -311,14 +407,22 @@ def repair_log(path: str | os.PathLike[str], *, acknowledge_anchor: bool = False
                 report = _verify_open(f, size, anchor, problem, None, str(p))
             hard = [i for i in report.errors if i.code not in _ANCHOR_CODES | {"torn_tail"}]
             if hard:
-                raise RecordError(hard[0].code, "repair refused, entries are damaged: "
-                                  f"{hard[0].message}; keep this log as evidence and start a "
-                                  "new one", path=str(p), line=hard[0].line)
+                raise RecordError(
+                    hard[0].code,
+                    "repair refused, entries are damaged: "
+                    f"{hard[0].message}; keep this log as evidence and start a "
+                    "new one",
+                    path=str(p),
+                    line=hard[0].line,
+                )
             anchor_codes = sorted({i.code for i in report.errors} & _ANCHOR_CODES)
             if anchor_codes and not acknowledge_anchor:
-                raise RecordError(anchor_codes[0], "repair refused: the anchor disagrees with "
-                                  "the log; check why, then pass acknowledge_anchor=True",
-                                  path=str(p))
+                raise RecordError(
+                    anchor_codes[0],
+                    "repair refused: the anchor disagrees with "
+                    "the log; check why, then pass acknowledge_anchor=True",
+                    path=str(p),
+                )
             actions: list[str] = []
             good_end = size - report.torn_bytes
             torn = os.pread(store.fd, report.torn_bytes, good_end)
@@ -341,13 +445,20 @@ def repair_log(path: str | os.PathLike[str], *, acknowledge_anchor: bool = False
                 return RepairReport(str(p), ())
             last_line = _read_tail(store.fd, good_end).last_line
             count = json.loads(last_line)["seq"] if last_line else 0
-            note = {"actions": actions, "anchor_before": anchor,
-                    "problems": [i.code for i in report.issues],
-                    "removed_bytes": len(torn), "removed_sha256": sha256_hex(torn),
-                    "saved_to": saved}
-            parts = {"kind": b'"repair"', "time": canonical_json(time),
-                     "engine_version": canonical_json(_engine_version()),
-                     "repair": canonical_json(note)}
+            note = {
+                "actions": actions,
+                "anchor_before": anchor,
+                "problems": [i.code for i in report.issues],
+                "removed_bytes": len(torn),
+                "removed_sha256": sha256_hex(torn),
+                "saved_to": saved,
+            }
+            parts = {
+                "kind": b'"repair"',
+                "time": canonical_json(time),
+                "engine_version": canonical_json(_engine_version()),
+                "repair": canonical_json(note),
+            }
             store._cache = None
             seq, _ = store.append(parts, count, report.last_sha256 if report.entries else ZERO_SHA)
             return RepairReport(str(p), tuple(actions), len(torn), saved, seq)
@@ -365,9 +476,10 @@ def _write_new_file(path: Path, data: bytes, do_fsync: bool) -> None:
 
 # ---------------------------------------------------------------- replay
 
+
 @dataclass(frozen=True)
 class Difference:
-    field: str          # status, disorders, qualifiers.<d>, findings, values.<name>, errors
+    field: str  # status, disorders, qualifiers.<d>, findings, values.<name>, errors
     logged: Any
     replayed: Any
 
@@ -381,14 +493,19 @@ def _codes(items: Any, *keys: str) -> list[Any]:
 
 
 def _same_number(a: Any, b: Any, rel_tol: float) -> bool:
-    if isinstance(a, (int, float)) and isinstance(b, (int, float)) \
-            and not isinstance(a, bool) and not isinstance(b, bool):
+    if (
+        isinstance(a, (int, float))
+        and isinstance(b, (int, float))
+        and not isinstance(a, bool)
+        and not isinstance(b, bool)
+    ):
         return math.isclose(a, b, rel_tol=rel_tol, abs_tol=rel_tol)
     return bool(a == b)
 
 
-def compare_results(logged: Mapping[str, Any], replayed: Mapping[str, Any], *,
-                    rel_tol: float = 1e-9) -> tuple[Difference, ...]:
+def compare_results(
+    logged: Mapping[str, Any], replayed: Mapping[str, Any], *, rel_tol: float = 1e-9
+) -> tuple[Difference, ...]:
     """What differs in the conclusions of two results. Pure.
 
     Compares status, disorders (as a set), qualifiers, finding codes (as a multiset), values
@@ -419,15 +536,14 @@ def compare_results(logged: Mapping[str, Any], replayed: Mapping[str, Any], *,
     return tuple(diffs)
 
 
-REPLAY_OUTCOMES = ("same", "differs", "rulebook_missing", "rulebook_mismatch", "error",
-                   "unreadable")
+REPLAY_OUTCOMES = ("same", "differs", "rulebook_missing", "rulebook_mismatch", "error", "unreadable")
 
 
 @dataclass(frozen=True)
 class ReplayOutcome:
     line: int
     seq: int | None
-    outcome: str                                   # one of REPLAY_OUTCOMES
+    outcome: str  # one of REPLAY_OUTCOMES
     rulebook_sha256: str = ""
     differences: tuple[Difference, ...] = ()
     message: str = ""
@@ -436,8 +552,8 @@ class ReplayOutcome:
 @dataclass(frozen=True)
 class ReplayReport:
     path: str
-    counts: dict[str, int]                         # outcome -> number of decision entries
-    outcomes: tuple[ReplayOutcome, ...]            # every outcome but "same"
+    counts: dict[str, int]  # outcome -> number of decision entries
+    outcomes: tuple[ReplayOutcome, ...]  # every outcome but "same"
 
     @property
     def ok(self) -> bool:
@@ -447,9 +563,13 @@ class ReplayReport:
 _MISSING = (LookupError, FileNotFoundError)
 
 
-def replay_log(path: str | os.PathLike[str], load_rulebook_by_sha256: Callable[[str], Any],
-               interpret: Callable[[Any, Any], Mapping[str, Any]], *,
-               rel_tol: float = 1e-9) -> ReplayReport:
+def replay_log(
+    path: str | os.PathLike[str],
+    load_rulebook_by_sha256: Callable[[str], Any],
+    interpret: Callable[[Any, Any], Mapping[str, Any]],
+    *,
+    rel_tol: float = 1e-9,
+) -> ReplayReport:
     """Re-run every decision entry with the rulebook it names and report changed results.
 
     ``load_rulebook_by_sha256(sha)`` returns the archived rulebook, or None / raises
@@ -487,8 +607,7 @@ def replay_log(path: str | os.PathLike[str], load_rulebook_by_sha256: Callable[[
             try:
                 fresh = interpret(rulebook, entry["input"])
             except Exception as exc:  # a replay reports, never stops
-                note(ReplayOutcome(number, seq, "error", sha,
-                                   message=f"{type(exc).__name__}: {exc}"))
+                note(ReplayOutcome(number, seq, "error", sha, message=f"{type(exc).__name__}: {exc}"))
                 continue
             diffs = compare_results(entry["result"], fresh, rel_tol=rel_tol)
             note(ReplayOutcome(number, seq, "differs" if diffs else "same", sha, diffs))
@@ -514,9 +633,12 @@ def _fetch(load: Callable[[str], Any], sha: str) -> tuple[Any, str]:
 
 # ---------------------------------------------------------------- text for the CLI
 
+
 def render_verify(report: VerifyReport) -> str:
-    head = (f"{report.path}: {'ok' if report.ok else 'FAILED'}, {report.entries} entries, "
-            f"last {report.last_sha256[:16] or '-'}")
+    head = (
+        f"{report.path}: {'ok' if report.ok else 'FAILED'}, {report.entries} entries, "
+        f"last {report.last_sha256[:16] or '-'}"
+    )
     lines = [head] + [f"  {i.severity}: {i.render(report.path)}" for i in report.issues]
     lines += [f"  repair entry seq {seq}: {actions}" for seq, actions in report.repairs]
     return "\n".join(lines)
@@ -526,7 +648,6 @@ def render_replay(report: ReplayReport) -> str:
     counts = ", ".join(f"{n} {o}" for o, n in report.counts.items() if n)
     lines = [f"{report.path}: {counts or 'no decision entries'}"]
     for o in report.outcomes:
-        lines.append(f"  line {o.line} (seq {o.seq}): {o.outcome}" + (f": {o.message}"
-                                                                        if o.message else ""))
+        lines.append(f"  line {o.line} (seq {o.seq}): {o.outcome}" + (f": {o.message}" if o.message else ""))
         lines += [f"    {d.field}: {d.logged!r} -> {d.replayed!r}" for d in o.differences]
     return "\n".join(lines)

@@ -55,45 +55,114 @@ import hmac
 import json
 import os
 import threading
+from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, Callable, Iterator, Mapping
+from typing import Any
 
 from gasrules.core.errors import EngineError
 
 __all__ = [
-    "AppendReceipt", "DecisionLog", "RecordConfig", "RecordError", "anchor_path",
-    "apply_context_policy", "canonical_json", "entry_hash", "mask_value", "sha256_hex",
+    "AppendReceipt",
+    "DecisionLog",
+    "RecordConfig",
+    "RecordError",
+    "anchor_path",
+    "apply_context_policy",
+    "canonical_json",
+    "entry_hash",
+    "mask_value",
+    "sha256_hex",
 ]
-_MOVED = frozenset({"Difference", "LogIssue", "RepairReport", "ReplayOutcome", "ReplayReport",
-                    "VerifyReport", "compare_results", "render_replay", "render_verify",
-                    "repair_log", "replay_log", "verify_log", "REPLAY_OUTCOMES"})
+_MOVED = frozenset(
+    {
+        "Difference",
+        "LogIssue",
+        "RepairReport",
+        "ReplayOutcome",
+        "ReplayReport",
+        "VerifyReport",
+        "compare_results",
+        "render_replay",
+        "render_verify",
+        "repair_log",
+        "replay_log",
+        "verify_log",
+        "REPLAY_OUTCOMES",
+    }
+)
 
 RECORD_FORMAT = 1
 ZERO_SHA = "0" * 64
 CONTEXT_POLICIES = ("keep", "mask", "drop")
 DEFAULT_IDENTIFIER_KEYS: tuple[str, ...] = (
-    "record_number", "patient_id", "mrn", "name", "patient_name", "given_name", "family_name",
-    "birth_date", "date_of_birth", "dob", "address", "phone", "email", "insurance_number",
+    "record_number",
+    "patient_id",
+    "mrn",
+    "name",
+    "patient_name",
+    "given_name",
+    "family_name",
+    "birth_date",
+    "date_of_birth",
+    "dob",
+    "address",
+    "phone",
+    "email",
+    "insurance_number",
 )
-LOG_CODES = ("log_missing", "malformed_line", "malformed_entry", "entry_hash_mismatch",
-             "input_hash_mismatch", "output_hash_mismatch", "chain_break", "seq_gap", "torn_tail",
-             "truncated", "anchor_missing", "anchor_malformed", "anchor_mismatch", "anchor_lag",
-             "witness_missing")
+LOG_CODES = (
+    "log_missing",
+    "malformed_line",
+    "malformed_entry",
+    "entry_hash_mismatch",
+    "input_hash_mismatch",
+    "output_hash_mismatch",
+    "chain_break",
+    "seq_gap",
+    "torn_tail",
+    "truncated",
+    "anchor_missing",
+    "anchor_malformed",
+    "anchor_mismatch",
+    "anchor_lag",
+    "witness_missing",
+)
 WARNING_CODES = frozenset({"anchor_lag"})
-_ENTRY_FIELDS = {"record_format": int, "kind": str, "seq": int, "time": str,
-                 "engine_version": str, "prev": str, "entry_sha256": str}
-_DECISION_FIELDS = {"input": object, "result": dict, "rulebook": dict, "context_policy": str,
-                    "input_sha256": str, "output_sha256": str}
+_ENTRY_FIELDS = {
+    "record_format": int,
+    "kind": str,
+    "seq": int,
+    "time": str,
+    "engine_version": str,
+    "prev": str,
+    "entry_sha256": str,
+}
+_DECISION_FIELDS = {
+    "input": object,
+    "result": dict,
+    "rulebook": dict,
+    "context_policy": str,
+    "input_sha256": str,
+    "output_sha256": str,
+}
 
 
 class RecordError(EngineError):
     """A decision record could not be written, or a log cannot be appended to or repaired."""
 
-    def __init__(self, code: str, message: str, *, path: str = "", line: int | None = None,
-                 field: str = "", accepted: str = ""):
+    def __init__(
+        self,
+        code: str,
+        message: str,
+        *,
+        path: str = "",
+        line: int | None = None,
+        field: str = "",
+        accepted: str = "",
+    ):
         self.code, self.path, self.line = code, path, line
         self.field, self.accepted = field, accepted
         where = f"{path}:{line}: " if path and line else (f"{path}: " if path else "")
@@ -103,16 +172,20 @@ class RecordError(EngineError):
 
 # ---------------------------------------------------------------- canonical JSON and hashing
 
+
 def canonical_json(obj: Any, where: str = "") -> bytes:
     """The one canonical encoding (see the module docstring)."""
     try:
-        return json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=False,
-                          allow_nan=False).encode("utf-8")
+        return json.dumps(
+            obj, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False
+        ).encode("utf-8")
     except (TypeError, ValueError) as exc:
-        raise RecordError("record.not_json", f"cannot encode as canonical JSON: {exc}",
-                          field=where or "<value>",
-                          accepted="JSON values: finite numbers, strings, lists, objects "
-                                   "with string keys") from exc
+        raise RecordError(
+            "record.not_json",
+            f"cannot encode as canonical JSON: {exc}",
+            field=where or "<value>",
+            accepted="JSON values: finite numbers, strings, lists, objects with string keys",
+        ) from exc
 
 
 def sha256_hex(data: bytes) -> str:
@@ -144,8 +217,12 @@ def _require_str_keys(obj: Any, where: str) -> None:
         if type(o) is dict:
             for k, v in o.items():
                 if type(k) is not str:
-                    raise RecordError("record.not_json", f"object key {k!r} is not a string",
-                                      field=_path_to(obj, k, where), accepted="string keys only")
+                    raise RecordError(
+                        "record.not_json",
+                        f"object key {k!r} is not a string",
+                        field=_path_to(obj, k, where),
+                        accepted="string keys only",
+                    )
                 if type(v) in (dict, list, tuple):
                     stack.append(v)
         elif type(o) in (list, tuple):
@@ -156,8 +233,7 @@ def _path_to(obj: Any, bad: Any, where: str) -> str:
     """The path of the first object holding key ``bad`` (only called after a failed check)."""
     if isinstance(obj, dict) and any(k is bad for k in obj):
         return where
-    kids = obj.items() if isinstance(obj, dict) else \
-        enumerate(obj) if isinstance(obj, (list, tuple)) else ()
+    kids = obj.items() if isinstance(obj, dict) else enumerate(obj) if isinstance(obj, (list, tuple)) else ()
     for k, v in kids:
         found = _path_to(v, bad, f"{where}[{k}]" if isinstance(k, int) else f"{where}.{k}")
         if found:
@@ -167,11 +243,11 @@ def _path_to(obj: Any, bad: Any, where: str) -> str:
 
 def entry_hash(entry: Mapping[str, Any]) -> str:
     """entry_sha256 of an entry: sha256 of its canonical JSON without ``entry_sha256``."""
-    return sha256_hex(_compose({k: canonical_json(v, k) for k, v in entry.items()
-                                if k != "entry_sha256"}))
+    return sha256_hex(_compose({k: canonical_json(v, k) for k, v in entry.items() if k != "entry_sha256"}))
 
 
 # ---------------------------------------------------------------- configuration and masking
+
 
 @dataclass(frozen=True)
 class RecordConfig:
@@ -183,21 +259,39 @@ class RecordConfig:
     mask_chars: int = 16
     fsync: bool = True
     clock: Callable[[], datetime] | None = None
-    anchor_key: bytes = field(default=b"", repr=False)   # HMAC key for keyed anchors (kept outside the log's folder)
+    anchor_key: bytes = field(
+        default=b"", repr=False
+    )  # HMAC key for keyed anchors (kept outside the log's folder)
 
     def __post_init__(self) -> None:
         if self.context_policy not in CONTEXT_POLICIES:
-            raise RecordError("record.bad_config", f"unknown policy {self.context_policy!r}",
-                              field="context_policy", accepted=" | ".join(CONTEXT_POLICIES))
+            raise RecordError(
+                "record.bad_config",
+                f"unknown policy {self.context_policy!r}",
+                field="context_policy",
+                accepted=" | ".join(CONTEXT_POLICIES),
+            )
         if self.context_policy == "mask" and len(self.salt) < 16:
-            raise RecordError("record.bad_config", "masking needs a secret salt",
-                              field="salt", accepted="a string of at least 16 characters")
+            raise RecordError(
+                "record.bad_config",
+                "masking needs a secret salt",
+                field="salt",
+                accepted="a string of at least 16 characters",
+            )
         if not 8 <= self.mask_chars <= 64:
-            raise RecordError("record.bad_config", f"mask_chars is {self.mask_chars}",
-                              field="mask_chars", accepted="an integer from 8 to 64")
+            raise RecordError(
+                "record.bad_config",
+                f"mask_chars is {self.mask_chars}",
+                field="mask_chars",
+                accepted="an integer from 8 to 64",
+            )
         if any(not isinstance(k, str) or not k for k in self.identifier_keys):
-            raise RecordError("record.bad_config", "identifier keys must be non-empty strings",
-                              field="identifier_keys", accepted="a list of key names")
+            raise RecordError(
+                "record.bad_config",
+                "identifier keys must be non-empty strings",
+                field="identifier_keys",
+                accepted="a list of key names",
+            )
 
     @classmethod
     def from_mapping(cls, data: Mapping[str, Any]) -> RecordConfig:
@@ -205,8 +299,12 @@ class RecordConfig:
         known = {"context_policy", "identifier_keys", "salt", "mask_chars", "fsync"}
         unknown = sorted(set(data) - known)
         if unknown:
-            raise RecordError("record.bad_config", f"unknown setting {unknown[0]!r}",
-                              field=unknown[0], accepted=", ".join(sorted(known)))
+            raise RecordError(
+                "record.bad_config",
+                f"unknown setting {unknown[0]!r}",
+                field=unknown[0],
+                accepted=", ".join(sorted(known)),
+            )
         kwargs = dict(data)
         if "identifier_keys" in kwargs:
             kwargs["identifier_keys"] = tuple(kwargs["identifier_keys"])
@@ -218,8 +316,7 @@ def mask_value(value: Any, salt: str, chars: int = 16) -> str:
     return "hmac-sha256:" + digest[:chars]
 
 
-def _apply(obj: Any, cfg: RecordConfig, keys: frozenset[str], path: str,
-           touched: list[str]) -> Any:
+def _apply(obj: Any, cfg: RecordConfig, keys: frozenset[str], path: str, touched: list[str]) -> Any:
     if isinstance(obj, dict):
         out: dict[str, Any] = {}
         for k, v in obj.items():
@@ -253,12 +350,12 @@ def apply_context_policy(record: Any, cfg: RecordConfig) -> tuple[Any, list[str]
             del out["context"]
         return out, ["/context"]
     touched: list[str] = []
-    out["context"] = _apply(ctx, cfg, frozenset(k.lower() for k in cfg.identifier_keys),
-                            "/context", touched)
+    out["context"] = _apply(ctx, cfg, frozenset(k.lower() for k in cfg.identifier_keys), "/context", touched)
     return out, touched
 
 
 # ---------------------------------------------------------------- anchor and tail reading
+
 
 def anchor_path(log: str | os.PathLike[str]) -> Path:
     return Path(str(log) + ".anchor")
@@ -272,8 +369,12 @@ def _read_anchor(path: Path) -> tuple[dict[str, Any] | None, str]:
         return None, "anchor_missing"
     except (OSError, ValueError):
         return None, "anchor_malformed"
-    ok = (isinstance(data, dict) and isinstance(data.get("count"), int)
-          and isinstance(data.get("log_size"), int) and isinstance(data.get("last_sha256"), str))
+    ok = (
+        isinstance(data, dict)
+        and isinstance(data.get("count"), int)
+        and isinstance(data.get("log_size"), int)
+        and isinstance(data.get("last_sha256"), str)
+    )
     return (data, "") if ok else (None, "anchor_malformed")
 
 
@@ -333,27 +434,35 @@ def _read_tail(fd: int, size: int) -> _Tail:
     if nl < 0:
         return _Tail(size, 0, None, buf)
     start = buf.rfind(b"\n", 0, nl) + 1
-    return _Tail(size, pos + nl + 1, buf[start:nl], buf[nl + 1:])
+    return _Tail(size, pos + nl + 1, buf[start:nl], buf[nl + 1 :])
 
 
-def _anchor_verdict(anchor: Mapping[str, Any], last_seq: int, last_sha: str, last_prev: str,
-                    last_len: int, good_end: int) -> tuple[str, str]:
+def _anchor_verdict(
+    anchor: Mapping[str, Any], last_seq: int, last_sha: str, last_prev: str, last_len: int, good_end: int
+) -> tuple[str, str]:
     """Compare the anchor with the log's last complete entry: ("", "") when consistent."""
     a_count, a_sha, a_size = anchor["count"], anchor["last_sha256"], anchor["log_size"]
     if (a_count, a_sha, a_size) == (last_seq, last_sha, good_end):
         return "", ""
-    if (a_count == last_seq - 1 and a_sha == last_prev and a_size == good_end - last_len):
-        return "anchor_lag", (f"entry {last_seq} is complete but the anchor still counts "
-                              f"{a_count} (crash between append and anchor update)")
+    if a_count == last_seq - 1 and a_sha == last_prev and a_size == good_end - last_len:
+        return "anchor_lag", (
+            f"entry {last_seq} is complete but the anchor still counts "
+            f"{a_count} (crash between append and anchor update)"
+        )
     if last_seq < a_count:
-        return "truncated", (f"the anchor says {a_count} entries and {a_size} bytes; the log "
-                             f"ends at entry {last_seq} and {good_end} bytes")
-    return "anchor_mismatch", (f"the anchor says entry {a_count} {a_sha[:12]}... at {a_size} "
-                               f"bytes; the log ends with entry {last_seq} {last_sha[:12]}... "
-                               f"at {good_end} bytes")
+        return "truncated", (
+            f"the anchor says {a_count} entries and {a_size} bytes; the log "
+            f"ends at entry {last_seq} and {good_end} bytes"
+        )
+    return "anchor_mismatch", (
+        f"the anchor says entry {a_count} {a_sha[:12]}... at {a_size} "
+        f"bytes; the log ends with entry {last_seq} {last_sha[:12]}... "
+        f"at {good_end} bytes"
+    )
 
 
 # ---------------------------------------------------------------- writer
+
 
 @dataclass(frozen=True)
 class AppendReceipt:
@@ -399,8 +508,12 @@ class _Store:
         tail = _read_tail(self.fd, size)
         where = str(self.path)
         if tail.torn:
-            raise RecordError("torn_tail", f"the last {len(tail.torn)} bytes are an incomplete "
-                              "line (crash mid-write); run repair_log() on this log", path=where)
+            raise RecordError(
+                "torn_tail",
+                f"the last {len(tail.torn)} bytes are an incomplete "
+                "line (crash mid-write); run repair_log() on this log",
+                path=where,
+            )
         anchor, problem = _read_anchor(self.anchor)
         if tail.last_line is None:  # empty log: new, or emptied
             fresh = anchor is not None and (anchor["count"], anchor["log_size"]) == (0, 0)
@@ -410,25 +523,39 @@ class _Store:
                 self._cache = (0, 0, ZERO_SHA)
                 return 0, ZERO_SHA, 0
             state = "unreadable" if anchor is None else f"at entry {anchor['count']}"
-            raise RecordError(problem or "truncated", f"the log is empty but its anchor is "
-                              f"{state}; run verify_log()", path=where)
+            raise RecordError(
+                problem or "truncated",
+                f"the log is empty but its anchor is {state}; run verify_log()",
+                path=where,
+            )
         try:
             last = json.loads(tail.last_line or b"")
             seq, sha, prev = last["seq"], last["entry_sha256"], last["prev"]
             good = entry_hash(last) == sha
         except (ValueError, KeyError, TypeError, RecordError):
             if anchor is not None and anchor["log_size"] == size - len(tail.last_line or b"") - 1:
-                raise RecordError("torn_tail", "the last line is unreadable and the anchor never "
-                                  "counted it (crash mid-write); run repair_log() on this log",
-                                  path=where) from None
-            raise RecordError("malformed_line", "the last entry cannot be read; run verify_log()",
-                              path=where) from None
+                raise RecordError(
+                    "torn_tail",
+                    "the last line is unreadable and the anchor never "
+                    "counted it (crash mid-write); run repair_log() on this log",
+                    path=where,
+                ) from None
+            raise RecordError(
+                "malformed_line", "the last entry cannot be read; run verify_log()", path=where
+            ) from None
         if not good:
-            raise RecordError("entry_hash_mismatch", f"the last entry (seq {seq}) does not "
-                              "match its entry_sha256; run verify_log()", path=where)
+            raise RecordError(
+                "entry_hash_mismatch",
+                f"the last entry (seq {seq}) does not match its entry_sha256; run verify_log()",
+                path=where,
+            )
         if problem:
-            raise RecordError(problem, f"{self.anchor.name}: {problem.replace('_', ' ')}; "
-                              "run repair_log(acknowledge_anchor=True) after checking", path=where)
+            raise RecordError(
+                problem,
+                f"{self.anchor.name}: {problem.replace('_', ' ')}; "
+                "run repair_log(acknowledge_anchor=True) after checking",
+                path=where,
+            )
         assert anchor is not None
         code, why = _anchor_verdict(anchor, seq, sha, prev, len(tail.last_line or b"") + 1, size)
         if code == "anchor_lag" and heal_lag:
@@ -441,15 +568,19 @@ class _Store:
     def append(self, parts: dict[str, bytes], count: int, last: str) -> tuple[int, str]:
         """Chain and write one entry (caller holds the lock); returns (seq, entry_sha256)."""
         seq = count + 1
-        parts = {**parts, "seq": str(seq).encode(), "prev": canonical_json(last),
-                 "record_format": str(RECORD_FORMAT).encode()}
+        parts = {
+            **parts,
+            "seq": str(seq).encode(),
+            "prev": canonical_json(last),
+            "record_format": str(RECORD_FORMAT).encode(),
+        }
         sha = sha256_hex(_compose(parts))
         line = _compose({**parts, "entry_sha256": canonical_json(sha)}) + b"\n"
         before = os.fstat(self.fd).st_size
         try:
             view = memoryview(line)
             while view:
-                view = view[os.write(self.fd, view):]
+                view = view[os.write(self.fd, view) :]
             if self.do_fsync:
                 os.fsync(self.fd)
         except BaseException:
@@ -465,15 +596,20 @@ class _Store:
 
 
 def _now(clock: Callable[[], datetime] | None) -> str:
-    t = clock() if clock else datetime.now(timezone.utc)
+    t = clock() if clock else datetime.now(UTC)
     if t.tzinfo is None:
-        raise RecordError("record.bad_clock", "the clock returned a naive datetime",
-                          field="clock", accepted="a timezone-aware datetime")
-    return t.astimezone(timezone.utc).isoformat(timespec="microseconds").replace("+00:00", "Z")
+        raise RecordError(
+            "record.bad_clock",
+            "the clock returned a naive datetime",
+            field="clock",
+            accepted="a timezone-aware datetime",
+        )
+    return t.astimezone(UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
 
 
 def _engine_version() -> str:
     from gasrules.core.version import __version__  # late: the package __init__ may import this module
+
     return str(__version__)
 
 
@@ -481,12 +617,18 @@ def _rulebook_ref(rulebook: Any, result: Any) -> dict[str, Any]:
     if rulebook is not None and not isinstance(rulebook, Mapping):
         ref = {k: getattr(rulebook, k, None) for k in ("id", "version", "sha256")}
     else:
-        ref = dict(rulebook if rulebook is not None else
-                   (result.get("rulebook") if isinstance(result, dict) else None) or {})
+        ref = dict(
+            rulebook
+            if rulebook is not None
+            else (result.get("rulebook") if isinstance(result, dict) else None) or {}
+        )
     if not all(isinstance(ref.get(k), str) and ref.get(k) for k in ("id", "version", "sha256")):
-        raise RecordError("record.no_rulebook", "no rulebook id, version and sha256 given",
-                          field="rulebook", accepted="a CompiledRulebook or {id, version, "
-                          "sha256}, or a result carrying them")
+        raise RecordError(
+            "record.no_rulebook",
+            "no rulebook id, version and sha256 given",
+            field="rulebook",
+            accepted="a CompiledRulebook or {id, version, sha256}, or a result carrying them",
+        )
     return {k: ref[k] for k in ("id", "version", "sha256")}
 
 
@@ -511,8 +653,9 @@ class DecisionLog:
     def path(self) -> Path:
         return self._store.path
 
-    def append(self, case: Any, result: Mapping[str, Any], *, rulebook: Any = None,
-               engine_version: str | None = None) -> AppendReceipt:
+    def append(
+        self, case: Any, result: Mapping[str, Any], *, rulebook: Any = None, engine_version: str | None = None
+    ) -> AppendReceipt:
         """Record one interpretation; the rulebook and engine version default to the result's."""
         cfg = self.config
         logged_case, _ = apply_context_policy(case, cfg)
@@ -523,7 +666,9 @@ class DecisionLog:
         result_b = canonical_json(logged_result, "result")
         version = engine_version or result.get("engine_version") or _engine_version()
         parts = {
-            "kind": b'"decision"', "input": input_b, "result": result_b,
+            "kind": b'"decision"',
+            "input": input_b,
+            "result": result_b,
             "rulebook": canonical_json(_rulebook_ref(rulebook, result)),
             "engine_version": canonical_json(str(version)),
             "context_policy": canonical_json(cfg.context_policy),

@@ -21,9 +21,10 @@ from __future__ import annotations
 import ast
 import json
 import re
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 from gasrules.core.errors import RulebookError
 
@@ -39,15 +40,15 @@ CLASS_MEANING = {
 
 @dataclass(frozen=True)
 class Change:
-    kind: str          # metadata | parameter | rule | derived | input | step | presentation
-    key: str           # the stable id: parameter name, rule id, ... (with [selector] for by-values)
-    aspect: str        # what changed: value, bounds, when, findings.code, added, removed ...
-    cls: str           # none | patch | minor | major
-    why: str           # the reason for the class, in words
+    kind: str  # metadata | parameter | rule | derived | input | step | presentation
+    key: str  # the stable id: parameter name, rule id, ... (with [selector] for by-values)
+    aspect: str  # what changed: value, bounds, when, findings.code, added, removed ...
+    cls: str  # none | patch | minor | major
+    why: str  # the reason for the class, in words
     old: Any = None
     new: Any = None
     unit: str = ""
-    old_where: str = ""   # file:line:col that set the old value (parameters: the file that set it)
+    old_where: str = ""  # file:line:col that set the old value (parameters: the file that set it)
     new_where: str = ""
 
 
@@ -59,7 +60,7 @@ class Side:
     status: str
     sha256: str
     files: list[str]
-    approvals: list[dict[str, Any]] = field(default_factory=list)   # from release manifests, when given
+    approvals: list[dict[str, Any]] = field(default_factory=list)  # from release manifests, when given
 
 
 @dataclass
@@ -85,21 +86,29 @@ class RulebookDiff:
     def version_error(self) -> str | None:
         """Why the version is wrong for the content change, or None when it is acceptable."""
         if self.old.id != self.new.id:
-            return None          # different rulebooks (e.g. a base and a site overlay): no lineage
+            return None  # different rulebooks (e.g. a base and a site overlay): no lineage
         need, bump = self.required, self.bump
         if bump == "backwards":
             return f"version goes backwards ({self.old.version} -> {self.new.version})"
         if need == "none" or _RANK[bump] >= _RANK[need]:
             return None
         what = "no version change" if bump == "none" else f"only a {bump} bump"
-        return (f"the content change is {need} ({CLASS_MEANING[need]}) but the version shows {what} "
-                f"({self.old.version} -> {self.new.version}); expected at least {_next_version(self.old.version, need)}")
+        return (
+            f"the content change is {need} ({CLASS_MEANING[need]}) but the version shows {what} "
+            f"({self.old.version} -> {self.new.version}); expected at least {_next_version(self.old.version, need)}"
+        )
 
     def as_dict(self) -> dict[str, Any]:
-        return {"old": asdict(self.old), "new": asdict(self.new), "required": self.required, "bump": self.bump,
-                "version_error": self.version_error, "notes": list(self.notes),
-                "counts": {c: sum(1 for x in self.changes if x.cls == c) for c in CLASSES},
-                "changes": [asdict(c) for c in self.changes]}
+        return {
+            "old": asdict(self.old),
+            "new": asdict(self.new),
+            "required": self.required,
+            "bump": self.bump,
+            "version_error": self.version_error,
+            "notes": list(self.notes),
+            "counts": {c: sum(1 for x in self.changes if x.cls == c) for c in CLASSES},
+            "changes": [asdict(c) for c in self.changes],
+        }
 
     def changed_parameters(self) -> dict[str, tuple[Any, Any]]:
         """Parameter name (with [selector] for a by-value) -> (old value, new value), values only."""
@@ -159,8 +168,14 @@ def _side(path: str | Path, res: Any) -> Side:
     from gasrules.rulebook.identity import identity_hash
 
     md = res.metadata
-    return Side(str(path), str(md["id"]), str(md["version"]), str(md.get("status", "")), identity_hash(res),
-                [d.file for d in res.documents])
+    return Side(
+        str(path),
+        str(md["id"]),
+        str(md["version"]),
+        str(md.get("status", "")),
+        identity_hash(res),
+        [d.file for d in res.documents],
+    )
 
 
 def diff_paths(old: str | Path, new: str | Path, release_dir: str | Path | None = None) -> RulebookDiff:
@@ -178,19 +193,36 @@ def attach_approvals(d: RulebookDiff, release_dir: Path) -> None:
 
     entries = [e for e in read_manifests(release_dir) if not e.problem]
     for side in (d.old, d.new):
-        side.approvals = [{"manifest": e.path.name, "date": e.manifest.get("date", ""),
-                           "approvers": e.manifest.get("approvers") or []}
-                          for e in entries if e.rulebook.get("sha256") == side.sha256]
+        side.approvals = [
+            {
+                "manifest": e.path.name,
+                "date": e.manifest.get("date", ""),
+                "approvers": e.manifest.get("approvers") or [],
+            }
+            for e in entries
+            if e.rulebook.get("sha256") == side.sha256
+        ]
     if d.old.approvals != d.new.approvals:
-        d.changes.append(Change("metadata", "approvals", "value", "none", "release approvals (not clinical content)",
-                                _approval_text(d.old.approvals), _approval_text(d.new.approvals)))
+        d.changes.append(
+            Change(
+                "metadata",
+                "approvals",
+                "value",
+                "none",
+                "release approvals (not clinical content)",
+                _approval_text(d.old.approvals),
+                _approval_text(d.new.approvals),
+            )
+        )
 
 
 def _approval_text(approvals: list[dict[str, Any]]) -> str:
     if not approvals:
         return "not approved"
-    return "; ".join(f"{a['date']}: " + ", ".join(f"{p.get('name')} ({p.get('role')})" for p in a["approvers"])
-                     for a in approvals)
+    return "; ".join(
+        f"{a['date']}: " + ", ".join(f"{p.get('name')} ({p.get('role')})" for p in a["approvers"])
+        for a in approvals
+    )
 
 
 def diff_resolved(old: Any, new: Any, old_path: str = "old", new_path: str = "new") -> RulebookDiff:
@@ -203,8 +235,14 @@ def diff_resolved(old: Any, new: Any, old_path: str = "old", new_path: str = "ne
     d.changes += _keyed("input", co["inputs"], cn["inputs"], _INPUT_FIELDS, old.inputs, new.inputs)
     d.changes += _keyed("derived", co["derived"], cn["derived"], _DERIVED_FIELDS, old.derived, new.derived)
     d.changes += _rules(old, new, co["rules"], cn["rules"])
-    d.changes += _keyed("step", {k: b for k, (b, _) in old.steps.items()}, {k: b for k, (b, _) in new.steps.items()},
-                        _STEP_FIELDS, old.steps, new.steps)
+    d.changes += _keyed(
+        "step",
+        {k: b for k, (b, _) in old.steps.items()},
+        {k: b for k, (b, _) in new.steps.items()},
+        _STEP_FIELDS,
+        old.steps,
+        new.steps,
+    )
     d.changes += _presentation(old, new)
     if d.old.sha256 == d.new.sha256 and d.old.version == d.new.version and not d.content_changes:
         d.notes.append("identical clinical content (same content hash)")
@@ -223,18 +261,53 @@ def _metadata(old: Any, new: Any) -> list[Change]:
     for key in ("id", "version", "status", "title", "effective_date", "owners"):
         a, b = old.metadata.get(key), new.metadata.get(key)
         if a != b:
-            out.append(Change("metadata", key, "value", "none", "metadata (not clinical content)",
-                              _plain(a), _plain(b), "", str(old.metadata_ref.loc(key)), str(new.metadata_ref.loc(key))))
+            out.append(
+                Change(
+                    "metadata",
+                    key,
+                    "value",
+                    "none",
+                    "metadata (not clinical content)",
+                    _plain(a),
+                    _plain(b),
+                    "",
+                    str(old.metadata_ref.loc(key)),
+                    str(new.metadata_ref.loc(key)),
+                )
+            )
     a, b = old.metadata.get("intended_use"), new.metadata.get("intended_use")
-    if a != b:   # who and where the rulebook may be used: shown to reviewers, hashed, never silent
-        out.append(Change("metadata", "intended_use", "value", "minor", "intended use (population, setting, "
-                          "exclusions) differs", _plain(a), _plain(b), "", str(old.metadata_ref.loc("intended_use")),
-                          str(new.metadata_ref.loc("intended_use"))))
+    if a != b:  # who and where the rulebook may be used: shown to reviewers, hashed, never silent
+        out.append(
+            Change(
+                "metadata",
+                "intended_use",
+                "value",
+                "minor",
+                "intended use (population, setting, exclusions) differs",
+                _plain(a),
+                _plain(b),
+                "",
+                str(old.metadata_ref.loc("intended_use")),
+                str(new.metadata_ref.loc("intended_use")),
+            )
+        )
     a_versions = {str(e.get("version")) for e in old.metadata.get("changelog") or []}
     for entry in new.metadata.get("changelog") or []:
         if str(entry.get("version")) not in a_versions:
-            out.append(Change("metadata", "changelog", "added", "none", "metadata (not clinical content)",
-                              None, _plain(entry), "", "", str(new.metadata_ref.loc("changelog"))))
+            out.append(
+                Change(
+                    "metadata",
+                    "changelog",
+                    "added",
+                    "none",
+                    "metadata (not clinical content)",
+                    None,
+                    _plain(entry),
+                    "",
+                    "",
+                    str(new.metadata_ref.loc("changelog")),
+                )
+            )
     return out
 
 
@@ -254,16 +327,35 @@ def _parameters(old: Any, new: Any) -> list[Change]:
         nw = str(new.param_set_by[name].loc()) if name in new.param_set_by else ""
         unit = str((b or a or {}).get("unit", ""))
         if a is None:
-            out.append(Change("parameter", name, "added", "minor", "new parameter", None, b.get("value"), unit, "", nw))
+            out.append(
+                Change(
+                    "parameter", name, "added", "minor", "new parameter", None, b.get("value"), unit, "", nw
+                )
+            )
             continue
         if b is None:
-            out.append(Change("parameter", name, "removed", "major", "parameter removed", a.get("value"), None, unit, ow, ""))
+            out.append(
+                Change(
+                    "parameter",
+                    name,
+                    "removed",
+                    "major",
+                    "parameter removed",
+                    a.get("value"),
+                    None,
+                    unit,
+                    ow,
+                    "",
+                )
+            )
             continue
         out += _param_changes(name, a, b, unit, ow, nw)
     return out
 
 
-def _param_changes(name: str, a: dict[str, Any], b: dict[str, Any], unit: str, ow: str, nw: str) -> list[Change]:
+def _param_changes(
+    name: str, a: dict[str, Any], b: dict[str, Any], unit: str, ow: str, nw: str
+) -> list[Change]:
     out: list[Change] = []
 
     def add(key: str, aspect: str, cls: str, why: str, old: Any, new: Any) -> None:
@@ -271,31 +363,60 @@ def _param_changes(name: str, a: dict[str, Any], b: dict[str, Any], unit: str, o
         out.append(Change("parameter", key, aspect, cls, why, _plain(old), _plain(new), shown, ow, nw))
 
     if a.get("unit") != b.get("unit"):
-        add(name, "unit", "major", "the unit changed: every comparison with it changes meaning", a.get("unit"), b.get("unit"))
+        add(
+            name,
+            "unit",
+            "major",
+            "the unit changed: every comparison with it changes meaning",
+            a.get("unit"),
+            b.get("unit"),
+        )
     old_bounds, new_bounds = _bounds(a), _bounds(b)
     if old_bounds != new_bounds:
         cls, why = _bounds_class(old_bounds, new_bounds)
         add(name, "bounds", cls, why, a.get("bounds"), b.get("bounds"))
     if a.get("choices") != b.get("choices"):
         gone = set(a.get("choices") or []) - set(b.get("choices") or [])
-        add(name, "choices", "major" if gone else "minor",
-            "a choice was withdrawn" if gone else "choices widened", a.get("choices"), b.get("choices"))
+        add(
+            name,
+            "choices",
+            "major" if gone else "minor",
+            "a choice was withdrawn" if gone else "choices widened",
+            a.get("choices"),
+            b.get("choices"),
+        )
     if a.get("value") != b.get("value"):
         cls, why = _value_class(a, b.get("value"))
         add(name, "value", cls, why, a.get("value"), b.get("value"))
     ab, bb = a.get("by") or {}, b.get("by") or {}
     if ab.get("input") != bb.get("input"):
-        add(name, "by.input", "major", "a different input selects the value", ab.get("input"), bb.get("input"))
+        add(
+            name, "by.input", "major", "a different input selects the value", ab.get("input"), bb.get("input")
+        )
     av, bv = ab.get("values") or {}, bb.get("values") or {}
     for sel in _union(av, bv):
         if av.get(sel) == bv.get(sel):
             continue
         key = f"{name}[{bb.get('input') or ab.get('input')}={sel}]"
         if sel not in bv:
-            add(key, "value", "major", "a selected value was withdrawn (falls back to the general value)", av[sel], None)
+            add(
+                key,
+                "value",
+                "major",
+                "a selected value was withdrawn (falls back to the general value)",
+                av[sel],
+                None,
+            )
         elif sel not in av:
             cls, why = _value_class(a, bv[sel])
-            add(key, "value", max(cls, "minor", key=_RANK.__getitem__), "new selected value; " + why, None, bv[sel])
+            add(
+                key,
+                "value",
+                max(cls, "minor", key=_RANK.__getitem__),
+                "new selected value; " + why,
+                None,
+                bv[sel],
+            )
         else:
             cls, why = _value_class(a, bv[sel])
             add(key, "value", cls, why, av[sel], bv[sel])
@@ -421,7 +542,9 @@ _STEP_FIELDS: dict[str, Classifier] = {
 _RULE_FIELDS: dict[str, Classifier] = {
     "when": lambda a, b: _expr(a, b, "condition"),
     "needs": lambda a, b: None if sorted(a or []) == sorted(b or []) else ("major", "inputs needed changed"),
-    "disorders": lambda a, b: None if sorted(a or []) == sorted(b or []) else ("major", "disorders asserted changed"),
+    "disorders": lambda a, b: (
+        None if sorted(a or []) == sorted(b or []) else ("major", "disorders asserted changed")
+    ),
     "qualifiers": _same("major", "qualifiers asserted changed"),
     "stop": _same("major", "whether it halts later rules changed"),
     "always": _same("major", "whether it runs after a halt changed"),
@@ -448,23 +571,46 @@ def _where(refs: dict[str, Any], name: str, *sub: Any) -> str:
     return str(item[1].loc(*sub)) if item is not None else ""
 
 
-def _keyed(kind: str, a: dict[str, Any], b: dict[str, Any], fields: dict[str, Classifier],
-           arefs: dict[str, Any], brefs: dict[str, Any]) -> list[Change]:
+def _keyed(
+    kind: str,
+    a: dict[str, Any],
+    b: dict[str, Any],
+    fields: dict[str, Classifier],
+    arefs: dict[str, Any],
+    brefs: dict[str, Any],
+) -> list[Change]:
     out: list[Change] = []
     for name in _union(a, b):
         if name not in b:
-            out.append(Change(kind, name, "removed", "major", f"{kind} removed", old_where=_where(arefs, name)))
+            out.append(
+                Change(kind, name, "removed", "major", f"{kind} removed", old_where=_where(arefs, name))
+            )
             continue
         if name not in a:
             out.append(Change(kind, name, "added", "minor", f"new {kind}", new_where=_where(brefs, name)))
             continue
-        out += _fields(kind, name, a[name], b[name], fields, lambda *s: _where(arefs, name, *s),
-                       lambda *s: _where(brefs, name, *s))
+        out += _fields(
+            kind,
+            name,
+            a[name],
+            b[name],
+            fields,
+            lambda *s: _where(arefs, name, *s),
+            lambda *s: _where(brefs, name, *s),
+        )
     return out
 
 
-def _fields(kind: str, key: str, a: dict[str, Any], b: dict[str, Any], fields: dict[str, Classifier],
-            aw: Callable[..., str], bw: Callable[..., str], prefix: str = "") -> list[Change]:
+def _fields(
+    kind: str,
+    key: str,
+    a: dict[str, Any],
+    b: dict[str, Any],
+    fields: dict[str, Classifier],
+    aw: Callable[..., str],
+    bw: Callable[..., str],
+    prefix: str = "",
+) -> list[Change]:
     out = []
     for f in _union(a, b):
         if a.get(f) == b.get(f):
@@ -473,8 +619,20 @@ def _fields(kind: str, key: str, a: dict[str, Any], b: dict[str, Any], fields: d
         verdict = classify(a.get(f), b.get(f))
         if verdict is None:
             continue
-        out.append(Change(kind, key, prefix + f, verdict[0], verdict[1], _plain(a.get(f)), _plain(b.get(f)), "",
-                          aw(f), bw(f)))
+        out.append(
+            Change(
+                kind,
+                key,
+                prefix + f,
+                verdict[0],
+                verdict[1],
+                _plain(a.get(f)),
+                _plain(b.get(f)),
+                "",
+                aw(f),
+                bw(f),
+            )
+        )
     return out
 
 
@@ -491,21 +649,50 @@ def _rules(old: Any, new: Any, ca: list[dict[str, Any]], cb: list[dict[str, Any]
         aw = lambda *s, rid=rid: _where(arefs, rid, *s)  # noqa: E731
         bw = lambda *s, rid=rid: _where(brefs, rid, *s)  # noqa: E731
         if rid not in b:
-            out.append(Change("rule", rid, "removed", "major", "rule removed: its conclusions disappear",
-                              old_where=aw()))
+            out.append(
+                Change(
+                    "rule", rid, "removed", "major", "rule removed: its conclusions disappear", old_where=aw()
+                )
+            )
             continue
         if rid not in a:
-            out.append(Change("rule", rid, "added", "minor", "new rule", None, b[rid].get("when"), new_where=bw()))
+            out.append(
+                Change("rule", rid, "added", "minor", "new rule", None, b[rid].get("when"), new_where=bw())
+            )
             continue
         ra, rb_ = a[rid], b[rid]
         sa, sb = ra.get("status", "active"), rb_.get("status", "active")
         if sa != sb:
             cls, why = _status_class(sa, sb)
-            out.append(Change("rule", rid, "status", cls, why, _status_text(sa, areason.get(rid)),
-                              _status_text(sb, breason.get(rid)), "", aw("status"), bsusp.get(rid) or bw("status")))
+            out.append(
+                Change(
+                    "rule",
+                    rid,
+                    "status",
+                    cls,
+                    why,
+                    _status_text(sa, areason.get(rid)),
+                    _status_text(sb, breason.get(rid)),
+                    "",
+                    aw("status"),
+                    bsusp.get(rid) or bw("status"),
+                )
+            )
         elif sa == "suspended" and areason.get(rid) != breason.get(rid):
-            out.append(Change("rule", rid, "suspension reason", "patch", "reason reworded",
-                              areason.get(rid), breason.get(rid), "", aw(), bw()))
+            out.append(
+                Change(
+                    "rule",
+                    rid,
+                    "suspension reason",
+                    "patch",
+                    "reason reworded",
+                    areason.get(rid),
+                    breason.get(rid),
+                    "",
+                    aw(),
+                    bw(),
+                )
+            )
         rest_a = {k: v for k, v in ra.items() if k not in ("status", "findings", "id")}
         rest_b = {k: v for k, v in rb_.items() if k not in ("status", "findings", "id")}
         out += _fields("rule", rid, rest_a, rest_b, _RULE_FIELDS, aw, bw)
@@ -525,22 +712,58 @@ def _status_text(status: str, reason: str | None) -> str:
     return f"{status} ({reason})" if status == "suspended" and reason else status
 
 
-def _findings(rid: str, fa: list[dict[str, Any]], fb: list[dict[str, Any]], aw: Callable[..., str],
-              bw: Callable[..., str]) -> list[Change]:
+def _findings(
+    rid: str,
+    fa: list[dict[str, Any]],
+    fb: list[dict[str, Any]],
+    aw: Callable[..., str],
+    bw: Callable[..., str],
+) -> list[Change]:
     a = {f["code"]: (i, f) for i, f in enumerate(fa)}
     b = {f["code"]: (i, f) for i, f in enumerate(fb)}
     out = []
     for code in _union(a, b):
         if code not in b:
-            out.append(Change("rule", rid, f"finding {code} removed", "major", "finding code withdrawn", code, None,
-                              "", aw("findings", a[code][0])))
+            out.append(
+                Change(
+                    "rule",
+                    rid,
+                    f"finding {code} removed",
+                    "major",
+                    "finding code withdrawn",
+                    code,
+                    None,
+                    "",
+                    aw("findings", a[code][0]),
+                )
+            )
         elif code not in a:
-            out.append(Change("rule", rid, f"finding {code} added", "major", "new finding code from an existing rule",
-                              None, code, "", "", bw("findings", b[code][0])))
+            out.append(
+                Change(
+                    "rule",
+                    rid,
+                    f"finding {code} added",
+                    "major",
+                    "new finding code from an existing rule",
+                    None,
+                    code,
+                    "",
+                    "",
+                    bw("findings", b[code][0]),
+                )
+            )
         else:
             (ia, x), (ib, y) = a[code], b[code]
-            out += _fields("rule", rid, x, y, _FINDING_FIELDS, lambda *s, i=ia: aw("findings", i, *s),
-                           lambda *s, i=ib: bw("findings", i, *s), prefix=f"finding {code}.")
+            out += _fields(
+                "rule",
+                rid,
+                x,
+                y,
+                _FINDING_FIELDS,
+                lambda *s, i=ia: aw("findings", i, *s),
+                lambda *s, i=ib: bw("findings", i, *s),
+                prefix=f"finding {code}.",
+            )
     return out
 
 
@@ -549,11 +772,26 @@ def _presentation(old: Any, new: Any) -> list[Change]:
     pa, pb = old.presentation, new.presentation
     for key in _union(pa, pb):
         if pa.get(key) != pb.get(key):
-            cls, why = ("minor", "the cautions shown with every result") if key == "cautions" else ("patch", "wording")
-            out.append(Change("presentation", key, "value", cls, why, _plain(pa.get(key)), _plain(pb.get(key))))
+            cls, why = (
+                ("minor", "the cautions shown with every result")
+                if key == "cautions"
+                else ("patch", "wording")
+            )
+            out.append(
+                Change("presentation", key, "value", cls, why, _plain(pa.get(key)), _plain(pb.get(key)))
+            )
     if old.display_units != new.display_units:
-        out.append(Change("presentation", "display_units", "value", "patch", "display only; comparisons unchanged",
-                          _plain(old.display_units), _plain(new.display_units)))
+        out.append(
+            Change(
+                "presentation",
+                "display_units",
+                "value",
+                "patch",
+                "display only; comparisons unchanged",
+                _plain(old.display_units),
+                _plain(new.display_units),
+            )
+        )
     return out
 
 
@@ -587,10 +825,12 @@ def _verdict(d: RulebookDiff) -> str:
 
 
 def render_text(d: RulebookDiff) -> str:
-    lines = [f"old: {d.old.id} {d.old.version} [{d.old.status}] sha256 {d.old.sha256[:12]}  ({d.old.path})",
-             f"new: {d.new.id} {d.new.version} [{d.new.status}] sha256 {d.new.sha256[:12]}  ({d.new.path})",
-             f"change class: {d.required} ({CLASS_MEANING[d.required]})",
-             _verdict(d)]
+    lines = [
+        f"old: {d.old.id} {d.old.version} [{d.old.status}] sha256 {d.old.sha256[:12]}  ({d.old.path})",
+        f"new: {d.new.id} {d.new.version} [{d.new.status}] sha256 {d.new.sha256[:12]}  ({d.new.path})",
+        f"change class: {d.required} ({CLASS_MEANING[d.required]})",
+        _verdict(d),
+    ]
     lines += [f"note: {n}" for n in d.notes]
     for kind in ("metadata", "parameter", "rule", "derived", "input", "step", "presentation"):
         rows = [c for c in d.changes if c.kind == kind]
@@ -598,7 +838,9 @@ def render_text(d: RulebookDiff) -> str:
             continue
         lines += ["", f"{kind.capitalize()} changes ({len(rows)}):"]
         for c in rows:
-            lines.append(f"  [{c.cls:<5}] {c.key} {c.aspect}: {_with_unit(c.old, c.unit)} -> {_with_unit(c.new, c.unit)}")
+            lines.append(
+                f"  [{c.cls:<5}] {c.key} {c.aspect}: {_with_unit(c.old, c.unit)} -> {_with_unit(c.new, c.unit)}"
+            )
             lines.append(f"          {c.why}" + _where_text(c))
     if not d.changes:
         lines += ["", "No differences."]
@@ -621,24 +863,39 @@ def _md(v: Any) -> str:
 
 
 def render_markdown(d: RulebookDiff) -> str:
-    lines = [f"## Rulebook change: {d.old.id} {d.old.version} -> {d.new.id} {d.new.version}", "",
-             f"* Change class: **{d.required}** ({CLASS_MEANING[d.required]})",
-             f"* Version check: {_verdict(d)}",
-             f"* Content hash: `{d.old.sha256[:16]}` -> `{d.new.sha256[:16]}`",
-             f"* Status: {d.old.status} -> {d.new.status}"]
+    lines = [
+        f"## Rulebook change: {d.old.id} {d.old.version} -> {d.new.id} {d.new.version}",
+        "",
+        f"* Change class: **{d.required}** ({CLASS_MEANING[d.required]})",
+        f"* Version check: {_verdict(d)}",
+        f"* Content hash: `{d.old.sha256[:16]}` -> `{d.new.sha256[:16]}`",
+        f"* Status: {d.old.status} -> {d.new.status}",
+    ]
     lines += [f"* Note: {n}" for n in d.notes]
     counts = ", ".join(f"{sum(1 for c in d.changes if c.cls == k)} {k}" for k in ("major", "minor", "patch"))
     lines += [f"* Changes: {counts}", ""]
     params = [c for c in d.changes if c.kind == "parameter"]
     if params:
-        lines += ["### Parameters", "", "| Parameter | Change | Old | New | Unit | Class | Set by (old -> new) |",
-                  "|---|---|---|---|---|---|---|"]
+        lines += [
+            "### Parameters",
+            "",
+            "| Parameter | Change | Old | New | Unit | Class | Set by (old -> new) |",
+            "|---|---|---|---|---|---|---|",
+        ]
         for c in params:
-            lines.append(f"| `{c.key}` | {c.aspect} | {_md(c.old)} | {_md(c.new)} | {c.unit} | {c.cls}: {c.why} | "
-                         f"{c.old_where or '-'} -> {c.new_where or '-'} |")
+            lines.append(
+                f"| `{c.key}` | {c.aspect} | {_md(c.old)} | {_md(c.new)} | {c.unit} | {c.cls}: {c.why} | "
+                f"{c.old_where or '-'} -> {c.new_where or '-'} |"
+            )
         lines.append("")
-    for kind, title in (("rule", "Rules"), ("derived", "Derived quantities"), ("input", "Inputs"), ("step", "Steps"),
-                        ("presentation", "Presentation"), ("metadata", "Metadata")):
+    for kind, title in (
+        ("rule", "Rules"),
+        ("derived", "Derived quantities"),
+        ("input", "Inputs"),
+        ("step", "Steps"),
+        ("presentation", "Presentation"),
+        ("metadata", "Metadata"),
+    ):
         rows = [c for c in d.changes if c.kind == kind]
         if not rows:
             continue
@@ -646,10 +903,15 @@ def render_markdown(d: RulebookDiff) -> str:
         for c in rows:
             lines.append(f"| `{c.key}` | {c.aspect} | {_md(c.old)} | {_md(c.new)} | {c.cls}: {c.why} |")
         lines.append("")
-    lines.append("_Decision support only: it supports, never replaces, clinical judgement; local laboratory "
-                 "ranges and protocols prevail._")
+    lines.append(
+        "_Decision support only: it supports, never replaces, clinical judgement; local laboratory "
+        "ranges and protocols prevail._"
+    )
     return "\n".join(lines)
 
 
-RENDERERS: dict[str, Callable[[RulebookDiff], str]] = {"text": render_text, "json": render_json,
-                                                       "markdown": render_markdown}
+RENDERERS: dict[str, Callable[[RulebookDiff], str]] = {
+    "text": render_text,
+    "json": render_json,
+    "markdown": render_markdown,
+}

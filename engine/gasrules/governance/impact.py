@@ -32,22 +32,36 @@ from __future__ import annotations
 import json
 import time
 from collections import Counter
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterable, Iterator, Sequence
+from typing import Any
 
 from gasrules.core.model import CompiledRulebook
 from gasrules.governance.probes import ChangedCut, changed_cutpoints, step_of
 from gasrules.tables.readers import Row, TableError
 
-EXAMPLES = 5                 # example case ids kept per transition, rule and threshold
-MALFORMED_LISTED = 50        # rejected rows listed one by one (all are counted)
+EXAMPLES = 5  # example case ids kept per transition, rule and threshold
+MALFORMED_LISTED = 50  # rejected rows listed one by one (all are counted)
 
 # One row, as a worker returns it:
 # (index, where, case_id, status_old, status_new, disorders_old, disorders_new, findings_old,
 #  findings_new, fired_only_old, fired_only_new, near [(cut index, margin)], errors [(field, code, message)])
-Outcome = tuple[int, str, str, str, str, tuple[str, ...], tuple[str, ...], tuple[str, ...], tuple[str, ...],
-                tuple[str, ...], tuple[str, ...], tuple[tuple[int, float], ...], tuple[tuple[str, str, str], ...]]
+Outcome = tuple[
+    int,
+    str,
+    str,
+    str,
+    str,
+    tuple[str, ...],
+    tuple[str, ...],
+    tuple[str, ...],
+    tuple[str, ...],
+    tuple[str, ...],
+    tuple[str, ...],
+    tuple[tuple[int, float], ...],
+    tuple[tuple[str, str, str], ...],
+]
 
 
 @dataclass(frozen=True)
@@ -56,9 +70,9 @@ class NearSpec:
 
     owner: str
     quantity: str
-    threshold: str       # the trace's threshold text: a parameter name or a literal repr
-    value: float         # the new cut (distinguishes a selector's value from the general one)
-    window: float        # |margin| at or below this is "close"
+    threshold: str  # the trace's threshold text: a parameter name or a literal repr
+    value: float  # the new cut (distinguishes a selector's value from the general one)
+    window: float  # |margin| at or below this is "close"
 
 
 def near_specs(old: CompiledRulebook, new: CompiledRulebook, cuts: Sequence[ChangedCut]) -> list[NearSpec]:
@@ -86,10 +100,21 @@ def _interpret(rb: CompiledRulebook, row: Row, trace: bool) -> dict[str, Any]:
 
     try:
         return interpret_row(rb, row, trace)
-    except Exception as exc:  # noqa: BLE001 - a row is never lost, even to an engine bug
-        broken = Row(row.index, row.where, row.case, row.passthrough, [{
-            "field": "", "code": "input.unreadable", "accepted": "a case the engine can evaluate (please report it)",
-            "message": f"{row.where}: the engine failed on this row ({type(exc).__name__}: {exc})"}])
+    except Exception as exc:
+        broken = Row(
+            row.index,
+            row.where,
+            row.case,
+            row.passthrough,
+            [
+                {
+                    "field": "",
+                    "code": "input.unreadable",
+                    "accepted": "a case the engine can evaluate (please report it)",
+                    "message": f"{row.where}: the engine failed on this row ({type(exc).__name__}: {exc})",
+                }
+            ],
+        )
         return rejected_result(rb, broken)
 
 
@@ -98,8 +123,12 @@ def _fired(result: dict[str, Any]) -> set[str]:
 
 
 def _said(result: dict[str, Any]) -> tuple[Any, ...]:
-    return (result["status"], sorted(result["disorders"]), sorted(result["qualifiers"].items()),
-            sorted({f["code"] for f in result["findings"]}))
+    return (
+        result["status"],
+        sorted(result["disorders"]),
+        sorted(result["qualifiers"].items()),
+        sorted({f["code"] for f in result["findings"]}),
+    )
 
 
 def _near(result: dict[str, Any], specs: Sequence[NearSpec]) -> tuple[tuple[int, float], ...]:
@@ -112,8 +141,13 @@ def _near(result: dict[str, Any], specs: Sequence[NearSpec]) -> tuple[tuple[int,
         if ev is None:
             continue
         for c in ev["comparisons"]:
-            if (c["quantity"] == s.quantity and c["threshold"] == s.threshold and c["margin"] is not None
-                    and c["threshold_value"] == s.value and abs(c["margin"]) <= s.window + 1e-9):
+            if (
+                c["quantity"] == s.quantity
+                and c["threshold"] == s.threshold
+                and c["margin"] is not None
+                and c["threshold_value"] == s.value
+                and abs(c["margin"]) <= s.window + 1e-9
+            ):
                 out.append((i, c["margin"]))
                 break
     return tuple(out)
@@ -143,10 +177,23 @@ def replay_chunk(job: Job, rows: list[Row]) -> list[Outcome]:
             errs = a["errors"] if a["status"] == "rejected" else b["errors"]
             errors = tuple((e.get("field") or "", e.get("code") or "", e.get("message") or "") for e in errs)
         case_id = a.get("case_id") or row.case.get("case_id") or ""
-        out.append((row.index, row.where, str(case_id), a["status"], b["status"],
-                    tuple(sorted(a["disorders"])), tuple(sorted(b["disorders"])),
-                    tuple(sorted({f["code"] for f in a["findings"]})), tuple(sorted({f["code"] for f in b["findings"]})),
-                    only_a, only_b, _near(b, job.near), errors))
+        out.append(
+            (
+                row.index,
+                row.where,
+                str(case_id),
+                a["status"],
+                b["status"],
+                tuple(sorted(a["disorders"])),
+                tuple(sorted(b["disorders"])),
+                tuple(sorted({f["code"] for f in a["findings"]})),
+                tuple(sorted({f["code"] for f in b["findings"]})),
+                only_a,
+                only_b,
+                _near(b, job.near),
+                errors,
+            )
+        )
     return out
 
 
@@ -168,7 +215,7 @@ class Transition:
     count: int = 0
     examples: list[str] = field(default_factory=list)
     rules: Counter[str] = field(default_factory=Counter)
-    expected: bool | None = None          # None: no expected-transitions file given
+    expected: bool | None = None  # None: no expected-transitions file given
     why: str = ""
 
 
@@ -184,11 +231,11 @@ class ImpactReport:
     changed_findings: int = 0
     changed_any: int = 0
     unreadable: int = 0
-    rejected: Counter[str] = field(default_factory=Counter)        # "old" / "new" / "both"
+    rejected: Counter[str] = field(default_factory=Counter)  # "old" / "new" / "both"
     reject_reasons: Counter[tuple[str, str]] = field(default_factory=Counter)
     malformed: list[dict[str, str]] = field(default_factory=list)
     transitions: dict[tuple[str, str], Transition] = field(default_factory=dict)
-    rules: dict[str, Counter[str]] = field(default_factory=dict)   # rule -> {"fired->not": n, "not->fired": n}
+    rules: dict[str, Counter[str]] = field(default_factory=dict)  # rule -> {"fired->not": n, "not->fired": n}
     rule_examples: dict[str, list[str]] = field(default_factory=dict)
     findings_gained: Counter[str] = field(default_factory=Counter)
     findings_lost: Counter[str] = field(default_factory=Counter)
@@ -247,8 +294,14 @@ class ImpactReport:
         for f, code, _ in errors:
             self.reject_reasons[(f or "(row)", code)] += 1
         if len(self.malformed) < MALFORMED_LISTED:
-            self.malformed.append({"where": where, "case_id": ident, "rejected_by": side,
-                                   "errors": "; ".join(f"{f or '(row)'}: {m}" for f, _, m in errors)})
+            self.malformed.append(
+                {
+                    "where": where,
+                    "case_id": ident,
+                    "rejected_by": side,
+                    "errors": "; ".join(f"{f or '(row)'}: {m}" for f, _, m in errors),
+                }
+            )
 
     # reading ---------------------------------------------------------------------------
     @property
@@ -260,30 +313,73 @@ class ImpactReport:
 
     def as_dict(self, timing: bool = True) -> dict[str, Any]:
         d: dict[str, Any] = {
-            "old": self.old, "new": self.new, "corpus": self.corpus, "rows": self.rows,
-            "changed": {"disorders": self.changed_disorders, "findings": self.changed_findings, "any": self.changed_any},
-            "status_pairs": [{"old": a, "new": b, "count": n} for (a, b), n in sorted(self.status_pairs.items())],
-            "rejected": {"unreadable_rows": self.unreadable, "by_side": dict(sorted(self.rejected.items())),
-                         "reasons": [{"field": f, "code": c, "count": n}
-                                     for (f, c), n in sorted(self.reject_reasons.items(), key=lambda x: (-x[1], x[0]))],
-                         "listed": self.malformed},
-            "transitions": [{"old": t.old, "new": t.new, "count": t.count, "examples": t.examples,
-                             "rules": dict(sorted(t.rules.items(), key=lambda x: (-x[1], x[0]))),
-                             "expected": t.expected, "why": t.why} for t in self.sorted_transitions()],
-            "rules": [{"rule": r, "changed": sum(c.values()), "fired_then_not": c["fired_then_not"],
-                       "not_then_fired": c["not_then_fired"], "examples": self.rule_examples[r]}
-                      for r, c in sorted(self.rules.items(), key=lambda x: (-sum(x[1].values()), x[0]))],
-            "findings": {"gained": dict(sorted(self.findings_gained.items())),
-                         "lost": dict(sorted(self.findings_lost.items()))},
-            "near_thresholds": [{"cut": c.label, "old": c.old, "new": c.new, "cases": self.near_counts[i],
-                                 "of_which_changed": self.near_changed[i],
-                                 "examples": [{"case": e, "margin": m} for e, m in self.near_examples.get(i, [])]}
-                                for i, c in enumerate(self.cuts)],
-            "expected_file": self.expected_file, "unexpected": len(self.unexpected),
+            "old": self.old,
+            "new": self.new,
+            "corpus": self.corpus,
+            "rows": self.rows,
+            "changed": {
+                "disorders": self.changed_disorders,
+                "findings": self.changed_findings,
+                "any": self.changed_any,
+            },
+            "status_pairs": [
+                {"old": a, "new": b, "count": n} for (a, b), n in sorted(self.status_pairs.items())
+            ],
+            "rejected": {
+                "unreadable_rows": self.unreadable,
+                "by_side": dict(sorted(self.rejected.items())),
+                "reasons": [
+                    {"field": f, "code": c, "count": n}
+                    for (f, c), n in sorted(self.reject_reasons.items(), key=lambda x: (-x[1], x[0]))
+                ],
+                "listed": self.malformed,
+            },
+            "transitions": [
+                {
+                    "old": t.old,
+                    "new": t.new,
+                    "count": t.count,
+                    "examples": t.examples,
+                    "rules": dict(sorted(t.rules.items(), key=lambda x: (-x[1], x[0]))),
+                    "expected": t.expected,
+                    "why": t.why,
+                }
+                for t in self.sorted_transitions()
+            ],
+            "rules": [
+                {
+                    "rule": r,
+                    "changed": sum(c.values()),
+                    "fired_then_not": c["fired_then_not"],
+                    "not_then_fired": c["not_then_fired"],
+                    "examples": self.rule_examples[r],
+                }
+                for r, c in sorted(self.rules.items(), key=lambda x: (-sum(x[1].values()), x[0]))
+            ],
+            "findings": {
+                "gained": dict(sorted(self.findings_gained.items())),
+                "lost": dict(sorted(self.findings_lost.items())),
+            },
+            "near_thresholds": [
+                {
+                    "cut": c.label,
+                    "old": c.old,
+                    "new": c.new,
+                    "cases": self.near_counts[i],
+                    "of_which_changed": self.near_changed[i],
+                    "examples": [{"case": e, "margin": m} for e, m in self.near_examples.get(i, [])],
+                }
+                for i, c in enumerate(self.cuts)
+            ],
+            "expected_file": self.expected_file,
+            "unexpected": len(self.unexpected),
         }
         if timing:
-            d["timing"] = {"seconds": round(self.seconds, 3), "workers": self.workers,
-                           "rows_per_second": round(self.rows / self.seconds, 1) if self.seconds else None}
+            d["timing"] = {
+                "seconds": round(self.seconds, 3),
+                "workers": self.workers,
+                "rows_per_second": round(self.rows / self.seconds, 1) if self.seconds else None,
+            }
         return d
 
 
@@ -300,8 +396,14 @@ def _side_label(value: Any, where: str) -> str | None:
     if isinstance(value, list) and all(isinstance(x, str) for x in value):
         return conclusion_label("interpreted", value)
     if value in ("rejected", "inconsistent", "no disorder"):
-        return {"rejected": "(rejected)", "inconsistent": "(inconsistent sample)", "no disorder": "(no disorder)"}[value]
-    raise ExpectedError(f"{where}: {value!r} is not a disorder list, '*', 'no disorder', 'rejected' or 'inconsistent'")
+        return {
+            "rejected": "(rejected)",
+            "inconsistent": "(inconsistent sample)",
+            "no disorder": "(no disorder)",
+        }[value]
+    raise ExpectedError(
+        f"{where}: {value!r} is not a disorder list, '*', 'no disorder', 'rejected' or 'inconsistent'"
+    )
 
 
 def load_expected(path: str | Path) -> list[dict[str, Any]]:
@@ -321,12 +423,21 @@ def load_expected(path: str | Path) -> list[dict[str, Any]]:
             raise ExpectedError(f"{where}: each entry needs 'from' and 'to'")
         unknown = set(e) - {"from", "to", "max_cases", "reason"}
         if unknown:
-            raise ExpectedError(f"{where}: unknown key(s) {', '.join(sorted(unknown))}; accepted: from, to, max_cases, reason")
+            raise ExpectedError(
+                f"{where}: unknown key(s) {', '.join(sorted(unknown))}; accepted: from, to, max_cases, reason"
+            )
         cap = e.get("max_cases")
         if cap is not None and (not isinstance(cap, int) or isinstance(cap, bool) or cap < 0):
             raise ExpectedError(f"{where}.max_cases: {cap!r} is not a whole number of 0 or more")
-        out.append({"from": _side_label(e["from"], where + ".from"), "to": _side_label(e["to"], where + ".to"),
-                    "max_cases": cap, "reason": str(e.get("reason") or ""), "index": i})
+        out.append(
+            {
+                "from": _side_label(e["from"], where + ".from"),
+                "to": _side_label(e["to"], where + ".to"),
+                "max_cases": cap,
+                "reason": str(e.get("reason") or ""),
+                "index": i,
+            }
+        )
     return out
 
 
@@ -349,18 +460,28 @@ def judge(report: ImpactReport, expected: list[dict[str, Any]]) -> None:
 # ----------------------------------------------------------------------------- the run
 
 
-def replay(old: CompiledRulebook, new: CompiledRulebook, corpus: str | Path, *, workers: int = 1,
-           chunk_size: int = 250, mapping: Any = None, fmt: str | None = None,
-           expected: list[dict[str, Any]] | None = None, expected_file: str = "",
-           on_progress: Callable[[int, float], None] | None = None) -> ImpactReport:
+def replay(
+    old: CompiledRulebook,
+    new: CompiledRulebook,
+    corpus: str | Path,
+    *,
+    workers: int = 1,
+    chunk_size: int = 250,
+    mapping: Any = None,
+    fmt: str | None = None,
+    expected: list[dict[str, Any]] | None = None,
+    expected_file: str = "",
+    on_progress: Callable[[int, float], None] | None = None,
+) -> ImpactReport:
     """Stream the corpus under both rulebooks. Raises TableError when the corpus cannot be read at all."""
     from gasrules.tables.pool import OrderedPool, chunked
     from gasrules.tables.readers import analytes_of, open_table
 
     cuts = changed_cutpoints(old, new)
     job = Job(old, new, tuple(near_specs(old, new, cuts)))
-    report = ImpactReport(old.identity, new.identity, str(corpus), cuts=cuts, workers=workers,
-                          expected_file=expected_file)
+    report = ImpactReport(
+        old.identity, new.identity, str(corpus), cuts=cuts, workers=workers, expected_file=expected_file
+    )
     analytes = {**analytes_of(old), **analytes_of(new)}
     t0 = time.perf_counter()
     with open_table(corpus, analytes, mapping=mapping, fmt=fmt) as table:
@@ -385,8 +506,10 @@ def iter_outcomes(old: CompiledRulebook, new: CompiledRulebook, rows: Iterable[R
 
 # ----------------------------------------------------------------------------- renderers
 
-_CAUTION = ("Decision support only: it supports, never replaces, clinical judgement; local laboratory ranges and "
-            "protocols prevail. The replay shows what the rules would conclude, not what happened to patients.")
+_CAUTION = (
+    "Decision support only: it supports, never replaces, clinical judgement; local laboratory ranges and "
+    "protocols prevail. The replay shows what the rules would conclude, not what happened to patients."
+)
 
 
 def _pct(n: int, total: int) -> str:
@@ -399,11 +522,17 @@ def _ident(d: dict[str, str]) -> str:
 
 def render_text(r: ImpactReport) -> str:
     d = r.as_dict()
-    lines = [f"Impact of {_ident(r.new)} against {_ident(r.old)}", f"Corpus: {r.corpus}: {r.rows:,} rows",
-             f"Changed disorders: {r.changed_disorders:,} ({_pct(r.changed_disorders, r.rows)}); changed findings: "
-             f"{r.changed_findings:,} ({_pct(r.changed_findings, r.rows)}); any change: {r.changed_any:,}",
-             f"Rejected rows: {sum(r.rejected.values()):,} (unreadable {r.unreadable:,}; by side "
-             + ", ".join(f"{k} {v:,}" for k, v in sorted(r.rejected.items())) + ")" if r.rejected else "Rejected rows: 0"]
+    lines = [
+        f"Impact of {_ident(r.new)} against {_ident(r.old)}",
+        f"Corpus: {r.corpus}: {r.rows:,} rows",
+        f"Changed disorders: {r.changed_disorders:,} ({_pct(r.changed_disorders, r.rows)}); changed findings: "
+        f"{r.changed_findings:,} ({_pct(r.changed_findings, r.rows)}); any change: {r.changed_any:,}",
+        f"Rejected rows: {sum(r.rejected.values()):,} (unreadable {r.unreadable:,}; by side "
+        + ", ".join(f"{k} {v:,}" for k, v in sorted(r.rejected.items()))
+        + ")"
+        if r.rejected
+        else "Rejected rows: 0",
+    ]
     moved = [(a, b, n) for (a, b), n in sorted(r.status_pairs.items()) if a != b]
     if moved:
         lines.append("Status changes: " + "; ".join(f"{a} -> {b}: {n:,}" for a, b, n in moved))
@@ -413,24 +542,42 @@ def render_text(r: ImpactReport) -> str:
     if not r.transitions:
         lines.append("  none")
     for t in d["transitions"]:
-        flag = "" if t["expected"] is None else ("  [expected]" if t["expected"] else f"  [UNEXPECTED: {t['why']}]")
+        flag = (
+            ""
+            if t["expected"] is None
+            else ("  [expected]" if t["expected"] else f"  [UNEXPECTED: {t['why']}]")
+        )
         lines.append(f"  {t['count']:>8,}  {t['old']}  ->  {t['new']}{flag}")
         rules = ", ".join(f"{k} ({v})" for k, v in list(t["rules"].items())[:4])
         lines.append(f"            rules: {rules or '-'}; e.g. {', '.join(t['examples'])}")
     lines += ["", "Rules whose outcome changed (fired->not fired / not fired->fired):"]
-    for x in d["rules"][:40] or [{"rule": "none", "changed": 0, "fired_then_not": 0, "not_then_fired": 0, "examples": []}]:
-        lines.append(f"  {x['changed']:>8,}  {x['rule']}  ({x['fired_then_not']:,} / {x['not_then_fired']:,})"
-                     + (f"  e.g. {', '.join(x['examples'][:3])}" if x["examples"] else ""))
+    for x in d["rules"][:40] or [
+        {"rule": "none", "changed": 0, "fired_then_not": 0, "not_then_fired": 0, "examples": []}
+    ]:
+        lines.append(
+            f"  {x['changed']:>8,}  {x['rule']}  ({x['fired_then_not']:,} / {x['not_then_fired']:,})"
+            + (f"  e.g. {', '.join(x['examples'][:3])}" if x["examples"] else "")
+        )
     if r.findings_gained or r.findings_lost:
         lines += ["", "Findings gained / lost:"]
         for code in sorted(set(r.findings_gained) | set(r.findings_lost)):
             lines.append(f"  +{r.findings_gained[code]:<7,} -{r.findings_lost[code]:<7,} {code}")
     lines += ["", "Cases close to a changed threshold (under the new rulebook):"]
-    for n in d["near_thresholds"] or [{"cut": "no changed numeric threshold", "cases": 0, "of_which_changed": 0,
-                                       "examples": [], "old": "", "new": ""}]:
+    for n in d["near_thresholds"] or [
+        {
+            "cut": "no changed numeric threshold",
+            "cases": 0,
+            "of_which_changed": 0,
+            "examples": [],
+            "old": "",
+            "new": "",
+        }
+    ]:
         ex = ", ".join(f"{e['case']} ({e['margin']:+g})" for e in n["examples"][:3])
-        lines.append(f"  {n['cases']:>8,}  {n['cut']} {n['old']}->{n['new']} ({n['of_which_changed']:,} changed)"
-                     + (f"  e.g. {ex}" if ex else ""))
+        lines.append(
+            f"  {n['cases']:>8,}  {n['cut']} {n['old']}->{n['new']} ({n['of_which_changed']:,} changed)"
+            + (f"  e.g. {ex}" if ex else "")
+        )
     if r.reject_reasons:
         lines += ["", "Rejected rows by reason (every row counted; first ones listed in JSON/HTML):"]
         for x in d["rejected"]["reasons"][:20]:
@@ -438,7 +585,10 @@ def render_text(r: ImpactReport) -> str:
         for m in r.malformed[:10]:
             lines.append(f"    {m['where']} [{m['case_id']}] {m['errors']}")
     if r.seconds:
-        lines += ["", f"{r.rows:,} rows in {r.seconds:.1f} s on {r.workers} worker(s): {r.rows / r.seconds:,.0f} rows/s"]
+        lines += [
+            "",
+            f"{r.rows:,} rows in {r.seconds:.1f} s on {r.workers} worker(s): {r.rows / r.seconds:,.0f} rows/s",
+        ]
     lines += ["", _CAUTION]
     return "\n".join(lines)
 
@@ -447,10 +597,12 @@ def render_json(r: ImpactReport, timing: bool = True) -> str:
     return json.dumps(r.as_dict(timing), indent=2, ensure_ascii=False)
 
 
-_CSS = ("body{font:14px/1.45 system-ui,sans-serif;margin:2em auto;max-width:70em;color:#222}"
-        "table{border-collapse:collapse;margin:.5em 0 1.5em;width:100%}th,td{border:1px solid #ccc;padding:.3em .5em;"
-        "text-align:left;vertical-align:top}th{background:#f3f3f3}td.n{text-align:right;font-variant-numeric:tabular-nums}"
-        ".bad{background:#fde8e8}.ok{background:#e8f6ea}.note{color:#555;font-size:90%}code{font-size:92%}")
+_CSS = (
+    "body{font:14px/1.45 system-ui,sans-serif;margin:2em auto;max-width:70em;color:#222}"
+    "table{border-collapse:collapse;margin:.5em 0 1.5em;width:100%}th,td{border:1px solid #ccc;padding:.3em .5em;"
+    "text-align:left;vertical-align:top}th{background:#f3f3f3}td.n{text-align:right;font-variant-numeric:tabular-nums}"
+    ".bad{background:#fde8e8}.ok{background:#e8f6ea}.note{color:#555;font-size:90%}code{font-size:92%}"
+)
 
 
 def render_html(r: ImpactReport) -> str:
@@ -462,45 +614,125 @@ def render_html(r: ImpactReport) -> str:
         out = ["<table><tr>" + "".join(f"<th>{e(h)}</th>" for h in head) + "</tr>"]
         for i, row in enumerate(rows):
             cls = f' class="{classes[i]}"' if classes and classes[i] else ""
-            out.append(f"<tr{cls}>" + "".join(
-                f'<td class="n">{v:,}</td>' if isinstance(v, int) else f"<td>{e(str(v))}</td>" for v in row) + "</tr>")
+            out.append(
+                f"<tr{cls}>"
+                + "".join(
+                    f'<td class="n">{v:,}</td>' if isinstance(v, int) else f"<td>{e(str(v))}</td>"
+                    for v in row
+                )
+                + "</tr>"
+            )
         return "\n".join(out) + "</table>"
 
-    parts = [f"<!doctype html><html lang=en><head><meta charset=utf-8><title>Impact {e(_ident(r.new))}</title>"
-             f"<style>{_CSS}</style></head><body>",
-             f"<h1>Impact of {e(_ident(r.new))}</h1><p>against {e(_ident(r.old))}, corpus <code>{e(r.corpus)}</code></p>",
-             table(["Rows", "Changed disorders", "Changed findings", "Any change", "Rejected", "Unreadable"],
-                   [[r.rows, r.changed_disorders, r.changed_findings, r.changed_any, sum(r.rejected.values()), r.unreadable]])]
+    parts = [
+        f"<!doctype html><html lang=en><head><meta charset=utf-8><title>Impact {e(_ident(r.new))}</title>"
+        f"<style>{_CSS}</style></head><body>",
+        f"<h1>Impact of {e(_ident(r.new))}</h1><p>against {e(_ident(r.old))}, corpus <code>{e(r.corpus)}</code></p>",
+        table(
+            ["Rows", "Changed disorders", "Changed findings", "Any change", "Rejected", "Unreadable"],
+            [
+                [
+                    r.rows,
+                    r.changed_disorders,
+                    r.changed_findings,
+                    r.changed_any,
+                    sum(r.rejected.values()),
+                    r.unreadable,
+                ]
+            ],
+        ),
+    ]
     if r.expected_file:
-        parts.append(f"<p>Expected transitions from <code>{e(r.expected_file)}</code>: "
-                     f"<strong>{len(r.unexpected)} unexpected</strong></p>")
+        parts.append(
+            f"<p>Expected transitions from <code>{e(r.expected_file)}</code>: "
+            f"<strong>{len(r.unexpected)} unexpected</strong></p>"
+        )
     ts = d["transitions"]
-    parts += ["<h2>Transitions</h2>", table(
-        ["Cases", "Old disorders", "New disorders", "Rules responsible", "Examples", "Expected"],
-        [[t["count"], t["old"], t["new"], ", ".join(f"{k} ({v})" for k, v in t["rules"].items()),
-          ", ".join(t["examples"]), "-" if t["expected"] is None else ("yes" if t["expected"] else "NO: " + t["why"])]
-         for t in ts], ["" if t["expected"] is None else ("ok" if t["expected"] else "bad") for t in ts])]
-    parts += ["<h2>Rules whose outcome changed</h2>", table(
-        ["Rule", "Cases", "Fired, now not", "Not fired, now fired", "Examples"],
-        [[x["rule"], x["changed"], x["fired_then_not"], x["not_then_fired"], ", ".join(x["examples"])] for x in d["rules"]])]
-    parts += ["<h2>Findings gained and lost</h2>", table(
-        ["Finding", "Gained", "Lost"],
-        [[c, r.findings_gained[c], r.findings_lost[c]] for c in sorted(set(r.findings_gained) | set(r.findings_lost))])]
-    parts += ["<h2>Cases close to a changed threshold</h2><p class=note>Under the new rulebook, the compared value "
-              "lies within the distance the threshold moved (at least one reporting step).</p>", table(
-                  ["Cut-point", "Old", "New", "Cases", "Of which changed", "Examples (margin)"],
-                  [[n["cut"], f"{n['old']:g}", f"{n['new']:g}", n["cases"], n["of_which_changed"],
-                    ", ".join(f"{x['case']} ({x['margin']:+g})" for x in n["examples"])] for n in d["near_thresholds"]])]
-    parts += ["<h2>Rejected rows</h2><p class=note>Every row is counted; the first "
-              f"{MALFORMED_LISTED} are listed.</p>",
-              table(["Field", "Code", "Rows"], [[x["field"], x["code"], x["count"]] for x in d["rejected"]["reasons"]]),
-              table(["Where", "Case", "Rejected by", "Errors"],
-                    [[m["where"], m["case_id"], m["rejected_by"], m["errors"]] for m in r.malformed])]
+    parts += [
+        "<h2>Transitions</h2>",
+        table(
+            ["Cases", "Old disorders", "New disorders", "Rules responsible", "Examples", "Expected"],
+            [
+                [
+                    t["count"],
+                    t["old"],
+                    t["new"],
+                    ", ".join(f"{k} ({v})" for k, v in t["rules"].items()),
+                    ", ".join(t["examples"]),
+                    "-" if t["expected"] is None else ("yes" if t["expected"] else "NO: " + t["why"]),
+                ]
+                for t in ts
+            ],
+            ["" if t["expected"] is None else ("ok" if t["expected"] else "bad") for t in ts],
+        ),
+    ]
+    parts += [
+        "<h2>Rules whose outcome changed</h2>",
+        table(
+            ["Rule", "Cases", "Fired, now not", "Not fired, now fired", "Examples"],
+            [
+                [x["rule"], x["changed"], x["fired_then_not"], x["not_then_fired"], ", ".join(x["examples"])]
+                for x in d["rules"]
+            ],
+        ),
+    ]
+    parts += [
+        "<h2>Findings gained and lost</h2>",
+        table(
+            ["Finding", "Gained", "Lost"],
+            [
+                [c, r.findings_gained[c], r.findings_lost[c]]
+                for c in sorted(set(r.findings_gained) | set(r.findings_lost))
+            ],
+        ),
+    ]
+    parts += [
+        "<h2>Cases close to a changed threshold</h2><p class=note>Under the new rulebook, the compared value "
+        "lies within the distance the threshold moved (at least one reporting step).</p>",
+        table(
+            ["Cut-point", "Old", "New", "Cases", "Of which changed", "Examples (margin)"],
+            [
+                [
+                    n["cut"],
+                    f"{n['old']:g}",
+                    f"{n['new']:g}",
+                    n["cases"],
+                    n["of_which_changed"],
+                    ", ".join(f"{x['case']} ({x['margin']:+g})" for x in n["examples"]),
+                ]
+                for n in d["near_thresholds"]
+            ],
+        ),
+    ]
+    parts += [
+        "<h2>Rejected rows</h2><p class=note>Every row is counted; the first "
+        f"{MALFORMED_LISTED} are listed.</p>",
+        table(
+            ["Field", "Code", "Rows"], [[x["field"], x["code"], x["count"]] for x in d["rejected"]["reasons"]]
+        ),
+        table(
+            ["Where", "Case", "Rejected by", "Errors"],
+            [[m["where"], m["case_id"], m["rejected_by"], m["errors"]] for m in r.malformed],
+        ),
+    ]
     parts.append(f"<p class=note>{e(_CAUTION)}</p></body></html>")
     return "\n".join(parts)
 
 
-RENDERERS: dict[str, Callable[[ImpactReport], str]] = {"text": render_text, "json": render_json, "html": render_html}
+RENDERERS: dict[str, Callable[[ImpactReport], str]] = {
+    "text": render_text,
+    "json": render_json,
+    "html": render_html,
+}
 
-__all__ = ["ImpactReport", "ExpectedError", "TableError", "Transition", "conclusion_label", "judge",
-           "load_expected", "replay", "replay_chunk"]
+__all__ = [
+    "ExpectedError",
+    "ImpactReport",
+    "TableError",
+    "Transition",
+    "conclusion_label",
+    "judge",
+    "load_expected",
+    "replay",
+    "replay_chunk",
+]

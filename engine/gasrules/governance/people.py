@@ -26,13 +26,14 @@ from __future__ import annotations
 
 import functools
 import unicodedata
+from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any
 
 from gasrules.core.errors import EngineError
 
-__all__ = ["name_keys", "same_person", "Roster", "RosterError", "load_roster"]
+__all__ = ["Roster", "RosterError", "load_roster", "name_keys", "same_person"]
 
 
 class RosterError(EngineError):
@@ -44,7 +45,9 @@ def _prototypes() -> dict[str, str]:
     import json
     from importlib import resources
 
-    data = json.loads(resources.files("confusable_homoglyphs").joinpath("confusables.json").read_text("utf-8"))
+    data = json.loads(
+        resources.files("confusable_homoglyphs").joinpath("confusables.json").read_text("utf-8")
+    )
     out: dict[str, str] = {}
     for char, entries in data.items():
         if len(char) != 1 or len(entries) != 1:
@@ -53,7 +56,7 @@ def _prototypes() -> dict[str, str]:
         if len(target) != 1 or target == char:
             continue
         back = data.get(target) or []
-        if len(back) == 1 and back[0]["c"].replace("\u200e", "") == char:   # a pair: who is the prototype?
+        if len(back) == 1 and back[0]["c"].replace("\u200e", "") == char:  # a pair: who is the prototype?
             if (char.isascii(), -ord(char)) > (target.isascii(), -ord(target)):
                 continue
         out[char] = target
@@ -116,8 +119,10 @@ def load_roster(path: str | Path) -> Roster:
     form = "a mapping with people: [{id, name, aliases?}]"
     if doc is None or problems:
         first = problems[0] if problems else None
-        raise RosterError(f"{first.location if first else path}: roster: {first.message if first else 'unreadable'}; "
-                          f"accepted: {form}")
+        raise RosterError(
+            f"{first.location if first else path}: roster: {first.message if first else 'unreadable'}; "
+            f"accepted: {form}"
+        )
     data = doc.data
     if not isinstance(data, dict) or not isinstance(data.get("people"), list):
         raise RosterError(f"{doc.locate(())}: roster: no people list; accepted: {form}")
@@ -125,20 +130,27 @@ def load_roster(path: str | Path) -> Roster:
     seen: dict[str, Any] = {}
     for i, entry in enumerate(data["people"]):
         where = doc.locate(("people", i))
-        if not isinstance(entry, dict) or not all(isinstance(entry.get(k), str) and entry[k].strip()
-                                                  for k in ("id", "name")):
+        if not isinstance(entry, dict) or not all(
+            isinstance(entry.get(k), str) and entry[k].strip() for k in ("id", "name")
+        ):
             raise RosterError(f"{where}: roster: people[{i}] needs a non-empty id and name; accepted: {form}")
         aliases = entry.get("aliases") or []
         if not isinstance(aliases, list) or not all(isinstance(a, str) for a in aliases):
-            raise RosterError(f"{where}: roster: people[{i}].aliases must be a list of names; accepted: {form}")
+            raise RosterError(
+                f"{where}: roster: people[{i}].aliases must be a list of names; accepted: {form}"
+            )
         if entry["id"] in seen:
-            raise RosterError(f"{where}: roster: id {entry['id']!r} listed twice (first at {seen[entry['id']]})")
+            raise RosterError(
+                f"{where}: roster: id {entry['id']!r} listed twice (first at {seen[entry['id']]})"
+            )
         seen[entry["id"]] = where
         people.append(Person(entry["id"].strip(), entry["name"].strip(), tuple(aliases)))
     return Roster(tuple(people), str(path))
 
 
-def match_all(roster: Roster | None, names: Iterable[str], role: str) -> tuple[dict[str, str], list[tuple[str, str]]]:
+def match_all(
+    roster: Roster | None, names: Iterable[str], role: str
+) -> tuple[dict[str, str], list[tuple[str, str]]]:
     """(name -> roster id, refusal reasons) for every name; no roster: ({}, [])."""
     if roster is None:
         return {}, []
@@ -147,10 +159,17 @@ def match_all(roster: Roster | None, names: Iterable[str], role: str) -> tuple[d
     for name in names:
         found = roster.find(name)
         if not found:
-            reasons.append(("approval.not_on_roster", f"{role} {name!r} is not on the site roster {roster.source}"))
+            reasons.append(
+                ("approval.not_on_roster", f"{role} {name!r} is not on the site roster {roster.source}")
+            )
         elif len(found) > 1:
-            reasons.append(("approval.ambiguous", f"{role} {name!r} matches several people on the roster "
-                            f"({', '.join(p.id for p in found)}); use a name only one of them has"))
+            reasons.append(
+                (
+                    "approval.ambiguous",
+                    f"{role} {name!r} matches several people on the roster "
+                    f"({', '.join(p.id for p in found)}); use a name only one of them has",
+                )
+            )
         else:
             ids[name] = found[0].id
     return ids, reasons

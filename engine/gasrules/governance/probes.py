@@ -19,25 +19,26 @@ compared exactly the target value, or the point is reported as not reached.
 
 from __future__ import annotations
 
+from collections.abc import Iterable, Iterator
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any, Iterable, Iterator
+from typing import Any
 
-from gasrules.rulebook.expressions import round_at
 from gasrules.core.model import CompiledRulebook
+from gasrules.rulebook.expressions import round_at
 
 _FLIP = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
 
 
 @dataclass(frozen=True)
 class ChangedCut:
-    owner: str                 # rule id or derived name
-    field: str                 # when | expr
+    owner: str  # rule id or derived name
+    field: str  # when | expr
     quantity: str
     op: str
-    threshold: str             # parameter name or literal text
-    kind: str                  # parameter | constant
-    selector: tuple[str, str] | None   # (input, code) when the value is chosen by a coded input
+    threshold: str  # parameter name or literal text
+    kind: str  # parameter | constant
+    selector: tuple[str, str] | None  # (input, code) when the value is chosen by a coded input
     old: float
     new: float
     location: str
@@ -62,8 +63,11 @@ def changed_cutpoints(old: CompiledRulebook, new: CompiledRulebook) -> list[Chan
 
     out: list[ChangedCut] = []
     a_rows, b_rows = list_cutpoints(old), list_cutpoints(new)
-    b_params = {(r["owner"], r["field"], r["quantity"], r["op"], r["threshold"]) for r in b_rows
-                if r["threshold_kind"] == "parameter"}
+    b_params = {
+        (r["owner"], r["field"], r["quantity"], r["op"], r["threshold"])
+        for r in b_rows
+        if r["threshold_kind"] == "parameter"
+    }
     for r in a_rows:
         key = (r["owner"], r["field"], r["quantity"], r["op"], r["threshold"])
         if r["threshold_kind"] != "parameter" or key not in b_params:
@@ -74,8 +78,21 @@ def changed_cutpoints(old: CompiledRulebook, new: CompiledRulebook) -> list[Chan
         for sel in list(va) + [s for s in vb if s not in va]:
             x, y = va.get(sel, va[None]), vb.get(sel, vb[None])
             if x != y:
-                out.append(ChangedCut(r["owner"], r["field"], r["quantity"], r["op"], name, "parameter",
-                                      None if sel is None else (str(selector_input), sel), x, y, r["location"]))
+                out.append(
+                    ChangedCut(
+                        r["owner"],
+                        r["field"],
+                        r["quantity"],
+                        r["op"],
+                        name,
+                        "parameter",
+                        None if sel is None else (str(selector_input), sel),
+                        x,
+                        y,
+                        r["location"],
+                    )
+                )
+
     # literals: pair the constant comparisons of one owner and field in order
     def constants(rows: list[dict[str, Any]]) -> dict[tuple[str, str], list[dict[str, Any]]]:
         groups: dict[tuple[str, str], list[dict[str, Any]]] = {}
@@ -91,8 +108,20 @@ def changed_cutpoints(old: CompiledRulebook, new: CompiledRulebook) -> list[Chan
             continue
         for x, y in zip(rows, other):
             if (x["quantity"], x["op"]) == (y["quantity"], y["op"]) and x["value"] != y["value"]:
-                out.append(ChangedCut(x["owner"], x["field"], x["quantity"], x["op"], f"{x['value']:g}->{y['value']:g}",
-                                      "constant", None, float(x["value"]), float(y["value"]), y["location"]))
+                out.append(
+                    ChangedCut(
+                        x["owner"],
+                        x["field"],
+                        x["quantity"],
+                        x["op"],
+                        f"{x['value']:g}->{y['value']:g}",
+                        "constant",
+                        None,
+                        float(x["value"]),
+                        float(y["value"]),
+                        y["location"],
+                    )
+                )
     return out
 
 
@@ -134,17 +163,24 @@ def compared_at(result: dict[str, Any], cut: ChangedCut) -> float | None:
     if ev is None:
         return None
     for c in ev.get("comparisons") or []:
-        if c["quantity"] == cut.quantity and c["op"] == cut.op and (cut.kind == "constant" or c["threshold"] == cut.threshold):
+        if (
+            c["quantity"] == cut.quantity
+            and c["op"] == cut.op
+            and (cut.kind == "constant" or c["threshold"] == cut.threshold)
+        ):
             return c["compared"]
     return None
 
 
 def conclusion(result: dict[str, Any], cut: ChangedCut) -> dict[str, Any]:
     ev = owner_event(result, cut.owner)
-    return {"status": result["status"], "headline": result["headline"],
-            "owner_outcome": ev["outcome"] if ev else None,
-            "disorders": sorted(result["disorders"]),
-            "findings": sorted({f["code"] for f in result["findings"]})}
+    return {
+        "status": result["status"],
+        "headline": result["headline"],
+        "owner_outcome": ev["outcome"] if ev else None,
+        "disorders": sorted(result["disorders"]),
+        "findings": sorted({f["code"] for f in result["findings"]}),
+    }
 
 
 # ----------------------------------------------------------------------------- placing a value
@@ -170,8 +206,9 @@ def feeders(rb: CompiledRulebook, quantity: str) -> list[str]:
     return sorted(found, key=lambda n: (readers[n], found.index(n)))
 
 
-def place(rb: CompiledRulebook, base: dict[str, Any], quantity: str, target: float,
-          via: str | None) -> dict[str, Any] | None:
+def place(
+    rb: CompiledRulebook, base: dict[str, Any], quantity: str, target: float, via: str | None
+) -> dict[str, Any] | None:
     """A copy of ``base`` in which ``quantity`` is compared as exactly ``target``, or None."""
     from gasrules.evaluation.evaluator import interpret
 
@@ -193,7 +230,7 @@ def place(rb: CompiledRulebook, base: dict[str, Any], quantity: str, target: flo
         return None
     if round_at(g0, scale) == target:
         return {**base, via: x0}
-    bracket = _bracket(f, x0, g0, target, lo, hi, 10.0 ** -spec.precision)
+    bracket = _bracket(f, x0, g0, target, lo, hi, 10.0**-spec.precision)
     if bracket is None:
         return None
     a, b = bracket
@@ -204,7 +241,7 @@ def place(rb: CompiledRulebook, base: dict[str, Any], quantity: str, target: flo
         if gm is None or ga is None:
             return None
         if round_at(gm, scale) == target:
-            unit = 10.0 ** -spec.precision     # prefer the input at its own precision
+            unit = 10.0**-spec.precision  # prefer the input at its own precision
             rounded = round_at(mid, 1.0 / unit)
             for x in (rounded, round(rounded - unit, 9), round(rounded + unit, 9)):
                 gx = f(x)
@@ -218,8 +255,9 @@ def place(rb: CompiledRulebook, base: dict[str, Any], quantity: str, target: flo
     return None
 
 
-def _bracket(f: Any, x0: float, g0: float, target: float, lo: float, hi: float,
-             step: float) -> tuple[float, float] | None:
+def _bracket(
+    f: Any, x0: float, g0: float, target: float, lo: float, hi: float, step: float
+) -> tuple[float, float] | None:
     """Walk outwards from x0, doubling the step, until g crosses the target on one side."""
     for direction in (1.0, -1.0):
         d = step
@@ -241,12 +279,12 @@ def _bracket(f: Any, x0: float, g0: float, target: float, lo: float, hi: float,
 
 @dataclass
 class ProbePoint:
-    label: str                  # "old cut - step", "new cut", ...
-    target: float               # the value of the quantity as compared
+    label: str  # "old cut - step", "new cut", ...
+    target: float  # the value of the quantity as compared
     case: dict[str, Any]
     old: dict[str, Any]
     new: dict[str, Any]
-    reached: bool               # the owning rule compared exactly the target under both versions
+    reached: bool  # the owning rule compared exactly the target under both versions
 
     @property
     def differs(self) -> bool:
@@ -259,7 +297,7 @@ class CutProbe:
     cut: ChangedCut
     unit: str
     step: float
-    via: str | None = None        # the input bisected to place a derived quantity
+    via: str | None = None  # the input bisected to place a derived quantity
     base_id: str = ""
     points: list[ProbePoint] = field(default_factory=list)
     note: str = ""
@@ -280,11 +318,14 @@ def _general_applies(rb: CompiledRulebook, case: dict[str, Any], cut: ChangedCut
     if cut.kind != "parameter" or cut.selector is not None:
         return True
     p = rb.parameters[cut.threshold]
-    return p.by_input is None or case.get(p.by_input, rb.inputs[p.by_input].default) not in (p.by_values or {})
+    return p.by_input is None or case.get(p.by_input, rb.inputs[p.by_input].default) not in (
+        p.by_values or {}
+    )
 
 
-def find_witness(rb: CompiledRulebook, cut: ChangedCut, bases: Iterable[dict[str, Any]],
-                 cut_value: float, limit: int = 60) -> tuple[dict[str, Any], str | None] | None:
+def find_witness(
+    rb: CompiledRulebook, cut: ChangedCut, bases: Iterable[dict[str, Any]], cut_value: float, limit: int = 60
+) -> tuple[dict[str, Any], str | None] | None:
     """A base case and the input to move such that the quantity decides the owning rule.
 
     Bases whose quantity already lies nearest the cut are tried first: they need the smallest
@@ -312,7 +353,10 @@ def find_witness(rb: CompiledRulebook, cut: ChangedCut, bases: Iterable[dict[str
             above = place(rb, base, cut.quantity, round(cut_value + step, 9), via)
             if below is None or above is None:
                 continue
-            eb, ea = owner_event(interpret(rb, below), cut.owner), owner_event(interpret(rb, above), cut.owner)
+            eb, ea = (
+                owner_event(interpret(rb, below), cut.owner),
+                owner_event(interpret(rb, above), cut.owner),
+            )
             if eb and ea and {eb["outcome"], ea["outcome"]} == _DECIDED:
                 return base, via
     return None
@@ -321,8 +365,9 @@ def find_witness(rb: CompiledRulebook, cut: ChangedCut, bases: Iterable[dict[str
 _DECIDED = {"fired", "not_fired"}
 
 
-def probe_cut(old: CompiledRulebook, new: CompiledRulebook, cut: ChangedCut,
-              bases: Iterable[dict[str, Any]]) -> CutProbe:
+def probe_cut(
+    old: CompiledRulebook, new: CompiledRulebook, cut: ChangedCut, bases: Iterable[dict[str, Any]]
+) -> CutProbe:
     from gasrules.evaluation.evaluator import interpret
 
     step = step_of(old, cut.quantity)
@@ -333,29 +378,40 @@ def probe_cut(old: CompiledRulebook, new: CompiledRulebook, cut: ChangedCut,
     bases = list(bases)
     witness = find_witness(old, cut, bases, cut.old) or find_witness(new, cut, bases, cut.new)
     if witness is None:
-        probe.note = ("no base case found in which this comparison decides the rule"
-                      + (f" (tried inputs: {', '.join(feeders(old, cut.quantity))})" if cut.quantity in old.derived else ""))
+        probe.note = "no base case found in which this comparison decides the rule" + (
+            f" (tried inputs: {', '.join(feeders(old, cut.quantity))})" if cut.quantity in old.derived else ""
+        )
         return probe
     base, probe.via = witness
     probe.base_id = str(base.get("case_id") or "")
     labels: dict[float, list[str]] = {}
     for which, value in (("old cut", cut.old), ("new cut", cut.new)):
-        for label, target in ((f"{which} - step", value - step), (which, value), (f"{which} + step", value + step)):
+        for label, target in (
+            (f"{which} - step", value - step),
+            (which, value),
+            (f"{which} + step", value + step),
+        ):
             labels.setdefault(round(target, 9), []).append(label)
     for target, names in sorted(labels.items()):
         label = " = ".join(names)
-        case = place(old, base, cut.quantity, target, probe.via) or place(new, base, cut.quantity, target, probe.via)
+        case = place(old, base, cut.quantity, target, probe.via) or place(
+            new, base, cut.quantity, target, probe.via
+        )
         if case is None:
             probe.points.append(ProbePoint(label, target, {}, {}, {}, False))
             continue
         case = {**case, "case_id": f"probe:{cut.quantity}={target:g}"}
         ro, rn = interpret(old, case), interpret(new, case)
         reached = compared_at(ro, cut) == target and compared_at(rn, cut) == target
-        probe.points.append(ProbePoint(label, target, case, conclusion(ro, cut), conclusion(rn, cut), reached))
+        probe.points.append(
+            ProbePoint(label, target, case, conclusion(ro, cut), conclusion(rn, cut), reached)
+        )
     return probe
 
 
-def default_bases(case_dirs: Iterable[Path], n_generated: int = 300, seed: int = 11) -> Iterator[dict[str, Any]]:
+def default_bases(
+    case_dirs: Iterable[Path], n_generated: int = 300, seed: int = 11
+) -> Iterator[dict[str, Any]]:
     """Reference cases beside the rulebooks first (curated for their rules), then synthetic ones."""
     import yaml
 
@@ -374,8 +430,9 @@ def default_bases(case_dirs: Iterable[Path], n_generated: int = 300, seed: int =
         yield {k: v for k, v in case.items() if k != "context"}
 
 
-def run_probes(old: CompiledRulebook, new: CompiledRulebook, bases: Iterable[dict[str, Any]],
-               only: Iterable[str] = ()) -> list[CutProbe]:
+def run_probes(
+    old: CompiledRulebook, new: CompiledRulebook, bases: Iterable[dict[str, Any]], only: Iterable[str] = ()
+) -> list[CutProbe]:
     """Probe every changed cut-point (or only those whose owner or threshold is in ``only``)."""
     wanted = set(only)
     base_list = list(bases)
@@ -426,17 +483,22 @@ def _head(probe: CutProbe, old_v: str, new_v: str) -> str:
 def render_text(probes: list[CutProbe], old_version: str, new_version: str) -> str:
     if not probes:
         return "No changed numeric thresholds: nothing to probe."
-    lines = [f"Boundary probes: {len(probes)} changed cut-point(s); '*' marks a conclusion that differs, "
-             "'?' a point the rule did not compare as placed.", ""]
+    lines = [
+        f"Boundary probes: {len(probes)} changed cut-point(s); '*' marks a conclusion that differs, "
+        "'?' a point the rule did not compare as placed.",
+        "",
+    ]
     for probe in probes:
         lines.append(_head(probe, old_version, new_version))
         if probe.note:
             lines.append(f"  note: {probe.note}")
         for p in probe.points:
             mark = "*" if p.differs else ("?" if not p.reached else " ")
-            lines.append(f"  {mark} {p.label:<28} {probe.cut.quantity}={_fmt(p.target):<8} "
-                         f"{_moved(p, probe):<14} old {_said(p.old):<48} new {_said(p.new)}"
-                         + (f"  [{_finding_delta(p)}]" if _finding_delta(p) else ""))
+            lines.append(
+                f"  {mark} {p.label:<28} {probe.cut.quantity}={_fmt(p.target):<8} "
+                f"{_moved(p, probe):<14} old {_said(p.old):<48} new {_said(p.new)}"
+                + (f"  [{_finding_delta(p)}]" if _finding_delta(p) else "")
+            )
         lines.append("")
     return "\n".join(lines).rstrip()
 
@@ -449,21 +511,30 @@ def render_markdown(probes: list[CutProbe], old_version: str, new_version: str) 
         lines += [f"### `{probe.cut.label}`", "", _head(probe, old_version, new_version), ""]
         if probe.note:
             lines += [f"_{probe.note}_", ""]
-        lines += [f"| Point | {probe.cut.quantity} | Case | Old {old_version} | New {new_version} | Findings | Differs |",
-                  "|---|---|---|---|---|---|---|"]
+        lines += [
+            f"| Point | {probe.cut.quantity} | Case | Old {old_version} | New {new_version} | Findings | Differs |",
+            "|---|---|---|---|---|---|---|",
+        ]
         for p in probe.points:
-            lines.append(f"| {p.label} | {_fmt(p.target)} | {_moved(p, probe)} | {_said(p.old)} | {_said(p.new)} | "
-                         f"{_finding_delta(p) or '-'} | {'**yes**' if p.differs else ('not reached' if not p.reached else 'no')} |")
+            lines.append(
+                f"| {p.label} | {_fmt(p.target)} | {_moved(p, probe)} | {_said(p.old)} | {_said(p.new)} | "
+                f"{_finding_delta(p) or '-'} | {'**yes**' if p.differs else ('not reached' if not p.reached else 'no')} |"
+            )
         lines.append("")
-    lines.append("_Invented probe cases for review; decision support only, it never replaces clinical judgement._")
+    lines.append(
+        "_Invented probe cases for review; decision support only, it never replaces clinical judgement._"
+    )
     return "\n".join(lines)
 
 
 def render_json(probes: list[CutProbe], old_version: str, new_version: str) -> str:
     import json
 
-    return json.dumps({"old_version": old_version, "new_version": new_version,
-                       "probes": [p.as_dict() for p in probes]}, indent=2, default=str)
+    return json.dumps(
+        {"old_version": old_version, "new_version": new_version, "probes": [p.as_dict() for p in probes]},
+        indent=2,
+        default=str,
+    )
 
 
 RENDERERS = {"text": render_text, "json": render_json, "markdown": render_markdown}

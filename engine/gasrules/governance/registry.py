@@ -26,17 +26,32 @@ import json
 import os
 import shutil
 import tempfile
+from collections.abc import Iterable
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any
 
 from gasrules.core.errors import EngineError
 from gasrules.governance.decision_log import ZERO_SHA, canonical_json, sha256_hex
 
-__all__ = ["RegistryError", "ManifestEntry", "SuspensionState", "manifest_hash", "write_manifest",
-           "read_manifests", "approvals_for", "archive_rulebook", "load_archived", "archive_loader",
-           "read_suspensions", "append_suspension", "suspension_state", "flatten_resolved", "utc_now"]
+__all__ = [
+    "ManifestEntry",
+    "RegistryError",
+    "SuspensionState",
+    "append_suspension",
+    "approvals_for",
+    "archive_loader",
+    "archive_rulebook",
+    "flatten_resolved",
+    "load_archived",
+    "manifest_hash",
+    "read_manifests",
+    "read_suspensions",
+    "suspension_state",
+    "utc_now",
+    "write_manifest",
+]
 
 MANIFEST_FORMAT = "gasrules-release/1"
 
@@ -50,10 +65,11 @@ class RegistryError(EngineError):
 
 
 def utc_now() -> str:
-    return datetime.now(timezone.utc).isoformat(timespec="seconds").replace("+00:00", "Z")
+    return datetime.now(UTC).isoformat(timespec="seconds").replace("+00:00", "Z")
 
 
 # ---------------------------------------------------------------- manifests
+
 
 def manifest_hash(manifest: dict[str, Any]) -> str:
     return sha256_hex(canonical_json({k: v for k, v in manifest.items() if k != "manifest_sha256"}))
@@ -80,8 +96,11 @@ def write_manifest(release_dir: Path, manifest: dict[str, Any]) -> Path:
             fh.flush()
             os.fsync(fh.fileno())
     except FileExistsError:
-        raise RegistryError("release.exists", "this rulebook version and content is already released; "
-                            "a release is never rewritten", str(target)) from None
+        raise RegistryError(
+            "release.exists",
+            "this rulebook version and content is already released; a release is never rewritten",
+            str(target),
+        ) from None
     return target
 
 
@@ -93,7 +112,7 @@ def _safe(text: str) -> str:
 class ManifestEntry:
     path: Path
     manifest: dict[str, Any]
-    problem: str = ""               # "" when the manifest is intact
+    problem: str = ""  # "" when the manifest is intact
 
     @property
     def rulebook(self) -> dict[str, Any]:
@@ -116,8 +135,11 @@ def read_manifests(release_dir: Path) -> list[ManifestEntry]:
         if not isinstance(data, dict) or not isinstance(data.get("rulebook"), dict):
             out.append(ManifestEntry(path, data if isinstance(data, dict) else {}, "not a release manifest"))
             continue
-        problem = "" if data.get("manifest_sha256") == manifest_hash(data) else \
-            "does not match its manifest_sha256 (edited after release)"
+        problem = (
+            ""
+            if data.get("manifest_sha256") == manifest_hash(data)
+            else "does not match its manifest_sha256 (edited after release)"
+        )
         out.append(ManifestEntry(path, data, problem))
     out.sort(key=lambda e: (str(e.manifest.get("date", "")), e.path.name))
     return out
@@ -129,8 +151,9 @@ def manifest_scheme(entry: ManifestEntry) -> int:
     return scheme if isinstance(scheme, int) and not isinstance(scheme, bool) else 0
 
 
-def approvals_for(release_dir: Path, sha256: str, *, legacy_sha256: str = "",
-                  archive: Path | None = None) -> tuple[ManifestEntry | None, list[ManifestEntry]]:
+def approvals_for(
+    release_dir: Path, sha256: str, *, legacy_sha256: str = "", archive: Path | None = None
+) -> tuple[ManifestEntry | None, list[ManifestEntry]]:
     """(the intact manifest approving ``sha256`` or None, every manifest read).
 
     A manifest made under hash scheme 1 (``legacy_sha256``, which covered inputs, parameters,
@@ -158,6 +181,7 @@ def approvals_for(release_dir: Path, sha256: str, *, legacy_sha256: str = "",
 
 # ---------------------------------------------------------------- archive
 
+
 def flatten_resolved(res: Any, extra_suspensions: Iterable[tuple[str, str]] = ()) -> dict[str, Any]:
     """One self-contained rulebook document with the resolved content of ``res``."""
     from gasrules.rulebook.identity import resolved_document
@@ -177,7 +201,9 @@ def resolve_path(path: Path) -> Any:
     return res
 
 
-def archive_rulebook(archive: Path, rulebook_path: Path, extra_suspensions: Iterable[tuple[str, str]] = ()) -> str:
+def archive_rulebook(
+    archive: Path, rulebook_path: Path, extra_suspensions: Iterable[tuple[str, str]] = ()
+) -> str:
     """Store the resolved rulebook (plus any extra rule suspensions); return its sha256.
 
     The stored file is loaded back and must have the sha256 it is filed under.
@@ -190,21 +216,23 @@ def archive_rulebook(archive: Path, rulebook_path: Path, extra_suspensions: Iter
     doc = flatten_resolved(res, list(extra_suspensions))
     bibliography = _merged_bibliography(res)
     if bibliography is not None:
-        doc["bibliography"] = "bibliography.yaml"      # archived beside the rulebook: same identity
+        doc["bibliography"] = "bibliography.yaml"  # archived beside the rulebook: same identity
     archive = Path(archive)
     archive.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=".incoming-", dir=archive))
     try:
         text = yaml.safe_dump(doc, sort_keys=False, allow_unicode=True, width=100)
-        (tmp / "rulebook.yaml").write_text("# Resolved rulebook archived by gasrules: do not edit.\n" + text,
-                                           encoding="utf-8")
+        (tmp / "rulebook.yaml").write_text(
+            "# Resolved rulebook archived by gasrules: do not edit.\n" + text, encoding="utf-8"
+        )
         if bibliography is not None:
             (tmp / "bibliography.yaml").write_text(
                 "# Bibliography of the archived rulebook: do not edit.\n"
-                + yaml.safe_dump(bibliography, sort_keys=False, allow_unicode=True, width=100), encoding="utf-8")
+                + yaml.safe_dump(bibliography, sort_keys=False, allow_unicode=True, width=100),
+                encoding="utf-8",
+            )
         rb = load_rulebook(tmp / "rulebook.yaml", cache=False)
-        identity = {**rb.identity, "files": [d.file for d in res.documents],
-                    "archived": utc_now()}
+        identity = {**rb.identity, "files": [d.file for d in res.documents], "archived": utc_now()}
         (tmp / "identity.json").write_text(json.dumps(identity, indent=2) + "\n", encoding="utf-8")
         target = archive / rb.sha256
         if target.exists():
@@ -219,8 +247,8 @@ def archive_rulebook(archive: Path, rulebook_path: Path, extra_suspensions: Iter
 
 def _merged_bibliography(res: Any) -> dict[str, Any] | None:
     """The entries every bibliography of the chain declares, as one bibliography document (None: none)."""
-    from gasrules.rulebook.bibliography import load_bibliographies
     from gasrules.core.errors import RulebookError
+    from gasrules.rulebook.bibliography import load_bibliographies
 
     bib, problems = load_bibliographies(res.documents)
     if problems:
@@ -239,7 +267,9 @@ def load_archived(archive: Path, sha256: str) -> Any:
         raise LookupError(f"no archived rulebook {sha256[:12]}... in {archive}")
     rb = load_rulebook(path)
     if not rb.matches_sha256(sha256):  # filed under scheme 2, or under scheme 1 before it
-        raise RegistryError("archive.altered", f"the archived file now hashes to {rb.sha256[:12]}...", str(path))
+        raise RegistryError(
+            "archive.altered", f"the archived file now hashes to {rb.sha256[:12]}...", str(path)
+        )
     return rb
 
 
@@ -249,6 +279,7 @@ def archive_loader(archive: Path) -> Any:
 
 
 # ---------------------------------------------------------------- suspension register
+
 
 def register_path(release_dir: Path) -> Path:
     return Path(release_dir) / "suspensions.jsonl"
@@ -269,10 +300,14 @@ def read_suspensions(release_dir: Path) -> list[dict[str, Any]]:
             except ValueError:
                 raise RegistryError("suspensions.damaged", "line is not JSON", where) from None
             if not isinstance(event, dict) or event.get("prev") != prev:
-                raise RegistryError("suspensions.damaged", "the chain is broken (an event was edited, "
-                                    "removed or reordered)", where)
-            if sha256_hex(canonical_json({k: v for k, v in event.items() if k != "event_sha256"})) \
-                    != event.get("event_sha256"):
+                raise RegistryError(
+                    "suspensions.damaged",
+                    "the chain is broken (an event was edited, removed or reordered)",
+                    where,
+                )
+            if sha256_hex(
+                canonical_json({k: v for k, v in event.items() if k != "event_sha256"})
+            ) != event.get("event_sha256"):
                 raise RegistryError("suspensions.damaged", "event does not match its event_sha256", where)
             prev = event["event_sha256"]
             events.append(event)
@@ -289,8 +324,11 @@ def append_suspension(release_dir: Path, event: dict[str, Any]) -> dict[str, Any
         fcntl.flock(fh.fileno(), fcntl.LOCK_EX)
         try:
             events = read_suspensions(release_dir)
-            sealed = {**event, "seq": len(events) + 1,
-                      "prev": events[-1]["event_sha256"] if events else ZERO_SHA}
+            sealed = {
+                **event,
+                "seq": len(events) + 1,
+                "prev": events[-1]["event_sha256"] if events else ZERO_SHA,
+            }
             sealed["event_sha256"] = sha256_hex(canonical_json(sealed))
             fh.write(canonical_json(sealed) + b"\n")
             fh.flush()
@@ -305,10 +343,10 @@ class SuspensionState:
     """What is suspended for one approved rulebook (by its sha256)."""
 
     sha256: str
-    rulebook_reason: str = ""                      # non-empty: the whole rulebook is suspended
+    rulebook_reason: str = ""  # non-empty: the whole rulebook is suspended
     rulebook_event: dict[str, Any] = field(default_factory=dict)
-    rules: dict[str, str] = field(default_factory=dict)     # rule id -> reason
-    variant_sha256: str = ""                       # archived rulebook with those rules suspended
+    rules: dict[str, str] = field(default_factory=dict)  # rule id -> reason
+    variant_sha256: str = ""  # archived rulebook with those rules suspended
 
     @property
     def suspended(self) -> bool:

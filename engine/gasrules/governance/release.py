@@ -27,15 +27,34 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 from gasrules.core.errors import EngineError
-from gasrules.governance.registry import MANIFEST_FORMAT, ManifestEntry, RegistryError, archive_rulebook, load_archived, manifest_hash, read_manifests, utc_now, write_manifest
+from gasrules.governance.registry import (
+    MANIFEST_FORMAT,
+    ManifestEntry,
+    RegistryError,
+    archive_rulebook,
+    load_archived,
+    manifest_hash,
+    read_manifests,
+    utc_now,
+    write_manifest,
+)
 
-__all__ = ["Approver", "ReleaseRefused", "SuiteSummary", "ReleaseOutcome", "run_validation", "release",
-           "render_outcome", "render_refusal"]
+__all__ = [
+    "Approver",
+    "ReleaseOutcome",
+    "ReleaseRefused",
+    "SuiteSummary",
+    "release",
+    "render_outcome",
+    "render_refusal",
+    "run_validation",
+]
 
 
 class ReleaseRefused(EngineError):
@@ -60,15 +79,15 @@ class SuiteSummary:
     passed: int
     failed: int
     skipped: int
-    failures: list[str]                  # "case-id: what" for each failed expectation
-    rules: int                           # active rules
-    rules_covered: int                   # fired somewhere and not fired somewhere
+    failures: list[str]  # "case-id: what" for each failed expectation
+    rules: int  # active rules
+    rules_covered: int  # fired somewhere and not fired somewhere
     never_fired: list[str]
     never_not_fired: list[str]
     threshold_coverage: dict[str, Any] = field(default_factory=dict)
-    excused: list[dict[str, Any]] = field(default_factory=list)   # coverage stated unreachable, with reasons
+    excused: list[dict[str, Any]] = field(default_factory=list)  # coverage stated unreachable, with reasons
     rules_declared_unreachable: int = 0  # of rules_covered, rules complete only through a stated exception
-    rule_coverage: str = ""              # "N covered + M declared unreachable of T"
+    rule_coverage: str = ""  # "N covered + M declared unreachable of T"
 
     def gate_problems(self) -> list[tuple[str, str]]:
         out = []
@@ -83,8 +102,12 @@ class SuiteSummary:
                 parts.append("never fired: " + ", ".join(self.never_fired))
             if self.never_not_fired:
                 parts.append("never seen not firing: " + ", ".join(self.never_not_fired))
-            out.append(("suite.rule_coverage", f"rule coverage {self.rules_covered}/{self.rules} is not full "
-                        f"({'; '.join(parts)})"))
+            out.append(
+                (
+                    "suite.rule_coverage",
+                    f"rule coverage {self.rules_covered}/{self.rules} is not full ({'; '.join(parts)})",
+                )
+            )
         return out
 
 
@@ -109,7 +132,7 @@ def run_validation(rulebook_path: Path, rb: Any) -> SuiteSummary:
 
     loaded = S.load_suite(rulebook_path)
     results = S.run_suite(rb, loaded)
-    cov = S.rule_coverage(rb, results, loaded.unreachable)   # stated exceptions, each with a reason
+    cov = S.rule_coverage(rb, results, loaded.unreachable)  # stated exceptions, each with a reason
     threshold: dict[str, Any] = {}
     if hasattr(S, "threshold_coverage"):
         tc = S.threshold_coverage(rb, results, loaded.unreachable)
@@ -118,15 +141,28 @@ def run_validation(rulebook_path: Path, rb: Any) -> SuiteSummary:
     content, names = _files_hash([str(f) for f in loaded.files], root)
     failures = [f"{r.case.id}: {f.what}" for r in results if r.outcome == "failed" for f in r.failures]
     count = {o: sum(1 for r in results if r.outcome == o) for o in ("passed", "failed", "skipped")}
-    return SuiteSummary(content, names, len(results), count["passed"], count["failed"], count["skipped"],
-                        failures, int(cov["rules"]), int(cov["both"]), list(cov["never_fired"]),
-                        list(cov["never_not_fired"]), threshold,
-                        [dict(e) for e in cov.get("excused", [])],
-                        int(cov.get("declared_unreachable", 0)), str(cov.get("summary", "")))
+    return SuiteSummary(
+        content,
+        names,
+        len(results),
+        count["passed"],
+        count["failed"],
+        count["skipped"],
+        failures,
+        int(cov["rules"]),
+        int(cov["both"]),
+        list(cov["never_fired"]),
+        list(cov["never_not_fired"]),
+        threshold,
+        [dict(e) for e in cov.get("excused", [])],
+        int(cov.get("declared_unreachable", 0)),
+        str(cov.get("summary", "")),
+    )
 
 
-def run_cohort_gate(path: Path, rb: Any, run: Callable[[Path, Any], dict[str, Any] | None] | None = None
-                    ) -> tuple[dict[str, Any] | None, list[tuple[str, str]]]:
+def run_cohort_gate(
+    path: Path, rb: Any, run: Callable[[Path, Any], dict[str, Any] | None] | None = None
+) -> tuple[dict[str, Any] | None, list[tuple[str, str]]]:
     """The simulated cohorts' table (None when the chain has no cohort file) and its gate reasons:
     every goal must be met and no generated case may be inconsistent or rejected."""
     from gasrules.verification import cohort_table as T
@@ -161,10 +197,16 @@ def _authors(rb: Any, given: list[str]) -> list[str]:
     if given:
         return [a.strip() for a in given if a.strip()]
     owners = rb.metadata.get("owners") or []
-    return [str(o.get("name")) for o in owners if isinstance(o, dict) and "author" in str(o.get("role", "")).lower()]
+    return [
+        str(o.get("name"))
+        for o in owners
+        if isinstance(o, dict) and "author" in str(o.get("role", "")).lower()
+    ]
 
 
-def _previous(release_dir: Path, rb: Any, given: Path | None) -> tuple[ManifestEntry | None, list[tuple[str, str]]]:
+def _previous(
+    release_dir: Path, rb: Any, given: Path | None
+) -> tuple[ManifestEntry | None, list[tuple[str, str]]]:
     if given is not None:
         try:
             data = json.loads(Path(given).read_bytes())
@@ -184,15 +226,23 @@ class ReleaseOutcome:
     diff_markdown: str = ""
 
 
-def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: list[Approver],
-            authors: list[str] | None = None, previous: str | Path | None = None, archive: str | Path | None = None,
-            validate: Callable[[Path, Any], SuiteSummary] = run_validation,
-            now: Callable[[], str] = utc_now,
-            cohorts: Callable[[Path, Any], dict[str, Any] | None] | None = None, roster: Any = None) -> ReleaseOutcome:
+def release(
+    rulebook_path: str | Path,
+    *,
+    release_dir: str | Path,
+    approvers: list[Approver],
+    authors: list[str] | None = None,
+    previous: str | Path | None = None,
+    archive: str | Path | None = None,
+    validate: Callable[[Path, Any], SuiteSummary] = run_validation,
+    now: Callable[[], str] = utc_now,
+    cohorts: Callable[[Path, Any], dict[str, Any] | None] | None = None,
+    roster: Any = None,
+) -> ReleaseOutcome:
     """Gate, archive and record one release. Raises ReleaseRefused (every reason) or RulebookError."""
     from gasrules.core.version import __version__
-    from gasrules.rulebook.build import load_rulebook
     from gasrules.governance.diff import diff_paths, render_markdown
+    from gasrules.rulebook.build import load_rulebook
 
     path, release_dir = Path(rulebook_path), Path(release_dir)
     archive_dir = Path(archive) if archive is not None else release_dir / "archive"
@@ -206,13 +256,18 @@ def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: li
             reasons.append(("approval.incomplete", f"approver {a.name or '?'} needs both a name and a role"))
     author_names = _authors(rb, list(authors or []))
     if not author_names:
-        reasons.append(("approval.no_author", "name the author of the change (--author), or list an owner "
-                        "with an author role in the rulebook metadata"))
+        reasons.append(
+            (
+                "approval.no_author",
+                "name the author of the change (--author), or list an owner "
+                "with an author role in the rulebook metadata",
+            )
+        )
     # names compare as read: NFKC, no format characters, case folded, confusable skeleton (people.py)
     own = sorted({a.name for a in approvers if any(_same(a.name, x) for x in author_names)})
     for name in own:
         reasons.append(("approval.self", f"{name} is an author of this change and cannot approve it"))
-    if any(_same(a.name, b.name) for i, a in enumerate(approvers) for b in approvers[i + 1:]):
+    if any(_same(a.name, b.name) for i, a in enumerate(approvers) for b in approvers[i + 1 :]):
         reasons.append(("approval.duplicate", "the same person is listed twice as approver"))
     from gasrules.governance.people import match_all
 
@@ -241,37 +296,53 @@ def release(rulebook_path: str | Path, *, release_dir: str | Path, approvers: li
         try:
             old_rb = load_archived(archive_dir, prev_sha)
         except (LookupError, RegistryError) as exc:
-            reasons.append(("previous.not_archived", f"the previous release's rulebook cannot be read: {exc}"))
+            reasons.append(
+                ("previous.not_archived", f"the previous release's rulebook cannot be read: {exc}")
+            )
         else:
             d = diff_paths(Path(archive_dir) / old_rb.sha256 / "rulebook.yaml", path)
             markdown = render_markdown(d)
             if d.version_error:
                 reasons.append(("version.bump", d.version_error))
-            change = {"class": d.required, "bump": d.bump,
-                      "counts": {k: v for k, v in d.as_dict()["counts"].items() if v},
-                      "changes": [{"kind": c.kind, "key": c.key, "aspect": c.aspect, "class": c.cls}
-                                  for c in d.changes]}
+            change = {
+                "class": d.required,
+                "bump": d.bump,
+                "counts": {k: v for k, v in d.as_dict()["counts"].items() if v},
+                "changes": [
+                    {"kind": c.kind, "key": c.key, "aspect": c.aspect, "class": c.cls} for c in d.changes
+                ],
+            }
     if reasons:
         raise ReleaseRefused(reasons, summary)
     archived = archive_rulebook(archive_dir, path)
     if archived != rb.sha256:  # pragma: no cover - archive_rulebook checks this itself
         raise ReleaseRefused([("archive.mismatch", f"archived as {archived}, expected {rb.sha256}")], summary)
     root = _common_root(list(rb.files))
-    files = [{"path": name, "sha256": sha} for name, sha in
-             sorted((_rel(f, root), hashlib.sha256(Path(f).read_bytes()).hexdigest()) for f in rb.files)]
+    files = [
+        {"path": name, "sha256": sha}
+        for name, sha in sorted(
+            (_rel(f, root), hashlib.sha256(Path(f).read_bytes()).hexdigest()) for f in rb.files
+        )
+    ]
     manifest = {
         "format": MANIFEST_FORMAT,
         "rulebook": {**rb.identity, "title": str(rb.metadata.get("title", "")), "files": files},
         "archive": {"sha256": archived, "file": f"{archived}/rulebook.yaml"},
         "suite": {k: v for k, v in asdict(summary).items() if k != "failures"},
-        "previous": None if prev is None else {"manifest": prev.path.name,
-                                               "manifest_sha256": prev.manifest.get("manifest_sha256"),
-                                               "rulebook": {k: prev.rulebook.get(k) for k in ("id", "version", "sha256")}},
+        "previous": None
+        if prev is None
+        else {
+            "manifest": prev.path.name,
+            "manifest_sha256": prev.manifest.get("manifest_sha256"),
+            "rulebook": {k: prev.rulebook.get(k) for k in ("id", "version", "sha256")},
+        },
         "change": change,
         "cohorts": cohort_summary(cohort_table),
         "author": author_names,
-        "approvers": [{**asdict(a), **({"id": approver_ids[a.name]} if a.name in approver_ids else {})}
-                      for a in approvers],
+        "approvers": [
+            {**asdict(a), **({"id": approver_ids[a.name]} if a.name in approver_ids else {})}
+            for a in approvers
+        ],
         **({"author_ids": [author_ids[n] for n in author_names]} if roster is not None else {}),
         "date": now(),
         "engine_version": __version__,
@@ -284,8 +355,10 @@ def _cohort_line(table: dict[str, Any] | None) -> list[str]:
     if not table:
         return []
     met = sum(1 for r in table["rows"] if r["passed"])
-    return [f"  cohorts:  {met}/{len(table['rows'])} simulated cohorts meet their goals ({table['size']} cases each, "
-            f"seed {table['seed']})"]
+    return [
+        f"  cohorts:  {met}/{len(table['rows'])} simulated cohorts meet their goals ({table['size']} cases each, "
+        f"seed {table['seed']})"
+    ]
 
 
 def _rel(file: str, root: Path) -> str:
@@ -299,18 +372,24 @@ def render_outcome(outcome: ReleaseOutcome) -> str:
     m = outcome.manifest
     rb, s, c = m["rulebook"], m["suite"], m["change"]
     prev = m["previous"]
-    lines = [f"released {rb['id']} {rb['version']} (sha256 {rb['sha256'][:16]}...)",
-             f"  manifest: {outcome.manifest_path}",
-             f"  archive:  {m['archive']['file']}",
-             f"  suite:    {s['passed']}/{s['cases']} passed, {s['skipped']} skipped; rules covered "
-             f"{s['rules_covered']}/{s['rules']} ({s.get('rule_coverage', '')}); suite content "
-             f"{s['content_sha256'][:16]}...",
-             *_cohort_line(m.get("cohorts")),
-             f"  change:   {c['class']}" + (f" against {prev['rulebook']['version']} ({c['bump']} bump)" if prev else
-                                            " (first release of this rulebook)"),
-             f"  author:   {', '.join(m['author'])}",
-             "  approved: " + "; ".join(f"{a['name']} ({a['role']})" for a in m["approvers"]),
-             f"  date:     {m['date']}"]
+    lines = [
+        f"released {rb['id']} {rb['version']} (sha256 {rb['sha256'][:16]}...)",
+        f"  manifest: {outcome.manifest_path}",
+        f"  archive:  {m['archive']['file']}",
+        f"  suite:    {s['passed']}/{s['cases']} passed, {s['skipped']} skipped; rules covered "
+        f"{s['rules_covered']}/{s['rules']} ({s.get('rule_coverage', '')}); suite content "
+        f"{s['content_sha256'][:16]}...",
+        *_cohort_line(m.get("cohorts")),
+        f"  change:   {c['class']}"
+        + (
+            f" against {prev['rulebook']['version']} ({c['bump']} bump)"
+            if prev
+            else " (first release of this rulebook)"
+        ),
+        f"  author:   {', '.join(m['author'])}",
+        "  approved: " + "; ".join(f"{a['name']} ({a['role']})" for a in m["approvers"]),
+        f"  date:     {m['date']}",
+    ]
     return "\n".join(lines)
 
 

@@ -25,10 +25,19 @@ from typing import Any
 
 from gasrules.rulebook.bibliography import describe, keys_of
 
-__all__ = ["ReviewDocument", "build_document", "impact_summary", "render_markdown", "render_html", "condition_text"]
+__all__ = [
+    "ReviewDocument",
+    "build_document",
+    "condition_text",
+    "impact_summary",
+    "render_html",
+    "render_markdown",
+]
 
-CAUTION = ("Decision support only: it supports, and never replaces, clinical judgement; local laboratory ranges "
-           "and protocols prevail.")
+CAUTION = (
+    "Decision support only: it supports, and never replaces, clinical judgement; local laboratory ranges "
+    "and protocols prevail."
+)
 EXAMPLES = 3
 TOP_TRANSITIONS = 15
 
@@ -40,19 +49,21 @@ class ReviewDocument:
     files: list[str]
     parameters: list[dict[str, Any]]
     derived: list[dict[str, Any]]
-    steps: list[dict[str, Any]]                     # {name, label, core, rules: [...]}
-    changes: dict[str, Any] | None = None           # from rulediff, when since is given
-    impact: dict[str, Any] | None = None            # when a corpus is given too
-    cohorts: dict[str, Any] | None = None           # operating characteristics on the simulated cohorts
+    steps: list[dict[str, Any]]  # {name, label, core, rules: [...]}
+    changes: dict[str, Any] | None = None  # from rulediff, when since is given
+    impact: dict[str, Any] | None = None  # when a corpus is given too
+    cohorts: dict[str, Any] | None = None  # operating characteristics on the simulated cohorts
     cautions: list[str] = field(default_factory=list)
-    base_intended_use: dict[str, Any] | None = None   # an overlay's base's, when it differs from the overlay's
-    coverage: dict[str, str] | None = None            # rule and threshold coverage of the rulebook's suite
+    base_intended_use: dict[str, Any] | None = None  # an overlay's base's, when it differs from the overlay's
+    coverage: dict[str, str] | None = None  # rule and threshold coverage of the rulebook's suite
 
 
 # ---------------------------------------------------------------- plain-language conditions
 
-_TOKEN = re.compile(r"""\bknown\(\s*(?P<known>[A-Za-z_]\w*)\s*\)|\bhas\(\s*["'](?P<has>[^"']+)["']\s*\)"""
-                    r"""|(?P<quoted>"[^"]*"|'[^']*')|(?<![\w.])(?P<name>[A-Za-z_]\w*)(?!\w)(?!\s*\()""")
+_TOKEN = re.compile(
+    r"""\bknown\(\s*(?P<known>[A-Za-z_]\w*)\s*\)|\bhas\(\s*["'](?P<has>[^"']+)["']\s*\)"""
+    r"""|(?P<quoted>"[^"]*"|'[^']*')|(?<![\w.])(?P<name>[A-Za-z_]\w*)(?!\w)(?!\s*\()"""
+)
 _WORDS = {"and", "or", "not", "if", "else", "True", "False"}
 
 
@@ -98,6 +109,7 @@ def _label(rb: Any, name: str) -> str:
 
 # ---------------------------------------------------------------- building
 
+
 def _where(loc: Any) -> str:
     return f"{loc.file}:{loc.line}" if getattr(loc, "line", 0) else str(getattr(loc, "file", ""))
 
@@ -127,47 +139,88 @@ def _reference(rb: Any, item: Any) -> str:
 def _parameters(rb: Any) -> list[dict[str, Any]]:
     rows = []
     for name, p in rb.parameters.items():
-        rows.append({"name": name, "label": p.label if p.label != name else "", "value": p.value, "unit": p.unit,
-                     "by": {"input": p.by_input, "values": dict(p.by_values)} if p.by_input else None,
-                     "bounds": list(p.bounds) if p.bounds else None,
-                     "choices": list(p.choices) if p.choices else None,
-                     "rationale": p.rationale, "citation": _citation(rb, p.source),
-                     "refs": keys_of(p.source.get("ref")),
-                     "evidence": p.source.get("evidence", ""), "set_by": _where(p.set_by),
-                     "declared_at": _where(p.location)})
+        rows.append(
+            {
+                "name": name,
+                "label": p.label if p.label != name else "",
+                "value": p.value,
+                "unit": p.unit,
+                "by": {"input": p.by_input, "values": dict(p.by_values)} if p.by_input else None,
+                "bounds": list(p.bounds) if p.bounds else None,
+                "choices": list(p.choices) if p.choices else None,
+                "rationale": p.rationale,
+                "citation": _citation(rb, p.source),
+                "refs": keys_of(p.source.get("ref")),
+                "evidence": p.source.get("evidence", ""),
+                "set_by": _where(p.set_by),
+                "declared_at": _where(p.location),
+            }
+        )
     return rows
 
 
 def _rules(rb: Any) -> list[dict[str, Any]]:
-    steps: dict[str, dict[str, Any]] = {n: {"name": n, "label": s.label, "core": s.core, "rules": []}
-                                        for n, s in rb.steps.items()}
+    steps: dict[str, dict[str, Any]] = {
+        n: {"name": n, "label": s.label, "core": s.core, "rules": []} for n, s in rb.steps.items()
+    }
     for r in rb.rules:
         step = steps.setdefault(r.step, {"name": r.step, "label": r.step, "core": False, "rules": []})
-        step["rules"].append({
-            "id": r.id, "title": r.title, "status": r.status, "suspended_reason": r.suspended_reason,
-            "condition": r.when.text if r.when else "", "condition_text": condition_text(rb, r.when.text if r.when else None),
-            "needs": sorted(r.needs), "stops": r.stop, "disorders": list(r.disorders), "qualifiers": dict(r.qualifiers),
-            "findings": [{"code": f.code, "severity": f.severity, "text": f.text} for f in r.findings],
-            "concludes": r.doc.get("concludes", ""), "why": r.doc.get("why", ""), "example": r.doc.get("example", ""),
-            "references": [_reference(rb, item) for item in r.doc.get("references", [])], "where": _where(r.location)})
+        step["rules"].append(
+            {
+                "id": r.id,
+                "title": r.title,
+                "status": r.status,
+                "suspended_reason": r.suspended_reason,
+                "condition": r.when.text if r.when else "",
+                "condition_text": condition_text(rb, r.when.text if r.when else None),
+                "needs": sorted(r.needs),
+                "stops": r.stop,
+                "disorders": list(r.disorders),
+                "qualifiers": dict(r.qualifiers),
+                "findings": [{"code": f.code, "severity": f.severity, "text": f.text} for f in r.findings],
+                "concludes": r.doc.get("concludes", ""),
+                "why": r.doc.get("why", ""),
+                "example": r.doc.get("example", ""),
+                "references": [_reference(rb, item) for item in r.doc.get("references", [])],
+                "where": _where(r.location),
+            }
+        )
     return [s for s in steps.values() if s["rules"]]
 
 
-def build_document(rulebook_path: str | Path, *, since: str | Path | None = None, corpus: str | Path | None = None,
-                   workers: int = 1, cohorts: bool = False) -> ReviewDocument:
+def build_document(
+    rulebook_path: str | Path,
+    *,
+    since: str | Path | None = None,
+    corpus: str | Path | None = None,
+    workers: int = 1,
+    cohorts: bool = False,
+) -> ReviewDocument:
     """Everything the committee reads; RulebookError for a broken rulebook."""
     from gasrules.rulebook.build import load_rulebook
 
     rb = load_rulebook(rulebook_path)
     doc = ReviewDocument(
-        identity=dict(rb.identity), metadata=dict(rb.metadata), files=list(rb.files),
+        identity=dict(rb.identity),
+        metadata=dict(rb.metadata),
+        files=list(rb.files),
         parameters=_parameters(rb),
-        derived=[{"name": n, "label": d.label, "formula": d.expr.text, "unit": d.unit,
-                  "when": condition_text(rb, d.when.text) if d.when else "", "reported": d.report}
-                 for n, d in rb.derived.items()],
-        steps=_rules(rb), cautions=list(rb.presentation.get("cautions") or [CAUTION]),
+        derived=[
+            {
+                "name": n,
+                "label": d.label,
+                "formula": d.expr.text,
+                "unit": d.unit,
+                "when": condition_text(rb, d.when.text) if d.when else "",
+                "reported": d.report,
+            }
+            for n, d in rb.derived.items()
+        ],
+        steps=_rules(rb),
+        cautions=list(rb.presentation.get("cautions") or [CAUTION]),
         base_intended_use=_base_intended_use(rulebook_path, rb.metadata.get("intended_use")),
-        coverage=_coverage(rulebook_path, rb))
+        coverage=_coverage(rulebook_path, rb),
+    )
     if since is not None:
         from gasrules.governance.diff import diff_paths
 
@@ -196,7 +249,9 @@ def impact_summary(old: Any, new: Any, corpus: str | Path, *, workers: int = 1) 
     def flush() -> None:
         nonlocal changed_disorders, changed_findings
         cases = [r.case for r in rows]
-        for row, a, b in zip(rows, interpret_many(old, cases, workers, False), interpret_many(new, cases, workers, False)):
+        for row, a, b in zip(
+            rows, interpret_many(old, cases, workers, False), interpret_many(new, cases, workers, False)
+        ):
             da, db = sorted(a.get("disorders") or []), sorted(b.get("disorders") or [])
             fa = sorted(f["code"] for f in a.get("findings") or [])
             fb = sorted(f["code"] for f in b.get("findings") or [])
@@ -220,14 +275,22 @@ def impact_summary(old: Any, new: Any, corpus: str | Path, *, workers: int = 1) 
             if len(rows) >= 2048:
                 flush()
     flush()
-    return {"corpus": str(corpus), "cases": total, "unreadable": unreadable, "changed_disorders": changed_disorders,
-            "changed_findings": changed_findings,
-            "transitions": [{"old": a, "new": b, "count": n, "examples": examples[(a, b)]}
-                            for (a, b), n in transitions.most_common(TOP_TRANSITIONS)],
-            "more_transitions": max(0, len(transitions) - TOP_TRANSITIONS)}
+    return {
+        "corpus": str(corpus),
+        "cases": total,
+        "unreadable": unreadable,
+        "changed_disorders": changed_disorders,
+        "changed_findings": changed_findings,
+        "transitions": [
+            {"old": a, "new": b, "count": n, "examples": examples[(a, b)]}
+            for (a, b), n in transitions.most_common(TOP_TRANSITIONS)
+        ],
+        "more_transitions": max(0, len(transitions) - TOP_TRANSITIONS),
+    }
 
 
 # ---------------------------------------------------------------- Markdown
+
 
 def _md(v: Any) -> str:
     text = "" if v is None else (_number(v) if isinstance(v, (int, float)) else str(v))
@@ -237,7 +300,11 @@ def _md(v: Any) -> str:
 def _value_cell(p: dict[str, Any]) -> str:
     text = f"{_md(p['value'])} {p['unit']}".strip()
     if p["by"]:
-        text += " (" + ", ".join(f"{k}: {_md(v)}" for k, v in sorted(p["by"]["values"].items())) + f"; by {p['by']['input']})"
+        text += (
+            " ("
+            + ", ".join(f"{k}: {_md(v)}" for k, v in sorted(p["by"]["values"].items()))
+            + f"; by {p['by']['input']})"
+        )
     return text
 
 
@@ -261,7 +328,7 @@ def _base_intended_use(path: str | Path, own: Any) -> dict[str, Any] | None:
 
 
 def _coverage(path: str | Path, rb: Any) -> dict[str, str] | None:
-    """"N covered + M declared unreachable of T" for rules and threshold sides, from the suite
+    """ "N covered + M declared unreachable of T" for rules and threshold sides, from the suite
     beside the rulebook (None when it has no cases)."""
     from gasrules.verification import suite as S
 
@@ -284,9 +351,14 @@ def _use_text(use: dict[str, Any]) -> str:
 def _head(doc: ReviewDocument) -> list[tuple[str, str]]:
     md, ident = doc.metadata, doc.identity
     use = md.get("intended_use") or {}
-    rows = [("Rulebook", f"{ident['id']} {ident['version']}"), ("Title", str(md.get("title", ""))),
-            ("Status", str(md.get("status", ""))), ("Effective date", str(md.get("effective_date", ""))),
-            ("Content sha256", ident["sha256"]), ("Files", ", ".join(doc.files))]
+    rows = [
+        ("Rulebook", f"{ident['id']} {ident['version']}"),
+        ("Title", str(md.get("title", ""))),
+        ("Status", str(md.get("status", ""))),
+        ("Effective date", str(md.get("effective_date", ""))),
+        ("Content sha256", ident["sha256"]),
+        ("Files", ", ".join(doc.files)),
+    ]
     if use:
         rows += [("Population", str(use.get("population", ""))), ("Setting", str(use.get("setting", "")))]
         if use.get("exclusions"):
@@ -313,20 +385,41 @@ def render_markdown(doc: ReviewDocument) -> str:
         from gasrules.verification.cohort_table import render_markdown as cohorts_markdown
 
         out += ["## Simulated cohorts (operating characteristics)", "", cohorts_markdown(doc.cohorts)]
-    out += [f"## Parameters ({len(doc.parameters)})", "",
-            "| Parameter | Value | Guard rails | Source (evidence) | Set by | Rationale |", "|---|---|---|---|---|---|"]
+    out += [
+        f"## Parameters ({len(doc.parameters)})",
+        "",
+        "| Parameter | Value | Guard rails | Source (evidence) | Set by | Rationale |",
+        "|---|---|---|---|---|---|",
+    ]
     for p in doc.parameters:
         name = f"`{p['name']}`" + (f" {_md(p['label'])}" if p["label"] else "")
-        out.append(f"| {name} | {_value_cell(p)} | {_limits_cell(p)} | {_md(p['citation'])} ({p['evidence']}) | "
-                   f"{_md(p['set_by'])} | {_md(p['rationale'])} |")
-    out += ["", f"## Derived values ({len(doc.derived)})", "", "| Name | Formula | Unit | Computed when |", "|---|---|---|---|"]
-    out += [f"| `{d['name']}` {_md(d['label'])} | `{_md(d['formula'])}` | {_md(d['unit'])} | {_md(d['when']) or 'always'} |"
-            for d in doc.derived]
+        out.append(
+            f"| {name} | {_value_cell(p)} | {_limits_cell(p)} | {_md(p['citation'])} ({p['evidence']}) | "
+            f"{_md(p['set_by'])} | {_md(p['rationale'])} |"
+        )
+    out += [
+        "",
+        f"## Derived values ({len(doc.derived)})",
+        "",
+        "| Name | Formula | Unit | Computed when |",
+        "|---|---|---|---|",
+    ]
+    out += [
+        f"| `{d['name']}` {_md(d['label'])} | `{_md(d['formula'])}` | {_md(d['unit'])} | {_md(d['when']) or 'always'} |"
+        for d in doc.derived
+    ]
     out += ["", "## Rules", ""]
     for step in doc.steps:
-        out += [f"### {step['label']} ({len(step['rules'])} rule(s){'; core step' if step['core'] else ''})", ""]
+        out += [
+            f"### {step['label']} ({len(step['rules'])} rule(s){'; core step' if step['core'] else ''})",
+            "",
+        ]
         for r in step["rules"]:
-            status = "" if r["status"] == "active" else f" **[{r['status'].upper()}{': ' + r['suspended_reason'] if r['suspended_reason'] else ''}]**"
+            status = (
+                ""
+                if r["status"] == "active"
+                else f" **[{r['status'].upper()}{': ' + r['suspended_reason'] if r['suspended_reason'] else ''}]**"
+            )
             out += [f"#### `{r['id']}`: {r['title']}{status}", ""]
             if r["concludes"]:
                 out.append(f"* **Concludes:** {r['concludes']}")
@@ -349,23 +442,36 @@ def render_markdown(doc: ReviewDocument) -> str:
 
 def _md_changes(ch: dict[str, Any], impact: dict[str, Any] | None) -> list[str]:
     old, new = ch["old"], ch["new"]
-    out = [f"## Changes since {old['id']} {old['version']}", "",
-           f"* Change class: **{ch['required']}**; version {old['version']} -> {new['version']} ({ch['bump']} bump)",
-           f"* Version check: {ch['version_error'] or 'the version bump covers the change'}",
-           "* Changes: " + ", ".join(f"{n} {k}" for k, n in ch["counts"].items() if n and k != "none"), ""]
+    out = [
+        f"## Changes since {old['id']} {old['version']}",
+        "",
+        f"* Change class: **{ch['required']}**; version {old['version']} -> {new['version']} ({ch['bump']} bump)",
+        f"* Version check: {ch['version_error'] or 'the version bump covers the change'}",
+        "* Changes: " + ", ".join(f"{n} {k}" for k, n in ch["counts"].items() if n and k != "none"),
+        "",
+    ]
     if ch["changes"]:
         out += ["| Class | Kind | Id | What | Old | New | Why |", "|---|---|---|---|---|---|---|"]
-        out += [f"| {c['cls']} | {c['kind']} | `{_md(c['key'])}` | {_md(c['aspect'])} | {_md(_short(c['old']))} | "
-                f"{_md(_short(c['new']))} | {_md(c['why'])} |" for c in ch["changes"]]
+        out += [
+            f"| {c['cls']} | {c['kind']} | `{_md(c['key'])}` | {_md(c['aspect'])} | {_md(_short(c['old']))} | "
+            f"{_md(_short(c['new']))} | {_md(c['why'])} |"
+            for c in ch["changes"]
+        ]
         out.append("")
     if impact is not None:
-        out += [f"### Impact on {impact['corpus']}", "",
-                f"{impact['cases']:,} cases ({impact['unreadable']:,} unreadable, counted not dropped): "
-                f"{impact['changed_disorders']:,} change their disorders, {impact['changed_findings']:,} their findings.", ""]
+        out += [
+            f"### Impact on {impact['corpus']}",
+            "",
+            f"{impact['cases']:,} cases ({impact['unreadable']:,} unreadable, counted not dropped): "
+            f"{impact['changed_disorders']:,} change their disorders, {impact['changed_findings']:,} their findings.",
+            "",
+        ]
         if impact["transitions"]:
             out += ["| Cases | Old disorders | New disorders | Examples |", "|---|---|---|---|"]
-            out += [f"| {t['count']:,} | {_md(t['old'])} | {_md(t['new'])} | {_md(', '.join(t['examples']))} |"
-                    for t in impact["transitions"]]
+            out += [
+                f"| {t['count']:,} | {_md(t['old'])} | {_md(t['new'])} | {_md(', '.join(t['examples']))} |"
+                for t in impact["transitions"]
+            ]
             if impact["more_transitions"]:
                 out.append(f"| | ... {impact['more_transitions']} more transitions | | |")
             out.append("")
@@ -392,16 +498,23 @@ def _e(v: Any) -> str:
 
 
 def _table(head: list[str], rows: list[list[str]]) -> str:
-    return ("<table><tr>" + "".join(f"<th>{h}</th>" for h in head) + "</tr>"
-            + "".join("<tr>" + "".join(f"<td>{c}</td>" for c in r) + "</tr>" for r in rows) + "</table>")
+    return (
+        "<table><tr>"
+        + "".join(f"<th>{h}</th>" for h in head)
+        + "</tr>"
+        + "".join("<tr>" + "".join(f"<td>{c}</td>" for c in r) + "</tr>" for r in rows)
+        + "</table>"
+    )
 
 
 def render_html(doc: ReviewDocument) -> str:
     ident = doc.identity
     title = f"{doc.metadata.get('title', ident['id'])}: review document"
-    parts = [f"<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>{_e(title)}</title>"
-             f"<style>{_STYLE}</style></head><body><h1>{_e(title)}</h1>"]
-    parts += [f"<p class=\"caution\">{_e(c)}</p>" for c in doc.cautions]
+    parts = [
+        f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{_e(title)}</title>'
+        f"<style>{_STYLE}</style></head><body><h1>{_e(title)}</h1>"
+    ]
+    parts += [f'<p class="caution">{_e(c)}</p>' for c in doc.cautions]
     parts.append(_table(["", ""], [[_e(k), _e(v)] for k, v in _head(doc)]))
     if doc.changes is not None:
         parts.append(_html_changes(doc.changes, doc.impact))
@@ -410,48 +523,110 @@ def render_html(doc: ReviewDocument) -> str:
 
         parts.append("<h2>Simulated cohorts (operating characteristics)</h2>" + cohorts_html(doc.cohorts))
     parts.append(f"<h2>Parameters ({len(doc.parameters)})</h2>")
-    parts.append(_table(["Parameter", "Value", "Guard rails", "Source (evidence)", "Set by", "Rationale"], [
-        [f"<code>{_e(p['name'])}</code> {_e(p['label'])}", _e(_value_cell(p).replace('\\|', '|')), _e(_limits_cell(p)),
-         f"{_e(p['citation'])} ({_e(p['evidence'])})", _e(p["set_by"]), _e(p["rationale"])] for p in doc.parameters]))
+    parts.append(
+        _table(
+            ["Parameter", "Value", "Guard rails", "Source (evidence)", "Set by", "Rationale"],
+            [
+                [
+                    f"<code>{_e(p['name'])}</code> {_e(p['label'])}",
+                    _e(_value_cell(p).replace("\\|", "|")),
+                    _e(_limits_cell(p)),
+                    f"{_e(p['citation'])} ({_e(p['evidence'])})",
+                    _e(p["set_by"]),
+                    _e(p["rationale"]),
+                ]
+                for p in doc.parameters
+            ],
+        )
+    )
     parts.append(f"<h2>Derived values ({len(doc.derived)})</h2>")
-    parts.append(_table(["Name", "Formula", "Unit", "Computed when"], [
-        [f"<code>{_e(d['name'])}</code> {_e(d['label'])}", f"<code>{_e(d['formula'])}</code>", _e(d["unit"]),
-         _e(d["when"] or "always")] for d in doc.derived]))
+    parts.append(
+        _table(
+            ["Name", "Formula", "Unit", "Computed when"],
+            [
+                [
+                    f"<code>{_e(d['name'])}</code> {_e(d['label'])}",
+                    f"<code>{_e(d['formula'])}</code>",
+                    _e(d["unit"]),
+                    _e(d["when"] or "always"),
+                ]
+                for d in doc.derived
+            ],
+        )
+    )
     parts.append("<h2>Rules</h2>")
     for step in doc.steps:
-        parts.append(f"<h3>{_e(step['label'])} ({len(step['rules'])} rule(s){'; core step' if step['core'] else ''})</h3>")
+        parts.append(
+            f"<h3>{_e(step['label'])} ({len(step['rules'])} rule(s){'; core step' if step['core'] else ''})</h3>"
+        )
         for r in step["rules"]:
-            status = "" if r["status"] == "active" else \
-                f" <strong>[{_e(r['status'].upper())}{': ' + _e(r['suspended_reason']) if r['suspended_reason'] else ''}]</strong>"
-            items = [("Concludes", _e(r["concludes"])), ("Why", _e(r["why"])), ("When", _e(r["condition_text"])),
-                     ("Condition as written", f"<code>{_e(r['condition'])}</code>" if r["condition"] else ""),
-                     ("Disorders", _e(", ".join(r["disorders"])))]
+            status = (
+                ""
+                if r["status"] == "active"
+                else f" <strong>[{_e(r['status'].upper())}{': ' + _e(r['suspended_reason']) if r['suspended_reason'] else ''}]</strong>"
+            )
+            items = [
+                ("Concludes", _e(r["concludes"])),
+                ("Why", _e(r["why"])),
+                ("When", _e(r["condition_text"])),
+                ("Condition as written", f"<code>{_e(r['condition'])}</code>" if r["condition"] else ""),
+                ("Disorders", _e(", ".join(r["disorders"]))),
+            ]
             items += [(f"Finding {f['code']} ({f['severity']})", _e(f["text"])) for f in r["findings"]]
-            items += [("Example", _e(r["example"])), ("References", _e("; ".join(r["references"]))),
-                      ("Defined at", _e(r["where"]) + ("; stops later rules" if r["stops"] else ""))]
+            items += [
+                ("Example", _e(r["example"])),
+                ("References", _e("; ".join(r["references"]))),
+                ("Defined at", _e(r["where"]) + ("; stops later rules" if r["stops"] else "")),
+            ]
             body = "".join(f"<dt>{_e(k)}</dt><dd>{v}</dd>" for k, v in items if v)
-            parts.append(f"<div class=\"rule {_e(r['status'])}\" id=\"{_e(r['id'])}\"><h4><code>{_e(r['id'])}</code>: "
-                         f"{_e(r['title'])}{status}</h4><dl>{body}</dl></div>")
+            parts.append(
+                f'<div class="rule {_e(r["status"])}" id="{_e(r["id"])}"><h4><code>{_e(r["id"])}</code>: '
+                f"{_e(r['title'])}{status}</h4><dl>{body}</dl></div>"
+            )
     parts.append("</body></html>")
     return "\n".join(parts) + "\n"
 
 
 def _html_changes(ch: dict[str, Any], impact: dict[str, Any] | None) -> str:
     old, new = ch["old"], ch["new"]
-    out = [f"<h2>Changes since {_e(old['id'])} {_e(old['version'])}</h2><ul>",
-           f"<li>Change class: <span class=\"{_e(ch['required'])}\">{_e(ch['required'])}</span>; version "
-           f"{_e(old['version'])} &rarr; {_e(new['version'])} ({_e(ch['bump'])} bump)</li>",
-           f"<li>Version check: {_e(ch['version_error'] or 'the version bump covers the change')}</li></ul>"]
+    out = [
+        f"<h2>Changes since {_e(old['id'])} {_e(old['version'])}</h2><ul>",
+        f'<li>Change class: <span class="{_e(ch["required"])}">{_e(ch["required"])}</span>; version '
+        f"{_e(old['version'])} &rarr; {_e(new['version'])} ({_e(ch['bump'])} bump)</li>",
+        f"<li>Version check: {_e(ch['version_error'] or 'the version bump covers the change')}</li></ul>",
+    ]
     if ch["changes"]:
-        out.append(_table(["Class", "Kind", "Id", "What", "Old", "New", "Why"], [
-            [f"<span class=\"{_e(c['cls'])}\">{_e(c['cls'])}</span>", _e(c["kind"]), f"<code>{_e(c['key'])}</code>",
-             _e(c["aspect"]), _e(_short(c["old"])), _e(_short(c["new"])), _e(c["why"])] for c in ch["changes"]]))
+        out.append(
+            _table(
+                ["Class", "Kind", "Id", "What", "Old", "New", "Why"],
+                [
+                    [
+                        f'<span class="{_e(c["cls"])}">{_e(c["cls"])}</span>',
+                        _e(c["kind"]),
+                        f"<code>{_e(c['key'])}</code>",
+                        _e(c["aspect"]),
+                        _e(_short(c["old"])),
+                        _e(_short(c["new"])),
+                        _e(c["why"]),
+                    ]
+                    for c in ch["changes"]
+                ],
+            )
+        )
     if impact is not None:
-        out.append(f"<h3>Impact on {_e(impact['corpus'])}</h3><p>{impact['cases']:,} cases ({impact['unreadable']:,} "
-                   f"unreadable, counted not dropped): {impact['changed_disorders']:,} change their disorders, "
-                   f"{impact['changed_findings']:,} their findings.</p>")
+        out.append(
+            f"<h3>Impact on {_e(impact['corpus'])}</h3><p>{impact['cases']:,} cases ({impact['unreadable']:,} "
+            f"unreadable, counted not dropped): {impact['changed_disorders']:,} change their disorders, "
+            f"{impact['changed_findings']:,} their findings.</p>"
+        )
         if impact["transitions"]:
-            out.append(_table(["Cases", "Old disorders", "New disorders", "Examples"], [
-                [f"{t['count']:,}", _e(t["old"]), _e(t["new"]), _e(", ".join(t["examples"]))]
-                for t in impact["transitions"]]))
+            out.append(
+                _table(
+                    ["Cases", "Old disorders", "New disorders", "Examples"],
+                    [
+                        [f"{t['count']:,}", _e(t["old"]), _e(t["new"]), _e(", ".join(t["examples"]))]
+                        for t in impact["transitions"]
+                    ],
+                )
+            )
     return "\n".join(out)

@@ -24,15 +24,16 @@ The result dicts are the engine's, unchanged.
 from __future__ import annotations
 
 import itertools
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable, Iterator
+from typing import Any
 
 from gasrules.core import exitcodes
 from gasrules.core.errors import EngineError
 from gasrules.governance.settings import Settings
 
-__all__ = ["Runtime", "RuntimeRefusal", "Admission", "admit"]
+__all__ = ["Admission", "Runtime", "RuntimeRefusal", "admit"]
 
 
 class RuntimeRefusal(EngineError):
@@ -50,9 +51,9 @@ class RuntimeRefusal(EngineError):
 class Admission:
     """Why a rulebook may be used: its approval (strict mode) and the suspensions applied."""
 
-    rulebook: Any                       # the compiled rulebook to evaluate (maybe a suspension variant)
-    approved_sha256: str                # sha256 of the rulebook as given
-    manifest: Path | None = None        # the approving manifest (strict mode or found anyway)
+    rulebook: Any  # the compiled rulebook to evaluate (maybe a suspension variant)
+    approved_sha256: str  # sha256 of the rulebook as given
+    manifest: Path | None = None  # the approving manifest (strict mode or found anyway)
     suspended_rules: tuple[tuple[str, str], ...] = ()
 
 
@@ -62,17 +63,27 @@ def _describe(rb: Any) -> str:
 
 def admit(rb: Any, settings: Settings) -> Admission:
     """Decide whether ``rb`` may be used under ``settings``; raises RuntimeRefusal when not."""
-    from gasrules.governance.registry import RegistryError, approvals_for, load_archived, read_suspensions, suspension_state
+    from gasrules.governance.registry import (
+        RegistryError,
+        approvals_for,
+        load_archived,
+        read_suspensions,
+        suspension_state,
+    )
 
     release_dir = settings.release_dir
     manifest = None
     if settings.strict:
         if release_dir is None:
-            raise RuntimeRefusal("strict.no_release_dir", f"strict mode is on but no release directory is set, so "
-                                 f"{_describe(rb)} cannot be matched to an approved release (set "
-                                 "GASRULES_RELEASE_DIR or releases.dir)")
-        found, entries = approvals_for(release_dir, rb.sha256, legacy_sha256=getattr(rb, "sha256_v1", ""),
-                                       archive=settings.archive)
+            raise RuntimeRefusal(
+                "strict.no_release_dir",
+                f"strict mode is on but no release directory is set, so "
+                f"{_describe(rb)} cannot be matched to an approved release (set "
+                "GASRULES_RELEASE_DIR or releases.dir)",
+            )
+        found, entries = approvals_for(
+            release_dir, rb.sha256, legacy_sha256=getattr(rb, "sha256_v1", ""), archive=settings.archive
+        )
         if found is None:
             raise RuntimeRefusal("strict.not_approved", _why_not_approved(rb, entries, release_dir))
         manifest = found.path
@@ -84,12 +95,15 @@ def admit(rb: Any, settings: Settings) -> Admission:
         if not state.suspended and not state.rules and getattr(rb, "sha256_v1", ""):
             state = suspension_state(events, rb.sha256_v1)  # suspensions filed under hash scheme 1
     except RegistryError as exc:
-        raise RuntimeRefusal("registry.damaged", f"the suspension register cannot be trusted: {exc}") from None
+        raise RuntimeRefusal(
+            "registry.damaged", f"the suspension register cannot be trusted: {exc}"
+        ) from None
     if state.suspended:
         who = state.rulebook_event.get("by", "?")
         when = state.rulebook_event.get("time", "?")
-        raise RuntimeRefusal("rulebook.suspended", f"{_describe(rb)} was suspended by {who} at {when}: "
-                             f"{state.rulebook_reason}")
+        raise RuntimeRefusal(
+            "rulebook.suspended", f"{_describe(rb)} was suspended by {who} at {when}: {state.rulebook_reason}"
+        )
     if not state.rules:
         return Admission(rb, rb.sha256, manifest)
     archive = settings.archive
@@ -100,8 +114,11 @@ def admit(rb: Any, settings: Settings) -> Admission:
     else:
         missing = "no archive directory is set"
     if variant is None:
-        raise RuntimeRefusal("registry.damaged", f"rules {', '.join(sorted(state.rules))} of {_describe(rb)} are "
-                             f"suspended but the rulebook with them suspended is not available: {missing}")
+        raise RuntimeRefusal(
+            "registry.damaged",
+            f"rules {', '.join(sorted(state.rules))} of {_describe(rb)} are "
+            f"suspended but the rulebook with them suspended is not available: {missing}",
+        )
     return Admission(variant, rb.sha256, manifest, tuple(sorted(state.rules.items())))
 
 
@@ -111,19 +128,28 @@ def _why_not_approved(rb: Any, entries: list[Any], release_dir: Path) -> str:
     head = f"{_describe(rb)} matches no approved release in {release_dir}"
     if damaged:
         return f"{head}: its manifest {damaged[0].path.name} {damaged[0].problem}"
-    legacy = [e for e in entries if not e.problem and getattr(rb, "sha256_v1", "")
-              and e.rulebook.get("sha256") == rb.sha256_v1]
+    legacy = [
+        e
+        for e in entries
+        if not e.problem and getattr(rb, "sha256_v1", "") and e.rulebook.get("sha256") == rb.sha256_v1
+    ]
     if legacy:
-        return (f"{head}: {legacy[0].path.name} approved it under identity hash scheme 1, which did not cover "
-                "texts, labels, steps, presentation or display units, and the rulebook archived at that release "
-                "is missing or differs from this one in them (release it again)")
+        return (
+            f"{head}: {legacy[0].path.name} approved it under identity hash scheme 1, which did not cover "
+            "texts, labels, steps, presentation or display units, and the rulebook archived at that release "
+            "is missing or differs from this one in them (release it again)"
+        )
     if same:
         other = same[-1].rulebook.get("sha256", "")
-        return (f"{head}: version {rb.version} was approved with content sha256 {str(other)[:16]}...; "
-                "the rulebook was edited after approval (release it again under a new version)")
+        return (
+            f"{head}: version {rb.version} was approved with content sha256 {str(other)[:16]}...; "
+            "the rulebook was edited after approval (release it again under a new version)"
+        )
     if not entries:
         return f"{head}: no release has been approved there yet (run gasrules release)"
-    known = ", ".join(sorted({f"{e.rulebook.get('id')} {e.rulebook.get('version')}" for e in entries if not e.problem}))
+    known = ", ".join(
+        sorted({f"{e.rulebook.get('id')} {e.rulebook.get('version')}" for e in entries if not e.problem})
+    )
     return f"{head}: approved releases are {known or 'none intact'}"
 
 
@@ -145,15 +171,23 @@ class Runtime:
             if candidate is not None:
                 from gasrules.governance.shadow import ShadowRecorder
 
-                self._shadow = ShadowRecorder(self.settings.shadow_log, self.settings.record_config()
-                                              if self.settings.shadow_log else None)
+                self._shadow = ShadowRecorder(
+                    self.settings.shadow_log,
+                    self.settings.record_config() if self.settings.shadow_log else None,
+                )
         except BaseException:
             self.close()
             raise
 
     @classmethod
-    def open(cls, rulebook: str | Path | None = None, *, settings_file: str | Path | None = None,
-             env: Any = None, **overrides: Any) -> Runtime:
+    def open(
+        cls,
+        rulebook: str | Path | None = None,
+        *,
+        settings_file: str | Path | None = None,
+        env: Any = None,
+        **overrides: Any,
+    ) -> Runtime:
         """The governed entry point of the Python API: settings from ``settings_file``, the
         GASRULES_* environment (``env``, default os.environ) and ``overrides`` (Settings field
         names, e.g. ``strict=True``), exactly as the command line reads them; then the rulebook
@@ -171,7 +205,9 @@ class Runtime:
 
         limits = settings.limits()
         active = load_rulebook(rulebook if rulebook is not None else settings.rulebook, limits=limits)
-        candidate = load_rulebook(settings.shadow_rulebook, limits=limits) if settings.shadow_rulebook else None
+        candidate = (
+            load_rulebook(settings.shadow_rulebook, limits=limits) if settings.shadow_rulebook else None
+        )
         return cls(active, settings, candidate=candidate)
 
     # ------------------------------------------------------------ evaluation
@@ -194,13 +230,17 @@ class Runtime:
         shown = result if trace or not result.get("trace") else {**result, "trace": []}
         return shown, lambda: self._after(case, result, other, trace)
 
-    def interpret_many(self, cases: Iterable[Any], workers: int = 1, trace: bool = True) -> Iterator[dict[str, Any]]:
+    def interpret_many(
+        self, cases: Iterable[Any], workers: int = 1, trace: bool = True
+    ) -> Iterator[dict[str, Any]]:
         """Results in input order, one per case (bad cases rejected inline)."""
         from gasrules.tables.pool import interpret_many
 
         want_trace = trace or self._log is not None
         if self._shadow is None:
-            for case, result in _paired(cases, lambda cs: interpret_many(self.rulebook, cs, workers, want_trace)):
+            for case, result in _paired(
+                cases, lambda cs: interpret_many(self.rulebook, cs, workers, want_trace)
+            ):
                 yield self._after(case, result, None, trace)
             return
         a, b, c = itertools.tee(cases, 3)
@@ -209,7 +249,9 @@ class Runtime:
         for case, result, other in zip(c, active, shadow):
             yield self._after(case, result, other, trace)
 
-    def observe(self, case: Any, result: dict[str, Any], candidate_result: dict[str, Any] | None = None) -> None:
+    def observe(
+        self, case: Any, result: dict[str, Any], candidate_result: dict[str, Any] | None = None
+    ) -> None:
         """For callers that evaluate themselves (worker pools, batch): log ``result`` (evaluated
         with :attr:`rulebook`, traced) and compare it with the candidate's, if shadowing."""
         self._after(case, result, candidate_result, True)
@@ -228,7 +270,9 @@ class Runtime:
         if self._log is not None:
             self._log.append(case, result, rulebook=self.rulebook)
 
-    def _after(self, case: Any, result: dict[str, Any], other: dict[str, Any] | None, trace: bool) -> dict[str, Any]:
+    def _after(
+        self, case: Any, result: dict[str, Any], other: dict[str, Any] | None, trace: bool
+    ) -> dict[str, Any]:
         if self._log is not None:
             self._log.append(case, result, rulebook=self.rulebook)
         if self._shadow is not None and other is not None:

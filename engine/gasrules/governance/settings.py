@@ -45,14 +45,20 @@ from __future__ import annotations
 
 import dataclasses
 import os
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any
 
 from gasrules.core.errors import EngineError
-from gasrules.governance.decision_log import CONTEXT_POLICIES, DEFAULT_IDENTIFIER_KEYS, RecordConfig, RecordError
+from gasrules.governance.decision_log import (
+    CONTEXT_POLICIES,
+    DEFAULT_IDENTIFIER_KEYS,
+    RecordConfig,
+    RecordError,
+)
 
-__all__ = ["Settings", "SettingsError", "load_settings", "read_anchor_key", "ENV_VARS"]
+__all__ = ["ENV_VARS", "Settings", "SettingsError", "load_settings", "read_anchor_key"]
 
 
 class SettingsError(EngineError):
@@ -72,21 +78,21 @@ class Settings:
     strict: bool = False
     release_dir: Path | None = None
     archive_dir: Path | None = None
-    roster: Path | None = None             # site roster of authors and approvers (people.py)
+    roster: Path | None = None  # site roster of authors and approvers (people.py)
     decision_log: Path | None = None
     context_policy: str = "drop"
     identifier_keys: tuple[str, ...] = DEFAULT_IDENTIFIER_KEYS
     mask_salt: str = field(default="", repr=False)
     mask_chars: int = 16
     log_fsync: bool = True
-    anchor_key_file: Path | None = None    # HMAC key of keyed anchors, kept outside the log's folder
+    anchor_key_file: Path | None = None  # HMAC key of keyed anchors, kept outside the log's folder
     shadow_rulebook: Path | None = None
     shadow_log: Path | None = None
     yaml_nodes: int = 1_000_000
     corpus_unreadable_percent: float = 1.0  # impact/shadow exit 4 above this share of unreadable corpus rows
     rulebook_bytes: int = 10 * 1024 * 1024
     rulebook_roots: tuple[Path, ...] = ()
-    sources: tuple[str, ...] = ()          # where values came from, for `--show-settings` and errors
+    sources: tuple[str, ...] = ()  # where values came from, for `--show-settings` and errors
 
     @property
     def archive(self) -> Path | None:
@@ -99,8 +105,11 @@ class Settings:
         """The rulebook read limits (:class:`gasrules.rulebook.loader.Limits`)."""
         from gasrules.rulebook.loader import Limits
 
-        return Limits(yaml_nodes=self.yaml_nodes, file_bytes=self.rulebook_bytes,
-                      roots=tuple(p.expanduser().resolve() for p in self.rulebook_roots))
+        return Limits(
+            yaml_nodes=self.yaml_nodes,
+            file_bytes=self.rulebook_bytes,
+            roots=tuple(p.expanduser().resolve() for p in self.rulebook_roots),
+        )
 
     def record_config(self) -> RecordConfig:
         """The decision-record configuration (raises SettingsError for a bad combination)."""
@@ -108,9 +117,14 @@ class Settings:
         if self.anchor_key_file is not None and self.decision_log is not None:
             key = read_anchor_key(self.anchor_key_file, self.decision_log)
         try:
-            return RecordConfig(context_policy=self.context_policy, identifier_keys=self.identifier_keys,
-                                salt=self.mask_salt, mask_chars=self.mask_chars, fsync=self.log_fsync,
-                                anchor_key=key)
+            return RecordConfig(
+                context_policy=self.context_policy,
+                identifier_keys=self.identifier_keys,
+                salt=self.mask_salt,
+                mask_chars=self.mask_chars,
+                fsync=self.log_fsync,
+                anchor_key=key,
+            )
         except RecordError as exc:
             name = {"salt": "GASRULES_MASK_SALT"}.get(exc.field, f"decision_log.{exc.field}")
             raise SettingsError(name, str(exc).split(": ", 1)[-1].split(" (field")[0], exc.accepted) from None
@@ -119,7 +133,10 @@ class Settings:
         """The settings as plain data, the salt replaced by whether it is set."""
         out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self) if f.name != "mask_salt"}
         out["mask_salt"] = "set" if self.mask_salt else "not set"
-        return {k: (str(v) if isinstance(v, Path) else list(v) if isinstance(v, tuple) else v) for k, v in out.items()}
+        return {
+            k: (str(v) if isinstance(v, Path) else list(v) if isinstance(v, tuple) else v)
+            for k, v in out.items()
+        }
 
 
 def too_many_unreadable(unreadable: int, rows: int, settings: Settings) -> str:
@@ -127,8 +144,10 @@ def too_many_unreadable(unreadable: int, rows: int, settings: Settings) -> str:
     read (those commands then exit 4), else ""."""
     limit = settings.corpus_unreadable_percent
     if rows and unreadable * 100.0 > limit * rows:
-        return (f"{unreadable:,} of {rows:,} corpus rows ({100.0 * unreadable / rows:.1f} %) could not be read, more "
-                f"than the limit of {limit:g} % (setting limits.corpus_unreadable_percent)")
+        return (
+            f"{unreadable:,} of {rows:,} corpus rows ({100.0 * unreadable / rows:.1f} %) could not be read, more "
+            f"than the limit of {limit:g} % (setting limits.corpus_unreadable_percent)"
+        )
     return ""
 
 
@@ -165,23 +184,37 @@ _TABLE: dict[str, tuple[tuple[str, ...], str, str]] = {
     "anchor_key_file": (("decision_log", "anchor_key_file"), "GASRULES_ANCHOR_KEY_FILE", "path"),
     "shadow_rulebook": (("shadow", "rulebook"), "GASRULES_SHADOW_RULEBOOK", "path"),
     "yaml_nodes": (("limits", "yaml_nodes"), "GASRULES_YAML_NODE_BUDGET", "count"),
-    "corpus_unreadable_percent": (("limits", "corpus_unreadable_percent"), "GASRULES_CORPUS_UNREADABLE_PERCENT",
-                                  "percent"),
+    "corpus_unreadable_percent": (
+        ("limits", "corpus_unreadable_percent"),
+        "GASRULES_CORPUS_UNREADABLE_PERCENT",
+        "percent",
+    ),
     "rulebook_bytes": (("limits", "rulebook_bytes"), "GASRULES_RULEBOOK_MAX_BYTES", "count"),
     "rulebook_roots": (("rulebook_roots",), "GASRULES_RULEBOOK_ROOTS", "paths"),
     "shadow_log": (("shadow", "log"), "GASRULES_SHADOW_LOG", "path"),
 }
 ENV_VARS = tuple(env for _, env, _ in _TABLE.values())
-_SECTIONS = {"releases": {"dir", "archive", "roster"}, "limits": {"yaml_nodes", "rulebook_bytes", "corpus_unreadable_percent"}, "shadow": {"rulebook", "log"},
-             "decision_log": {"path", "context_policy", "identifier_keys", "mask_chars", "fsync", "anchor_key_file"}}
+_SECTIONS = {
+    "releases": {"dir", "archive", "roster"},
+    "limits": {"yaml_nodes", "rulebook_bytes", "corpus_unreadable_percent"},
+    "shadow": {"rulebook", "log"},
+    "decision_log": {"path", "context_policy", "identifier_keys", "mask_chars", "fsync", "anchor_key_file"},
+}
 # Sections read by their own modules (servesettings, interfaces), which check their keys.
 _OWN_SECTIONS = {"serve", "interfaces"}
 _TOP = {"rulebook", "strict", "rulebook_roots"} | set(_SECTIONS) | _OWN_SECTIONS
 _TRUE, _FALSE = {"1", "true", "yes", "on"}, {"0", "false", "no", "off"}
-_ACCEPTED = {"path": "a file or directory path", "bool": "true or false (1/0, yes/no, on/off)",
-             "policy": " | ".join(CONTEXT_POLICIES), "keys": "a list of key names (comma separated in "
-             "the environment)", "int": "an integer", "percent": "a number from 0 to 100", "count": "a whole number of at least 1",
-             "paths": "a list of directories (os.pathsep separated in the environment)", "secret": "a string of at least 16 characters"}
+_ACCEPTED = {
+    "path": "a file or directory path",
+    "bool": "true or false (1/0, yes/no, on/off)",
+    "policy": " | ".join(CONTEXT_POLICIES),
+    "keys": "a list of key names (comma separated in the environment)",
+    "int": "an integer",
+    "percent": "a number from 0 to 100",
+    "count": "a whole number of at least 1",
+    "paths": "a list of directories (os.pathsep separated in the environment)",
+    "secret": "a string of at least 16 characters",
+}
 
 
 def _convert(name: str, kind: str, value: Any, where: str, base: Path | None) -> Any:
@@ -212,16 +245,22 @@ def _convert(name: str, kind: str, value: Any, where: str, base: Path | None) ->
             raise bad(f"{value!r} is outside 0 to 100")
         return number
     if kind == "count":
-        if isinstance(value, bool) or not isinstance(value, (int, str)) or not str(value).strip().isdigit() \
-                or int(value) < 1:
+        if (
+            isinstance(value, bool)
+            or not isinstance(value, (int, str))
+            or not str(value).strip().isdigit()
+            or int(value) < 1
+        ):
             raise bad(f"{value!r} is not a whole number of at least 1")
         return int(value)
     if kind == "paths":
         items = value.split(os.pathsep) if isinstance(value, str) else value
         if not isinstance(items, list) or not all(isinstance(p, str) and p.strip() for p in items):
             raise bad(f"{value!r} is not a list of directories")
-        return tuple(Path(p).expanduser() if Path(p).expanduser().is_absolute() or base is None
-                     else base / p for p in items)
+        return tuple(
+            Path(p).expanduser() if Path(p).expanduser().is_absolute() or base is None else base / p
+            for p in items
+        )
     if kind == "keys":
         items = value.split(",") if isinstance(value, str) else value
         if not isinstance(items, list) or not all(isinstance(k, str) and k.strip() for k in items):
@@ -243,23 +282,33 @@ def _from_file(path: Path) -> dict[str, Any]:
     doc, problems = load_document(path)
     if problems or doc is None:
         first = problems[0] if problems else None
-        raise SettingsError("--settings", first.message if first else "cannot read the file",
-                            "a readable YAML mapping", str(first.location) if first else str(path))
+        raise SettingsError(
+            "--settings",
+            first.message if first else "cannot read the file",
+            "a readable YAML mapping",
+            str(first.location) if first else str(path),
+        )
     data = doc.data if doc.data is not None else {}
     if not isinstance(data, dict):
-        raise SettingsError("--settings", "the file is not a mapping", "a YAML mapping of settings",
-                            str(doc.locate(())))
+        raise SettingsError(
+            "--settings", "the file is not a mapping", "a YAML mapping of settings", str(doc.locate(()))
+        )
     for key, body in data.items():
         if key not in _TOP:
             raise SettingsError(str(key), "unknown setting", ", ".join(sorted(_TOP)), str(doc.locate((key,))))
         if key in _SECTIONS:
             if not isinstance(body, dict):
-                raise SettingsError(key, "expected a mapping", ", ".join(sorted(_SECTIONS[key])),
-                                    str(doc.locate((key,))))
+                raise SettingsError(
+                    key, "expected a mapping", ", ".join(sorted(_SECTIONS[key])), str(doc.locate((key,)))
+                )
             for sub in body:
                 if sub not in _SECTIONS[key]:
-                    raise SettingsError(f"{key}.{sub}", "unknown setting", ", ".join(sorted(_SECTIONS[key])),
-                                        str(doc.locate((key, sub))))
+                    raise SettingsError(
+                        f"{key}.{sub}",
+                        "unknown setting",
+                        ", ".join(sorted(_SECTIONS[key])),
+                        str(doc.locate((key, sub))),
+                    )
     out: dict[str, Any] = {}
     for name, (keys, _env, kind) in _TABLE.items():
         if not keys:
@@ -272,8 +321,9 @@ def _from_file(path: Path) -> dict[str, Any]:
     return out
 
 
-def load_settings(file: str | os.PathLike[str] | None = None, *, env: Mapping[str, str] | None = None,
-                  **overrides: Any) -> Settings:
+def load_settings(
+    file: str | os.PathLike[str] | None = None, *, env: Mapping[str, str] | None = None, **overrides: Any
+) -> Settings:
     """Settings from defaults, then ``file``, then ``env`` (default os.environ), then overrides.
 
     Overrides are field names of :class:`Settings` with ready values (None means "not given").
@@ -300,4 +350,3 @@ def load_settings(file: str | os.PathLike[str] | None = None, *, env: Mapping[st
     if settings.decision_log is not None or settings.shadow_log is not None:
         settings.record_config()  # fail now, not at the first case
     return settings
-

@@ -20,27 +20,34 @@ import fcntl
 import json
 import os
 from collections import Counter
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any
 
 from gasrules.governance.decision_log import RecordConfig, apply_context_policy, canonical_json, sha256_hex
 
-__all__ = ["ShadowRecorder", "ShadowSummary", "disagreement", "summarize", "render_summary"]
+__all__ = ["ShadowRecorder", "ShadowSummary", "disagreement", "render_summary", "summarize"]
 
 EXAMPLES_PER_TRANSITION = 5
 
 
 def _brief(result: Mapping[str, Any]) -> dict[str, Any]:
-    return {"rulebook": result.get("rulebook"), "status": result.get("status"),
-            "disorders": sorted(result.get("disorders") or []),
-            "qualifiers": dict(result.get("qualifiers") or {}),
-            "findings": sorted(str(f.get("code")) for f in result.get("findings") or [] if isinstance(f, Mapping))}
+    return {
+        "rulebook": result.get("rulebook"),
+        "status": result.get("status"),
+        "disorders": sorted(result.get("disorders") or []),
+        "qualifiers": dict(result.get("qualifiers") or {}),
+        "findings": sorted(
+            str(f.get("code")) for f in result.get("findings") or [] if isinstance(f, Mapping)
+        ),
+    }
 
 
-def disagreement(case: Any, active: Mapping[str, Any], candidate: Mapping[str, Any],
-                 config: RecordConfig | None = None) -> dict[str, Any] | None:
+def disagreement(
+    case: Any, active: Mapping[str, Any], candidate: Mapping[str, Any], config: RecordConfig | None = None
+) -> dict[str, Any] | None:
     """The disagreement record for one case, or None when the two conclusions agree. Pure
     except for the time stamp."""
     from gasrules.governance.audit import compare_results
@@ -49,12 +56,16 @@ def disagreement(case: Any, active: Mapping[str, Any], candidate: Mapping[str, A
     if not diffs:
         return None
     logged, _ = apply_context_policy(case, config) if config is not None else (case, [])
-    return {"kind": "disagreement",
-            "time": datetime.now(timezone.utc).isoformat(timespec="milliseconds").replace("+00:00", "Z"),
-            "case_id": active.get("case_id"), "input": logged,
-            "input_sha256": sha256_hex(canonical_json(logged, "input")),
-            "active": _brief(active), "candidate": _brief(candidate),
-            "differences": [{"field": d.field, "active": d.logged, "candidate": d.replayed} for d in diffs]}
+    return {
+        "kind": "disagreement",
+        "time": datetime.now(UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z"),
+        "case_id": active.get("case_id"),
+        "input": logged,
+        "input_sha256": sha256_hex(canonical_json(logged, "input")),
+        "active": _brief(active),
+        "candidate": _brief(candidate),
+        "differences": [{"field": d.field, "active": d.logged, "candidate": d.replayed} for d in diffs],
+    }
 
 
 class ShadowRecorder:
@@ -70,7 +81,9 @@ class ShadowRecorder:
             self.path.parent.mkdir(parents=True, exist_ok=True)
             self._fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
 
-    def observe(self, case: Any, active: Mapping[str, Any], candidate: Mapping[str, Any]) -> dict[str, Any] | None:
+    def observe(
+        self, case: Any, active: Mapping[str, Any], candidate: Mapping[str, Any]
+    ) -> dict[str, Any] | None:
         self.compared += 1
         record = disagreement(case, active, candidate, self.config)
         if record is None:
@@ -82,7 +95,7 @@ class ShadowRecorder:
             try:
                 view = memoryview(line)
                 while view:
-                    view = view[os.write(self._fd, view):]
+                    view = view[os.write(self._fd, view) :]
                 if self.config.fsync:
                     os.fsync(self._fd)
             finally:
@@ -104,15 +117,23 @@ class ShadowSummary:
     transitions: Counter[tuple[str, str]] = field(default_factory=Counter)
     examples: dict[tuple[str, str], list[str]] = field(default_factory=dict)
     rulebooks: Counter[tuple[str, str]] = field(default_factory=Counter)
-    same_disorders: int = 0            # disagreements on findings, values or status only
+    same_disorders: int = 0  # disagreements on findings, values or status only
 
     def as_dict(self) -> dict[str, Any]:
-        return {"path": self.path, "disagreements": self.disagreements,
-                "same_disorders": self.same_disorders, "unreadable_lines": self.unreadable_lines,
-                "by_field": dict(self.by_field.most_common()),
-                "transitions": [{"active": a, "candidate": c, "count": n, "examples": self.examples[(a, c)]}
-                                for (a, c), n in self.transitions.most_common()],
-                "rulebooks": [{"active": a, "candidate": c, "count": n} for (a, c), n in self.rulebooks.most_common()]}
+        return {
+            "path": self.path,
+            "disagreements": self.disagreements,
+            "same_disorders": self.same_disorders,
+            "unreadable_lines": self.unreadable_lines,
+            "by_field": dict(self.by_field.most_common()),
+            "transitions": [
+                {"active": a, "candidate": c, "count": n, "examples": self.examples[(a, c)]}
+                for (a, c), n in self.transitions.most_common()
+            ],
+            "rulebooks": [
+                {"active": a, "candidate": c, "count": n} for (a, c), n in self.rulebooks.most_common()
+            ],
+        }
 
 
 def _label(brief: Mapping[str, Any]) -> str:

@@ -9,11 +9,19 @@ no conclusion from them); the runtime uses that variant while the suspension sta
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 from gasrules.core.errors import EngineError
-from gasrules.governance.registry import SuspensionState, append_suspension, archive_rulebook, read_suspensions, suspension_state, utc_now
+from gasrules.governance.registry import (
+    SuspensionState,
+    append_suspension,
+    archive_rulebook,
+    read_suspensions,
+    suspension_state,
+    utc_now,
+)
 
 __all__ = ["SuspensionError", "change_suspension", "current_state", "render_state"]
 
@@ -33,26 +41,44 @@ def current_state(rulebook_path: str | Path, release_dir: str | Path) -> tuple[A
     return rb, suspension_state(read_suspensions(Path(release_dir)), rb.sha256)
 
 
-def change_suspension(rulebook_path: str | Path, *, release_dir: str | Path, reason: str, by: str,
-                      rule: str | None = None, lift: bool = False, archive: str | Path | None = None,
-                      now: Callable[[], str] = utc_now) -> dict[str, Any]:
+def change_suspension(
+    rulebook_path: str | Path,
+    *,
+    release_dir: str | Path,
+    reason: str,
+    by: str,
+    rule: str | None = None,
+    lift: bool = False,
+    archive: str | Path | None = None,
+    now: Callable[[], str] = utc_now,
+) -> dict[str, Any]:
     """Record one suspend (or, with ``lift``, reinstate) event; returns the sealed event."""
     release_dir = Path(release_dir)
     archive_dir = Path(archive) if archive is not None else release_dir / "archive"
     if len(reason.strip()) < MIN_REASON:
-        raise SuspensionError("suspension.reason", f"give a reason of at least {MIN_REASON} characters "
-                              "(what was seen, and what happens next)")
+        raise SuspensionError(
+            "suspension.reason",
+            f"give a reason of at least {MIN_REASON} characters (what was seen, and what happens next)",
+        )
     if not by.strip():
         raise SuspensionError("suspension.by", "name who decided (--by)")
     rb, state = current_state(rulebook_path, release_dir)
-    event: dict[str, Any] = {"action": "lift" if lift else "suspend", "rulebook": rb.identity, "rule": rule,
-                             "reason": reason.strip(), "by": by.strip(), "time": now()}
+    event: dict[str, Any] = {
+        "action": "lift" if lift else "suspend",
+        "rulebook": rb.identity,
+        "rule": rule,
+        "reason": reason.strip(),
+        "by": by.strip(),
+        "time": now(),
+    }
     what = f"rulebook {rb.id} {rb.version}"
     if rule is None:
         if lift and not state.suspended:
             raise SuspensionError("suspension.not_suspended", f"{what} is not suspended")
         if not lift and state.suspended:
-            raise SuspensionError("suspension.already", f"{what} is already suspended: {state.rulebook_reason}")
+            raise SuspensionError(
+                "suspension.already", f"{what} is already suspended: {state.rulebook_reason}"
+            )
         return append_suspension(release_dir, event)
     spec = {r.id: r for r in rb.rules}.get(rule)
     if spec is None:
@@ -68,7 +94,7 @@ def change_suspension(rulebook_path: str | Path, *, release_dir: str | Path, rea
         if rule in rules:
             raise SuspensionError("suspension.already", f"rule {rule} is already suspended: {rules[rule]}")
         rules[rule] = reason.strip()
-    archive_rulebook(archive_dir, Path(rulebook_path))          # the rulebook itself, for replay
+    archive_rulebook(archive_dir, Path(rulebook_path))  # the rulebook itself, for replay
     if rules:
         event["variant_sha256"] = archive_rulebook(archive_dir, Path(rulebook_path), sorted(rules.items()))
     return append_suspension(release_dir, event)

@@ -29,15 +29,36 @@ import json
 import sys
 import time
 from collections import Counter
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterator, Sequence, TextIO
+from typing import Any, TextIO
 
 from gasrules.tables.pool import OrderedPool, chunked
-from gasrules.tables.readers import Column, ColumnMapping, Row, Table, analytes_of, interpret_row, open_table, open_writer
+from gasrules.tables.readers import (
+    Column,
+    ColumnMapping,
+    Row,
+    Table,
+    analytes_of,
+    interpret_row,
+    open_table,
+    open_writer,
+)
 
-__all__ = ["BatchOptions", "BatchSummary", "RunHooks", "Progress", "output_columns", "record_values",
-           "result_record", "run_batch", "interpret_chunk", "lineage", "RESULT_COLUMNS"]
+__all__ = [
+    "RESULT_COLUMNS",
+    "BatchOptions",
+    "BatchSummary",
+    "Progress",
+    "RunHooks",
+    "interpret_chunk",
+    "lineage",
+    "output_columns",
+    "record_values",
+    "result_record",
+    "run_batch",
+]
 
 RESULT_COLUMNS = ("case_id", "status", "headline", "disorders", "qualifiers")
 TAIL_COLUMNS = ("findings", "errors")
@@ -50,13 +71,13 @@ class BatchOptions:
     workers: int = 1
     chunk_size: int = 500
     full_json: bool = False
-    values: tuple[str, ...] | None = None       # key value columns; None = every reported value
+    values: tuple[str, ...] | None = None  # key value columns; None = every reported value
     in_format: str | None = None
     out_format: str | None = None
     mapping: ColumnMapping | None = None
-    progress: bool | None = None                # None: only when stderr is a terminal
-    formula_guard: bool = True                  # neutralise formula-like pass-through cells in CSV output
-    decimal_comma: bool = False                 # CSV input: numbers written with a decimal comma
+    progress: bool | None = None  # None: only when stderr is a terminal
+    formula_guard: bool = True  # neutralise formula-like pass-through cells in CSV output
+    decimal_comma: bool = False  # CSV input: numbers written with a decimal comma
 
 
 @dataclass
@@ -98,32 +119,46 @@ class BatchSummary:
             self.by_disorder.update(disorders or ("none",))
 
     def as_dict(self) -> dict[str, Any]:
-        return {"rows_in": self.rows, "rows_out": self.rows, "unreadable_rows": self.unreadable,
-                "by_status": {s: self.by_status.get(s, 0) for s in STATUSES},
-                "by_disorder": dict(sorted(self.by_disorder.items(), key=lambda kv: (-kv[1], kv[0]))),
-                "seconds": round(self.seconds, 3), "output": self.output, "rulebook": self.rulebook,
-                "notes": list(self.notes)}
+        return {
+            "rows_in": self.rows,
+            "rows_out": self.rows,
+            "unreadable_rows": self.unreadable,
+            "by_status": {s: self.by_status.get(s, 0) for s in STATUSES},
+            "by_disorder": dict(sorted(self.by_disorder.items(), key=lambda kv: (-kv[1], kv[0]))),
+            "seconds": round(self.seconds, 3),
+            "output": self.output,
+            "rulebook": self.rulebook,
+            "notes": list(self.notes),
+        }
 
     def render(self) -> str:
         rate = self.rows / self.seconds if self.seconds > 0 else 0.0
-        lines = [f"{self.rows:,} rows in, {self.rows:,} results out in {self.seconds:.1f} s "
-                 f"({rate:,.0f} rows/s) -> {self.output}",
-                 "by status:   " + ", ".join(f"{s} {self.by_status.get(s, 0):,}" for s in STATUSES)
-                 + (f" (of the rejected, {self.unreadable:,} unreadable rows)" if self.unreadable else "")]
+        lines = [
+            f"{self.rows:,} rows in, {self.rows:,} results out in {self.seconds:.1f} s "
+            f"({rate:,.0f} rows/s) -> {self.output}",
+            "by status:   "
+            + ", ".join(f"{s} {self.by_status.get(s, 0):,}" for s in STATUSES)
+            + (f" (of the rejected, {self.unreadable:,} unreadable rows)" if self.unreadable else ""),
+        ]
         if self.by_disorder:
             lines.append("by disorder (interpreted and partial cases; a case may have several):")
             for name, n in sorted(self.by_disorder.items(), key=lambda kv: (-kv[1], kv[0])):
                 lines.append(f"  {n:>10,}  {name}")
         if self.rulebook:
             rb = self.rulebook
-            lines.append(f"rulebook {rb.get('id')} {rb.get('version')} (sha256 {str(rb.get('sha256'))[:16]}...)")
+            lines.append(
+                f"rulebook {rb.get('id')} {rb.get('version')} (sha256 {str(rb.get('sha256'))[:16]}...)"
+            )
         lines += self.notes
-        lines.append("Decision support only: it supports, never replaces, clinical judgement; "
-                     "local laboratory ranges and protocols prevail.")
+        lines.append(
+            "Decision support only: it supports, never replaces, clinical judgement; "
+            "local laboratory ranges and protocols prevail."
+        )
         return "\n".join(lines)
 
 
 # ----------------------------------------------------------------------------- columns
+
 
 def value_names(rb: Any, wanted: Sequence[str] | None) -> list[str]:
     reported = [n for n, d in rb.derived.items() if d.report]
@@ -133,12 +168,17 @@ def value_names(rb: Any, wanted: Sequence[str] | None) -> list[str]:
     if unknown:
         from gasrules.tables.readers import TableError
 
-        raise TableError("--values", f"not a derived value of rulebook {rb.id}: {', '.join(unknown)}",
-                         "names from: " + ", ".join(reported))
+        raise TableError(
+            "--values",
+            f"not a derived value of rulebook {rb.id}: {', '.join(unknown)}",
+            "names from: " + ", ".join(reported),
+        )
     return list(wanted)
 
 
-def output_columns(rb: Any, table: Table, options: BatchOptions) -> tuple[list[Column], list[tuple[str, str]]]:
+def output_columns(
+    rb: Any, table: Table, options: BatchOptions
+) -> tuple[list[Column], list[tuple[str, str]]]:
     """(output columns, [(pass-through column, its output name)])."""
     values = value_names(rb, options.values)
     fixed = set(RESULT_COLUMNS) | set(values) | set(TAIL_COLUMNS) | {"result"}
@@ -150,16 +190,22 @@ def output_columns(rb: Any, table: Table, options: BatchOptions) -> tuple[list[C
             out = f"{out}_input"
         taken.add(out)
         renames.append((name, out))
+
     def kind(name: str) -> str:
-        if table.fmt == "csv":                    # CSV cells are text (or None for a short row)
+        if table.fmt == "csv":  # CSV cells are text (or None for a short row)
             return "guarded" if options.formula_guard else "text"
         if table.fmt == "jsonl":
             return "json" if name == "context" else "value"
-        return "raw"                              # Parquet: the input column's own type
+        return "raw"  # Parquet: the input column's own type
 
     cols = [Column(out, kind(name), arrow_type=table.passthrough_types.get(name)) for name, out in renames]
-    cols += [Column("case_id"), Column("status"), Column("headline"), Column("disorders", "texts"),
-             Column("qualifiers", "texts")]
+    cols += [
+        Column("case_id"),
+        Column("status"),
+        Column("headline"),
+        Column("disorders", "texts"),
+        Column("qualifiers", "texts"),
+    ]
     cols += [Column(n, "number", unit=rb.derived[n].unit) for n in values]
     cols += [Column("findings", "texts"), Column("errors", "records", fields=ERROR_FIELDS)]
     if options.full_json:
@@ -167,8 +213,13 @@ def output_columns(rb: Any, table: Table, options: BatchOptions) -> tuple[list[C
     return cols, renames
 
 
-def record_values(row: Row, result: dict[str, Any], renames: Sequence[tuple[str, str]],
-                  values: Sequence[str], full_json: bool) -> list[Any]:
+def record_values(
+    row: Row,
+    result: dict[str, Any],
+    renames: Sequence[tuple[str, str]],
+    values: Sequence[str],
+    full_json: bool,
+) -> list[Any]:
     """One output record as values in the order of :func:`output_columns`."""
     passthrough = row.passthrough
     out: list[Any] = [passthrough.get(name) for name, _ in renames]
@@ -177,8 +228,13 @@ def record_values(row: Row, result: dict[str, Any], renames: Sequence[tuple[str,
         raw = row.case.get("case_id") if isinstance(row.case, dict) else None
         case_id = None if raw is None else str(raw)
     got = result["values"]
-    out += [case_id, result["status"], result["headline"], list(result["disorders"]),
-            [f"{d}:{q}" for d, q in result["qualifiers"].items()]]
+    out += [
+        case_id,
+        result["status"],
+        result["headline"],
+        list(result["disorders"]),
+        [f"{d}:{q}" for d, q in result["qualifiers"].items()],
+    ]
     out += [got.get(n) for n in values]
     out.append([f["code"] for f in result["findings"]])
     out.append([{k: str(e.get(k, "")) for k in ERROR_FIELDS} for e in result["errors"]])
@@ -187,8 +243,13 @@ def record_values(row: Row, result: dict[str, Any], renames: Sequence[tuple[str,
     return out
 
 
-def result_record(row: Row, result: dict[str, Any], renames: Sequence[tuple[str, str]],
-                  values: Sequence[str], full_json: bool) -> dict[str, Any]:
+def result_record(
+    row: Row,
+    result: dict[str, Any],
+    renames: Sequence[tuple[str, str]],
+    values: Sequence[str],
+    full_json: bool,
+) -> dict[str, Any]:
     """One flat output record as a dict keyed by output column name."""
     names = [out for _, out in renames] + list(RESULT_COLUMNS) + list(values) + list(TAIL_COLUMNS)
     if full_json:
@@ -198,6 +259,7 @@ def result_record(row: Row, result: dict[str, Any], renames: Sequence[tuple[str,
 
 # ----------------------------------------------------------------------------- workers
 
+
 @dataclass(frozen=True)
 class _Job:
     rulebook: Any
@@ -206,8 +268,8 @@ class _Job:
     values: tuple[str, ...]
     full_json: bool
     trace: bool
-    keep: bool                          # return case, result and candidate result for hooks
-    encoder: Any = None                 # tabular.Encoder: chunks leave the worker encoded
+    keep: bool  # return case, result and candidate result for hooks
+    encoder: Any = None  # tabular.Encoder: chunks leave the worker encoded
 
 
 def interpret_chunk(job: _Job, rows: list[Row]) -> tuple[Any, list[tuple[Any, ...]]]:
@@ -230,17 +292,28 @@ def _safe(rb: Any, row: Row, trace: bool) -> dict[str, Any]:
     """interpret_row, and a rejected result (never a lost row) if the engine itself fails."""
     try:
         return interpret_row(rb, row, trace)
-    except Exception as exc:  # noqa: BLE001 - a row must never be lost, even to an engine bug
-        broken = Row(row.index, row.where, row.case, row.passthrough, [{
-            "field": "", "code": "input.unreadable",
-            "message": f"{row.where}: the engine failed on this row ({type(exc).__name__}: {exc})",
-            "accepted": "a case the engine can evaluate (please report this row)"}])
+    except Exception as exc:
+        broken = Row(
+            row.index,
+            row.where,
+            row.case,
+            row.passthrough,
+            [
+                {
+                    "field": "",
+                    "code": "input.unreadable",
+                    "message": f"{row.where}: the engine failed on this row ({type(exc).__name__}: {exc})",
+                    "accepted": "a case the engine can evaluate (please report this row)",
+                }
+            ],
+        )
         from gasrules.tables.readers import rejected_result
 
         return rejected_result(rb, broken)
 
 
 # ----------------------------------------------------------------------------- progress
+
 
 class Progress:
     """A one-line progress bar on a terminal (stderr); silent otherwise."""
@@ -274,16 +347,32 @@ class Progress:
 
 # ----------------------------------------------------------------------------- the run
 
-def records(rb: Any, table: Table, options: BatchOptions, summary: BatchSummary,
-            hooks: RunHooks | None = None, progress: Progress | None = None,
-            renames: Sequence[tuple[str, str]] = (), encoder: Any = None) -> Iterator[tuple[Any, int]]:
+
+def records(
+    rb: Any,
+    table: Table,
+    options: BatchOptions,
+    summary: BatchSummary,
+    hooks: RunHooks | None = None,
+    progress: Progress | None = None,
+    renames: Sequence[tuple[str, str]] = (),
+    encoder: Any = None,
+) -> Iterator[tuple[Any, int]]:
     """(block, rows in it) chunk by chunk, in input order: a block is the chunk encoded by
     ``encoder`` (tabular.Encoder, run in the workers) or, without one, a list of value lists in
     column order. The summary is filled, and the hooks see every result, as chunks pass."""
     hooks = hooks or RunHooks()
     keep = hooks.observe is not None
-    job = _Job(rb, hooks.candidate, tuple(renames), tuple(value_names(rb, options.values)),
-               options.full_json, hooks.trace, keep, encoder)
+    job = _Job(
+        rb,
+        hooks.candidate,
+        tuple(renames),
+        tuple(value_names(rb, options.values)),
+        options.full_json,
+        hooks.trace,
+        keep,
+        encoder,
+    )
     with OrderedPool(interpret_chunk, job, options.workers) as pool:
         for block, stats in pool.map(chunked(table, options.chunk_size)):
             for status, disorders, unreadable, extra in stats:
@@ -295,8 +384,14 @@ def records(rb: Any, table: Table, options: BatchOptions, summary: BatchSummary,
             yield block, len(stats)
 
 
-def run_batch(rb: Any, source: str | Path, target: str | Path = "-", options: BatchOptions | None = None,
-              hooks: RunHooks | None = None, stderr: TextIO | None = None) -> BatchSummary:
+def run_batch(
+    rb: Any,
+    source: str | Path,
+    target: str | Path = "-",
+    options: BatchOptions | None = None,
+    hooks: RunHooks | None = None,
+    stderr: TextIO | None = None,
+) -> BatchSummary:
     """Interpret every row of ``source`` and write ``target`` (``-``: standard output).
     Raises TableError for an input, header or mapping that cannot be used (nothing written)."""
     options = options or BatchOptions()
@@ -306,14 +401,20 @@ def run_batch(rb: Any, source: str | Path, target: str | Path = "-", options: Ba
     summary = BatchSummary(output=str(target), rulebook=dict(rb.identity), notes=hooks.notes)
     t0 = time.perf_counter()
     try:
-        with open_table(source, analytes_of(rb), mapping=options.mapping, fmt=options.in_format,
-                        decimal_comma=options.decimal_comma) as table:
+        with open_table(
+            source,
+            analytes_of(rb),
+            mapping=options.mapping,
+            fmt=options.in_format,
+            decimal_comma=options.decimal_comma,
+        ) as table:
             columns, renames = output_columns(rb, table, options)
             out_fmt = options.out_format or _default_out_format(target, table.fmt)
             progress = Progress(stderr, table.progress, options.progress)
             with open_writer(target, columns, out_fmt, metadata=lineage(rb)) as writer:
-                for block, count in records(rb, table, options, summary, hooks, progress, renames,
-                                            writer.encoder()):
+                for block, count in records(
+                    rb, table, options, summary, hooks, progress, renames, writer.encoder()
+                ):
                     writer.write_block(block, count)
             progress.finish(summary.rows)
     finally:
@@ -325,8 +426,10 @@ def run_batch(rb: Any, source: str | Path, target: str | Path = "-", options: Ba
 
 def lineage(rb: Any) -> dict[str, str]:
     """Key-value metadata stored in every Parquet output: which rulebook and engine wrote it."""
-    return {"gasrules.rulebook": json.dumps(rb.identity, sort_keys=True),
-            "gasrules.engine_version": str(rb.engine_version)}
+    return {
+        "gasrules.rulebook": json.dumps(rb.identity, sort_keys=True),
+        "gasrules.engine_version": str(rb.engine_version),
+    }
 
 
 def _default_out_format(target: str | Path, in_fmt: str) -> str:

@@ -23,14 +23,15 @@ import json
 import os
 import shutil
 import time
+from collections.abc import Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any
 
 from gasrules.integration.batch import BatchOptions, BatchSummary, lineage, output_columns, records
 from gasrules.tables.readers import TableError, analytes_of, open_table, open_writer, parquet_files
 
-__all__ = ["Task", "plan_tasks", "run_distributed", "run_task", "SUCCESS"]
+__all__ = ["SUCCESS", "Task", "plan_tasks", "run_distributed", "run_task"]
 
 SUCCESS = "_SUCCESS"
 ROW_GROUPS_PER_TASK = 1
@@ -43,7 +44,7 @@ class Task:
     number: int
     source: str
     row_groups: tuple[int, ...] | None
-    part: str                           # output path relative to the output directory
+    part: str  # output path relative to the output directory
 
 
 def plan_tasks(source: str | Path, row_groups_per_task: int = ROW_GROUPS_PER_TASK) -> list[Task]:
@@ -54,16 +55,21 @@ def plan_tasks(source: str | Path, row_groups_per_task: int = ROW_GROUPS_PER_TAS
     files = parquet_files(src)
     if src.is_dir():
         names = pq.ParquetFile(files[0]).schema_arrow.names
-        for f in files[1:]:                  # footers only: every part must have the same columns
+        for f in files[1:]:  # footers only: every part must have the same columns
             other = pq.ParquetFile(f).schema_arrow.names
             if other != names:
-                raise TableError(str(f), f"its columns differ from the first part's ({files[0].relative_to(src)})",
-                                 ", ".join(names))
+                raise TableError(
+                    str(f),
+                    f"its columns differ from the first part's ({files[0].relative_to(src)})",
+                    ", ".join(names),
+                )
         return [Task(i, str(f), None, str(f.relative_to(src))) for i, f in enumerate(files)]
     groups = pq.ParquetFile(src).metadata.num_row_groups
     if groups <= row_groups_per_task:
         return [Task(0, str(src), None, "part-00000.parquet")]
-    spans = [tuple(range(g, min(g + row_groups_per_task, groups))) for g in range(0, groups, row_groups_per_task)]
+    spans = [
+        tuple(range(g, min(g + row_groups_per_task, groups))) for g in range(0, groups, row_groups_per_task)
+    ]
     return [Task(i, str(src), span, f"part-{i:05d}.parquet") for i, span in enumerate(spans)]
 
 
@@ -74,8 +80,9 @@ def run_task(rb: Any, task: Task, options: BatchOptions, out_dir: str) -> dict[s
     target = Path(out_dir) / task.part
     target.parent.mkdir(parents=True, exist_ok=True)
     local = replace(options, workers=1, progress=False)
-    with open_table(task.source, analytes_of(rb), mapping=options.mapping, fmt="parquet",
-                    row_groups=task.row_groups) as table:
+    with open_table(
+        task.source, analytes_of(rb), mapping=options.mapping, fmt="parquet", row_groups=task.row_groups
+    ) as table:
         columns, renames = output_columns(rb, table, local)
         with open_writer(target, columns, "parquet", metadata=lineage(rb)) as writer:
             for block, count in records(rb, table, local, summary, renames=renames, encoder=writer.encoder()):
@@ -94,20 +101,33 @@ def _partial_dir(target: Path) -> Path:
 
 def _check_target(target: Path) -> None:
     if target.exists() and (not target.is_dir() or any(target.iterdir())):
-        raise TableError(str(target), "already exists and is not an empty directory",
-                         "a new directory name (results are never written over)")
+        raise TableError(
+            str(target),
+            "already exists and is not an empty directory",
+            "a new directory name (results are never written over)",
+        )
 
 
-def run_distributed(rb: Any, source: str | Path, target: str | Path, options: BatchOptions | None = None, *,
-                    scheduler: str | None = None, local_workers: int | None = None, client: Any = None,
-                    row_groups_per_task: int = ROW_GROUPS_PER_TASK) -> BatchSummary:
+def run_distributed(
+    rb: Any,
+    source: str | Path,
+    target: str | Path,
+    options: BatchOptions | None = None,
+    *,
+    scheduler: str | None = None,
+    local_workers: int | None = None,
+    client: Any = None,
+    row_groups_per_task: int = ROW_GROUPS_PER_TASK,
+) -> BatchSummary:
     """Run the batch over partitioned Parquet on a Dask cluster: an existing ``client``, a
     ``scheduler`` address, or a LocalCluster of ``local_workers`` processes."""
     options = options or BatchOptions()
     if options.out_format not in (None, "parquet"):
         raise TableError("--format", "a distributed run writes partitioned Parquet", "parquet")
     if options.in_format not in (None, "parquet"):
-        raise TableError(str(source), "a distributed run reads Parquet", "a .parquet file or a directory of them")
+        raise TableError(
+            str(source), "a distributed run reads Parquet", "a .parquet file or a directory of them"
+        )
     if str(target) == "-":
         raise TableError("-", "a distributed run writes a directory", "an output directory path")
     target = Path(target).resolve()
@@ -123,7 +143,7 @@ def run_distributed(rb: Any, source: str | Path, target: str | Path, options: Ba
         try:
             parts = _submit(client, rb, tasks, options, str(partial))
         finally:
-            if own:                              # close what this run opened, never a caller's client
+            if own:  # close what this run opened, never a caller's client
                 client.close()
                 if cluster is not None:
                     cluster.close()
@@ -131,7 +151,7 @@ def run_distributed(rb: Any, source: str | Path, target: str | Path, options: Ba
         summary.seconds = time.perf_counter() - t0
         (partial / SUCCESS).write_text(json.dumps(summary.as_dict(), indent=2) + "\n", encoding="utf-8")
         if target.exists():
-            target.rmdir()                       # empty (checked above); rename needs it gone
+            target.rmdir()  # empty (checked above); rename needs it gone
         os.rename(partial, target)
     except BaseException:
         shutil.rmtree(partial, ignore_errors=True)
@@ -144,15 +164,19 @@ def _connect(scheduler: str | None, local_workers: int | None) -> tuple[Any, Any
 
     if scheduler:
         return Client(scheduler), None
-    cluster = LocalCluster(n_workers=local_workers or 2, threads_per_worker=1, processes=True,
-                           dashboard_address=None)
+    cluster = LocalCluster(
+        n_workers=local_workers or 2, threads_per_worker=1, processes=True, dashboard_address=None
+    )
     return Client(cluster), cluster
 
 
-def _submit(client: Any, rb: Any, tasks: Sequence[Task], options: BatchOptions, out_dir: str) -> list[dict[str, Any]]:
+def _submit(
+    client: Any, rb: Any, tasks: Sequence[Task], options: BatchOptions, out_dir: str
+) -> list[dict[str, Any]]:
     [rb_future] = client.scatter([rb], broadcast=True)
-    futures = client.map(run_task, [rb_future] * len(tasks), tasks, [options] * len(tasks),
-                         [out_dir] * len(tasks), pure=False)
+    futures = client.map(
+        run_task, [rb_future] * len(tasks), tasks, [options] * len(tasks), [out_dir] * len(tasks), pure=False
+    )
     return list(client.gather(futures))
 
 

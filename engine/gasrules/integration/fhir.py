@@ -31,9 +31,21 @@ from dataclasses import dataclass, field
 from datetime import UTC, date, datetime
 from typing import Any
 
-from gasrules.integration.standard_codes import PANEL_SPECIMEN, SAMPLE_DEFINING_INPUTS, SPECIMEN_BY_LOINC, UCUM_SYSTEM, CaseBuilder, Catalog, Issue, accepted_units, completed_years, loinc_index, specimen_from_code
+from gasrules.integration.standard_codes import (
+    PANEL_SPECIMEN,
+    SAMPLE_DEFINING_INPUTS,
+    SPECIMEN_BY_LOINC,
+    UCUM_SYSTEM,
+    CaseBuilder,
+    Catalog,
+    Issue,
+    accepted_units,
+    completed_years,
+    loinc_index,
+    specimen_from_code,
+)
 
-__all__ = ["FhirReadResult", "case_from_fhir", "result_to_fhir", "CODE_SYSTEM_BASE"]
+__all__ = ["CODE_SYSTEM_BASE", "FhirReadResult", "case_from_fhir", "result_to_fhir"]
 
 LOINC_SYSTEM = "http://loinc.org"
 BUNDLE_TYPES = ("collection", "searchset", "transaction", "batch")
@@ -56,8 +68,8 @@ class FhirReadResult:
     case: dict[str, Any]
     issues: tuple[Issue, ...]
     sources: dict[str, str] = field(default_factory=dict)  # input -> reference to its resource
-    subject: str | None = None                              # Patient reference, if any
-    effective: str | None = None                            # collection time of the gas
+    subject: str | None = None  # Patient reference, if any
+    effective: str | None = None  # collection time of the gas
 
     @property
     def errors(self) -> list[Issue]:
@@ -97,8 +109,12 @@ class _Reader:
             self.by_ref[ref] = (path, res)
         return refs[0] if refs else path
 
-    def resolve(self, ref: Any, holder: dict[str, Any], path: str,
-                ) -> tuple[str, dict[str, Any]] | None:
+    def resolve(
+        self,
+        ref: Any,
+        holder: dict[str, Any],
+        path: str,
+    ) -> tuple[str, dict[str, Any]] | None:
         text = ref.get("reference") if isinstance(ref, dict) else None
         if not isinstance(text, str):
             return None
@@ -125,8 +141,11 @@ class _Reader:
         if panel or obs.get("hasMember"):
             self.panel(path, obs, panel)
         if len(names) > 1:
-            self.issue(f"{path}.code", "code.ambiguous",
-                       f"LOINC codings {codes} feed different inputs ({', '.join(names)})")
+            self.issue(
+                f"{path}.code",
+                "code.ambiguous",
+                f"LOINC codings {codes} feed different inputs ({', '.join(names)})",
+            )
             return
         if not names:
             if not panel and not components and not obs.get("hasMember"):
@@ -155,8 +174,11 @@ class _Reader:
                 self.unknown(cpath, comp, codes)
                 continue
             if len(names) > 1:
-                self.issue(f"{cpath}.code", "code.ambiguous",
-                           f"LOINC codings {codes} feed different inputs ({', '.join(names)})")
+                self.issue(
+                    f"{cpath}.code",
+                    "code.ambiguous",
+                    f"LOINC codings {codes} feed different inputs ({', '.join(names)})",
+                )
                 continue
             if not self.builder.status_allows(status, f"{path}.status", names[0]):
                 continue
@@ -166,12 +188,16 @@ class _Reader:
 
     def unknown(self, path: str, holder: dict[str, Any], codes: list[str]) -> None:
         if codes:
-            self.issue(f"{path}.code", "code.unknown",
-                       f"LOINC {', '.join(codes)} feeds no input of this rulebook; ignored",
-                       "warning")
+            self.issue(
+                f"{path}.code",
+                "code.unknown",
+                f"LOINC {', '.join(codes)} feeds no input of this rulebook; ignored",
+                "warning",
+            )
         else:
-            self.issue(f"{path}.code", "code.not_loinc",
-                       f"no coding with system {LOINC_SYSTEM}; ignored", "warning")
+            self.issue(
+                f"{path}.code", "code.not_loinc", f"no coding with system {LOINC_SYSTEM}; ignored", "warning"
+            )
 
     def panel(self, path: str, obs: dict[str, Any], panel: list[str]) -> None:
         if obs.get("id"):
@@ -180,8 +206,12 @@ class _Reader:
             self.builder.claim_specimen(PANEL_SPECIMEN[code], f"{path}.code", "loinc")
         for i, member in enumerate(obs.get("hasMember") or []):
             if self.resolve(member, obs, path) is None:
-                self.issue(f"{path}.hasMember[{i}]", "read.unresolved_reference",
-                           f"member {_ref_text(member)!r} is not in the message", "warning")
+                self.issue(
+                    f"{path}.hasMember[{i}]",
+                    "read.unresolved_reference",
+                    f"member {_ref_text(member)!r} is not in the message",
+                    "warning",
+                )
         self.note_time(path, obs)
 
     def specimen_claims(self, name: str, code: str, obs: dict[str, Any], path: str) -> None:
@@ -193,26 +223,37 @@ class _Reader:
             return
         found = self.resolve(obs["specimen"], obs, path)
         if found is None:
-            self.issue(f"{path}.specimen", "read.unresolved_reference",
-                       f"specimen {_ref_text(obs['specimen'])!r} is not in the message",
-                       "warning")
+            self.issue(
+                f"{path}.specimen",
+                "read.unresolved_reference",
+                f"specimen {_ref_text(obs['specimen'])!r} is not in the message",
+                "warning",
+            )
             return
         spath, spec = found
         codings = (spec.get("type") or {}).get("coding") or []
         for j, coding in enumerate(codings):
             known, sample = specimen_from_code(coding.get("system"), coding.get("code"))
             if known:
-                self.builder.claim_specimen(sample, f"{spath}.type.coding[{j}]", "specimen",
-                                            _ref_text(obs["specimen"]))
+                self.builder.claim_specimen(
+                    sample, f"{spath}.type.coding[{j}]", "specimen", _ref_text(obs["specimen"])
+                )
                 return
         if codings:
-            self.issue(f"{spath}.type", "specimen.unknown",
-                       "specimen type is none of the blood specimen codes the reader knows "
-                       "(SNOMED CT 122552005, 122555007, 122554006, 119297000)", "warning")
+            self.issue(
+                f"{spath}.type",
+                "specimen.unknown",
+                "specimen type is none of the blood specimen codes the reader knows "
+                "(SNOMED CT 122552005, 122555007, 122554006, 119297000)",
+                "warning",
+            )
 
     def note_time(self, path: str, obs: dict[str, Any]) -> None:
-        when = obs.get("effectiveDateTime") or obs.get("effectiveInstant") or (
-            (obs.get("effectivePeriod") or {}).get("start"))
+        when = (
+            obs.get("effectiveDateTime")
+            or obs.get("effectiveInstant")
+            or ((obs.get("effectivePeriod") or {}).get("start"))
+        )
         if isinstance(when, str):
             self.times.append((path, when))
 
@@ -233,28 +274,34 @@ class _Reader:
             self.coded(name, holder, path, ref)
         else:
             if not isinstance(holder.get("valueBoolean"), bool):
-                self.issue(f"{path}.{values[0]}", "value.wrong_type",
-                           f"{name} is a yes/no flag; expected valueBoolean")
+                self.issue(
+                    f"{path}.{values[0]}",
+                    "value.wrong_type",
+                    f"{name} is a yes/no flag; expected valueBoolean",
+                )
                 return
             self.builder.add_value(name, holder["valueBoolean"], path, ref)
 
-    def number(self, name: str, holder: dict[str, Any], path: str, ref: str,
-               values: list[str]) -> None:
+    def number(self, name: str, holder: dict[str, Any], path: str, ref: str, values: list[str]) -> None:
         q = holder.get("valueQuantity")
         qpath = f"{path}.valueQuantity"
         if not isinstance(q, dict):
-            self.issue(f"{path}.{values[0]}", "value.wrong_type",
-                       f"{name} is a number; expected valueQuantity with a UCUM unit")
+            self.issue(
+                f"{path}.{values[0]}",
+                "value.wrong_type",
+                f"{name} is a number; expected valueQuantity with a UCUM unit",
+            )
             return
         v = q.get("value")
         if isinstance(v, bool) or not isinstance(v, (int, float)):
-            self.issue(f"{qpath}.value", "value.not_a_number",
-                       f"{name}: {v!r} is not a number")
+            self.issue(f"{qpath}.value", "value.not_a_number", f"{name}: {v!r} is not a number")
             return
         if q.get("comparator"):
-            self.issue(f"{qpath}.comparator", "value.censored",
-                       f"{name} is reported as {q['comparator']}{v}, not an exact value; "
-                       "left out")
+            self.issue(
+                f"{qpath}.comparator",
+                "value.censored",
+                f"{name} is reported as {q['comparator']}{v}, not an exact value; left out",
+            )
             return
         system, code, text = q.get("system"), q.get("code"), q.get("unit")
         if code:
@@ -263,8 +310,7 @@ class _Reader:
         else:
             unit = self.builder.unit_for(name, text, False, f"{qpath}.unit" if text else qpath)
         if unit is not None:
-            self.builder.add_number(name, float(v) if isinstance(v, float) else v, unit,
-                                    path, ref)
+            self.builder.add_number(name, float(v) if isinstance(v, float) else v, unit, path, ref)
 
     def coded(self, name: str, holder: dict[str, Any], path: str, ref: str) -> None:
         spec = self.catalog[name]
@@ -272,11 +318,15 @@ class _Reader:
             words = [(f"{path}.valueString", None, holder["valueString"])]
         elif isinstance(holder.get("valueCodeableConcept"), dict):
             codings = holder["valueCodeableConcept"].get("coding") or []
-            words = [(f"{path}.valueCodeableConcept.coding[{j}]", c.get("system"), c.get("code"))
-                     for j, c in enumerate(codings) if isinstance(c, dict)]
+            words = [
+                (f"{path}.valueCodeableConcept.coding[{j}]", c.get("system"), c.get("code"))
+                for j, c in enumerate(codings)
+                if isinstance(c, dict)
+            ]
         else:
-            self.issue(path, "value.wrong_type",
-                       f"{name} is coded; expected valueCodeableConcept or valueString")
+            self.issue(
+                path, "value.wrong_type", f"{name} is coded; expected valueCodeableConcept or valueString"
+            )
             return
         for where, system, code in words:
             if name == "sample_type":
@@ -291,9 +341,11 @@ class _Reader:
                     self.builder.add_value(name, code, where, ref)
                 return
         shown = ", ".join(str(w[2]) for w in words) or "nothing"
-        self.issue(path, "value.unknown_code",
-                   f"{name}: {shown} is not among the accepted codes "
-                   f"({', '.join(spec.codes)})")
+        self.issue(
+            path,
+            "value.unknown_code",
+            f"{name}: {shown} is not among the accepted codes ({', '.join(spec.codes)})",
+        )
 
     # -- patient
     def age_from_birth_date(self) -> None:
@@ -301,8 +353,7 @@ class _Reader:
             return
         patient = None
         for subject in self.subjects:
-            found = self.by_ref.get(subject) or self.by_ref.get(
-                "/".join(subject.split("/")[-2:]))
+            found = self.by_ref.get(subject) or self.by_ref.get("/".join(subject.split("/")[-2:]))
             if found and found[1].get("resourceType") == "Patient":
                 patient = next((p for p in self.patients if p[2] is found[1]), None)
         if patient is None and len(self.patients) == 1:
@@ -315,23 +366,24 @@ class _Reader:
             return
         taken = self.times[0][1] if self.times else None
         if len(born) != 10 or taken is None:
-            why = ("the birth date is partial" if len(born) != 10
-                   else "no result carries a collection time")
-            self.issue(f"{path}.birthDate", "age.not_computed",
-                       f"age not computed: {why}", "warning")
+            why = "the birth date is partial" if len(born) != 10 else "no result carries a collection time"
+            self.issue(f"{path}.birthDate", "age.not_computed", f"age not computed: {why}", "warning")
             return
         try:
             years = completed_years(date.fromisoformat(born), date.fromisoformat(taken[:10]))
         except ValueError:
-            self.issue(f"{path}.birthDate", "age.not_computed",
-                       f"age not computed: {born!r} or {taken!r} is not a date", "warning")
+            self.issue(
+                f"{path}.birthDate",
+                "age.not_computed",
+                f"age not computed: {born!r} or {taken!r} is not a date",
+                "warning",
+            )
             return
         if "a" in accepted_units(self.catalog["age"]):
             self.builder.add_number("age", years, "a", f"{path}.birthDate", ref)
 
 
-def case_from_fhir(resource: Any, catalog: Catalog, *,
-                   allow_preliminary: bool = False) -> FhirReadResult:
+def case_from_fhir(resource: Any, catalog: Catalog, *, allow_preliminary: bool = False) -> FhirReadResult:
     """Read a Bundle, a list of resources or one Observation into an engine case.
 
     ``catalog`` maps input names to rulebook inputs (``rulebook.inputs``). Preliminary results
@@ -351,21 +403,27 @@ def case_from_fhir(resource: Any, catalog: Catalog, *,
     times = sorted({t for _, t in reader.times})
     if len(times) > 1:
         said = ", ".join(f"{p}: {t}" for p, t in reader.times)
-        builder.issue(reader.times[0][0], "time.mismatch",
-                      f"the blood gas results carry different collection times ({said})",
-                      "warning")
+        builder.issue(
+            reader.times[0][0],
+            "time.mismatch",
+            f"the blood gas results carry different collection times ({said})",
+            "warning",
+        )
     case, sources = builder.build()
     if case_id is None and len(reader.panel_ids) == 1:
         case_id = reader.panel_ids[0]
     if case_id is not None:
         case = {"case_id": case_id, **case}
     subject = reader.subjects[0] if reader.subjects else None
-    return FhirReadResult(case, tuple(builder.issues), sources, subject,
-                          reader.times[0][1] if reader.times else None)
+    return FhirReadResult(
+        case, tuple(builder.issues), sources, subject, reader.times[0][1] if reader.times else None
+    )
 
 
-def _items(resource: Any, builder: CaseBuilder,
-           ) -> tuple[list[tuple[str, dict[str, Any], str | None]], str | None]:
+def _items(
+    resource: Any,
+    builder: CaseBuilder,
+) -> tuple[list[tuple[str, dict[str, Any], str | None]], str | None]:
     """(path, resource, fullUrl) for every resource to read, and the case id."""
     out: list[tuple[str, dict[str, Any], str | None]] = []
     if isinstance(resource, list):
@@ -376,21 +434,25 @@ def _items(resource: Any, builder: CaseBuilder,
                 builder.issue(f"[{i}]", "read.not_json_object", "list item is not an object")
         return out, None
     if not isinstance(resource, dict):
-        builder.issue("$", "read.not_json_object",
-                      "expected a FHIR Bundle, Observation or list of resources")
+        builder.issue("$", "read.not_json_object", "expected a FHIR Bundle, Observation or list of resources")
         return [], None
     rtype = resource.get("resourceType")
     case_id = resource.get("id") if isinstance(resource.get("id"), str) else None
     if rtype == "Observation":
         return [("Observation", resource, None)], case_id
     if rtype != "Bundle":
-        builder.issue("resourceType", "read.unsupported_resource",
-                      f"resourceType {rtype!r} is not read; expected Bundle or Observation")
+        builder.issue(
+            "resourceType",
+            "read.unsupported_resource",
+            f"resourceType {rtype!r} is not read; expected Bundle or Observation",
+        )
         return [], None
     if resource.get("type") not in BUNDLE_TYPES:
-        builder.issue("Bundle.type", "read.unsupported_bundle",
-                      f"Bundle.type {resource.get('type')!r} is not read; accepted: "
-                      f"{', '.join(BUNDLE_TYPES)}")
+        builder.issue(
+            "Bundle.type",
+            "read.unsupported_bundle",
+            f"Bundle.type {resource.get('type')!r} is not read; accepted: {', '.join(BUNDLE_TYPES)}",
+        )
         return [], case_id
     for i, entry in enumerate(resource.get("entry") or []):
         res = entry.get("resource") if isinstance(entry, dict) else None
@@ -402,8 +464,11 @@ def _items(resource: Any, builder: CaseBuilder,
 def _loinc_codes(concept: Any) -> list[str]:
     if not isinstance(concept, dict):
         return []
-    return [str(c["code"]) for c in concept.get("coding") or []
-            if isinstance(c, dict) and c.get("system") == LOINC_SYSTEM and c.get("code")]
+    return [
+        str(c["code"])
+        for c in concept.get("coding") or []
+        if isinstance(c, dict) and c.get("system") == LOINC_SYSTEM and c.get("code")
+    ]
 
 
 def _ref_text(ref: Any) -> str:
@@ -418,10 +483,16 @@ def _concept_text(concept: Any) -> str:
 
 
 # ============================================================================ writing
-def result_to_fhir(result: Mapping[str, Any], case_inputs_refs: Mapping[str, str], *,
-                   rulebook_info: Any, subject: str | None = None,
-                   effective: str | None = None, issued: str | None = None,
-                   codesystem_url: str = CODE_SYSTEM_BASE) -> dict[str, Any]:
+def result_to_fhir(
+    result: Mapping[str, Any],
+    case_inputs_refs: Mapping[str, str],
+    *,
+    rulebook_info: Any,
+    subject: str | None = None,
+    effective: str | None = None,
+    issued: str | None = None,
+    codesystem_url: str = CODE_SYSTEM_BASE,
+) -> dict[str, Any]:
     """One engine result as a FHIR R4 Bundle (type collection).
 
     ``case_inputs_refs`` maps input names to references of the Observations they came from
@@ -432,19 +503,24 @@ def result_to_fhir(result: Mapping[str, Any], case_inputs_refs: Mapping[str, str
     Project codes are under ``codesystem_url`` (``<base>/disorder`` etc.); derived values and
     disorders also carry the LOINC / SNOMED CT codes of :mod:`gasrules.integration.terminology`.
     """
-    cs = {k: f"{codesystem_url.rstrip('/')}/{k}" for k in
-          ("report", "finding", "disorder", "qualifier", "value")}
+    cs = {
+        k: f"{codesystem_url.rstrip('/')}/{k}"
+        for k in ("report", "finding", "disorder", "qualifier", "value")
+    }
     rulebook = _rulebook_fields(rulebook_info)
     claimed = result.get("rulebook") or {}
     for key in ("id", "version", "sha256"):
         if claimed.get(key) not in (None, rulebook[key]):
-            raise ValueError(f"rulebook_info {key} {rulebook[key]!r} differs from the "
-                             f"result's rulebook {key} {claimed[key]!r}")
+            raise ValueError(
+                f"rulebook_info {key} {rulebook[key]!r} differs from the "
+                f"result's rulebook {key} {claimed[key]!r}"
+            )
     issued = issued or datetime.now(UTC).replace(microsecond=0).isoformat()
     engine_version = str(result.get("engine_version") or "unknown")
     refs = list(dict.fromkeys(case_inputs_refs.values()))
-    seed = json.dumps([{k: v for k, v in result.items() if k != "trace"}, refs, rulebook],
-                      sort_keys=True, default=str)
+    seed = json.dumps(
+        [{k: v for k, v in result.items() if k != "trace"}, refs, rulebook], sort_keys=True, default=str
+    )
     base = uuid.uuid5(_NAMESPACE, seed)
     ids = {k: uuid.uuid5(base, k) for k in ("bundle", "obs", "report", "device", "prov")}
     url = {k: f"urn:uuid:{v}" for k, v in ids.items()}
@@ -453,16 +529,34 @@ def result_to_fhir(result: Mapping[str, Any], case_inputs_refs: Mapping[str, str
         common["subject"] = {"reference": subject}
     if effective:
         common["effectiveDateTime"] = effective
-    report_code = {"coding": [{"system": cs["report"], "code": "blood-gas-interpretation",
-                               "display": "Blood gas interpretation (rule-based)"}],
-                   "text": "Blood gas interpretation"}
+    report_code = {
+        "coding": [
+            {
+                "system": cs["report"],
+                "code": "blood-gas-interpretation",
+                "display": "Blood gas interpretation (rule-based)",
+            }
+        ],
+        "text": "Blood gas interpretation",
+    }
     headline = str(result.get("headline") or "")
     observation: dict[str, Any] = {
-        "resourceType": "Observation", "id": str(ids["obs"]), "status": "preliminary",
-        "category": [{"coding": [{
-            "system": "http://terminology.hl7.org/CodeSystem/observation-category",
-            "code": "laboratory"}]}],
-        "code": report_code, **common, "issued": issued,
+        "resourceType": "Observation",
+        "id": str(ids["obs"]),
+        "status": "preliminary",
+        "category": [
+            {
+                "coding": [
+                    {
+                        "system": "http://terminology.hl7.org/CodeSystem/observation-category",
+                        "code": "laboratory",
+                    }
+                ]
+            }
+        ],
+        "code": report_code,
+        **common,
+        "issued": issued,
         "valueString": headline,
         "method": {"text": f"gasrules rulebook {rulebook['id']} {rulebook['version']}"},
         "device": {"reference": url["device"]},
@@ -476,10 +570,23 @@ def result_to_fhir(result: Mapping[str, Any], case_inputs_refs: Mapping[str, str
     if components:
         observation["component"] = components
     report: dict[str, Any] = {
-        "resourceType": "DiagnosticReport", "id": str(ids["report"]), "status": "preliminary",
-        "category": [{"coding": [{"system": "http://terminology.hl7.org/CodeSystem/v2-0074",
-                                  "code": "LAB", "display": "Laboratory"}]}],
-        "code": report_code, **common, "issued": issued,
+        "resourceType": "DiagnosticReport",
+        "id": str(ids["report"]),
+        "status": "preliminary",
+        "category": [
+            {
+                "coding": [
+                    {
+                        "system": "http://terminology.hl7.org/CodeSystem/v2-0074",
+                        "code": "LAB",
+                        "display": "Laboratory",
+                    }
+                ]
+            }
+        ],
+        "code": report_code,
+        **common,
+        "issued": issued,
         "result": [{"reference": url["obs"]}] + [{"reference": r} for r in refs],
         "conclusion": headline,
         "text": {"status": "generated", "div": _narrative(result, notes)},
@@ -487,34 +594,63 @@ def result_to_fhir(result: Mapping[str, Any], case_inputs_refs: Mapping[str, str
     conclusion_codes = _conclusion_codes(result, cs)
     if conclusion_codes:
         report["conclusionCode"] = conclusion_codes
-    device = {"resourceType": "Device", "id": str(ids["device"]),
-              "deviceName": [{"name": "gasrules", "type": "user-friendly-name"}],
-              "version": [{"value": engine_version}]}
+    device = {
+        "resourceType": "Device",
+        "id": str(ids["device"]),
+        "deviceName": [{"name": "gasrules", "type": "user-friendly-name"}],
+        "version": [{"value": engine_version}],
+    }
     rb_ref = f"{rulebook['id']}|{rulebook['version']}"
     provenance = {
-        "resourceType": "Provenance", "id": str(ids["prov"]),
+        "resourceType": "Provenance",
+        "id": str(ids["prov"]),
         "target": [{"reference": url["obs"]}, {"reference": url["report"]}],
         "recorded": issued,
-        "policy": [f"{RULEBOOK_ID_SYSTEM}/{rulebook['id']}/{rulebook['version']}"
-                   f"?sha256={rulebook['sha256']}"],
-        "activity": {"coding": [{"system": "http://terminology.hl7.org/CodeSystem/v3-DataOperation",
-                                 "code": "CREATE", "display": "create"}]},
-        "agent": [{"type": {"coding": [{
-            "system": "http://terminology.hl7.org/CodeSystem/provenance-participant-type",
-            "code": "assembler", "display": "Assembler"}]},
-            "who": {"reference": url["device"],
-                    "display": f"gasrules engine {engine_version}"}}],
-        "entity": [{"role": "source", "what": {"reference": r}} for r in refs] + [{
-            "role": "derivation",
-            "what": {"identifier": {"system": RULEBOOK_ID_SYSTEM, "value": rb_ref},
-                     "display": f"rulebook {rulebook['id']} {rulebook['version']} "
-                                f"sha256:{rulebook['sha256']}"}}],
+        "policy": [
+            f"{RULEBOOK_ID_SYSTEM}/{rulebook['id']}/{rulebook['version']}?sha256={rulebook['sha256']}"
+        ],
+        "activity": {
+            "coding": [
+                {
+                    "system": "http://terminology.hl7.org/CodeSystem/v3-DataOperation",
+                    "code": "CREATE",
+                    "display": "create",
+                }
+            ]
+        },
+        "agent": [
+            {
+                "type": {
+                    "coding": [
+                        {
+                            "system": "http://terminology.hl7.org/CodeSystem/provenance-participant-type",
+                            "code": "assembler",
+                            "display": "Assembler",
+                        }
+                    ]
+                },
+                "who": {"reference": url["device"], "display": f"gasrules engine {engine_version}"},
+            }
+        ],
+        "entity": [{"role": "source", "what": {"reference": r}} for r in refs]
+        + [
+            {
+                "role": "derivation",
+                "what": {
+                    "identifier": {"system": RULEBOOK_ID_SYSTEM, "value": rb_ref},
+                    "display": f"rulebook {rulebook['id']} {rulebook['version']} sha256:{rulebook['sha256']}",
+                },
+            }
+        ],
     }
-    entries = [("obs", observation), ("report", report), ("device", device),
-               ("prov", provenance)]
-    return {"resourceType": "Bundle", "id": str(ids["bundle"]), "type": "collection",
-            "timestamp": issued,
-            "entry": [{"fullUrl": url[k], "resource": r} for k, r in entries]}
+    entries = [("obs", observation), ("report", report), ("device", device), ("prov", provenance)]
+    return {
+        "resourceType": "Bundle",
+        "id": str(ids["bundle"]),
+        "type": "collection",
+        "timestamp": issued,
+        "entry": [{"fullUrl": url[k], "resource": r} for k, r in entries],
+    }
 
 
 def _rulebook_fields(info: Any) -> dict[str, str]:
@@ -524,8 +660,10 @@ def _rulebook_fields(info: Any) -> dict[str, str]:
     out = {k: get(k) for k in ("id", "version", "sha256")}
     missing = [k for k, v in out.items() if not v]
     if missing:
-        raise ValueError(f"rulebook_info lacks {', '.join(missing)}; expected id, version, "
-                         "sha256 (a loaded rulebook or a mapping)")
+        raise ValueError(
+            f"rulebook_info lacks {', '.join(missing)}; expected id, version, "
+            "sha256 (a loaded rulebook or a mapping)"
+        )
     return {k: str(v) for k, v in out.items()}
 
 
@@ -540,8 +678,7 @@ def _notes(result: Mapping[str, Any]) -> list[str]:
     return notes
 
 
-def _components(result: Mapping[str, Any], inputs: set[str],
-                cs: Mapping[str, str]) -> list[dict[str, Any]]:
+def _components(result: Mapping[str, Any], inputs: set[str], cs: Mapping[str, str]) -> list[dict[str, Any]]:
     from gasrules.integration.terminology import disorder_codings, value_codings
 
     out: list[dict[str, Any]] = []
@@ -550,18 +687,25 @@ def _components(result: Mapping[str, Any], inputs: set[str],
         concept: dict[str, Any] = {"coding": disorder_codings(d, cs["disorder"])}
         if d in qualifiers:
             concept["coding"].append({"system": cs["qualifier"], "code": str(qualifiers[d])})
-        out.append({"code": {"coding": [{"system": cs["report"], "code": "disorder"}],
-                             "text": "Disorder"},
-                    "valueCodeableConcept": {**concept, "text": _disorder_text(d, qualifiers)}})
+        out.append(
+            {
+                "code": {"coding": [{"system": cs["report"], "code": "disorder"}], "text": "Disorder"},
+                "valueCodeableConcept": {**concept, "text": _disorder_text(d, qualifiers)},
+            }
+        )
     for f in result.get("findings") or []:
         comp: dict[str, Any] = {
-            "code": {"coding": [{"system": cs["finding"], "code": f["code"]}],
-                     "text": str(f.get("category") or f["code"])},
-            "valueString": str(f.get("text") or f["code"])}
+            "code": {
+                "coding": [{"system": cs["finding"], "code": f["code"]}],
+                "text": str(f.get("category") or f["code"]),
+            },
+            "valueString": str(f.get("text") or f["code"]),
+        }
         flag = _SEVERITY_FLAG.get(str(f.get("severity")))
         if flag:
-            comp["interpretation"] = [{"coding": [{"system": _OBS_INTERPRETATION,
-                                                   "code": flag[0], "display": flag[1]}]}]
+            comp["interpretation"] = [
+                {"coding": [{"system": _OBS_INTERPRETATION, "code": flag[0], "display": flag[1]}]}
+            ]
         out.append(comp)
     units = result.get("units") or {}
     for name, value in (result.get("values") or {}).items():
@@ -573,8 +717,9 @@ def _components(result: Mapping[str, Any], inputs: set[str],
         unit = units.get(name)
         if unit:
             quantity.update({"unit": unit, "system": UCUM_SYSTEM, "code": unit})
-        out.append({"code": {"coding": value_codings(name, cs["value"]), "text": name},
-                    "valueQuantity": quantity})
+        out.append(
+            {"code": {"coding": value_codings(name, cs["value"]), "text": name}, "valueQuantity": quantity}
+        )
     return out
 
 
@@ -586,17 +731,24 @@ def _disorder_text(disorder: str, qualifiers: Mapping[str, Any]) -> str:
 def _conclusion_codes(result: Mapping[str, Any], cs: Mapping[str, str]) -> list[dict[str, Any]]:
     from gasrules.integration.terminology import disorder_codings
 
-    codes = [{"coding": disorder_codings(d, cs["disorder"]),
-              "text": _disorder_text(d, result.get("qualifiers") or {})}
-             for d in result.get("disorders") or []]
-    codes += [{"coding": [{"system": cs["finding"], "code": f["code"]}],
-               "text": str(f.get("text") or f["code"])}
-              for f in result.get("findings") or [] if f.get("severity") in _SEVERITY_FLAG]
+    codes = [
+        {
+            "coding": disorder_codings(d, cs["disorder"]),
+            "text": _disorder_text(d, result.get("qualifiers") or {}),
+        }
+        for d in result.get("disorders") or []
+    ]
+    codes += [
+        {"coding": [{"system": cs["finding"], "code": f["code"]}], "text": str(f.get("text") or f["code"])}
+        for f in result.get("findings") or []
+        if f.get("severity") in _SEVERITY_FLAG
+    ]
     return codes
 
 
 def _narrative(result: Mapping[str, Any], notes: list[str]) -> str:
     from html import escape
+
     parts = [f"<p><b>{escape(str(result.get('headline') or ''))}</b></p>"]
     findings = [escape(str(f.get("text") or f.get("code"))) for f in result.get("findings") or []]
     if findings:

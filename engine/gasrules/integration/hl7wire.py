@@ -23,17 +23,18 @@ from dataclasses import dataclass
 
 from gasrules.integration.standard_codes import Issue
 
-__all__ = ["CHARSETS", "MllpDecoder", "RawHeader", "ack", "decode", "frame", "raw_header",
-           "split_raw"]
+__all__ = ["CHARSETS", "MllpDecoder", "RawHeader", "ack", "decode", "frame", "raw_header", "split_raw"]
 
 VT, FS, CR = b"\x0b", b"\x1c", b"\x0d"
 
 # HL7 table 0211 (MSH-18) -> Python codec. Only single-byte sets and byte-oriented multi-byte
 # sets whose bytes never collide with the MLLP frame characters are accepted.
 CHARSETS = {
-    "ASCII": "ascii", "UNICODE UTF-8": "utf-8",
+    "ASCII": "ascii",
+    "UNICODE UTF-8": "utf-8",
     **{f"8859/{n}": f"iso8859-{n}" for n in (1, 2, 3, 4, 5, 6, 7, 8, 9, 15)},
-    "GB 18030-2000": "gb18030", "BIG-5": "big5",
+    "GB 18030-2000": "gb18030",
+    "BIG-5": "big5",
 }
 
 # HL7 table 0357 (message error condition codes) used in ERR-3.
@@ -43,11 +44,18 @@ ERR_REQUIRED = ("101", "Required field missing")
 ERR_SEGMENT = ("100", "Segment sequence error")
 ERR_MESSAGE_TYPE = ("200", "Unsupported message type")
 ERR_INTERNAL = ("207", "Application internal error")
-_ERR_BY_CODE = {"hl7.value_type": ERR_DATA_TYPE, "value.not_a_number": ERR_DATA_TYPE,
-                "value.wrong_type": ERR_DATA_TYPE, "unit.unknown": ERR_TABLE_VALUE,
-                "status.missing": ERR_TABLE_VALUE, "value.missing": ERR_REQUIRED,
-                "hl7.no_msh": ERR_SEGMENT, "hl7.bad_segment": ERR_SEGMENT,
-                "hl7.message_type": ERR_MESSAGE_TYPE, "hl7.no_control_id": ERR_REQUIRED}
+_ERR_BY_CODE = {
+    "hl7.value_type": ERR_DATA_TYPE,
+    "value.not_a_number": ERR_DATA_TYPE,
+    "value.wrong_type": ERR_DATA_TYPE,
+    "unit.unknown": ERR_TABLE_VALUE,
+    "status.missing": ERR_TABLE_VALUE,
+    "value.missing": ERR_REQUIRED,
+    "hl7.no_msh": ERR_SEGMENT,
+    "hl7.bad_segment": ERR_SEGMENT,
+    "hl7.message_type": ERR_MESSAGE_TYPE,
+    "hl7.no_control_id": ERR_REQUIRED,
+}
 _PATH = re.compile(r"(?P<seg>[A-Z][A-Z0-9]{2})\[(?P<seq>\d+)\](?:-(?P<field>\d+))?")
 
 
@@ -64,7 +72,7 @@ class MllpDecoder:
         self.max_frame = max_frame
         self._buf = bytearray()
         self._in_frame = False
-        self.dropped = 0            # bytes seen outside any frame
+        self.dropped = 0  # bytes seen outside any frame
 
     def feed(self, data: bytes) -> list[bytes]:
         frames: list[bytes] = []
@@ -75,10 +83,10 @@ class MllpDecoder:
                 elif byte not in (0x0D, 0x0A):
                     self.dropped += 1
                 continue
-            if byte == 0x1C:            # end of block; the CR after it is skipped as outside
+            if byte == 0x1C:  # end of block; the CR after it is skipped as outside
                 frames.append(bytes(self._buf))
                 self._in_frame = False
-            elif byte == 0x0B:          # a new start inside a frame: the old one was broken
+            elif byte == 0x0B:  # a new start inside a frame: the old one was broken
                 self.dropped += len(self._buf)
                 self._buf = bytearray()
             else:
@@ -112,7 +120,7 @@ def split_raw(data: bytes) -> Iterator[bytes]:
 class RawHeader:
     """MSH fields read from the bytes before decoding (the header is ASCII in every charset)."""
 
-    fields: tuple[str, ...]       # fields[n] is MSH-n (fields[1] the field separator)
+    fields: tuple[str, ...]  # fields[n] is MSH-n (fields[1] the field separator)
 
     def raw(self, n: int) -> str:
         return self.fields[n] if n < len(self.fields) else ""
@@ -150,21 +158,27 @@ def decode(message: bytes) -> tuple[str | None, Issue | None]:
         try:
             return message.decode("utf-8"), None
         except UnicodeDecodeError as exc:
-            return None, Issue("MSH[1]-18", "hl7.charset",
-                               f"byte {message[exc.start]:#04x} at offset {exc.start} is not "
-                               "ASCII and MSH-18 names no character set; accepted in MSH-18: "
-                               + ", ".join(CHARSETS))
+            return None, Issue(
+                "MSH[1]-18",
+                "hl7.charset",
+                f"byte {message[exc.start]:#04x} at offset {exc.start} is not "
+                "ASCII and MSH-18 names no character set; accepted in MSH-18: " + ", ".join(CHARSETS),
+            )
     codec = CHARSETS.get(name.upper())
     if codec is None:
-        return None, Issue("MSH[1]-18", "hl7.charset",
-                           f"character set {name!r} is not supported; accepted: "
-                           + ", ".join(CHARSETS))
+        return None, Issue(
+            "MSH[1]-18",
+            "hl7.charset",
+            f"character set {name!r} is not supported; accepted: " + ", ".join(CHARSETS),
+        )
     try:
         return message.decode(codec), None
     except UnicodeDecodeError as exc:
-        return None, Issue("MSH[1]-18", "hl7.charset",
-                           f"byte {message[exc.start]:#04x} at offset {exc.start} is not valid "
-                           f"{name}")
+        return None, Issue(
+            "MSH[1]-18",
+            "hl7.charset",
+            f"byte {message[exc.start]:#04x} at offset {exc.start} is not valid {name}",
+        )
 
 
 # ============================================================================ acknowledgements
@@ -180,12 +194,19 @@ def err_segment(issue: Issue) -> str:
     location = f"{m['seg']}^{m['seq']}^{m['field'] or ''}".rstrip("^") if m else ""
     code, text = _ERR_BY_CODE.get(issue.code, ERR_INTERNAL)
     severity = {"error": "E", "warning": "W", "notice": "I"}[issue.severity]
-    return (f"ERR||{location}|{code}^{text}^HL70357|{severity}||||"
-            f"{_esc(f'{issue.code}: {issue.message}')}")
+    return f"ERR||{location}|{code}^{text}^HL70357|{severity}||||{_esc(f'{issue.code}: {issue.message}')}"
 
 
-def ack(code: str, header: RawHeader | None, *, control_id: str, timestamp: str,
-        application: str, facility: str, errors: Sequence[Issue] = ()) -> str:
+def ack(
+    code: str,
+    header: RawHeader | None,
+    *,
+    control_id: str,
+    timestamp: str,
+    application: str,
+    facility: str,
+    errors: Sequence[Issue] = (),
+) -> str:
     """An original-mode ACK (segments joined by CR). ``code`` is AA, AE or AR."""
     if code not in ("AA", "AE", "AR"):
         raise ValueError(f"acknowledgement code {code!r}: expected AA, AE or AR")
@@ -196,9 +217,11 @@ def ack(code: str, header: RawHeader | None, *, control_id: str, timestamp: str,
     version = get(12) or "2.5.1"
     processing = get(11) or "P"
     charset = charset_name(header) if header is not None else ""
-    msh = (f"MSH|^~\\&|{_esc(application)}|{_esc(facility)}|{raw(3)}|{raw(4)}|{timestamp}||"
-           f"ACK{'^' + trigger if trigger else ''}^ACK|{_esc(control_id)}|{processing}|"
-           f"{version}")
+    msh = (
+        f"MSH|^~\\&|{_esc(application)}|{_esc(facility)}|{raw(3)}|{raw(4)}|{timestamp}||"
+        f"ACK{'^' + trigger if trigger else ''}^ACK|{_esc(control_id)}|{processing}|"
+        f"{version}"
+    )
     if charset:
         msh += f"||||||{charset}"
     segs = [msh, f"MSA|{code}|{raw(10)}"]

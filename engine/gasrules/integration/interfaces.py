@@ -39,11 +39,20 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from gasrules.integration.standard_codes import Issue
 from gasrules.evaluation.evaluator import UNREADABLE
+from gasrules.integration.standard_codes import Issue
 
-__all__ = ["INPUT_FORMATS", "OUTPUT_FORMATS", "Incoming", "InterfaceSettings",
-           "input_format", "interfaces_section", "read_incoming", "to_fhir", "to_hl7"]
+__all__ = [
+    "INPUT_FORMATS",
+    "OUTPUT_FORMATS",
+    "Incoming",
+    "InterfaceSettings",
+    "input_format",
+    "interfaces_section",
+    "read_incoming",
+    "to_fhir",
+    "to_hl7",
+]
 
 INPUT_FORMATS = ("json", "jsonl", "hl7", "fhir")
 OUTPUT_FORMATS = ("fhir", "hl7")
@@ -69,32 +78,45 @@ def interfaces_section(file: str | os.PathLike[str] | None) -> InterfaceSettings
     doc, problems = load_document(Path(file))
     if problems or doc is None:
         first = problems[0] if problems else None
-        raise SettingsError("--settings", first.message if first else "cannot read the file",
-                            "a readable YAML mapping", str(first.location) if first else str(file))
+        raise SettingsError(
+            "--settings",
+            first.message if first else "cannot read the file",
+            "a readable YAML mapping",
+            str(first.location) if first else str(file),
+        )
     data = doc.data if isinstance(doc.data, dict) else {}
     section = data.get("interfaces") or {}
     if not isinstance(section, dict):
-        raise SettingsError("interfaces", "expected a mapping",
-                            "application, facility, codesystem_url, listen",
-                            str(doc.locate(("interfaces",))))
+        raise SettingsError(
+            "interfaces",
+            "expected a mapping",
+            "application, facility, codesystem_url, listen",
+            str(doc.locate(("interfaces",))),
+        )
     values: dict[str, Any] = {}
     for key, value in section.items():
         where = str(doc.locate(("interfaces", key)))
         if key in ("application", "facility", "codesystem_url"):
             if not isinstance(value, str) or not value.strip() or "|" in value or "^" in value:
-                raise SettingsError(f"interfaces.{key}", f"{value!r} is not usable",
-                                    "a non-empty string without | or ^", where)
+                raise SettingsError(
+                    f"interfaces.{key}",
+                    f"{value!r} is not usable",
+                    "a non-empty string without | or ^",
+                    where,
+                )
             if key == "codesystem_url" and not value.startswith(("http://", "https://")):
-                raise SettingsError("interfaces.codesystem_url", f"{value!r} is not a URL",
-                                    "an absolute http(s) URL", where)
+                raise SettingsError(
+                    "interfaces.codesystem_url", f"{value!r} is not a URL", "an absolute http(s) URL", where
+                )
             values[key] = value.strip().rstrip("/") if key == "codesystem_url" else value.strip()
         elif key == "listen":
             from gasrules.integration.mllp import listen_settings
 
             values["listen"] = listen_settings(value, doc, Path(file).parent)
         else:
-            raise SettingsError(f"interfaces.{key}", "unknown setting",
-                                "application, facility, codesystem_url, listen", where)
+            raise SettingsError(
+                f"interfaces.{key}", "unknown setting", "application, facility, codesystem_url, listen", where
+            )
     return InterfaceSettings(**values)
 
 
@@ -103,14 +125,14 @@ def interfaces_section(file: str | os.PathLike[str] | None) -> InterfaceSettings
 class Incoming:
     """One case read from a message or Bundle, ready for the engine, with its provenance."""
 
-    case: dict[str, Any]                     # rejected (UNREADABLE) when reading had errors
+    case: dict[str, Any]  # rejected (UNREADABLE) when reading had errors
     issues: tuple[Issue, ...] = ()
-    kind: str = "json"                       # json | hl7 | fhir
-    refs: Mapping[str, str] = field(default_factory=dict)   # input -> FHIR reference
+    kind: str = "json"  # json | hl7 | fhir
+    refs: Mapping[str, str] = field(default_factory=dict)  # input -> FHIR reference
     subject: str | None = None
     effective: str | None = None
-    control_id: str | None = None            # HL7 MSH-10
-    patient_id: str | None = None            # HL7 PID-3
+    control_id: str | None = None  # HL7 MSH-10
+    patient_id: str | None = None  # HL7 PID-3
 
     @property
     def errors(self) -> list[Issue]:
@@ -149,18 +171,19 @@ def _rejected(issues: Iterable[Issue], case_id: str | None) -> dict[str, Any]:
     return case
 
 
-def read_hl7_bytes(data: bytes, catalog: Any, where: str = "",
-                   allow_preliminary: bool = False) -> Iterator[Incoming]:
+def read_hl7_bytes(
+    data: bytes, catalog: Any, where: str = "", allow_preliminary: bool = False
+) -> Iterator[Incoming]:
     """One :class:`Incoming` per message in ``data`` (MLLP-framed or plain)."""
-    from gasrules.integration.hl7wire import decode, split_raw
+    from gasrules.integration.hl7wire import split_raw
 
     for n, raw in enumerate(split_raw(data), 1):
-        yield incoming_from_hl7(raw, catalog, f"{where}message {n}",
-                                allow_preliminary=allow_preliminary)
+        yield incoming_from_hl7(raw, catalog, f"{where}message {n}", allow_preliminary=allow_preliminary)
 
 
-def incoming_from_hl7(raw: bytes, catalog: Any, label: str = "message",
-                      allow_preliminary: bool = False) -> Incoming:
+def incoming_from_hl7(
+    raw: bytes, catalog: Any, label: str = "message", allow_preliminary: bool = False
+) -> Incoming:
     from gasrules.integration.hl7v2 import case_from_hl7
     from gasrules.integration.hl7wire import decode, raw_header
 
@@ -168,12 +191,23 @@ def incoming_from_hl7(raw: bytes, catalog: Any, label: str = "message",
     if text is None:
         header = raw_header(raw)
         control = header.raw(10) if header else None
-        return Incoming(_rejected([problem], control), (problem,), "hl7",   # type: ignore[list-item]
-                        control_id=control)
+        return Incoming(
+            _rejected([problem], control),
+            (problem,),
+            "hl7",  # type: ignore[list-item]
+            control_id=control,
+        )
     read = case_from_hl7(text, catalog, allow_preliminary=allow_preliminary)
     case = read.case if read.ok else _rejected(read.issues, read.control_id or label)
-    return Incoming(case, read.issues, "hl7", {}, control_id=read.control_id,
-                    patient_id=read.patient_id, effective=fhir_datetime(read.observed_at))
+    return Incoming(
+        case,
+        read.issues,
+        "hl7",
+        {},
+        control_id=read.control_id,
+        patient_id=read.patient_id,
+        effective=fhir_datetime(read.observed_at),
+    )
 
 
 def fhir_datetime(ts: str | None) -> str | None:
@@ -181,8 +215,11 @@ def fhir_datetime(ts: str | None) -> str | None:
     zone (FHIR requires one with a time), else the date alone; None when unreadable."""
     import re
 
-    m = re.fullmatch(r"(\d{4})(\d{2})?(\d{2})?(?:(\d{2})(\d{2})(\d{2})?(?:\.\d+)?)?"
-                     r"([+-]\d{4})?", (ts or "").strip())
+    m = re.fullmatch(
+        r"(\d{4})(\d{2})?(\d{2})?(?:(\d{2})(\d{2})(\d{2})?(?:\.\d+)?)?"
+        r"([+-]\d{4})?",
+        (ts or "").strip(),
+    )
     if m is None:
         return None
     year, month, day, hh, mm, ss, zone = m.groups()
@@ -192,8 +229,9 @@ def fhir_datetime(ts: str | None) -> str | None:
     return f"{date}T{hh}:{mm}:{ss or '00'}{zone[:3]}:{zone[3:]}"
 
 
-def read_fhir_text(text: str, catalog: Any, where: str = "",
-                   allow_preliminary: bool = False) -> Iterator[Incoming]:
+def read_fhir_text(
+    text: str, catalog: Any, where: str = "", allow_preliminary: bool = False
+) -> Iterator[Incoming]:
     """One :class:`Incoming` per case of a FHIR JSON or JSON Lines text (see module doc)."""
     stripped = text.strip()
     try:
@@ -206,11 +244,16 @@ def read_fhir_text(text: str, catalog: Any, where: str = "",
             try:
                 docs.append(json.loads(line))
             except json.JSONDecodeError as exc:
-                issue = Issue(f"{where}line {n}", "json.invalid",
-                              f"not valid JSON: {exc.msg} at column {exc.colno}")
+                issue = Issue(
+                    f"{where}line {n}", "json.invalid", f"not valid JSON: {exc.msg} at column {exc.colno}"
+                )
                 docs.append(issue)
-    if len(docs) == 1 and isinstance(docs[0], list) and docs[0] and all(
-            isinstance(d, dict) and d.get("resourceType") == "Bundle" for d in docs[0]):
+    if (
+        len(docs) == 1
+        and isinstance(docs[0], list)
+        and docs[0]
+        and all(isinstance(d, dict) and d.get("resourceType") == "Bundle" for d in docs[0])
+    ):
         docs = docs[0]
     for doc in docs:
         yield incoming_from_fhir(doc, catalog, allow_preliminary)
@@ -228,8 +271,7 @@ def incoming_from_fhir(doc: Any, catalog: Any, allow_preliminary: bool = False) 
     return Incoming(case, read.issues, "fhir", refs, read.subject, read.effective)
 
 
-def read_incoming(source: str, fmt: str, catalog: Any,
-                  allow_preliminary: bool = False) -> Iterator[Incoming]:
+def read_incoming(source: str, fmt: str, catalog: Any, allow_preliminary: bool = False) -> Iterator[Incoming]:
     """Cases of an HL7 v2 or FHIR file (``-``: standard input). Raises OSError."""
     import sys
 
@@ -242,25 +284,43 @@ def read_incoming(source: str, fmt: str, catalog: Any,
 
 
 # ============================================================================ writing
-def to_fhir(result: dict[str, Any], incoming: Incoming | None, rulebook: Any,
-            codesystem_url: str | None = None) -> dict[str, Any]:
+def to_fhir(
+    result: dict[str, Any], incoming: Incoming | None, rulebook: Any, codesystem_url: str | None = None
+) -> dict[str, Any]:
     """A FHIR Bundle for one result; reading issues become an OperationOutcome entry."""
     import uuid
 
     from gasrules.integration.fhir import result_to_fhir
 
     inc = incoming or Incoming({})
-    bundle = result_to_fhir(result, inc.refs, rulebook_info=result.get("rulebook") or rulebook,
-                            subject=inc.subject, effective=inc.effective,
-                            **({"codesystem_url": codesystem_url} if codesystem_url else {}))
+    bundle = result_to_fhir(
+        result,
+        inc.refs,
+        rulebook_info=result.get("rulebook") or rulebook,
+        subject=inc.subject,
+        effective=inc.effective,
+        **({"codesystem_url": codesystem_url} if codesystem_url else {}),
+    )
     if inc.issues:
         severity = {"error": "error", "warning": "warning", "notice": "information"}
-        bundle["entry"].append({"fullUrl": f"urn:uuid:{uuid.uuid4()}", "resource": {
-            "resourceType": "OperationOutcome",
-            "issue": [{"severity": severity[i.severity],
-                       "code": "not-supported" if i.code.startswith("code.") else "invalid",
-                       "details": {"text": i.message}, "diagnostics": i.code,
-                       "expression": [i.path]} for i in inc.issues]}})
+        bundle["entry"].append(
+            {
+                "fullUrl": f"urn:uuid:{uuid.uuid4()}",
+                "resource": {
+                    "resourceType": "OperationOutcome",
+                    "issue": [
+                        {
+                            "severity": severity[i.severity],
+                            "code": "not-supported" if i.code.startswith("code.") else "invalid",
+                            "details": {"text": i.message},
+                            "diagnostics": i.code,
+                            "expression": [i.path],
+                        }
+                        for i in inc.issues
+                    ],
+                },
+            }
+        )
     return bundle
 
 
@@ -268,12 +328,23 @@ def hl7_timestamp(now: datetime | None = None) -> str:
     return (now or datetime.now(UTC)).strftime("%Y%m%d%H%M%S")
 
 
-def to_hl7(result: dict[str, Any], incoming: Incoming | None, settings: InterfaceSettings,
-           control_id: str, now: datetime | None = None) -> str:
+def to_hl7(
+    result: dict[str, Any],
+    incoming: Incoming | None,
+    settings: InterfaceSettings,
+    control_id: str,
+    now: datetime | None = None,
+) -> str:
     """A preliminary ORU^R01 for one result (segments joined by CR)."""
     from gasrules.integration.hl7v2 import result_to_oru
 
     inc = incoming or Incoming({})
-    return result_to_oru(result, control_id=control_id, message_time=hl7_timestamp(now),
-                         patient_id=inc.patient_id, placer_order=inc.control_id,
-                         application=settings.application, facility=settings.facility)
+    return result_to_oru(
+        result,
+        control_id=control_id,
+        message_time=hl7_timestamp(now),
+        patient_id=inc.patient_id,
+        placer_order=inc.control_id,
+        application=settings.application,
+        facility=settings.facility,
+    )

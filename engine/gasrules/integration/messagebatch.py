@@ -24,17 +24,25 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
-from gasrules.integration.batch import BatchOptions, BatchSummary, RunHooks, run_batch
 from gasrules.evaluation.evaluator import UNREADABLE
-from gasrules.integration.interfaces import Incoming, InterfaceSettings, input_format, read_incoming, to_fhir, to_hl7
+from gasrules.integration.batch import BatchOptions, BatchSummary, RunHooks, run_batch
+from gasrules.integration.interfaces import (
+    Incoming,
+    InterfaceSettings,
+    input_format,
+    read_incoming,
+    to_fhir,
+    to_hl7,
+)
 
 __all__ = ["message_formats", "run_message_batch"]
 
 MESSAGE_OUT = ("fhir", "hl7")
 
 
-def message_formats(source: str, target: str, in_format: str | None,
-                    out_format: str | None) -> tuple[str | None, str | None]:
+def message_formats(
+    source: str, target: str, in_format: str | None, out_format: str | None
+) -> tuple[str | None, str | None]:
     """(message input format or None, message output format or None) for a batch run."""
     src = None
     if in_format in ("hl7", "fhir"):
@@ -54,35 +62,47 @@ def message_formats(source: str, target: str, in_format: str | None,
     return src, out
 
 
-def run_message_batch(rb: Any, source: str | Path, target: str, options: BatchOptions,
-                      hooks: RunHooks | None, src_fmt: str | None, out_fmt: str | None,
-                      settings: InterfaceSettings) -> BatchSummary:
+def run_message_batch(
+    rb: Any,
+    source: str | Path,
+    target: str,
+    options: BatchOptions,
+    hooks: RunHooks | None,
+    src_fmt: str | None,
+    out_fmt: str | None,
+    settings: InterfaceSettings,
+) -> BatchSummary:
     """One run with HL7 v2 or FHIR on at least one side (see module doc)."""
     hooks = hooks or RunHooks()
     rb = hooks.rulebook if hooks.rulebook is not None else rb
-    if out_fmt is None:     # messages in, a table out: through the tabular run
+    if out_fmt is None:  # messages in, a table out: through the tabular run
         return _messages_to_table(rb, source, target, options, hooks, src_fmt or "hl7")
     summary = BatchSummary(output=str(target), rulebook=dict(rb.identity), notes=hooks.notes)
     t0 = time.perf_counter()
     try:
-        pairs = _message_cases(rb, str(source), src_fmt) if src_fmt else \
-            _table_cases(rb, source, options)
+        pairs = _message_cases(rb, str(source), src_fmt) if src_fmt else _table_cases(rb, source, options)
         with _Output(target, mllp=str(target).lower().endswith(".mllp")) as out:
             for n, (incoming, case, preread) in enumerate(pairs, 1):
                 result = preread if preread is not None else _interpret(rb, case, hooks)
                 unreadable = isinstance(case, dict) and UNREADABLE in case
                 if hooks.observe is not None:
-                    other = _interpret(hooks.candidate, case, RunHooks()) \
-                        if hooks.candidate is not None else None
+                    other = (
+                        _interpret(hooks.candidate, case, RunHooks()) if hooks.candidate is not None else None
+                    )
                     hooks.observe(case, result, other, unreadable)
                 summary.add(result["status"], result.get("disorders") or [], unreadable)
                 if out_fmt == "fhir":
-                    out.write(json.dumps(to_fhir(result, incoming, rb,
-                                                 settings.codesystem_url),
-                                         ensure_ascii=False) + "\n", hl7=False)
+                    out.write(
+                        json.dumps(to_fhir(result, incoming, rb, settings.codesystem_url), ensure_ascii=False)
+                        + "\n",
+                        hl7=False,
+                    )
                 else:
-                    ident = incoming.control_id if incoming and incoming.control_id else \
-                        result.get("case_id") or n
+                    ident = (
+                        incoming.control_id
+                        if incoming and incoming.control_id
+                        else result.get("case_id") or n
+                    )
                     out.write(to_hl7(result, incoming, settings, f"GR-{ident}"), hl7=True)
     finally:
         if hooks.close is not None:
@@ -97,25 +117,27 @@ def _interpret(rb: Any, case: Any, hooks: RunHooks) -> dict[str, Any]:
     return interpret(rb, case, hooks.trace)
 
 
-def _message_cases(rb: Any, source: str, fmt: str
-                   ) -> Iterator[tuple[Incoming | None, Any, dict[str, Any] | None]]:
+def _message_cases(
+    rb: Any, source: str, fmt: str
+) -> Iterator[tuple[Incoming | None, Any, dict[str, Any] | None]]:
     for incoming in read_incoming(source, fmt, rb.inputs):
         yield incoming, incoming.case, None
 
 
-def _table_cases(rb: Any, source: str | Path, options: BatchOptions
-                 ) -> Iterator[tuple[Incoming | None, Any, dict[str, Any] | None]]:
+def _table_cases(
+    rb: Any, source: str | Path, options: BatchOptions
+) -> Iterator[tuple[Incoming | None, Any, dict[str, Any] | None]]:
     from gasrules.tables.readers import analytes_of, interpret_row, open_table
 
-    with open_table(source, analytes_of(rb), mapping=options.mapping,
-                    fmt=options.in_format) as table:
+    with open_table(source, analytes_of(rb), mapping=options.mapping, fmt=options.in_format) as table:
         for row in table:
             preread = interpret_row(rb, row) if row.errors else None
             yield None, row.case, preread
 
 
-def _messages_to_table(rb: Any, source: str | Path, target: str, options: BatchOptions,
-                       hooks: RunHooks, fmt: str) -> BatchSummary:
+def _messages_to_table(
+    rb: Any, source: str | Path, target: str, options: BatchOptions, hooks: RunHooks, fmt: str
+) -> BatchSummary:
     """Messages as JSON Lines cases in a temporary file, then the ordinary tabular run."""
     handle, tmp = tempfile.mkstemp(suffix=".jsonl", prefix="gasrules-messages-")
     try:
@@ -136,7 +158,7 @@ class _Output:
         self._tmp: Path | None = None
         self._f: Any = None
 
-    def __enter__(self) -> "_Output":
+    def __enter__(self) -> _Output:
         if self.target == "-":
             import sys
 

@@ -48,9 +48,17 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from gasrules.integration.standard_codes import Issue
-from gasrules.integration.hl7wire import ERR_INTERNAL, MllpDecoder, RawHeader, ack, decode, encoding_of, frame, raw_header
+from gasrules.integration.hl7wire import (
+    MllpDecoder,
+    RawHeader,
+    ack,
+    decode,
+    encoding_of,
+    frame,
+    raw_header,
+)
 from gasrules.integration.interfaces import InterfaceSettings, incoming_from_hl7, to_hl7
+from gasrules.integration.standard_codes import Issue
 
 __all__ = ["ListenConfig", "Listener", "listen_settings"]
 
@@ -69,10 +77,17 @@ class ListenConfig:
     max_remembered: int = 100_000
 
 
-_KEYS = {"host": ("str", 0, 0), "port": ("int", 0, 65535), "outbox": ("path", 0, 0),
-         "forward": ("hostport", 0, 0), "forward_timeout": ("float", 0.1, 600),
-         "dedupe_minutes": ("float", 0, 10_080), "max_message": ("int", 1024, 1 << 30),
-         "idle_timeout": ("float", 1, 86_400), "max_connections": ("int", 1, 100_000)}
+_KEYS = {
+    "host": ("str", 0, 0),
+    "port": ("int", 0, 65535),
+    "outbox": ("path", 0, 0),
+    "forward": ("hostport", 0, 0),
+    "forward_timeout": ("float", 0.1, 600),
+    "dedupe_minutes": ("float", 0, 10_080),
+    "max_message": ("int", 1024, 1 << 30),
+    "idle_timeout": ("float", 1, 86_400),
+    "max_connections": ("int", 1, 100_000),
+}
 
 
 def parse_hostport(text: str) -> tuple[str, int]:
@@ -88,21 +103,29 @@ def listen_settings(value: Any, doc: Any, base: Path) -> dict[str, Any]:
     from gasrules.governance.settings import SettingsError
 
     if not isinstance(value, dict):
-        raise SettingsError("interfaces.listen", "expected a mapping", ", ".join(_KEYS),
-                            str(doc.locate(("interfaces", "listen"))))
+        raise SettingsError(
+            "interfaces.listen",
+            "expected a mapping",
+            ", ".join(_KEYS),
+            str(doc.locate(("interfaces", "listen"))),
+        )
     out: dict[str, Any] = {}
     for key, raw in value.items():
         where = str(doc.locate(("interfaces", "listen", key)))
         if key not in _KEYS:
-            raise SettingsError(f"interfaces.listen.{key}", "unknown setting", ", ".join(_KEYS),
-                                where)
+            raise SettingsError(f"interfaces.listen.{key}", "unknown setting", ", ".join(_KEYS), where)
         kind, low, high = _KEYS[key]
         name = f"interfaces.listen.{key}"
         if kind in ("int", "float"):
-            if isinstance(raw, bool) or not isinstance(raw, (int, float)) or not \
-                    low <= raw <= high or (kind == "int" and not float(raw).is_integer()):
-                raise SettingsError(name, f"{raw!r} is out of range",
-                                    f"a number from {low:g} to {high:g}", where)
+            if (
+                isinstance(raw, bool)
+                or not isinstance(raw, (int, float))
+                or not low <= raw <= high
+                or (kind == "int" and not float(raw).is_integer())
+            ):
+                raise SettingsError(
+                    name, f"{raw!r} is out of range", f"a number from {low:g} to {high:g}", where
+                )
             out[key] = int(raw) if kind == "int" else float(raw)
         elif not isinstance(raw, str) or not raw.strip():
             raise SettingsError(name, f"{raw!r} is not a non-empty string", "a string", where)
@@ -133,11 +156,15 @@ class _Answer:
 class Listener:
     """The MLLP service: ``await start()``, then ``port``; ``await stop()``."""
 
-    def __init__(self, interpreter: Any, config: ListenConfig, settings: InterfaceSettings,
-                 log: Callable[..., None] | None = None) -> None:
+    def __init__(
+        self,
+        interpreter: Any,
+        config: ListenConfig,
+        settings: InterfaceSettings,
+        log: Callable[..., None] | None = None,
+    ) -> None:
         if config.outbox is None:
-            raise ValueError("an outbox folder is required (interfaces.listen.outbox or "
-                             "--outbox)")
+            raise ValueError("an outbox folder is required (interfaces.listen.outbox or --outbox)")
         self.interpreter, self.config, self.settings = interpreter, config, settings
         self.catalog = interpreter.rulebook.inputs
         self.log = log or _stderr_log
@@ -145,8 +172,8 @@ class Listener:
         self._pending: dict[tuple[str, str, str], asyncio.Future[_Answer]] = {}
         self._server: asyncio.AbstractServer | None = None
         self._sequence = 0
-        self._open = 0           # connections being served
-        self.interpreted = 0     # cases interpreted (for operators and tests)
+        self._open = 0  # connections being served
+        self.interpreted = 0  # cases interpreted (for operators and tests)
 
     @property
     def port(self) -> int:
@@ -155,8 +182,7 @@ class Listener:
 
     async def start(self) -> None:
         self.config.outbox.mkdir(parents=True, exist_ok=True)  # type: ignore[union-attr]
-        self._server = await asyncio.start_server(self._connection, self.config.host,
-                                                  self.config.port)
+        self._server = await asyncio.start_server(self._connection, self.config.host, self.config.port)
 
     async def stop(self) -> None:
         if self._server is not None:
@@ -164,13 +190,13 @@ class Listener:
             await self._server.wait_closed()
 
     # -- connections
-    async def _connection(self, reader: asyncio.StreamReader,
-                          writer: asyncio.StreamWriter) -> None:
+    async def _connection(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
         decoder = MllpDecoder(self.config.max_message)
         peer = writer.get_extra_info("peername")
         if self._open >= self.config.max_connections:
-            self.log(event="refused", peer=str(peer), reason=f"already "
-                     f"{self.config.max_connections} connections")
+            self.log(
+                event="refused", peer=str(peer), reason=f"already {self.config.max_connections} connections"
+            )
             writer.close()
             return
         self._open += 1
@@ -184,7 +210,7 @@ class Listener:
                     break
                 try:
                     frames = decoder.feed(data)
-                except ValueError as exc:      # an oversized frame: answer and hang up
+                except ValueError as exc:  # an oversized frame: answer and hang up
                     self.log(event="refused", peer=str(peer), reason=str(exc))
                     issue = Issue("message", "hl7.too_large", str(exc))
                     writer.write(frame(self._ack("AR", None, [issue]).encode("ascii")))
@@ -205,9 +231,15 @@ class Listener:
         header = raw_header(raw)
         key = (header.raw(3), header.raw(4), header.raw(10)) if header else ("", "", "")
         if header is None or not header.raw(10):
-            issue = Issue("MSH[1]-10", "hl7.no_control_id", "MSH-10 (message control id) is "
-                          "missing; it is needed to acknowledge the message") if header else \
-                Issue("message", "hl7.no_msh", "the message does not start with an MSH segment")
+            issue = (
+                Issue(
+                    "MSH[1]-10",
+                    "hl7.no_control_id",
+                    "MSH-10 (message control id) is missing; it is needed to acknowledge the message",
+                )
+                if header
+                else Issue("message", "hl7.no_msh", "the message does not start with an MSH segment")
+            )
             return _Answer(self._ack("AR", header, [issue]), "AR", False), header
         known = self._remembered(key)
         if known is not None:
@@ -219,27 +251,36 @@ class Listener:
         self._pending[key] = future
         try:
             answer = await self._process(raw, header)
-        except Exception as exc:  # noqa: BLE001 - a bug answers AR; the sender may retry
-            self.log(event="internal_error", control_id=key[2], error=type(exc).__name__,
-                     detail=str(exc)[:200])
-            issue = Issue("message", "hl7.delivery", "internal error while processing the "
-                          "message; it was not filed; send it again")
+        except Exception as exc:
+            self.log(
+                event="internal_error", control_id=key[2], error=type(exc).__name__, detail=str(exc)[:200]
+            )
+            issue = Issue(
+                "message",
+                "hl7.delivery",
+                "internal error while processing the message; it was not filed; send it again",
+            )
             answer = _Answer(self._ack("AR", header, [issue]), "AR", False)
         finally:
             del self._pending[key]
         future.set_result(answer)
         if answer.remember:
             self._remember(key, answer)
-        self.log(event="message", control_id=key[2], ack=answer.code,
-                 ms=round((time.perf_counter() - started) * 1000, 2))
+        self.log(
+            event="message",
+            control_id=key[2],
+            ack=answer.code,
+            ms=round((time.perf_counter() - started) * 1000, 2),
+        )
         return answer, header
 
     async def _process(self, raw: bytes, header: RawHeader) -> _Answer:
         kind = (header.get(9, 1), header.get(9, 2))
         if kind != ("ORU", "R01"):
             shown = "^".join(k for k in kind if k) or "nothing"
-            issue = Issue("MSH[1]-9", "hl7.message_type", f"message type is {shown}; this "
-                          "service accepts ORU^R01")
+            issue = Issue(
+                "MSH[1]-9", "hl7.message_type", f"message type is {shown}; this service accepts ORU^R01"
+            )
             return _Answer(self._ack("AR", header, [issue]), "AR", True)
         text, problem = decode(raw)
         if problem is not None:
@@ -255,12 +296,12 @@ class Listener:
             if self.config.forward is not None:
                 await self._forward(message)
         except (OSError, ForwardError) as exc:
-            issue = Issue("message", "hl7.delivery", f"the result was not delivered ({exc}); "
-                          "send the message again")
+            issue = Issue(
+                "message", "hl7.delivery", f"the result was not delivered ({exc}); send the message again"
+            )
             self.log(event="delivery_failed", control_id=header.raw(10), reason=str(exc))
             return _Answer(self._ack("AR", header, [issue]), "AR", False)
-        self.log(event="filed", control_id=header.raw(10), path=str(path),
-                 status=result["status"])
+        self.log(event="filed", control_id=header.raw(10), path=str(path), status=result["status"])
         return _Answer(self._ack("AA", header, []), "AA", True)
 
     def _file(self, control_id: str, message: str) -> Path:
@@ -298,8 +339,7 @@ class Listener:
                 if frames:
                     break
         except TimeoutError:
-            raise ForwardError(f"no acknowledgement from {host}:{port} within "
-                               f"{timeout:g} s") from None
+            raise ForwardError(f"no acknowledgement from {host}:{port} within {timeout:g} s") from None
         except (OSError, ValueError) as exc:
             raise ForwardError(f"{host}:{port}: {exc}") from None
         finally:
@@ -314,9 +354,15 @@ class Listener:
     def _ack(self, code: str, header: RawHeader | None, errors: list[Issue]) -> str:
         self._sequence += 1
         now = datetime.now(UTC)
-        return ack(code, header, control_id=f"GRACK{now:%Y%m%d%H%M%S}{self._sequence:06d}",
-                   timestamp=now.strftime("%Y%m%d%H%M%S"), application=self.settings.application,
-                   facility=self.settings.facility, errors=errors)
+        return ack(
+            code,
+            header,
+            control_id=f"GRACK{now:%Y%m%d%H%M%S}{self._sequence:06d}",
+            timestamp=now.strftime("%Y%m%d%H%M%S"),
+            application=self.settings.application,
+            facility=self.settings.facility,
+            errors=errors,
+        )
 
     def _remembered(self, key: tuple[str, str, str]) -> _Answer | None:
         entry = self._answered.get(key)
@@ -331,13 +377,16 @@ class Listener:
         now = time.monotonic()
         self._answered[key] = (now + self.config.dedupe_minutes * 60, answer)
         self._answered.move_to_end(key)
-        while self._answered and (len(self._answered) > self.config.max_remembered or
-                                  next(iter(self._answered.values()))[0] < now):
+        while self._answered and (
+            len(self._answered) > self.config.max_remembered or next(iter(self._answered.values()))[0] < now
+        ):
             self._answered.popitem(last=False)
 
 
 def _stderr_log(**fields: Any) -> None:
-    line = json.dumps({"ts": datetime.now(UTC).isoformat(timespec="milliseconds"),
-                       "service": "listen", **fields}, default=str)
+    line = json.dumps(
+        {"ts": datetime.now(UTC).isoformat(timespec="milliseconds"), "service": "listen", **fields},
+        default=str,
+    )
     sys.stderr.write(line + "\n")
     sys.stderr.flush()

@@ -26,9 +26,20 @@ from datetime import date
 from typing import Any, Protocol
 
 __all__ = [
-    "ISSUE_CODES", "PANEL_SPECIMEN", "SAMPLE_DEFINING_INPUTS", "SPECIMEN_BY_HL70487",
-    "SPECIMEN_BY_LOINC", "SPECIMEN_BY_SNOMED", "UCUM_SYSTEM", "UNIT_ALIASES", "CaseBuilder",
-    "InputSpecLike", "Issue", "accepted_units", "completed_years", "loinc_index",
+    "ISSUE_CODES",
+    "PANEL_SPECIMEN",
+    "SAMPLE_DEFINING_INPUTS",
+    "SPECIMEN_BY_HL70487",
+    "SPECIMEN_BY_LOINC",
+    "SPECIMEN_BY_SNOMED",
+    "UCUM_SYSTEM",
+    "UNIT_ALIASES",
+    "CaseBuilder",
+    "InputSpecLike",
+    "Issue",
+    "accepted_units",
+    "completed_years",
+    "loinc_index",
 ]
 
 UCUM_SYSTEM = "http://unitsofmeasure.org"
@@ -109,8 +120,7 @@ class Issue:
             raise ValueError(f"severity must be one of {SEVERITIES}, got {self.severity!r}")
 
     def as_dict(self) -> dict[str, str]:
-        return {"path": self.path, "code": self.code, "message": self.message,
-                "severity": self.severity}
+        return {"path": self.path, "code": self.code, "message": self.message, "severity": self.severity}
 
     def __str__(self) -> str:
         return f"{self.path}: {self.message}"
@@ -134,19 +144,70 @@ Catalog = Mapping[str, InputSpecLike]
 # Codes on Bld (unspecified), Ser/Plas or Urine are absent on purpose: they say nothing.
 _BY_SPECIMEN: dict[str, tuple[str, ...]] = {
     "arterial": (
-        "2744-1", "33254-4", "2019-8", "32771-8", "2703-7", "19255-9", "1960-4", "19230-2",
-        "2026-3", "1925-7", "2708-6", "30313-1", "75928-2", "32717-1", "32713-0", "41650-3",
-        "34581-9", "59470-5", "2518-9", "30242-2", "41651-1", "39481-7", "12961-9",
-        "21232-4", "72927-7",
+        "2744-1",
+        "33254-4",
+        "2019-8",
+        "32771-8",
+        "2703-7",
+        "19255-9",
+        "1960-4",
+        "19230-2",
+        "2026-3",
+        "1925-7",
+        "2708-6",
+        "30313-1",
+        "75928-2",
+        "32717-1",
+        "32713-0",
+        "41650-3",
+        "34581-9",
+        "59470-5",
+        "2518-9",
+        "30242-2",
+        "41651-1",
+        "39481-7",
+        "12961-9",
+        "21232-4",
+        "72927-7",
     ),
     "venous": (
-        "2746-6", "2021-4", "2705-2", "14627-4", "19232-8", "2027-1", "1927-3", "2711-0",
-        "30350-3", "93846-4", "39791-9", "39789-3", "41649-5", "41645-3", "2519-7",
-        "41652-9", "39480-9", "12962-7", "101475-2", "72926-9",
+        "2746-6",
+        "2021-4",
+        "2705-2",
+        "14627-4",
+        "19232-8",
+        "2027-1",
+        "1927-3",
+        "2711-0",
+        "30350-3",
+        "93846-4",
+        "39791-9",
+        "39789-3",
+        "41649-5",
+        "41645-3",
+        "2519-7",
+        "41652-9",
+        "39480-9",
+        "12962-7",
+        "101475-2",
+        "72926-9",
     ),
     "capillary": (
-        "2745-8", "2020-6", "2704-5", "1961-2", "1926-5", "71851-0", "30352-9", "39792-7",
-        "39790-1", "51590-8", "41644-6", "19239-3", "32016-8", "51596-5", "41653-7",
+        "2745-8",
+        "2020-6",
+        "2704-5",
+        "1961-2",
+        "1926-5",
+        "71851-0",
+        "30352-9",
+        "39792-7",
+        "39790-1",
+        "51590-8",
+        "41644-6",
+        "19239-3",
+        "32016-8",
+        "51596-5",
+        "41653-7",
         "14743-9",
     ),
     "mixed_venous": ("19213-8", "19229-4", "19234-4"),
@@ -156,8 +217,11 @@ SPECIMEN_BY_LOINC: dict[str, str] = {
 }
 # Gas panel codes (parents in hasMember / OBR-4), interop.md 1.2 "Gas panels".
 PANEL_SPECIMEN: dict[str, str | None] = {
-    "24336-0": "arterial", "24339-4": "venous", "24337-8": "capillary",
-    "24338-6": None, "24343-6": None,
+    "24336-0": "arterial",
+    "24339-4": "venous",
+    "24337-8": "capillary",
+    "24338-6": None,
+    "24343-6": None,
 }
 # Only the gas itself says which sample was drawn: an arterial gas may come with a venous
 # chemistry. The specimen axis of other inputs' codes is not used for sample_type.
@@ -165,27 +229,49 @@ SAMPLE_DEFINING_INPUTS: tuple[str, ...] = ("ph", "pco2", "po2", "hco3", "base_ex
 
 # Specimen.type / SPM-4 codes. SNOMED CT codes: interop.md 3.1 (verified there).
 SPECIMEN_BY_SNOMED: dict[str, str | None] = {
-    "122552005": "arterial", "122555007": "venous", "122554006": "capillary",
+    "122552005": "arterial",
+    "122555007": "venous",
+    "122554006": "capillary",
     "119297000": None,  # blood specimen, unspecified
 }
 # HL7 table 0487 / 0070 codes: interop.md 3.1 marks these as from memory.
 SPECIMEN_BY_HL70487: dict[str, str | None] = {
-    "BLDA": "arterial", "BLDV": "venous", "BLDC": "capillary", "BLD": None,
+    "BLDA": "arterial",
+    "BLDV": "venous",
+    "BLDC": "capillary",
+    "BLD": None,
 }
 
 # ----------------------------------------------------------------------------- units
 # Common non-UCUM spellings -> UCUM code (interop.md 2.1). Only exact, unambiguous spellings.
 UNIT_ALIASES: dict[str, str] = {
-    "mmHg": "mm[Hg]", "mm Hg": "mm[Hg]", "mmhg": "mm[Hg]",
-    "KPA": "kPa", "kpa": "kPa",
-    "mmol/l": "mmol/L", "mM": "mmol/L",
-    "mEq/L": "meq/L", "mEq/l": "meq/L", "meq/l": "meq/L",
-    "umol/l": "umol/L", "µmol/L": "umol/L", "µmol/l": "umol/L", "micromol/L": "umol/L",
-    "g/dl": "g/dL", "mg/dl": "mg/dL", "g/l": "g/L", "mg/l": "mg/L",
-    "mOsm/kg": "mosm/kg", "mosm/kg H2O": "mosm/kg",
-    "°C": "Cel", "degC": "Cel", "°F": "[degF]", "degF": "[degF]",
+    "mmHg": "mm[Hg]",
+    "mm Hg": "mm[Hg]",
+    "mmhg": "mm[Hg]",
+    "KPA": "kPa",
+    "kpa": "kPa",
+    "mmol/l": "mmol/L",
+    "mM": "mmol/L",
+    "mEq/L": "meq/L",
+    "mEq/l": "meq/L",
+    "meq/l": "meq/L",
+    "umol/l": "umol/L",
+    "µmol/L": "umol/L",
+    "µmol/l": "umol/L",
+    "micromol/L": "umol/L",
+    "g/dl": "g/dL",
+    "mg/dl": "mg/dL",
+    "g/l": "g/L",
+    "mg/l": "mg/L",
+    "mOsm/kg": "mosm/kg",
+    "mosm/kg H2O": "mosm/kg",
+    "°C": "Cel",
+    "degC": "Cel",
+    "°F": "[degF]",
+    "degF": "[degF]",
     "pH": "[pH]",
-    "yr": "a", "years": "a",
+    "yr": "a",
+    "years": "a",
 }
 
 
@@ -200,8 +286,7 @@ def loinc_index(catalog: Catalog) -> dict[str, str]:
     for name, spec in catalog.items():
         for code in spec.loinc:
             if code in index and index[code] != name:
-                raise ValueError(
-                    f"LOINC {code} is declared by two inputs: {index[code]!r} and {name!r}")
+                raise ValueError(f"LOINC {code} is declared by two inputs: {index[code]!r} and {name!r}")
             index[code] = name
     return index
 
@@ -251,8 +336,7 @@ class CaseBuilder:
         self.issues.append(Issue(path, code, message, severity))
 
     # -- status (FHIR words; the HL7 reader maps table 0085 onto them first)
-    def status_allows(self, status: str | None, path: str, name: str,
-                      shown: str | None = None) -> bool:
+    def status_allows(self, status: str | None, path: str, name: str, shown: str | None = None) -> bool:
         """True if a result with this status may be used; reports every other status.
 
         ``status`` is a FHIR Observation.status word; ``shown`` is the status as the message
@@ -263,25 +347,34 @@ class CaseBuilder:
             return True
         if status == "preliminary":
             if self.allow_preliminary:
-                self.issue(path, "status.preliminary_used",
-                           f"preliminary result used for {name}", "warning")
+                self.issue(path, "status.preliminary_used", f"preliminary result used for {name}", "warning")
                 return True
-            self.issue(path, "status.not_final",
-                       f"{name} is {said} and was left out; final, amended or corrected "
-                       "results are used (allow preliminary results to include it)", "warning")
+            self.issue(
+                path,
+                "status.not_final",
+                f"{name} is {said} and was left out; final, amended or corrected "
+                "results are used (allow preliminary results to include it)",
+                "warning",
+            )
             return False
         if status in ("entered-in-error", "cancelled"):
             self.issue(path, "status.skipped", f"{name} is {said} and was skipped", "notice")
             return False
         if status in ("registered", "unknown", None, ""):
             said = said or "missing"
-            self.issue(path, "status.missing",
-                       f"{name}: status {said!r} does not say the result is released; "
-                       "accepted: final, amended, corrected", "warning" if status else "error")
+            self.issue(
+                path,
+                "status.missing",
+                f"{name}: status {said!r} does not say the result is released; "
+                "accepted: final, amended, corrected",
+                "warning" if status else "error",
+            )
             return False
-        self.issue(path, "status.missing",
-                   f"{name}: unknown status {shown or status!r}; "
-                   "accepted: final, amended, corrected")
+        self.issue(
+            path,
+            "status.missing",
+            f"{name}: unknown status {shown or status!r}; accepted: final, amended, corrected",
+        )
         return False
 
     # -- units
@@ -295,8 +388,7 @@ class CaseBuilder:
         shown = ", ".join(accepted)
         if not code:
             if accepted == ["[pH]"]:
-                self.issue(path, "unit.assumed",
-                           f"no unit for {name}; read as [pH], its only unit", "notice")
+                self.issue(path, "unit.assumed", f"no unit for {name}; read as [pH], its only unit", "notice")
                 return "[pH]"
             self.issue(path, "unit.missing", f"no unit for {name}; accepted: {shown}")
             return None
@@ -305,29 +397,31 @@ class CaseBuilder:
             unit = UNIT_ALIASES[unit]
             self.issue(path, "unit.alias", f"unit {code!r} read as UCUM {unit!r}", "notice")
         elif not ucum and unit not in accepted:
-            self.issue(path, "unit.not_ucum",
-                       f"unit {code!r} for {name} is not declared UCUM and is not a known "
-                       f"spelling; accepted: {shown}")
+            self.issue(
+                path,
+                "unit.not_ucum",
+                f"unit {code!r} for {name} is not declared UCUM and is not a known "
+                f"spelling; accepted: {shown}",
+            )
             return None
         if unit not in accepted:
-            self.issue(path, "unit.not_accepted",
-                       f"unit {code!r} is not accepted for {name}; accepted: {shown}")
+            self.issue(
+                path, "unit.not_accepted", f"unit {code!r} is not accepted for {name}; accepted: {shown}"
+            )
             return None
         return unit
 
     # -- values
     def add_number(self, name: str, value: float, unit: str, where: str, source: str) -> None:
         spec = self.catalog[name]
-        entry = _Entry({"value": value, "unit": unit}, where, source,
-                       _canonical(spec, value, unit))
+        entry = _Entry({"value": value, "unit": unit}, where, source, _canonical(spec, value, unit))
         self._entries.setdefault(name, []).append(entry)
 
     def add_value(self, name: str, value: Any, where: str, source: str) -> None:
         """A coded or flag value, already checked by the caller."""
         self._entries.setdefault(name, []).append(_Entry(value, where, source))
 
-    def claim_specimen(self, specimen: str | None, where: str, kind: str,
-                       source: str = "") -> None:
+    def claim_specimen(self, specimen: str | None, where: str, kind: str, source: str = "") -> None:
         """Record what one source says the sample was. ``kind``: loinc | specimen | input."""
         if specimen is not None and specimen != "unknown":
             self._specimen_claims.append((kind, specimen, where, source or where))
@@ -343,14 +437,20 @@ class CaseBuilder:
             if clash:
                 places = ", ".join(e.where for e in entries)
                 values = "; ".join(_show(e.value) for e in entries)
-                self.issue(first.where, "value.conflict",
-                           f"{name} reported {len(entries)} times with different values "
-                           f"({values}) at {places}; left out")
+                self.issue(
+                    first.where,
+                    "value.conflict",
+                    f"{name} reported {len(entries)} times with different values "
+                    f"({values}) at {places}; left out",
+                )
                 continue
             for e in entries[1:]:
-                self.issue(e.where, "value.duplicate",
-                           f"{name} reported again with the same value (first kept: "
-                           f"{first.where})", "notice")
+                self.issue(
+                    e.where,
+                    "value.duplicate",
+                    f"{name} reported again with the same value (first kept: {first.where})",
+                    "notice",
+                )
             case[name] = first.value
             sources[name] = first.source
         claim = self._resolve_specimen()
@@ -366,8 +466,11 @@ class CaseBuilder:
             return None
         if len({c[1] for c in claims}) > 1:
             said = "; ".join(f"{where} says {spec} ({kind})" for kind, spec, where, _ in claims)
-            self.issue(claims[0][2], "specimen.conflict",
-                       f"sources disagree on the sample type: {said}; sample_type left out")
+            self.issue(
+                claims[0][2],
+                "specimen.conflict",
+                f"sources disagree on the sample type: {said}; sample_type left out",
+            )
             return None
         order = {"loinc": 0, "specimen": 1, "input": 2}
         return min(claims, key=lambda c: order.get(c[0], 3))
@@ -393,8 +496,12 @@ def issues_as_dicts(issues: Iterable[Issue]) -> list[dict[str, str]]:
 
 
 SNOMED_SYSTEMS = ("http://snomed.info/sct", "SCT", "SNM", "SNOMED", "SNOMEDCT")
-HL70487_SYSTEMS = ("http://terminology.hl7.org/CodeSystem/v2-0487", "HL70487",
-                   "http://terminology.hl7.org/CodeSystem/v2-0070", "HL70070")
+HL70487_SYSTEMS = (
+    "http://terminology.hl7.org/CodeSystem/v2-0487",
+    "HL70487",
+    "http://terminology.hl7.org/CodeSystem/v2-0070",
+    "HL70070",
+)
 
 
 def specimen_from_code(system: str | None, code: str | None) -> tuple[bool, str | None]:

@@ -14,9 +14,10 @@ import difflib
 import hashlib
 import json
 import os
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any
 
 from gasrules.core.errors import Location, Problem
 from gasrules.rulebook.loader import Document, load_document
@@ -43,8 +44,13 @@ def declared_files(doc: Document) -> list[tuple[Path, Location]]:
     raw = data.get("bibliography")
     names = [raw] if isinstance(raw, str) else list(raw or [])
     base = Path(doc.file).parent
-    return [(Path(os.path.normpath(base / n)), doc.locate(("bibliography",) if isinstance(raw, str) else ("bibliography", i)))
-            for i, n in enumerate(names)]
+    return [
+        (
+            Path(os.path.normpath(base / n)),
+            doc.locate(("bibliography",) if isinstance(raw, str) else ("bibliography", i)),
+        )
+        for i, n in enumerate(names)
+    ]
 
 
 def load_bibliographies(docs: Iterable[Document]) -> tuple[Bibliography, list[Problem]]:
@@ -65,8 +71,14 @@ def load_bibliographies(docs: Iterable[Document]) -> tuple[Bibliography, list[Pr
 def _load_one(path: Path, referrer: Location, bib: Bibliography) -> list[Problem]:
     doc, problems = load_document(path, str(path))
     if doc is None:
-        return [Problem("RB-E050", f"bibliography file cannot be read: {path}", referrer,
-                        "a path to a bibliography YAML file, relative to the rulebook")]
+        return [
+            Problem(
+                "RB-E050",
+                f"bibliography file cannot be read: {path}",
+                referrer,
+                "a path to a bibliography YAML file, relative to the rulebook",
+            )
+        ]
     if problems:
         return problems
     schema = [Problem("RB-E050", p.message, p.location, p.expected) for p in validate_document(doc, SCHEMA)]
@@ -76,8 +88,14 @@ def _load_one(path: Path, referrer: Location, bib: Bibliography) -> list[Problem
     out = []
     for key, entry in doc.data["entries"].items():
         if key in bib.entries:
-            out.append(Problem("RB-E052", f"bibliography key '{key}' is declared twice (first at {bib.where[key]})",
-                               doc.locate(("entries", key)), "one entry per key across a rulebook's bibliographies"))
+            out.append(
+                Problem(
+                    "RB-E052",
+                    f"bibliography key '{key}' is declared twice (first at {bib.where[key]})",
+                    doc.locate(("entries", key)),
+                    "one entry per key across a rulebook's bibliographies",
+                )
+            )
             continue
         bib.entries[key] = entry
         bib.where[key] = doc.locate(("entries", key))
@@ -98,12 +116,20 @@ def keys_of(ref: Any) -> list[str]:
 
 
 def unknown_key(key: str, bib: Bibliography, where: Location, code: str = "RB-E051") -> Problem:
-    return Problem(code, f"unknown bibliography key '{key}'{suggest(key, bib.entries)}", where,
-                   "a key of " + (", ".join(bib.files) or "the rulebook's bibliography (declare one with `bibliography:`)"))
+    return Problem(
+        code,
+        f"unknown bibliography key '{key}'{suggest(key, bib.entries)}",
+        where,
+        "a key of "
+        + (", ".join(bib.files) or "the rulebook's bibliography (declare one with `bibliography:`)"),
+    )
 
 
-def check_rulebook_refs(bib: Bibliography, params: Iterable[tuple[str, dict[str, Any], Location]],
-                        rules: Iterable[tuple[str, list[Any], Location]]) -> tuple[list[Problem], set[str]]:
+def check_rulebook_refs(
+    bib: Bibliography,
+    params: Iterable[tuple[str, dict[str, Any], Location]],
+    rules: Iterable[tuple[str, list[Any], Location]],
+) -> tuple[list[Problem], set[str]]:
     """Unknown keys cited by parameters' `source.ref` and rules' `doc.references`; and the keys used.
 
     ``params``: (name, source, location of the source); ``rules``: (id, references, location)."""

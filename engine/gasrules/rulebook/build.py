@@ -27,14 +27,24 @@ import warnings
 from pathlib import Path
 from typing import Any
 
-from gasrules.core.version import __version__
 from gasrules.core.errors import Problem, RulebookError
 from gasrules.core.model import CompiledRulebook
-from gasrules.rulebook.codegen import link
 from gasrules.core.resources import default_rulebook_path, schema_path
+from gasrules.core.version import __version__
+from gasrules.rulebook.codegen import link
 
-__all__ = ["CacheWarning", "cache_dir", "cache_key", "cache_usable", "check_path", "check_rulebook", "compile_path", "load", "load_rulebook",
-           "package_source_hash"]
+__all__ = [
+    "CacheWarning",
+    "cache_dir",
+    "cache_key",
+    "cache_usable",
+    "check_path",
+    "check_rulebook",
+    "compile_path",
+    "load",
+    "load_rulebook",
+    "package_source_hash",
+]
 
 
 class CacheWarning(UserWarning):
@@ -59,8 +69,11 @@ def package_source_hash() -> str:
     h = hashlib.sha256()
     roots = [(here, "gasrules"), (schema_path("rulebook.schema.json").parent, "schemas")]
     for root, label in roots:
-        for path in sorted(p for p in root.rglob("*") if p.is_file() and "__pycache__" not in p.parts
-                           and p.suffix not in (".pyc", ".pyo")):
+        for path in sorted(
+            p
+            for p in root.rglob("*")
+            if p.is_file() and "__pycache__" not in p.parts and p.suffix not in (".pyc", ".pyo")
+        ):
             h.update(f"{label}/{path.relative_to(root).as_posix()}\0".encode("utf-8", "surrogateescape"))
             h.update(hashlib.sha256(path.read_bytes()).digest())
     return h.hexdigest()
@@ -88,7 +101,7 @@ def _chain_content(path: str | Path, limits: Any) -> list[tuple[str, bytes]] | N
         if not found:
             return None
         out.append((str(real), raw))
-        for name in bibs:           # the bibliography a file cites is part of its identity
+        for name in bibs:  # the bibliography a file cites is part of its identity
             bib = (current.parent / name).resolve()
             out.append((str(bib), bib.read_bytes() if bib.is_file() else b"(missing)"))
         current = current.parent / ext if ext else None
@@ -110,8 +123,11 @@ def _extends_of(raw: bytes, limits: Any) -> tuple[bool, str | None, list[str]]:
         try:
             data = json.loads(note.read_text(encoding="utf-8"))
             value, bibs = data.get("extends"), data.get("bibliography")
-            if (value is None or isinstance(value, str)) and isinstance(bibs, list) \
-                    and all(isinstance(b, str) for b in bibs):
+            if (
+                (value is None or isinstance(value, str))
+                and isinstance(bibs, list)
+                and all(isinstance(b, str) for b in bibs)
+            ):
                 return True, value, bibs
         except (OSError, ValueError, AttributeError):
             pass
@@ -122,7 +138,11 @@ def _extends_of(raw: bytes, limits: Any) -> tuple[bool, str | None, list[str]]:
     ext = data.get("extends")
     ext = ext if isinstance(ext, str) and ext else None
     bib = data.get("bibliography")
-    bibs = [b for b in ([bib] if isinstance(bib, str) else bib if isinstance(bib, list) else []) if isinstance(b, str)]
+    bibs = [
+        b
+        for b in ([bib] if isinstance(bib, str) else bib if isinstance(bib, list) else [])
+        if isinstance(b, str)
+    ]
     if usable:
         try:
             fd, tmp = tempfile.mkstemp(dir=directory, suffix=".tmp")
@@ -138,7 +158,9 @@ def cache_key(path: str | Path, limits: Any = None) -> str | None:
     from gasrules.rulebook.loader import Limits
 
     limits = limits or Limits.from_env()
-    h = hashlib.sha256(__version__.encode() + b"\0" + sys.version.encode() + b"\0")  # marshalled code is per Python
+    h = hashlib.sha256(
+        __version__.encode() + b"\0" + sys.version.encode() + b"\0"
+    )  # marshalled code is per Python
     # locations are shown relative to the working directory that compiled the rulebook
     h.update(os.getcwd().encode("utf-8", "surrogateescape") + b"\0")
     try:
@@ -172,9 +194,12 @@ def cache_usable(directory: Path) -> bool:
         return True
     if str(directory) not in _WARNED:
         _WARNED.add(str(directory))
-        warnings.warn(f"gasrules: compiled-rulebook cache skipped: {directory} {why}; rulebooks are compiled "
-                      "every time (use a directory of your own with mode 0700, e.g. set GASRULES_CACHE_DIR)",
-                      CacheWarning, stacklevel=3)
+        warnings.warn(
+            f"gasrules: compiled-rulebook cache skipped: {directory} {why}; rulebooks are compiled "
+            "every time (use a directory of your own with mode 0700, e.g. set GASRULES_CACHE_DIR)",
+            CacheWarning,
+            stacklevel=3,
+        )
     return False
 
 
@@ -183,8 +208,11 @@ def _entry_safe(target: Path) -> bool:
         st = os.stat(target, follow_symlinks=False)
     except OSError:
         return False
-    return (stat.S_ISREG(st.st_mode) and not (st.st_mode & (stat.S_IWGRP | stat.S_IWOTH))
-            and (not hasattr(os, "getuid") or st.st_uid == os.getuid()))
+    return (
+        stat.S_ISREG(st.st_mode)
+        and not (st.st_mode & (stat.S_IWGRP | stat.S_IWOTH))
+        and (not hasattr(os, "getuid") or st.st_uid == os.getuid())
+    )
 
 
 def compile_path(path: str | Path, limits: Any = None) -> CompiledRulebook:
@@ -221,7 +249,7 @@ def load(path: str | Path, use_cache: bool = True, limits: Any = None) -> Compil
     if target is not None and _entry_safe(target):
         try:
             with open(target, "rb") as fh:
-                compiled = pickle.load(fh)  # noqa: S301 - own directory, keyed by content hash
+                compiled = pickle.load(fh)
             if isinstance(compiled, CompiledRulebook):
                 link(compiled)  # the generated function is not pickled
                 return compiled
@@ -235,7 +263,7 @@ def load(path: str | Path, use_cache: bool = True, limits: Any = None) -> Compil
 
 def _store(target: Path, compiled: CompiledRulebook) -> None:
     try:
-        fd, tmp = tempfile.mkstemp(dir=target.parent, suffix=".tmp")   # mode 0600
+        fd, tmp = tempfile.mkstemp(dir=target.parent, suffix=".tmp")  # mode 0600
         with os.fdopen(fd, "wb") as fh:
             pickle.dump(compiled, fh, protocol=pickle.HIGHEST_PROTOCOL)
         os.replace(tmp, target)
@@ -243,7 +271,9 @@ def _store(target: Path, compiled: CompiledRulebook) -> None:
         pass
 
 
-def load_rulebook(path: str | Path | None = None, *, cache: bool = True, limits: Any = None) -> CompiledRulebook:
+def load_rulebook(
+    path: str | Path | None = None, *, cache: bool = True, limits: Any = None
+) -> CompiledRulebook:
     """Load, validate and compile a rulebook once (the shipped default when ``path`` is None).
     Raises RulebookError listing every problem. ``limits``: a
     :class:`gasrules.rulebook.loader.Limits` (default: from GASRULES_* variables)."""

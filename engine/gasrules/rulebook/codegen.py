@@ -11,10 +11,11 @@ from __future__ import annotations
 import ast
 import marshal
 import re
-from typing import Any, Iterable
+from collections.abc import Iterable
+from typing import Any
 
-from gasrules.rulebook.expressions import CutPoint, Expr, NameInfo, runtime_globals, to_python
 from gasrules.core.model import CompiledRulebook, DerivedSpec, InputSpec, ParamSpec, RuleSpec
+from gasrules.rulebook.expressions import CutPoint, Expr, NameInfo, runtime_globals, to_python
 
 # Outcome codes the generated function writes per rule (the trace names them).
 FIRED, NOT_FIRED, SKIPPED, HALTED, SUSPENDED, ERROR = range(6)
@@ -36,8 +37,9 @@ def _exprs(derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> Iterable[t
             yield r.id, "when", r.when
 
 
-def _name_infos(inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
-                derived: dict[str, DerivedSpec]) -> dict[str, NameInfo]:
+def _name_infos(
+    inputs: dict[str, InputSpec], params: dict[str, ParamSpec], derived: dict[str, DerivedSpec]
+) -> dict[str, NameInfo]:
     infos: dict[str, NameInfo] = {}
     for n, i in inputs.items():
         infos[n] = NameInfo("input", i.kind)
@@ -49,21 +51,27 @@ def _name_infos(inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
     return infos
 
 
-def _rounded_names(inputs: dict[str, InputSpec], derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> set[str]:
+def _rounded_names(
+    inputs: dict[str, InputSpec], derived: dict[str, DerivedSpec], rules: list[RuleSpec]
+) -> set[str]:
     out: set[str] = set()
     for _owner, _field, expr in _exprs(derived, rules):
         for left, _op, right in expr.compares:
             for side in (left, right):
                 for n in ast.walk(side):
-                    if isinstance(n, ast.Name) and (n.id in derived or (n.id in inputs and inputs[n.id].kind == "number")):
+                    if isinstance(n, ast.Name) and (
+                        n.id in derived or (n.id in inputs and inputs[n.id].kind == "number")
+                    ):
                         out.add(n.id)
     return out
 
 
 def _round_src(var: str, precision: int) -> str:
-    s = repr(float(10 ** precision))
-    return (f"((_floor({var} * {s} + 0.5 + 1e-9) / {s} + 0.0) if {var} >= 0 "
-            f"else (-_floor(-{var} * {s} + 0.5 + 1e-9) / {s} + 0.0))")
+    s = repr(float(10**precision))
+    return (
+        f"((_floor({var} * {s} + 0.5 + 1e-9) / {s} + 0.0) if {var} >= 0 "
+        f"else (-_floor(-{var} * {s} + 0.5 + 1e-9) / {s} + 0.0))"
+    )
 
 
 def _available(names: Iterable[str], inputs: dict[str, InputSpec], derived: dict[str, DerivedSpec]) -> str:
@@ -71,9 +79,14 @@ def _available(names: Iterable[str], inputs: dict[str, InputSpec], derived: dict
     return " and ".join(tests) if tests else "True"
 
 
-def generate(plan: list[tuple[str, str]], inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
-             derived: dict[str, DerivedSpec], rules: list[RuleSpec],
-             cutpoints: tuple[CutPoint, ...] = ()) -> tuple[str, tuple[str, ...]]:
+def generate(
+    plan: list[tuple[str, str]],
+    inputs: dict[str, InputSpec],
+    params: dict[str, ParamSpec],
+    derived: dict[str, DerivedSpec],
+    rules: list[RuleSpec],
+    cutpoints: tuple[CutPoint, ...] = (),
+) -> tuple[str, tuple[str, ...]]:
     """Python source of one function ``evaluate(I) -> (values, states, errors, outcomes, codes)``.
 
     ``I`` maps every input name to its canonical value (None when missing). ``values`` and
@@ -112,7 +125,9 @@ def generate(plan: list[tuple[str, str]], inputs: dict[str, InputSpec], params: 
             lines.append(f"            S_{name} = {CALC_ERROR}")
             lines.append(f"            E[{name!r}] = _describe(exc)")
             if name in rounded:
-                lines.append(f"    r_{name} = None if v_{name} is None else {_round_src(f'v_{name}', d.precision)}")
+                lines.append(
+                    f"    r_{name} = None if v_{name} is None else {_round_src(f'v_{name}', d.precision)}"
+                )
         else:
             r = by_rule[name]
             lines.append(f"    # rule {r.id}")
@@ -156,7 +171,9 @@ def generate(plan: list[tuple[str, str]], inputs: dict[str, InputSpec], params: 
             lines += ev.block("not_fired", "            ")
     vals = ", ".join(f"v_{n}" for n in value_names)
     states = ", ".join(f"S_{n}" for n in value_names)
-    lines.append(f"    return ({vals}{',' if len(value_names) == 1 else ''}), ({states}{',' if len(value_names) == 1 else ''}), E, O, F")
+    lines.append(
+        f"    return ({vals}{',' if len(value_names) == 1 else ''}), ({states}{',' if len(value_names) == 1 else ''}), E, O, F"
+    )
     return "\n".join(lines) + "\n", tuple(value_names)
 
 
@@ -164,23 +181,34 @@ class _TraceSource:
     """Source text of one rule's trace event for each outcome (see gasrules.evaluation.trace.TraceEvent).
     Events are dict literals built in the branch that decided the outcome."""
 
-    def __init__(self, r: RuleSpec, inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
-                 derived: dict[str, DerivedSpec], cutpoints: tuple[CutPoint, ...], rounded: set[str],
-                 infos: dict[str, NameInfo]):
+    def __init__(
+        self,
+        r: RuleSpec,
+        inputs: dict[str, InputSpec],
+        params: dict[str, ParamSpec],
+        derived: dict[str, DerivedSpec],
+        cutpoints: tuple[CutPoint, ...],
+        rounded: set[str],
+        infos: dict[str, NameInfo],
+    ):
         self.r = r
         self.record_cond = to_python(r.when.node, infos, record=True) if r.when is not None else ""
         self.head = f'"rule": {r.id!r}, "step": {r.step!r}, "title": {r.title!r}'
         reads = set(r.when.reads) if r.when else set()
         reads |= set(r.needs)
-        self.reads = "{" + ", ".join(f"{n!r}: v_{n}" for n in sorted(reads) if n in inputs or n in derived) + "}"
+        self.reads = (
+            "{" + ", ".join(f"{n!r}: v_{n}" for n in sorted(reads) if n in inputs or n in derived) + "}"
+        )
         prm = []
         for n in sorted(reads):
             p = params.get(n)
             if p is None:
                 continue
             if p.by_input:
-                prm.append(f'{n!r}: {{"value": p_{n}, "unit": {p.unit!r}, "set_by": _SB_{n}.get(v_{p.by_input}, {str(p.set_by)!r}), '
-                           f'"selected_by": {p.by_input + "="!r} + _str(v_{p.by_input})}}')
+                prm.append(
+                    f'{n!r}: {{"value": p_{n}, "unit": {p.unit!r}, "set_by": _SB_{n}.get(v_{p.by_input}, {str(p.set_by)!r}), '
+                    f'"selected_by": {p.by_input + "="!r} + _str(v_{p.by_input})}}'
+                )
             else:
                 # a fresh dict per event: results never share mutable parts
                 value = repr(p.value) if isinstance(p.value, str) else repr(float(p.value))
@@ -202,8 +230,10 @@ class _TraceSource:
                 tv = f"r_{c.threshold}"
             else:
                 tv = f"v_{c.threshold}"
-            comps.append(f"_cmp({c.quantity!r}, v_{c.quantity}, r_{c.quantity}, {c.op!r}, {c.threshold!r}, {tv}, "
-                         f"W.get({c.node}), D.get({c.node}, False))")
+            comps.append(
+                f"_cmp({c.quantity!r}, v_{c.quantity}, r_{c.quantity}, {c.op!r}, {c.threshold!r}, {tv}, "
+                f"W.get({c.node}), D.get({c.node}, False))"
+            )
         self.comparisons = ("[" + ", ".join(comps) + "]") if comps else ""
         self.asserted = repr(sorted(r.asserts)) if r.asserts else ""
 
@@ -215,16 +245,28 @@ class _TraceSource:
         if not self.comparisons:
             return [f"{indent}if T is not None: T.append({self.event(outcome)})"]
         i2, i3 = indent + "    ", indent + "        "
-        return [f"{indent}if T is not None:",
-                f"{i2}W = {{}}", f"{i2}_ov = -1", f"{i2}_fv = False",
-                f"{i2}try:", f"{i3}_bool({self.record_cond})", f"{i2}except _ERR_T:", f"{i3}pass",
-                f"{i2}R = W", f"{i2}D = {{}}",
-                f"{i2}for _k in R:",
-                f"{i3}W = {{}}", f"{i3}_ov = _k", f"{i3}_fv = not R[_k]",
-                f"{i3}try:", f"{i3}    D[_k] = _bool({self.record_cond}) != c",
-                f"{i3}except _ERR_T:", f"{i3}    D[_k] = False",
-                f"{i2}W = R",
-                f"{i2}T.append({self.event(outcome)})"]
+        return [
+            f"{indent}if T is not None:",
+            f"{i2}W = {{}}",
+            f"{i2}_ov = -1",
+            f"{i2}_fv = False",
+            f"{i2}try:",
+            f"{i3}_bool({self.record_cond})",
+            f"{i2}except _ERR_T:",
+            f"{i3}pass",
+            f"{i2}R = W",
+            f"{i2}D = {{}}",
+            f"{i2}for _k in R:",
+            f"{i3}W = {{}}",
+            f"{i3}_ov = _k",
+            f"{i3}_fv = not R[_k]",
+            f"{i3}try:",
+            f"{i3}    D[_k] = _bool({self.record_cond}) != c",
+            f"{i3}except _ERR_T:",
+            f"{i3}    D[_k] = False",
+            f"{i2}W = R",
+            f"{i2}T.append({self.event(outcome)})",
+        ]
 
     def event(self, outcome: str) -> str:
         parts = [self.head, f'"outcome": {outcome!r}']
@@ -246,11 +288,28 @@ class _TraceSource:
         return "{" + ", ".join(parts) + "}"
 
 
-def _cmp(quantity: str, value: Any, compared: Any, op: str, threshold: str, tvalue: Any,
-         holds: bool | None, decisive: bool) -> dict[str, Any]:
+def _cmp(
+    quantity: str,
+    value: Any,
+    compared: Any,
+    op: str,
+    threshold: str,
+    tvalue: Any,
+    holds: bool | None,
+    decisive: bool,
+) -> dict[str, Any]:
     margin = None if compared is None or tvalue is None else round(compared - tvalue, 9)
-    return {"quantity": quantity, "value": value, "compared": compared, "op": op, "threshold": threshold,
-            "threshold_value": tvalue, "margin": margin, "holds": holds, "decisive": decisive}
+    return {
+        "quantity": quantity,
+        "value": value,
+        "compared": compared,
+        "op": op,
+        "threshold": threshold,
+        "threshold_value": tvalue,
+        "margin": margin,
+        "holds": holds,
+        "decisive": decisive,
+    }
 
 
 def link(compiled: CompiledRulebook) -> None:
@@ -270,6 +329,6 @@ def link(compiled: CompiledRulebook) -> None:
     if code is None:
         code = compile(compiled.source, f"<rulebook {compiled.id}@{compiled.version}>", "exec")
         compiled._code = marshal.dumps(code)
-    exec(code, g)  # noqa: S102 - source generated from checked syntax trees; no builtins
+    exec(code, g)
     compiled._function = g["evaluate"]
     compiled._static = None  # the evaluator's per-rulebook tables, rebuilt on first use

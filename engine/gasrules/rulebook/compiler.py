@@ -11,33 +11,58 @@ from __future__ import annotations
 
 import ast
 import heapq
-from typing import Any, Iterable
+from collections.abc import Iterable
+from typing import Any
 
-from gasrules.core.version import __version__
-from gasrules.rulebook.bibliography import Bibliography, check_rulebook_refs, load_bibliographies, with_bibliography
-from gasrules.rulebook.codegen import PLACEHOLDER, _exprs, generate, link
 from gasrules.core.errors import Location, Problem, RulebookError
+from gasrules.core.model import (
+    CompiledRulebook,
+    DerivedSpec,
+    FindingSpec,
+    InputSpec,
+    ParamSpec,
+    RuleSpec,
+    StepSpec,
+    reads_closure,
+)
+from gasrules.core.version import __version__
+from gasrules.rulebook.bibliography import (
+    Bibliography,
+    check_rulebook_refs,
+    load_bibliographies,
+    with_bibliography,
+)
+from gasrules.rulebook.codegen import PLACEHOLDER, _exprs, generate, link
 from gasrules.rulebook.expressions import CutPoint, Expr, compare_nodes, parse
-from gasrules.rulebook.identity import HASH_SCHEME, LIFECYCLE_METADATA, canonical_content, canonical_json, identity_content, identity_hash, resolved_document
-from gasrules.core.model import CompiledRulebook, DerivedSpec, FindingSpec, InputSpec, ParamSpec, RuleSpec, StepSpec, reads_closure
+from gasrules.rulebook.identity import (
+    identity_hash,
+)
 from gasrules.rulebook.overlay import Ref, Resolved
 
-
-DISORDER_CODES = ("respiratory_acidosis", "respiratory_alkalosis", "metabolic_acidosis_high_anion_gap",
-                  "metabolic_acidosis_normal_anion_gap", "metabolic_acidosis", "metabolic_alkalosis")
+DISORDER_CODES = (
+    "respiratory_acidosis",
+    "respiratory_alkalosis",
+    "metabolic_acidosis_high_anion_gap",
+    "metabolic_acidosis_normal_anion_gap",
+    "metabolic_acidosis",
+    "metabolic_alkalosis",
+)
 # Literals that are not clinical numbers (identity, sign, percentages of a whole).
 _HARMLESS_LITERALS = {0.0, 1.0, -1.0}
 
 
 # ----------------------------------------------------------------------------- building specs
 
+
 def build(res: Resolved) -> CompiledRulebook:
     """Check and compile. Raises RulebookError with every problem found (warnings included)."""
     problems: list[Problem] = []
     steps = {n: StepSpec(n, b.get("label", n), bool(b.get("core", False))) for n, (b, _) in res.steps.items()}
     inputs = {n: _input_spec(n, b, ref) for n, (b, ref) in res.inputs.items()}
-    params = {n: _param_spec(n, b, ref, res.param_set_by[n], res.param_by_set_by.get(n, {}))
-              for n, (b, ref) in res.parameters.items()}
+    params = {
+        n: _param_spec(n, b, ref, res.param_set_by[n], res.param_by_set_by.get(n, {}))
+        for n, (b, ref) in res.parameters.items()
+    }
     problems += _check_params(params, inputs)
     derived: dict[str, DerivedSpec] = {}
     broken: set[str] = set()
@@ -60,8 +85,14 @@ def build(res: Resolved) -> CompiledRulebook:
         if spec is None:
             continue
         if spec.id in seen_ids:
-            problems.append(Problem("RB-E030", f"duplicate rule id '{spec.id}' (first at {seen_ids[spec.id]})",
-                                    ref.loc("id"), "a unique, stable rule id"))
+            problems.append(
+                Problem(
+                    "RB-E030",
+                    f"duplicate rule id '{spec.id}' (first at {seen_ids[spec.id]})",
+                    ref.loc("id"),
+                    "a unique, stable rule id",
+                )
+            )
             continue
         seen_ids[spec.id] = spec.location
         rules.append(spec)
@@ -70,9 +101,15 @@ def build(res: Resolved) -> CompiledRulebook:
         if rule_id not in known_ids:
             from gasrules.rulebook.overlay import did_you_mean
 
-            problems.append(Problem("RB-E043", f"suspension names unknown rule '{rule_id}'"
-                                    f"{did_you_mean(rule_id, sorted(i for i in known_ids if i))}", ref.loc("rule"),
-                                    "the id of a rule in this rulebook or its base"))
+            problems.append(
+                Problem(
+                    "RB-E043",
+                    f"suspension names unknown rule '{rule_id}'"
+                    f"{did_you_mean(rule_id, sorted(i for i in known_ids if i))}",
+                    ref.loc("rule"),
+                    "the id of a rule in this rulebook or its base",
+                )
+            )
     presentation = res.presentation
     problems += _check_names(inputs, params, derived, rules, broken)
     problems += _check_rules(rules, steps, inputs, params, derived, presentation, broken)
@@ -89,43 +126,77 @@ def build(res: Resolved) -> CompiledRulebook:
     if any(not p.is_warning for p in problems):
         raise RulebookError(problems)
     display = _display_units(res.display_units)
-    sha = with_bibliography(identity_hash(res), _bibliography(res))   # the cited publications are shown too
+    sha = with_bibliography(identity_hash(res), _bibliography(res))  # the cited publications are shown too
     cutpoints = tuple(_cutpoints(derived, rules, inputs, params))
     source, value_names = generate(plan, inputs, params, derived, rules, cutpoints)
     compiled = CompiledRulebook(
-        metadata=res.metadata, inputs=inputs, parameters=params, derived=derived, rules=rules,
-        steps=steps, presentation=presentation, display_units=display, plan=plan,
-        value_names=value_names, source=source, sha256=sha,
-        files=tuple(d.file for d in res.documents), cutpoints=cutpoints,
-        warnings=tuple(p for p in problems if p.is_warning), engine_version=__version__,
+        metadata=res.metadata,
+        inputs=inputs,
+        parameters=params,
+        derived=derived,
+        rules=rules,
+        steps=steps,
+        presentation=presentation,
+        display_units=display,
+        plan=plan,
+        value_names=value_names,
+        source=source,
+        sha256=sha,
+        files=tuple(d.file for d in res.documents),
+        cutpoints=cutpoints,
+        warnings=tuple(p for p in problems if p.is_warning),
+        engine_version=__version__,
         bibliography=res.bibliography,
-        sha256_v1=identity_hash(res, 1))
+        sha256_v1=identity_hash(res, 1),
+    )
     link(compiled)
     return compiled
 
 
 def _input_spec(name: str, b: dict[str, Any], ref: Ref) -> InputSpec:
     plaus = b.get("plausible") or {}
-    alts = {u: (float(a.get("factor", 1.0)), float(a.get("offset", 0.0))) for u, a in (b.get("alternatives") or {}).items()}
+    alts = {
+        u: (float(a.get("factor", 1.0)), float(a.get("offset", 0.0)))
+        for u, a in (b.get("alternatives") or {}).items()
+    }
     fallback = b.get("fallback") or {}
-    return InputSpec(name=name, label=b.get("label", name), kind=b.get("kind", "number"), unit=b.get("unit", ""),
-                     precision=int(b.get("precision", 0)), plausible_min=plaus.get("min"), plausible_max=plaus.get("max"),
-                     alternatives=alts, loinc=tuple(b.get("loinc") or ()), codes=tuple(b.get("codes") or ()),
-                     default=b.get("default"), location=ref.loc(),
-                     fallback=fallback.get("value"), fallback_marks=fallback.get("marks"),
-                     fallback_location=ref.loc("fallback") if fallback else ref.loc())
+    return InputSpec(
+        name=name,
+        label=b.get("label", name),
+        kind=b.get("kind", "number"),
+        unit=b.get("unit", ""),
+        precision=int(b.get("precision", 0)),
+        plausible_min=plaus.get("min"),
+        plausible_max=plaus.get("max"),
+        alternatives=alts,
+        loinc=tuple(b.get("loinc") or ()),
+        codes=tuple(b.get("codes") or ()),
+        default=b.get("default"),
+        location=ref.loc(),
+        fallback=fallback.get("value"),
+        fallback_marks=fallback.get("marks"),
+        fallback_location=ref.loc("fallback") if fallback else ref.loc(),
+    )
 
 
 def _param_spec(name: str, b: dict[str, Any], ref: Ref, set_by: Ref, by_set_by: dict[str, Ref]) -> ParamSpec:
     bounds = b.get("bounds")
     by = b.get("by") or {}
-    return ParamSpec(name=name, value=_num(b.get("value")), unit=b.get("unit", ""),
-                     bounds=(bounds["min"], bounds["max"]) if bounds else None,
-                     choices=tuple(b["choices"]) if "choices" in b else None,
-                     by_input=by.get("input"), by_values={k: _num(v) for k, v in (by.get("values") or {}).items()},
-                     rationale=b.get("rationale", ""), source=dict(b.get("source") or {}),
-                     label=b.get("label", name), location=ref.loc(), set_by=set_by.loc("value"),
-                     by_set_by={code: r.loc() for code, r in by_set_by.items()})
+    return ParamSpec(
+        name=name,
+        value=_num(b.get("value")),
+        unit=b.get("unit", ""),
+        bounds=(bounds["min"], bounds["max"]) if bounds else None,
+        choices=tuple(b["choices"]) if "choices" in b else None,
+        by_input=by.get("input"),
+        by_values={k: _num(v) for k, v in (by.get("values") or {}).items()},
+        rationale=b.get("rationale", ""),
+        source=dict(b.get("source") or {}),
+        label=b.get("label", name),
+        location=ref.loc(),
+        set_by=set_by.loc("value"),
+        by_set_by={code: r.loc() for code, r in by_set_by.items()},
+    )
 
 
 def _num(value: Any) -> Any:
@@ -140,30 +211,60 @@ def _check_params(params: dict[str, ParamSpec], inputs: dict[str, InputSpec]) ->
     for p in params.values():
         if p.choices is not None:
             if p.value not in p.choices:
-                out.append(Problem("RB-E042", f"'{p.value}' is not a choice of parameter '{p.name}'", p.set_by,
-                                   "one of " + ", ".join(p.choices)))
+                out.append(
+                    Problem(
+                        "RB-E042",
+                        f"'{p.value}' is not a choice of parameter '{p.name}'",
+                        p.set_by,
+                        "one of " + ", ".join(p.choices),
+                    )
+                )
             continue
         if not isinstance(p.value, (int, float)) or isinstance(p.value, bool):
-            out.append(Problem("RB-E010", f"parameter '{p.name}' has no numeric value", p.location,
-                               "value: a number, or choices with a value among them"))
+            out.append(
+                Problem(
+                    "RB-E010",
+                    f"parameter '{p.name}' has no numeric value",
+                    p.location,
+                    "value: a number, or choices with a value among them",
+                )
+            )
             continue
         values = [p.value] + list(p.by_values.values())
         if p.bounds:
             lo, hi = p.bounds
             for v in values:
                 if not lo <= v <= hi:
-                    out.append(Problem("RB-E045", f"parameter '{p.name}' = {v:g} lies outside its own bounds [{lo:g}, {hi:g}]",
-                                       p.set_by, f"a value from {lo:g} to {hi:g}"))
+                    out.append(
+                        Problem(
+                            "RB-E045",
+                            f"parameter '{p.name}' = {v:g} lies outside its own bounds [{lo:g}, {hi:g}]",
+                            p.set_by,
+                            f"a value from {lo:g} to {hi:g}",
+                        )
+                    )
         if p.by_input is not None:
             spec = inputs.get(p.by_input)
             if spec is None or spec.kind != "code":
-                out.append(Problem("RB-E022", f"parameter '{p.name}' is selected by '{p.by_input}', which is not a coded input",
-                                   p.location, "the name of an input with kind: code"))
+                out.append(
+                    Problem(
+                        "RB-E022",
+                        f"parameter '{p.name}' is selected by '{p.by_input}', which is not a coded input",
+                        p.location,
+                        "the name of an input with kind: code",
+                    )
+                )
             else:
                 for key in p.by_values:
                     if key not in spec.codes:
-                        out.append(Problem("RB-E042", f"'{key}' is not a code of input '{p.by_input}'", p.location,
-                                           "one of " + ", ".join(spec.codes)))
+                        out.append(
+                            Problem(
+                                "RB-E042",
+                                f"'{key}' is not a code of input '{p.by_input}'",
+                                p.location,
+                                "one of " + ", ".join(spec.codes),
+                            )
+                        )
     return out
 
 
@@ -175,11 +276,21 @@ def _derived_spec(name: str, b: dict[str, Any], ref: Ref) -> tuple[DerivedSpec |
         probs += more
     if expr is None or probs:
         return None, probs
-    return DerivedSpec(name=name, label=b.get("label", name), expr=expr, when=when, unit=b["unit"],
-                       precision=int(b["precision"]), report=bool(b.get("report", True)), location=ref.loc()), []
+    return DerivedSpec(
+        name=name,
+        label=b.get("label", name),
+        expr=expr,
+        when=when,
+        unit=b["unit"],
+        precision=int(b["precision"]),
+        report=bool(b.get("report", True)),
+        location=ref.loc(),
+    ), []
 
 
-def _rule_spec(b: dict[str, Any], ref: Ref, suspended: dict[str, tuple[str, Ref]]) -> tuple[RuleSpec | None, list[Problem]]:
+def _rule_spec(
+    b: dict[str, Any], ref: Ref, suspended: dict[str, tuple[str, Ref]]
+) -> tuple[RuleSpec | None, list[Problem]]:
     problems: list[Problem] = []
     when = None
     if b.get("when") is not None:
@@ -190,31 +301,66 @@ def _rule_spec(b: dict[str, Any], ref: Ref, suspended: dict[str, tuple[str, Ref]
     reason = b.get("suspended_reason", "")
     if b["id"] in suspended:
         status, reason = "suspended", suspended[b["id"]][0]
-    findings = tuple(FindingSpec(code=f["code"], category=f["category"], severity=f["severity"], text=f["text"],
-                                 headline=f.get("headline", ""), caution=bool(f.get("caution", False)))
-                     for f in b.get("findings") or [])
+    findings = tuple(
+        FindingSpec(
+            code=f["code"],
+            category=f["category"],
+            severity=f["severity"],
+            text=f["text"],
+            headline=f.get("headline", ""),
+            caution=bool(f.get("caution", False)),
+        )
+        for f in b.get("findings") or []
+    )
     needs = frozenset(b.get("needs") or ()) | (when.needs if when else frozenset())
-    return RuleSpec(id=b["id"], status=status, step=b["step"], title=b.get("title", b["id"]), when=when,
-                    needs=needs, stop=bool(b.get("stop", False)), always=bool(b.get("always", False)),
-                    result_status=b.get("result_status"), disorders=tuple(b.get("disorders") or ()),
-                    qualifiers=dict(b.get("qualifiers") or {}), findings=findings, doc=dict(b.get("doc") or {}),
-                    location=ref.loc(), suspended_reason=reason), []
+    return RuleSpec(
+        id=b["id"],
+        status=status,
+        step=b["step"],
+        title=b.get("title", b["id"]),
+        when=when,
+        needs=needs,
+        stop=bool(b.get("stop", False)),
+        always=bool(b.get("always", False)),
+        result_status=b.get("result_status"),
+        disorders=tuple(b.get("disorders") or ()),
+        qualifiers=dict(b.get("qualifiers") or {}),
+        findings=findings,
+        doc=dict(b.get("doc") or {}),
+        location=ref.loc(),
+        suspended_reason=reason,
+    ), []
 
 
-def _clash(inputs: dict[str, Any], params: dict[str, Any], derived: dict[str, Any], res: Resolved,
-           problems: list[Problem]) -> None:
+def _clash(
+    inputs: dict[str, Any],
+    params: dict[str, Any],
+    derived: dict[str, Any],
+    res: Resolved,
+    problems: list[Problem],
+) -> None:
     """One name, one meaning: an input, parameter and derived value may not share a name."""
     owners: dict[str, str] = {}
-    for kind, table, refs in (("input", inputs, res.inputs), ("parameter", params, res.parameters),
-                              ("derived value", derived, res.derived)):
+    for kind, table, refs in (
+        ("input", inputs, res.inputs),
+        ("parameter", params, res.parameters),
+        ("derived value", derived, res.derived),
+    ):
         for name in table:
             if name in owners:
-                problems.append(Problem("RB-E030", f"'{name}' is both a {owners[name]} and a {kind}",
-                                        refs[name][1].loc(), "each name declared once"))
+                problems.append(
+                    Problem(
+                        "RB-E030",
+                        f"'{name}' is both a {owners[name]} and a {kind}",
+                        refs[name][1].loc(),
+                        "each name declared once",
+                    )
+                )
             owners.setdefault(name, kind)
 
 
 # ----------------------------------------------------------------------------- semantic checks
+
 
 def _check_fallbacks(inputs: dict[str, InputSpec], derived: dict[str, DerivedSpec]) -> list[Problem]:
     """An input's `fallback` names a derived value computed without that input (directly or through
@@ -226,41 +372,89 @@ def _check_fallbacks(inputs: dict[str, InputSpec], derived: dict[str, DerivedSpe
         loc = spec.fallback_location
         d = derived.get(spec.fallback)
         if d is None:
-            out.append(Problem("RB-E070", f"fallback of input '{spec.name}' names unknown derived value "
-                               f"'{spec.fallback}'", loc, "the name of a derived value"))
+            out.append(
+                Problem(
+                    "RB-E070",
+                    f"fallback of input '{spec.name}' names unknown derived value '{spec.fallback}'",
+                    loc,
+                    "the name of a derived value",
+                )
+            )
             continue
         if spec.name in reads_closure(spec.fallback, derived):
-            out.append(Problem("RB-E071", f"fallback '{spec.fallback}' of input '{spec.name}' depends on "
-                               f"'{spec.name}' itself", loc, "a derived value computed from other inputs"))
+            out.append(
+                Problem(
+                    "RB-E071",
+                    f"fallback '{spec.fallback}' of input '{spec.name}' depends on '{spec.name}' itself",
+                    loc,
+                    "a derived value computed from other inputs",
+                )
+            )
         if d.unit != spec.unit:
-            out.append(Problem("RB-E072", f"fallback '{spec.fallback}' is in '{d.unit}', input '{spec.name}' "
-                               f"in '{spec.unit}'", loc, f"a derived value in {spec.unit}"))
+            out.append(
+                Problem(
+                    "RB-E072",
+                    f"fallback '{spec.fallback}' is in '{d.unit}', input '{spec.name}' in '{spec.unit}'",
+                    loc,
+                    f"a derived value in {spec.unit}",
+                )
+            )
         marks = inputs.get(spec.fallback_marks or "")
         if marks is None or marks.kind != "flag":
-            out.append(Problem("RB-E073", f"fallback of input '{spec.name}' marks '{spec.fallback_marks}', "
-                               "which is not a flag input", loc, "the name of a flag input (kind: flag)"))
+            out.append(
+                Problem(
+                    "RB-E073",
+                    f"fallback of input '{spec.name}' marks '{spec.fallback_marks}', "
+                    "which is not a flag input",
+                    loc,
+                    "the name of a flag input (kind: flag)",
+                )
+            )
     return out
 
 
-def _check_names(inputs: dict[str, InputSpec], params: dict[str, ParamSpec], derived: dict[str, DerivedSpec],
-                 rules: list[RuleSpec], broken: set[str] = frozenset()) -> list[Problem]:  # type: ignore[assignment]
+def _check_names(
+    inputs: dict[str, InputSpec],
+    params: dict[str, ParamSpec],
+    derived: dict[str, DerivedSpec],
+    rules: list[RuleSpec],
+    broken: set[str] = frozenset(),
+) -> list[Problem]:  # type: ignore[assignment]
     out: list[Problem] = []
     declared = set(inputs) | set(params) | set(derived) | set(broken)
     asserted = {c for r in rules for c in r.asserts}
     for owner, _field, expr in _exprs(derived, rules):
         for name in sorted(expr.reads - declared):
-            out.append(Problem("RB-E022", f"unknown name '{name}' in {owner}", expr.location,
-                               "an input, parameter or derived value declared in the rulebook"))
+            out.append(
+                Problem(
+                    "RB-E022",
+                    f"unknown name '{name}' in {owner}",
+                    expr.location,
+                    "an input, parameter or derived value declared in the rulebook",
+                )
+            )
         for code in sorted(expr.has_codes - asserted):
-            out.append(Problem("RB-E025", f"has(\"{code}\") names a code no rule asserts", expr.location,
-                               "a finding or disorder code asserted by some rule"))
+            out.append(
+                Problem(
+                    "RB-E025",
+                    f'has("{code}") names a code no rule asserts',
+                    expr.location,
+                    "a finding or disorder code asserted by some rule",
+                )
+            )
         out += _check_strings(expr, inputs, params)
         out += _check_types(owner, _field, expr, inputs, params, derived)
     return out
 
 
-def _check_types(owner: str, field: str, expr: Expr, inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
-                 derived: dict[str, DerivedSpec]) -> list[Problem]:
+def _check_types(
+    owner: str,
+    field: str,
+    expr: Expr,
+    inputs: dict[str, InputSpec],
+    params: dict[str, ParamSpec],
+    derived: dict[str, DerivedSpec],
+) -> list[Problem]:
     """Numbers, text (codes, choices) and truth values do not mix: arithmetic takes numbers, a
     derived value's expr gives a number. Run-time TypeErrors are thus refused at load."""
     out: list[Problem] = []
@@ -282,8 +476,10 @@ def _check_types(owner: str, field: str, expr: Expr, inputs: dict[str, InputSpec
         if isinstance(n, ast.BinOp):
             for side in (n.left, n.right):
                 if kind(side) != "num":
-                    fail(f"arithmetic on {kind(side) == 'str' and 'text' or 'a truth value'} ({ast.unparse(side)})",
-                         "numbers on both sides of + - * / **")
+                    fail(
+                        f"arithmetic on {(kind(side) == 'str' and 'text') or 'a truth value'} ({ast.unparse(side)})",
+                        "numbers on both sides of + - * / **",
+                    )
             return "num"
         if isinstance(n, ast.UnaryOp):
             if isinstance(n.op, ast.Not):
@@ -298,7 +494,11 @@ def _check_types(owner: str, field: str, expr: Expr, inputs: dict[str, InputSpec
         if isinstance(n, ast.Compare):
             parts = [kind(n.left)] + [kind(c) for c in n.comparators]
             # text against a non-code is RB-E026 from _check_strings; here only ordering of text
-            if "str" in parts and all(p == "str" for p in parts) and any(not isinstance(op, (ast.Eq, ast.NotEq)) for op in n.ops):
+            if (
+                "str" in parts
+                and all(p == "str" for p in parts)
+                and any(not isinstance(op, (ast.Eq, ast.NotEq)) for op in n.ops)
+            ):
                 fail(f"text ordered with < or > ({ast.unparse(n)})", "== or != for codes")
             return "bool"
         if isinstance(n, ast.IfExp):
@@ -318,8 +518,10 @@ def _check_types(owner: str, field: str, expr: Expr, inputs: dict[str, InputSpec
 
     top = kind(expr.node)
     if field == "expr" and top != "num":
-        fail(f"a derived value must be a number, this expression gives {'text' if top == 'str' else 'a truth value'}",
-             "an arithmetic expression")
+        fail(
+            f"a derived value must be a number, this expression gives {'text' if top == 'str' else 'a truth value'}",
+            "an arithmetic expression",
+        )
     return out
 
 
@@ -335,17 +537,35 @@ def _check_strings(expr: Expr, inputs: dict[str, InputSpec], params: dict[str, P
                 elif target in params and params[target].choices is not None:
                     allowed = params[target].choices
                 if allowed is None:
-                    out.append(Problem("RB-E026", f"'{a.value}' is compared with something that is not a coded input or choice",
-                                       expr.location, "a coded input or a choice parameter on the other side"))
+                    out.append(
+                        Problem(
+                            "RB-E026",
+                            f"'{a.value}' is compared with something that is not a coded input or choice",
+                            expr.location,
+                            "a coded input or a choice parameter on the other side",
+                        )
+                    )
                 elif a.value not in allowed:
-                    out.append(Problem("RB-E042", f"'{a.value}' is not a code of '{target}'", expr.location,
-                                       "one of " + ", ".join(allowed)))
+                    out.append(
+                        Problem(
+                            "RB-E042",
+                            f"'{a.value}' is not a code of '{target}'",
+                            expr.location,
+                            "one of " + ", ".join(allowed),
+                        )
+                    )
     return out
 
 
-def _check_rules(rules: list[RuleSpec], steps: dict[str, StepSpec], inputs: dict[str, InputSpec],
-                 params: dict[str, ParamSpec], derived: dict[str, DerivedSpec], presentation: dict[str, Any],
-                 broken: set[str] = frozenset()) -> list[Problem]:  # type: ignore[assignment]
+def _check_rules(
+    rules: list[RuleSpec],
+    steps: dict[str, StepSpec],
+    inputs: dict[str, InputSpec],
+    params: dict[str, ParamSpec],
+    derived: dict[str, DerivedSpec],
+    presentation: dict[str, Any],
+    broken: set[str] = frozenset(),
+) -> list[Problem]:  # type: ignore[assignment]
     out: list[Problem] = []
     disorders = set(presentation.get("disorder_labels") or DISORDER_CODES)
     qualifiers = set(presentation.get("qualifier_labels") or ())
@@ -353,39 +573,77 @@ def _check_rules(rules: list[RuleSpec], steps: dict[str, StepSpec], inputs: dict
     first_finding: dict[str, tuple[str, str, Location]] = {}
     for r in rules:
         if r.step not in steps:
-            out.append(Problem("RB-E034", f"rule '{r.id}' names undeclared step '{r.step}'", r.location,
-                               "one of " + ", ".join(steps)))
+            out.append(
+                Problem(
+                    "RB-E034",
+                    f"rule '{r.id}' names undeclared step '{r.step}'",
+                    r.location,
+                    "one of " + ", ".join(steps),
+                )
+            )
         when_reads = r.when.reads if r.when else frozenset()
         for name in sorted(r.needs - set(inputs) - set(derived) - set(broken) - when_reads):
             if name not in params:
-                out.append(Problem("RB-E032", f"rule '{r.id}' needs undeclared input '{name}'", r.location,
-                                   "an input or derived value declared in the rulebook"))
+                out.append(
+                    Problem(
+                        "RB-E032",
+                        f"rule '{r.id}' needs undeclared input '{name}'",
+                        r.location,
+                        "an input or derived value declared in the rulebook",
+                    )
+                )
         for code in r.disorders:
             if code not in disorders:
-                out.append(Problem("RB-E035", f"rule '{r.id}' asserts unknown disorder '{code}'", r.location,
-                                   "one of " + ", ".join(sorted(disorders))))
+                out.append(
+                    Problem(
+                        "RB-E035",
+                        f"rule '{r.id}' asserts unknown disorder '{code}'",
+                        r.location,
+                        "one of " + ", ".join(sorted(disorders)),
+                    )
+                )
         for code, qual in r.qualifiers.items():
             if code not in disorders or (qualifiers and qual not in qualifiers):
-                out.append(Problem("RB-E035", f"rule '{r.id}' qualifies '{code}' as '{qual}'", r.location,
-                                   "a disorder code and a qualifier from presentation.qualifier_labels"))
+                out.append(
+                    Problem(
+                        "RB-E035",
+                        f"rule '{r.id}' qualifies '{code}' as '{qual}'",
+                        r.location,
+                        "a disorder code and a qualifier from presentation.qualifier_labels",
+                    )
+                )
         for i, f in enumerate(r.findings):
             for name in PLACEHOLDER.findall(f.text):
                 if name not in names:
-                    out.append(Problem("RB-E033", f"unknown placeholder '{{{name}}}' in finding '{f.code}'",
-                                       r.location, "an input, parameter or derived value name"))
+                    out.append(
+                        Problem(
+                            "RB-E033",
+                            f"unknown placeholder '{{{name}}}' in finding '{f.code}'",
+                            r.location,
+                            "an input, parameter or derived value name",
+                        )
+                    )
             prev = first_finding.get(f.code)
             if prev is None:
                 first_finding[f.code] = (f.category, f.severity, r.location)
             elif prev[:2] != (f.category, f.severity):
-                out.append(Problem("RB-E037", f"finding '{f.code}' is {f.category}/{f.severity} here but "
-                                   f"{prev[0]}/{prev[1]} at {prev[2]}", r.location, "one category and severity per code"))
+                out.append(
+                    Problem(
+                        "RB-E037",
+                        f"finding '{f.code}' is {f.category}/{f.severity} here but "
+                        f"{prev[0]}/{prev[1]} at {prev[2]}",
+                        r.location,
+                        "one category and severity per code",
+                    )
+                )
         if r.result_status is not None and not r.stop:
             pass  # allowed: a status without halting
     return out
 
 
-def _unit_of(name: str, inputs: dict[str, InputSpec], params: dict[str, ParamSpec],
-             derived: dict[str, DerivedSpec]) -> str | None:
+def _unit_of(
+    name: str, inputs: dict[str, InputSpec], params: dict[str, ParamSpec], derived: dict[str, DerivedSpec]
+) -> str | None:
     if name in inputs:
         return inputs[name].unit if inputs[name].kind == "number" else None
     if name in params:
@@ -395,8 +653,12 @@ def _unit_of(name: str, inputs: dict[str, InputSpec], params: dict[str, ParamSpe
     return None
 
 
-def _check_units(inputs: dict[str, InputSpec], params: dict[str, ParamSpec], derived: dict[str, DerivedSpec],
-                 rules: list[RuleSpec]) -> list[Problem]:
+def _check_units(
+    inputs: dict[str, InputSpec],
+    params: dict[str, ParamSpec],
+    derived: dict[str, DerivedSpec],
+    rules: list[RuleSpec],
+) -> list[Problem]:
     """Where both sides of a comparison are plain names with units, the units must agree."""
     out = []
     for owner, _field, expr in _exprs(derived, rules):
@@ -405,12 +667,20 @@ def _check_units(inputs: dict[str, InputSpec], params: dict[str, ParamSpec], der
                 lu = _unit_of(left.id, inputs, params, derived)
                 ru = _unit_of(right.id, inputs, params, derived)
                 if lu and ru and lu != ru:
-                    out.append(Problem("RB-E036", f"{owner} compares {left.id} [{lu}] {op} {right.id} [{ru}]",
-                                       expr.location, f"both sides in {lu}"))
+                    out.append(
+                        Problem(
+                            "RB-E036",
+                            f"{owner} compares {left.id} [{lu}] {op} {right.id} [{ru}]",
+                            expr.location,
+                            f"both sides in {lu}",
+                        )
+                    )
     return out
 
 
-def _warnings(params: dict[str, ParamSpec], derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> list[Problem]:
+def _warnings(
+    params: dict[str, ParamSpec], derived: dict[str, DerivedSpec], rules: list[RuleSpec]
+) -> list[Problem]:
     out = []
     used: set[str] = set()
     for _owner, _field, expr in _exprs(derived, rules):
@@ -421,7 +691,9 @@ def _warnings(params: dict[str, ParamSpec], derived: dict[str, DerivedSpec], rul
     used |= {p.by_input for p in params.values() if p.by_input}
     for p in params.values():
         if p.name not in used:
-            out.append(Problem("RB-W101", f"parameter '{p.name}' is never used", p.location, "remove it or use it"))
+            out.append(
+                Problem("RB-W101", f"parameter '{p.name}' is never used", p.location, "remove it or use it")
+            )
     for d in derived.values():
         if not d.report and d.name not in used:
             out.append(Problem("RB-W103", f"derived value '{d.name}' is never used nor reported", d.location))
@@ -429,14 +701,23 @@ def _warnings(params: dict[str, ParamSpec], derived: dict[str, DerivedSpec], rul
         if r.when:
             for lit in r.when.literals:
                 if lit not in _HARMLESS_LITERALS:
-                    out.append(Problem("RB-W102", f"rule '{r.id}' compares with the literal {lit:g}", r.when.location,
-                                       "a named parameter with unit, bounds and source"))
+                    out.append(
+                        Problem(
+                            "RB-W102",
+                            f"rule '{r.id}' compares with the literal {lit:g}",
+                            r.when.location,
+                            "a named parameter with unit, bounds and source",
+                        )
+                    )
     return out
 
 
 # ----------------------------------------------------------------------------- ordering
 
-def _order(derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> tuple[list[tuple[str, str]], list[Problem]]:
+
+def _order(
+    derived: dict[str, DerivedSpec], rules: list[RuleSpec]
+) -> tuple[list[tuple[str, str]], list[Problem]]:
     """A stable topological order of derived values and rules.
 
     Rules keep their declared order unless a dependency forces otherwise; each derived value
@@ -448,7 +729,9 @@ def _order(derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> tuple[list
             asserted_by.setdefault(code, []).append(r.id)
     nodes: dict[tuple[str, str], set[tuple[str, str]]] = {}
     for d in derived.values():
-        deps = {("derived", n) for n in (d.expr.reads | (d.when.reads if d.when else frozenset())) if n in derived}
+        deps = {
+            ("derived", n) for n in (d.expr.reads | (d.when.reads if d.when else frozenset())) if n in derived
+        }
         for e in (d.expr, d.when):
             if e is not None:
                 deps |= {("rule", rid) for c in e.has_codes for rid in asserted_by.get(c, ())}
@@ -496,12 +779,19 @@ def _order(derived: dict[str, DerivedSpec], rules: list[RuleSpec]) -> tuple[list
         loc = {("derived", d.name): d.location for d in derived.values()}
         loc.update({("rule", r.id): r.location for r in rules})
         first = stuck[0]
-        return plan, [Problem("RB-E031", "cycle among " + ", ".join(f"{k}:{n}" for k, n in stuck[:8]),
-                              loc[first], "derived values and has() dependencies that form no loop")]
+        return plan, [
+            Problem(
+                "RB-E031",
+                "cycle among " + ", ".join(f"{k}:{n}" for k, n in stuck[:8]),
+                loc[first],
+                "derived values and has() dependencies that form no loop",
+            )
+        ]
     return plan, []
 
 
 # ----------------------------------------------------------------------------- display units
+
 
 def _check_display_units(res: Resolved, inputs: dict[str, InputSpec]) -> list[Problem]:
     """Each display unit must be a known unit that some input of that quantity converts to."""
@@ -510,25 +800,50 @@ def _check_display_units(res: Resolved, inputs: dict[str, InputSpec]) -> list[Pr
     problems = []
     for unit, target in res.display_units.items():
         to = target["unit"] if isinstance(target, dict) else str(target)
-        doc = next((d for d in reversed(res.documents) if isinstance(d.data, dict)
-                    and unit in (d.data.get("display_units") or {})), res.documents[-1])
+        doc = next(
+            (
+                d
+                for d in reversed(res.documents)
+                if isinstance(d.data, dict) and unit in (d.data.get("display_units") or {})
+            ),
+            res.documents[-1],
+        )
         where = doc.locate(("display_units", unit))
         canonical = [i for i in inputs.values() if i.unit == unit]
         code = U.normalise(to)
         if not canonical:
-            problems.append(Problem("RB-E048", f"display unit for '{unit}', which is the unit of no input", where,
-                                    "a canonical unit of an input: " + ", ".join(sorted({i.unit for i in inputs.values() if i.unit}))))
+            problems.append(
+                Problem(
+                    "RB-E048",
+                    f"display unit for '{unit}', which is the unit of no input",
+                    where,
+                    "a canonical unit of an input: "
+                    + ", ".join(sorted({i.unit for i in inputs.values() if i.unit})),
+                )
+            )
         elif code is None:
-            problems.append(Problem("RB-E048", f"display unit '{to}' is not a known unit", where,
-                                    "one of " + ", ".join(sorted({a for i in canonical for a in i.alternatives}))))
+            problems.append(
+                Problem(
+                    "RB-E048",
+                    f"display unit '{to}' is not a known unit",
+                    where,
+                    "one of " + ", ".join(sorted({a for i in canonical for a in i.alternatives})),
+                )
+            )
         elif code != unit and not any(code in i.alternatives for i in canonical):
-            problems.append(Problem("RB-E048", f"display unit '{to}' is not a unit of the quantity measured in "
-                                    f"'{unit}'", where,
-                                    "one of " + ", ".join(sorted({a for i in canonical for a in i.alternatives}))))
+            problems.append(
+                Problem(
+                    "RB-E048",
+                    f"display unit '{to}' is not a unit of the quantity measured in '{unit}'",
+                    where,
+                    "one of " + ", ".join(sorted({a for i in canonical for a in i.alternatives})),
+                )
+            )
     return problems
 
 
 # ----------------------------------------------------------------------------- citations
+
 
 def _bibliography(res: Resolved) -> Bibliography:
     """The bibliographies the rulebook chain declares (loaded once per resolved rulebook)."""
@@ -548,11 +863,16 @@ def _source_ref(res: Resolved, name: str, ref: Ref) -> Ref:
 def _check_citations(res: Resolved, params: dict[str, ParamSpec], rules: list[RuleSpec]) -> list[Problem]:
     """Every bibliography key a parameter or rule cites must be declared (RB-E050 to RB-E052)."""
     bib = _bibliography(res)
-    param_refs = [(n, b.get("source") or {}, _source_ref(res, n, ref).loc("source", "ref"))
-                  for n, (b, ref) in res.parameters.items()]
-    rule_refs = [(b.get("id", ""), list((b.get("doc") or {}).get("references") or []), ref.loc("doc", "references"))
-                 for b, ref in res.rules if isinstance(b, dict)]
-    if res.bibliography_problems:       # a bibliography that did not load: its keys cannot be judged
+    param_refs = [
+        (n, b.get("source") or {}, _source_ref(res, n, ref).loc("source", "ref"))
+        for n, (b, ref) in res.parameters.items()
+    ]
+    rule_refs = [
+        (b.get("id", ""), list((b.get("doc") or {}).get("references") or []), ref.loc("doc", "references"))
+        for b, ref in res.rules
+        if isinstance(b, dict)
+    ]
+    if res.bibliography_problems:  # a bibliography that did not load: its keys cannot be judged
         return list(res.bibliography_problems)
     problems, _used = check_rulebook_refs(bib, param_refs, rule_refs)
     return problems
@@ -570,8 +890,13 @@ def _display_units(raw: dict[str, Any]) -> dict[str, tuple[str, int | None]]:
 
 # ----------------------------------------------------------------------------- cut-points
 
-def _cutpoints(derived: dict[str, DerivedSpec], rules: list[RuleSpec], inputs: dict[str, InputSpec],
-               params: dict[str, ParamSpec]) -> Iterable[CutPoint]:
+
+def _cutpoints(
+    derived: dict[str, DerivedSpec],
+    rules: list[RuleSpec],
+    inputs: dict[str, InputSpec],
+    params: dict[str, ParamSpec],
+) -> Iterable[CutPoint]:
     def kind(node: ast.AST) -> tuple[str, str] | None:
         if isinstance(node, ast.Name):
             n = node.id
@@ -582,9 +907,17 @@ def _cutpoints(derived: dict[str, DerivedSpec], rules: list[RuleSpec], inputs: d
             if n in inputs and inputs[n].kind == "number":
                 return ("input", n)
             return None
-        if isinstance(node, ast.Constant) and isinstance(node.value, (int, float)) and not isinstance(node.value, bool):
+        if (
+            isinstance(node, ast.Constant)
+            and isinstance(node.value, (int, float))
+            and not isinstance(node.value, bool)
+        ):
             return ("constant", repr(float(node.value)))
-        if isinstance(node, ast.UnaryOp) and isinstance(node.op, ast.USub) and isinstance(node.operand, ast.Constant):
+        if (
+            isinstance(node, ast.UnaryOp)
+            and isinstance(node.op, ast.USub)
+            and isinstance(node.operand, ast.Constant)
+        ):
             return ("constant", repr(-float(node.operand.value)))
         return None
 
@@ -609,8 +942,17 @@ def _pairs(node: ast.Compare) -> list[tuple[ast.AST, str, ast.AST]]:
 _CMP_TEXT = {ast.Lt: "<", ast.LtE: "<=", ast.Gt: ">", ast.GtE: ">=", ast.Eq: "==", ast.NotEq: "!="}
 
 
-def _cutpoint(owner: str, field: str, expr: Expr, k: int, left: ast.AST, op: str, right: ast.AST,
-              kind: Any, flip: dict[str, str]) -> CutPoint | None:
+def _cutpoint(
+    owner: str,
+    field: str,
+    expr: Expr,
+    k: int,
+    left: ast.AST,
+    op: str,
+    right: ast.AST,
+    kind: Any,
+    flip: dict[str, str],
+) -> CutPoint | None:
     lk, rk = kind(left), kind(right)
     if lk is None or rk is None:
         return None
@@ -619,8 +961,16 @@ def _cutpoint(owner: str, field: str, expr: Expr, k: int, left: ast.AST, op: str
         lk, rk, op = rk, lk, flip[op]
     if lk[0] in ("parameter", "constant"):
         return None
-    return CutPoint(owner=owner, field=field, quantity=lk[1], op=op, threshold=rk[1],
-                    threshold_kind=rk[0], location=expr.location, node=k)
+    return CutPoint(
+        owner=owner,
+        field=field,
+        quantity=lk[1],
+        op=op,
+        threshold=rk[1],
+        threshold_kind=rk[0],
+        location=expr.location,
+        node=k,
+    )
 
 
 def list_cutpoints(compiled: CompiledRulebook) -> list[dict[str, Any]]:
@@ -640,7 +990,17 @@ def list_cutpoints(compiled: CompiledRulebook) -> list[dict[str, Any]]:
                 by = {"input": p.by_input, "values": dict(p.by_values)}
         elif c.threshold_kind == "constant":
             value = float(c.threshold)
-        out.append({"owner": c.owner, "field": c.field, "quantity": c.quantity, "op": c.op,
-                    "threshold": c.threshold, "threshold_kind": c.threshold_kind, "value": value,
-                    "by": by, "location": str(c.location)})
+        out.append(
+            {
+                "owner": c.owner,
+                "field": c.field,
+                "quantity": c.quantity,
+                "op": c.op,
+                "threshold": c.threshold,
+                "threshold_kind": c.threshold_kind,
+                "value": value,
+                "by": by,
+                "location": str(c.location),
+            }
+        )
     return out

@@ -16,7 +16,8 @@ the file and line that set each of them, so an overlay that moves one limit past
 
 from __future__ import annotations
 
-from typing import Any, Iterable
+from collections.abc import Iterable
+from typing import Any
 
 from gasrules.core.errors import Problem
 
@@ -43,9 +44,15 @@ def check_constraints(constraints: list[tuple[dict[str, Any], Any]], params: dic
             continue
         unknown = sorted(n for n in expr.reads if n not in params or params[n].choices is not None)
         if unknown:
-            problems.append(Problem("RB-E022", f"constraint names {', '.join(unknown)}, which "
-                                    f"{'is not a numeric parameter' if len(unknown) == 1 else 'are not numeric parameters'}",
-                                    where, "an expression over numeric parameters only"))
+            problems.append(
+                Problem(
+                    "RB-E022",
+                    f"constraint names {', '.join(unknown)}, which "
+                    f"{'is not a numeric parameter' if len(unknown) == 1 else 'are not numeric parameters'}",
+                    where,
+                    "an expression over numeric parameters only",
+                )
+            )
             continue
         names = sorted(expr.reads)
         for code in _scenarios(names, params):
@@ -59,8 +66,13 @@ def check_constraints(constraints: list[tuple[dict[str, Any], Any]], params: dic
                 continue
             shown = "; ".join(f"{n} = {values[n]:g} set at {params[n].set_by_for(code)}" for n in names)
             scope = f" for {code}" if code is not None else ""
-            problems.append(Problem("RB-E046", f"constraint not met{scope}: {body.get('message', '')} "
-                                    f"({expr.text}{why}; {shown})", where, "parameter values for which "
-                                    f"{expr.text} holds"))
+            problems.append(
+                Problem(
+                    "RB-E046",
+                    f"constraint not met{scope}: {body.get('message', '')} ({expr.text}{why}; {shown})",
+                    where,
+                    f"parameter values for which {expr.text} holds",
+                )
+            )
             break
     return problems

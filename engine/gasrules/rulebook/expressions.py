@@ -19,8 +19,9 @@ from __future__ import annotations
 
 import ast
 import math
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from typing import Any, Callable, Mapping
+from typing import Any
 
 from simpleeval import SimpleEval
 
@@ -40,8 +41,17 @@ FUNCTIONS: dict[str, Callable[..., Any]] = {
     "log10": math.log10,
 }
 SPECIAL = ("known", "has")
-_ARITY = {"abs": (1, 1), "min": (2, 8), "max": (2, 8), "sqrt": (1, 1), "exp": (1, 1),
-          "log": (1, 1), "log10": (1, 1), "known": (1, 1), "has": (1, 1)}
+_ARITY = {
+    "abs": (1, 1),
+    "min": (2, 8),
+    "max": (2, 8),
+    "sqrt": (1, 1),
+    "exp": (1, 1),
+    "log": (1, 1),
+    "log10": (1, 1),
+    "known": (1, 1),
+    "has": (1, 1),
+}
 _BINOPS = {ast.Add: "+", ast.Sub: "-", ast.Mult: "*", ast.Div: "/", ast.Pow: "**"}
 _CMPOPS = {ast.Lt: "<", ast.LtE: "<=", ast.Gt: ">", ast.GtE: ">=", ast.Eq: "==", ast.NotEq: "!="}
 _FLIP = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
@@ -51,14 +61,14 @@ _FLIP = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
 class CutPoint:
     """One numeric comparison in a condition: `quantity op threshold`."""
 
-    owner: str            # rule id or derived name
-    field: str            # 'when' or 'expr'
-    quantity: str         # the name compared
+    owner: str  # rule id or derived name
+    field: str  # 'when' or 'expr'
+    quantity: str  # the name compared
     op: str
-    threshold: str        # a name, or the literal text of a number
-    threshold_kind: str   # parameter | derived | input | constant
+    threshold: str  # a name, or the literal text of a number
+    threshold_kind: str  # parameter | derived | input | constant
     location: Location
-    node: int = -1        # index of its comparison in compare_nodes(expression)
+    node: int = -1  # index of its comparison in compare_nodes(expression)
 
 
 @dataclass
@@ -66,49 +76,95 @@ class Expr:
     text: str
     node: ast.AST
     location: Location
-    reads: frozenset[str] = frozenset()      # every name read (needed or guarded)
-    needs: frozenset[str] = frozenset()      # names that must be available
+    reads: frozenset[str] = frozenset()  # every name read (needed or guarded)
+    needs: frozenset[str] = frozenset()  # names that must be available
     known_names: frozenset[str] = frozenset()
     has_codes: frozenset[str] = frozenset()
-    literals: tuple[float, ...] = ()        # numeric literals outside trivial arithmetic
+    literals: tuple[float, ...] = ()  # numeric literals outside trivial arithmetic
     compares: list[tuple[ast.AST, str, ast.AST]] = field(default_factory=list)
 
 
 def parse(text: str, location: Location) -> tuple[Expr | None, list[Problem]]:
     """Parse and check the shape of one expression (names are checked later, by the compiler)."""
     if len(text) > MAX_LENGTH:
-        return None, [Problem("RB-E024", f"expression is {len(text)} characters long",
-                              location, f"at most {MAX_LENGTH}")]
+        return None, [
+            Problem(
+                "RB-E024", f"expression is {len(text)} characters long", location, f"at most {MAX_LENGTH}"
+            )
+        ]
     if _nesting(text) > MAX_DEPTH:
-        return None, [Problem("RB-E024", "expression is nested too deeply", location,
-                              f"at most {MAX_DEPTH} levels")]
+        return None, [
+            Problem("RB-E024", "expression is nested too deeply", location, f"at most {MAX_DEPTH} levels")
+        ]
     if not text.strip():
-        return None, [Problem("RB-E020", "expression is blank", location,
-                              "an expression such as 'pco2 > pco2_high and ph < ph_low'")]
+        return None, [
+            Problem(
+                "RB-E020",
+                "expression is blank",
+                location,
+                "an expression such as 'pco2 > pco2_high and ph < ph_low'",
+            )
+        ]
     try:
         statements = ast.parse(text.strip()).body
     except SyntaxError as exc:
-        return None, [Problem("RB-E020", f"syntax error in expression {text!r}: {exc.msg}", location,
-                              "an expression such as 'pco2 > pco2_high and ph < ph_low'")]
+        return None, [
+            Problem(
+                "RB-E020",
+                f"syntax error in expression {text!r}: {exc.msg}",
+                location,
+                "an expression such as 'pco2 > pco2_high and ph < ph_low'",
+            )
+        ]
     except (ValueError, RecursionError, MemoryError) as exc:
-        return None, [Problem("RB-E024", f"expression cannot be parsed safely: {type(exc).__name__}", location,
-                              f"at most {MAX_LENGTH} characters and {MAX_DEPTH} levels")]
+        return None, [
+            Problem(
+                "RB-E024",
+                f"expression cannot be parsed safely: {type(exc).__name__}",
+                location,
+                f"at most {MAX_LENGTH} characters and {MAX_DEPTH} levels",
+            )
+        ]
     if len(statements) != 1:
-        return None, [Problem("RB-E021", f"expression holds {len(statements)} statements", location,
-                              "a single expression (no ';' or line breaks between statements)")]
+        return None, [
+            Problem(
+                "RB-E021",
+                f"expression holds {len(statements)} statements",
+                location,
+                "a single expression (no ';' or line breaks between statements)",
+            )
+        ]
     try:
         node = SimpleEval.parse(text)
     except SyntaxError as exc:
-        return None, [Problem("RB-E020", f"syntax error in expression {text!r}: {exc.msg}", location,
-                              "an expression such as 'pco2 > pco2_high and ph < ph_low'")]
+        return None, [
+            Problem(
+                "RB-E020",
+                f"syntax error in expression {text!r}: {exc.msg}",
+                location,
+                "an expression such as 'pco2 > pco2_high and ph < ph_low'",
+            )
+        ]
     except Exception as exc:  # simpleeval's own refusals (InvalidExpression and kin)
-        return None, [Problem("RB-E020", f"expression {text!r} refused by the parser: {exc}", location,
-                              "an expression such as 'pco2 > pco2_high and ph < ph_low'")]
+        return None, [
+            Problem(
+                "RB-E020",
+                f"expression {text!r} refused by the parser: {exc}",
+                location,
+                "an expression such as 'pco2 > pco2_high and ph < ph_low'",
+            )
+        ]
     if isinstance(node, ast.Expr):
         node = node.value
     elif not isinstance(node, ast.expr):
-        return None, [Problem("RB-E021", f"{type(node).__name__.lower()} statements are not allowed",
-                              location, "a single expression")]
+        return None, [
+            Problem(
+                "RB-E021",
+                f"{type(node).__name__.lower()} statements are not allowed",
+                location,
+                "a single expression",
+            )
+        ]
     problems: list[Problem] = []
     checker = _ShapeChecker(location, problems)
     checker.visit(node, 0)
@@ -153,8 +209,11 @@ class _ShapeChecker:
         method = getattr(self, "visit_" + type(node).__name__, None)
         if method is None:
             what = type(node).__name__
-            self.fail("RB-E021", f"'{what}' is not allowed in expressions",
-                      "numbers, names, + - * / **, comparisons, and/or/not, if-else, allowed functions")
+            self.fail(
+                "RB-E021",
+                f"'{what}' is not allowed in expressions",
+                "numbers, names, + - * / **, comparisons, and/or/not, if-else, allowed functions",
+            )
             return
         method(node, depth + 1)
 
@@ -188,11 +247,15 @@ class _ShapeChecker:
             return
         if isinstance(node.op, ast.Pow):
             if any(isinstance(n, ast.BinOp) and isinstance(n.op, ast.Pow) for n in ast.walk(node.right)):
-                self.fail("RB-E024", "a power inside an exponent", "one level of powers, e.g. 10 ** (ph - pk)")
+                self.fail(
+                    "RB-E024", "a power inside an exponent", "one level of powers, e.g. 10 ** (ph - pk)"
+                )
                 return
             exp = _const_number(node.right)
             if exp is not None and abs(exp) > MAX_CONST_POWER:
-                self.fail("RB-E024", f"power {exp:g} is too large", f"an exponent of at most {MAX_CONST_POWER}")
+                self.fail(
+                    "RB-E024", f"power {exp:g} is too large", f"an exponent of at most {MAX_CONST_POWER}"
+                )
                 return
         self.visit(node.left, depth)
         self.visit(node.right, depth)
@@ -250,7 +313,9 @@ class _ShapeChecker:
         if name == "known" and not isinstance(node.args[0], ast.Name):
             self.fail("RB-E021", "known() takes one name", "known(albumin)")
             return
-        if name == "has" and not (isinstance(node.args[0], ast.Constant) and isinstance(node.args[0].value, str)):
+        if name == "has" and not (
+            isinstance(node.args[0], ast.Constant) and isinstance(node.args[0].value, str)
+        ):
             self.fail("RB-E021", "has() takes one quoted code", 'has("metabolic_acidosis_present")')
             return
         for arg in node.args:
@@ -258,7 +323,11 @@ class _ShapeChecker:
 
 
 def _const_number(node: ast.AST) -> float | None:
-    if isinstance(node, ast.Constant) and isinstance(node.value, (int, float)) and not isinstance(node.value, bool):
+    if (
+        isinstance(node, ast.Constant)
+        and isinstance(node.value, (int, float))
+        and not isinstance(node.value, bool)
+    ):
         try:
             return float(node.value)
         except OverflowError:
@@ -327,13 +396,14 @@ def _analyse(node: ast.AST) -> tuple[set[str], set[str], set[str], set[str]]:
 
 # ----------------------------------------------------------------------------- code generation
 
+
 @dataclass(frozen=True)
 class NameInfo:
     """What the code generator needs to know about one name."""
 
-    kind: str                 # input | parameter | derived
-    value_kind: str           # number | code | flag | choice
-    literal: Any = None       # parameters without `by`: the value, baked into the code
+    kind: str  # input | parameter | derived
+    value_kind: str  # number | code | flag | choice
+    literal: Any = None  # parameters without `by`: the value, baked into the code
 
 
 def compare_nodes(root: ast.AST) -> list[ast.Compare]:
@@ -349,7 +419,9 @@ def to_python(node: ast.AST, names: Mapping[str, NameInfo], record: bool = False
     ``(_fv if _ov == k else _rec(W, k, <comparison>))``: its value is recorded in the local dict
     W when it is evaluated, and it can be forced to ``_fv`` by setting ``_ov = k``. The trace
     uses this to tell which comparisons decided a rule's outcome."""
-    return _Gen(names, {id(n): k for k, n in enumerate(compare_nodes(node))} if record else None).expr(node, False)
+    return _Gen(names, {id(n): k for k, n in enumerate(compare_nodes(node))} if record else None).expr(
+        node, False
+    )
 
 
 class _Gen:
@@ -415,9 +487,9 @@ def runtime_globals() -> dict[str, Any]:
     g: dict[str, Any] = {"__builtins__": {}, "_pow": math.pow, "_floor": math.floor}
     for fname, fn in FUNCTIONS.items():
         g["_" + fname] = fn
-    g["_ERR"] = (ArithmeticError, ValueError, TypeError)   # TypeError: a safety net; types are checked at load
+    g["_ERR"] = (ArithmeticError, ValueError, TypeError)  # TypeError: a safety net; types are checked at load
     g.update(_set=set, _float=finite_float, _bool=bool, _describe=describe_error, _rec=_record)
-    g["_ERR_T"] = (ArithmeticError, ValueError, TypeError)   # re-evaluations may meet unguarded None
+    g["_ERR_T"] = (ArithmeticError, ValueError, TypeError)  # re-evaluations may meet unguarded None
     return g
 
 
@@ -459,14 +531,20 @@ def round_at(x: float, scale: float) -> float:
 
 # ----------------------------------------------------------------------------- the oracle
 
+
 class Oracle(SimpleEval):
     """simpleeval's own tree-walking evaluator, with the engine's comparison semantics.
 
     ``values`` holds full values (None when unavailable), ``rounded`` the values at their
     reported precision, ``codes`` the asserted finding/disorder codes."""
 
-    def __init__(self, values: Mapping[str, Any], rounded: Mapping[str, Any], codes: set[str],
-                 forced: Mapping[int, bool] | None = None):
+    def __init__(
+        self,
+        values: Mapping[str, Any],
+        rounded: Mapping[str, Any],
+        codes: set[str],
+        forced: Mapping[int, bool] | None = None,
+    ):
         functions: dict[str, Any] = dict(FUNCTIONS)
         functions["known"] = lambda v: v is not None
         functions["has"] = lambda c: c in codes
@@ -475,7 +553,7 @@ class Oracle(SimpleEval):
         self._rounded = rounded
         self._forced = dict(forced or {})
         self._index: dict[int, int] = {}
-        self.seen: dict[int, bool] = {}    # comparison index -> its value, when evaluated
+        self.seen: dict[int, bool] = {}  # comparison index -> its value, when evaluated
 
     def _eval_compare(self, node: ast.Compare) -> Any:
         k = self._index.get(id(node))

@@ -12,13 +12,21 @@ from __future__ import annotations
 
 import hashlib
 import json
-from typing import TYPE_CHECKING, Any, Iterable
+from collections.abc import Iterable
+from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:  # pragma: no cover
     from gasrules.rulebook.overlay import Resolved
 
-__all__ = ["HASH_SCHEME", "LIFECYCLE_METADATA", "resolved_document", "identity_content", "canonical_content",
-           "canonical_json", "identity_hash"]
+__all__ = [
+    "HASH_SCHEME",
+    "LIFECYCLE_METADATA",
+    "canonical_content",
+    "canonical_json",
+    "identity_content",
+    "identity_hash",
+    "resolved_document",
+]
 
 HASH_SCHEME = 2
 """Identity hash scheme of rulebooks compiled now. 1 (before): inputs, parameters, derived values,
@@ -65,19 +73,23 @@ def canonical_content(res: Resolved) -> dict[str, Any]:
         if r.get("id") in {s for s, _, _ in res.suspensions}:
             r["status"] = "suspended"
         rules.append(r)
-    return {"id": res.metadata["id"], "version": str(res.metadata["version"]),
-            "inputs": {k: b for k, (b, _) in res.inputs.items()},
-            "parameters": {k: b for k, (b, _) in res.parameters.items()},
-            "derived": {k: b for k, (b, _) in res.derived.items()},
-            "rules": rules,
-            "suspensions": [{"rule": s, "reason": why} for s, why, _ in res.suspensions]}
+    return {
+        "id": res.metadata["id"],
+        "version": str(res.metadata["version"]),
+        "inputs": {k: b for k, (b, _) in res.inputs.items()},
+        "parameters": {k: b for k, (b, _) in res.parameters.items()},
+        "derived": {k: b for k, (b, _) in res.derived.items()},
+        "rules": rules,
+        "suspensions": [{"rule": s, "reason": why} for s, why, _ in res.suspensions],
+    }
 
 
 def canonical_json(data: Any) -> bytes:
     """Sorted keys, no insignificant whitespace, and every number as a float, so that 12 and
     12.0 (the same value written two ways) give the same identity."""
-    return json.dumps(_numbers(data), sort_keys=True, separators=(",", ":"), ensure_ascii=False,
-                      default=str).encode("utf-8")
+    return json.dumps(
+        _numbers(data), sort_keys=True, separators=(",", ":"), ensure_ascii=False, default=str
+    ).encode("utf-8")
 
 
 def _numbers(data: Any) -> Any:

@@ -17,9 +17,10 @@ from __future__ import annotations
 import datetime as _dt
 import os
 import stat
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any
 
 import yaml
 
@@ -29,8 +30,8 @@ _Loader = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
 
 PathKey = tuple[Any, ...]
 
-MAX_DEPTH = 100   # rulebooks nest a few levels; anything deeper is not a rulebook
-MAX_INT = 2 ** 63 - 1
+MAX_DEPTH = 100  # rulebooks nest a few levels; anything deeper is not a rulebook
+MAX_INT = 2**63 - 1
 
 
 @dataclass(frozen=True)
@@ -48,7 +49,10 @@ class Limits:
     def from_env(cls, env: Mapping[str, str] | None = None) -> Limits:
         environ = os.environ if env is None else env
         out: dict[str, Any] = {}
-        for var, name in (("GASRULES_YAML_NODE_BUDGET", "yaml_nodes"), ("GASRULES_RULEBOOK_MAX_BYTES", "file_bytes")):
+        for var, name in (
+            ("GASRULES_YAML_NODE_BUDGET", "yaml_nodes"),
+            ("GASRULES_RULEBOOK_MAX_BYTES", "file_bytes"),
+        ):
             raw = (environ.get(var) or "").strip()
             if raw.isdigit() and int(raw) > 0:
                 out[name] = int(raw)
@@ -68,16 +72,28 @@ def file_problem(path: Path, name: str, limits: Limits) -> Problem | None:
     if stat.S_ISDIR(st.st_mode):
         return Problem("RB-E003", "cannot read file: Is a directory", Location(name))
     if not stat.S_ISREG(st.st_mode):
-        return Problem("RB-E005", "is not a regular file (a device, FIFO or socket)", Location(name),
-                       "a regular rulebook file")
+        return Problem(
+            "RB-E005",
+            "is not a regular file (a device, FIFO or socket)",
+            Location(name),
+            "a regular rulebook file",
+        )
     if st.st_size > limits.file_bytes:
-        return Problem("RB-E006", f"is {st.st_size} bytes, more than the limit of {limits.file_bytes}",
-                       Location(name), f"a file of at most {limits.file_bytes} bytes (setting limits.rulebook_bytes)")
+        return Problem(
+            "RB-E006",
+            f"is {st.st_size} bytes, more than the limit of {limits.file_bytes}",
+            Location(name),
+            f"a file of at most {limits.file_bytes} bytes (setting limits.rulebook_bytes)",
+        )
     if limits.roots:
         real = Path(path).resolve()
         if not any(real == root or root in real.parents for root in limits.roots):
-            return Problem("RB-E007", "lies outside the configured rulebook roots", Location(name),
-                           "a file under " + ", ".join(str(r) for r in limits.roots) + " (setting rulebook_roots)")
+            return Problem(
+                "RB-E007",
+                "lies outside the configured rulebook roots",
+                Location(name),
+                "a file under " + ", ".join(str(r) for r in limits.roots) + " (setting rulebook_roots)",
+            )
     return None
 
 
@@ -113,8 +129,9 @@ def render_path(path: PathKey) -> str:
     return out
 
 
-def load_document(path: str | Path, display_name: str | None = None,
-                  limits: Limits | None = None) -> tuple[Document | None, list[Problem]]:
+def load_document(
+    path: str | Path, display_name: str | None = None, limits: Limits | None = None
+) -> tuple[Document | None, list[Problem]]:
     """Read one YAML/JSON file. Returns the document (None when unreadable) and problems."""
     name = display_name or str(path)
     limits = limits or Limits.from_env()
@@ -127,30 +144,46 @@ def load_document(path: str | Path, display_name: str | None = None,
     except OSError as exc:
         return None, [Problem("RB-E003", f"cannot read file: {exc.strerror or exc}", Location(name))]
     if len(raw) > limits.file_bytes:
-        return None, [Problem("RB-E006", f"is more than the limit of {limits.file_bytes} bytes", Location(name),
-                              f"a file of at most {limits.file_bytes} bytes (setting limits.rulebook_bytes)")]
+        return None, [
+            Problem(
+                "RB-E006",
+                f"is more than the limit of {limits.file_bytes} bytes",
+                Location(name),
+                f"a file of at most {limits.file_bytes} bytes (setting limits.rulebook_bytes)",
+            )
+        ]
     return parse_text(raw, name, limits)
 
 
 def _decode(raw: bytes, name: str) -> tuple[str | None, Problem | None]:
     """UTF-8 text, or a problem at the line and column of the first byte that is not UTF-8."""
     if raw.startswith((b"\xff\xfe", b"\xfe\xff")) or (len(raw) > 1 and (raw[0] == 0) != (raw[1] == 0)):
-        return None, Problem("RB-E008", "is UTF-16 (or another encoding with zero bytes), not UTF-8", Location(name, 1, 1),
-                             "a UTF-8 text file")
+        return None, Problem(
+            "RB-E008",
+            "is UTF-16 (or another encoding with zero bytes), not UTF-8",
+            Location(name, 1, 1),
+            "a UTF-8 text file",
+        )
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
-        before = raw[:exc.start]
+        before = raw[: exc.start]
         line = before.count(b"\n") + 1
-        col = len(before[before.rfind(b"\n") + 1:].decode("utf-8", "replace")) + 1
-        return None, Problem("RB-E008", f"byte 0x{raw[exc.start]:02x} is not UTF-8", Location(name, line, col),
-                             "a UTF-8 text file")
+        col = len(before[before.rfind(b"\n") + 1 :].decode("utf-8", "replace")) + 1
+        return None, Problem(
+            "RB-E008",
+            f"byte 0x{raw[exc.start]:02x} is not UTF-8",
+            Location(name, line, col),
+            "a UTF-8 text file",
+        )
     if text.startswith("\ufeff"):
         text = text[1:]
     return text, None
 
 
-def parse_text(raw: bytes | str, name: str, limits: Limits | None = None) -> tuple[Document | None, list[Problem]]:
+def parse_text(
+    raw: bytes | str, name: str, limits: Limits | None = None
+) -> tuple[Document | None, list[Problem]]:
     limits = limits or Limits.from_env()
     if isinstance(raw, bytes):
         text, bad = _decode(raw, name)
@@ -203,24 +236,48 @@ def _measure(root: Any, name: str, limits: Limits) -> list[Problem]:
         if key in sizes:
             continue
         if key in open_:
-            return [Problem("RB-E009", "an alias refers to the node that contains it (a self-referencing alias)",
-                            where(node), "aliases to complete, earlier nodes")]
+            return [
+                Problem(
+                    "RB-E009",
+                    "an alias refers to the node that contains it (a self-referencing alias)",
+                    where(node),
+                    "aliases to complete, earlier nodes",
+                )
+            ]
         if depth > MAX_DEPTH:
-            return [Problem("RB-E009", f"nesting deeper than {MAX_DEPTH} levels", where(node),
-                            f"at most {MAX_DEPTH} levels of nesting")]
+            return [
+                Problem(
+                    "RB-E009",
+                    f"nesting deeper than {MAX_DEPTH} levels",
+                    where(node),
+                    f"at most {MAX_DEPTH} levels of nesting",
+                )
+            ]
         open_.add(key)
         stack.append((node, depth, True))
         for child in _children(node):
             if id(child) in open_:
-                return [Problem("RB-E009", "an alias refers to the node that contains it (a self-referencing alias)",
-                                where(child), "aliases to complete, earlier nodes")]
+                return [
+                    Problem(
+                        "RB-E009",
+                        "an alias refers to the node that contains it (a self-referencing alias)",
+                        where(child),
+                        "aliases to complete, earlier nodes",
+                    )
+                ]
             if id(child) not in sizes:
                 stack.append((child, depth + 1, False))
     total = sizes.get(id(root), 0)
     if total > limits.yaml_nodes:
-        return [Problem("RB-E009", f"expands to more than {limits.yaml_nodes} YAML nodes once aliases are "
-                        "followed (an alias bomb?)", where(root),
-                        f"at most {limits.yaml_nodes} nodes (setting limits.yaml_nodes)")]
+        return [
+            Problem(
+                "RB-E009",
+                f"expands to more than {limits.yaml_nodes} YAML nodes once aliases are "
+                "followed (an alias bomb?)",
+                where(root),
+                f"at most {limits.yaml_nodes} nodes (setting limits.yaml_nodes)",
+            )
+        ]
     return []
 
 
@@ -243,13 +300,19 @@ def _construct(loader: Any, node: Any, path: PathKey, doc: Document, problems: l
                 key = str(key)
             if key in out:
                 first = doc.positions.get(path + (key,), (0, 0))
-                problems.append(Problem(
-                    "RB-E002",
-                    f"duplicate key '{key}' (first at line {first[0]})",
-                    Location(doc.file, key_node.start_mark.line + 1, key_node.start_mark.column + 1,
-                             render_path(path + (key,))),
-                    "each key once per mapping",
-                ))
+                problems.append(
+                    Problem(
+                        "RB-E002",
+                        f"duplicate key '{key}' (first at line {first[0]})",
+                        Location(
+                            doc.file,
+                            key_node.start_mark.line + 1,
+                            key_node.start_mark.column + 1,
+                            render_path(path + (key,)),
+                        ),
+                        "each key once per mapping",
+                    )
+                )
                 continue
             out[key] = _construct(loader, value_node, path + (key,), doc, problems)
         return out
@@ -257,18 +320,28 @@ def _construct(loader: Any, node: Any, path: PathKey, doc: Document, problems: l
         return [_construct(loader, child, path + (i,), doc, problems) for i, child in enumerate(node.value)]
     try:
         value = loader.construct_object(node, deep=True)
-    except ValueError as exc:   # e.g. an impossible date 2026-13-45 (the resolver took it for one)
-        problems.append(Problem("RB-E001", f"invalid value {node.value!r}: {exc}",
-                                Location(doc.file, node.start_mark.line + 1, node.start_mark.column + 1,
-                                         render_path(path)), "a real date (YYYY-MM-DD) or a quoted string"))
+    except ValueError as exc:  # e.g. an impossible date 2026-13-45 (the resolver took it for one)
+        problems.append(
+            Problem(
+                "RB-E001",
+                f"invalid value {node.value!r}: {exc}",
+                Location(doc.file, node.start_mark.line + 1, node.start_mark.column + 1, render_path(path)),
+                "a real date (YYYY-MM-DD) or a quoted string",
+            )
+        )
         return None
     if isinstance(value, (_dt.date, _dt.datetime)):
         return value.isoformat()
-    if isinstance(value, float) and (value != value or value in (float("inf"), float("-inf"))) or \
-            (isinstance(value, int) and not isinstance(value, bool) and abs(value) > MAX_INT):
-        problems.append(Problem("RB-E011", f"number {node.value[:40]!r} cannot be used (NaN, infinity or an integer "
-                                "too large)", Location(doc.file, node.start_mark.line + 1, node.start_mark.column + 1,
-                                                       render_path(path)),
-                                f"a finite number; integers within \u00b1{MAX_INT}"))
+    if (isinstance(value, float) and (value != value or value in (float("inf"), float("-inf")))) or (
+        isinstance(value, int) and not isinstance(value, bool) and abs(value) > MAX_INT
+    ):
+        problems.append(
+            Problem(
+                "RB-E011",
+                f"number {node.value[:40]!r} cannot be used (NaN, infinity or an integer too large)",
+                Location(doc.file, node.start_mark.line + 1, node.start_mark.column + 1, render_path(path)),
+                f"a finite number; integers within \u00b1{MAX_INT}",
+            )
+        )
         return None
     return value

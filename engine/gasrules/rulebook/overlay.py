@@ -35,8 +35,10 @@ class Resolved:
     metadata_ref: Ref
     inputs: dict[str, tuple[dict[str, Any], Ref]] = field(default_factory=dict)
     parameters: dict[str, tuple[dict[str, Any], Ref]] = field(default_factory=dict)
-    param_set_by: dict[str, Ref] = field(default_factory=dict)         # where `value` was set
-    param_by_set_by: dict[str, dict[str, Ref]] = field(default_factory=dict)  # code -> where by.values[code] was set
+    param_set_by: dict[str, Ref] = field(default_factory=dict)  # where `value` was set
+    param_by_set_by: dict[str, dict[str, Ref]] = field(
+        default_factory=dict
+    )  # code -> where by.values[code] was set
     derived: dict[str, tuple[dict[str, Any], Ref]] = field(default_factory=dict)
     rules: list[tuple[dict[str, Any], Ref]] = field(default_factory=list)
     steps: dict[str, tuple[dict[str, Any], Ref]] = field(default_factory=dict)
@@ -46,7 +48,7 @@ class Resolved:
     constraints: list[tuple[dict[str, Any], Ref]] = field(default_factory=list)
     documents: list[Document] = field(default_factory=list)
     base_ids: list[str] = field(default_factory=list)
-    bibliography: Any = None            # gasrules.rulebook.bibliography.Bibliography, loaded by the compiler
+    bibliography: Any = None  # gasrules.rulebook.bibliography.Bibliography, loaded by the compiler
     bibliography_problems: list[Problem] = field(default_factory=list)
 
 
@@ -65,20 +67,41 @@ def load_chain(path: str | Path, limits: Limits | None = None) -> tuple[list[Doc
     while current is not None:
         real = current.resolve()
         if real in seen:
-            problems.append(Problem("RB-E004", f"extends cycle back to {current}", referrer or Location(str(current)),
-                                    "a chain of overlays ending in a base rulebook"))
+            problems.append(
+                Problem(
+                    "RB-E004",
+                    f"extends cycle back to {current}",
+                    referrer or Location(str(current)),
+                    "a chain of overlays ending in a base rulebook",
+                )
+            )
             break
         seen.add(real)
         doc, probs = load_document(current, _display(current), limits)
         if doc is None and referrer is not None and probs and probs[0].code == "RB-E003":
-            problems.append(Problem("RB-E004", f"extends names a file that cannot be read: {current}", referrer,
-                                    "a path relative to the overlay file"))
+            problems.append(
+                Problem(
+                    "RB-E004",
+                    f"extends names a file that cannot be read: {current}",
+                    referrer,
+                    "a path relative to the overlay file",
+                )
+            )
         elif referrer is not None and (probs or doc is None or not _looks_like_rulebook(doc.data)):
             why = probs[0] if probs else None
-            reason = (f"{why.code} {why.message}" + (f" at line {why.location.line}" if why.location.line else "")
-                      if why else "it is not a rulebook (no format/metadata mapping)")
-            problems.append(Problem("RB-E004", f"extends names {current}, which cannot be used: {reason}", referrer,
-                                    "a path relative to the overlay file, to a regular rulebook file"))
+            reason = (
+                f"{why.code} {why.message}" + (f" at line {why.location.line}" if why.location.line else "")
+                if why
+                else "it is not a rulebook (no format/metadata mapping)"
+            )
+            problems.append(
+                Problem(
+                    "RB-E004",
+                    f"extends names {current}, which cannot be used: {reason}",
+                    referrer,
+                    "a path relative to the overlay file, to a regular rulebook file",
+                )
+            )
             break
         problems.extend(probs)
         if doc is None or probs:
@@ -87,8 +110,11 @@ def load_chain(path: str | Path, limits: Limits | None = None) -> tuple[list[Doc
         problems.extend(schema_problems)
         docs.append(doc)
         if schema_problems and isinstance(doc.data, dict) and isinstance(doc.data.get("extends"), str):
-            problems.extend(_partial_unknown_entries(doc, schema_problems, current.parent / doc.data["extends"],
-                                                     limits, seen))
+            problems.extend(
+                _partial_unknown_entries(
+                    doc, schema_problems, current.parent / doc.data["extends"], limits, seen
+                )
+            )
         if schema_problems or not isinstance(doc.data, dict):
             break
         ext = doc.data.get("extends")
@@ -101,8 +127,9 @@ def load_chain(path: str | Path, limits: Limits | None = None) -> tuple[list[Doc
     return docs, problems
 
 
-def _partial_unknown_entries(doc: Document, schema_problems: list[Problem], base: Path, limits: Limits,
-                             seen: set[Path]) -> list[Problem]:
+def _partial_unknown_entries(
+    doc: Document, schema_problems: list[Problem], base: Path, limits: Limits, seen: set[Path]
+) -> list[Problem]:
     """An overlay's input or rule that is not a full definition (the schema says what it lacks)
     and whose name the base does not have: most likely a misspelt override. Say so, with the
     closest base name."""
@@ -119,22 +146,38 @@ def _partial_unknown_entries(doc: Document, schema_problems: list[Problem], base
         return any(b == prefix or b.startswith(prefix + ".") or b.startswith(prefix + "[") for b in broken)
 
     out = []
-    for name in (doc.data.get("inputs") or {}):
+    for name in doc.data.get("inputs") or {}:
         if name not in inputs and flagged(f"inputs.{name}"):
-            out.append(Problem("RB-E047", f"overlay overrides input '{name}', which the base does not declare"
-                               f"{did_you_mean(name, sorted(inputs))}", doc.locate(("inputs", name)),
-                               "the name of a base input (inputs cannot be overridden), or a full definition"))
+            out.append(
+                Problem(
+                    "RB-E047",
+                    f"overlay overrides input '{name}', which the base does not declare"
+                    f"{did_you_mean(name, sorted(inputs))}",
+                    doc.locate(("inputs", name)),
+                    "the name of a base input (inputs cannot be overridden), or a full definition",
+                )
+            )
     for i, rule in enumerate(doc.data.get("rules") or []):
         rid = rule.get("id") if isinstance(rule, dict) else None
         if isinstance(rid, str) and rid not in rules and flagged(f"rules[{i}]"):
-            out.append(Problem("RB-E047", f"overlay rule '{rid}' is not a full definition and the base has no rule "
-                               f"of that id{did_you_mean(rid, sorted(rules))}", doc.locate(("rules", i, "id")),
-                               "a full rule (status, step, findings), or suspend the base rule"))
+            out.append(
+                Problem(
+                    "RB-E047",
+                    f"overlay rule '{rid}' is not a full definition and the base has no rule "
+                    f"of that id{did_you_mean(rid, sorted(rules))}",
+                    doc.locate(("rules", i, "id")),
+                    "a full rule (status, step, findings), or suspend the base rule",
+                )
+            )
     return out
 
 
 def _looks_like_rulebook(data: Any) -> bool:
-    return isinstance(data, dict) and isinstance(data.get("format"), str) and isinstance(data.get("metadata"), dict)
+    return (
+        isinstance(data, dict)
+        and isinstance(data.get("format"), str)
+        and isinstance(data.get("metadata"), dict)
+    )
 
 
 def _display(path: Path) -> str:
@@ -164,8 +207,10 @@ def _take_base(res: Resolved, doc: Document) -> None:
             target[name] = (copy.deepcopy(body), Ref(doc, (section, name)))
     for name, (body, _ref) in res.parameters.items():
         res.param_set_by[name] = Ref(doc, ("parameters", name))
-        for code in ((body.get("by") or {}).get("values") or {}):
-            res.param_by_set_by.setdefault(name, {})[code] = Ref(doc, ("parameters", name, "by", "values", code))
+        for code in (body.get("by") or {}).get("values") or {}:
+            res.param_by_set_by.setdefault(name, {})[code] = Ref(
+                doc, ("parameters", name, "by", "values", code)
+            )
     for i, rule in enumerate(data.get("rules") or []):
         res.rules.append((copy.deepcopy(rule), Ref(doc, ("rules", i))))
     res.presentation = copy.deepcopy(data.get("presentation") or {})
@@ -189,30 +234,50 @@ def _apply_overlay(res: Resolved, doc: Document) -> list[Problem]:
         target = getattr(res, section)
         for name, body in (data.get(section) or {}).items():
             if name in target:
-                problems.append(Problem("RB-E044", f"overlay redefines base {section[:-1] if section != 'derived' else 'derived value'} '{name}'",
-                                        doc.locate((section, name)), "a new name; only parameters can be overridden"))
+                problems.append(
+                    Problem(
+                        "RB-E044",
+                        f"overlay redefines base {section[:-1] if section != 'derived' else 'derived value'} '{name}'",
+                        doc.locate((section, name)),
+                        "a new name; only parameters can be overridden",
+                    )
+                )
                 continue
             target[name] = (copy.deepcopy(body), Ref(doc, (section, name)))
     for name, body in (data.get("parameters") or {}).items():
         ref = Ref(doc, ("parameters", name))
         if name not in res.parameters and not _full_parameter(body):
-            problems.append(Problem("RB-E047", f"overlay overrides parameter '{name}', which the base does not "
-                                    f"declare{did_you_mean(name, res.parameters)}", ref.loc(),
-                                    "the name of a base parameter, or a full definition (unit and bounds or "
-                                    "choices) to add a new one"))
+            problems.append(
+                Problem(
+                    "RB-E047",
+                    f"overlay overrides parameter '{name}', which the base does not "
+                    f"declare{did_you_mean(name, res.parameters)}",
+                    ref.loc(),
+                    "the name of a base parameter, or a full definition (unit and bounds or "
+                    "choices) to add a new one",
+                )
+            )
             continue
         if name not in res.parameters:
             res.parameters[name] = (copy.deepcopy(body), ref)
             res.param_set_by[name] = ref
-            for code in ((body.get("by") or {}).get("values") or {}):
-                res.param_by_set_by.setdefault(name, {})[code] = Ref(doc, ("parameters", name, "by", "values", code))
+            for code in (body.get("by") or {}).get("values") or {}:
+                res.param_by_set_by.setdefault(name, {})[code] = Ref(
+                    doc, ("parameters", name, "by", "values", code)
+                )
             continue
         problems.extend(_override(res, name, body, ref))
     base_ids = {r.get("id") for r, _ in res.rules}
     for i, rule in enumerate(data.get("rules") or []):
         if rule.get("id") in base_ids:
-            problems.append(Problem("RB-E044", f"overlay redefines base rule '{rule['id']}'",
-                                    doc.locate(("rules", i, "id")), "a new rule id (suspend the base rule instead)"))
+            problems.append(
+                Problem(
+                    "RB-E044",
+                    f"overlay redefines base rule '{rule['id']}'",
+                    doc.locate(("rules", i, "id")),
+                    "a new rule id (suspend the base rule instead)",
+                )
+            )
             continue
         res.rules.append((copy.deepcopy(rule), Ref(doc, ("rules", i))))
     for i, s in enumerate(data.get("suspend") or []):
@@ -232,7 +297,7 @@ def _full_parameter(body: Any) -> bool:
 
 
 def did_you_mean(name: str, known: Any) -> str:
-    """"; did you mean 'x'?" for the closest known name, or ""."""
+    """ "; did you mean 'x'?" for the closest known name, or ""."""
     import difflib
 
     close = difflib.get_close_matches(str(name), [str(k) for k in known], n=1, cutoff=0.6)
@@ -244,11 +309,23 @@ def _override(res: Resolved, name: str, body: dict[str, Any], ref: Ref) -> list[
     problems: list[Problem] = []
     for key in ("unit", "bounds", "choices"):
         if key in body and body[key] != base.get(key):
-            problems.append(Problem("RB-E041", f"overlay may not change the {key} of parameter '{name}'",
-                                    ref.loc(key), f"{key} as in the base ({base.get(key)})"))
+            problems.append(
+                Problem(
+                    "RB-E041",
+                    f"overlay may not change the {key} of parameter '{name}'",
+                    ref.loc(key),
+                    f"{key} as in the base ({base.get(key)})",
+                )
+            )
     if "by" in body and body["by"].get("input") != (base.get("by") or {}).get("input"):
-        problems.append(Problem("RB-E041", f"overlay may not change which input selects parameter '{name}'",
-                                ref.loc("by", "input"), f"by.input {((base.get('by') or {}).get('input'))}"))
+        problems.append(
+            Problem(
+                "RB-E041",
+                f"overlay may not change which input selects parameter '{name}'",
+                ref.loc("by", "input"),
+                f"by.input {((base.get('by') or {}).get('input'))}",
+            )
+        )
     merged = copy.deepcopy(base)
     if "value" in body:
         problems.extend(_guard(name, body["value"], base, base_ref, ref.loc("value")))
@@ -265,7 +342,7 @@ def _override(res: Resolved, name: str, body: dict[str, Any], ref: Ref) -> list[
         res.parameters[name] = (merged, base_ref)
         if "value" in body or "by" not in body:
             res.param_set_by[name] = ref
-        for code in ((body.get("by") or {}).get("values") or {}):
+        for code in (body.get("by") or {}).get("values") or {}:
             res.param_by_set_by.setdefault(name, {})[code] = Ref(ref.doc, ref.path + ("by", "values", code))
     return problems
 
@@ -273,16 +350,27 @@ def _override(res: Resolved, name: str, body: dict[str, Any], ref: Ref) -> list[
 def _guard(name: str, value: Any, base: dict[str, Any], base_ref: Ref, where: Location) -> list[Problem]:
     if "choices" in base:
         if value not in base["choices"]:
-            return [Problem("RB-E042", f"'{value}' is not a choice of parameter '{name}'", where,
-                            "one of " + ", ".join(base["choices"]))]
+            return [
+                Problem(
+                    "RB-E042",
+                    f"'{value}' is not a choice of parameter '{name}'",
+                    where,
+                    "one of " + ", ".join(base["choices"]),
+                )
+            ]
         return []
     bounds = base.get("bounds")
     if isinstance(value, str) or isinstance(value, bool):
         return [Problem("RB-E041", f"parameter '{name}' takes a number, not {value!r}", where, "a number")]
     if bounds and not bounds["min"] <= value <= bounds["max"]:
         bl = base_ref.loc("bounds")
-        return [Problem("RB-E040",
-                        f"override of '{name}' to {value:g} is outside the base guard rails "
-                        f"[{bounds['min']:g}, {bounds['max']:g}] set at {bl}",
-                        where, f"a value from {bounds['min']:g} to {bounds['max']:g}")]
+        return [
+            Problem(
+                "RB-E040",
+                f"override of '{name}' to {value:g} is outside the base guard rails "
+                f"[{bounds['min']:g}, {bounds['max']:g}] set at {bl}",
+                where,
+                f"a value from {bounds['min']:g} to {bounds['max']:g}",
+            )
+        ]
     return []

@@ -7,21 +7,21 @@ line and column through the document's position map.
 from __future__ import annotations
 
 import json
-from functools import lru_cache
+from functools import cache
 from typing import Any
 
 from gasrules.core.errors import Problem
-from gasrules.rulebook.loader import Document
 from gasrules.core.resources import schema_path
+from gasrules.rulebook.loader import Document
 
 
-@lru_cache(maxsize=None)
+@cache
 def load_schema(name: str) -> dict[str, Any]:
     with open(schema_path(name), encoding="utf-8") as fh:
         return json.load(fh)
 
 
-@lru_cache(maxsize=None)
+@cache
 def _validator(name: str) -> Any:
     import jsonschema  # imported here: only a cache miss pays for it
 

@@ -29,8 +29,7 @@ def nested_too_deep(data: Any, max_depth: int) -> str | None:
             continue
         if depth > max_depth:
             return path
-        stack.extend((child, depth + 1, where) for where, child in items
-                     if isinstance(child, (dict, list)))
+        stack.extend((child, depth + 1, where) for where, child in items if isinstance(child, (dict, list)))
     return None
 
 

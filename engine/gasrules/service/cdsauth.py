@@ -39,13 +39,31 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-__all__ = ["ASYMMETRIC_ALGORITHMS", "AuthConfig", "AuthError", "ConfigError", "Issuer",
-           "ReplayCache", "TokenVerifier", "load_config"]
+__all__ = [
+    "ASYMMETRIC_ALGORITHMS",
+    "AuthConfig",
+    "AuthError",
+    "ConfigError",
+    "Issuer",
+    "ReplayCache",
+    "TokenVerifier",
+    "load_config",
+]
 
 # Signature algorithms that need no shared secret (RFC 7518 3.3-3.5, RFC 8037). CDS Hooks: SHALL
 # NOT use none or any symmetric algorithm; ES384 and RS384 are RECOMMENDED.
-ASYMMETRIC_ALGORITHMS = ("ES256", "ES384", "ES512", "RS256", "RS384", "RS512",
-                         "PS256", "PS384", "PS512", "EdDSA")
+ASYMMETRIC_ALGORITHMS = (
+    "ES256",
+    "ES384",
+    "ES512",
+    "RS256",
+    "RS384",
+    "RS512",
+    "PS256",
+    "PS384",
+    "PS512",
+    "EdDSA",
+)
 DEFAULT_ALGORITHMS = ("ES384", "RS384")
 REQUIRED_CLAIMS = ("iss", "aud", "exp", "iat", "jti")
 
@@ -65,8 +83,8 @@ class AuthError(Exception):
 @dataclass(frozen=True)
 class Issuer:
     iss: str
-    keys: Mapping[str, Any]                # kid -> public key object ("*" = any kid, one PEM)
-    key_algs: Mapping[str, str] = field(default_factory=dict)   # kid -> the JWK's own "alg"
+    keys: Mapping[str, Any]  # kid -> public key object ("*" = any kid, one PEM)
+    key_algs: Mapping[str, str] = field(default_factory=dict)  # kid -> the JWK's own "alg"
     jku: tuple[str, ...] = ()
     subjects: tuple[str, ...] | None = None
     tenants: tuple[str, ...] | None = None
@@ -95,10 +113,11 @@ def load_config(path: str | Path) -> AuthConfig:
     try:
         if path.suffix.lower() in (".yaml", ".yml"):
             import yaml
+
             raw = yaml.safe_load(text)
         else:
             raw = json.loads(text)
-    except Exception as exc:  # noqa: BLE001 - any parse error becomes one located message
+    except Exception as exc:
         raise ConfigError(f"{path}: not valid {path.suffix.lstrip('.') or 'JSON'}: {exc}") from None
     return config_from_dict(raw, base=path.parent, origin=str(path))
 
@@ -109,40 +128,59 @@ def config_from_dict(raw: Any, *, base: Path = Path("."), origin: str = "<config
 
     if not isinstance(raw, dict):
         raise fail("$", "expected an object with 'issuers'")
-    unknown = set(raw) - {"audience", "algorithms", "leeway_seconds", "max_lifetime_seconds",
-                          "protect_discovery", "replay_cache_size", "issuers"}
+    unknown = set(raw) - {
+        "audience",
+        "algorithms",
+        "leeway_seconds",
+        "max_lifetime_seconds",
+        "protect_discovery",
+        "replay_cache_size",
+        "issuers",
+    }
     if unknown:
         raise fail("$", f"unknown keys {sorted(unknown)}")
     algorithms = tuple(raw.get("algorithms") or DEFAULT_ALGORITHMS)
     bad = [a for a in algorithms if a not in ASYMMETRIC_ALGORITHMS]
     if bad:
-        raise fail("$.algorithms", f"{bad} not allowed; accepted: {', '.join(ASYMMETRIC_ALGORITHMS)}"
-                   " (none and HMAC are forbidden by CDS Hooks)")
+        raise fail(
+            "$.algorithms",
+            f"{bad} not allowed; accepted: {', '.join(ASYMMETRIC_ALGORITHMS)}"
+            " (none and HMAC are forbidden by CDS Hooks)",
+        )
     numbers = {}
-    for key, default, low, high in (("leeway_seconds", 30.0, 0, 300),
-                                    ("max_lifetime_seconds", 300.0, 1, 86_400),
-                                    ("replay_cache_size", 100_000, 100, 10_000_000)):
+    for key, default, low, high in (
+        ("leeway_seconds", 30.0, 0, 300),
+        ("max_lifetime_seconds", 300.0, 1, 86_400),
+        ("replay_cache_size", 100_000, 100, 10_000_000),
+    ):
         value = raw.get(key, default)
         if isinstance(value, bool) or not isinstance(value, (int, float)) or not low <= value <= high:
             raise fail(f"$.{key}", f"{value!r} is not a number in [{low}, {high}]")
         numbers[key] = value
     audience = raw.get("audience")
-    if audience is not None and (not isinstance(audience, str)
-                                 or not audience.startswith(("https://", "http://"))):
+    if audience is not None and (
+        not isinstance(audience, str) or not audience.startswith(("https://", "http://"))
+    ):
         raise fail("$.audience", f"{audience!r} is not an http(s) URL")
     issuers_raw = raw.get("issuers")
     if not isinstance(issuers_raw, dict) or not issuers_raw:
         raise fail("$.issuers", "expected an object of issuer -> keys, with at least one issuer")
-    issuers = {iss: _issuer(iss, spec, base, lambda w, m, i=iss: fail(f"$.issuers[{i!r}]{w}", m))
-               for iss, spec in issuers_raw.items()}
+    issuers = {
+        iss: _issuer(iss, spec, base, lambda w, m, i=iss: fail(f"$.issuers[{i!r}]{w}", m))
+        for iss, spec in issuers_raw.items()
+    }
     protect = raw.get("protect_discovery", True)
     if not isinstance(protect, bool):
         raise fail("$.protect_discovery", "expected true or false")
-    return AuthConfig(issuers=issuers, audience=audience.rstrip("/") if audience else None,
-                      algorithms=algorithms, leeway_seconds=float(numbers["leeway_seconds"]),
-                      max_lifetime_seconds=float(numbers["max_lifetime_seconds"]),
-                      protect_discovery=protect,
-                      replay_cache_size=int(numbers["replay_cache_size"]))
+    return AuthConfig(
+        issuers=issuers,
+        audience=audience.rstrip("/") if audience else None,
+        algorithms=algorithms,
+        leeway_seconds=float(numbers["leeway_seconds"]),
+        max_lifetime_seconds=float(numbers["max_lifetime_seconds"]),
+        protect_discovery=protect,
+        replay_cache_size=int(numbers["replay_cache_size"]),
+    )
 
 
 def _strings(value: Any, where: str, fail: Any) -> tuple[str, ...] | None:
@@ -156,15 +194,23 @@ def _strings(value: Any, where: str, fail: Any) -> tuple[str, ...] | None:
 def _issuer(iss: str, spec: Any, base: Path, fail: Any) -> Issuer:
     if not isinstance(spec, dict):
         raise fail("", "expected an object with jwks_file, jwks, pem_file or keys")
-    unknown = set(spec) - {"jwks_file", "jwks", "pem_file", "kid", "keys", "jku", "sub",
-                           "tenants", "services"}
+    unknown = set(spec) - {
+        "jwks_file",
+        "jwks",
+        "pem_file",
+        "kid",
+        "keys",
+        "jku",
+        "sub",
+        "tenants",
+        "services",
+    }
     if unknown:
         raise fail("", f"unknown keys {sorted(unknown)}")
     keys: dict[str, Any] = {}
     algs: dict[str, str] = {}
     if "jwks_file" in spec:
-        keys.update(_jwks(_read_json(base / str(spec["jwks_file"]), fail), ".jwks_file", fail,
-                          algs))
+        keys.update(_jwks(_read_json(base / str(spec["jwks_file"]), fail), ".jwks_file", fail, algs))
     if "jwks" in spec:
         keys.update(_jwks(spec["jwks"], ".jwks", fail, algs))
     if "pem_file" in spec:
@@ -175,10 +221,15 @@ def _issuer(iss: str, spec: Any, base: Path, fail: Any) -> Issuer:
         keys[str(item["kid"])] = _pem(base / str(item["pem_file"]), f".keys[{i}]", fail)
     if not keys:
         raise fail("", "no public key configured (jwks_file, jwks, pem_file or keys)")
-    return Issuer(iss=iss, keys=keys, key_algs=algs, jku=_strings(spec.get("jku"), ".jku", fail) or (),
-                  subjects=_strings(spec.get("sub"), ".sub", fail),
-                  tenants=_strings(spec.get("tenants"), ".tenants", fail),
-                  services=_strings(spec.get("services"), ".services", fail))
+    return Issuer(
+        iss=iss,
+        keys=keys,
+        key_algs=algs,
+        jku=_strings(spec.get("jku"), ".jku", fail) or (),
+        subjects=_strings(spec.get("sub"), ".sub", fail),
+        tenants=_strings(spec.get("tenants"), ".tenants", fail),
+        services=_strings(spec.get("services"), ".services", fail),
+    )
 
 
 def _read_json(path: Path, fail: Any) -> Any:
@@ -193,14 +244,16 @@ def _jwks(data: Any, where: str, fail: Any, algs: dict[str, str]) -> dict[str, A
     from jwt.exceptions import PyJWKError
 
     if not isinstance(data, dict) or not isinstance(data.get("keys"), list):
-        raise fail(where, "expected a JWK Set: {\"keys\": [...]}")
+        raise fail(where, 'expected a JWK Set: {"keys": [...]}')
     out: dict[str, Any] = {}
     for i, jwk in enumerate(data["keys"]):
         if not isinstance(jwk, dict) or not jwk.get("kid"):
             raise fail(f"{where}.keys[{i}]", "each JWK needs a kid (CDS Hooks: kid is REQUIRED)")
         if any(k in jwk for k in ("d", "p", "q", "k")):
-            raise fail(f"{where}.keys[{i}]", "contains private or symmetric key material; "
-                       "configure the public key only")
+            raise fail(
+                f"{where}.keys[{i}]",
+                "contains private or symmetric key material; configure the public key only",
+            )
         if jwk.get("use") not in (None, "sig"):
             continue
         if jwk.get("alg") is not None:
@@ -245,8 +298,9 @@ class ReplayCache:
             if key in self._expiry:
                 return False
             if len(self._expiry) >= self.max_entries:
-                raise AuthError(503, "auth.replay_cache_full",
-                                "too many live tokens to remember; retry shortly")
+                raise AuthError(
+                    503, "auth.replay_cache_full", "too many live tokens to remember; retry shortly"
+                )
             self._expiry[key] = until
             heapq.heappush(self._heap, (until, key))
             return True
@@ -256,8 +310,7 @@ class ReplayCache:
 class TokenVerifier:
     """Checks the bearer JWT of one CDS Hooks request against an :class:`AuthConfig`."""
 
-    def __init__(self, config: AuthConfig, default_audience: str, *,
-                 clock: Any = time.time) -> None:
+    def __init__(self, config: AuthConfig, default_audience: str, *, clock: Any = time.time) -> None:
         self.config = config
         self.audience_base = (config.audience or default_audience).rstrip("/")
         self.replay = ReplayCache(config.replay_cache_size)
@@ -284,9 +337,11 @@ class TokenVerifier:
             raise AuthError(401, "auth.malformed", f"bearer token is not a JWT: {exc}") from None
         alg = header.get("alg")
         if alg not in self.config.algorithms:
-            raise AuthError(401, "auth.algorithm",
-                            f"JWT alg {alg!r} is not accepted; accepted: "
-                            f"{', '.join(self.config.algorithms)}")
+            raise AuthError(
+                401,
+                "auth.algorithm",
+                f"JWT alg {alg!r} is not accepted; accepted: {', '.join(self.config.algorithms)}",
+            )
         if str(header.get("typ", "")).upper() != "JWT":
             raise AuthError(401, "auth.header", "JWT header typ must be 'JWT'")
         kid = header.get("kid")
@@ -303,21 +358,32 @@ class TokenVerifier:
         if key is None:
             raise AuthError(401, "auth.kid", f"no key with kid {kid!r} for issuer {iss!r}")
         if issuer.key_algs.get(kid, alg) != alg:
-            raise AuthError(401, "auth.algorithm", f"key {kid!r} is for "
-                            f"{issuer.key_algs[kid]}, not {alg}")
+            raise AuthError(401, "auth.algorithm", f"key {kid!r} is for {issuer.key_algs[kid]}, not {alg}")
         leeway = self.config.leeway_seconds
         try:
             claims = jwt.decode(
-                token, key, algorithms=[alg], audience=self.expected_audiences(path), issuer=iss,
-                leeway=leeway, options={"require": list(REQUIRED_CLAIMS), "verify_iat": True})
+                token,
+                key,
+                algorithms=[alg],
+                audience=self.expected_audiences(path),
+                issuer=iss,
+                leeway=leeway,
+                options={"require": list(REQUIRED_CLAIMS), "verify_iat": True},
+            )
         except jwt.ExpiredSignatureError:
             raise AuthError(401, "auth.expired", "JWT has expired (exp)") from None
         except jwt.InvalidAudienceError:
-            raise AuthError(401, "auth.audience", "JWT aud does not name this endpoint; expected "
-                            + " or ".join(self.expected_audiences(path))) from None
+            raise AuthError(
+                401,
+                "auth.audience",
+                "JWT aud does not name this endpoint; expected " + " or ".join(self.expected_audiences(path)),
+            ) from None
         except jwt.MissingRequiredClaimError as exc:
-            raise AuthError(401, "auth.claims", f"JWT lacks required claim {exc.claim!r}; "
-                            f"required: {', '.join(REQUIRED_CLAIMS)}") from None
+            raise AuthError(
+                401,
+                "auth.claims",
+                f"JWT lacks required claim {exc.claim!r}; required: {', '.join(REQUIRED_CLAIMS)}",
+            ) from None
         except jwt.ImmatureSignatureError:
             raise AuthError(401, "auth.not_yet_valid", "JWT iat or nbf is in the future") from None
         except jwt.PyJWTError as exc:
@@ -337,22 +403,26 @@ class TokenVerifier:
         if not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in (exp, iat)):
             raise AuthError(401, "auth.claims", "JWT exp and iat must be numbers (seconds)")
         if exp - iat > self.config.max_lifetime_seconds:
-            raise AuthError(401, "auth.lifetime",
-                            f"JWT lifetime exp - iat = {exp - iat:g} s exceeds the "
-                            f"{self.config.max_lifetime_seconds:g} s allowed")
+            raise AuthError(
+                401,
+                "auth.lifetime",
+                f"JWT lifetime exp - iat = {exp - iat:g} s exceeds the "
+                f"{self.config.max_lifetime_seconds:g} s allowed",
+            )
 
     @staticmethod
     def _check_permissions(issuer: Issuer, claims: Mapping[str, Any], service: str | None) -> None:
         checks: Iterable[tuple[tuple[str, ...] | None, Any, str]] = (
             (issuer.subjects, claims.get("sub"), "sub"),
-            (issuer.tenants, claims.get("tenant"), "tenant"))
+            (issuer.tenants, claims.get("tenant"), "tenant"),
+        )
         for allowed, value, name in checks:
             if allowed is not None and value not in allowed:
-                raise AuthError(403, "auth.forbidden",
-                                f"{name} {value!r} is not allowed for issuer {issuer.iss!r}")
+                raise AuthError(
+                    403, "auth.forbidden", f"{name} {value!r} is not allowed for issuer {issuer.iss!r}"
+                )
         if service is not None and issuer.services is not None and service not in issuer.services:
-            raise AuthError(403, "auth.forbidden",
-                            f"issuer {issuer.iss!r} may not call service {service!r}")
+            raise AuthError(403, "auth.forbidden", f"issuer {issuer.iss!r} may not call service {service!r}")
 
 
 def _bearer(authorization: str | None) -> str:

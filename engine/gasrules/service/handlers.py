@@ -46,13 +46,21 @@ from typing import Any, Protocol
 import orjson
 
 from gasrules.core.version import __version__
-from gasrules.service import cdshooks
-from gasrules.service.cdsauth import AuthError, TokenVerifier
-from gasrules.service.bodyshape import nested_too_deep, read_line
 from gasrules.evaluation.evaluator import UNREADABLE
+from gasrules.service import cdshooks
+from gasrules.service.bodyshape import nested_too_deep, read_line
+from gasrules.service.cdsauth import AuthError, TokenVerifier
 
-__all__ = ["App", "EngineInterpreter", "Interpreter", "Response", "RuntimeInterpreter",
-           "ServiceConfig", "build_app", "make_interpreter"]
+__all__ = [
+    "App",
+    "EngineInterpreter",
+    "Interpreter",
+    "Response",
+    "RuntimeInterpreter",
+    "ServiceConfig",
+    "build_app",
+    "make_interpreter",
+]
 
 JSON = "application/json"
 FHIR_JSON = "application/fhir+json"
@@ -72,20 +80,20 @@ class ServiceConfig:
     feedback_log: str = "cds-feedback.jsonl"
     access_log: bool = True
     cds_window_minutes: float = 0.0
-    max_connections: int = 1024      # open connections; more get 503 and are closed
-    max_concurrency: int = 64        # API requests in progress; more get 503 (probes exempt)
-    keep_alive: float = 5.0          # seconds an idle keep-alive connection is kept
-    max_depth: int = 32              # nesting levels of a JSON body
-    max_case_fields: int = 256       # fields of one case (inputs, case_id, context, ...)
-    response_floor: int = 8 * 1024 * 1024   # response bytes always allowed ...
-    response_ratio: int = 64                # ... plus this many per request byte
-    cors_origins: tuple[str, ...] = ()      # browser origins allowed to call ("*" for any)
-    http_parser: str = "httptools"          # or "h11"
-    codesystem_url: str | None = None      # project CodeSystem base (interfaces: settings)
+    max_connections: int = 1024  # open connections; more get 503 and are closed
+    max_concurrency: int = 64  # API requests in progress; more get 503 (probes exempt)
+    keep_alive: float = 5.0  # seconds an idle keep-alive connection is kept
+    max_depth: int = 32  # nesting levels of a JSON body
+    max_case_fields: int = 256  # fields of one case (inputs, case_id, context, ...)
+    response_floor: int = 8 * 1024 * 1024  # response bytes always allowed ...
+    response_ratio: int = 64  # ... plus this many per request byte
+    cors_origins: tuple[str, ...] = ()  # browser origins allowed to call ("*" for any)
+    http_parser: str = "httptools"  # or "h11"
+    codesystem_url: str | None = None  # project CodeSystem base (interfaces: settings)
     tls_certfile: str | None = None
     tls_keyfile: str | None = None
-    settings: str | None = None      # site settings file (strict mode, decision records, shadow)
-    strict: bool = False             # turn strict mode on whatever the settings say
+    settings: str | None = None  # site settings file (strict mode, decision records, shadow)
+    strict: bool = False  # turn strict mode on whatever the settings say
 
 
 @dataclass
@@ -97,8 +105,9 @@ class Response:
 
 
 class HttpError(Exception):
-    def __init__(self, status: int, code: str, message: str, field: str = "",
-                 headers: Mapping[str, str] | None = None) -> None:
+    def __init__(
+        self, status: int, code: str, message: str, field: str = "", headers: Mapping[str, str] | None = None
+    ) -> None:
         super().__init__(message)
         self.status, self.code, self.message, self.field = status, code, message, field
         self.headers = dict(headers or {})
@@ -174,31 +183,37 @@ class RuntimeInterpreter:
         def locked_deliver() -> None:
             with self._lock:  # type: ignore[union-attr]
                 deliver()
+
         return result, locked_deliver
 
     def describe(self) -> dict[str, Any]:
         rt, settings = self.runtime, self.runtime.settings
         adm = rt.admission
         cand = rt.candidate
-        return {"mode": "runtime", "strict": settings.strict,
-                "decision_records": rt.records_decisions,
-                "shadow": dict(cand.identity) if cand is not None else None,
-                "approved_sha256": adm.approved_sha256,
-                "release_manifest": adm.manifest.name if adm.manifest else None,
-                "suspended_rules": [rule for rule, _ in adm.suspended_rules],
-                "settings_from": list(settings.sources)}
+        return {
+            "mode": "runtime",
+            "strict": settings.strict,
+            "decision_records": rt.records_decisions,
+            "shadow": dict(cand.identity) if cand is not None else None,
+            "approved_sha256": adm.approved_sha256,
+            "release_manifest": adm.manifest.name if adm.manifest else None,
+            "suspended_rules": [rule for rule, _ in adm.suspended_rules],
+            "settings_from": list(settings.sources),
+        }
 
     def close(self) -> None:
         self.runtime.close()
 
 
-def _settings_apply(config: "ServiceConfig", environ: Mapping[str, str]) -> bool:
-    return config.settings is not None or config.strict or any(
-        k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in environ)
+def _settings_apply(config: ServiceConfig, environ: Mapping[str, str]) -> bool:
+    return (
+        config.settings is not None
+        or config.strict
+        or any(k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in environ)
+    )
 
 
-def make_interpreter(config: ServiceConfig, environ: Mapping[str, str] | None = None
-                     ) -> Interpreter:
+def make_interpreter(config: ServiceConfig, environ: Mapping[str, str] | None = None) -> Interpreter:
     """The governed :class:`gasrules.Runtime` under the site settings (``config.settings``,
     ``config.strict``, GASRULES_* variables; defaults when none apply: no strict mode, no
     decision log, suspensions honoured when a release directory is set).
@@ -209,8 +224,7 @@ def make_interpreter(config: ServiceConfig, environ: Mapping[str, str] | None = 
     from gasrules.governance.settings import load_settings
 
     environ = os.environ if environ is None else environ
-    settings = load_settings(config.settings, env=environ,
-                             strict=True if config.strict else None)
+    settings = load_settings(config.settings, env=environ, strict=True if config.strict else None)
     return RuntimeInterpreter(Runtime.from_settings(settings, config.rulebook))
 
 
@@ -219,25 +233,38 @@ def dumps(obj: Any) -> bytes:
     return orjson.dumps(obj, option=orjson.OPT_SERIALIZE_NUMPY)
 
 
-def error_body(status: int, code: str, message: str, field: str = "",
-                cds: bool = False) -> bytes:
+def error_body(status: int, code: str, message: str, field: str = "", cds: bool = False) -> bytes:
     err: dict[str, Any] = {"code": code, "message": message}
     if field:
         err["field"] = field
     body: dict[str, Any] = {"error": err}
-    if cds:   # CDS Hooks 3.0: an OperationOutcome on non-2xx responses
-        issue: dict[str, Any] = {"severity": "error",
-                                 "code": _OUTCOME_CODES.get(status, "processing"),
-                                 "details": {"text": message}, "diagnostics": code}
+    if cds:  # CDS Hooks 3.0: an OperationOutcome on non-2xx responses
+        issue: dict[str, Any] = {
+            "severity": "error",
+            "code": _OUTCOME_CODES.get(status, "processing"),
+            "details": {"text": message},
+            "diagnostics": code,
+        }
         if field:
             issue["expression"] = [field]
         body["operationOutcome"] = {"resourceType": "OperationOutcome", "issue": [issue]}
     return dumps(body)
 
 
-_OUTCOME_CODES = {400: "invalid", 401: "login", 403: "forbidden", 404: "not-found",
-                  405: "not-supported", 408: "timeout", 411: "structure", 412: "incomplete",
-                  413: "too-long", 415: "not-supported", 500: "exception", 503: "transient"}
+_OUTCOME_CODES = {
+    400: "invalid",
+    401: "login",
+    403: "forbidden",
+    404: "not-found",
+    405: "not-supported",
+    408: "timeout",
+    411: "structure",
+    412: "incomplete",
+    413: "too-long",
+    415: "not-supported",
+    500: "exception",
+    503: "transient",
+}
 
 
 def _media_type(headers: Mapping[str, str]) -> tuple[str, str | None]:
@@ -254,12 +281,16 @@ def _media_type(headers: Mapping[str, str]) -> tuple[str, str | None]:
 def _require_type(headers: Mapping[str, str], accepted: tuple[str, ...]) -> str:
     kind, charset = _media_type(headers)
     if kind not in accepted:
-        raise HttpError(415, "http.content_type",
-                        f"Content-Type {kind or '(none)'!r} is not accepted here; send one of: "
-                        f"{', '.join(accepted)}", "Content-Type")
+        raise HttpError(
+            415,
+            "http.content_type",
+            f"Content-Type {kind or '(none)'!r} is not accepted here; send one of: {', '.join(accepted)}",
+            "Content-Type",
+        )
     if charset not in (None, "utf-8", "utf8"):
-        raise HttpError(415, "http.charset", f"charset {charset!r} is not accepted; use utf-8",
-                        "Content-Type")
+        raise HttpError(
+            415, "http.charset", f"charset {charset!r} is not accepted; use utf-8", "Content-Type"
+        )
     return kind
 
 
@@ -267,29 +298,47 @@ def _parse_json(body: bytes, where: str = "body", max_depth: int | None = None) 
     try:
         data = orjson.loads(body)
     except orjson.JSONDecodeError as exc:
-        raise HttpError(400, "json.invalid", f"{where} is not valid JSON: {exc.msg} at line "
-                        f"{exc.lineno} column {exc.colno}", where) from None
+        raise HttpError(
+            400,
+            "json.invalid",
+            f"{where} is not valid JSON: {exc.msg} at line {exc.lineno} column {exc.colno}",
+            where,
+        ) from None
     if max_depth is not None:
         deep = nested_too_deep(data, max_depth)
         if deep is not None:
-            raise HttpError(400, "json.too_deep", f"{where} nests more than {max_depth} levels "
-                            f"deep at {deep}; at most {max_depth} levels are accepted", deep)
+            raise HttpError(
+                400,
+                "json.too_deep",
+                f"{where} nests more than {max_depth} levels "
+                f"deep at {deep}; at most {max_depth} levels are accepted",
+                deep,
+            )
     return data
 
 
 def _check_fields(case: Any, limit: int, where: str = "body") -> None:
     if isinstance(case, dict) and len(case) > limit:
-        raise HttpError(400, "request.too_many_fields", f"{where} has {len(case)} fields; a case "
-                        f"has at most {limit} (its inputs, case_id and context)", where)
+        raise HttpError(
+            400,
+            "request.too_many_fields",
+            f"{where} has {len(case)} fields; a case has at most {limit} (its inputs, case_id and context)",
+            where,
+        )
 
 
 def _grow(size: int, more: int, limit: int, request_bytes: int) -> int:
     """``size + more``, or 413 when that passes the response bound."""
     size += more
     if size > limit:
-        raise HttpError(413, "response.too_large", f"the answer would exceed the {limit} "
-                        f"bytes allowed for a {request_bytes}-byte request; ask with trace=0 "
-                        "or send fewer cases per request", "body")
+        raise HttpError(
+            413,
+            "response.too_large",
+            f"the answer would exceed the {limit} "
+            f"bytes allowed for a {request_bytes}-byte request; ask with trace=0 "
+            "or send fewer cases per request",
+            "body",
+        )
     return size
 
 
@@ -302,15 +351,17 @@ def _flag(query: Mapping[str, list[str]], name: str, default: bool) -> bool:
         return True
     if value in ("0", "false", "no", "off"):
         return False
-    raise HttpError(400, "http.query", f"query parameter {name}={values[-1]!r} must be 1 or 0",
-                    name)
+    raise HttpError(400, "http.query", f"query parameter {name}={values[-1]!r} must be 1 or 0", name)
 
 
 def _is_fhir(body: Any) -> bool:
     if isinstance(body, dict):
         return "resourceType" in body
-    return isinstance(body, list) and bool(body) and all(
-        isinstance(r, dict) and "resourceType" in r for r in body)
+    return (
+        isinstance(body, list)
+        and bool(body)
+        and all(isinstance(r, dict) and "resourceType" in r for r in body)
+    )
 
 
 # ============================================================================ the application
@@ -319,7 +370,7 @@ class Request:
     method: str
     path: str
     query: dict[str, list[str]]
-    headers: dict[str, str]        # lower-case names
+    headers: dict[str, str]  # lower-case names
     body: bytes
     params: dict[str, str] = field(default_factory=dict)
     started: float = field(default_factory=time.monotonic)
@@ -328,8 +379,9 @@ class Request:
 class App:
     """Routing and handlers; independent of the socket layer (``handle`` is a plain call)."""
 
-    def __init__(self, config: ServiceConfig, interpreter: Interpreter, *,
-                 verifier: TokenVerifier | None = None) -> None:
+    def __init__(
+        self, config: ServiceConfig, interpreter: Interpreter, *, verifier: TokenVerifier | None = None
+    ) -> None:
         self.config = config
         self.interpreter = interpreter
         self.rulebook = interpreter.rulebook
@@ -376,7 +428,8 @@ class App:
         parts = tuple(p for p in path.split("/") if p)
         for pattern, _methods in self.ROUTES:
             if len(pattern) == len(parts) and all(
-                    w.startswith("{") or w == g for w, g in zip(pattern, parts, strict=True)):
+                w.startswith("{") or w == g for w, g in zip(pattern, parts, strict=True)
+            ):
                 return "/" + "/".join(pattern)
         return "unmatched"
 
@@ -388,42 +441,56 @@ class App:
         limit = self.response_limit(len(req.body))
         if req.method == "GET" or len(resp.body) <= limit:
             return resp
-        raise HttpError(413, "response.too_large", f"the answer would be {len(resp.body)} bytes, "
-                        f"more than the {limit} allowed for a {len(req.body)}-byte request; ask "
-                        "with trace=0 or send fewer cases per request", "body")
+        raise HttpError(
+            413,
+            "response.too_large",
+            f"the answer would be {len(resp.body)} bytes, "
+            f"more than the {limit} allowed for a {len(req.body)}-byte request; ask "
+            "with trace=0 or send fewer cases per request",
+            "body",
+        )
 
     def handle(self, req: Request) -> Response:
         cds = req.path.startswith("/cds-services")
         try:
             found = self.route(req.path)
             if found is None:
-                raise HttpError(404, "http.not_found", f"no endpoint at {req.path}; see "
-                                "/openapi.json", "path")
+                raise HttpError(
+                    404, "http.not_found", f"no endpoint at {req.path}; see /openapi.json", "path"
+                )
             methods, req.params = found
             name = methods.get(req.method)
             if name is None:
-                raise HttpError(405, "http.method", f"{req.method} is not allowed on {req.path}; "
-                                f"allowed: {', '.join(methods)}", "method",
-                                {"Allow": ", ".join(methods)})
+                raise HttpError(
+                    405,
+                    "http.method",
+                    f"{req.method} is not allowed on {req.path}; allowed: {', '.join(methods)}",
+                    "method",
+                    {"Allow": ", ".join(methods)},
+                )
             return self._bounded(req, getattr(self, f"h_{name}")(req))
         except HttpError as exc:
-            return Response(exc.status, error_body(exc.status, exc.code, exc.message, exc.field,
-                                                    cds), headers=exc.headers)
+            return Response(
+                exc.status, error_body(exc.status, exc.code, exc.message, exc.field, cds), headers=exc.headers
+            )
         except cdshooks.CdsError as exc:
-            return Response(exc.status, error_body(exc.status, exc.code, exc.message,
-                                                    exc.field, True))
+            return Response(exc.status, error_body(exc.status, exc.code, exc.message, exc.field, True))
         except AuthError as exc:
-            headers = {"WWW-Authenticate": f'Bearer error="invalid_token", '
-                                           f'error_description="{exc.code}"'} \
-                if exc.status == 401 else {}
+            headers = (
+                {"WWW-Authenticate": f'Bearer error="invalid_token", error_description="{exc.code}"'}
+                if exc.status == 401
+                else {}
+            )
             if exc.status == 503:
                 headers["Retry-After"] = "5"
-            return Response(exc.status, error_body(exc.status, exc.code, exc.message, "",
-                                                    True), headers=headers)
-        except Exception:  # noqa: BLE001 - any bug becomes a JSON 500, the trace goes to the log
+            return Response(
+                exc.status, error_body(exc.status, exc.code, exc.message, "", True), headers=headers
+            )
+        except Exception:
             traceback.print_exc(file=sys.stderr)
-            return Response(500, error_body(500, "internal", "internal error; the service "
-                                             "log has the details", "", cds))
+            return Response(
+                500, error_body(500, "internal", "internal error; the service log has the details", "", cds)
+            )
 
     # -- JSON API
     def h_interpret(self, req: Request) -> Response:
@@ -434,8 +501,12 @@ class App:
         if _is_fhir(body):
             return self._interpret_fhir(body, trace, _flag(req.query, "preliminary", False))
         if isinstance(body, list):
-            raise HttpError(400, "request.not_a_case", "expected one case (a JSON object) or a "
-                            "FHIR Bundle; send lists of cases to /interpret/batch", "body")
+            raise HttpError(
+                400,
+                "request.not_a_case",
+                "expected one case (a JSON object) or a FHIR Bundle; send lists of cases to /interpret/batch",
+                "body",
+            )
         _check_fields(body, self.config.max_case_fields)
         result, deliver = self.interpreter.prepare(body, trace)
         if want_fhir:
@@ -456,11 +527,19 @@ class App:
         deliver()
         return response
 
-    def _fhir_bundle(self, result: dict[str, Any], refs: Mapping[str, str], subject: str | None,
-                     effective: str | None, issues: Any) -> dict[str, Any]:
+    def _fhir_bundle(
+        self,
+        result: dict[str, Any],
+        refs: Mapping[str, str],
+        subject: str | None,
+        effective: str | None,
+        issues: Any,
+    ) -> dict[str, Any]:
         from gasrules.integration.interfaces import Incoming, to_fhir
 
-        incoming = Incoming({}, issues=tuple(issues), kind="fhir", refs=refs, subject=subject, effective=effective)
+        incoming = Incoming(
+            {}, issues=tuple(issues), kind="fhir", refs=refs, subject=subject, effective=effective
+        )
         return to_fhir(result, incoming, self.rulebook, self.config.codesystem_url)
 
     def h_batch(self, req: Request) -> Response:
@@ -471,8 +550,12 @@ class App:
         if kind == JSON:
             rows = _parse_json(req.body, max_depth=self.config.max_depth + 1)
             if not isinstance(rows, list):
-                raise HttpError(400, "request.not_a_list", "expected a JSON array of cases (or "
-                                f"JSON Lines with Content-Type {NDJSON})", "body")
+                raise HttpError(
+                    400,
+                    "request.not_a_list",
+                    f"expected a JSON array of cases (or JSON Lines with Content-Type {NDJSON})",
+                    "body",
+                )
             self._check_batch_size(len(rows))
             for i, row in enumerate(rows):
                 _check_fields(row, self.config.max_case_fields, f"$[{i}]")
@@ -493,11 +576,14 @@ class App:
 
     def _check_batch_size(self, n: int) -> None:
         if n > self.config.max_batch:
-            raise HttpError(413, "request.batch_too_large", f"batch of {n} cases exceeds the "
-                            f"limit of {self.config.max_batch}; split it", "body")
+            raise HttpError(
+                413,
+                "request.batch_too_large",
+                f"batch of {n} cases exceeds the limit of {self.config.max_batch}; split it",
+                "body",
+            )
 
-    def _batch_row(self, row: Any, trace: bool, deadline: float,
-                   line: int | None = None) -> dict[str, Any]:
+    def _batch_row(self, row: Any, trace: bool, deadline: float, line: int | None = None) -> dict[str, Any]:
         """One row's result; an engine failure on a row becomes that row's rejection, and so
         does a row not reached before the deadline (N in, N out; the decision log holds
         exactly the results returned)."""
@@ -507,12 +593,14 @@ class App:
             if late:
                 raise TimeoutError
             return self.interpreter.interpret(row, trace)
-        except Exception as exc:  # noqa: BLE001 - a row is never lost, even to an engine bug
+        except Exception as exc:
             from gasrules.evaluation.evaluator import interpret as engine_interpret
 
             if late:
-                why = (f"{where}: not interpreted: the batch passed its deadline of {self.config.timeout:g} s "
-                       "before reaching it; send it again, or the batch in smaller parts")
+                why = (
+                    f"{where}: not interpreted: the batch passed its deadline of {self.config.timeout:g} s "
+                    "before reaching it; send it again, or the batch in smaller parts"
+                )
             else:
                 traceback.print_exc(file=sys.stderr)
                 why = f"{where}: the engine failed on this row ({type(exc).__name__})"
@@ -524,19 +612,28 @@ class App:
             return result if trace else {**result, "trace": []}
 
     def h_health(self, req: Request) -> Response:
-        return Response(200, dumps({
-            "status": "ok", "rulebook": dict(self.rulebook.identity),
-            "engine_version": __version__,
-            "uptime_seconds": round(time.time() - self.started_at, 1),
-            "runtime": self.interpreter.describe(),
-            "cds_auth": "jwt" if self.verifier else "off",
-            "limits": {"max_body_bytes": self.config.max_body,
-                       "max_connections": self.config.max_connections,
-                       "max_concurrency": self.config.max_concurrency,
-                       "max_depth": self.config.max_depth,
-                       "max_case_fields": self.config.max_case_fields,
-                       "timeout_seconds": self.config.timeout,
-                       "max_batch_cases": self.config.max_batch}}))
+        return Response(
+            200,
+            dumps(
+                {
+                    "status": "ok",
+                    "rulebook": dict(self.rulebook.identity),
+                    "engine_version": __version__,
+                    "uptime_seconds": round(time.time() - self.started_at, 1),
+                    "runtime": self.interpreter.describe(),
+                    "cds_auth": "jwt" if self.verifier else "off",
+                    "limits": {
+                        "max_body_bytes": self.config.max_body,
+                        "max_connections": self.config.max_connections,
+                        "max_concurrency": self.config.max_concurrency,
+                        "max_depth": self.config.max_depth,
+                        "max_case_fields": self.config.max_case_fields,
+                        "timeout_seconds": self.config.timeout,
+                        "max_batch_cases": self.config.max_batch,
+                    },
+                }
+            ),
+        )
 
     def h_openapi(self, req: Request) -> Response:
         with self._lock:
@@ -558,8 +655,7 @@ class App:
         sid = req.params["id"]
         service = cdshooks.SERVICES_BY_ID.get(sid)
         if service is None:
-            raise HttpError(404, "cds.unknown_service", f"no CDS service {sid!r}; see "
-                            "/cds-services", "id")
+            raise HttpError(404, "cds.unknown_service", f"no CDS service {sid!r}; see /cds-services", "id")
         return service
 
     def h_cds_discovery(self, req: Request) -> Response:
@@ -579,8 +675,7 @@ class App:
         read = cdshooks.case_for(selection, context, str(body["hookInstance"]), self.rulebook)
         result = self.interpreter.interpret(read.case, True)
         card = cdshooks.build_card(result, read, selection, self.rulebook, context["patientId"])
-        record = cdshooks.card_record(card, result, service, str(body["hookInstance"]),
-                                      datetime.now(UTC))
+        record = cdshooks.card_record(card, result, service, str(body["hookInstance"]), datetime.now(UTC))
         self.feedback_log.append([record])
         self.cards.put(record)
         return Response(200, dumps({"cards": [card]}))
@@ -592,13 +687,15 @@ class App:
         body = _parse_json(req.body, max_depth=self.config.max_depth)
         records = cdshooks.feedback_records(body, service, self.cards, claims, datetime.now(UTC))
         self.feedback_log.append(records)
-        return Response(200, dumps({"recorded": len(records),
-                                    "rules": sorted({r for rec in records for r in rec["rules"]})}))
+        return Response(
+            200,
+            dumps({"recorded": len(records), "rules": sorted({r for rec in records for r in rec["rules"]})}),
+        )
 
 
-
-def build_app(config: ServiceConfig, interpreter: Interpreter | None = None, *,
-              environ: Mapping[str, str] | None = None) -> App:
+def build_app(
+    config: ServiceConfig, interpreter: Interpreter | None = None, *, environ: Mapping[str, str] | None = None
+) -> App:
     """The app for a configuration: the interpreter (engine or Runtime, see
     :func:`make_interpreter`; ``environ`` defaults to os.environ) and the CDS key check."""
     interpreter = interpreter or make_interpreter(config, environ)

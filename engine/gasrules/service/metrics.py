@@ -36,8 +36,7 @@ class Metrics:
     CONTENT_TYPE = "text/plain; version=0.0.4; charset=utf-8"
 
     def __init__(self, rulebook: Any) -> None:
-        self.identity = {"id": rulebook.id, "version": rulebook.version,
-                         "sha256": rulebook.sha256}
+        self.identity = {"id": rulebook.id, "version": rulebook.version, "sha256": rulebook.sha256}
         self._lock = threading.Lock()
         self.requests: Counter[tuple[str, str, int]] = Counter()
         self.cases: Counter[str] = Counter()
@@ -65,28 +64,35 @@ class Metrics:
             cases = sorted(self.cases.items())
             hist = {k: list(v) for k, v in sorted(self._hist.items())}
             sums = dict(self._sum)
-        out = ["# HELP gasrules_requests_total HTTP requests answered.",
-               "# TYPE gasrules_requests_total counter"]
-        out += [f"gasrules_requests_total{_labels(method=m, route=r, status=s)} {n}"
-                for (m, r, s), n in requests]
-        out += ["# HELP gasrules_request_duration_seconds Time from request to response.",
-                "# TYPE gasrules_request_duration_seconds histogram"]
+        out = [
+            "# HELP gasrules_requests_total HTTP requests answered.",
+            "# TYPE gasrules_requests_total counter",
+        ]
+        out += [
+            f"gasrules_requests_total{_labels(method=m, route=r, status=s)} {n}" for (m, r, s), n in requests
+        ]
+        out += [
+            "# HELP gasrules_request_duration_seconds Time from request to response.",
+            "# TYPE gasrules_request_duration_seconds histogram",
+        ]
         for route, counts in hist.items():
             running = 0
             for bound, n in zip((*BUCKETS, float("inf")), counts, strict=True):
                 running += n
                 le = "+Inf" if bound == float("inf") else repr(bound)
-                out.append(f"gasrules_request_duration_seconds_bucket"
-                           f"{_labels(route=route, le=le)} {running}")
-            out.append(f"gasrules_request_duration_seconds_sum{_labels(route=route)} "
-                       f"{sums[route]:.6f}")
+                out.append(f"gasrules_request_duration_seconds_bucket{_labels(route=route, le=le)} {running}")
+            out.append(f"gasrules_request_duration_seconds_sum{_labels(route=route)} {sums[route]:.6f}")
             out.append(f"gasrules_request_duration_seconds_count{_labels(route=route)} {running}")
-        out += ["# HELP gasrules_cases_total Cases interpreted, by result status.",
-                "# TYPE gasrules_cases_total counter"]
+        out += [
+            "# HELP gasrules_cases_total Cases interpreted, by result status.",
+            "# TYPE gasrules_cases_total counter",
+        ]
         out += [f"gasrules_cases_total{_labels(status=s)} {n}" for s, n in cases]
-        out += ["# HELP gasrules_rulebook_info The rulebook in force.",
-                "# TYPE gasrules_rulebook_info gauge",
-                f"gasrules_rulebook_info{_labels(**self.identity)} 1"]
+        out += [
+            "# HELP gasrules_rulebook_info The rulebook in force.",
+            "# TYPE gasrules_rulebook_info gauge",
+            f"gasrules_rulebook_info{_labels(**self.identity)} 1",
+        ]
         return ("\n".join(out) + "\n").encode("utf-8")
 
 
@@ -109,6 +115,7 @@ class _Counting:
         def counted_deliver() -> None:
             deliver()
             self.metrics.observe_case(str(result.get("status", "unknown")))
+
         return result, counted_deliver
 
     def record(self, case: Any, result: dict[str, Any]) -> None:
@@ -120,5 +127,5 @@ class _Counting:
     def close(self) -> None:
         self.inner.close()
 
-    def __getattr__(self, name: str) -> Any:   # e.g. the Runtime behind a RuntimeInterpreter
+    def __getattr__(self, name: str) -> Any:  # e.g. the Runtime behind a RuntimeInterpreter
         return getattr(self.inner, name)

@@ -44,13 +44,19 @@ __all__ = ["BoundServer", "make_server", "raw_error"]
 MAX_HEADER_BYTES = 16 * 1024
 
 
-def raw_error(status: int, reason: str, code: str, message: str,
-              extra: tuple[tuple[str, str], ...] = ()) -> bytes:
+def raw_error(
+    status: int, reason: str, code: str, message: str, extra: tuple[tuple[str, str], ...] = ()
+) -> bytes:
     """A complete HTTP/1.1 response with a JSON error body and ``Connection: close``."""
     body = orjson.dumps({"error": {"code": code, "message": message}})
-    head = [f"HTTP/1.1 {status} {reason}", "content-type: application/json",
-            f"content-length: {len(body)}", "connection: close", "cache-control: no-store",
-            *(f"{k}: {v}" for k, v in extra)]
+    head = [
+        f"HTTP/1.1 {status} {reason}",
+        "content-type: application/json",
+        f"content-length: {len(body)}",
+        "connection: close",
+        "cache-control: no-store",
+        *(f"{k}: {v}" for k, v in extra),
+    ]
     return ("\r\n".join(head) + "\r\n\r\n").encode("ascii") + body
 
 
@@ -96,29 +102,42 @@ class GuardMixin:
         self._deadline: asyncio.TimerHandle | None = None
         self._started = time.monotonic()
         if len(self.connections) > self.max_connections:
-            transport.write(raw_error(503, "Service Unavailable", "http.busy",
-                                      f"the service already holds {self.max_connections} "
-                                      "connections; retry shortly", (("retry-after", "1"),)))
+            transport.write(
+                raw_error(
+                    503,
+                    "Service Unavailable",
+                    "http.busy",
+                    f"the service already holds {self.max_connections} connections; retry shortly",
+                    (("retry-after", "1"),),
+                )
+            )
             transport.close()
             return
         self._arm()
 
     def send_400_response(self, msg: str) -> None:
         """The parser refused the request: a JSON 400 (uvicorn's own is plain text)."""
-        self.transport.write(raw_error(
-            400, "Bad Request", "http.bad_request", "the request is not valid HTTP/1.1: check "
-            "the request line and headers; Content-Length must be digits only, and repeated "
-            "Content-Length headers must agree"))
+        self.transport.write(
+            raw_error(
+                400,
+                "Bad Request",
+                "http.bad_request",
+                "the request is not valid HTTP/1.1: check "
+                "the request line and headers; Content-Length must be digits only, and repeated "
+                "Content-Length headers must agree",
+            )
+        )
         self.transport.close()
 
     def _arm(self, delay: float | None = None) -> None:
         self._disarm()
-        self._deadline = self.loop.call_later(delay if delay is not None else
-                                              self.request_timeout, self._on_deadline)
+        self._deadline = self.loop.call_later(
+            delay if delay is not None else self.request_timeout, self._on_deadline
+        )
 
     def _disarm(self) -> None:
         if getattr(self, "_deadline", None) is not None:
-            self._deadline.cancel()   # type: ignore[union-attr]
+            self._deadline.cancel()  # type: ignore[union-attr]
             self._deadline = None
 
     def data_received(self, data: bytes) -> None:
@@ -127,7 +146,7 @@ class GuardMixin:
             self._arm()
         super().data_received(data)
         scope = self.scope
-        if scope is not None and "extensions" not in scope:   # the guard's deadline starts here
+        if scope is not None and "extensions" not in scope:  # the guard's deadline starts here
             scope["extensions"] = {"gasrules.started": self._started}  # type: ignore[typeddict-unknown-key]
         if self._body_done():
             self._disarm()
@@ -154,9 +173,14 @@ class GuardMixin:
         if active and (cycle.response_started or self._body_done()):
             return
         if not active or not cycle.response_started:
-            self.transport.write(raw_error(408, "Request Timeout", "http.timeout",
-                                           f"the request was not received within "
-                                           f"{self.request_timeout:g} s"))
+            self.transport.write(
+                raw_error(
+                    408,
+                    "Request Timeout",
+                    "http.timeout",
+                    f"the request was not received within {self.request_timeout:g} s",
+                )
+            )
         if active:
             cycle.disconnected = True
             cycle.message_event.set()
@@ -181,15 +205,17 @@ def _httptools_protocol() -> type | None:
     return type("GuardedHttpToolsProtocol", (GuardMixin, HttpToolsProtocol), {})
 
 
-def protocol_class(request_timeout: float, max_connections: int, parser: str = "httptools"
-                   ) -> type:
+def protocol_class(request_timeout: float, max_connections: int, parser: str = "httptools") -> type:
     """The guarded protocol on ``parser``: ``httptools`` (llhttp, the default; faster) or
     ``h11`` (pure Python)."""
     base = _httptools_protocol() if parser == "httptools" else GuardedH11Protocol
     if base is None:
         raise ValueError("the httptools parser is not installed")
-    return type("GasrulesHttpProtocol", (base,),
-                {"request_timeout": request_timeout, "max_connections": max_connections})
+    return type(
+        "GasrulesHttpProtocol",
+        (base,),
+        {"request_timeout": request_timeout, "max_connections": max_connections},
+    )
 
 
 class _Server(uvicorn.Server):
@@ -207,12 +233,18 @@ class JsonLogHandler(logging.Handler):
 
     def emit(self, record: logging.LogRecord) -> None:
         try:
-            line = orjson.dumps({"ts": datetime.fromtimestamp(record.created, UTC).isoformat(
-                timespec="milliseconds"), "level": record.levelname.lower(),
-                "event": "server", "logger": record.name, "message": record.getMessage()})
+            line = orjson.dumps(
+                {
+                    "ts": datetime.fromtimestamp(record.created, UTC).isoformat(timespec="milliseconds"),
+                    "level": record.levelname.lower(),
+                    "event": "server",
+                    "logger": record.name,
+                    "message": record.getMessage(),
+                }
+            )
             sys.stderr.write(line.decode() + "\n")
             sys.stderr.flush()
-        except Exception:  # noqa: BLE001 - logging must never break serving
+        except Exception:
             self.handleError(record)
 
 
@@ -229,17 +261,37 @@ class BoundServer:
     """A uvicorn server on an already bound socket. ``serve_forever`` blocks (in any thread);
     ``shutdown`` asks it to stop and waits; ``server_address`` is the bound (host, port)."""
 
-    def __init__(self, app: Any, sock: socket.socket, *, request_timeout: float,
-                 keep_alive: float, max_connections: int, parser: str = "httptools",
-                 ssl_certfile: str | None = None, ssl_keyfile: str | None = None) -> None:
+    def __init__(
+        self,
+        app: Any,
+        sock: socket.socket,
+        *,
+        request_timeout: float,
+        keep_alive: float,
+        max_connections: int,
+        parser: str = "httptools",
+        ssl_certfile: str | None = None,
+        ssl_keyfile: str | None = None,
+    ) -> None:
         self.socket = sock
         self.server_address = sock.getsockname()[:2]
         self.config = uvicorn.Config(
-            app, http=protocol_class(request_timeout, max_connections, parser), loop="asyncio",
-            lifespan="on", ws="none", interface="asgi3", log_config=None, access_log=False,
-            server_header=False, proxy_headers=False, timeout_keep_alive=max(1, round(keep_alive)),
-            h11_max_incomplete_event_size=MAX_HEADER_BYTES, timeout_graceful_shutdown=5,
-            ssl_certfile=ssl_certfile, ssl_keyfile=ssl_keyfile)
+            app,
+            http=protocol_class(request_timeout, max_connections, parser),
+            loop="asyncio",
+            lifespan="on",
+            ws="none",
+            interface="asgi3",
+            log_config=None,
+            access_log=False,
+            server_header=False,
+            proxy_headers=False,
+            timeout_keep_alive=max(1, round(keep_alive)),
+            h11_max_incomplete_event_size=MAX_HEADER_BYTES,
+            timeout_graceful_shutdown=5,
+            ssl_certfile=ssl_certfile,
+            ssl_keyfile=ssl_keyfile,
+        )
         self.server = _Server(self.config)
         json_server_logs()
         self._done = threading.Event()
@@ -256,6 +308,7 @@ class BoundServer:
 
     def stop_on_signals(self) -> Callable[[], None]:
         """SIGINT and SIGTERM ask for a graceful stop (main thread only); returns a restorer."""
+
         def stop(*_: object) -> None:
             self.server.should_exit = True
 
@@ -266,9 +319,18 @@ class BoundServer:
         self.socket.close()
 
 
-def make_server(app: Any, host: str, port: int, *, request_timeout: float, keep_alive: float,
-                max_connections: int, parser: str = "httptools", ssl_certfile: str | None = None,
-                ssl_keyfile: str | None = None) -> BoundServer:
+def make_server(
+    app: Any,
+    host: str,
+    port: int,
+    *,
+    request_timeout: float,
+    keep_alive: float,
+    max_connections: int,
+    parser: str = "httptools",
+    ssl_certfile: str | None = None,
+    ssl_keyfile: str | None = None,
+) -> BoundServer:
     """Bind ``host:port`` (0 picks a free port) and wrap the ASGI ``app``. Raises OSError."""
     family = socket.AF_INET6 if ":" in host else socket.AF_INET
     # IPPROTO_TCP explicitly: asyncio turns Nagle off (TCP_NODELAY) only on sockets whose
@@ -283,6 +345,13 @@ def make_server(app: Any, host: str, port: int, *, request_timeout: float, keep_
         sock.close()
         raise
     sock.setblocking(False)
-    return BoundServer(app, sock, request_timeout=request_timeout, keep_alive=keep_alive,
-                       max_connections=max_connections, parser=parser, ssl_certfile=ssl_certfile,
-                       ssl_keyfile=ssl_keyfile)
+    return BoundServer(
+        app,
+        sock,
+        request_timeout=request_timeout,
+        keep_alive=keep_alive,
+        max_connections=max_connections,
+        parser=parser,
+        ssl_certfile=ssl_certfile,
+        ssl_keyfile=ssl_keyfile,
+    )

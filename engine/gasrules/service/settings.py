@@ -45,23 +45,39 @@ __all__ = ["SERVE_KEYS", "serve_section"]
 
 # key -> (kind, low, high)
 SERVE_KEYS: dict[str, tuple[str, float, float]] = {
-    "host": ("str", 0, 0), "port": ("int", 0, 65535),
-    "max_body": ("int", 1024, 1 << 30), "timeout": ("float", 0.1, 3600),
-    "keep_alive": ("float", 0.5, 600), "max_batch": ("int", 1, 1_000_000),
-    "max_connections": ("int", 1, 100_000), "max_concurrency": ("int", 1, 10_000),
-    "max_depth": ("int", 2, 1000), "max_case_fields": ("int", 8, 100_000),
-    "response_floor": ("int", 1024, 1 << 31), "response_ratio": ("int", 1, 100_000),
-    "cors_origins": ("list", 0, 0), "cds_keys": ("path", 0, 0),
-    "cds_window_minutes": ("float", 0, 1440), "feedback_log": ("path", 0, 0),
-    "access_log": ("bool", 0, 0), "http_parser": ("parser", 0, 0), "tls_certfile": ("path", 0, 0), "tls_keyfile": ("path", 0, 0),
+    "host": ("str", 0, 0),
+    "port": ("int", 0, 65535),
+    "max_body": ("int", 1024, 1 << 30),
+    "timeout": ("float", 0.1, 3600),
+    "keep_alive": ("float", 0.5, 600),
+    "max_batch": ("int", 1, 1_000_000),
+    "max_connections": ("int", 1, 100_000),
+    "max_concurrency": ("int", 1, 10_000),
+    "max_depth": ("int", 2, 1000),
+    "max_case_fields": ("int", 8, 100_000),
+    "response_floor": ("int", 1024, 1 << 31),
+    "response_ratio": ("int", 1, 100_000),
+    "cors_origins": ("list", 0, 0),
+    "cds_keys": ("path", 0, 0),
+    "cds_window_minutes": ("float", 0, 1440),
+    "feedback_log": ("path", 0, 0),
+    "access_log": ("bool", 0, 0),
+    "http_parser": ("parser", 0, 0),
+    "tls_certfile": ("path", 0, 0),
+    "tls_keyfile": ("path", 0, 0),
 }
 
 
 def _accepted(kind: str, low: float, high: float) -> str:
-    return {"int": f"a whole number from {low:g} to {high:g}",
-            "float": f"a number from {low:g} to {high:g}", "str": "a non-empty string",
-            "path": "a file path", "bool": "true or false",
-            "list": "a list of strings", "parser": "httptools or h11"}[kind]
+    return {
+        "int": f"a whole number from {low:g} to {high:g}",
+        "float": f"a number from {low:g} to {high:g}",
+        "str": "a non-empty string",
+        "path": "a file path",
+        "bool": "true or false",
+        "list": "a list of strings",
+        "parser": "httptools or h11",
+    }[kind]
 
 
 def convert(key: str, value: Any, where: str, base: Path | None) -> Any:
@@ -108,15 +124,18 @@ def serve_section(file: str | os.PathLike[str] | None) -> dict[str, Any]:
     doc, problems = load_document(path)
     if problems or doc is None:
         first = problems[0] if problems else None
-        raise SettingsError("--settings", first.message if first else "cannot read the file",
-                            "a readable YAML mapping", str(first.location) if first else str(path))
+        raise SettingsError(
+            "--settings",
+            first.message if first else "cannot read the file",
+            "a readable YAML mapping",
+            str(first.location) if first else str(path),
+        )
     data = doc.data if isinstance(doc.data, dict) else {}
     section = data.get("serve")
     if section is None:
         return {}
     if not isinstance(section, dict):
-        raise SettingsError("serve", "expected a mapping", ", ".join(SERVE_KEYS),
-                            str(doc.locate(("serve",))))
+        raise SettingsError("serve", "expected a mapping", ", ".join(SERVE_KEYS), str(doc.locate(("serve",))))
     out: dict[str, Any] = {}
     for key, value in section.items():
         where = str(doc.locate(("serve", key)))

@@ -15,10 +15,11 @@ reason it cannot be read.
 from __future__ import annotations
 
 import csv
+from collections.abc import Iterator
 from dataclasses import dataclass
-from typing import BinaryIO, Iterator
+from typing import BinaryIO
 
-__all__ = ["FIELD_LIMIT", "DELIMITERS", "Record", "CsvHeaderError", "read_records"]
+__all__ = ["DELIMITERS", "FIELD_LIMIT", "CsvHeaderError", "Record", "read_records"]
 
 FIELD_LIMIT = 1_048_576
 DELIMITERS = (",", ";", "\t")
@@ -35,8 +36,8 @@ class CsvHeaderError(ValueError):
 
 @dataclass(slots=True)
 class Record:
-    line: int                       # first physical line of the record (1-based)
-    fields: list[str] | None        # None when the record cannot be read
+    line: int  # first physical line of the record (1-based)
+    fields: list[str] | None  # None when the record cannot be read
     error: str = ""
 
 
@@ -48,9 +49,9 @@ def _quote_state(line: bytes, inside: bool, delimiter: int) -> bool:
     while i < n:
         c = line[i]
         if inside:
-            if c == 34:                                   # '"'
+            if c == 34:  # '"'
                 if i + 1 < n and line[i + 1] == 34:
-                    i += 1                                # an escaped quote
+                    i += 1  # an escaped quote
                 else:
                     inside, at_start = False, False
         elif c == 34 and at_start:
@@ -127,8 +128,10 @@ def _parse(data: bytes, delimiter: str) -> tuple[list[str] | None, str]:
     return fields, ""
 
 
-def read_records(f: BinaryIO, field_limit: int = FIELD_LIMIT,
-                 ) -> tuple[str, list[str], Iterator[Record], CsvHeaderError | None]:
+def read_records(
+    f: BinaryIO,
+    field_limit: int = FIELD_LIMIT,
+) -> tuple[str, list[str], Iterator[Record], CsvHeaderError | None]:
     """(delimiter, header fields, the data records, the header's collapse into one column or
     None). Raises CsvHeaderError for a file that is UTF-16 or whose header cannot be read; the
     caller raises the collapse after checking the header's names (a more precise message)."""
@@ -149,8 +152,9 @@ def read_records(f: BinaryIO, field_limit: int = FIELD_LIMIT,
     try:
         header_text = _strip_eol(data).decode("utf-8")
     except UnicodeDecodeError as exc:
-        raise CsvHeaderError(line, f"the header holds byte 0x{data[exc.start]:02x}, which is not UTF-8",
-                             "a UTF-8 header") from None
+        raise CsvHeaderError(
+            line, f"the header holds byte 0x{data[exc.start]:02x}, which is not UTF-8", "a UTF-8 header"
+        ) from None
     delimiter = sniff_delimiter(header_text)
     holder[0] = ord(delimiter)
     header, why = _parse(data, delimiter)
@@ -162,20 +166,26 @@ def read_records(f: BinaryIO, field_limit: int = FIELD_LIMIT,
         bare = _outside_quotes(_strip_eol(peeked[1]).decode("utf-8", "replace"))
         used = [d for d in DELIMITERS if d in bare]
         if used:
-            collapsed = CsvHeaderError(line, f"the header is one column but line {peeked[0]} holds "
-                                       f"{_NAMES[used[0]]} delimiters", "a header written with the same delimiter "
-                                       "as the rows (comma, semicolon or tab)")
+            collapsed = CsvHeaderError(
+                line,
+                f"the header is one column but line {peeked[0]} holds {_NAMES[used[0]]} delimiters",
+                "a header written with the same delimiter as the rows (comma, semicolon or tab)",
+            )
     return delimiter, header, _records(peeked, records, delimiter, field_limit), collapsed
 
 
-def _records(peeked: tuple[int, bytes | None, int] | None, records: Iterator[tuple[int, bytes | None, int]],
-             delimiter: str, limit: int) -> Iterator[Record]:
+def _records(
+    peeked: tuple[int, bytes | None, int] | None,
+    records: Iterator[tuple[int, bytes | None, int]],
+    delimiter: str,
+    limit: int,
+) -> Iterator[Record]:
     def one(item: tuple[int, bytes | None, int]) -> Record | None:
         line, data, size = item
         if data is None:
             return Record(line, None, f"a field or row longer than the limit of {limit} bytes ({size} bytes)")
         if not data.strip(b"\r\n"):
-            return None                    # a blank line is not a row
+            return None  # a blank line is not a row
         fields, why = _parse(data, delimiter)
         return Record(line, fields, why)
 

@@ -29,10 +29,11 @@ Dask client or a progress thread does); the caller's ``__main__`` must be import
 from __future__ import annotations
 
 from collections import deque
+from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from itertools import islice
-from typing import Any, Callable, Generic, Iterable, Iterator, TypeVar
+from typing import Any, Generic, TypeVar
 
 __all__ = ["OrderedPool", "PoolError", "chunked", "imap_ordered", "interpret_many"]
 
@@ -90,8 +91,15 @@ def chunked(items: Iterable[C], size: int) -> Iterator[list[C]]:
 class OrderedPool(Generic[P, C, R]):
     """Apply ``fn(payload, chunk)`` to a stream of chunks on ``workers`` processes, in order."""
 
-    def __init__(self, fn: Callable[[P, C], R], payload: P = None, workers: int = 1, *,
-                 window: int | None = None, start_method: str = "spawn") -> None:
+    def __init__(
+        self,
+        fn: Callable[[P, C], R],
+        payload: P = None,
+        workers: int = 1,
+        *,
+        window: int | None = None,
+        start_method: str = "spawn",
+    ) -> None:
         if workers < 1:
             raise ValueError(f"workers must be 1 or more, got {workers}")
         self.fn, self.payload, self.workers = fn, payload, int(workers)
@@ -101,7 +109,7 @@ class OrderedPool(Generic[P, C, R]):
         self.start_method = start_method
         self._executor: ProcessPoolExecutor | None = None
 
-    def __enter__(self) -> "OrderedPool[P, C, R]":
+    def __enter__(self) -> OrderedPool[P, C, R]:
         self.start()
         return self
 
@@ -111,12 +119,14 @@ class OrderedPool(Generic[P, C, R]):
     def start(self) -> None:
         if self.workers > 1 and self._executor is None:
             import multiprocessing as mp
-
             import os
 
             self._executor = ProcessPoolExecutor(
-                self.workers, mp_context=mp.get_context(self.start_method),
-                initializer=_init_worker, initargs=(self.payload, os.getpid()))
+                self.workers,
+                mp_context=mp.get_context(self.start_method),
+                initializer=_init_worker,
+                initargs=(self.payload, os.getpid()),
+            )
 
     def close(self) -> None:
         if self._executor is not None:
@@ -143,7 +153,7 @@ class OrderedPool(Generic[P, C, R]):
             for f in pending:
                 f.cancel()
 
-    def _submit(self, chunk: C) -> "Future[R]":
+    def _submit(self, chunk: C) -> Future[R]:
         assert self._executor is not None
         try:
             return self._executor.submit(_call, self.fn, chunk)
@@ -151,19 +161,22 @@ class OrderedPool(Generic[P, C, R]):
             raise PoolError(_DIED) from exc
 
     @staticmethod
-    def _result(future: "Future[R]") -> R:
+    def _result(future: Future[R]) -> R:
         try:
             return future.result()
         except BrokenProcessPool as exc:
             raise PoolError(_DIED) from exc
 
 
-_DIED = ("a worker process died before returning its chunk (killed or out of memory); "
-         "the run stops so that no row is lost silently")
+_DIED = (
+    "a worker process died before returning its chunk (killed or out of memory); "
+    "the run stops so that no row is lost silently"
+)
 
 
-def imap_ordered(fn: Callable[[P, C], R], chunks: Iterable[C], payload: P = None,
-                 workers: int = 1, **options: Any) -> Iterator[R]:
+def imap_ordered(
+    fn: Callable[[P, C], R], chunks: Iterable[C], payload: P = None, workers: int = 1, **options: Any
+) -> Iterator[R]:
     """One-shot form of :class:`OrderedPool`: start, map in order, shut down."""
     with OrderedPool(fn, payload, workers, **options) as pool:
         yield from pool.map(chunks)
@@ -176,8 +189,9 @@ def _interpret_chunk(job: tuple[Any, bool], cases: list[Any]) -> list[dict[str, 
     return [interpret(rulebook, case, trace) for case in cases]
 
 
-def interpret_many(rulebook: Any, cases: Iterable[Any], workers: int = 1, trace: bool = True,
-                   chunksize: int = 256) -> Iterator[dict[str, Any]]:
+def interpret_many(
+    rulebook: Any, cases: Iterable[Any], workers: int = 1, trace: bool = True, chunksize: int = 256
+) -> Iterator[dict[str, Any]]:
     """Results in input order, one per case (bad cases rejected inline), on the same bounded,
     ordered pool as ``batch``: the input is read only as fast as results are taken."""
     import gc

@@ -42,32 +42,64 @@ everything from ``gasrules.tables.readers``. pyarrow is imported only when Parqu
 
 from __future__ import annotations
 
-import csv
 import json
 import math
 import os
 import re
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterator, Mapping, Sequence
+from typing import Any
 
 from gasrules.core import units as U
-from gasrules.tables.writers import Column, Encoder, TableWriter, arrow_schema, json_safe, open_writer, read_back, temp_path_for
+from gasrules.tables.writers import (
+    Column,
+    Encoder,
+    TableWriter,
+    arrow_schema,
+    json_safe,
+    open_writer,
+    read_back,
+    temp_path_for,
+)
 
 __all__ = [
-    "FORMATS", "Column", "ColumnMapping", "Encoder", "Row", "Table", "TableError", "TableWriter",
-    "analytes_of", "arrow_schema", "detect_format", "interpret_row", "json_safe", "load_mapping",
-    "mapping_from_data", "open_table", "open_writer", "parquet_files", "read_back",
-    "rejected_result", "temp_path_for",
+    "FORMATS",
+    "Column",
+    "ColumnMapping",
+    "Encoder",
+    "Row",
+    "Table",
+    "TableError",
+    "TableWriter",
+    "analytes_of",
+    "arrow_schema",
+    "detect_format",
+    "interpret_row",
+    "json_safe",
+    "load_mapping",
+    "mapping_from_data",
+    "open_table",
+    "open_writer",
+    "parquet_files",
+    "read_back",
+    "rejected_result",
+    "temp_path_for",
 ]
 
 FORMATS = ("csv", "jsonl", "parquet")
-_SUFFIXES = {".csv": "csv", ".jsonl": "jsonl", ".ndjson": "jsonl",
-             ".json": "jsonl", ".parquet": "parquet", ".pq": "parquet"}
+_SUFFIXES = {
+    ".csv": "csv",
+    ".jsonl": "jsonl",
+    ".ndjson": "jsonl",
+    ".json": "jsonl",
+    ".parquet": "parquet",
+    ".pq": "parquet",
+}
 _HEADER_UNIT = re.compile(r"^\s*(?P<name>[^\[\(]*?)\s*(?:\[(?P<u1>.+)\]|\((?P<u2>.+)\))\s*$")
 _ROLES = ("case_id", "pass")
 _DECIMAL_COMMA = re.compile(r"^\s*[+-]?[0-9]+,[0-9]+\s*$")
-READ_BATCH = 4096          # Parquet rows decoded at a time
+READ_BATCH = 4096  # Parquet rows decoded at a time
 
 
 class TableError(ValueError):
@@ -81,14 +113,15 @@ class TableError(ValueError):
 
 # ----------------------------------------------------------------------------- rows
 
+
 @dataclass(slots=True)
 class Row:
     """One input row. ``case`` is in the engine's case contract; ``passthrough`` maps the
     non-analyte columns to their values exactly as read; ``errors`` (result-contract error
     dicts) is non-empty only when the row itself could not be read."""
 
-    index: int                       # 0-based position among the rows of the input
-    where: str                       # "file.csv:17" (physical line) or "part.parquet:row 12"
+    index: int  # 0-based position among the rows of the input
+    where: str  # "file.csv:17" (physical line) or "part.parquet:row 12"
     case: dict[str, Any]
     passthrough: dict[str, Any]
     errors: list[dict[str, str]] = field(default_factory=list)
@@ -112,8 +145,9 @@ def rejected_result(rulebook: Any, row: Row) -> dict[str, Any]:
     ctx = row.case.get("context")
     result["context"] = dict(ctx) if isinstance(ctx, Mapping) else {}
     result["errors"] = list(row.errors)
-    result["not_assessed"] = [{"what": "interpretation", "why": "input rejected: " + "; ".join(
-        e["message"] for e in row.errors)}]
+    result["not_assessed"] = [
+        {"what": "interpretation", "why": "input rejected: " + "; ".join(e["message"] for e in row.errors)}
+    ]
     return result
 
 
@@ -127,19 +161,24 @@ def interpret_row(rulebook: Any, row: Row, trace: bool = False) -> dict[str, Any
 
 
 def _unreadable(where: str, message: str, accepted: str, field_: str = "row") -> dict[str, str]:
-    return {"field": field_, "code": "input.unreadable", "message": f"{where}: {message}",
-            "accepted": accepted}
+    return {
+        "field": field_,
+        "code": "input.unreadable",
+        "message": f"{where}: {message}",
+        "accepted": accepted,
+    }
 
 
 # ----------------------------------------------------------------------------- mapping
+
 
 @dataclass(frozen=True)
 class Target:
     """What one column is: an input (with the unit its values are in), the case id, or pass."""
 
-    role: str                        # "input" | "case_id" | "pass"
-    name: str = ""                   # input name (role input) or output name (role pass)
-    unit: str = ""                   # UCUM code of the values; "" = canonical / not a number
+    role: str  # "input" | "case_id" | "pass"
+    name: str = ""  # input name (role input) or output name (role pass)
+    unit: str = ""  # UCUM code of the values; "" = canonical / not a number
 
 
 @dataclass(frozen=True)
@@ -173,8 +212,11 @@ def load_mapping(path: str | Path) -> ColumnMapping:
 
 def mapping_from_data(data: Any, source: str = "<mapping>") -> ColumnMapping:
     if not isinstance(data, dict) or set(data) - {"columns", "passthrough"}:
-        raise TableError(source, "a mapping must be an object with 'columns' and/or 'passthrough'",
-                         "{columns: {header: input | {input: name, unit: code}}, passthrough: [key]}")
+        raise TableError(
+            source,
+            "a mapping must be an object with 'columns' and/or 'passthrough'",
+            "{columns: {header: input | {input: name, unit: code}}, passthrough: [key]}",
+        )
     cols: dict[str, tuple[str, str]] = {}
     raw_cols = data.get("columns") or {}
     if not isinstance(raw_cols, dict):
@@ -183,12 +225,19 @@ def mapping_from_data(data: Any, source: str = "<mapping>") -> ColumnMapping:
         where = f"{source}: columns.{header}"
         if isinstance(spec, str):
             cols[str(header).strip()] = (spec.strip(), "")
-        elif isinstance(spec, dict) and isinstance(spec.get("input"), str) and not (
-                set(spec) - {"input", "unit"}) and isinstance(spec.get("unit", ""), str):
+        elif (
+            isinstance(spec, dict)
+            and isinstance(spec.get("input"), str)
+            and not (set(spec) - {"input", "unit"})
+            and isinstance(spec.get("unit", ""), str)
+        ):
             cols[str(header).strip()] = (spec["input"].strip(), str(spec.get("unit", "")).strip())
         else:
-            raise TableError(where, f"cannot read {spec!r}",
-                             "an input name, 'case_id', 'pass' or {input: name, unit: code}")
+            raise TableError(
+                where,
+                f"cannot read {spec!r}",
+                "an input name, 'case_id', 'pass' or {input: name, unit: code}",
+            )
     passthrough = data.get("passthrough") or []
     if not isinstance(passthrough, list) or not all(isinstance(k, str) for k in passthrough):
         raise TableError(f"{source}: passthrough", "must be a list of key names", "[ward, bed]")
@@ -204,8 +253,9 @@ def _unit_code(where: str, name: str, unit: str, accepted: Sequence[str]) -> str
     return "" if code == accepted[0] else code
 
 
-def resolve_column(header: str, where: str, analytes: Mapping[str, Sequence[str]],
-                   mapping: ColumnMapping | None) -> Target:
+def resolve_column(
+    header: str, where: str, analytes: Mapping[str, Sequence[str]], mapping: ColumnMapping | None
+) -> Target:
     """What a header means: the mapping first, then the name (with an optional unit)."""
     text = header.strip()
     m = _HEADER_UNIT.match(text)
@@ -224,13 +274,19 @@ def resolve_column(header: str, where: str, analytes: Mapping[str, Sequence[str]
     if key in analytes:
         return Target("input", key, _unit_code(where, key, unit, analytes[key]) if unit else "")
     if mapping is not None and text in mapping.columns:
-        raise TableError(where, f"'{name}' is not an input of the rulebook",
-                         "one of " + ", ".join(sorted(analytes)) + ", case_id or pass")
+        raise TableError(
+            where,
+            f"'{name}' is not an input of the rulebook",
+            "one of " + ", ".join(sorted(analytes)) + ", case_id or pass",
+        )
     likely = None if mapping is not None and text in mapping.passthrough else looks_like_input(key, analytes)
     if likely is not None:
-        raise TableError(where, f"looks like input '{likely}' but is not one of its names",
-                         f"the column named {likely} (with [unit] if needed), or mapped (columns: {{\"{text}\": "
-                         f"{{input: {likely}}}}}) or declared pass-through (passthrough: [\"{text}\"]) in a mapping file")
+        raise TableError(
+            where,
+            f"looks like input '{likely}' but is not one of its names",
+            f'the column named {likely} (with [unit] if needed), or mapped (columns: {{"{text}": '
+            f'{{input: {likely}}}}}) or declared pass-through (passthrough: ["{text}"]) in a mapping file',
+        )
     return Target("pass", text)
 
 
@@ -238,14 +294,47 @@ def resolve_column(header: str, where: str, analytes: Mapping[str, Sequence[str]
 # or within one edit of an input name or alias of 4 characters or more, "looks like an input":
 # it is an error unless it is mapped or declared pass-through, never silently passed through.
 COLUMN_ALIASES: dict[str, str] = {
-    "paco2": "pco2", "pvco2": "pco2", "pco₂": "pco2", "co2": "pco2", "pao2": "po2", "pvo2": "po2", "po₂": "po2",
-    "bicarb": "hco3", "bicarbonate": "hco3", "hco3-": "hco3", "hco₃": "hco3", "hco₃-": "hco3", "std_hco3": "hco3",
-    "sodium": "na", "na+": "na", "potassium": "k", "k+": "k", "chloride": "cl", "cl-": "cl",
-    "lac": "lactate", "lactic_acid": "lactate", "alb": "albumin", "sao2": "so2", "svo2": "so2",
-    "fio₂": "fio2", "fi02": "fio2", "glu": "glucose", "creat": "creatinine", "hgb": "hb", "haemoglobin": "hb",
-    "hemoglobin": "hb", "temp": "temperature", "be": "base_excess", "abe": "base_excess", "sbe": "base_excess",
-    "osm": "osmolality", "mg": "magnesium", "phos": "phosphate", "ica": "ionized_calcium",
-    "ionised_calcium": "ionized_calcium", "ph_value": "ph",
+    "paco2": "pco2",
+    "pvco2": "pco2",
+    "pco₂": "pco2",
+    "co2": "pco2",
+    "pao2": "po2",
+    "pvo2": "po2",
+    "po₂": "po2",
+    "bicarb": "hco3",
+    "bicarbonate": "hco3",
+    "hco3-": "hco3",
+    "hco₃": "hco3",
+    "hco₃-": "hco3",
+    "std_hco3": "hco3",
+    "sodium": "na",
+    "na+": "na",
+    "potassium": "k",
+    "k+": "k",
+    "chloride": "cl",
+    "cl-": "cl",
+    "lac": "lactate",
+    "lactic_acid": "lactate",
+    "alb": "albumin",
+    "sao2": "so2",
+    "svo2": "so2",
+    "fio₂": "fio2",
+    "fi02": "fio2",
+    "glu": "glucose",
+    "creat": "creatinine",
+    "hgb": "hb",
+    "haemoglobin": "hb",
+    "hemoglobin": "hb",
+    "temp": "temperature",
+    "be": "base_excess",
+    "abe": "base_excess",
+    "sbe": "base_excess",
+    "osm": "osmolality",
+    "mg": "magnesium",
+    "phos": "phosphate",
+    "ica": "ionized_calcium",
+    "ionised_calcium": "ionized_calcium",
+    "ph_value": "ph",
 }
 
 
@@ -258,7 +347,7 @@ def _edits1(a: str, b: str) -> bool:
     i = 0
     while i < len(a) and a[i] == b[i]:
         i += 1
-    return a[i + (len(a) == len(b)):] == b[i + 1:]
+    return a[i + (len(a) == len(b)) :] == b[i + 1 :]
 
 
 def looks_like_input(key: str, analytes: Mapping[str, Sequence[str]]) -> str | None:
@@ -276,29 +365,32 @@ def looks_like_input(key: str, analytes: Mapping[str, Sequence[str]]) -> str | N
     return None
 
 
-def resolve_header(headers: Sequence[str], source: str, analytes: Mapping[str, Sequence[str]],
-                   mapping: ColumnMapping | None) -> list[Target]:
+def resolve_header(
+    headers: Sequence[str], source: str, analytes: Mapping[str, Sequence[str]], mapping: ColumnMapping | None
+) -> list[Target]:
     targets: list[Target] = []
     seen: dict[str, str] = {}
     passed: set[str] = set()
     for i, h in enumerate(headers, start=1):
         where = f"{source}: column {i} '{h}'"
         t = resolve_column(str(h), where, analytes, mapping)
-        if t.role == "pass":                  # a repeated header keeps both columns: name_<n>
+        if t.role == "pass":  # a repeated header keeps both columns: name_<n>
             name = t.name if t.name not in passed else f"{t.name}_{i}"
             passed.add(name)
             t = Target("pass", name)
         key = t.name if t.role == "input" else (t.role if t.role == "case_id" else "")
         if key:
             if key in seen:
-                raise TableError(where, f"{key} is already given by column {seen[key]}",
-                                 "one column per input")
+                raise TableError(
+                    where, f"{key} is already given by column {seen[key]}", "one column per input"
+                )
             seen[key] = f"{i} '{h}'"
         targets.append(t)
     return targets
 
 
 # ----------------------------------------------------------------------------- reading
+
 
 def detect_format(path: str | Path, fmt: str | None = None) -> str:
     if fmt:
@@ -310,8 +402,11 @@ def detect_format(path: str | Path, fmt: str | None = None) -> str:
         return "parquet"
     found = _SUFFIXES.get(p.suffix.lower())
     if found is None:
-        raise TableError(str(path), f"cannot tell the format from the suffix '{p.suffix}'",
-                         "a .csv, .jsonl or .parquet file, or --format")
+        raise TableError(
+            str(path),
+            f"cannot tell the format from the suffix '{p.suffix}'",
+            "a .csv, .jsonl or .parquet file, or --format",
+        )
     return found
 
 
@@ -321,8 +416,11 @@ def parquet_files(path: str | Path) -> list[Path]:
     p = Path(path)
     if p.is_file():
         return [p]
-    files = sorted(f for f in p.rglob("*.parquet") if not any(
-        part.startswith((".", "_")) for part in f.relative_to(p).parts))
+    files = sorted(
+        f
+        for f in p.rglob("*.parquet")
+        if not any(part.startswith((".", "_")) for part in f.relative_to(p).parts)
+    )
     if not files:
         raise TableError(str(p), "no .parquet files in this directory", "one or more part files")
     return files
@@ -337,10 +435,18 @@ class Table:
     passthrough_types: dict[str, Any]
     fmt: str
 
-    def __init__(self, path: Path, fmt: str, analytes: Mapping[str, Sequence[str]],
-                 mapping: ColumnMapping | None, start: int = 0,
-                 row_groups: Sequence[int] | None = None, *, decimal_comma: bool = False,
-                 field_limit: int | None = None) -> None:
+    def __init__(
+        self,
+        path: Path,
+        fmt: str,
+        analytes: Mapping[str, Sequence[str]],
+        mapping: ColumnMapping | None,
+        start: int = 0,
+        row_groups: Sequence[int] | None = None,
+        *,
+        decimal_comma: bool = False,
+        field_limit: int | None = None,
+    ) -> None:
         from gasrules.tables.csvread import FIELD_LIMIT
 
         self.path, self.fmt, self.analytes, self.mapping = path, fmt, analytes, mapping
@@ -354,7 +460,7 @@ class Table:
         getattr(self, "_open_" + fmt)()
 
     # context manager and iteration
-    def __enter__(self) -> "Table":
+    def __enter__(self) -> Table:
         return self
 
     def __exit__(self, *exc: Any) -> None:
@@ -385,8 +491,11 @@ class Table:
         except CsvHeaderError as exc:
             raise TableError(f"{self.path}:{exc.line}", exc.message, exc.expected) from None
         if self.decimal_comma and self.delimiter == ",":
-            raise TableError(str(self.path), "--decimal-comma is ambiguous in a comma-delimited file",
-                             "a semicolon- or tab-delimited file for numbers written with a decimal comma")
+            raise TableError(
+                str(self.path),
+                "--decimal-comma is ambiguous in a comma-delimited file",
+                "a semicolon- or tab-delimited file for numbers written with a decimal comma",
+            )
         targets = resolve_header(headers, str(self.path), self.analytes, self.mapping)
         if collapsed is not None:
             raise TableError(f"{self.path}:{collapsed.line}", collapsed.message, collapsed.expected)
@@ -403,8 +512,13 @@ class Table:
             where = f"{name}:{rec.line}"
             fields = rec.fields
             if fields is None:
-                yield Row(index, where, {"case_id": None, "context": {}}, {h: None for h in self.passthrough},
-                          [_unreadable(where, rec.error, "comma-, semicolon- or tab-separated UTF-8 fields")])
+                yield Row(
+                    index,
+                    where,
+                    {"case_id": None, "context": {}},
+                    {h: None for h in self.passthrough},
+                    [_unreadable(where, rec.error, "comma-, semicolon- or tab-separated UTF-8 fields")],
+                )
                 index += 1
                 continue
             passthrough: dict[str, Any] = {}
@@ -424,11 +538,13 @@ class Table:
             errors = []
             if len(fields) != n:
                 if len(fields) > n:
-                    extra = ", ".join(repr(x[:40]) for x in fields[n:n + 3])
+                    extra = ", ".join(repr(x[:40]) for x in fields[n : n + 3])
                     msg = f"{len(fields)} fields but the header has {n} (extra: {extra})"
                 else:
-                    msg = (f"{len(fields)} fields but the header has {n} (missing from column "
-                           f"{len(fields) + 1} '{headers[len(fields)]}')")
+                    msg = (
+                        f"{len(fields)} fields but the header has {n} (missing from column "
+                        f"{len(fields) + 1} '{headers[len(fields)]}')"
+                    )
                 errors.append(_unreadable(where, msg, f"exactly {n} fields, one per header column"))
             yield Row(index, where, case, passthrough, errors)
             index += 1
@@ -454,7 +570,7 @@ class Table:
                 try:
                     t = resolve_column(key, f"{self.path}: key '{key}'", self.analytes, self.mapping)
                 except TableError:
-                    t = None                  # the engine rejects the key, naming it
+                    t = None  # the engine rejects the key, naming it
                 if t is not None and t.role == "pass":
                     t = None
             self._key_cache[key] = t
@@ -473,14 +589,29 @@ class Table:
                 obj = orjson.loads(raw)
             except orjson.JSONDecodeError as exc:
                 msg = str(exc).split(":", 1)[0]
-                yield Row(index, where, {"case_id": None, "context": {}}, {k: None for k in self.passthrough},
-                          [_unreadable(where, f"not valid JSON: {msg}", "one JSON object per line")])
+                yield Row(
+                    index,
+                    where,
+                    {"case_id": None, "context": {}},
+                    {k: None for k in self.passthrough},
+                    [_unreadable(where, f"not valid JSON: {msg}", "one JSON object per line")],
+                )
                 index += 1
                 continue
             if not isinstance(obj, dict):
-                yield Row(index, where, {"case_id": None, "context": {}}, {k: None for k in self.passthrough},
-                          [_unreadable(where, f"a line must hold a JSON object, not {type(obj).__name__}",
-                                       "one JSON object per line")])
+                yield Row(
+                    index,
+                    where,
+                    {"case_id": None, "context": {}},
+                    {k: None for k in self.passthrough},
+                    [
+                        _unreadable(
+                            where,
+                            f"a line must hold a JSON object, not {type(obj).__name__}",
+                            "one JSON object per line",
+                        )
+                    ],
+                )
                 index += 1
                 continue
             passthrough = {k: obj.pop(k, None) for k in listed}
@@ -530,15 +661,22 @@ class Table:
         if self.row_groups is not None and len(files) > 1:
             raise TableError(str(self.path), "row groups can be chosen in a single file only")
         meta = first.metadata
-        total = sum(pq.ParquetFile(f).metadata.num_rows for f in files) if len(files) > 1 else (
-            meta.num_rows if self.row_groups is None else
-            sum(meta.row_group(i).num_rows for i in self.row_groups))
+        total = (
+            sum(pq.ParquetFile(f).metadata.num_rows for f in files)
+            if len(files) > 1
+            else (
+                meta.num_rows
+                if self.row_groups is None
+                else sum(meta.row_group(i).num_rows for i in self.row_groups)
+            )
+        )
         done = [0]
         self._progress = lambda: min(done[0] / max(total, 1), 1.0)
         self._rows = self._parquet_rows(files, first, headers, targets, done)
 
-    def _parquet_rows(self, files: list[Path], first: Any, headers: list[str],
-                      targets: list[Target], done: list[int]) -> Iterator[Row]:
+    def _parquet_rows(
+        self, files: list[Path], first: Any, headers: list[str], targets: list[Target], done: list[int]
+    ) -> Iterator[Row]:
         import pyarrow.parquet as pq
 
         plan = [(h, t.role, t.name, t.unit) for h, t in zip(headers, targets)]
@@ -548,11 +686,14 @@ class Table:
             if n:
                 self._close.append(pf)
                 if list(pf.schema_arrow.names) != headers:
-                    raise TableError(str(path), "its columns differ from the first file's "
-                                     f"({files[0].name})", ", ".join(headers))
+                    raise TableError(
+                        str(path),
+                        f"its columns differ from the first file's ({files[0].name})",
+                        ", ".join(headers),
+                    )
             label = path.name if len(files) == 1 else str(path.relative_to(self.path))
             at, groups = 0, self.row_groups
-            if groups is not None:           # row numbers stay those of the whole file
+            if groups is not None:  # row numbers stay those of the whole file
                 at = sum(pf.metadata.row_group(i).num_rows for i in range(min(groups, default=0)))
             for batch in pf.iter_batches(batch_size=READ_BATCH, row_groups=groups):
                 for rec in batch.to_pylist():
@@ -562,8 +703,9 @@ class Table:
                 done[0] += batch.num_rows
 
     @staticmethod
-    def _parquet_row(index: int, where: str, rec: dict[str, Any],
-                     plan: list[tuple[str, str, str, str]]) -> Row:
+    def _parquet_row(
+        index: int, where: str, rec: dict[str, Any], plan: list[tuple[str, str, str, str]]
+    ) -> Row:
         passthrough: dict[str, Any] = {}
         context: dict[str, Any] = {}
         case: dict[str, Any] = {"case_id": None, "context": context}
@@ -573,7 +715,7 @@ class Table:
                 passthrough[h] = value
                 context[h] = json_safe(value)
             elif value is None or value == "" or (isinstance(value, float) and math.isnan(value)):
-                continue                      # not measured (null, empty text or NaN)
+                continue  # not measured (null, empty text or NaN)
             elif role == "input":
                 case[key] = {"value": value, "unit": unit} if unit else value
             else:
@@ -581,10 +723,17 @@ class Table:
         return Row(index, where, case, passthrough)
 
 
-def open_table(path: str | Path, analytes: Mapping[str, Sequence[str]], *,
-               mapping: ColumnMapping | None = None, fmt: str | None = None,
-               start: int = 0, row_groups: Sequence[int] | None = None,
-               decimal_comma: bool = False, field_limit: int | None = None) -> Table:
+def open_table(
+    path: str | Path,
+    analytes: Mapping[str, Sequence[str]],
+    *,
+    mapping: ColumnMapping | None = None,
+    fmt: str | None = None,
+    start: int = 0,
+    row_groups: Sequence[int] | None = None,
+    decimal_comma: bool = False,
+    field_limit: int | None = None,
+) -> Table:
     """Open an input for streaming. ``analytes``: input name -> accepted units
     (:func:`analytes_of`). ``start`` is the index of the first row (for partitions);
     ``row_groups`` reads only those row groups of one Parquet file (contiguous, ascending)."""
@@ -596,5 +745,6 @@ def open_table(path: str | Path, analytes: Mapping[str, Sequence[str]], *,
         raise TableError(str(p), "a directory can only be read as partitioned Parquet")
     if decimal_comma and kind != "csv":
         raise TableError(str(p), "--decimal-comma applies to CSV input only", "a .csv file")
-    return Table(p, kind, analytes, mapping, start, row_groups, decimal_comma=decimal_comma,
-                 field_limit=field_limit)
+    return Table(
+        p, kind, analytes, mapping, start, row_groups, decimal_comma=decimal_comma, field_limit=field_limit
+    )

@@ -17,14 +17,23 @@ import json
 import math
 import os
 import sys
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime, time
 from decimal import Decimal
 from pathlib import Path
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Any
 
-__all__ = ["Column", "Encoder", "TableWriter", "arrow_schema", "json_safe", "open_writer",
-           "read_back", "temp_path_for"]
+__all__ = [
+    "Column",
+    "Encoder",
+    "TableWriter",
+    "arrow_schema",
+    "json_safe",
+    "open_writer",
+    "read_back",
+    "temp_path_for",
+]
 
 
 def json_safe(value: Any) -> Any:
@@ -111,7 +120,7 @@ def _alive(pid: int) -> bool:
         return False
     except PermissionError:
         return True
-    try:   # a zombie (exited, not yet reaped) is not a running writer
+    try:  # a zombie (exited, not yet reaped) is not a running writer
         with open(f"/proc/{pid}/stat", "rb") as fh:
             return fh.read().rsplit(b")", 1)[-1].split()[0] != b"Z"
     except (OSError, IndexError):
@@ -123,8 +132,14 @@ class TableWriter:
     place (after fsync), :meth:`abort` removes it. As a context manager: commit on a clean
     exit, abort on an exception. Target ``-`` writes CSV or JSON Lines to standard output."""
 
-    def __init__(self, target: str | Path, columns: Sequence[Column], fmt: str,
-                 row_group_size: int = 50_000, metadata: Mapping[str, str] | None = None) -> None:
+    def __init__(
+        self,
+        target: str | Path,
+        columns: Sequence[Column],
+        fmt: str,
+        row_group_size: int = 50_000,
+        metadata: Mapping[str, str] | None = None,
+    ) -> None:
         for c in columns:
             if c.kind not in _KINDS:
                 raise ValueError(f"column {c.name}: kind {c.kind!r} not in {_KINDS}")
@@ -153,10 +168,10 @@ class TableWriter:
             self._file = None if fmt == "parquet" else open(self.temp, "w", encoding="utf-8", newline="")
         self._buffer: list[Sequence[Any]] = []
         self._row_group = row_group_size
-        self._metadata = dict(metadata or {})       # Parquet key-value metadata (lineage)
+        self._metadata = dict(metadata or {})  # Parquet key-value metadata (lineage)
         getattr(self, "_start_" + fmt)()
 
-    def __enter__(self) -> "TableWriter":
+    def __enter__(self) -> TableWriter:
         return self
 
     def __exit__(self, exc_type: Any, *rest: Any) -> None:
@@ -179,7 +194,7 @@ class TableWriter:
         self._pq = pq.ParquetWriter(self.temp, self._schema, compression="zstd")
         self._buffered = 0
 
-    def encoder(self) -> "Encoder":
+    def encoder(self) -> Encoder:
         """A picklable encoder for this writer's columns and format: worker processes encode
         their chunk with it, and this process only writes the blocks (:meth:`write_block`)."""
         return Encoder(self.columns, self.fmt)
@@ -285,8 +300,9 @@ class Encoder:
 
             names = [c.name for c in self.columns]
             opt = orjson.OPT_NON_STR_KEYS | orjson.OPT_APPEND_NEWLINE
-            return b"".join(orjson.dumps(dict(zip(names, r)), default=json_safe, option=opt)
-                            for r in rows).decode()
+            return b"".join(
+                orjson.dumps(dict(zip(names, r)), default=json_safe, option=opt) for r in rows
+            ).decode()
         import pyarrow as pa
 
         if self._schema is None:
@@ -304,12 +320,15 @@ class Encoder:
 def arrow_schema(columns: Sequence[Column], metadata: Mapping[str, str] | None = None) -> Any:
     import pyarrow as pa
 
-    return pa.schema([pa.field(c.name, _arrow_type(c), metadata={"unit": c.unit} if c.unit else None)
-                      for c in columns], metadata=dict(metadata) if metadata else None)
+    return pa.schema(
+        [pa.field(c.name, _arrow_type(c), metadata={"unit": c.unit} if c.unit else None) for c in columns],
+        metadata=dict(metadata) if metadata else None,
+    )
 
 
-def open_writer(target: str | Path, columns: Sequence[Column], fmt: str | None = None,
-                **options: Any) -> TableWriter:
+def open_writer(
+    target: str | Path, columns: Sequence[Column], fmt: str | None = None, **options: Any
+) -> TableWriter:
     """A writer for ``target`` (format from ``fmt`` or the suffix; ``-`` = stdout)."""
     from gasrules.tables.readers import FORMATS, TableError, detect_format
 
@@ -365,9 +384,16 @@ def _as_text(value: Any) -> Any:
 
 # column kind -> cell encoder for CSV (None: the value is written as it is; None is empty).
 # Numbers come from the engine finite, and csv writes a float as repr() does.
-_CSV_CELL: dict[str, Any] = {"text": None, "number": None, "texts": _csv_texts,
-                             "records": _csv_json, "json": _csv_json, "value": _as_text,
-                             "raw": _csv_scalar, "guarded": neutralise_formula}
+_CSV_CELL: dict[str, Any] = {
+    "text": None,
+    "number": None,
+    "texts": _csv_texts,
+    "records": _csv_json,
+    "json": _csv_json,
+    "value": _as_text,
+    "raw": _csv_scalar,
+    "guarded": neutralise_formula,
+}
 
 
 # kinds whose values Arrow takes as they are (numbers, lists of text, lists of records, typed raw)
@@ -418,4 +444,3 @@ def read_back(path: str | Path, fmt: str | None = None) -> list[dict[str, Any]]:
         if kind == "csv":
             return list(csv.DictReader(f))
         return [json.loads(line) for line in f if line.strip()]
-

@@ -36,26 +36,63 @@ from __future__ import annotations
 
 import math
 import random
+from collections.abc import Iterator
 from datetime import date
-from typing import Any, Iterator, NamedTuple
+from typing import Any, NamedTuple
 
 __all__ = [
-    "ALTERNATIVE_UNITS", "CANONICAL_UNITS", "CODED_INPUTS", "CONTEXT_KEYS", "INPUT_KEYS",
-    "MALFORMED_KINDS", "METABOLIC_SETS", "MIXES", "RESPIRATORY", "Scenario",
-    "generate_cases", "generate_corpus", "generate_labelled", "hh_ph", "malformed_cases",
+    "ALTERNATIVE_UNITS",
+    "CANONICAL_UNITS",
+    "CODED_INPUTS",
+    "CONTEXT_KEYS",
+    "INPUT_KEYS",
+    "MALFORMED_KINDS",
+    "METABOLIC_SETS",
+    "MIXES",
+    "RESPIRATORY",
+    "Scenario",
+    "generate_cases",
+    "generate_corpus",
+    "generate_labelled",
+    "hh_ph",
+    "malformed_cases",
     "to_canonical",
 ]
 
 # ----------------------------------------------------------------------------- contract tables
 CANONICAL_UNITS: dict[str, str] = {
-    "ph": "[pH]", "pco2": "mm[Hg]", "po2": "mm[Hg]", "hco3": "mmol/L", "tco2": "mmol/L",
-    "base_excess": "mmol/L", "na": "mmol/L", "k": "mmol/L", "cl": "mmol/L", "albumin": "g/L",
-    "lactate": "mmol/L", "glucose": "mmol/L", "urea": "mmol/L", "bun": "mg/dL",
-    "creatinine": "umol/L", "osmolality": "mosm/kg", "ethanol": "mmol/L",
-    "phosphate": "mmol/L", "ionized_calcium": "mmol/L", "magnesium": "mmol/L", "hb": "g/dL",
-    "so2": "1", "fio2": "1", "barometric_pressure": "mm[Hg]", "temperature": "Cel", "age": "a",
-    "peep": "cm[H2O]", "etco2": "mm[Hg]", "minute_ventilation": "L/min",
-    "predicted_body_weight": "kg", "urine_na": "mmol/L", "urine_k": "mmol/L",
+    "ph": "[pH]",
+    "pco2": "mm[Hg]",
+    "po2": "mm[Hg]",
+    "hco3": "mmol/L",
+    "tco2": "mmol/L",
+    "base_excess": "mmol/L",
+    "na": "mmol/L",
+    "k": "mmol/L",
+    "cl": "mmol/L",
+    "albumin": "g/L",
+    "lactate": "mmol/L",
+    "glucose": "mmol/L",
+    "urea": "mmol/L",
+    "bun": "mg/dL",
+    "creatinine": "umol/L",
+    "osmolality": "mosm/kg",
+    "ethanol": "mmol/L",
+    "phosphate": "mmol/L",
+    "ionized_calcium": "mmol/L",
+    "magnesium": "mmol/L",
+    "hb": "g/dL",
+    "so2": "1",
+    "fio2": "1",
+    "barometric_pressure": "mm[Hg]",
+    "temperature": "Cel",
+    "age": "a",
+    "peep": "cm[H2O]",
+    "etco2": "mm[Hg]",
+    "minute_ventilation": "L/min",
+    "predicted_body_weight": "kg",
+    "urine_na": "mmol/L",
+    "urine_k": "mmol/L",
     "urine_cl": "mmol/L",
 }
 CODED_INPUTS: dict[str, tuple[str, ...]] = {
@@ -67,16 +104,28 @@ CONTEXT_KEYS: tuple[str, ...] = ("ward", "collected_at", "record_number")
 
 # Non-canonical units this generator writes: unit -> factor to the canonical unit.
 ALTERNATIVE_UNITS: dict[str, dict[str, float]] = {
-    "pco2": {"kPa": 7.50062}, "po2": {"kPa": 7.50062}, "etco2": {"kPa": 7.50062},
-    "albumin": {"g/dL": 10.0}, "fio2": {"%": 0.01}, "so2": {"%": 0.01},
+    "pco2": {"kPa": 7.50062},
+    "po2": {"kPa": 7.50062},
+    "etco2": {"kPa": 7.50062},
+    "albumin": {"g/dL": 10.0},
+    "fio2": {"%": 0.01},
+    "so2": {"%": 0.01},
     "glucose": {"mg/dL": 0.0555062},
 }
 
 RESPIRATORY: tuple[str, ...] = ("none", "respiratory_acidosis", "respiratory_alkalosis")
-HAGMA, NAGMA, MALK = ("metabolic_acidosis_high_anion_gap", "metabolic_acidosis_normal_anion_gap",
-                      "metabolic_alkalosis")
+HAGMA, NAGMA, MALK = (
+    "metabolic_acidosis_high_anion_gap",
+    "metabolic_acidosis_normal_anion_gap",
+    "metabolic_alkalosis",
+)
 METABOLIC_SETS: tuple[tuple[str, ...], ...] = (
-    (), (HAGMA,), (NAGMA,), (MALK,), (HAGMA, NAGMA), (HAGMA, MALK),
+    (),
+    (HAGMA,),
+    (NAGMA,),
+    (MALK,),
+    (HAGMA, NAGMA),
+    (HAGMA, MALK),
 )
 
 # ----------------------------------------------------------------------------- synthesis mix
@@ -88,10 +137,12 @@ _WARDS: dict[str, tuple[float, float, float, float]] = {
 }
 MIXES: dict[str, dict[str, float]] = {
     "hospital": {"ICU": 0.35, "ED": 0.40, "WARD": 0.25},
-    "icu": {"ICU": 1.0}, "ed": {"ED": 1.0}, "ward": {"WARD": 1.0},
+    "icu": {"ICU": 1.0},
+    "ed": {"ED": 1.0},
+    "ward": {"WARD": 1.0},
 }
-_METABOLIC_WEIGHTS = (0.38, 0.18, 0.10, 0.12, 0.10, 0.12)      # per METABOLIC_SETS entry
-_RESP_WEIGHTS = (0.50, 0.27, 0.23)                             # per RESPIRATORY entry
+_METABOLIC_WEIGHTS = (0.38, 0.18, 0.10, 0.12, 0.10, 0.12)  # per METABOLIC_SETS entry
+_RESP_WEIGHTS = (0.50, 0.27, 0.23)  # per RESPIRATORY entry
 _ALBUMIN_BY_WARD = {"ICU": (27.0, 6.0), "ED": (38.0, 5.0), "WARD": (33.0, 6.0)}
 _SHARE_INCONSISTENT = 0.01
 _SHARE_CHILD = 0.01
@@ -101,7 +152,7 @@ _SHARE_NO_ALBUMIN = 0.35
 _SHARE_KPA = 0.15
 _SHARE_ALBUMIN_GDL = 0.15
 _SHARE_FIO2_PERCENT = 0.30
-_EPOCH = date(2026, 3, 2).toordinal()          # invented collection period start
+_EPOCH = date(2026, 3, 2).toordinal()  # invented collection period start
 _PH_NOISE = 0.008
 _HHMM = tuple(f"{m // 60:02d}:{m % 60:02d}" for m in range(1440))
 _SS = tuple(f"{sec:02d}" for sec in range(60))
@@ -124,16 +175,16 @@ class Scenario(NamedTuple):
     """What a generated case was drawn to show (the intended picture, not an engine verdict)."""
 
     ward: str
-    respiratory: str                      # one of RESPIRATORY
-    chronicity: str | None                # acute | chronic for a respiratory disorder
-    metabolic: tuple[str, ...]            # one of METABOLIC_SETS
-    sample_type: str                      # arterial | venous
+    respiratory: str  # one of RESPIRATORY
+    chronicity: str | None  # acute | chronic for a respiratory disorder
+    metabolic: tuple[str, ...]  # one of METABOLIC_SETS
+    sample_type: str  # arterial | venous
     electrolytes: bool
     albumin: bool
     ventilated: bool
     kpa: bool
-    out_of_scope: str | None              # None | "child" | "pregnant"
-    inconsistent: str | None              # None | the transcription error applied
+    out_of_scope: str | None  # None | "child" | "pregnant"
+    inconsistent: str | None  # None | the transcription error applied
 
     @property
     def combination(self) -> str:
@@ -148,8 +199,9 @@ class Scenario(NamedTuple):
 
 
 # ----------------------------------------------------------------------------- public API
-def generate_labelled(n: int, seed: int = 0, *, mix: str = "hospital",
-                      start: int = 1) -> Iterator[tuple[Scenario, dict[str, Any]]]:
+def generate_labelled(
+    n: int, seed: int = 0, *, mix: str = "hospital", start: int = 1
+) -> Iterator[tuple[Scenario, dict[str, Any]]]:
     """Yield ``n`` (scenario, case) pairs; case ids run from ``D{start:06d}``."""
     if n < 0:
         raise ValueError(f"n must be >= 0, got {n}")
@@ -165,14 +217,17 @@ def generate_labelled(n: int, seed: int = 0, *, mix: str = "hospital",
         day, secs = divmod(clock, 86400)
         if day not in dates:
             dates[day] = date.fromordinal(_EPOCH + day).isoformat()
-        ctx = {"ward": _pick(rng, wards),
-               "collected_at": f"{dates[day]}T{_HHMM[secs // 60]}:{_SS[secs % 60]}Z",
-               "record_number": "DEMO%07d" % int(10_000_000 * u())}
+        ctx = {
+            "ward": _pick(rng, wards),
+            "collected_at": f"{dates[day]}T{_HHMM[secs // 60]}:{_SS[secs % 60]}Z",
+            "record_number": "DEMO%07d" % int(10_000_000 * u()),
+        }
         yield _draw(rng, "D%06d" % i, ctx)
 
 
-def generate_cases(n: int, seed: int = 0, *, mix: str = "hospital",
-                   with_scenario: bool = False) -> Iterator[dict[str, Any]]:
+def generate_cases(
+    n: int, seed: int = 0, *, mix: str = "hospital", with_scenario: bool = False
+) -> Iterator[dict[str, Any]]:
     """Yield ``n`` invented cases. ``with_scenario`` adds ``context.scenario`` (the label)."""
     for scenario, case in generate_labelled(n, seed, mix=mix):
         if with_scenario:
@@ -180,25 +235,26 @@ def generate_cases(n: int, seed: int = 0, *, mix: str = "hospital",
         yield case
 
 
-MALFORMED_KINDS: tuple[str, ...] = (
-    "unknown_key", "text_value", "bad_unit", "out_of_range", "missing_value")
+MALFORMED_KINDS: tuple[str, ...] = ("unknown_key", "text_value", "bad_unit", "out_of_range", "missing_value")
 
 # kind -> list of (field, bad value). Synthesis only; out_of_range values are far outside any
 # plausible bound (decimal slips), so no rulebook tuning can make them valid.
 _MALFORMATIONS: dict[str, tuple[tuple[str, Any], ...]] = {
     "unknown_key": (("paco2", 41.2), ("bicarbonate", 23.0), ("sodium_serum", 139)),
-    "text_value": (("ph", "7.3O"), ("hco3", "pending"), ("na", "haemolysed"),
-                   ("pco2", "see comment")),
-    "bad_unit": (("pco2", {"value": 41.2, "unit": "mg/dL"}),
-                 ("albumin", {"value": 3.1, "unit": "mmol/L"}),
-                 ("hco3", {"value": 22.0, "unit": "kPa"})),
+    "text_value": (("ph", "7.3O"), ("hco3", "pending"), ("na", "haemolysed"), ("pco2", "see comment")),
+    "bad_unit": (
+        ("pco2", {"value": 41.2, "unit": "mg/dL"}),
+        ("albumin", {"value": 3.1, "unit": "mmol/L"}),
+        ("hco3", {"value": 22.0, "unit": "kPa"}),
+    ),
     "out_of_range": (("ph", 73.4), ("na", 1390), ("pco2", 4120.0), ("k", 41.0)),
     "missing_value": (("ph", None), ("pco2", {"unit": "kPa"}), ("hco3", "")),
 }
 
 
-def malformed_cases(n: int, seed: int = 0, *, start: int = 1,
-                    prefix: str = "M") -> Iterator[tuple[str, str, dict[str, Any]]]:
+def malformed_cases(
+    n: int, seed: int = 0, *, start: int = 1, prefix: str = "M"
+) -> Iterator[tuple[str, str, dict[str, Any]]]:
     """Yield ``n`` (kind, field, case) triples: a valid case broken in one declared way.
 
     ``kind`` is one of MALFORMED_KINDS (cycled in order), ``field`` the key that was broken.
@@ -214,9 +270,9 @@ def malformed_cases(n: int, seed: int = 0, *, start: int = 1,
         yield kind, key, case
 
 
-def generate_corpus(n: int, seed: int = 0, *, mix: str = "hospital",
-                    malformed_share: float = 0.001
-                    ) -> Iterator[tuple[str | None, str | None, dict[str, Any]]]:
+def generate_corpus(
+    n: int, seed: int = 0, *, mix: str = "hospital", malformed_share: float = 0.001
+) -> Iterator[tuple[str | None, str | None, dict[str, Any]]]:
     """Yield ``n`` rows (kind, field, case) with ids D000001.. in order; about
     ``malformed_share`` of them are malformed (kind and field set), the rest valid (None, None).
     """
@@ -283,8 +339,9 @@ def _quantity(name: str, mmhg: float, kpa: bool) -> tuple[Any, float]:
     return v, v
 
 
-def _acid_base(rng: random.Random, resp: str, chronic: bool, metabolic: tuple[str, ...]
-               ) -> tuple[float, float, float, str]:
+def _acid_base(
+    rng: random.Random, resp: str, chronic: bool, metabolic: tuple[str, ...]
+) -> tuple[float, float, float, str]:
     """(HCO3, PCO2 mmHg, gap excess, high-gap kind) before rounding. Synthesis only."""
     u = rng.random
     hco3 = 24.0 + _normal(u, 0.0, 0.6)
@@ -317,14 +374,12 @@ def _acid_base(rng: random.Random, resp: str, chronic: bool, metabolic: tuple[st
     return _clamp(hco3, 3.5, 50.0), _clamp(pco2, 12.0, 110.0), gap_excess, kind
 
 
-def _draw(rng: random.Random, case_id: str, ctx: dict[str, str]
-          ) -> tuple[Scenario, dict[str, Any]]:
+def _draw(rng: random.Random, case_id: str, ctx: dict[str, str]) -> tuple[Scenario, dict[str, Any]]:
     u = rng.random
     ward = ctx["ward"]
     venous_share, vent_share, fio2_share = _WARDS[ward][1:]
     r = u()
-    out_of_scope = ("child" if r < _SHARE_CHILD else
-                    "pregnant" if r < _SHARE_CHILD + _SHARE_PREGNANT else None)
+    out_of_scope = "child" if r < _SHARE_CHILD else "pregnant" if r < _SHARE_CHILD + _SHARE_PREGNANT else None
     resp = RESPIRATORY[_index(u(), _RESP_WEIGHTS)]
     metabolic = METABOLIC_SETS[_index(u(), _METABOLIC_WEIGHTS)]
     chronic = u() < 0.5
@@ -336,7 +391,7 @@ def _draw(rng: random.Random, case_id: str, ctx: dict[str, str]
     electrolytes = u() >= _SHARE_NO_ELECTROLYTES
     has_albumin = electrolytes and u() >= _SHARE_NO_ALBUMIN
 
-    for _ in range(8):   # redraw the rare combinations whose pH leaves 6.75-7.75
+    for _ in range(8):  # redraw the rare combinations whose pH leaves 6.75-7.75
         if out_of_scope == "pregnant":
             hco3, pco2, gap_excess, kind = 19.0 + 2.5 * u(), 28.0 + 4.0 * u(), 0.0, ""
         else:
@@ -351,14 +406,22 @@ def _draw(rng: random.Random, case_id: str, ctx: dict[str, str]
             break
     ph = round(ph_exact + _PH_NOISE * (2.0 * u() - 1.0), 2)
 
-    v: dict[str, Any] = {"case_id": case_id, "context": ctx,
-                         "sample_type": "venous" if venous else "arterial"}
+    v: dict[str, Any] = {
+        "case_id": case_id,
+        "context": ctx,
+        "sample_type": "venous" if venous else "arterial",
+    }
     if resp != "none" and u() < 0.6:
         v["chronicity"] = ("chronic" if chronic else "acute") if u() < 0.85 else "unknown"
     v["ph"], v["pco2"], v["hco3"] = ph, pco2_out, hco3
 
-    age = (_below(u, 1, 18) if out_of_scope == "child" else
-           _below(u, 19, 43) if out_of_scope == "pregnant" else _below(u, 18, 96))
+    age = (
+        _below(u, 1, 18)
+        if out_of_scope == "child"
+        else _below(u, 19, 43)
+        if out_of_scope == "pregnant"
+        else _below(u, 18, 96)
+    )
     v["age"] = age
     if out_of_scope == "pregnant":
         v["pregnant"] = True
@@ -373,15 +436,32 @@ def _draw(rng: random.Random, case_id: str, ctx: dict[str, str]
     inconsistent = None
     if u() < _SHARE_INCONSISTENT:
         inconsistent = _make_inconsistent(rng, v, pco2_mm)
-    scenario = Scenario(ward, resp, None if resp == "none" else
-                        ("chronic" if chronic else "acute"), metabolic,
-                        v["sample_type"], electrolytes, has_albumin, ventilated, kpa,
-                        out_of_scope, inconsistent)
+    scenario = Scenario(
+        ward,
+        resp,
+        None if resp == "none" else ("chronic" if chronic else "acute"),
+        metabolic,
+        v["sample_type"],
+        electrolytes,
+        has_albumin,
+        ventilated,
+        kpa,
+        out_of_scope,
+        inconsistent,
+    )
     return scenario, v
 
 
-def _oxygen(rng: random.Random, v: dict[str, Any], ward: str, venous: bool, ventilated: bool,
-            fio2_share: float, pco2_mm: float, kpa: bool) -> None:
+def _oxygen(
+    rng: random.Random,
+    v: dict[str, Any],
+    ward: str,
+    venous: bool,
+    ventilated: bool,
+    fio2_share: float,
+    pco2_mm: float,
+    kpa: bool,
+) -> None:
     u = rng.random
     fio2 = 0.21
     if ventilated:
@@ -389,10 +469,9 @@ def _oxygen(rng: random.Random, v: dict[str, Any], ward: str, venous: bool, vent
     elif u() < fio2_share:
         fio2 = 0.21 if u() < 0.5 else round(0.24 + 0.36 * u(), 2)
     else:
-        fio2 = -1.0                                   # not reported (assumed room air)
+        fio2 = -1.0  # not reported (assumed room air)
     if fio2 > 0:
-        v["fio2"] = ({"value": round(fio2 * 100), "unit": "%"} if u() < _SHARE_FIO2_PERCENT
-                     else fio2)
+        v["fio2"] = {"value": round(fio2 * 100), "unit": "%"} if u() < _SHARE_FIO2_PERCENT else fio2
     if venous:
         po2 = 25.0 + 25.0 * u()
     else:
@@ -400,10 +479,12 @@ def _oxygen(rng: random.Random, v: dict[str, Any], ward: str, venous: bool, vent
         po2 = max(45.0, alveolar - (5.0 + (0.15 + 0.45 * u()) * alveolar * u()))
     v["po2"] = _quantity("po2", po2, kpa)[0]
     if u() < 0.6:
-        so2 = (0.45 + 0.35 * u() if venous     # Severinghaus 1979, eq. 1 for arterial
-               else 1.0 / (23400.0 / (po2 * po2 * po2 + 150.0 * po2) + 1.0))
-        v["so2"] = ({"value": round(so2 * 100), "unit": "%"} if u() < 0.3
-                    else round(min(so2, 1.0), 2))
+        so2 = (
+            0.45 + 0.35 * u()
+            if venous  # Severinghaus 1979, eq. 1 for arterial
+            else 1.0 / (23400.0 / (po2 * po2 * po2 + 150.0 * po2) + 1.0)
+        )
+        v["so2"] = {"value": round(so2 * 100), "unit": "%"} if u() < 0.3 else round(min(so2, 1.0), 2)
     if ventilated:
         v["peep"] = 5 + 2 * _below(u, 6)
         v["etco2"] = _quantity("etco2", max(10.0, pco2_mm - 2.0 - 10.0 * u()), kpa)[0]
@@ -415,35 +496,54 @@ def _oxygen(rng: random.Random, v: dict[str, Any], ward: str, venous: bool, vent
         v["temperature"] = round(_clamp(_normal(u, 37.2, 0.8), 34.0, 40.5), 1)
 
 
-def _electrolytes(rng: random.Random, v: dict[str, Any], ward: str, hco3: float,
-                  gap_excess: float, has_albumin: bool, ph: float) -> None:
+def _electrolytes(
+    rng: random.Random,
+    v: dict[str, Any],
+    ward: str,
+    hco3: float,
+    gap_excess: float,
+    has_albumin: bool,
+    ph: float,
+) -> None:
     u = rng.random
     na = round(_clamp(_normal(u, 139.0, 3.5), 124.0, 156.0))
     mean, sd = _ALBUMIN_BY_WARD[ward]
     albumin = _clamp(_normal(u, mean, sd), 12.0, 52.0)
-    gap = 7.0 + 5.0 * u() + gap_excess - 0.25 * (44.0 - albumin)   # Figge 1998 effect
+    gap = 7.0 + 5.0 * u() + gap_excess - 0.25 * (44.0 - albumin)  # Figge 1998 effect
     v["na"] = na
     v["cl"] = round(na - hco3 - gap)
     v["k"] = round(_clamp(_normal(u, 4.2, 0.45) + (0.4 if ph < 7.3 else 0.0), 2.6, 6.8), 1)
     if has_albumin:
-        v["albumin"] = ({"value": round(albumin / 10.0, 1), "unit": "g/dL"}
-                        if u() < _SHARE_ALBUMIN_GDL else round(albumin))
+        v["albumin"] = (
+            {"value": round(albumin / 10.0, 1), "unit": "g/dL"}
+            if u() < _SHARE_ALBUMIN_GDL
+            else round(albumin)
+        )
 
 
-def _chemistry(rng: random.Random, v: dict[str, Any], ward: str, metabolic: tuple[str, ...],
-               gap_excess: float, kind: str, hco3: float, pco2_mm: float, ph: float) -> None:
+def _chemistry(
+    rng: random.Random,
+    v: dict[str, Any],
+    ward: str,
+    metabolic: tuple[str, ...],
+    gap_excess: float,
+    kind: str,
+    hco3: float,
+    pco2_mm: float,
+    ph: float,
+) -> None:
     u = rng.random
     if u() < 0.7 or kind == "lactic":
-        v["lactate"] = round(1.0 + gap_excess * (0.6 + 0.4 * u()) if kind == "lactic"
-                             else 0.6 + 1.3 * u(), 1)
+        v["lactate"] = round(1.0 + gap_excess * (0.6 + 0.4 * u()) if kind == "lactic" else 0.6 + 1.3 * u(), 1)
     renal = kind == "renal"
     toxic = kind != "" and ward == "ED" and u() < 0.1
     osm = toxic or (ward == "ED" and u() < 0.08)
     glucose = urea = 0.0
     if osm or kind == "keto" or u() < 0.6:
         glucose = 18.0 + 17.0 * u() if kind == "keto" else 5.0 + 3.0 * (u() + u())
-        v["glucose"] = ({"value": round(glucose / 0.0555062), "unit": "mg/dL"} if u() < 0.1
-                        else round(glucose, 1))
+        v["glucose"] = (
+            {"value": round(glucose / 0.0555062), "unit": "mg/dL"} if u() < 0.1 else round(glucose, 1)
+        )
     if osm or renal or u() < 0.5:
         urea = 25.0 + 20.0 * u() if renal else 2.5 + 4.0 * (u() + u())
         v["urea"] = round(urea, 1)
@@ -455,7 +555,7 @@ def _chemistry(rng: random.Random, v: dict[str, Any], ward: str, metabolic: tupl
         v["ethanol"] = round(5.0 + 55.0 * u(), 1)
     if u() < 0.6:
         v["hb"] = round(_clamp(_normal(u, 12.5, 2.0), 6.0, 18.0), 1)
-    if u() < 0.6:   # analyser SBE, Van Slyke form (siggaard1977)
+    if u() < 0.6:  # analyser SBE, Van Slyke form (siggaard1977)
         v["base_excess"] = round(0.93 * (hco3 - 24.4 + 14.83 * (ph - 7.40)), 1) + 0.0
     if u() < 0.15:
         v["tco2"] = round(hco3 + min(0.03 * pco2_mm, 1.5) + 0.6 * u() - 0.3, 1)

@@ -14,13 +14,14 @@ so adding a cohort never changes another's cases. :mod:`gasrules.verification.co
 from __future__ import annotations
 
 import zlib
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
 
 from gasrules.core.errors import Location, Problem, ProblemsError
-from gasrules.rulebook.loader import load_document
 from gasrules.core.model import CompiledRulebook
+from gasrules.rulebook.loader import load_document
 from gasrules.rulebook.schema import validate_document
 
 COHORT_FILE = "cohorts.yaml"
@@ -28,9 +29,11 @@ COHORTS_SCHEMA = "cohorts.schema.json"
 KINDS = ("healthy", "simple", "mix")
 MEASURES = ("no_disorder", "primary", "no_second", "all_named")
 # Goals (percent) when no cohort file of the chain sets one: the project's decision (issue 9).
-DEFAULT_GOALS: dict[str, dict[str, float]] = {"healthy": {"no_disorder": 99.0},
-                                              "simple": {"primary": 95.0, "no_second": 95.0},
-                                              "mix": {"all_named": 90.0}}
+DEFAULT_GOALS: dict[str, dict[str, float]] = {
+    "healthy": {"no_disorder": 99.0},
+    "simple": {"primary": 95.0, "no_second": 95.0},
+    "mix": {"all_named": 90.0},
+}
 COHORT_CODES: dict[str, str] = {
     "CO-E001": "cohort file cannot be read or is not valid YAML",
     "CO-E002": "cohort file does not match schemas/cohorts.schema.json",
@@ -62,8 +65,8 @@ class Cohort:
 
 @dataclass
 class CohortPlan:
-    file: str                                   # the file that declares the cohorts
-    goal_files: list[str]                       # every file of the chain that was read
+    file: str  # the file that declares the cohorts
+    goal_files: list[str]  # every file of the chain that was read
     seed: int
     size: int
     constants: dict[str, float]
@@ -71,11 +74,12 @@ class CohortPlan:
     fixed: dict[str, Any]
     relations: dict[str, dict[str, Any]]
     cohorts: list[Cohort] = field(default_factory=list)
-    locate: Any = None                          # path -> Location in `file`
-    refs: list[tuple[str, tuple[Any, ...]]] = field(default_factory=list)   # (bibliography key, path) cited
+    locate: Any = None  # path -> Location in `file`
+    refs: list[tuple[str, tuple[Any, ...]]] = field(default_factory=list)  # (bibliography key, path) cited
 
 
 # ----------------------------------------------------------------------------- loading
+
 
 def cohort_files(rulebook_path: str | Path, cases_dir: str | Path | None = None) -> list[Path]:
     """Cohort files of the chain, the rulebook's own first (beside `cases_dir` when one is given)."""
@@ -93,17 +97,27 @@ def _read(path: Path) -> tuple[Any, list[Problem]]:
     doc, problems = load_document(path, str(path))
     if doc is None or problems:
         return None, [Problem("CO-E001", p.message, p.location, p.expected) for p in problems]
-    found = [Problem("CO-E002", p.message, p.location, p.expected) for p in validate_document(doc, COHORTS_SCHEMA)]
+    found = [
+        Problem("CO-E002", p.message, p.location, p.expected) for p in validate_document(doc, COHORTS_SCHEMA)
+    ]
     return (None, found) if found else (doc, [])
 
 
-def _merge_goal(current: dict[str, float], new: dict[str, float], where: Location, what: str) -> tuple[dict[str, float], list[Problem]]:
+def _merge_goal(
+    current: dict[str, float], new: dict[str, float], where: Location, what: str
+) -> tuple[dict[str, float], list[Problem]]:
     problems = []
     for measure, value in new.items():
         old = current.get(measure)
         if old is not None and value < old:
-            problems.append(Problem("CO-E003", f"{what} goal {measure} {value:g} % lowers the inherited {old:g} %",
-                                    where, f"at least {old:g}"))
+            problems.append(
+                Problem(
+                    "CO-E003",
+                    f"{what} goal {measure} {value:g} % lowers the inherited {old:g} %",
+                    where,
+                    f"at least {old:g}",
+                )
+            )
     return {**current, **new}, problems
 
 
@@ -111,7 +125,7 @@ def load_plan(rulebook_path: str | Path, cases_dir: str | Path | None = None) ->
     """The cohorts and goals that apply to a rulebook; None when no file of the chain declares cohorts."""
     files = cohort_files(rulebook_path, cases_dir)
     docs, problems = [], []
-    for f in reversed(files):                       # base first, so each file is checked against its bases
+    for f in reversed(files):  # base first, so each file is checked against its bases
         doc, probs = _read(f)
         problems += probs
         if doc is not None:
@@ -123,25 +137,49 @@ def load_plan(rulebook_path: str | Path, cases_dir: str | Path | None = None) ->
         return None
     missing = [k for k in _DATA_KEYS if k not in defining.data]
     if missing:
-        raise CohortError([Problem("CO-E002", f"a file declaring cohorts needs {', '.join(missing)}",
-                                   defining.locate(()), "seed, size, constants, intervals and relations")])
+        raise CohortError(
+            [
+                Problem(
+                    "CO-E002",
+                    f"a file declaring cohorts needs {', '.join(missing)}",
+                    defining.locate(()),
+                    "seed, size, constants, intervals and relations",
+                )
+            ]
+        )
     goals, per_cohort, problems = _goals(docs)
     d = defining.data
     cohorts = []
     for i, c in enumerate(d["cohorts"]):
         goal = dict(goals[c["kind"]])
         for j, doc in per_cohort.get(c["id"], []):
-            goal, probs = _merge_goal(goal, doc.data["cohort_goals"][c["id"]], doc.locate(("cohort_goals", c["id"])),
-                                      f"cohort {c['id']}")
+            goal, probs = _merge_goal(
+                goal,
+                doc.data["cohort_goals"][c["id"]],
+                doc.locate(("cohort_goals", c["id"])),
+                f"cohort {c['id']}",
+            )
             problems += probs
-        cohorts.append(Cohort(c["id"], c["kind"], c["label"], tuple(c["expect"]), goal, c,
-                              defining.locate(("cohorts", i))))
+        cohorts.append(
+            Cohort(
+                c["id"], c["kind"], c["label"], tuple(c["expect"]), goal, c, defining.locate(("cohorts", i))
+            )
+        )
     if problems:
         raise CohortError(problems)
-    return CohortPlan(file=defining.file, goal_files=[doc.file for doc in docs], seed=int(d["seed"]),
-                      size=int(d["size"]), constants={k: float(v["value"]) for k, v in d["constants"].items()},
-                      intervals=d["intervals"], fixed=dict(d.get("fixed") or {}), relations=d["relations"],
-                      cohorts=cohorts, locate=defining.locate, refs=list(_refs(d, ())))
+    return CohortPlan(
+        file=defining.file,
+        goal_files=[doc.file for doc in docs],
+        seed=int(d["seed"]),
+        size=int(d["size"]),
+        constants={k: float(v["value"]) for k, v in d["constants"].items()},
+        intervals=d["intervals"],
+        fixed=dict(d.get("fixed") or {}),
+        relations=d["relations"],
+        cohorts=cohorts,
+        locate=defining.locate,
+        refs=list(_refs(d, ())),
+    )
 
 
 def _refs(node: Any, path: tuple[Any, ...]) -> Iterator[tuple[str, tuple[Any, ...]]]:
@@ -150,7 +188,7 @@ def _refs(node: Any, path: tuple[Any, ...]) -> Iterator[tuple[str, tuple[Any, ..
         for k, v in node.items():
             if k in ("source", "range_source", "fixed_source") and isinstance(v, dict):
                 ref = v.get("ref")
-                for key in ([ref] if isinstance(ref, str) else list(ref or [])):
+                for key in [ref] if isinstance(ref, str) else list(ref or []):
                     yield str(key), path + (k, "ref")
             else:
                 yield from _refs(v, path + (k,))
@@ -159,14 +197,16 @@ def _refs(node: Any, path: tuple[Any, ...]) -> Iterator[tuple[str, tuple[Any, ..
             yield from _refs(v, path + (i,))
 
 
-def _goals(docs: list[Any]) -> tuple[dict[str, dict[str, float]], dict[str, list[tuple[int, Any]]], list[Problem]]:
+def _goals(
+    docs: list[Any],
+) -> tuple[dict[str, dict[str, float]], dict[str, list[tuple[int, Any]]], list[Problem]]:
     goals = {k: dict(v) for k, v in DEFAULT_GOALS.items()}
     per_cohort: dict[str, list[tuple[int, Any]]] = {}
     problems: list[Problem] = []
     for j, doc in enumerate(docs):
         for kind, goal in (doc.data.get("goals") or {}).items():
             if j == 0:
-                goals[kind] = {**goals[kind], **goal}     # the first file sets the chain's goals
+                goals[kind] = {**goals[kind], **goal}  # the first file sets the chain's goals
                 continue
             goals[kind], probs = _merge_goal(goals[kind], goal, doc.locate(("goals", kind)), kind)
             problems += probs
@@ -176,6 +216,7 @@ def _goals(docs: list[Any]) -> tuple[dict[str, dict[str, float]], dict[str, list
 
 
 # ----------------------------------------------------------------------------- checking
+
 
 def param_value(rb: CompiledRulebook, name: str, fixed: dict[str, Any]) -> float:
     """A numeric parameter's value for the cohort's fixed coded inputs (e.g. sample_type arterial)."""
@@ -201,17 +242,37 @@ def check_plan(rb: CompiledRulebook, plan: CohortPlan) -> list[Problem]:
     known = rb.bibliography.entries if rb.bibliography is not None else {}
     for key, path in plan.refs:
         if key not in known:
-            problems.append(Problem("CO-E007", f"unknown bibliography key '{key}'", loc(path),
-                                    "a key of the rulebook's bibliography"))
+            problems.append(
+                Problem(
+                    "CO-E007",
+                    f"unknown bibliography key '{key}'",
+                    loc(path),
+                    "a key of the rulebook's bibliography",
+                )
+            )
     for name, iv in plan.intervals.items():
         for end in ("low", "high"):
             v = iv[end]
-            if isinstance(v, str) and (v not in rb.parameters or not isinstance(rb.parameters[v].value, (int, float))):
-                problems.append(Problem("CO-E004", f"interval {name}.{end} names '{v}', not a numeric parameter of "
-                                        f"{rb.id}", loc(("intervals", name, end)), "a numeric parameter name or a number"))
+            if isinstance(v, str) and (
+                v not in rb.parameters or not isinstance(rb.parameters[v].value, (int, float))
+            ):
+                problems.append(
+                    Problem(
+                        "CO-E004",
+                        f"interval {name}.{end} names '{v}', not a numeric parameter of {rb.id}",
+                        loc(("intervals", name, end)),
+                        "a numeric parameter name or a number",
+                    )
+                )
             elif not isinstance(v, str) and "source" not in iv:
-                problems.append(Problem("CO-E002", f"interval {name} gives a literal {end} without a source",
-                                        loc(("intervals", name)), "source: {ref, evidence, note}"))
+                problems.append(
+                    Problem(
+                        "CO-E002",
+                        f"interval {name} gives a literal {end} without a source",
+                        loc(("intervals", name)),
+                        "source: {ref, evidence, note}",
+                    )
+                )
     if not problems:
         problems += _check_ranges(rb, plan, intervals(rb, plan))
     for key, value in plan.fixed.items():
@@ -220,7 +281,11 @@ def check_plan(rb: CompiledRulebook, plan: CohortPlan) -> list[Problem]:
     labels = set((rb.presentation.get("disorder_labels") or {}).keys())
     for i, c in enumerate(plan.cohorts):
         if c.id in seen:
-            problems.append(Problem("CO-E005", f"cohort id '{c.id}' is used twice", loc(("cohorts", i, "id")), "unique ids"))
+            problems.append(
+                Problem(
+                    "CO-E005", f"cohort id '{c.id}' is used twice", loc(("cohorts", i, "id")), "unique ids"
+                )
+            )
         seen.add(c.id)
         problems += _check_cohort(rb, plan, c, i, labels)
     return problems
@@ -231,58 +296,123 @@ def _check_input_value(rb: CompiledRulebook, key: str, value: Any, where: Locati
     if spec is None:
         return [Problem("CO-E004", f"'{key}' is not an input of {rb.id}", where, "a declared input")]
     if spec.kind == "code" and value not in spec.codes:
-        return [Problem("CO-E004", f"'{value}' is not a code of {key}", where, "one of " + ", ".join(spec.codes))]
+        return [
+            Problem("CO-E004", f"'{value}' is not a code of {key}", where, "one of " + ", ".join(spec.codes))
+        ]
     if spec.kind == "number" and not _inside(spec, float(value)):
         return [Problem("CO-E006", f"{key} {value} is outside its plausible range", where, _plausible(spec))]
     return []
 
 
 def _inside(spec: Any, x: float) -> bool:
-    return (spec.plausible_min is None or x >= spec.plausible_min) and (spec.plausible_max is None or x <= spec.plausible_max)
+    return (spec.plausible_min is None or x >= spec.plausible_min) and (
+        spec.plausible_max is None or x <= spec.plausible_max
+    )
 
 
 def _plausible(spec: Any) -> str:
     return f"{spec.plausible_min:g} to {spec.plausible_max:g} {spec.unit}"
 
 
-def _check_ranges(rb: CompiledRulebook, plan: CohortPlan, ivs: dict[str, tuple[float, float]]) -> list[Problem]:
+def _check_ranges(
+    rb: CompiledRulebook, plan: CohortPlan, ivs: dict[str, tuple[float, float]]
+) -> list[Problem]:
     out = []
     for name, (lo, hi) in ivs.items():
         where = plan.locate(("intervals", name))
         if lo > hi:
-            out.append(Problem("CO-E006", f"interval {name} is empty ({lo:g} > {hi:g})", where, "low <= high"))
+            out.append(
+                Problem("CO-E006", f"interval {name} is empty ({lo:g} > {hi:g})", where, "low <= high")
+            )
         spec = rb.inputs.get(name)
         if spec is not None and spec.kind == "number" and not (_inside(spec, lo) and _inside(spec, hi)):
-            out.append(Problem("CO-E006", f"interval {name} {lo:g}-{hi:g} leaves the plausible range", where,
-                               _plausible(spec)))
+            out.append(
+                Problem(
+                    "CO-E006",
+                    f"interval {name} {lo:g}-{hi:g} leaves the plausible range",
+                    where,
+                    _plausible(spec),
+                )
+            )
     return out
 
 
-def _check_cohort(rb: CompiledRulebook, plan: CohortPlan, c: Cohort, i: int, labels: set[str]) -> list[Problem]:
+def _check_cohort(
+    rb: CompiledRulebook, plan: CohortPlan, c: Cohort, i: int, labels: set[str]
+) -> list[Problem]:
     loc, s = plan.locate, c.spec
-    out = [Problem("CO-E004", f"cohort {c.id} expects '{d}', a disorder {rb.id} does not label",
-                   loc(("cohorts", i, "expect")), "one of " + ", ".join(sorted(labels))) for d in c.expect if d not in labels]
+    out = [
+        Problem(
+            "CO-E004",
+            f"cohort {c.id} expects '{d}', a disorder {rb.id} does not label",
+            loc(("cohorts", i, "expect")),
+            "one of " + ", ".join(sorted(labels)),
+        )
+        for d in c.expect
+        if d not in labels
+    ]
     if c.kind == "healthy":
-        return out + ([Problem("CO-E002", f"healthy cohort {c.id} expects disorders", loc(("cohorts", i, "expect")),
-                               "expect: []")] if c.expect else [])
+        return out + (
+            [
+                Problem(
+                    "CO-E002",
+                    f"healthy cohort {c.id} expects disorders",
+                    loc(("cohorts", i, "expect")),
+                    "expect: []",
+                )
+            ]
+            if c.expect
+            else []
+        )
     if (c.kind == "simple" and len(c.expect) != 1) or (c.kind == "mix" and len(c.expect) != 2):
-        out.append(Problem("CO-E002", f"cohort {c.id} ({c.kind}) expects {len(c.expect)} disorder(s)",
-                           loc(("cohorts", i, "expect")), "one for a simple cohort, two for a mix"))
+        out.append(
+            Problem(
+                "CO-E002",
+                f"cohort {c.id} ({c.kind}) expects {len(c.expect)} disorder(s)",
+                loc(("cohorts", i, "expect")),
+                "one for a simple cohort, two for a mix",
+            )
+        )
     if "driver" not in s or "relation" not in s:
-        return out + [Problem("CO-E002", f"cohort {c.id} needs a driver and a relation", loc(("cohorts", i)),
-                              "driver: {input, range} and relation: NAME")]
+        return out + [
+            Problem(
+                "CO-E002",
+                f"cohort {c.id} needs a driver and a relation",
+                loc(("cohorts", i)),
+                "driver: {input, range} and relation: NAME",
+            )
+        ]
     rel = plan.relations.get(s["relation"])
     if rel is None:
-        return out + [Problem("CO-E004", f"cohort {c.id} names relation '{s['relation']}', which the file does not "
-                              "declare", loc(("cohorts", i, "relation")), "one of " + ", ".join(plan.relations))]
+        return out + [
+            Problem(
+                "CO-E004",
+                f"cohort {c.id} names relation '{s['relation']}', which the file does not declare",
+                loc(("cohorts", i, "relation")),
+                "one of " + ", ".join(plan.relations),
+            )
+        ]
     if rel["driver"] != s["driver"]["input"]:
-        out.append(Problem("CO-E002", f"cohort {c.id} drives {s['driver']['input']} but relation {s['relation']} is "
-                           f"driven by {rel['driver']}", loc(("cohorts", i, "driver", "input")), rel["driver"]))
+        out.append(
+            Problem(
+                "CO-E002",
+                f"cohort {c.id} drives {s['driver']['input']} but relation {s['relation']} is "
+                f"driven by {rel['driver']}",
+                loc(("cohorts", i, "driver", "input")),
+                rel["driver"],
+            )
+        )
     lo, hi = s["driver"]["range"]
     spec = rb.inputs.get(s["driver"]["input"])
     if lo > hi or (spec is not None and not (_inside(spec, lo) and _inside(spec, hi))):
-        out.append(Problem("CO-E006", f"cohort {c.id} driver range {lo:g}-{hi:g} is empty or implausible",
-                           loc(("cohorts", i, "driver", "range")), _plausible(spec) if spec else "low <= high"))
+        out.append(
+            Problem(
+                "CO-E006",
+                f"cohort {c.id} driver range {lo:g}-{hi:g} is empty or implausible",
+                loc(("cohorts", i, "driver", "range")),
+                _plausible(spec) if spec else "low <= high",
+            )
+        )
     for key, value in (s.get("set") or {}).items():
         out += _check_input_value(rb, key, value, loc(("cohorts", i, "set", key)))
     return out
@@ -290,10 +420,13 @@ def _check_cohort(rb: CompiledRulebook, plan: CohortPlan, c: Cohort, i: int, lab
 
 # ----------------------------------------------------------------------------- generation
 
+
 def _rng(seed: int, cohort_id: str) -> Any:
     import numpy as np
 
-    return np.random.Generator(np.random.PCG64(np.random.SeedSequence([seed, zlib.crc32(cohort_id.encode())])))
+    return np.random.Generator(
+        np.random.PCG64(np.random.SeedSequence([seed, zlib.crc32(cohort_id.encode())]))
+    )
 
 
 def hh_ph(pco2: Any, hco3: Any, pk: float, s: float) -> Any:
@@ -318,8 +451,15 @@ def _rounded(x: Any, places: int) -> Any:
     return np.round(x, places)
 
 
-def _electrolytes(rng: Any, n: int, ivs: dict[str, tuple[float, float]], hco3: Any, fall: Any | None,
-                  ratio: list[float] | None, prec: dict[str, int]) -> dict[str, Any]:
+def _electrolytes(
+    rng: Any,
+    n: int,
+    ivs: dict[str, tuple[float, float]],
+    hco3: Any,
+    fall: Any | None,
+    ratio: list[float] | None,
+    prec: dict[str, int],
+) -> dict[str, Any]:
     """Na, K, albumin and the gap inside their intervals; a high-gap cohort adds ratio x fall to the gap;
     Cl = Na - gap - HCO3 takes up the rest."""
     na = _rounded(_uniform(rng, ivs["na"], n), prec["na"])
@@ -327,13 +467,17 @@ def _electrolytes(rng: Any, n: int, ivs: dict[str, tuple[float, float]], hco3: A
     if ratio is not None and fall is not None:
         gap = gap + rng.uniform(ratio[0], ratio[1], n) * fall
     gap = _rounded(gap, prec["cl"])
-    return {"na": na, "k": _rounded(_uniform(rng, ivs["k"], n), prec["k"]),
-            "cl": _rounded(na - gap - hco3, prec["cl"]),
-            "albumin": _rounded(_uniform(rng, ivs["albumin"], n), prec["albumin"])}
+    return {
+        "na": na,
+        "k": _rounded(_uniform(rng, ivs["k"], n), prec["k"]),
+        "cl": _rounded(na - gap - hco3, prec["cl"]),
+        "albumin": _rounded(_uniform(rng, ivs["albumin"], n), prec["albumin"]),
+    }
 
 
-def _healthy_gases(rng: Any, n: int, ivs: dict[str, tuple[float, float]], const: dict[str, float],
-                   prec: dict[str, int]) -> tuple[Any, Any, Any]:
+def _healthy_gases(
+    rng: Any, n: int, ivs: dict[str, tuple[float, float]], const: dict[str, float], prec: dict[str, int]
+) -> tuple[Any, Any, Any]:
     """PCO2 and HCO3 uniform inside their intervals; pH by Henderson-Hasselbalch, kept inside its interval."""
     import numpy as np
 
@@ -366,11 +510,15 @@ def _disorder_gases(rng: Any, n: int, c: Cohort, plan: CohortPlan, prec: dict[st
     cols = {rel["driver"]: driver, rel["dependent"]: dependent}
     cols = {k: _rounded(v, prec[k]) for k, v in cols.items()}
     const = plan.constants
-    cols["ph"] = _rounded(hh_ph(cols["pco2"], cols["hco3"], const["hh_pk"], const["hh_solubility"]), prec["ph"])
+    cols["ph"] = _rounded(
+        hh_ph(cols["pco2"], cols["hco3"], const["hh_pk"], const["hh_solubility"]), prec["ph"]
+    )
     return cols
 
 
-def generate_columns(rb: CompiledRulebook, plan: CohortPlan, c: Cohort, n: int | None = None) -> dict[str, Any]:
+def generate_columns(
+    rb: CompiledRulebook, plan: CohortPlan, c: Cohort, n: int | None = None
+) -> dict[str, Any]:
     """One cohort as columns (NumPy arrays, rounded to each input's reported precision)."""
     n = plan.size if n is None else n
     rng = _rng(plan.seed, c.id)

@@ -15,18 +15,43 @@ import json
 import math
 import random
 import traceback
+from collections.abc import Callable, Mapping
 from pathlib import Path
-from typing import Any, Callable, Mapping
+from typing import Any
 
 import yaml
 
-__all__ = ["mutate_rulebook", "run_rulebook", "random_case", "hostile_value"]
+__all__ = ["hostile_value", "mutate_rulebook", "random_case", "run_rulebook"]
 
-_EXPRESSIONS = ["ph ** 99999", "((((ph", "__import__('os')", "ph if ph else", "log10(0)", "sqrt(-1)",
-                "ph / 0", "1e308 * 1e308", "ph < ", "lambda: 1", "[x for x in ph]", "ph.__class__",
-                "known(nothing)", "has('x')", "ph < ph_low < ph_high < ratio", "'a' < 1", "ph and",
-                "-" * 500 + "ph", "ph" + " + ph" * 400, "abs()", "max(ph)", "min(ph, ratio, 1, 2, 3)",
-                "ratio_low if ratio else ph_low", "not ph", "ph == 'arterial'", "10 ** 400", "ph // 0.0"]
+_EXPRESSIONS = [
+    "ph ** 99999",
+    "((((ph",
+    "__import__('os')",
+    "ph if ph else",
+    "log10(0)",
+    "sqrt(-1)",
+    "ph / 0",
+    "1e308 * 1e308",
+    "ph < ",
+    "lambda: 1",
+    "[x for x in ph]",
+    "ph.__class__",
+    "known(nothing)",
+    "has('x')",
+    "ph < ph_low < ph_high < ratio",
+    "'a' < 1",
+    "ph and",
+    "-" * 500 + "ph",
+    "ph" + " + ph" * 400,
+    "abs()",
+    "max(ph)",
+    "min(ph, ratio, 1, 2, 3)",
+    "ratio_low if ratio else ph_low",
+    "not ph",
+    "ph == 'arterial'",
+    "10 ** 400",
+    "ph // 0.0",
+]
 
 
 def hostile_value(rng: random.Random, depth: int = 0) -> Any:
@@ -37,19 +62,44 @@ def hostile_value(rng: random.Random, depth: int = 0) -> Any:
     if choice == 1:
         return rng.choice([True, False])
     if choice == 2:
-        return rng.choice([0, -1, 1, 2 ** 63, -(2 ** 63), 10 ** 400, -(10 ** 400)])
+        return rng.choice([0, -1, 1, 2**63, -(2**63), 10**400, -(10**400)])
     if choice == 3:
         return rng.choice([math.nan, math.inf, -math.inf, 1e308, -1e-308, 5e-324, 0.0, -0.0])
     if choice == 4:
         return rng.uniform(-1e6, 1e6)
     if choice == 5:
-        return rng.choice(["", " ", "ph\n", "\u200b", "\ud7ff", "x" * 5000, "{ph}", "{nothing}", "%s", "\x00",
-                           "mm[Hg]", "kPa", "[pH]", "mmol/L", "1", "2026-13-45", "Ω", "ph_low", "ph"])
+        return rng.choice(
+            [
+                "",
+                " ",
+                "ph\n",
+                "\u200b",
+                "\ud7ff",
+                "x" * 5000,
+                "{ph}",
+                "{nothing}",
+                "%s",
+                "\x00",
+                "mm[Hg]",
+                "kPa",
+                "[pH]",
+                "mmol/L",
+                "1",
+                "2026-13-45",
+                "Ω",
+                "ph_low",
+                "ph",
+            ]
+        )
     if choice == 6 and depth < 4:
         return [hostile_value(rng, depth + 1) for _ in range(rng.randrange(4))]
     if choice == 7 and depth < 4:
-        return {rng.choice(["value", "unit", "min", "max", "expr", "when", "x", "ph"]): hostile_value(rng, depth + 1)
-                for _ in range(rng.randrange(4))}
+        return {
+            rng.choice(["value", "unit", "min", "max", "expr", "when", "x", "ph"]): hostile_value(
+                rng, depth + 1
+            )
+            for _ in range(rng.randrange(4))
+        }
     if choice == 8:
         nested: Any = 0
         for _ in range(rng.choice([10, 60, 200, 2000])):
@@ -96,8 +146,11 @@ def _mutate_data(data: Any, rng: random.Random) -> Any:
         if action == 0 and isinstance(parent, dict):
             del parent[key]
         elif action == 1 and isinstance(parent, dict):
-            parent[rng.choice([str(key) + "x", str(key)[:-1] or "k", "ph", "ratio", "ph\n", "Ph", "p h", "_x",
-                               "9a"])] = parent.pop(key)
+            parent[
+                rng.choice(
+                    [str(key) + "x", str(key)[:-1] or "k", "ph", "ratio", "ph\n", "Ph", "p h", "_x", "9a"]
+                )
+            ] = parent.pop(key)
         elif action == 2 and isinstance(parent, list):
             parent.append(copy.deepcopy(parent[key]))
         elif action == 3:
@@ -121,20 +174,46 @@ def _mutate_text(raw: bytes, rng: random.Random) -> bytes:
         if action == 0:
             buf[pos] = rng.randrange(256)
         elif action == 1:
-            del buf[pos:pos + rng.randrange(1, 40)]
+            del buf[pos : pos + rng.randrange(1, 40)]
         elif action == 2:
-            buf[pos:pos] = rng.choice([b"\t", b"\n  ", b": ", b"- ", b"{", b"[", b"&a ", b"*a", b"<<: *a\n", b"'",
-                                       b'"', b"#", b"\xff\xfe", b"\xc3", b"!!python/object:os.system ", b"%YAML 1.1\n",
-                                       b"---\n", b"...\n", b"? ", b"|\n", b">\n", b"!!binary ", b"2026-13-45"])
+            buf[pos:pos] = rng.choice(
+                [
+                    b"\t",
+                    b"\n  ",
+                    b": ",
+                    b"- ",
+                    b"{",
+                    b"[",
+                    b"&a ",
+                    b"*a",
+                    b"<<: *a\n",
+                    b"'",
+                    b'"',
+                    b"#",
+                    b"\xff\xfe",
+                    b"\xc3",
+                    b"!!python/object:os.system ",
+                    b"%YAML 1.1\n",
+                    b"---\n",
+                    b"...\n",
+                    b"? ",
+                    b"|\n",
+                    b">\n",
+                    b"!!binary ",
+                    b"2026-13-45",
+                ]
+            )
         elif action == 3:
             del buf[pos:]
         elif action == 4:
             line_start = buf.rfind(b"\n", 0, pos) + 1
             line_end = buf.find(b"\n", pos)
-            line = bytes(buf[line_start:line_end if line_end >= 0 else len(buf)])
+            line = bytes(buf[line_start : line_end if line_end >= 0 else len(buf)])
             buf[line_start:line_start] = line + b"\n"
         elif action == 5:
-            buf[pos:pos] = str(rng.choice([10 ** 400, 1e308, "nan", ".inf", "-.inf", "0x1F", "1_000", "0o7"])).encode()
+            buf[pos:pos] = str(
+                rng.choice([10**400, 1e308, "nan", ".inf", "-.inf", "0x1F", "1_000", "0o7"])
+            ).encode()
         elif action == 6:
             buf[pos:pos] = "\u200b\u202e\ufeff".encode("utf-8")
         elif action == 7:
@@ -150,14 +229,21 @@ def mutate_rulebook(text: str, data: Any, rng: random.Random) -> bytes:
     if rng.random() < 0.55:
         try:
             mutated = _mutate_data(data, rng)
-            return yaml.safe_dump(mutated, sort_keys=False, allow_unicode=True, width=1000).encode("utf-8", "surrogatepass")
+            return yaml.safe_dump(mutated, sort_keys=False, allow_unicode=True, width=1000).encode(
+                "utf-8", "surrogatepass"
+            )
         except (yaml.YAMLError, RecursionError, ValueError, UnicodeEncodeError):
             return _mutate_text(text.encode("utf-8"), rng)
     return _mutate_text(text.encode("utf-8"), rng)
 
 
-_CASES = [{"ph": 7.40, "pco2": 40, "hco3": 24}, {"ph": 7.10, "pco2": 20, "hco3": 6},
-          {"ph": 7.60, "pco2": {"value": 3.5, "unit": "kPa"}, "hco3": 26}, {}, {"ph": 7.3}]
+_CASES = [
+    {"ph": 7.40, "pco2": 40, "hco3": 24},
+    {"ph": 7.10, "pco2": 20, "hco3": 6},
+    {"ph": 7.60, "pco2": {"value": 3.5, "unit": "kPa"}, "hco3": 26},
+    {},
+    {"ph": 7.3},
+]
 
 
 def run_rulebook(path: Path, outcomes: dict[str, int] | None = None) -> str | None:
@@ -189,7 +275,7 @@ def run_rulebook(path: Path, outcomes: dict[str, int] | None = None) -> str | No
         gasrules.list_cutpoints(rb)
         note("compiled")
         return None
-    except Exception:  # noqa: BLE001 - that is what the fuzzer looks for
+    except Exception:
         note("EXCEPTION")
         return traceback.format_exc()
 
@@ -200,7 +286,7 @@ def plausible_case(rng: random.Random, inputs: Mapping[str, Any]) -> dict[str, A
     case: dict[str, Any] = {}
     engine_set = {getattr(s, "fallback_marks", None) for s in inputs.values()}
     for name, spec in inputs.items():
-        if rng.random() < 0.35 or name in engine_set:     # flags the engine sets are never given by a case
+        if rng.random() < 0.35 or name in engine_set:  # flags the engine sets are never given by a case
             continue
         if spec.kind == "code":
             if spec.codes:
@@ -214,8 +300,12 @@ def plausible_case(rng: random.Random, inputs: Mapping[str, Any]) -> dict[str, A
     return case
 
 
-def random_case(rng: random.Random, names: list[str], units: Callable[[str], list[str]] | None = None,
-                inputs: Mapping[str, Any] | None = None) -> Any:
+def random_case(
+    rng: random.Random,
+    names: list[str],
+    units: Callable[[str], list[str]] | None = None,
+    inputs: Mapping[str, Any] | None = None,
+) -> Any:
     """A case of any JSON type: mostly objects with inputs (numbers, {value, unit}, junk), context
     of any shape, and hostile top-level values. With ``inputs`` (the rulebook's input specs),
     half the cases are plausible ones (:func:`plausible_case`), some with one field spoiled."""
@@ -224,7 +314,7 @@ def random_case(rng: random.Random, names: list[str], units: Callable[[str], lis
         if rng.random() < 0.3 and names:
             case[rng.choice(names)] = hostile_value(rng)
         if rng.random() < 0.3:
-            case["context"] = {"ward": "X", "n": rng.randrange(10 ** 6)}
+            case["context"] = {"ward": "X", "n": rng.randrange(10**6)}
         return case
     roll = rng.random()
     if roll < 0.05:
@@ -235,7 +325,10 @@ def random_case(rng: random.Random, names: list[str], units: Callable[[str], lis
         if r < 0.5:
             case[name] = rng.choice([rng.uniform(-50, 300), rng.uniform(6.5, 8), rng.randrange(0, 200)])
         elif r < 0.7 and units is not None:
-            case[name] = {"value": rng.uniform(0, 200), "unit": rng.choice(units(name) + ["", "furlong", None])}
+            case[name] = {
+                "value": rng.uniform(0, 200),
+                "unit": rng.choice(units(name) + ["", "furlong", None]),
+            }
         else:
             case[name] = hostile_value(rng)
     if rng.random() < 0.3:

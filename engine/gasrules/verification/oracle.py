@@ -9,21 +9,34 @@ from __future__ import annotations
 
 from typing import Any
 
-from gasrules.rulebook.codegen import CALC_ERROR, COMPUTED, ERROR, FIRED, HALTED, MISSING, NOT_APPLICABLE, NOT_FIRED, SKIPPED, SUSPENDED
-from gasrules.rulebook.expressions import Oracle, finite_float, round_at
 from gasrules.core.model import CompiledRulebook
+from gasrules.rulebook.codegen import (
+    CALC_ERROR,
+    COMPUTED,
+    ERROR,
+    FIRED,
+    HALTED,
+    MISSING,
+    NOT_APPLICABLE,
+    NOT_FIRED,
+    SKIPPED,
+    SUSPENDED,
+)
+from gasrules.rulebook.expressions import Oracle, finite_float, round_at
 
 _ERRORS = (ArithmeticError, ValueError, TypeError)
 
 
-def oracle_evaluate(rb: CompiledRulebook, inputs: dict[str, Any]) -> tuple[dict[str, Any], dict[str, int], list[int], set[str]]:
+def oracle_evaluate(
+    rb: CompiledRulebook, inputs: dict[str, Any]
+) -> tuple[dict[str, Any], dict[str, int], list[int], set[str]]:
     """(values by name, state by derived name, outcome per rule in plan order, asserted codes)."""
     values: dict[str, Any] = dict(inputs)
     rounded: dict[str, Any] = {}
     for name, spec in rb.inputs.items():
         v = inputs.get(name)
         if spec.kind == "number" and v is not None:
-            rounded[name] = round_at(v, 10.0 ** spec.precision)
+            rounded[name] = round_at(v, 10.0**spec.precision)
     for name, p in rb.parameters.items():
         values[name] = p.value_for(inputs.get(p.by_input)) if p.by_input else p.value
     codes: set[str] = set()
@@ -45,7 +58,7 @@ def oracle_evaluate(rb: CompiledRulebook, inputs: dict[str, Any]) -> tuple[dict[
             try:
                 values[name] = finite_float(ev.run(d.expr))
                 states[name] = COMPUTED
-                rounded[name] = round_at(values[name], 10.0 ** d.precision)
+                rounded[name] = round_at(values[name], 10.0**d.precision)
             except _ERRORS:
                 states[name] = CALC_ERROR
             continue

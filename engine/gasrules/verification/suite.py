@@ -17,16 +17,17 @@ from __future__ import annotations
 import ast
 import math
 import os
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any
 
 import yaml
 
 from gasrules.core.errors import Location, Problem, ProblemsError
+from gasrules.core.model import CompiledRulebook
 from gasrules.rulebook.expressions import Oracle, round_at
 from gasrules.rulebook.loader import load_document
-from gasrules.core.model import CompiledRulebook
 from gasrules.rulebook.schema import validate_document
 
 CASES_SCHEMA = "cases.schema.json"
@@ -42,8 +43,14 @@ CASE_CODES: dict[str, str] = {
     "CS-E006": "case evidence cites a key the rulebook's bibliography does not declare",
 }
 _FLIP = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
-_OPS = {"<": lambda a, b: a < b, "<=": lambda a, b: a <= b, ">": lambda a, b: a > b,
-        ">=": lambda a, b: a >= b, "==": lambda a, b: a == b, "!=": lambda a, b: a != b}
+_OPS = {
+    "<": lambda a, b: a < b,
+    "<=": lambda a, b: a <= b,
+    ">": lambda a, b: a > b,
+    ">=": lambda a, b: a >= b,
+    "==": lambda a, b: a == b,
+    "!=": lambda a, b: a != b,
+}
 _EPS = 1e-9
 
 
@@ -55,6 +62,7 @@ class SuiteError(ProblemsError):
 
 # ----------------------------------------------------------------------------- loading
 
+
 @dataclass(frozen=True)
 class Case:
     id: str
@@ -64,16 +72,16 @@ class Case:
     want: dict[str, Any] | None
     want_error_code: str | None
     location: Location
-    origin: str                     # the rulebook file whose cases/ folder holds it
+    origin: str  # the rulebook file whose cases/ folder holds it
     probe: dict[str, Any] | None = None
     skip: str | None = None
-    refs: tuple[tuple[str, Location], ...] = ()    # bibliography keys its evidence cites, and where
+    refs: tuple[tuple[str, Location], ...] = ()  # bibliography keys its evidence cites, and where
 
 
 @dataclass
 class Suite:
     cases: list[Case]
-    superseded: list[dict[str, str]] = field(default_factory=list)   # {case, reason, by}
+    superseded: list[dict[str, str]] = field(default_factory=list)  # {case, reason, by}
     files: list[str] = field(default_factory=list)
     unreachable: list[dict[str, Any]] = field(default_factory=list)  # stated coverage exceptions
 
@@ -96,15 +104,28 @@ def load_case_file(path: Path) -> tuple[dict[str, Any] | None, list[Case], list[
     doc, problems = load_document(path, str(path))
     if doc is None or problems:
         return None, [], [Problem("CS-E001", p.message, p.location, p.expected) for p in problems]
-    schema_problems = [Problem("CS-E002", p.message, p.location, p.expected)
-                       for p in validate_document(doc, CASES_SCHEMA)]
+    schema_problems = [
+        Problem("CS-E002", p.message, p.location, p.expected) for p in validate_document(doc, CASES_SCHEMA)
+    ]
     if schema_problems:
         return None, [], schema_problems
     cases = []
     for i, c in enumerate(doc.data["cases"]):
-        cases.append(Case(id=c["id"], note=c["note"], evidence=c["evidence"], input=c["input"], want=c.get("want"),
-                          want_error_code=c.get("want_error_code"), location=doc.locate(("cases", i)),
-                          origin=str(path), probe=c.get("probe"), skip=c.get("skip"), refs=_evidence_refs(doc, i, c)))
+        cases.append(
+            Case(
+                id=c["id"],
+                note=c["note"],
+                evidence=c["evidence"],
+                input=c["input"],
+                want=c.get("want"),
+                want_error_code=c.get("want_error_code"),
+                location=doc.locate(("cases", i)),
+                origin=str(path),
+                probe=c.get("probe"),
+                skip=c.get("skip"),
+                refs=_evidence_refs(doc, i, c),
+            )
+        )
     for j, s in enumerate(doc.data.get("supersedes") or []):
         s["_location"] = doc.locate(("supersedes", j))
     return doc.data, cases, []
@@ -116,7 +137,12 @@ def _evidence_refs(doc: Any, i: int, case: dict[str, Any]) -> tuple[tuple[str, L
 
     spots: list[tuple[Any, tuple[Any, ...]]] = [(case.get("evidence"), ("cases", i, "evidence"))]
     for name, v in (((case.get("want") or {}).get("values")) or {}).items():
-        spots.append((v.get("evidence") if isinstance(v, dict) else None, ("cases", i, "want", "values", name, "evidence")))
+        spots.append(
+            (
+                v.get("evidence") if isinstance(v, dict) else None,
+                ("cases", i, "want", "values", name, "evidence"),
+            )
+        )
     out = []
     for ev, path in spots:
         ref = (ev or {}).get("ref")
@@ -130,7 +156,12 @@ def check_refs(rb: CompiledRulebook, suite: Suite) -> list[Problem]:
     from gasrules.rulebook.bibliography import Bibliography, unknown_key
 
     bib = rb.bibliography or Bibliography()
-    return [unknown_key(key, bib, where, "CS-E006") for c in suite.cases for key, where in c.refs if key not in bib]
+    return [
+        unknown_key(key, bib, where, "CS-E006")
+        for c in suite.cases
+        for key, where in c.refs
+        if key not in bib
+    ]
 
 
 def unused_entries(rb: CompiledRulebook, suite: Suite) -> list[str]:
@@ -140,8 +171,11 @@ def unused_entries(rb: CompiledRulebook, suite: Suite) -> list[str]:
     if rb.bibliography is None:
         return []
     used = {k for p in rb.parameters.values() for k in keys_of(p.source.get("ref"))}
-    used |= {item if isinstance(item, str) else (item or {}).get("ref")
-             for r in rb.rules for item in (r.doc.get("references") or [])}
+    used |= {
+        item if isinstance(item, str) else (item or {}).get("ref")
+        for r in rb.rules
+        for item in (r.doc.get("references") or [])
+    }
     used |= {key for c in suite.cases for key, _ in c.refs}
     return sorted(k for k in rb.bibliography.entries if k not in used)
 
@@ -172,19 +206,33 @@ def load_suite(rulebook_path: str | Path, cases_dir: str | Path | None = None) -
     base_ids = {c.id for c in inherited}
     for s in supersedes:
         if s["case"] not in base_ids:
-            problems.append(Problem("CS-E004", f"supersedes names '{s['case']}', which no base case file holds",
-                                    s["_location"], "the id of a case in the base rulebook's cases/"))
+            problems.append(
+                Problem(
+                    "CS-E004",
+                    f"supersedes names '{s['case']}', which no base case file holds",
+                    s["_location"],
+                    "the id of a case in the base rulebook's cases/",
+                )
+            )
     for c in inherited:
         if c.id in dropped:
             if not any(x["case"] == c.id for x in suite.superseded):
-                suite.superseded.append({"case": c.id, "reason": dropped[c.id]["reason"], "by": dropped[c.id]["by"]})
+                suite.superseded.append(
+                    {"case": c.id, "reason": dropped[c.id]["reason"], "by": dropped[c.id]["by"]}
+                )
             continue
         own.append(c)
     seen: dict[str, Location] = {}
     for c in own:
         if c.id in seen:
-            problems.append(Problem("CS-E003", f"duplicate case id '{c.id}' (first at {seen[c.id]})", c.location,
-                                    "a unique id (an overlay replaces a base case by superseding it)"))
+            problems.append(
+                Problem(
+                    "CS-E003",
+                    f"duplicate case id '{c.id}' (first at {seen[c.id]})",
+                    c.location,
+                    "a unique id (an overlay replaces a base case by superseding it)",
+                )
+            )
         seen.setdefault(c.id, c.location)
     suite.cases = own
     if problems:
@@ -202,34 +250,55 @@ def check_names(rb: CompiledRulebook, suite: Suite) -> list[Problem]:
     out = []
     for c in suite.cases:
         w = c.want or {}
-        bad = [f"rule '{x}'" for k in ("rules_fired", "rules_not_fired") for x in w.get(k, []) if x not in rules]
-        bad += [f"disorder '{x}'" for k in ("disorders", "disorders_include", "disorders_exclude")
-                for x in w.get(k, []) if x not in DISORDER_CODES]
-        bad += [f"finding '{x}'" for k in ("findings_include", "findings_exclude") for x in w.get(k, [])
-                if x not in findings]
+        bad = [
+            f"rule '{x}'" for k in ("rules_fired", "rules_not_fired") for x in w.get(k, []) if x not in rules
+        ]
+        bad += [
+            f"disorder '{x}'"
+            for k in ("disorders", "disorders_include", "disorders_exclude")
+            for x in w.get(k, [])
+            if x not in DISORDER_CODES
+        ]
+        bad += [
+            f"finding '{x}'"
+            for k in ("findings_include", "findings_exclude")
+            for x in w.get(k, [])
+            if x not in findings
+        ]
         bad += [f"value '{x}'" for x in list(w.get("values", {})) if x not in values]
-        bad += [f"value '{x}'" for k in ("values_present", "values_absent") for x in w.get(k, [])
-                if x not in rb.derived]
+        bad += [
+            f"value '{x}'"
+            for k in ("values_present", "values_absent")
+            for x in w.get(k, [])
+            if x not in rb.derived
+        ]
         for b in bad:
-            out.append(Problem("CS-E005", f"case '{c.id}' names unknown {b}", c.location,
-                               f"a name declared by rulebook {rb.id}"))
+            out.append(
+                Problem(
+                    "CS-E005",
+                    f"case '{c.id}' names unknown {b}",
+                    c.location,
+                    f"a name declared by rulebook {rb.id}",
+                )
+            )
     return out + check_refs(rb, suite)
 
 
 # ----------------------------------------------------------------------------- running and comparing
+
 
 @dataclass
 class Failure:
     what: str
     expected: Any
     got: Any
-    rules: list[str] = field(default_factory=list)      # the rules whose trace explains it
+    rules: list[str] = field(default_factory=list)  # the rules whose trace explains it
 
 
 @dataclass
 class CaseResult:
     case: Case
-    outcome: str                    # passed | failed | skipped
+    outcome: str  # passed | failed | skipped
     failures: list[Failure]
     result: dict[str, Any] | None
 
@@ -271,8 +340,14 @@ def compare(rb: CompiledRulebook, case: Case, result: dict[str, Any]) -> list[Fa
     got = set(result["disorders"])
     if "disorders" in w and got != set(w["disorders"]):
         diff = got ^ set(w["disorders"])
-        fails.append(Failure("disorders", sorted(w["disorders"]), sorted(got),
-                             [r for d in sorted(diff) for r in _asserting(rb, d)]))
+        fails.append(
+            Failure(
+                "disorders",
+                sorted(w["disorders"]),
+                sorted(got),
+                [r for d in sorted(diff) for r in _asserting(rb, d)],
+            )
+        )
     for d in w.get("disorders_include", []):
         if d not in got:
             fails.append(Failure(f"disorder {d}", "present", "absent", _asserting(rb, d)))
@@ -288,12 +363,20 @@ def compare(rb: CompiledRulebook, case: Case, result: dict[str, Any]) -> list[Fa
             fails.append(Failure(f"finding {f}", "absent", "present", _asserting(rb, f)))
     for d, q in (w.get("qualifiers") or {}).items():
         if result["qualifiers"].get(d) != q:
-            fails.append(Failure(f"qualifier of {d}", q, result["qualifiers"].get(d),
-                                 [r.id for r in rb.rules if d in r.qualifiers]))
+            fails.append(
+                Failure(
+                    f"qualifier of {d}",
+                    q,
+                    result["qualifiers"].get(d),
+                    [r.id for r in rb.rules if d in r.qualifiers],
+                )
+            )
     for name, spec in (w.get("values") or {}).items():
         v = result["values"].get(name)
         if v is None or abs(v - spec["value"]) > spec["tolerance"] + _EPS:
-            fails.append(Failure(f"value {name}", f"{spec['value']} +/- {spec['tolerance']}", v, _readers(rb, name)))
+            fails.append(
+                Failure(f"value {name}", f"{spec['value']} +/- {spec['tolerance']}", v, _readers(rb, name))
+            )
     for name in w.get("values_present", []):
         if name not in result["values"]:
             fails.append(Failure(f"value {name}", "computed", "not computed", _readers(rb, name)))
@@ -316,8 +399,10 @@ def _readers(rb: CompiledRulebook, name: str) -> list[str]:
 
 # ----------------------------------------------------------------------------- rule coverage
 
-def rule_coverage(rb: CompiledRulebook, results: list[CaseResult],
-                  unreachable: Iterable[dict[str, Any]] = ()) -> dict[str, Any]:
+
+def rule_coverage(
+    rb: CompiledRulebook, results: list[CaseResult], unreachable: Iterable[dict[str, Any]] = ()
+) -> dict[str, Any]:
     counts = {r.id: {"fired": 0, "not_fired": 0} for r in rb.rules if r.status == "active"}
     for cr in results:
         for ev in (cr.result or {}).get("trace", []):
@@ -331,13 +416,20 @@ def rule_coverage(rb: CompiledRulebook, results: list[CaseResult],
     missing = [(r, o) for r, o in missing if (r, o) not in excuses]
     full = sum(1 for r, c in counts.items() if all(c[o] or (r, o) in excuses for o in c))
     covered = sum(1 for c in counts.values() if all(c[o] for o in c))
-    return {"rules": len(counts), "both": full, "percent": _pct(full, len(counts)),
-            "covered": covered, "declared_unreachable": full - covered,
-            "summary": f"{covered} covered + {full - covered} declared unreachable of {len(counts)}",
-            "never_fired": sorted(r for r, o in missing if o == "fired"),
-            "never_not_fired": sorted(r for r, o in missing if o == "not_fired"),
-            "excused": excused, "stale_excuses": stale,
-            "suspended": sorted(r.id for r in rb.rules if r.status == "suspended"), "counts": counts}
+    return {
+        "rules": len(counts),
+        "both": full,
+        "percent": _pct(full, len(counts)),
+        "covered": covered,
+        "declared_unreachable": full - covered,
+        "summary": f"{covered} covered + {full - covered} declared unreachable of {len(counts)}",
+        "never_fired": sorted(r for r, o in missing if o == "fired"),
+        "never_not_fired": sorted(r for r, o in missing if o == "not_fired"),
+        "excused": excused,
+        "stale_excuses": stale,
+        "suspended": sorted(r.id for r in rb.rules if r.status == "suspended"),
+        "counts": counts,
+    }
 
 
 def _pct(n: int, d: int) -> float:
@@ -345,6 +437,7 @@ def _pct(n: int, d: int) -> float:
 
 
 # ----------------------------------------------------------------------------- threshold coverage
+
 
 def cutpoint_key(cp: dict[str, Any]) -> str:
     return f"{cp['owner']}: {cp['quantity']} {cp['op']} {cp['threshold']}"
@@ -376,7 +469,7 @@ def step_of(rb: CompiledRulebook, cp: dict[str, Any]) -> float:
 def side_of(margin: float | None, threshold: float | None, step: float) -> str | None:
     if margin is None or threshold is None:
         return None
-    grid = round_at(threshold, 1 / step)                 # the threshold on the quantity's grid
+    grid = round_at(threshold, 1 / step)  # the threshold on the quantity's grid
     d = round(margin + threshold - grid, 9)
     for side, k in zip(SIDES, (-1, 0, 1)):
         if abs(d - k * step) < step * 1e-6:
@@ -392,8 +485,14 @@ def op_truth(op: str, side: str) -> bool:
 class _Forced(Oracle):
     """The oracle with one comparison (quantity op threshold) forced true or false."""
 
-    def __init__(self, values: dict[str, Any], rounded: dict[str, Any], codes: set[str],
-                 target: tuple[str, str, str], forced: bool):
+    def __init__(
+        self,
+        values: dict[str, Any],
+        rounded: dict[str, Any],
+        codes: set[str],
+        target: tuple[str, str, str],
+        forced: bool,
+    ):
         super().__init__(values, rounded, codes)
         self._target, self._forced = target, forced
 
@@ -415,24 +514,35 @@ class _Forced(Oracle):
 
     def _is_target(self, left: ast.AST, op: str, right: ast.AST) -> bool:
         q, top, t = self._target
-        return (_ident(left) == q and op == top and _ident(right) == t) or \
-               (_ident(right) == q and _FLIP[op] == top and _ident(left) == t)
+        return (_ident(left) == q and op == top and _ident(right) == t) or (
+            _ident(right) == q and _FLIP[op] == top and _ident(left) == t
+        )
 
 
 def _ident(node: ast.AST) -> str | None:
     if isinstance(node, ast.Name):
         return node.id
-    if isinstance(node, ast.Constant) and isinstance(node.value, (int, float)) and not isinstance(node.value, bool):
+    if (
+        isinstance(node, ast.Constant)
+        and isinstance(node.value, (int, float))
+        and not isinstance(node.value, bool)
+    ):
         return repr(float(node.value))
-    if isinstance(node, ast.UnaryOp) and isinstance(node.op, ast.USub) and isinstance(node.operand, ast.Constant):
+    if (
+        isinstance(node, ast.UnaryOp)
+        and isinstance(node.op, ast.USub)
+        and isinstance(node.operand, ast.Constant)
+    ):
         return repr(-float(node.operand.value))
     return None
 
 
-def decisive(rb: CompiledRulebook, result: dict[str, Any], cp: dict[str, Any]) -> tuple[bool, bool | None, bool | None]:
+def decisive(
+    rb: CompiledRulebook, result: dict[str, Any], cp: dict[str, Any]
+) -> tuple[bool, bool | None, bool | None]:
     """(live, fires_if_true, fires_if_false): does this comparison decide its rule in this case?"""
     if cp["owner"] not in _rule_index(rb):
-        return True, True, False                          # a derived value's condition: it is the whole test
+        return True, True, False  # a derived value's condition: it is the whole test
     rule = _rule_index(rb)[cp["owner"]]
     codes: set[str] = set()
     for ev in result["trace"]:
@@ -446,14 +556,22 @@ def decisive(rb: CompiledRulebook, result: dict[str, Any], cp: dict[str, Any]) -
     values: dict[str, Any] = {n: result["inputs"].get(n) for n in rb.inputs}
     values.update(ev.get("reads", {}))
     values.update({n: p["value"] for n, p in ev.get("parameters", {}).items()})
-    rounded = {n: round_at(v, 10.0 ** _precision(rb, n)) for n, v in values.items()  # type: ignore[operator]
-               if _precision(rb, n) is not None and isinstance(v, (int, float)) and not isinstance(v, bool)}
+    rounded = {
+        n: round_at(v, 10.0 ** _precision(rb, n))
+        for n, v in values.items()  # type: ignore[operator]
+        if _precision(rb, n) is not None and isinstance(v, (int, float)) and not isinstance(v, bool)
+    }
     outs = []
     for forced in (True, False):
         try:
-            outs.append(bool(_Forced(values, rounded, codes, (cp["quantity"], cp["op"], cp["threshold"]), forced)
-                             .run(rule.when)))
-        except Exception:                                  # noqa: BLE001 - a failed re-evaluation is "not live"
+            outs.append(
+                bool(
+                    _Forced(values, rounded, codes, (cp["quantity"], cp["op"], cp["threshold"]), forced).run(
+                        rule.when
+                    )
+                )
+            )
+        except Exception:
             return False, None, None
     return outs[0] != outs[1], outs[0], outs[1]
 
@@ -468,7 +586,9 @@ def _rule_index(rb: CompiledRulebook) -> dict[str, Any]:
     return idx
 
 
-def position(rb: CompiledRulebook, result: dict[str, Any], cp: dict[str, Any]) -> tuple[float | None, float | None]:
+def position(
+    rb: CompiledRulebook, result: dict[str, Any], cp: dict[str, Any]
+) -> tuple[float | None, float | None]:
     """(margin, threshold value) of a cut-point in one result, or (None, None)."""
     if result.get("status") == "rejected":
         return None, None
@@ -476,7 +596,11 @@ def position(rb: CompiledRulebook, result: dict[str, Any], cp: dict[str, Any]) -
         for ev in result["trace"]:
             if ev["rule"] == cp["owner"]:
                 for c in ev.get("comparisons", []):
-                    if (c["quantity"], c["op"], c["threshold"]) == (cp["quantity"], cp["op"], cp["threshold"]):
+                    if (c["quantity"], c["op"], c["threshold"]) == (
+                        cp["quantity"],
+                        cp["op"],
+                        cp["threshold"],
+                    ):
                         return c["margin"], c["threshold_value"]
         return None, None
     q = _known_value(rb, result, cp["quantity"])
@@ -503,9 +627,12 @@ def _known_value(rb: CompiledRulebook, result: dict[str, Any], name: str) -> flo
     return None
 
 
-def threshold_coverage(rb: CompiledRulebook, results: list[CaseResult],
-                       unreachable: Iterable[dict[str, Any]] = ()) -> dict[str, Any]:
-    excuses = {(u["cutpoint"], side): u["reason"] for u in unreachable if "cutpoint" in u for side in u["sides"]}
+def threshold_coverage(
+    rb: CompiledRulebook, results: list[CaseResult], unreachable: Iterable[dict[str, Any]] = ()
+) -> dict[str, Any]:
+    excuses = {
+        (u["cutpoint"], side): u["reason"] for u in unreachable if "cutpoint" in u for side in u["sides"]
+    }
     rows = []
     for cp in unique_cutpoints(rb):
         step = step_of(rb, cp)
@@ -518,25 +645,46 @@ def threshold_coverage(rb: CompiledRulebook, results: list[CaseResult],
             if side is not None and decisive(rb, cr.result, cp)[0]:
                 found[side].append(cr.case.id)
         key = cutpoint_key(cp)
-        rows.append({"cutpoint": key, "owner": cp["owner"], "quantity": cp["quantity"], "op": cp["op"],
-                     "threshold": cp["threshold"], "threshold_kind": cp["threshold_kind"], "value": cp["value"],
-                     "step": step, "cases": found,
-                     "missing": [s for s in SIDES if not found[s] and (key, s) not in excuses],
-                     "excused": [s for s in SIDES if not found[s] and (key, s) in excuses]})
+        rows.append(
+            {
+                "cutpoint": key,
+                "owner": cp["owner"],
+                "quantity": cp["quantity"],
+                "op": cp["op"],
+                "threshold": cp["threshold"],
+                "threshold_kind": cp["threshold_kind"],
+                "value": cp["value"],
+                "step": step,
+                "cases": found,
+                "missing": [s for s in SIDES if not found[s] and (key, s) not in excuses],
+                "excused": [s for s in SIDES if not found[s] and (key, s) in excuses],
+            }
+        )
     keys = {r["cutpoint"]: r for r in rows}
-    excused = [{"cutpoint": k, "side": s, "reason": why} for (k, s), why in excuses.items()
-               if k in keys and s in keys[k]["excused"]]
+    excused = [
+        {"cutpoint": k, "side": s, "reason": why}
+        for (k, s), why in excuses.items()
+        if k in keys and s in keys[k]["excused"]
+    ]
     stale = [{"cutpoint": k, "side": s} for (k, s) in excuses if k not in keys or s not in keys[k]["excused"]]
     needed = 3 * len(rows) - len(excused)
     have = sum(3 - len(r["missing"]) - len(r["excused"]) for r in rows)
-    return {"cutpoints": len(rows), "probes_needed": needed, "probes_found": have, "percent": _pct(have, needed),
-            "declared_unreachable": len(excused),
-            "summary": f"{have} covered + {len(excused)} declared unreachable of {3 * len(rows)}",
-            "rows": rows, "excused": excused, "stale_excuses": stale,
-            "missing": [{"cutpoint": r["cutpoint"], "sides": r["missing"]} for r in rows if r["missing"]]}
+    return {
+        "cutpoints": len(rows),
+        "probes_needed": needed,
+        "probes_found": have,
+        "percent": _pct(have, needed),
+        "declared_unreachable": len(excused),
+        "summary": f"{have} covered + {len(excused)} declared unreachable of {3 * len(rows)}",
+        "rows": rows,
+        "excused": excused,
+        "stale_excuses": stale,
+        "missing": [{"cutpoint": r["cutpoint"], "sides": r["missing"]} for r in rows if r["missing"]],
+    }
 
 
 # ----------------------------------------------------------------------------- probe suggestion
+
 
 def input_sources(rb: CompiledRulebook, name: str, _seen: frozenset[str] = frozenset()) -> list[str]:
     """The numeric inputs a name is computed from (itself for an input), in first-use order."""
@@ -573,7 +721,7 @@ class Probe:
     varied: str
     compared: float
     threshold_value: float
-    fires: bool | None              # expected outcome of the owning rule (None: a derived value's condition)
+    fires: bool | None  # expected outcome of the owning rule (None: a derived value's condition)
     engine_agrees: bool
 
 
@@ -585,7 +733,7 @@ class _Search:
         self.step = step_of(rb, cp)
         self.k = {"below": -1, "at": 0, "above": 1}[side]
         self.stoppers = {r.id for r in rb.rules if r.stop}
-        self.preferred: str | None = None          # the repair input that worked last
+        self.preferred: str | None = None  # the repair input that worked last
 
     def run(self, inp: dict[str, Any]) -> dict[str, Any] | None:
         from gasrules.evaluation.evaluator import interpret
@@ -629,7 +777,9 @@ class _Search:
                     return trial, r
         return inp, result
 
-    def measure(self, inp: dict[str, Any], a: str, x: float, fixed: set[str]) -> tuple[float | None, dict[str, Any]]:
+    def measure(
+        self, inp: dict[str, Any], a: str, x: float, fixed: set[str]
+    ) -> tuple[float | None, dict[str, Any]]:
         trial = dict(inp, **{a: x})
         trial, result = self.repair(trial, fixed | {a})
         return self.distance(result), trial
@@ -644,7 +794,7 @@ class _Search:
             return None
         if d0 == 0:
             return t0
-        unit = 10.0 ** -spec.precision
+        unit = 10.0**-spec.precision
         for sign in (1.0, -1.0):
             prev, dprev, delta = x0, d0, unit
             while self.budget > 0:
@@ -661,8 +811,9 @@ class _Search:
                 delta *= 2
         return None
 
-    def bisect(self, inp: dict[str, Any], a: str, lo: tuple[float, float], hi: tuple[float, float],
-               fixed: set[str]) -> dict[str, Any] | None:
+    def bisect(
+        self, inp: dict[str, Any], a: str, lo: tuple[float, float], hi: tuple[float, float], fixed: set[str]
+    ) -> dict[str, Any] | None:
         for _ in range(48):
             mid = (lo[0] + hi[0]) / 2
             d, t = self.measure(inp, a, mid, fixed)
@@ -685,8 +836,13 @@ class _Search:
         return None
 
 
-def suggest_probes(rb: CompiledRulebook, results: list[CaseResult], coverage: dict[str, Any],
-                   budget: int = 6000, max_seeds: int = 6) -> tuple[list[Probe], list[dict[str, Any]]]:
+def suggest_probes(
+    rb: CompiledRulebook,
+    results: list[CaseResult],
+    coverage: dict[str, Any],
+    budget: int = 6000,
+    max_seeds: int = 6,
+) -> tuple[list[Probe], list[dict[str, Any]]]:
     """Probes for every missing side of every cut-point, found by bisection; and those not found."""
     cps = {cutpoint_key(cp): cp for cp in unique_cutpoints(rb)}
     stop_inputs = _stop_inputs(rb)
@@ -704,16 +860,29 @@ def suggest_probes(rb: CompiledRulebook, results: list[CaseResult], coverage: di
         for side in row["missing"]:
             found = _find(rb, cp, side, usable, sources, budget, max_seeds)
             if found is None:
-                not_found.append({"cutpoint": row["cutpoint"], "side": side,
-                                  "why": "no seed case and input found by bisection" if sources else
-                                  "the compared quantity depends on no numeric input"})
+                not_found.append(
+                    {
+                        "cutpoint": row["cutpoint"],
+                        "side": side,
+                        "why": "no seed case and input found by bisection"
+                        if sources
+                        else "the compared quantity depends on no numeric input",
+                    }
+                )
             else:
                 probes.append(found)
     return probes, not_found
 
 
-def _find(rb: CompiledRulebook, cp: dict[str, Any], side: str, usable: list[CaseResult], sources: list[str],
-          budget: int, max_seeds: int) -> Probe | None:
+def _find(
+    rb: CompiledRulebook,
+    cp: dict[str, Any],
+    side: str,
+    usable: list[CaseResult],
+    sources: list[str],
+    budget: int,
+    max_seeds: int,
+) -> Probe | None:
     search = _Search(rb, cp, side, budget)
     ranked = []
     for cr in usable:
@@ -724,7 +893,7 @@ def _find(rb: CompiledRulebook, cp: dict[str, Any], side: str, usable: list[Case
     for _, _, _, cr in ranked[:max_seeds]:
         inp = {k: v for k, v in cr.case.input.items()}
         if any(isinstance(v, dict) for v in inp.values()):
-            inp = {k: v for k, v in cr.result["inputs"].items()}   # type: ignore[index]
+            inp = {k: v for k, v in cr.result["inputs"].items()}  # type: ignore[index]
         for a in sources:
             if not isinstance(inp.get(a), (int, float)) or isinstance(inp.get(a), bool):
                 continue
@@ -739,8 +908,9 @@ def _find(rb: CompiledRulebook, cp: dict[str, Any], side: str, usable: list[Case
     return None
 
 
-def _confirm(rb: CompiledRulebook, cp: dict[str, Any], side: str, inp: dict[str, Any], seed: str,
-             varied: str) -> Probe | None:
+def _confirm(
+    rb: CompiledRulebook, cp: dict[str, Any], side: str, inp: dict[str, Any], seed: str, varied: str
+) -> Probe | None:
     from gasrules.evaluation.evaluator import interpret
 
     result = interpret(rb, inp)
@@ -758,8 +928,17 @@ def _confirm(rb: CompiledRulebook, cp: dict[str, Any], side: str, inp: dict[str,
     else:
         fires = truth
         actual = cp["owner"] in result["values"] or _known_value(rb, result, cp["owner"]) is not None
-    return Probe(cp, side, inp, seed, varied, round(margin + t, 9), t,  # type: ignore[operator]
-                 fires, bool(actual) == bool(fires))
+    return Probe(
+        cp,
+        side,
+        inp,
+        seed,
+        varied,
+        round(margin + t, 9),
+        t,  # type: ignore[operator]
+        fires,
+        bool(actual) == bool(fires),
+    )
 
 
 def probe_evidence(rb: CompiledRulebook, cp: dict[str, Any], value: float | None = None) -> dict[str, Any]:
@@ -772,13 +951,18 @@ def probe_evidence(rb: CompiledRulebook, cp: dict[str, Any], value: float | None
         tag = "CP" if p.source.get("evidence") == "CP" else "D"
         shown = p.value if value is None else value
         chosen = f" (value chosen by {p.by_input})" if p.by_input and shown != p.value else ""
-        note = f"Cut-point {name} = {shown:g} {p.unit}{chosen}" + (f": {p.source['note']}" if p.source.get("note") else "")
+        note = f"Cut-point {name} = {shown:g} {p.unit}{chosen}" + (
+            f": {p.source['note']}" if p.source.get("note") else ""
+        )
         return _evidence(tag, keys_of(p.source.get("ref")), note)
     if cp["threshold_kind"] == "derived":
         params = sorted({n for n in _param_names(rb, name)})
         keys = list(dict.fromkeys(k for n in params for k in keys_of(rb.parameters[n].source.get("ref"))))
         return _evidence("D", keys, f"Cut-point {name} = {rb.derived[name].expr.text}"[:600])
-    return {"tag": "CP", "note": f"Cut-point {cp['quantity']} {cp['op']} {name} as written in rule {cp['owner']}"}
+    return {
+        "tag": "CP",
+        "note": f"Cut-point {cp['quantity']} {cp['op']} {name} as written in rule {cp['owner']}",
+    }
 
 
 def _evidence(tag: str, keys: list[str], note: str) -> dict[str, Any]:
@@ -817,14 +1001,29 @@ def probe_case(rb: CompiledRulebook, probe: Probe) -> dict[str, Any]:
     else:
         verb = "is computed" if probe.fires else "is not computed"
         want = {"values_present" if probe.fires else "values_absent": [cp["owner"]]}
-    note = (f"{cp['quantity']} {probe.compared:g} against {cp['threshold']} {probe.threshold_value:g} "
-            f"(one reporting step {probe.side} it)" if probe.side != "at" else
-            f"{cp['quantity']} {probe.compared:g} exactly at {cp['threshold']} {probe.threshold_value:g}")
+    note = (
+        f"{cp['quantity']} {probe.compared:g} against {cp['threshold']} {probe.threshold_value:g} "
+        f"(one reporting step {probe.side} it)"
+        if probe.side != "at"
+        else f"{cp['quantity']} {probe.compared:g} exactly at {cp['threshold']} {probe.threshold_value:g}"
+    )
     note += f": {cp['owner']} {verb}. Seed case {probe.seed}, {probe.varied} moved."
-    return {"id": ident, "note": note, "evidence": probe_evidence(rb, cp, probe.threshold_value), "input": probe.input,
-            "want": want,
-            "probe": {"owner": cp["owner"], "quantity": cp["quantity"], "op": cp["op"], "threshold": cp["threshold"],
-                      "side": probe.side, "compared": probe.compared, "threshold_value": probe.threshold_value}}
+    return {
+        "id": ident,
+        "note": note,
+        "evidence": probe_evidence(rb, cp, probe.threshold_value),
+        "input": probe.input,
+        "want": want,
+        "probe": {
+            "owner": cp["owner"],
+            "quantity": cp["quantity"],
+            "op": cp["op"],
+            "threshold": cp["threshold"],
+            "side": probe.side,
+            "compared": probe.compared,
+            "threshold_value": probe.threshold_value,
+        },
+    }
 
 
 class _FlowDumper(yaml.SafeDumper):
@@ -837,8 +1036,9 @@ def _represent_dict(dumper: yaml.SafeDumper, data: dict[str, Any]) -> Any:
 
 
 def _represent_list(dumper: yaml.SafeDumper, data: list[Any]) -> Any:
-    return dumper.represent_sequence("tag:yaml.org,2002:seq", data,
-                                     flow_style=all(not isinstance(v, (dict, list)) for v in data))
+    return dumper.represent_sequence(
+        "tag:yaml.org,2002:seq", data, flow_style=all(not isinstance(v, (dict, list)) for v in data)
+    )
 
 
 _FlowDumper.add_representer(dict, _represent_dict)
@@ -856,12 +1056,15 @@ def write_probes(path: str | Path, rb: CompiledRulebook, probes: list[Probe]) ->
     new = [probe_case(rb, p) for p in probes]
     ids = {c["id"] for c in new}
     cases = [c for c in existing if c.get("id") not in ids] + new
-    header = (f"# Threshold probes for rulebook {rb.id} {rb.version}, generated by `gasrules verify --suggest "
-              "--write-probes`.\n# Each case sits one reporting step below, at or above one cut-point of "
-              "gasrules.list_cutpoints, where\n# that comparison decides its rule; the expectation follows from "
-              "the rule's definition on that side.\n")
-    body = yaml.dump({"kind": "probes", "cases": cases}, Dumper=_FlowDumper, sort_keys=False, width=160,
-                     allow_unicode=True)
+    header = (
+        f"# Threshold probes for rulebook {rb.id} {rb.version}, generated by `gasrules verify --suggest "
+        "--write-probes`.\n# Each case sits one reporting step below, at or above one cut-point of "
+        "gasrules.list_cutpoints, where\n# that comparison decides its rule; the expectation follows from "
+        "the rule's definition on that side.\n"
+    )
+    body = yaml.dump(
+        {"kind": "probes", "cases": cases}, Dumper=_FlowDumper, sort_keys=False, width=160, allow_unicode=True
+    )
     target.write_text(header + body, encoding="utf-8")
     return len(cases)
 
@@ -871,8 +1074,13 @@ def summary(suite: Suite, results: list[CaseResult]) -> dict[str, Any]:
     for c in suite.cases:
         by_tag[c.evidence["tag"]] = by_tag.get(c.evidence["tag"], 0) + 1
     counts = {k: sum(1 for r in results if r.outcome == k) for k in ("passed", "failed", "skipped")}
-    return {"cases": len(suite.cases), **counts, "by_evidence": by_tag, "superseded": len(suite.superseded),
-            "probes": sum(1 for c in suite.cases if c.probe is not None)}
+    return {
+        "cases": len(suite.cases),
+        **counts,
+        "by_evidence": by_tag,
+        "superseded": len(suite.superseded),
+        "probes": sum(1 for c in suite.cases if c.probe is not None),
+    }
 
 
 def finite(x: Any) -> bool:

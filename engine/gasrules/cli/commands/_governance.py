@@ -6,16 +6,18 @@ from __future__ import annotations
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Any, Optional
+from typing import Any
 
 import typer
 
 from gasrules.core import exitcodes
 
-SETTINGS_HELP = "Settings YAML (strict mode, release directory, decision log, shadow); GASRULES_* variables override it."
+SETTINGS_HELP = (
+    "Settings YAML (strict mode, release directory, decision log, shadow); GASRULES_* variables override it."
+)
 
 
-def site_settings(settings_file: Optional[Path], **overrides: Any) -> Any:
+def site_settings(settings_file: Path | None, **overrides: Any) -> Any:
     """The settings, or exit 2 with the setting named."""
     from gasrules.governance.settings import SettingsError, load_settings
 
@@ -28,8 +30,11 @@ def site_settings(settings_file: Optional[Path], **overrides: Any) -> Any:
 
 def need_release_dir(settings: Any) -> Path:
     if settings.release_dir is None:
-        typer.echo("error: no release directory: give --release-dir, set GASRULES_RELEASE_DIR, or releases.dir in "
-                   "the --settings file", err=True)
+        typer.echo(
+            "error: no release directory: give --release-dir, set GASRULES_RELEASE_DIR, or releases.dir in "
+            "the --settings file",
+            err=True,
+        )
         raise typer.Exit(exitcodes.USAGE)
     return Path(settings.release_dir)
 
@@ -63,4 +68,3 @@ def startup_errors(command: str, usage: tuple[type[BaseException], ...] = ()) ->
     except (SettingsError, *usage) as exc:
         typer.echo(f"gasrules {command}: {exc}", err=True)
         raise typer.Exit(exitcodes.USAGE) from None
-

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import Optional
 
 import typer
 
@@ -14,13 +13,15 @@ app = typer.Typer(add_completion=False)
 
 
 @app.command()
-def cutpoints(rulebook: Optional[Path] = typer.Argument(None, help="Rulebook YAML (default: shipped)."),
-              as_json: bool = typer.Option(False, "--json", help="Print as JSON.")) -> None:
+def cutpoints(
+    rulebook: Path | None = typer.Argument(None, help="Rulebook YAML (default: shipped)."),
+    as_json: bool = typer.Option(False, "--json", help="Print as JSON."),
+) -> None:
     """List every cut-point: the quantity compared, the operator, the threshold and where it comes from."""
-    from gasrules.rulebook.build import load_rulebook
-    from gasrules.rulebook.compiler import list_cutpoints
     from gasrules.core.errors import RulebookError
     from gasrules.evaluation.render import render_problems
+    from gasrules.rulebook.build import load_rulebook
+    from gasrules.rulebook.compiler import list_cutpoints
 
     try:
         rb = load_rulebook(rulebook)
@@ -33,4 +34,6 @@ def cutpoints(rulebook: Optional[Path] = typer.Argument(None, help="Rulebook YAM
         return
     for r in rows:
         value = "" if r["value"] is None else f" = {r['value']:g}"
-        typer.echo(f"{r['owner']:<45} {r['quantity']} {r['op']} {r['threshold']}{value}  ({r['threshold_kind']}, {r['location']})")
+        typer.echo(
+            f"{r['owner']:<45} {r['quantity']} {r['op']} {r['threshold']}{value}  ({r['threshold_kind']}, {r['location']})"
+        )

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 from enum import Enum
 from pathlib import Path
-from typing import Optional
 
 import typer
 
@@ -24,12 +23,15 @@ class Format(str, Enum):
 
 
 @app.command()
-def diff(old: Path = typer.Argument(..., help="The previous rulebook (or overlay) YAML."),
-         new: Path = typer.Argument(..., help="The proposed rulebook (or overlay) YAML."),
-         fmt: Format = typer.Option(Format.text, "--format", "-f", help="text, json or markdown."),
-         output: Optional[Path] = typer.Option(None, "--output", "-o", help="Write the report to this file."),
-         releases: Optional[Path] = typer.Option(None, "--releases", help="Release directory: show each side's "
-                                                 "approvals from its release manifests.")) -> None:
+def diff(
+    old: Path = typer.Argument(..., help="The previous rulebook (or overlay) YAML."),
+    new: Path = typer.Argument(..., help="The proposed rulebook (or overlay) YAML."),
+    fmt: Format = typer.Option(Format.text, "--format", "-f", help="text, json or markdown."),
+    output: Path | None = typer.Option(None, "--output", "-o", help="Write the report to this file."),
+    releases: Path | None = typer.Option(
+        None, "--releases", help="Release directory: show each side's approvals from its release manifests."
+    ),
+) -> None:
     """Compare the resolved content of two rulebooks by stable ids and class every change
     (patch: tuning inside guard rails; minor: additive; major: change of meaning). Fails when
     the version bump is smaller than the change class needs."""
@@ -42,7 +44,7 @@ def diff(old: Path = typer.Argument(..., help="The previous rulebook (or overlay
     except RulebookError as exc:
         typer.echo(render_problems(exc.problems, ""), err=True)
         raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
-    except ValueError as exc:   # a version that is not MAJOR.MINOR.PATCH
+    except ValueError as exc:  # a version that is not MAJOR.MINOR.PATCH
         typer.echo(f"gasrules diff: {exc}", err=True)
         raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
     text = RENDERERS[fmt.value](result)

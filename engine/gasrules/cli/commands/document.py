@@ -12,30 +12,37 @@ file cannot be used, 2 usage, 5 broken rulebook.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Optional
 
 import typer
 
-from gasrules.core import exitcodes
 from gasrules.cli.commands._governance import broken_rulebook
+from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False)
 
 
 @app.command()
-def document(rulebook: Path = typer.Argument(..., help="The rulebook (or site overlay) to document."),
-             since: Optional[Path] = typer.Option(None, "--since", help="Previous version: add what changed since it."),
-             corpus: Optional[Path] = typer.Option(None, "--corpus", help="With --since: replay this corpus (CSV, JSON "
-                                                   "Lines, Parquet) under both and add the impact summary."),
-             out: Optional[Path] = typer.Option(None, "--out", help="Directory for the HTML and Markdown files."),
-             workers: int = typer.Option(1, "--workers", min=1, help="Worker processes for the corpus replay and the cohorts."),
-             no_cohorts: bool = typer.Option(False, "--no-cohorts", help="Leave out the simulated cohorts' table.")) -> None:
+def document(
+    rulebook: Path = typer.Argument(..., help="The rulebook (or site overlay) to document."),
+    since: Path | None = typer.Option(None, "--since", help="Previous version: add what changed since it."),
+    corpus: Path | None = typer.Option(
+        None,
+        "--corpus",
+        help="With --since: replay this corpus (CSV, JSON "
+        "Lines, Parquet) under both and add the impact summary.",
+    ),
+    out: Path | None = typer.Option(None, "--out", help="Directory for the HTML and Markdown files."),
+    workers: int = typer.Option(
+        1, "--workers", min=1, help="Worker processes for the corpus replay and the cohorts."
+    ),
+    no_cohorts: bool = typer.Option(False, "--no-cohorts", help="Leave out the simulated cohorts' table."),
+) -> None:
     """Render a rulebook for review: parameters with sources and who set them, rules in plain language, changes."""
-    from gasrules.verification.cohorts import CohortError
-    from gasrules.governance.review_document import build_document, render_html, render_markdown
-    from gasrules.evaluation.render import render_problems
     from gasrules.core.errors import RulebookError
+    from gasrules.evaluation.render import render_problems
+    from gasrules.governance.review_document import build_document, render_html, render_markdown
     from gasrules.tables.readers import TableError
+    from gasrules.verification.cohorts import CohortError
 
     if corpus is not None and since is None:
         typer.echo("error: --corpus needs --since (the impact compares two versions)", err=True)

@@ -13,7 +13,6 @@ import os
 import sys
 from enum import Enum
 from pathlib import Path
-from typing import Optional
 
 import typer
 
@@ -32,11 +31,13 @@ def _default_workers() -> int:
     return max(1, min(2, os.cpu_count() or 1))
 
 
-def _with_cohorts(old: Path, new: Path, rb_old: object, rb_new: object, fmt: str, text: str, workers: int) -> str:
+def _with_cohorts(
+    old: Path, new: Path, rb_old: object, rb_new: object, fmt: str, text: str, workers: int
+) -> str:
     """The report with the simulated cohorts' figures under both rulebooks, side by side."""
+    from gasrules.evaluation.render import render_problems
     from gasrules.verification import cohort_table as T
     from gasrules.verification.cohorts import CohortError
-    from gasrules.evaluation.render import render_problems
 
     try:
         rows = T.compare(T.table_for(old, rb_old, workers=workers), T.table_for(new, rb_new, workers=workers))
@@ -47,28 +48,36 @@ def _with_cohorts(old: Path, new: Path, rb_old: object, rb_new: object, fmt: str
 
 
 @app.command()
-def impact(old: Path = typer.Argument(..., help="The current rulebook (or overlay) YAML."),
-           new: Path = typer.Argument(..., help="The proposed rulebook (or overlay) YAML."),
-           corpus: Path = typer.Argument(..., help="Past cases: CSV, JSON Lines or Parquet (file or directory)."),
-           expected: Optional[Path] = typer.Option(None, "--expected", "-e",
-                                                   help="YAML/JSON file of expected transitions; others exit 1."),
-           fmt: Format = typer.Option(Format.text, "--format", "-f", help="text, json or html."),
-           output: Optional[Path] = typer.Option(None, "--output", "-o", help="Write the report to this file."),
-           workers: int = typer.Option(_default_workers(), "--workers", "-w", min=1, help="Worker processes."),
-           chunk: int = typer.Option(250, "--chunk", min=1, help="Rows per chunk sent to a worker."),
-           mapping: Optional[Path] = typer.Option(None, "--mapping", help="Column mapping file (as for batch)."),
-           no_cohorts: bool = typer.Option(False, "--no-cohorts", help="Leave out the simulated cohorts' figures under both rulebooks."),
-           input_format: Optional[str] = typer.Option(None, "--input-format", help="csv, jsonl or parquet (default: by suffix)."),
-           progress: Optional[bool] = typer.Option(None, "--progress/--no-progress",
-                                                   help="Progress bar (default: only on a terminal).")) -> None:
+def impact(
+    old: Path = typer.Argument(..., help="The current rulebook (or overlay) YAML."),
+    new: Path = typer.Argument(..., help="The proposed rulebook (or overlay) YAML."),
+    corpus: Path = typer.Argument(..., help="Past cases: CSV, JSON Lines or Parquet (file or directory)."),
+    expected: Path | None = typer.Option(
+        None, "--expected", "-e", help="YAML/JSON file of expected transitions; others exit 1."
+    ),
+    fmt: Format = typer.Option(Format.text, "--format", "-f", help="text, json or html."),
+    output: Path | None = typer.Option(None, "--output", "-o", help="Write the report to this file."),
+    workers: int = typer.Option(_default_workers(), "--workers", "-w", min=1, help="Worker processes."),
+    chunk: int = typer.Option(250, "--chunk", min=1, help="Rows per chunk sent to a worker."),
+    mapping: Path | None = typer.Option(None, "--mapping", help="Column mapping file (as for batch)."),
+    no_cohorts: bool = typer.Option(
+        False, "--no-cohorts", help="Leave out the simulated cohorts' figures under both rulebooks."
+    ),
+    input_format: str | None = typer.Option(
+        None, "--input-format", help="csv, jsonl or parquet (default: by suffix)."
+    ),
+    progress: bool | None = typer.Option(
+        None, "--progress/--no-progress", help="Progress bar (default: only on a terminal)."
+    ),
+) -> None:
     """Interpret every case of the corpus under both rulebooks and report the cases whose
     disorders or findings change, the transitions between disorder sets with examples, the
     rules responsible, and the cases now close to a changed threshold."""
-    from gasrules.rulebook.build import load_rulebook
-    from gasrules.integration.batch import Progress
     from gasrules.core.errors import RulebookError
-    from gasrules.governance.impact import RENDERERS, ExpectedError, load_expected, replay
     from gasrules.evaluation.render import render_problems
+    from gasrules.governance.impact import RENDERERS, ExpectedError, load_expected, replay
+    from gasrules.integration.batch import Progress
+    from gasrules.rulebook.build import load_rulebook
     from gasrules.tables.readers import TableError, load_mapping
 
     try:
@@ -85,8 +94,18 @@ def impact(old: Path = typer.Argument(..., help="The current rulebook (or overla
             bar.share = lambda: share
             bar.update(rows)
 
-        report = replay(rb_old, rb_new, corpus, workers=workers, chunk_size=chunk, mapping=cols, fmt=input_format,
-                        expected=wanted, expected_file=str(expected or ""), on_progress=on_progress)
+        report = replay(
+            rb_old,
+            rb_new,
+            corpus,
+            workers=workers,
+            chunk_size=chunk,
+            mapping=cols,
+            fmt=input_format,
+            expected=wanted,
+            expected_file=str(expected or ""),
+            on_progress=on_progress,
+        )
         bar.finish(report.rows)
     except (ExpectedError, TableError) as exc:
         typer.echo(f"gasrules impact: {exc}", err=True)
@@ -99,8 +118,11 @@ def impact(old: Path = typer.Argument(..., help="The current rulebook (or overla
     else:
         typer.echo(text)
     if report.unexpected:
-        typer.echo(f"gasrules impact: {len(report.unexpected)} unexpected transition(s), "
-                   f"{sum(t.count for t in report.unexpected):,} case(s)", err=True)
+        typer.echo(
+            f"gasrules impact: {len(report.unexpected)} unexpected transition(s), "
+            f"{sum(t.count for t in report.unexpected):,} case(s)",
+            err=True,
+        )
         raise typer.Exit(exitcodes.FAILED)
     from gasrules.governance.settings import SettingsError, load_settings, too_many_unreadable
 

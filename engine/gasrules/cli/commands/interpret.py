@@ -1,11 +1,11 @@
 """`gasrules interpret`: one case from a file, stdin or flags; or many from JSON Lines.
 
-    gasrules interpret case.json
-    gasrules interpret cases.jsonl --json
-    gasrules interpret --ph 7.26 --pco2 25 --hco3 11 --na 140 --cl 104
-    gasrules interpret --ph 7.21 --pco2 8.7kPa --hco3 26 --set sample_type=arterial
-    gasrules interpret results.hl7 --format fhir     # HL7 v2 ORU^R01 in, FHIR Bundles out
-    gasrules interpret bundle.json --format hl7      # FHIR in, ORU^R01 out
+gasrules interpret case.json
+gasrules interpret cases.jsonl --json
+gasrules interpret --ph 7.26 --pco2 25 --hco3 11 --na 140 --cl 104
+gasrules interpret --ph 7.21 --pco2 8.7kPa --hco3 26 --set sample_type=arterial
+gasrules interpret results.hl7 --format fhir     # HL7 v2 ORU^R01 in, FHIR Bundles out
+gasrules interpret bundle.json --format hl7      # FHIR in, ORU^R01 out
 """
 
 from __future__ import annotations
@@ -13,8 +13,9 @@ from __future__ import annotations
 import json
 import re
 import sys
+from collections.abc import Iterator
 from pathlib import Path
-from typing import Any, Iterator, List, Optional
+from typing import Any
 
 import typer
 
@@ -70,7 +71,7 @@ def read_cases(source: str) -> Iterator[Any]:
             case = {"__unreadable__": f"{name}:{lineno}:{exc.colno}: invalid JSON: {exc.msg}"}
         except RecursionError:
             case = {"__unreadable__": f"{name}:{lineno}: JSON nested too deeply to read"}
-        except ValueError as exc:   # e.g. an integer of thousands of digits
+        except ValueError as exc:  # e.g. an integer of thousands of digits
             case = {"__unreadable__": f"{name}:{lineno}: cannot be read: {str(exc).split(';')[0]}"}
         yield case
 
@@ -84,11 +85,11 @@ def _looks_like_jsonl(text: str) -> bool:
         return True
     except json.JSONDecodeError:
         return False
-    except (RecursionError, ValueError):   # one whole value too deep or too long on the first line
+    except (RecursionError, ValueError):  # one whole value too deep or too long on the first line
         return True
 
 
-def _runtime(settings_file: Optional[Path], rulebook: Optional[Path]) -> Any:
+def _runtime(settings_file: Path | None, rulebook: Path | None) -> Any:
     """The governed Runtime under the site settings (a --settings file, GASRULES_* variables,
     else the defaults): every interpretation goes through it."""
     from gasrules.core.errors import RulebookError
@@ -111,35 +112,74 @@ def _runtime(settings_file: Optional[Path], rulebook: Optional[Path]) -> Any:
 
 @app.command()
 def interpret(
-    case_file: Optional[str] = typer.Argument(None, help="Case file (.json object or list, .jsonl), or '-' for stdin."),
-    rulebook: Optional[Path] = typer.Option(None, "--rulebook", "-r", help="Rulebook YAML (default: the shipped adult rulebook)."),
-    as_json: bool = typer.Option(False, "--json", help="Print the result contract as JSON (JSON Lines for several cases)."),
+    case_file: str | None = typer.Argument(
+        None, help="Case file (.json object or list, .jsonl), or '-' for stdin."
+    ),
+    rulebook: Path | None = typer.Option(
+        None, "--rulebook", "-r", help="Rulebook YAML (default: the shipped adult rulebook)."
+    ),
+    as_json: bool = typer.Option(
+        False, "--json", help="Print the result contract as JSON (JSON Lines for several cases)."
+    ),
     trace: bool = typer.Option(False, "--trace", help="Add the readable trace of every rule."),
-    ph: Optional[str] = typer.Option(None, "--ph", help="pH."),
-    pco2: Optional[str] = typer.Option(None, "--pco2", help="PCO2 in mmHg, or with a unit: 8.7kPa."),
-    po2: Optional[str] = typer.Option(None, "--po2", help="PO2 in mmHg, or with a unit: 10.2kPa."),
-    hco3: Optional[str] = typer.Option(None, "--hco3", help="HCO3 in mmol/L."),
-    na: Optional[str] = typer.Option(None, "--na", help="Sodium in mmol/L."),
-    k: Optional[str] = typer.Option(None, "--k", help="Potassium in mmol/L."),
-    cl: Optional[str] = typer.Option(None, "--cl", help="Chloride in mmol/L."),
-    albumin: Optional[str] = typer.Option(None, "--albumin", help="Albumin in g/L, or 3.1g/dL."),
-    lactate: Optional[str] = typer.Option(None, "--lactate", help="Lactate in mmol/L."),
-    fio2: Optional[str] = typer.Option(None, "--fio2", help="FiO2 as a fraction (0.21) or 40%."),
-    age: Optional[str] = typer.Option(None, "--age", help="Age in years."),
-    sample_type: Optional[str] = typer.Option(None, "--sample-type", help="arterial, venous, capillary, mixed_venous or unknown."),
-    chronicity: Optional[str] = typer.Option(None, "--chronicity", help="acute, chronic or unknown."),
-    set_: List[str] = typer.Option([], "--set", help="Any input: NAME=VALUE[UNIT], e.g. --set urea=7.1 --set temperature=38.5Cel."),
-    settings: Optional[Path] = typer.Option(None, "--settings", help="Site settings (strict mode, decision log, shadow candidate); GASRULES_* variables also apply."),
-    input_format: Optional[str] = typer.Option(None, "--input-format", help="json, jsonl, hl7 or fhir (default: from the file: .hl7 is HL7 v2, JSON with a resourceType is FHIR)."),
-    out_format: Optional[str] = typer.Option(None, "--format", "-f", help="text, json, fhir (a FHIR Bundle per case) or hl7 (a preliminary ORU^R01 per case) [default: text]."),
-    allow_rejected: bool = typer.Option(False, "--allow-rejected", help="With several cases, exit 0 even when some "
-                                        "were rejected (never when every one was)."),
+    ph: str | None = typer.Option(None, "--ph", help="pH."),
+    pco2: str | None = typer.Option(None, "--pco2", help="PCO2 in mmHg, or with a unit: 8.7kPa."),
+    po2: str | None = typer.Option(None, "--po2", help="PO2 in mmHg, or with a unit: 10.2kPa."),
+    hco3: str | None = typer.Option(None, "--hco3", help="HCO3 in mmol/L."),
+    na: str | None = typer.Option(None, "--na", help="Sodium in mmol/L."),
+    k: str | None = typer.Option(None, "--k", help="Potassium in mmol/L."),
+    cl: str | None = typer.Option(None, "--cl", help="Chloride in mmol/L."),
+    albumin: str | None = typer.Option(None, "--albumin", help="Albumin in g/L, or 3.1g/dL."),
+    lactate: str | None = typer.Option(None, "--lactate", help="Lactate in mmol/L."),
+    fio2: str | None = typer.Option(None, "--fio2", help="FiO2 as a fraction (0.21) or 40%."),
+    age: str | None = typer.Option(None, "--age", help="Age in years."),
+    sample_type: str | None = typer.Option(
+        None, "--sample-type", help="arterial, venous, capillary, mixed_venous or unknown."
+    ),
+    chronicity: str | None = typer.Option(None, "--chronicity", help="acute, chronic or unknown."),
+    set_: list[str] = typer.Option(
+        [], "--set", help="Any input: NAME=VALUE[UNIT], e.g. --set urea=7.1 --set temperature=38.5Cel."
+    ),
+    settings: Path | None = typer.Option(
+        None,
+        "--settings",
+        help="Site settings (strict mode, decision log, shadow candidate); GASRULES_* variables also apply.",
+    ),
+    input_format: str | None = typer.Option(
+        None,
+        "--input-format",
+        help="json, jsonl, hl7 or fhir (default: from the file: .hl7 is HL7 v2, JSON with a resourceType is FHIR).",
+    ),
+    out_format: str | None = typer.Option(
+        None,
+        "--format",
+        "-f",
+        help="text, json, fhir (a FHIR Bundle per case) or hl7 (a preliminary ORU^R01 per case) [default: text].",
+    ),
+    allow_rejected: bool = typer.Option(
+        False,
+        "--allow-rejected",
+        help="With several cases, exit 0 even when some were rejected (never when every one was).",
+    ),
 ) -> None:
     """Interpret blood gas cases. Exit 0 interpreted or partial, 3 inconsistent, 4 rejected, 5 broken rulebook."""
     from gasrules.evaluation.render import render_result
 
-    flags = {"ph": ph, "pco2": pco2, "po2": po2, "hco3": hco3, "na": na, "k": k, "cl": cl, "albumin": albumin,
-             "lactate": lactate, "fio2": fio2, "age": age, "sample_type": sample_type, "chronicity": chronicity}
+    flags = {
+        "ph": ph,
+        "pco2": pco2,
+        "po2": po2,
+        "hco3": hco3,
+        "na": na,
+        "k": k,
+        "cl": cl,
+        "albumin": albumin,
+        "lactate": lactate,
+        "fio2": fio2,
+        "age": age,
+        "sample_type": sample_type,
+        "chronicity": chronicity,
+    }
     given = {name: parse_value(v) for name, v in flags.items() if v is not None}
     for item in set_:
         name, sep, value = item.partition("=")
@@ -147,7 +187,9 @@ def interpret(
             raise typer.BadParameter(f"--set {item!r}: expected NAME=VALUE, e.g. --set urea=7.1")
         given[name.strip()] = parse_value(value)
     if case_file is None and not given:
-        raise typer.BadParameter("give a case file, '-' for stdin, or analyte flags such as --ph 7.26 --pco2 25 --hco3 11")
+        raise typer.BadParameter(
+            "give a case file, '-' for stdin, or analyte flags such as --ph 7.26 --pco2 25 --hco3 11"
+        )
     if case_file is not None and given:
         raise typer.BadParameter("give either a case file or analyte flags, not both")
     if out_format is not None and out_format not in ("text", "json", "fhir", "hl7"):
@@ -181,9 +223,11 @@ def interpret(
         counts[result["status"]] = counts.get(result["status"], 0) + 1
         if incoming:
             for issue in incoming[n].issues:
-                if issue.severity != "error":   # errors are in the rejected result itself
-                    typer.echo(f"{incoming[n].case.get('case_id') or f'case {n + 1}'}: "
-                               f"{issue.severity}: {issue}", err=True)
+                if issue.severity != "error":  # errors are in the rejected result itself
+                    typer.echo(
+                        f"{incoming[n].case.get('case_id') or f'case {n + 1}'}: {issue.severity}: {issue}",
+                        err=True,
+                    )
         if out_format in ("fhir", "hl7"):
             typer.echo(messages.write(n, result))
         elif as_json:  # the full result contract, trace included
@@ -193,7 +237,10 @@ def interpret(
                 typer.echo("\n" + "-" * 72 + "\n")
             typer.echo(render_result(rb, result, trace=trace))
         first = False
-        worst = max(worst, {"inconsistent": exitcodes.INCONSISTENT, "rejected": exitcodes.REJECTED}.get(result["status"], 0))
+        worst = max(
+            worst,
+            {"inconsistent": exitcodes.INCONSISTENT, "rejected": exitcodes.REJECTED}.get(result["status"], 0),
+        )
     if runtime is not None:
         runtime.close()
     total = sum(counts.values())
@@ -207,13 +254,12 @@ def interpret(
         raise typer.Exit(exitcodes.REJECTED)
 
 
-def _read_messages(source: str, fmt: str, rulebook: Optional[Path],
-                   settings: Optional[Path]) -> list[Any]:
+def _read_messages(source: str, fmt: str, rulebook: Path | None, settings: Path | None) -> list[Any]:
     """Cases of an HL7 v2 or FHIR file, one per message or Bundle (gasrules.integration.interfaces)."""
-    from gasrules.rulebook.build import load_rulebook
     from gasrules.core.errors import RulebookError
-    from gasrules.integration.interfaces import read_incoming
     from gasrules.evaluation.render import render_problems
+    from gasrules.integration.interfaces import read_incoming
+    from gasrules.rulebook.build import load_rulebook
 
     try:
         rb = load_rulebook(rulebook)
@@ -231,12 +277,12 @@ def _read_messages(source: str, fmt: str, rulebook: Optional[Path],
 class _MessageWriter:
     """Results as FHIR Bundles (indented for one case, one per line for several) or ORU^R01."""
 
-    def __init__(self, fmt: str, incoming: list[Any], rb: Any, settings: Optional[Path]) -> None:
+    def __init__(self, fmt: str, incoming: list[Any], rb: Any, settings: Path | None) -> None:
         self.fmt, self.incoming, self.rb = fmt, incoming, rb
         self.settings: Any = None
         if fmt in ("fhir", "hl7"):
-            from gasrules.integration.interfaces import interfaces_section
             from gasrules.governance.settings import SettingsError
+            from gasrules.integration.interfaces import interfaces_section
 
             try:
                 self.settings = interfaces_section(settings)
@@ -250,7 +296,6 @@ class _MessageWriter:
         inc = self.incoming[n] if n < len(self.incoming) else None
         if self.fmt == "fhir":
             bundle = to_fhir(result, inc, self.rb, self.settings.codesystem_url)
-            return json.dumps(bundle, ensure_ascii=False,
-                              indent=1 if len(self.incoming) <= 1 else None)
+            return json.dumps(bundle, ensure_ascii=False, indent=1 if len(self.incoming) <= 1 else None)
         control = f"GR-{(inc.control_id if inc and inc.control_id else result.get('case_id')) or n + 1}"
         return to_hl7(result, inc, self.settings, control)

@@ -11,12 +11,11 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import List, Optional
 
 import typer
 
-from gasrules.core import exitcodes
 from gasrules.cli.commands._governance import SETTINGS_HELP, broken_rulebook, need_release_dir, site_settings
+from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False)
 
@@ -24,17 +23,32 @@ app = typer.Typer(add_completion=False)
 @app.command()
 def release(
     rulebook: Path = typer.Argument(..., help="The rulebook (or site overlay) to release."),
-    approver: List[str] = typer.Option([], "--approver", help="Approver's name; repeat for several, each with --role."),
-    role: List[str] = typer.Option([], "--role", help="Approver's role, in the order of --approver."),
-    author: List[str] = typer.Option([], "--author", help="Author of the change (default: owners with an author role)."),
-    previous: Optional[Path] = typer.Option(None, "--previous", help="Manifest of the release this one replaces "
-                                            "(default: the latest release of the same rulebook id)."),
-    release_dir: Optional[Path] = typer.Option(None, "--release-dir", help="Release directory (manifests, suspensions)."),
-    archive: Optional[Path] = typer.Option(None, "--archive", help="Rulebook archive (default: RELEASE_DIR/archive)."),
-    settings_file: Optional[Path] = typer.Option(None, "--settings", help=SETTINGS_HELP),
+    approver: list[str] = typer.Option(
+        [], "--approver", help="Approver's name; repeat for several, each with --role."
+    ),
+    role: list[str] = typer.Option([], "--role", help="Approver's role, in the order of --approver."),
+    author: list[str] = typer.Option(
+        [], "--author", help="Author of the change (default: owners with an author role)."
+    ),
+    previous: Path | None = typer.Option(
+        None,
+        "--previous",
+        help="Manifest of the release this one replaces "
+        "(default: the latest release of the same rulebook id).",
+    ),
+    release_dir: Path | None = typer.Option(
+        None, "--release-dir", help="Release directory (manifests, suspensions)."
+    ),
+    archive: Path | None = typer.Option(
+        None, "--archive", help="Rulebook archive (default: RELEASE_DIR/archive)."
+    ),
+    settings_file: Path | None = typer.Option(None, "--settings", help=SETTINGS_HELP),
     as_json: bool = typer.Option(False, "--json", help="Print the manifest (or the refusal) as JSON."),
-    diff_md: Optional[Path] = typer.Option(None, "--diff-markdown", help="Also write the change against the previous "
-                                           "release as Markdown to this file."),
+    diff_md: Path | None = typer.Option(
+        None,
+        "--diff-markdown",
+        help="Also write the change against the previous release as Markdown to this file.",
+    ),
 ) -> None:
     """Release a rulebook version: suite passes with full rule coverage, version bump fits the change,
     an author cannot approve their own change; writes the manifest and archives the resolved rulebook."""
@@ -43,8 +57,10 @@ def release(
     from gasrules.governance.release import release as do_release
 
     if len(approver) != len(role):
-        typer.echo(f"error: {len(approver)} --approver and {len(role)} --role given; give one --role per --approver",
-                   err=True)
+        typer.echo(
+            f"error: {len(approver)} --approver and {len(role)} --role given; give one --role per --approver",
+            err=True,
+        )
         raise typer.Exit(exitcodes.USAGE)
     settings = site_settings(settings_file, release_dir=release_dir, archive_dir=archive)
     target = need_release_dir(settings)
@@ -58,18 +74,34 @@ def release(
             typer.echo(f"gasrules: {exc}", err=True)
             raise typer.Exit(exitcodes.USAGE) from None
     try:
-        outcome = do_release(rulebook, release_dir=target, approvers=[Approver(n, r) for n, r in zip(approver, role)],
-                             authors=author, previous=previous, archive=settings.archive, roster=roster)
+        outcome = do_release(
+            rulebook,
+            release_dir=target,
+            approvers=[Approver(n, r) for n, r in zip(approver, role)],
+            authors=author,
+            previous=previous,
+            archive=settings.archive,
+            roster=roster,
+        )
     except RulebookError as exc:
         raise broken_rulebook(exc, str(rulebook)) from None
     except ReleaseRefused as exc:
         if as_json:
-            typer.echo(json.dumps({"released": False, "reasons": [{"code": c, "message": m} for c, m in exc.reasons]},
-                                  indent=2))
+            typer.echo(
+                json.dumps(
+                    {"released": False, "reasons": [{"code": c, "message": m} for c, m in exc.reasons]},
+                    indent=2,
+                )
+            )
         else:
             typer.echo(render_refusal(exc), err=True)
         raise typer.Exit(exitcodes.FAILED) from None
     if diff_md is not None and outcome.diff_markdown:
         diff_md.write_text(outcome.diff_markdown + "\n", encoding="utf-8")
-    typer.echo(json.dumps({"released": True, "manifest_file": str(outcome.manifest_path), **outcome.manifest},
-                          indent=2) if as_json else render_outcome(outcome))
+    typer.echo(
+        json.dumps(
+            {"released": True, "manifest_file": str(outcome.manifest_path), **outcome.manifest}, indent=2
+        )
+        if as_json
+        else render_outcome(outcome)
+    )

@@ -12,25 +12,33 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import Optional
 
 import typer
 
-from gasrules.core import exitcodes
 from gasrules.cli.commands._governance import SETTINGS_HELP, broken_rulebook, site_settings
+from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False, help="Run a candidate rulebook in the shadow of the active one.")
 
 
 @app.command()
-def run(cases: Path = typer.Argument(..., help="Cases: CSV, JSON Lines or Parquet (columns named like the inputs)."),
-        candidate: Optional[Path] = typer.Option(None, "--candidate", help="Candidate rulebook (or shadow.rulebook)."),
-        rulebook: Optional[Path] = typer.Option(None, "--rulebook", "-r", help="Active rulebook (default: settings, "
-                                                "else the shipped adult rulebook)."),
-        log: Optional[Path] = typer.Option(None, "--log", help="Disagreement log (JSON Lines; or shadow.log)."),
-        settings_file: Optional[Path] = typer.Option(None, "--settings", help=SETTINGS_HELP),
-        strict: Optional[bool] = typer.Option(None, "--strict/--no-strict", help="Strict mode for the active rulebook."),
-        as_json: bool = typer.Option(False, "--json", help="Print the active results as JSON Lines.")) -> None:
+def run(
+    cases: Path = typer.Argument(
+        ..., help="Cases: CSV, JSON Lines or Parquet (columns named like the inputs)."
+    ),
+    candidate: Path | None = typer.Option(
+        None, "--candidate", help="Candidate rulebook (or shadow.rulebook)."
+    ),
+    rulebook: Path | None = typer.Option(
+        None, "--rulebook", "-r", help="Active rulebook (default: settings, else the shipped adult rulebook)."
+    ),
+    log: Path | None = typer.Option(None, "--log", help="Disagreement log (JSON Lines; or shadow.log)."),
+    settings_file: Path | None = typer.Option(None, "--settings", help=SETTINGS_HELP),
+    strict: bool | None = typer.Option(
+        None, "--strict/--no-strict", help="Strict mode for the active rulebook."
+    ),
+    as_json: bool = typer.Option(False, "--json", help="Print the active results as JSON Lines."),
+) -> None:
     """Interpret with the active rulebook and a candidate; show the active results; record disagreements."""
     from gasrules.core.errors import RulebookError
     from gasrules.governance.runtime import Runtime, RuntimeRefusal
@@ -38,7 +46,9 @@ def run(cases: Path = typer.Argument(..., help="Cases: CSV, JSON Lines or Parque
 
     settings = site_settings(settings_file, shadow_rulebook=candidate, shadow_log=log, strict=strict)
     if settings.shadow_rulebook is None:
-        typer.echo("error: no candidate: give --candidate, GASRULES_SHADOW_RULEBOOK or shadow.rulebook", err=True)
+        typer.echo(
+            "error: no candidate: give --candidate, GASRULES_SHADOW_RULEBOOK or shadow.rulebook", err=True
+        )
         raise typer.Exit(exitcodes.USAGE)
     try:
         rt = Runtime.from_settings(settings, rulebook)
@@ -61,14 +71,19 @@ def run(cases: Path = typer.Argument(..., help="Cases: CSV, JSON Lines or Parque
                 if as_json:
                     typer.echo(json.dumps(result, ensure_ascii=False))
                 else:
-                    typer.echo(f"{result.get('case_id') or row.where}\t{result['status']}\t{result['headline']}")
+                    typer.echo(
+                        f"{result.get('case_id') or row.where}\t{result['status']}\t{result['headline']}"
+                    )
             disagreements = rt.disagreements
     except TableError as exc:
         typer.echo(f"error: {exc}", err=True)
         raise typer.Exit(exitcodes.USAGE) from None
     where = f" recorded in {settings.shadow_log}" if settings.shadow_log else " (no --log: not recorded)"
-    typer.echo(f"shadow: {rows} case(s), {unreadable} unreadable, {disagreements} disagreement(s) with candidate "
-               f"{settings.shadow_rulebook}{where}", err=True)
+    typer.echo(
+        f"shadow: {rows} case(s), {unreadable} unreadable, {disagreements} disagreement(s) with candidate "
+        f"{settings.shadow_rulebook}{where}",
+        err=True,
+    )
     from gasrules.governance.settings import too_many_unreadable
 
     too_many = too_many_unreadable(unreadable, rows, settings)
@@ -78,8 +93,10 @@ def run(cases: Path = typer.Argument(..., help="Cases: CSV, JSON Lines or Parque
 
 
 @app.command()
-def report(log: Path = typer.Argument(..., help="Disagreement log written by 'shadow run' or a runtime."),
-           as_json: bool = typer.Option(False, "--json", help="Print the summary as JSON.")) -> None:
+def report(
+    log: Path = typer.Argument(..., help="Disagreement log written by 'shadow run' or a runtime."),
+    as_json: bool = typer.Option(False, "--json", help="Print the summary as JSON."),
+) -> None:
     """Summarise a disagreement log: what differs, disorder transitions with examples, rulebook pairs."""
     from gasrules.governance.shadow import render_summary, summarize
 

@@ -13,12 +13,11 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import Optional
 
 import typer
 
-from gasrules.core import exitcodes
 from gasrules.cli.commands._governance import SETTINGS_HELP, broken_rulebook, need_release_dir, site_settings
+from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False)
 
@@ -26,14 +25,22 @@ app = typer.Typer(add_completion=False)
 @app.command()
 def suspend(
     rulebook: Path = typer.Argument(..., help="The rulebook whose rule (or which as a whole) is suspended."),
-    reason: str = typer.Option("", "--reason", help="Why (at least 10 characters); required unless --status."),
+    reason: str = typer.Option(
+        "", "--reason", help="Why (at least 10 characters); required unless --status."
+    ),
     by: str = typer.Option("", "--by", help="Who decided; required unless --status."),
-    rule: Optional[str] = typer.Option(None, "--rule", help="Suspend only this rule id (default: the whole rulebook)."),
+    rule: str | None = typer.Option(
+        None, "--rule", help="Suspend only this rule id (default: the whole rulebook)."
+    ),
     lift: bool = typer.Option(False, "--lift", help="Reinstate instead of suspend."),
     status: bool = typer.Option(False, "--status", help="Only show what is suspended now."),
-    release_dir: Optional[Path] = typer.Option(None, "--release-dir", help="Release directory (suspension register)."),
-    archive: Optional[Path] = typer.Option(None, "--archive", help="Rulebook archive (default: RELEASE_DIR/archive)."),
-    settings_file: Optional[Path] = typer.Option(None, "--settings", help=SETTINGS_HELP),
+    release_dir: Path | None = typer.Option(
+        None, "--release-dir", help="Release directory (suspension register)."
+    ),
+    archive: Path | None = typer.Option(
+        None, "--archive", help="Rulebook archive (default: RELEASE_DIR/archive)."
+    ),
+    settings_file: Path | None = typer.Option(None, "--settings", help=SETTINGS_HELP),
     as_json: bool = typer.Option(False, "--json", help="Print the recorded event as JSON."),
 ) -> None:
     """Suspend or reinstate a rule or a whole rulebook, with a recorded reason."""
@@ -45,14 +52,23 @@ def suspend(
     target = need_release_dir(settings)
     try:
         if not status:
-            event = change_suspension(rulebook, release_dir=target, reason=reason, by=by, rule=rule, lift=lift,
-                                      archive=settings.archive)
+            event = change_suspension(
+                rulebook,
+                release_dir=target,
+                reason=reason,
+                by=by,
+                rule=rule,
+                lift=lift,
+                archive=settings.archive,
+            )
             if as_json:
                 typer.echo(json.dumps(event, indent=2))
             else:
                 what = f"rule {rule}" if rule else "rulebook"
-                typer.echo(f"recorded: {event['action']} {what} of {event['rulebook']['id']} "
-                           f"{event['rulebook']['version']} by {event['by']} at {event['time']} (event {event['seq']})")
+                typer.echo(
+                    f"recorded: {event['action']} {what} of {event['rulebook']['id']} "
+                    f"{event['rulebook']['version']} by {event['by']} at {event['time']} (event {event['seq']})"
+                )
         rb, state = current_state(rulebook, target)
     except RulebookError as exc:
         raise broken_rulebook(exc, str(rulebook)) from None

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import Any, Optional
+from typing import Any
 
 import typer
 
@@ -19,22 +19,42 @@ app = typer.Typer(add_completion=False)
 
 
 @app.command()
-def verify(rulebook: Optional[Path] = typer.Argument(None, help="Rulebook YAML (default: the shipped adult rulebook)."),
-           cases: Optional[Path] = typer.Option(None, "--cases", help="Folder of case files (default: cases/ beside the rulebook)."),
-           as_json: bool = typer.Option(False, "--json", help="Print the report as JSON (for CI)."),
-           suggest: bool = typer.Option(False, "--suggest", help="Propose input values for missing threshold probes (bisection)."),
-           write_probes: Optional[Path] = typer.Option(None, "--write-probes", help="Write the proposed probes to this case file (implies --suggest)."),
-           min_rule: Optional[float] = typer.Option(None, "--min-rule-coverage", help="Fail when rule coverage (percent) is lower."),
-           min_threshold: Optional[float] = typer.Option(None, "--min-threshold-coverage", help="Fail when threshold coverage (percent) is lower."),
-           no_cohorts: bool = typer.Option(False, "--no-cohorts", help="Skip the simulated cohorts (population-level validation) for a quick run."),
-           cohort_size: Optional[int] = typer.Option(None, "--cohort-size", min=1, help="Cases per cohort (default: the cohort file's size)."),
-           workers: Optional[int] = typer.Option(None, "--workers", min=1, help="Worker processes for the cohorts (default: up to 2).")) -> None:
+def verify(
+    rulebook: Path | None = typer.Argument(None, help="Rulebook YAML (default: the shipped adult rulebook)."),
+    cases: Path | None = typer.Option(
+        None, "--cases", help="Folder of case files (default: cases/ beside the rulebook)."
+    ),
+    as_json: bool = typer.Option(False, "--json", help="Print the report as JSON (for CI)."),
+    suggest: bool = typer.Option(
+        False, "--suggest", help="Propose input values for missing threshold probes (bisection)."
+    ),
+    write_probes: Path | None = typer.Option(
+        None, "--write-probes", help="Write the proposed probes to this case file (implies --suggest)."
+    ),
+    min_rule: float | None = typer.Option(
+        None, "--min-rule-coverage", help="Fail when rule coverage (percent) is lower."
+    ),
+    min_threshold: float | None = typer.Option(
+        None, "--min-threshold-coverage", help="Fail when threshold coverage (percent) is lower."
+    ),
+    no_cohorts: bool = typer.Option(
+        False,
+        "--no-cohorts",
+        help="Skip the simulated cohorts (population-level validation) for a quick run.",
+    ),
+    cohort_size: int | None = typer.Option(
+        None, "--cohort-size", min=1, help="Cases per cohort (default: the cohort file's size)."
+    ),
+    workers: int | None = typer.Option(
+        None, "--workers", min=1, help="Worker processes for the cohorts (default: up to 2)."
+    ),
+) -> None:
     """Run every reference case; show failures with expected vs got and the deciding trace; show coverage."""
+    from gasrules.core.errors import RulebookError
+    from gasrules.core.resources import default_rulebook_path
+    from gasrules.evaluation.render import render_problems
     from gasrules.rulebook.build import load_rulebook
     from gasrules.verification import suite as S
-    from gasrules.core.errors import RulebookError
-    from gasrules.evaluation.render import render_problems
-    from gasrules.core.resources import default_rulebook_path
 
     path = rulebook or default_rulebook_path()
     try:
@@ -53,18 +73,24 @@ def verify(rulebook: Optional[Path] = typer.Argument(None, help="Rulebook YAML (
         raise typer.Exit(exitcodes.FAILED)
     unused = S.unused_entries(rb, suite)
     if unused and not as_json:
-        typer.echo(f"warning: {len(unused)} bibliography entr{'y' if len(unused) == 1 else 'ies'} cited by no "
-                   "parameter, rule or case of this rulebook (another rulebook sharing the file may cite them): "
-                   + ", ".join(unused), err=True)
+        typer.echo(
+            f"warning: {len(unused)} bibliography entr{'y' if len(unused) == 1 else 'ies'} cited by no "
+            "parameter, rule or case of this rulebook (another rulebook sharing the file may cite them): "
+            + ", ".join(unused),
+            err=True,
+        )
     results = S.run_suite(rb, suite)
     rules = S.rule_coverage(rb, results, suite.unreachable)
     thresholds = S.threshold_coverage(rb, results, suite.unreachable)
-    report: dict[str, Any] = {"rulebook": rb.identity, "summary": S.summary(suite, results),
-                              "uncited_bibliography_entries": unused,
-                              "failures": [_failure_json(r) for r in results if r.outcome == "failed"],
-                              "superseded": suite.superseded,
-                              "rule_coverage": {k: v for k, v in rules.items() if k != "counts"},
-                              "threshold_coverage": {k: v for k, v in thresholds.items() if k != "rows"}}
+    report: dict[str, Any] = {
+        "rulebook": rb.identity,
+        "summary": S.summary(suite, results),
+        "uncited_bibliography_entries": unused,
+        "failures": [_failure_json(r) for r in results if r.outcome == "failed"],
+        "superseded": suite.superseded,
+        "rule_coverage": {k: v for k, v in rules.items() if k != "counts"},
+        "threshold_coverage": {k: v for k, v in thresholds.items() if k != "rows"},
+    }
     if suggest or write_probes is not None:
         probes, not_found = S.suggest_probes(rb, results, thresholds)
         report["suggestions"] = [S.probe_case(rb, p) | {"engine_agrees": p.engine_agrees} for p in probes]
@@ -90,11 +116,11 @@ def verify(rulebook: Optional[Path] = typer.Argument(None, help="Rulebook YAML (
     raise typer.Exit(code)
 
 
-def _cohorts(path: Path, rb: Any, cases: Optional[Path], workers: Optional[int], size: Optional[int]) -> Any:
+def _cohorts(path: Path, rb: Any, cases: Path | None, workers: int | None, size: int | None) -> Any:
     """The operating-characteristics table on the simulated cohorts (None: no cohort file)."""
+    from gasrules.evaluation.render import render_problems
     from gasrules.verification import cohort_table as T
     from gasrules.verification.cohorts import CohortError
-    from gasrules.evaluation.render import render_problems
 
     try:
         return T.table_for(path, rb, cases_dir=cases, workers=workers or T.default_workers(), size=size)
@@ -104,8 +130,14 @@ def _cohorts(path: Path, rb: Any, cases: Optional[Path], workers: Optional[int],
 
 
 def _failure_json(r: Any) -> dict[str, Any]:
-    return {"case": r.case.id, "location": str(r.case.location), "status": r.result["status"] if r.result else None,
-            "failures": [{"what": f.what, "expected": f.expected, "got": f.got, "rules": f.rules} for f in r.failures]}
+    return {
+        "case": r.case.id,
+        "location": str(r.case.location),
+        "status": r.result["status"] if r.result else None,
+        "failures": [
+            {"what": f.what, "expected": f.expected, "got": f.got, "rules": f.rules} for f in r.failures
+        ],
+    }
 
 
 def _text(rb: Any, results: list[Any], report: dict[str, Any]) -> str:
@@ -123,9 +155,12 @@ def _text(rb: Any, results: list[Any], report: dict[str, Any]) -> str:
             wanted += [x for x in f.rules if x not in wanted]
         if wanted and r.result and r.result["trace"]:
             lines += ["    " + x for x in render_trace(r.result["trace"], only=wanted).splitlines()]
-    lines += ["", f"Cases: {s['cases']} ({s['passed']} passed, {s['failed']} failed, {s['skipped']} skipped; "
-              f"{s['superseded']} base cases superseded; {s['probes']} threshold probes)",
-              "  by evidence: " + ", ".join(f"{k} {v}" for k, v in s["by_evidence"].items())]
+    lines += [
+        "",
+        f"Cases: {s['cases']} ({s['passed']} passed, {s['failed']} failed, {s['skipped']} skipped; "
+        f"{s['superseded']} base cases superseded; {s['probes']} threshold probes)",
+        "  by evidence: " + ", ".join(f"{k} {v}" for k, v in s["by_evidence"].items()),
+    ]
     rc = report["rule_coverage"]
     lines.append(f"Rule coverage: {rc['summary']} active rules both fired and not fired ({rc['percent']}%)")
     if rc["never_fired"]:
@@ -137,7 +172,9 @@ def _text(rb: Any, results: list[Any], report: dict[str, Any]) -> str:
     for e in rc["stale_excuses"]:
         lines.append(f"  stated unreachable but covered ({e['outcome'].replace('_', ' ')}): {e['rule']}")
     tc = report["threshold_coverage"]
-    lines.append(f"Threshold coverage: {tc['summary']} sides of {tc['cutpoints']} cut-points ({tc['percent']}%)")
+    lines.append(
+        f"Threshold coverage: {tc['summary']} sides of {tc['cutpoints']} cut-points ({tc['percent']}%)"
+    )
     for m in tc["missing"]:
         lines.append(f"  missing {'/'.join(m['sides'])}: {m['cutpoint']}")
     grouped: dict[str, list[str]] = {}
@@ -146,7 +183,9 @@ def _text(rb: Any, results: list[Any], report: dict[str, Any]) -> str:
     for text, sides in grouped.items():
         lines.append(f"  unreachable {'/'.join(sides)}: {text}")
     for e in tc["stale_excuses"]:
-        lines.append(f"  stated unreachable but covered (or no such cut-point): {e['side']} of {e['cutpoint']}")
+        lines.append(
+            f"  stated unreachable but covered (or no such cut-point): {e['side']} of {e['cutpoint']}"
+        )
     for p in report.get("suggestions", []):
         agree = "" if p["engine_agrees"] else "  [ENGINE DISAGREES with the rule's definition]"
         lines.append(f"  suggest {p['id']}: {json.dumps(p['input'])}  -> {json.dumps(p['want'])}{agree}")
@@ -158,6 +197,9 @@ def _text(rb: Any, results: list[Any], report: dict[str, Any]) -> str:
         from gasrules.verification.cohort_table import render_text
 
         lines.append(render_text(report["cohorts"]))
-    lines += ["", "Decision support only: it supports, and never replaces, clinical judgement; "
-              "local laboratory ranges and protocols prevail."]
+    lines += [
+        "",
+        "Decision support only: it supports, and never replaces, clinical judgement; "
+        "local laboratory ranges and protocols prevail.",
+    ]
     return "\n".join(lines)
