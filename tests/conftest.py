@@ -6,6 +6,8 @@
   once per session.
 * ``mini_path`` / ``mini_rb``: the small real rulebook under tests/data/mini, loaded once.
 * ``cache_dir``: a fresh, empty cache directory for one test (cache hit/miss tests).
+* ``--update-golden``: rewrite the golden snapshot files of tests/golden/ instead of comparing
+  (test_golden.py); a regeneration is committed with its reason stated in the commit message.
 """
 
 from __future__ import annotations
@@ -38,6 +40,15 @@ def portable(text: str, origin: Path) -> str:
         return "bibliography: " + json.dumps(str((origin.parent / m.group(1).strip()).resolve()))
 
     return re.sub(r"^bibliography: ([^\[\n]+)$", absolute, text, flags=re.M)
+
+
+def pytest_addoption(parser: pytest.Parser) -> None:
+    parser.addoption(
+        "--update-golden",
+        action="store_true",
+        default=False,
+        help="Rewrite tests/golden/ from the current outputs instead of comparing (state why in the commit).",
+    )
 
 
 def pytest_configure(config: pytest.Config) -> None:

@@ -1,8 +1,9 @@
 """The shipped adult rulebook and the example site overlay pass their validation suites.
 
-Runs the same code as `gasrules verify` on both rulebooks and asserts: no failing case, every
+Runs the same code as `gasrules verify` on both rulebooks and asserts: every
 active rule both fired and not fired somewhere (or stated unreachable with a reason, and that
 statement still true), and a probe one reporting step below, at and above every cut-point.
+Whether each case passes is one test item per case, in test_reference_cases.py.
 """
 
 from __future__ import annotations
@@ -31,14 +32,6 @@ def _verify(path: Path):
 @pytest.fixture(scope="module", params=[ADULT, SITE], ids=["adult", "example-site"])
 def verified(request):
     return _verify(request.param)
-
-
-def test_every_case_passes(verified):
-    _rb, _suite, results = verified
-    failed = {
-        r.case.id: [(f.what, f.expected, f.got) for f in r.failures] for r in results if r.outcome == "failed"
-    }
-    assert failed == {}
 
 
 def test_full_rule_coverage(verified):
