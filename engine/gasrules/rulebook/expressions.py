@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import ast
 import math
+import operator
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
@@ -53,8 +54,31 @@ _ARITY = {
     "has": (1, 1),
 }
 _BINOPS = {ast.Add: "+", ast.Sub: "-", ast.Mult: "*", ast.Div: "/", ast.Pow: "**"}
-_CMPOPS = {ast.Lt: "<", ast.LtE: "<=", ast.Gt: ">", ast.GtE: ">=", ast.Eq: "==", ast.NotEq: "!="}
-_FLIP = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """One comparison operator of the expression language (the one table of them)."""
+
+    symbol: str  # as written in a condition: "<="
+    node: type[ast.cmpop]  # its node in the parsed expression: ast.LtE
+    holds: Callable[[Any, Any], bool]  # whether `a symbol b` is true
+    flipped: str  # the same test with its operands swapped (a <= b is b >= a)
+    word: str  # a name for it that fits in identifiers: "le"
+
+
+COMPARISONS: dict[str, Comparison] = {
+    c.symbol: c
+    for c in (
+        Comparison("<", ast.Lt, operator.lt, ">", "lt"),
+        Comparison("<=", ast.LtE, operator.le, ">=", "le"),
+        Comparison(">", ast.Gt, operator.gt, "<", "gt"),
+        Comparison(">=", ast.GtE, operator.ge, "<=", "ge"),
+        Comparison("==", ast.Eq, operator.eq, "==", "eq"),
+        Comparison("!=", ast.NotEq, operator.ne, "!=", "ne"),
+    )
+}
+COMPARISON_OF_NODE: dict[type[ast.cmpop], Comparison] = {c.node: c for c in COMPARISONS.values()}
 
 
 @dataclass(frozen=True)
@@ -273,10 +297,10 @@ class _ShapeChecker:
     def visit_Compare(self, node: ast.Compare, depth: int) -> None:
         left = node.left
         for op, right in zip(node.ops, node.comparators):
-            if type(op) not in _CMPOPS:
+            if type(op) not in COMPARISON_OF_NODE:
                 self.fail("RB-E021", f"comparison {type(op).__name__} is not allowed", "< <= > >= == !=")
                 return
-            self.compares.append((left, _CMPOPS[type(op)], right))
+            self.compares.append((left, COMPARISON_OF_NODE[type(op)].symbol, right))
             left = right
         self.visit(node.left, depth)
         for right in node.comparators:
@@ -450,7 +474,7 @@ class _Gen:
         if isinstance(n, ast.Compare):
             parts = [self.expr(n.left, True)]
             for op, right in zip(n.ops, n.comparators):
-                parts.append(_CMPOPS[type(op)])
+                parts.append(COMPARISON_OF_NODE[type(op)].symbol)
                 parts.append(self.expr(right, True))
             text = "(" + " ".join(parts) + ")"
             if self.record is not None:
