@@ -189,18 +189,6 @@ def flatten_resolved(res: Any, extra_suspensions: Iterable[tuple[str, str]] = ()
     return resolved_document(res, extra_suspensions)
 
 
-def resolve_path(path: Path) -> Any:
-    from gasrules.core.errors import RulebookError
-    from gasrules.rulebook.overlay import load_chain, resolve
-
-    docs, problems = load_chain(path)
-    if not problems:
-        res, problems = resolve(docs)
-    if problems:
-        raise RulebookError(problems)
-    return res
-
-
 def archive_rulebook(
     archive: Path, rulebook_path: Path, extra_suspensions: Iterable[tuple[str, str]] = ()
 ) -> str:
@@ -211,6 +199,7 @@ def archive_rulebook(
     import yaml
 
     from gasrules.rulebook.build import load_rulebook
+    from gasrules.rulebook.overlay import resolve_path
 
     res = resolve_path(Path(rulebook_path))
     doc = flatten_resolved(res, list(extra_suspensions))
