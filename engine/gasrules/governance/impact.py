@@ -37,6 +37,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from gasrules.core.errors import EngineError
 from gasrules.core.model import CompiledRulebook
 from gasrules.governance.probes import ChangedCut, changed_cutpoints, step_of
 from gasrules.tables.readers import Row, TableError
@@ -386,7 +387,7 @@ class ImpactReport:
 # ----------------------------------------------------------------------------- expected transitions
 
 
-class ExpectedError(ValueError):
+class ExpectedError(EngineError, ValueError):
     """An expected-transitions file that cannot be used; the message names the entry."""
 
 
