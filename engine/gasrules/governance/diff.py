@@ -108,10 +108,6 @@ class RulebookDiff:
             "changes": [asdict(c) for c in self.changes],
         }
 
-    def changed_parameters(self) -> dict[str, tuple[Any, Any]]:
-        """Parameter name (with [selector] for a by-value) -> (old value, new value), values only."""
-        return {c.key: (c.old, c.new) for c in self.changes if c.kind == "parameter" and c.aspect == "value"}
-
 
 # ----------------------------------------------------------------------------- versions
 

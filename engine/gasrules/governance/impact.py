@@ -32,7 +32,7 @@ from __future__ import annotations
 import json
 import time
 from collections import Counter
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -496,13 +496,6 @@ def replay(
     if expected is not None:
         judge(report, expected)
     return report
-
-
-def iter_outcomes(old: CompiledRulebook, new: CompiledRulebook, rows: Iterable[Row]) -> Iterator[Outcome]:
-    """The per-row outcomes in this process (for tests and small corpora)."""
-    job = Job(old, new, tuple(near_specs(old, new, changed_cutpoints(old, new))))
-    for row in rows:
-        yield from replay_chunk(job, [row])
 
 
 # ----------------------------------------------------------------------------- renderers

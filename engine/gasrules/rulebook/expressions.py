@@ -41,7 +41,6 @@ FUNCTIONS: dict[str, Callable[..., Any]] = {
     "log": math.log,
     "log10": math.log10,
 }
-SPECIAL = ("known", "has")
 _ARITY = {
     "abs": (1, 1),
     "min": (2, 8),
@@ -102,7 +101,6 @@ class Expr:
     location: Location
     reads: frozenset[str] = frozenset()  # every name read (needed or guarded)
     needs: frozenset[str] = frozenset()  # names that must be available
-    known_names: frozenset[str] = frozenset()
     has_codes: frozenset[str] = frozenset()
     literals: tuple[float, ...] = ()  # numeric literals outside trivial arithmetic
     compares: list[tuple[ast.AST, str, ast.AST]] = field(default_factory=list)
@@ -195,9 +193,9 @@ def parse(text: str, location: Location) -> tuple[Expr | None, list[Problem]]:
     if problems:
         return None, problems
     expr = Expr(text, node, location)
-    reads, needs, known, codes = _analyse(node)
+    reads, needs, codes = _analyse(node)
     expr.reads, expr.needs = frozenset(reads), frozenset(needs)
-    expr.known_names, expr.has_codes = frozenset(known), frozenset(codes)
+    expr.has_codes = frozenset(codes)
     expr.literals = tuple(checker.literals)
     expr.compares = checker.compares
     return expr, []
@@ -377,10 +375,9 @@ def _known_args(node: ast.AST, negated: bool = False) -> set[str]:
     return set()
 
 
-def _analyse(node: ast.AST) -> tuple[set[str], set[str], set[str], set[str]]:
+def _analyse(node: ast.AST) -> tuple[set[str], set[str], set[str]]:
     reads: set[str] = set()
     needs: set[str] = set()
-    known: set[str] = set()
     codes: set[str] = set()
 
     def walk(n: ast.AST, guarded: frozenset[str]) -> None:
@@ -391,7 +388,6 @@ def _analyse(node: ast.AST) -> tuple[set[str], set[str], set[str], set[str]]:
             return
         if isinstance(n, ast.Call) and isinstance(n.func, ast.Name):
             if n.func.id == "known":
-                known.add(n.args[0].id)  # type: ignore[attr-defined]
                 reads.add(n.args[0].id)  # type: ignore[attr-defined]
                 return
             if n.func.id == "has":
@@ -415,7 +411,7 @@ def _analyse(node: ast.AST) -> tuple[set[str], set[str], set[str], set[str]]:
             walk(child, guarded)
 
     walk(node, frozenset())
-    return reads, needs, known, codes
+    return reads, needs, codes
 
 
 # ----------------------------------------------------------------------------- code generation

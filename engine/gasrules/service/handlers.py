@@ -206,14 +206,6 @@ class RuntimeInterpreter:
         self.runtime.close()
 
 
-def _settings_apply(config: ServiceConfig, environ: Mapping[str, str]) -> bool:
-    return (
-        config.settings is not None
-        or config.strict
-        or any(k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in environ)
-    )
-
-
 def make_interpreter(config: ServiceConfig, environ: Mapping[str, str] | None = None) -> Interpreter:
     """The governed :class:`gasrules.Runtime` under the site settings (``config.settings``,
     ``config.strict``, GASRULES_* variables; defaults when none apply: no strict mode, no
