@@ -58,7 +58,7 @@ from gasrules.governance.decision_log import (
     RecordError,
 )
 
-__all__ = ["ENV_VARS", "Settings", "SettingsError", "load_settings", "read_anchor_key"]
+__all__ = ["Settings", "SettingsError", "load_settings", "read_anchor_key"]
 
 
 class SettingsError(EngineError):
@@ -184,7 +184,6 @@ _TABLE: dict[str, tuple[tuple[str, ...], str, str]] = {
     "rulebook_roots": (("rulebook_roots",), "GASRULES_RULEBOOK_ROOTS", "paths"),
     "shadow_log": (("shadow", "log"), "GASRULES_SHADOW_LOG", "path"),
 }
-ENV_VARS = tuple(env for _, env, _ in _TABLE.values())
 _SECTIONS = {
     "releases": {"dir", "archive", "roster"},
     "limits": {"yaml_nodes", "rulebook_bytes", "corpus_unreadable_percent"},
