@@ -36,9 +36,9 @@ from gasrules.governance.decision_log import (
     _compose,
     anchor_path,
     apply_context_policy,
-    canonical_json,
     entry_hash,
     mask_value,
+    record_json,
 )
 
 SALT = "test-salt-0123456789abcdef"
@@ -160,11 +160,11 @@ def first(path: Path) -> tuple[str, int | None, int | None]:
 
 def test_composed_entry_bytes_equal_the_standard_library_canonical_form() -> None:
     obj = {"z": [1, 2.5, 4.07e-08, 1e16], "a": {"é": "ü", "b": None}, "m": True}
-    parts = {k: canonical_json(v) for k, v in obj.items()}
+    parts = {k: record_json(v) for k, v in obj.items()}
     assert (
         _compose(parts) == json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=False).encode()
     )
-    assert canonical_json(4.07e-08) == b"4.07e-08"  # the stdlib form, not orjson's 4.07e-8
+    assert record_json(4.07e-08) == b"4.07e-08"  # the stdlib form, not orjson's 4.07e-8
 
 
 def test_an_unencodable_result_names_the_field(tmp_path: Path) -> None:
@@ -206,7 +206,7 @@ def test_entries_carry_the_required_fields_and_chain(log200: Path) -> None:
     assert e["time"] == "2026-01-02T03:04:06.000000Z"
     assert e["rulebook"] == RULEBOOK_V1 and e["engine_version"] == "0.1.0"
     assert e["entry_sha256"] == entry_hash(e)
-    assert e["input_sha256"] == hashlib.sha256(canonical_json(e["input"])).hexdigest()
+    assert e["input_sha256"] == hashlib.sha256(record_json(e["input"])).hexdigest()
     assert e["result"]["trace"][0]["op"] == "fired"  # the result is kept as given
 
 
@@ -223,7 +223,7 @@ def test_an_edited_value_is_an_entry_hash_mismatch_at_its_line(log200: Path) -> 
     lines = lines_of(log200)
     entry = json.loads(lines[56])
     entry["result"]["values"]["anion_gap"] = 12  # someone "corrects" the anion gap
-    lines[56] = canonical_json(entry) + b"\n"
+    lines[56] = record_json(entry) + b"\n"
     set_lines(log200, lines)
     assert first(log200) == ("entry_hash_mismatch", 57, 57)
 
@@ -234,12 +234,12 @@ def test_an_edited_and_rehashed_entry_breaks_the_chain_at_the_next_line(log200: 
     entry["result"]["disorders"] = ["metabolic_acidosis"]
     entry["entry_sha256"] = entry_hash(entry)
     # the output hash was not recomputed: caught before the chain
-    lines[56] = canonical_json(entry) + b"\n"
+    lines[56] = record_json(entry) + b"\n"
     set_lines(log200, lines)
     assert first(log200) == ("output_hash_mismatch", 57, 57)
-    entry["output_sha256"] = hashlib.sha256(canonical_json(entry["result"])).hexdigest()
+    entry["output_sha256"] = hashlib.sha256(record_json(entry["result"])).hexdigest()
     entry["entry_sha256"] = entry_hash(entry)
-    lines[56] = canonical_json(entry) + b"\n"
+    lines[56] = record_json(entry) + b"\n"
     set_lines(log200, lines)
     assert first(log200) == ("chain_break", 58, 58)
 
@@ -285,9 +285,9 @@ def test_a_log_edited_without_the_anchor_is_an_anchor_mismatch(log200: Path) -> 
     lines = lines_of(log200)
     entry = json.loads(lines[-1])
     entry["result"]["status"] = "partial"
-    entry["output_sha256"] = hashlib.sha256(canonical_json(entry["result"])).hexdigest()
+    entry["output_sha256"] = hashlib.sha256(record_json(entry["result"])).hexdigest()
     entry["entry_sha256"] = entry_hash(entry)
-    lines[-1] = canonical_json(entry) + b"\n"
+    lines[-1] = record_json(entry) + b"\n"
     set_lines(log200, lines)
     assert first(log200) == ("anchor_mismatch", 200, 200)
 

@@ -165,7 +165,3 @@ class ProblemsError(EngineError):
     def __init__(self, problems: Iterable[Problem]):
         self.problems = sorted(problems, key=Problem.sort_key)
         super().__init__(f"{len(self.problems)} {self.what} problem(s); first: {self.problems[0].render()}")
-
-
-class CaseError(EngineError):
-    """A case file or stream could not be read (not a single bad value: those go in results)."""

@@ -47,10 +47,6 @@ class ParamSpec:
     set_by: Location  # where its value was last set (base or overlay)
     by_set_by: dict[str, Location] = field(default_factory=dict)  # code -> where by.values[code] was set
 
-    @property
-    def is_choice(self) -> bool:
-        return self.choices is not None
-
     def set_by_for(self, selector: Any) -> Location:
         if self.by_input is not None and selector in self.by_values:
             return self.by_set_by.get(selector, self.set_by)

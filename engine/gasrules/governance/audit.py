@@ -68,7 +68,7 @@ from gasrules.governance.decision_log import (
     _Store,
     anchor_hmac,
     anchor_path,
-    canonical_json,
+    record_json,
     sha256_hex,
 )
 
@@ -197,7 +197,7 @@ def _scan(
         rec.seq, rec.sha, rec.prev = seq, entry["entry_sha256"], entry["prev"]
         witnessed = witnessed or rec.sha == witness
         try:
-            parts = {k: canonical_json(v, k) for k, v in entry.items() if k != "entry_sha256"}
+            parts = {k: record_json(v, k) for k, v in entry.items() if k != "entry_sha256"}
         except RecordError as exc:
             issues.append(LogIssue("malformed_entry", str(exc), number, seq))
             continue
@@ -455,9 +455,9 @@ def repair_log(
             }
             parts = {
                 "kind": b'"repair"',
-                "time": canonical_json(time),
-                "engine_version": canonical_json(_engine_version()),
-                "repair": canonical_json(note),
+                "time": record_json(time),
+                "engine_version": record_json(_engine_version()),
+                "repair": record_json(note),
             }
             store._cache = None
             seq, _ = store.append(parts, count, report.last_sha256 if report.entries else ZERO_SHA)

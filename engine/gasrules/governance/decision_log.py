@@ -17,7 +17,7 @@ A repair entry (kind "repair") is chained the same way and records what :func:`r
 Beside the log, ``LOG.anchor`` holds ``{count, last_sha256, log_size}``; it is replaced atomically
 (temp file, fsync, os.replace, fsync of the directory) after every append.
 
-Canonical JSON (one encoder, used everywhere): ``json.dumps(obj, sort_keys=True,
+Canonical JSON (:func:`record_json`, the one encoder of every record): ``json.dumps(obj, sort_keys=True,
 separators=(",", ":"), ensure_ascii=False, allow_nan=False)`` encoded as UTF-8. orjson was
 measured and rejected for hashing: its float text differs from the standard library's for
 exponent forms (``1e-05`` vs ``0.00001``, ``4e-08`` vs ``4e-8``; values such as [H+] in mol/L
@@ -71,9 +71,9 @@ __all__ = [
     "RecordError",
     "anchor_path",
     "apply_context_policy",
-    "canonical_json",
     "entry_hash",
     "mask_value",
+    "record_json",
     "sha256_hex",
 ]
 _MOVED = frozenset(
@@ -173,8 +173,9 @@ class RecordError(EngineError):
 # ---------------------------------------------------------------- canonical JSON and hashing
 
 
-def canonical_json(obj: Any, where: str = "") -> bytes:
-    """The one canonical encoding (see the module docstring)."""
+def record_json(obj: Any, where: str = "") -> bytes:
+    """The canonical encoding of records, manifests and anchors (see the module docstring):
+    numbers as written, NaN refused. Rulebook identity has its own rules (``identity_json``)."""
     try:
         return json.dumps(
             obj, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False
@@ -243,7 +244,7 @@ def _path_to(obj: Any, bad: Any, where: str) -> str:
 
 def entry_hash(entry: Mapping[str, Any]) -> str:
     """entry_sha256 of an entry: sha256 of its canonical JSON without ``entry_sha256``."""
-    return sha256_hex(_compose({k: canonical_json(v, k) for k, v in entry.items() if k != "entry_sha256"}))
+    return sha256_hex(_compose({k: record_json(v, k) for k, v in entry.items() if k != "entry_sha256"}))
 
 
 # ---------------------------------------------------------------- configuration and masking
@@ -312,7 +313,7 @@ class RecordConfig:
 
 
 def mask_value(value: Any, salt: str, chars: int = 16) -> str:
-    digest = hmac.new(salt.encode("utf-8"), canonical_json(value), hashlib.sha256).hexdigest()
+    digest = hmac.new(salt.encode("utf-8"), record_json(value), hashlib.sha256).hexdigest()
     return "hmac-sha256:" + digest[:chars]
 
 
@@ -381,7 +382,7 @@ def _read_anchor(path: Path) -> tuple[dict[str, Any] | None, str]:
 def anchor_hmac(key: bytes, count: int, last: str, size: int) -> str:
     """HMAC-SHA256 of an anchor's canonical JSON: without the key, a rewritten log and anchor
     cannot carry a valid one."""
-    body = canonical_json({"count": count, "last_sha256": last, "log_size": size})
+    body = record_json({"count": count, "last_sha256": last, "log_size": size})
     return hmac.new(key, body, hashlib.sha256).hexdigest()
 
 
@@ -390,7 +391,7 @@ def _write_anchor(path: Path, count: int, last: str, size: int, do_fsync: bool, 
     fields: dict[str, Any] = {"count": count, "last_sha256": last, "log_size": size}
     if key:
         fields["hmac"] = anchor_hmac(key, count, last, size)
-    data = canonical_json(fields) + b"\n"
+    data = record_json(fields) + b"\n"
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
     try:
         os.write(fd, data)
@@ -571,11 +572,11 @@ class _Store:
         parts = {
             **parts,
             "seq": str(seq).encode(),
-            "prev": canonical_json(last),
+            "prev": record_json(last),
             "record_format": str(RECORD_FORMAT).encode(),
         }
         sha = sha256_hex(_compose(parts))
-        line = _compose({**parts, "entry_sha256": canonical_json(sha)}) + b"\n"
+        line = _compose({**parts, "entry_sha256": record_json(sha)}) + b"\n"
         before = os.fstat(self.fd).st_size
         try:
             view = memoryview(line)
@@ -662,23 +663,23 @@ class DecisionLog:
         logged_result, _ = apply_context_policy(dict(result), cfg)
         _require_str_keys(logged_case, "input")
         _require_str_keys(logged_result, "result")
-        input_b = canonical_json(logged_case, "input")
-        result_b = canonical_json(logged_result, "result")
+        input_b = record_json(logged_case, "input")
+        result_b = record_json(logged_result, "result")
         version = engine_version or result.get("engine_version") or _engine_version()
         parts = {
             "kind": b'"decision"',
             "input": input_b,
             "result": result_b,
-            "rulebook": canonical_json(_rulebook_ref(rulebook, result)),
-            "engine_version": canonical_json(str(version)),
-            "context_policy": canonical_json(cfg.context_policy),
-            "input_sha256": canonical_json(sha256_hex(input_b)),
-            "output_sha256": canonical_json(sha256_hex(result_b)),
+            "rulebook": record_json(_rulebook_ref(rulebook, result)),
+            "engine_version": record_json(str(version)),
+            "context_policy": record_json(cfg.context_policy),
+            "input_sha256": record_json(sha256_hex(input_b)),
+            "output_sha256": record_json(sha256_hex(result_b)),
         }
         with self._store.locked():
             count, last, _ = self._store.state()
             time = _now(cfg.clock)
-            parts["time"] = canonical_json(time)
+            parts["time"] = record_json(time)
             seq, sha = self._store.append(parts, count, last)
         return AppendReceipt(seq, sha, time)
 

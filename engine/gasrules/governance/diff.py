@@ -26,8 +26,6 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-from gasrules.core.errors import RulebookError
-
 CLASSES = ("none", "patch", "minor", "major")
 _RANK = {c: i for i, c in enumerate(CLASSES)}
 CLASS_MEANING = {
@@ -110,10 +108,6 @@ class RulebookDiff:
             "changes": [asdict(c) for c in self.changes],
         }
 
-    def changed_parameters(self) -> dict[str, tuple[Any, Any]]:
-        """Parameter name (with [selector] for a by-value) -> (old value, new value), values only."""
-        return {c.key: (c.old, c.new) for c in self.changes if c.kind == "parameter" and c.aspect == "value"}
-
 
 # ----------------------------------------------------------------------------- versions
 
@@ -151,19 +145,6 @@ def _next_version(old: str, cls: str) -> str:
 # ----------------------------------------------------------------------------- loading
 
 
-def load_resolved(path: str | Path) -> Any:
-    """The resolved rulebook (``overlay.Resolved``); raises RulebookError with every problem."""
-    from gasrules.rulebook.overlay import load_chain, resolve
-
-    docs, problems = load_chain(path)
-    if problems:
-        raise RulebookError(problems)
-    res, problems = resolve(docs)
-    if problems:
-        raise RulebookError(problems)
-    return res
-
-
 def _side(path: str | Path, res: Any) -> Side:
     from gasrules.rulebook.identity import identity_hash
 
@@ -180,7 +161,9 @@ def _side(path: str | Path, res: Any) -> Side:
 
 def diff_paths(old: str | Path, new: str | Path, release_dir: str | Path | None = None) -> RulebookDiff:
     """The diff of two rulebook files; with ``release_dir``, each side's approvals from its manifests."""
-    d = diff_resolved(load_resolved(old), load_resolved(new), str(old), str(new))
+    from gasrules.rulebook.overlay import resolve_path
+
+    d = diff_resolved(resolve_path(old), resolve_path(new), str(old), str(new))
     if release_dir is not None:
         attach_approvals(d, Path(release_dir))
     return d

@@ -32,11 +32,12 @@ from __future__ import annotations
 import json
 import time
 from collections import Counter
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from gasrules.core.errors import EngineError
 from gasrules.core.model import CompiledRulebook
 from gasrules.governance.probes import ChangedCut, changed_cutpoints, step_of
 from gasrules.tables.readers import Row, TableError
@@ -386,7 +387,7 @@ class ImpactReport:
 # ----------------------------------------------------------------------------- expected transitions
 
 
-class ExpectedError(ValueError):
+class ExpectedError(EngineError, ValueError):
     """An expected-transitions file that cannot be used; the message names the entry."""
 
 
@@ -495,13 +496,6 @@ def replay(
     if expected is not None:
         judge(report, expected)
     return report
-
-
-def iter_outcomes(old: CompiledRulebook, new: CompiledRulebook, rows: Iterable[Row]) -> Iterator[Outcome]:
-    """The per-row outcomes in this process (for tests and small corpora)."""
-    job = Job(old, new, tuple(near_specs(old, new, changed_cutpoints(old, new))))
-    for row in rows:
-        yield from replay_chunk(job, [row])
 
 
 # ----------------------------------------------------------------------------- renderers

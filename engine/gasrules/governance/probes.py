@@ -27,8 +27,6 @@ from typing import Any
 from gasrules.core.model import CompiledRulebook
 from gasrules.rulebook.expressions import round_at
 
-_FLIP = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
-
 
 @dataclass(frozen=True)
 class ChangedCut:

@@ -33,7 +33,7 @@ from pathlib import Path
 from typing import Any
 
 from gasrules.core.errors import EngineError
-from gasrules.governance.decision_log import ZERO_SHA, canonical_json, sha256_hex
+from gasrules.governance.decision_log import ZERO_SHA, record_json, sha256_hex
 
 __all__ = [
     "ManifestEntry",
@@ -72,7 +72,7 @@ def utc_now() -> str:
 
 
 def manifest_hash(manifest: dict[str, Any]) -> str:
-    return sha256_hex(canonical_json({k: v for k, v in manifest.items() if k != "manifest_sha256"}))
+    return sha256_hex(record_json({k: v for k, v in manifest.items() if k != "manifest_sha256"}))
 
 
 def manifests_dir(release_dir: Path) -> Path:
@@ -189,18 +189,6 @@ def flatten_resolved(res: Any, extra_suspensions: Iterable[tuple[str, str]] = ()
     return resolved_document(res, extra_suspensions)
 
 
-def resolve_path(path: Path) -> Any:
-    from gasrules.core.errors import RulebookError
-    from gasrules.rulebook.overlay import load_chain, resolve
-
-    docs, problems = load_chain(path)
-    if not problems:
-        res, problems = resolve(docs)
-    if problems:
-        raise RulebookError(problems)
-    return res
-
-
 def archive_rulebook(
     archive: Path, rulebook_path: Path, extra_suspensions: Iterable[tuple[str, str]] = ()
 ) -> str:
@@ -211,6 +199,7 @@ def archive_rulebook(
     import yaml
 
     from gasrules.rulebook.build import load_rulebook
+    from gasrules.rulebook.overlay import resolve_path
 
     res = resolve_path(Path(rulebook_path))
     doc = flatten_resolved(res, list(extra_suspensions))
@@ -305,9 +294,9 @@ def read_suspensions(release_dir: Path) -> list[dict[str, Any]]:
                     "the chain is broken (an event was edited, removed or reordered)",
                     where,
                 )
-            if sha256_hex(
-                canonical_json({k: v for k, v in event.items() if k != "event_sha256"})
-            ) != event.get("event_sha256"):
+            if sha256_hex(record_json({k: v for k, v in event.items() if k != "event_sha256"})) != event.get(
+                "event_sha256"
+            ):
                 raise RegistryError("suspensions.damaged", "event does not match its event_sha256", where)
             prev = event["event_sha256"]
             events.append(event)
@@ -329,8 +318,8 @@ def append_suspension(release_dir: Path, event: dict[str, Any]) -> dict[str, Any
                 "seq": len(events) + 1,
                 "prev": events[-1]["event_sha256"] if events else ZERO_SHA,
             }
-            sealed["event_sha256"] = sha256_hex(canonical_json(sealed))
-            fh.write(canonical_json(sealed) + b"\n")
+            sealed["event_sha256"] = sha256_hex(record_json(sealed))
+            fh.write(record_json(sealed) + b"\n")
             fh.flush()
             os.fsync(fh.fileno())
         finally:

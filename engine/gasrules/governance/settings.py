@@ -58,7 +58,7 @@ from gasrules.governance.decision_log import (
     RecordError,
 )
 
-__all__ = ["ENV_VARS", "Settings", "SettingsError", "load_settings", "read_anchor_key"]
+__all__ = ["Settings", "SettingsError", "load_settings", "read_anchor_key"]
 
 
 class SettingsError(EngineError):
@@ -129,15 +129,6 @@ class Settings:
             name = {"salt": "GASRULES_MASK_SALT"}.get(exc.field, f"decision_log.{exc.field}")
             raise SettingsError(name, str(exc).split(": ", 1)[-1].split(" (field")[0], exc.accepted) from None
 
-    def public(self) -> dict[str, Any]:
-        """The settings as plain data, the salt replaced by whether it is set."""
-        out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self) if f.name != "mask_salt"}
-        out["mask_salt"] = "set" if self.mask_salt else "not set"
-        return {
-            k: (str(v) if isinstance(v, Path) else list(v) if isinstance(v, tuple) else v)
-            for k, v in out.items()
-        }
-
 
 def too_many_unreadable(unreadable: int, rows: int, settings: Settings) -> str:
     """A message when more than ``corpus_unreadable_percent`` of a corpus's rows could not be
@@ -193,7 +184,6 @@ _TABLE: dict[str, tuple[tuple[str, ...], str, str]] = {
     "rulebook_roots": (("rulebook_roots",), "GASRULES_RULEBOOK_ROOTS", "paths"),
     "shadow_log": (("shadow", "log"), "GASRULES_SHADOW_LOG", "path"),
 }
-ENV_VARS = tuple(env for _, env, _ in _TABLE.values())
 _SECTIONS = {
     "releases": {"dir", "archive", "roster"},
     "limits": {"yaml_nodes", "rulebook_bytes", "corpus_unreadable_percent"},

@@ -26,7 +26,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from gasrules.governance.decision_log import RecordConfig, apply_context_policy, canonical_json, sha256_hex
+from gasrules.governance.decision_log import RecordConfig, apply_context_policy, record_json, sha256_hex
 
 __all__ = ["ShadowRecorder", "ShadowSummary", "disagreement", "render_summary", "summarize"]
 
@@ -61,7 +61,7 @@ def disagreement(
         "time": datetime.now(UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z"),
         "case_id": active.get("case_id"),
         "input": logged,
-        "input_sha256": sha256_hex(canonical_json(logged, "input")),
+        "input_sha256": sha256_hex(record_json(logged, "input")),
         "active": _brief(active),
         "candidate": _brief(candidate),
         "differences": [{"field": d.field, "active": d.logged, "candidate": d.replayed} for d in diffs],
@@ -90,7 +90,7 @@ class ShadowRecorder:
             return None
         self.disagreements += 1
         if self._fd >= 0:
-            line = canonical_json(record, "disagreement") + b"\n"
+            line = record_json(record, "disagreement") + b"\n"
             fcntl.flock(self._fd, fcntl.LOCK_EX)
             try:
                 view = memoryview(line)

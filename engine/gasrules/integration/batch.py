@@ -56,7 +56,6 @@ __all__ = [
     "lineage",
     "output_columns",
     "record_values",
-    "result_record",
     "run_batch",
 ]
 
@@ -241,20 +240,6 @@ def record_values(
     if full_json:
         out.append(result)
     return out
-
-
-def result_record(
-    row: Row,
-    result: dict[str, Any],
-    renames: Sequence[tuple[str, str]],
-    values: Sequence[str],
-    full_json: bool,
-) -> dict[str, Any]:
-    """One flat output record as a dict keyed by output column name."""
-    names = [out for _, out in renames] + list(RESULT_COLUMNS) + list(values) + list(TAIL_COLUMNS)
-    if full_json:
-        names.append("result")
-    return dict(zip(names, record_values(row, result, renames, values, full_json)))
 
 
 # ----------------------------------------------------------------------------- workers

@@ -50,11 +50,7 @@ __all__ = ["CODE_SYSTEM_BASE", "FhirReadResult", "case_from_fhir", "result_to_fh
 LOINC_SYSTEM = "http://loinc.org"
 BUNDLE_TYPES = ("collection", "searchset", "transaction", "batch")
 CODE_SYSTEM_BASE = "https://gasrules.example/fhir/CodeSystem"
-REPORT_CS = f"{CODE_SYSTEM_BASE}/report"
 FINDING_CS = f"{CODE_SYSTEM_BASE}/finding"
-DISORDER_CS = f"{CODE_SYSTEM_BASE}/disorder"
-QUALIFIER_CS = f"{CODE_SYSTEM_BASE}/qualifier"
-VALUE_CS = f"{CODE_SYSTEM_BASE}/value"
 RULEBOOK_ID_SYSTEM = "https://gasrules.example/rulebook"
 _NAMESPACE = uuid.UUID("7b0c3f52-2a49-5d1e-9a8e-67617372756c")  # our own, fixed
 _OBS_INTERPRETATION = "http://terminology.hl7.org/CodeSystem/v3-ObservationInterpretation"
@@ -79,9 +75,6 @@ class FhirReadResult:
     def ok(self) -> bool:
         """No error-level issue: every value the message gave was usable."""
         return not self.errors
-
-    def issues_as_dicts(self) -> list[dict[str, str]]:
-        return [i.as_dict() for i in self.issues]
 
 
 # ============================================================================ reading

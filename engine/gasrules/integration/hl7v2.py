@@ -267,9 +267,6 @@ class Hl7ReadResult:
     def ok(self) -> bool:
         return not self.errors
 
-    def issues_as_dicts(self) -> list[dict[str, str]]:
-        return [i.as_dict() for i in self.issues]
-
 
 @dataclass
 class _Reader:

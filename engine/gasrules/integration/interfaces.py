@@ -44,7 +44,6 @@ from gasrules.integration.standard_codes import Issue
 
 __all__ = [
     "INPUT_FORMATS",
-    "OUTPUT_FORMATS",
     "Incoming",
     "InterfaceSettings",
     "input_format",
@@ -55,7 +54,6 @@ __all__ = [
 ]
 
 INPUT_FORMATS = ("json", "jsonl", "hl7", "fhir")
-OUTPUT_FORMATS = ("fhir", "hl7")
 DEFAULT_CODESYSTEM_URL = "https://gasrules.example/fhir/CodeSystem"
 
 

@@ -48,6 +48,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+from gasrules.core.errors import EngineError
 from gasrules.integration.hl7wire import (
     MllpDecoder,
     RawHeader,
@@ -142,7 +143,7 @@ def listen_settings(value: Any, doc: Any, base: Path) -> dict[str, Any]:
     return out
 
 
-class ForwardError(Exception):
+class ForwardError(EngineError):
     """The result message could not be delivered to the forward destination."""
 
 

@@ -35,7 +35,6 @@ __all__ = [
 LOINC = "http://loinc.org"
 SNOMED = "http://snomed.info/sct"
 DEFAULT_BASE = "https://gasrules.example/fhir/CodeSystem"
-KINDS = ("report", "disorder", "finding", "qualifier", "value")
 
 
 @dataclass(frozen=True)

@@ -33,7 +33,14 @@ from gasrules.rulebook.bibliography import (
     with_bibliography,
 )
 from gasrules.rulebook.codegen import PLACEHOLDER, _exprs, generate, link
-from gasrules.rulebook.expressions import CutPoint, Expr, compare_nodes, parse
+from gasrules.rulebook.expressions import (
+    COMPARISON_OF_NODE,
+    COMPARISONS,
+    CutPoint,
+    Expr,
+    compare_nodes,
+    parse,
+)
 from gasrules.rulebook.identity import (
     identity_hash,
 )
@@ -921,11 +928,10 @@ def _cutpoints(
             return ("constant", repr(-float(node.operand.value)))
         return None
 
-    flip = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
     for owner, field, expr in _exprs(derived, rules):
         for k, node in enumerate(compare_nodes(expr.node)):
             for left, op, right in _pairs(node):
-                cp = _cutpoint(owner, field, expr, k, left, op, right, kind, flip)
+                cp = _cutpoint(owner, field, expr, k, left, op, right, kind)
                 if cp is not None:
                     yield cp
 
@@ -934,12 +940,9 @@ def _pairs(node: ast.Compare) -> list[tuple[ast.AST, str, ast.AST]]:
     out = []
     left = node.left
     for op, right in zip(node.ops, node.comparators):
-        out.append((left, _CMP_TEXT[type(op)], right))
+        out.append((left, COMPARISON_OF_NODE[type(op)].symbol, right))
         left = right
     return out
-
-
-_CMP_TEXT = {ast.Lt: "<", ast.LtE: "<=", ast.Gt: ">", ast.GtE: ">=", ast.Eq: "==", ast.NotEq: "!="}
 
 
 def _cutpoint(
@@ -951,14 +954,13 @@ def _cutpoint(
     op: str,
     right: ast.AST,
     kind: Any,
-    flip: dict[str, str],
 ) -> CutPoint | None:
     lk, rk = kind(left), kind(right)
     if lk is None or rk is None:
         return None
     # the quantity is the measured side; the threshold is the parameter/constant side
     if lk[0] in ("parameter", "constant") and rk[0] in ("input", "derived"):
-        lk, rk, op = rk, lk, flip[op]
+        lk, rk, op = rk, lk, COMPARISONS[op].flipped
     if lk[0] in ("parameter", "constant"):
         return None
     return CutPoint(

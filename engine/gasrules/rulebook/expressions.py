@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import ast
 import math
+import operator
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
@@ -40,7 +41,6 @@ FUNCTIONS: dict[str, Callable[..., Any]] = {
     "log": math.log,
     "log10": math.log10,
 }
-SPECIAL = ("known", "has")
 _ARITY = {
     "abs": (1, 1),
     "min": (2, 8),
@@ -53,8 +53,31 @@ _ARITY = {
     "has": (1, 1),
 }
 _BINOPS = {ast.Add: "+", ast.Sub: "-", ast.Mult: "*", ast.Div: "/", ast.Pow: "**"}
-_CMPOPS = {ast.Lt: "<", ast.LtE: "<=", ast.Gt: ">", ast.GtE: ">=", ast.Eq: "==", ast.NotEq: "!="}
-_FLIP = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "==", "!=": "!="}
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """One comparison operator of the expression language (the one table of them)."""
+
+    symbol: str  # as written in a condition: "<="
+    node: type[ast.cmpop]  # its node in the parsed expression: ast.LtE
+    holds: Callable[[Any, Any], bool]  # whether `a symbol b` is true
+    flipped: str  # the same test with its operands swapped (a <= b is b >= a)
+    word: str  # a name for it that fits in identifiers: "le"
+
+
+COMPARISONS: dict[str, Comparison] = {
+    c.symbol: c
+    for c in (
+        Comparison("<", ast.Lt, operator.lt, ">", "lt"),
+        Comparison("<=", ast.LtE, operator.le, ">=", "le"),
+        Comparison(">", ast.Gt, operator.gt, "<", "gt"),
+        Comparison(">=", ast.GtE, operator.ge, "<=", "ge"),
+        Comparison("==", ast.Eq, operator.eq, "==", "eq"),
+        Comparison("!=", ast.NotEq, operator.ne, "!=", "ne"),
+    )
+}
+COMPARISON_OF_NODE: dict[type[ast.cmpop], Comparison] = {c.node: c for c in COMPARISONS.values()}
 
 
 @dataclass(frozen=True)
@@ -78,7 +101,6 @@ class Expr:
     location: Location
     reads: frozenset[str] = frozenset()  # every name read (needed or guarded)
     needs: frozenset[str] = frozenset()  # names that must be available
-    known_names: frozenset[str] = frozenset()
     has_codes: frozenset[str] = frozenset()
     literals: tuple[float, ...] = ()  # numeric literals outside trivial arithmetic
     compares: list[tuple[ast.AST, str, ast.AST]] = field(default_factory=list)
@@ -171,9 +193,9 @@ def parse(text: str, location: Location) -> tuple[Expr | None, list[Problem]]:
     if problems:
         return None, problems
     expr = Expr(text, node, location)
-    reads, needs, known, codes = _analyse(node)
+    reads, needs, codes = _analyse(node)
     expr.reads, expr.needs = frozenset(reads), frozenset(needs)
-    expr.known_names, expr.has_codes = frozenset(known), frozenset(codes)
+    expr.has_codes = frozenset(codes)
     expr.literals = tuple(checker.literals)
     expr.compares = checker.compares
     return expr, []
@@ -273,10 +295,10 @@ class _ShapeChecker:
     def visit_Compare(self, node: ast.Compare, depth: int) -> None:
         left = node.left
         for op, right in zip(node.ops, node.comparators):
-            if type(op) not in _CMPOPS:
+            if type(op) not in COMPARISON_OF_NODE:
                 self.fail("RB-E021", f"comparison {type(op).__name__} is not allowed", "< <= > >= == !=")
                 return
-            self.compares.append((left, _CMPOPS[type(op)], right))
+            self.compares.append((left, COMPARISON_OF_NODE[type(op)].symbol, right))
             left = right
         self.visit(node.left, depth)
         for right in node.comparators:
@@ -353,10 +375,9 @@ def _known_args(node: ast.AST, negated: bool = False) -> set[str]:
     return set()
 
 
-def _analyse(node: ast.AST) -> tuple[set[str], set[str], set[str], set[str]]:
+def _analyse(node: ast.AST) -> tuple[set[str], set[str], set[str]]:
     reads: set[str] = set()
     needs: set[str] = set()
-    known: set[str] = set()
     codes: set[str] = set()
 
     def walk(n: ast.AST, guarded: frozenset[str]) -> None:
@@ -367,7 +388,6 @@ def _analyse(node: ast.AST) -> tuple[set[str], set[str], set[str], set[str]]:
             return
         if isinstance(n, ast.Call) and isinstance(n.func, ast.Name):
             if n.func.id == "known":
-                known.add(n.args[0].id)  # type: ignore[attr-defined]
                 reads.add(n.args[0].id)  # type: ignore[attr-defined]
                 return
             if n.func.id == "has":
@@ -391,7 +411,7 @@ def _analyse(node: ast.AST) -> tuple[set[str], set[str], set[str], set[str]]:
             walk(child, guarded)
 
     walk(node, frozenset())
-    return reads, needs, known, codes
+    return reads, needs, codes
 
 
 # ----------------------------------------------------------------------------- code generation
@@ -450,7 +470,7 @@ class _Gen:
         if isinstance(n, ast.Compare):
             parts = [self.expr(n.left, True)]
             for op, right in zip(n.ops, n.comparators):
-                parts.append(_CMPOPS[type(op)])
+                parts.append(COMPARISON_OF_NODE[type(op)].symbol)
                 parts.append(self.expr(right, True))
             text = "(" + " ".join(parts) + ")"
             if self.record is not None:

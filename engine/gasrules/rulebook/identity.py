@@ -22,9 +22,9 @@ __all__ = [
     "HASH_SCHEME",
     "LIFECYCLE_METADATA",
     "canonical_content",
-    "canonical_json",
     "identity_content",
     "identity_hash",
+    "identity_json",
     "resolved_document",
 ]
 
@@ -84,9 +84,10 @@ def canonical_content(res: Resolved) -> dict[str, Any]:
     }
 
 
-def canonical_json(data: Any) -> bytes:
-    """Sorted keys, no insignificant whitespace, and every number as a float, so that 12 and
-    12.0 (the same value written two ways) give the same identity."""
+def identity_json(data: Any) -> bytes:
+    """The JSON a rulebook's identity hash is taken over (records use their own encoding,
+    ``decision_log.record_json``): sorted keys, no insignificant whitespace, and every number
+    as a float, so that 12 and 12.0 (the same value written two ways) give the same identity."""
     return json.dumps(
         _numbers(data), sort_keys=True, separators=(",", ":"), ensure_ascii=False, default=str
     ).encode("utf-8")
@@ -104,4 +105,4 @@ def _numbers(data: Any) -> Any:
 
 def identity_hash(res: Resolved, scheme: int = HASH_SCHEME) -> str:
     content = identity_content(res) if scheme == 2 else canonical_content(res)
-    return hashlib.sha256(canonical_json(content)).hexdigest()
+    return hashlib.sha256(identity_json(content)).hexdigest()

@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from gasrules.core.errors import Location, Problem
+from gasrules.core.errors import Location, Problem, RulebookError
 from gasrules.rulebook.loader import Document, Limits, load_document
 from gasrules.rulebook.schema import validate_document
 
@@ -125,6 +125,18 @@ def load_chain(path: str | Path, limits: Limits | None = None) -> tuple[list[Doc
             current = None
     docs.reverse()
     return docs, problems
+
+
+def resolve_path(path: str | Path, limits: Limits | None = None) -> Resolved:
+    """The resolved rulebook at ``path``: its extends chain loaded and merged. Raises
+    RulebookError with every problem of the first stage that has any (loading, then resolving)."""
+    docs, problems = load_chain(path, limits)
+    if problems:
+        raise RulebookError(problems)
+    res, problems = resolve(docs)
+    if problems:
+        raise RulebookError(problems)
+    return res
 
 
 def _partial_unknown_entries(

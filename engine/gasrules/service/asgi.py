@@ -41,6 +41,7 @@ from starlette.requests import Request as StarletteRequest
 from starlette.responses import Response as StarletteResponse
 from starlette.routing import Route
 
+from gasrules.core.errors import EngineError
 from gasrules.service.handlers import App, Request, Response, error_body
 from gasrules.service.metrics import Metrics
 
@@ -58,7 +59,7 @@ _REQUEST_ID = re.compile(r"[A-Za-z0-9._:@/+=-]{1,128}")
 _METHODS_WITH_BODY = frozenset({"POST", "PUT", "PATCH"})
 
 
-class Refusal(Exception):
+class Refusal(EngineError):
     """A request refused before the application: status, error code, message, field."""
 
     def __init__(
@@ -69,7 +70,7 @@ class Refusal(Exception):
         self.retry_after = retry_after
 
 
-class ClientGone(Exception):
+class ClientGone(EngineError):
     """The client disconnected (or the protocol dropped it) while its body was being read."""
 
 

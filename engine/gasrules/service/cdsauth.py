@@ -39,6 +39,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from gasrules.core.errors import EngineError
+
 __all__ = [
     "ASYMMETRIC_ALGORITHMS",
     "AuthConfig",
@@ -68,11 +70,11 @@ DEFAULT_ALGORITHMS = ("ES384", "RS384")
 REQUIRED_CLAIMS = ("iss", "aud", "exp", "iat", "jti")
 
 
-class ConfigError(ValueError):
+class ConfigError(EngineError, ValueError):
     """The key configuration is unusable; the message names the file and the JSON path."""
 
 
-class AuthError(Exception):
+class AuthError(EngineError):
     """A request that fails the bearer check; ``status`` is the HTTP status to answer with."""
 
     def __init__(self, status: int, code: str, message: str) -> None:

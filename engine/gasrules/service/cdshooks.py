@@ -34,6 +34,7 @@ from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
+from gasrules.core.errors import EngineError
 from gasrules.integration.fhir import (
     CODE_SYSTEM_BASE,
     LOINC_SYSTEM,
@@ -57,7 +58,7 @@ __all__ = [
 ]
 
 
-class CdsError(Exception):
+class CdsError(EngineError):
     """A CDS request that cannot be served; ``status`` 400 or 412, ``field`` names the element."""
 
     def __init__(self, status: int, code: str, message: str, field: str = "") -> None:

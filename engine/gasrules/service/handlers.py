@@ -45,6 +45,7 @@ from typing import Any, Protocol
 
 import orjson
 
+from gasrules.core.errors import EngineError
 from gasrules.core.version import __version__
 from gasrules.evaluation.evaluator import UNREADABLE
 from gasrules.service import cdshooks
@@ -104,7 +105,7 @@ class Response:
     headers: dict[str, str] = field(default_factory=dict)
 
 
-class HttpError(Exception):
+class HttpError(EngineError):
     def __init__(
         self, status: int, code: str, message: str, field: str = "", headers: Mapping[str, str] | None = None
     ) -> None:
@@ -203,14 +204,6 @@ class RuntimeInterpreter:
 
     def close(self) -> None:
         self.runtime.close()
-
-
-def _settings_apply(config: ServiceConfig, environ: Mapping[str, str]) -> bool:
-    return (
-        config.settings is not None
-        or config.strict
-        or any(k.startswith("GASRULES_") and k != "GASRULES_CACHE_DIR" for k in environ)
-    )
 
 
 def make_interpreter(config: ServiceConfig, environ: Mapping[str, str] | None = None) -> Interpreter:

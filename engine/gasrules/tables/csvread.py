@@ -19,6 +19,8 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import BinaryIO
 
+from gasrules.core.errors import EngineError
+
 __all__ = ["DELIMITERS", "FIELD_LIMIT", "CsvHeaderError", "Record", "read_records"]
 
 FIELD_LIMIT = 1_048_576
@@ -26,7 +28,7 @@ DELIMITERS = (",", ";", "\t")
 _NAMES = {",": "comma", ";": "semicolon", "\t": "tab"}
 
 
-class CsvHeaderError(ValueError):
+class CsvHeaderError(EngineError, ValueError):
     """The file or its header cannot be read at all: (line, message, expected)."""
 
     def __init__(self, line: int, message: str, expected: str = "") -> None:

@@ -35,6 +35,8 @@ from concurrent.futures.process import BrokenProcessPool
 from itertools import islice
 from typing import Any, Generic, TypeVar
 
+from gasrules.core.errors import EngineError
+
 __all__ = ["OrderedPool", "PoolError", "chunked", "imap_ordered", "interpret_many"]
 
 P = TypeVar("P")
@@ -44,7 +46,7 @@ R = TypeVar("R")
 _PAYLOAD: Any = None
 
 
-class PoolError(RuntimeError):
+class PoolError(EngineError, RuntimeError):
     """A worker process died (killed, out of memory) before returning its chunk."""
 
 

@@ -52,6 +52,7 @@ from pathlib import Path
 from typing import Any
 
 from gasrules.core import units as U
+from gasrules.core.errors import EngineError
 from gasrules.tables.writers import (
     Column,
     Encoder,
@@ -102,7 +103,7 @@ _DECIMAL_COMMA = re.compile(r"^\s*[+-]?[0-9]+,[0-9]+\s*$")
 READ_BATCH = 4096  # Parquet rows decoded at a time
 
 
-class TableError(ValueError):
+class TableError(EngineError, ValueError):
     """A file, header or mapping that cannot be used at all. ``where`` names the place."""
 
     def __init__(self, where: str, message: str, expected: str = "") -> None:

@@ -192,11 +192,6 @@ class Scenario(NamedTuple):
         resp = "none" if self.respiratory == "none" else f"{self.respiratory}/{self.chronicity}"
         return "+".join((resp, *self.metabolic)) if self.metabolic else resp
 
-    @property
-    def intended_disorders(self) -> tuple[str, ...]:
-        resp = () if self.respiratory == "none" else (self.respiratory,)
-        return resp + self.metabolic
-
 
 # ----------------------------------------------------------------------------- public API
 def generate_labelled(

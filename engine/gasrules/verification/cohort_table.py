@@ -366,21 +366,6 @@ def render_compare_text(rows: list[dict[str, Any]]) -> str:
     return "\n".join(lines)
 
 
-def render_compare_markdown(rows: list[dict[str, Any]]) -> str:
-    if not rows:
-        return "Neither rulebook has a cohort file.\n"
-    lines = [
-        "| cohort | measure | old % | new % | change | old goal | new goal |",
-        "|---|---|---|---|---|---|---|",
-    ]
-    lines += [
-        f"| {r['cohort']} | {MEASURE_LABELS[r['measure']]} | {_num(r['old'])} | {_num(r['new'])} | "
-        f"{_num(r['change'], True)} | {_pf(r['old_passed'])} | {_pf(r['new_passed'])} |"
-        for r in rows
-    ]
-    return "\n".join(lines) + "\n"
-
-
 def render_compare_html(rows: list[dict[str, Any]]) -> str:
     if not rows:
         return "<p>Neither rulebook has a cohort file.</p>"
@@ -461,7 +446,6 @@ __all__ = [
     "default_workers",
     "gate_problems",
     "render_compare_html",
-    "render_compare_markdown",
     "render_compare_text",
     "render_html",
     "render_markdown",

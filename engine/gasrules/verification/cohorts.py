@@ -26,7 +26,6 @@ from gasrules.rulebook.schema import validate_document
 
 COHORT_FILE = "cohorts.yaml"
 COHORTS_SCHEMA = "cohorts.schema.json"
-KINDS = ("healthy", "simple", "mix")
 MEASURES = ("no_disorder", "primary", "no_second", "all_named")
 # Goals (percent) when no cohort file of the chain sets one: the project's decision (issue 9).
 DEFAULT_GOALS: dict[str, dict[str, float]] = {
