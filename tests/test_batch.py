@@ -244,7 +244,13 @@ def test_progress_bar_only_on_a_terminal(rb: Any, corpus: dict[str, Path], tmp_p
     p = Progress(tty, lambda: 0.5)
     p.update(10, force=True)
     p.finish(20)
-    assert "\r   50% |###############" in tty.getvalue() and "20 rows" in tty.getvalue()
+    drawn = tty.getvalue()  # rich's bar, redrawn in place (carriage return), ended by a newline
+    assert " 50%" in drawn and "━" in drawn and "\r" in drawn and "20 rows" in drawn
+    assert drawn.endswith("\n\x1b[?25h")  # the cursor is shown again
+    forced = io.StringIO()  # --progress on a pipe: no redrawing, one final line
+    p = Progress(forced, lambda: 1.0, enabled=True)
+    p.finish(20)
+    assert forced.getvalue().startswith("100% ") and "\r" not in forced.getvalue()
 
 
 # ----------------------------------------------------------------------------- the command

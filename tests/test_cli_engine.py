@@ -68,8 +68,9 @@ def test_version_and_unknown_command(capsys: pytest.CaptureFixture[str]) -> None
 def test_command_help(capsys: pytest.CaptureFixture[str]) -> None:
     code, out, _ = run(capsys, "interpret", "--help")
     assert code == 0
-    for option in ("--rulebook", "--json", "--trace", "--ph", "--pco2", "--set"):
+    for option in ("--rulebook", "--format", "--trace", "--ph", "--pco2", "--set"):
         assert option in out
+    assert "--json" not in out  # the older spelling of --format json: still accepted, not shown
 
 
 # ----------------------------------------------------------------------------- interpret: inputs
