@@ -125,4 +125,6 @@ def report(
         raise typer.Exit(exitcodes.USAGE)
     with readable(log, "jsonl") as path:
         summary = summarize(path)
+    if path != log:
+        summary.path = "<stdin>"
     typer.echo(json.dumps(summary.as_dict(), indent=2) if as_json else render_summary(summary))
