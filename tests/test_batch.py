@@ -200,7 +200,7 @@ def test_parquet_out_matches_csv_out(rb: Any, corpus: dict[str, Path], tmp_path:
     run_batch(rb, corpus["csv"], tmp_path / "o.parquet", BatchOptions(workers=2), stderr=io.StringIO())
     as_csv, as_pq = read_back(tmp_path / "o.csv"), read_back(tmp_path / "o.parquet")
     assert len(as_pq) == len(as_csv)
-    for a, b in zip(as_csv, as_pq):
+    for a, b in zip(as_csv, as_pq, strict=True):
         assert (a["case_id"], a["ward"], a["status"], a["disorders"]) == (
             b["case_id"],
             b["ward"],

@@ -228,7 +228,7 @@ def test_trace_text(capsys: pytest.CaptureFixture[str]) -> None:
 def test_json_without_trace_flag_still_has_the_trace_field(
     capsys: pytest.CaptureFixture[str], result_validator: Any
 ) -> None:
-    code, out, _ = run(capsys, "interpret", *README, "--json")
+    _, out, _ = run(capsys, "interpret", *README, "--json")
     [result] = json_lines(out)
     assert result_validator(result) == [] and isinstance(result["trace"], list)
 
