@@ -340,3 +340,14 @@ def test_shadow_from_standard_input(
     stdin(monkeypatch, log.read_bytes())
     piped = run(capsys, "shadow", "report", "-", "--format", "json")
     assert piped[:2] == (0, report[1].replace(json.dumps(str(log)), json.dumps("<stdin>")))
+
+
+def test_document_corpus_from_standard_input(
+    monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    base = ["document", str(SITE), "--since", str(ADULT), "--no-cohorts", "--corpus"]
+    code, from_file, _ = run(capsys, *base, str(DEMO))
+    stdin(monkeypatch, DEMO.read_bytes())
+    piped = run(capsys, *base, "-")
+    assert code == piped[0] == 0 and f"Impact on {DEMO}" in from_file
+    assert piped[1] == from_file.replace(f"Impact on {DEMO}", "Impact on <stdin>")

@@ -69,6 +69,7 @@ class LazyGroup(TyperGroup):
         near = get_close_matches(name, list(COMMANDS), n=2)
         hint = f" (did you mean {' or '.join(near)}?)" if near else ""
         ctx.fail(f"unknown command '{name}'{hint}; expected one of: {', '.join(COMMANDS)}")
+        raise AssertionError("ctx.fail raises a usage error")  # for the type checker
 
     def invoke(self, ctx: Any) -> Any:
         try:
