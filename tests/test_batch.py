@@ -200,7 +200,7 @@ def test_parquet_out_matches_csv_out(rb: Any, corpus: dict[str, Path], tmp_path:
     run_batch(rb, corpus["csv"], tmp_path / "o.parquet", BatchOptions(workers=2), stderr=io.StringIO())
     as_csv, as_pq = read_back(tmp_path / "o.csv"), read_back(tmp_path / "o.parquet")
     assert len(as_pq) == len(as_csv)
-    for a, b in zip(as_csv, as_pq):
+    for a, b in zip(as_csv, as_pq, strict=True):
         assert (a["case_id"], a["ward"], a["status"], a["disorders"]) == (
             b["case_id"],
             b["ward"],
@@ -244,7 +244,13 @@ def test_progress_bar_only_on_a_terminal(rb: Any, corpus: dict[str, Path], tmp_p
     p = Progress(tty, lambda: 0.5)
     p.update(10, force=True)
     p.finish(20)
-    assert "\r   50% |###############" in tty.getvalue() and "20 rows" in tty.getvalue()
+    drawn = tty.getvalue()  # rich's bar, redrawn in place (carriage return), ended by a newline
+    assert " 50%" in drawn and "━" in drawn and "\r" in drawn and "20 rows" in drawn
+    assert drawn.endswith("\n\x1b[?25h")  # the cursor is shown again
+    forced = io.StringIO()  # --progress on a pipe: no redrawing, one final line
+    p = Progress(forced, lambda: 1.0, enabled=True)
+    p.finish(20)
+    assert forced.getvalue().startswith("100% ") and "\r" not in forced.getvalue()
 
 
 # ----------------------------------------------------------------------------- the command

@@ -68,8 +68,9 @@ def test_version_and_unknown_command(capsys: pytest.CaptureFixture[str]) -> None
 def test_command_help(capsys: pytest.CaptureFixture[str]) -> None:
     code, out, _ = run(capsys, "interpret", "--help")
     assert code == 0
-    for option in ("--rulebook", "--json", "--trace", "--ph", "--pco2", "--set"):
+    for option in ("--rulebook", "--format", "--trace", "--ph", "--pco2", "--set"):
         assert option in out
+    assert "--json" not in out  # the older spelling of --format json: still accepted, not shown
 
 
 # ----------------------------------------------------------------------------- interpret: inputs
@@ -227,7 +228,7 @@ def test_trace_text(capsys: pytest.CaptureFixture[str]) -> None:
 def test_json_without_trace_flag_still_has_the_trace_field(
     capsys: pytest.CaptureFixture[str], result_validator: Any
 ) -> None:
-    code, out, _ = run(capsys, "interpret", *README, "--json")
+    _, out, _ = run(capsys, "interpret", *README, "--json")
     [result] = json_lines(out)
     assert result_validator(result) == [] and isinstance(result["trace"], list)
 

@@ -1,13 +1,14 @@
-"""The `gasrules` command: a thin dispatcher that imports only the command it runs.
+"""The `gasrules` command: a lazily loading command group.
 
-Each command lives in its own module under gasrules/commands/ and exposes a typer app named
-``app``. Importing only that module keeps the cold start of ``gasrules interpret`` small; the
-table below is the one place that lists the commands (and feeds ``gasrules --help``).
+Each command lives in its own module under gasrules/cli/commands/ and exposes a typer app named
+``app``. The group (gasrules.cli.group) imports a command's module only when that command runs,
+its help is asked for or its options are completed; ``gasrules --help`` and the completion of
+command names read the table below and import none of them. The table is the one place that
+lists the commands, in the order of ``gasrules --help``.
 """
 
 from __future__ import annotations
 
-import importlib
 import sys
 
 # command -> (module, one-line help). Order is the order of `gasrules --help`.
@@ -55,52 +56,21 @@ _CAUTION = (
     "local laboratory ranges and protocols prevail."
 )
 
-
-def _usage() -> str:
-    width = max(map(len, COMMANDS))
-    lines = [
-        "Usage: gasrules COMMAND [ARGS]...",
-        "",
-        "Auditable blood gas interpretation driven by versioned YAML rulebooks.",
-        "",
-        "Commands:",
-    ]
-    for name, (_module, text) in COMMANDS.items():
-        lines.append(f"  {name.ljust(width)}  {text}")
-    lines += [
-        "",
-        "Run 'gasrules COMMAND --help' for a command's options.",
-        "Exit codes: 0 ok, 1 check failed, 2 usage, 3 inconsistent sample, 4 input rejected, "
-        "5 broken rulebook, 6 refused in strict mode.",
-        "",
-        _CAUTION,
-    ]
-    return "\n".join(lines)
+EXIT_CODES = (
+    "Exit codes: 0 ok, 1 check failed, 2 usage, 3 inconsistent sample, 4 input rejected, "
+    "5 broken rulebook, 6 refused in strict mode."
+)
 
 
 def main(argv: list[str] | None = None) -> int:
-    args = list(sys.argv[1:] if argv is None else argv)
-    if not args or args[0] in ("-h", "--help", "help"):
-        print(_usage())
-        return 0
-    if args[0] in ("--version", "-V"):
-        from gasrules.core.version import __version__
+    """Run the command line ``argv`` (default: sys.argv[1:]) and return its exit code."""
+    from gasrules.cli.group import build_group
 
-        print(f"gasrules {__version__}")
-        return 0
-    name = args[0]
-    if name not in COMMANDS:
-        print(f"gasrules: unknown command '{name}'; expected one of: {', '.join(COMMANDS)}", file=sys.stderr)
-        return 2
+    args = list(sys.argv[1:] if argv is None else argv)
+    if not args or args[0] == "help":  # `gasrules help [COMMAND]`
+        args = [*args[1:2], "--help"]
     try:
-        module = importlib.import_module(COMMANDS[name][0])
-    except ModuleNotFoundError as exc:
-        if exc.name == COMMANDS[name][0]:
-            print(f"gasrules: command '{name}' is not available in this version", file=sys.stderr)
-            return 2
-        raise
-    try:
-        module.app(args=args[1:], prog_name=f"gasrules {name}", standalone_mode=True)
+        build_group().main(args=args, prog_name="gasrules", standalone_mode=True)
     except SystemExit as exc:
         code = exc.code
         return code if isinstance(code, int) else (0 if code is None else 1)

@@ -301,13 +301,34 @@ def _safe(rb: Any, row: Row, trace: bool) -> dict[str, Any]:
 
 
 class Progress:
-    """A one-line progress bar on a terminal (stderr); silent otherwise."""
+    """A progress bar drawn by rich on a terminal (stderr); silent otherwise.
+
+    ``share()`` is the part of the input read so far (0..1). Redrawn at most five times a
+    second from ``update`` (no refresh thread: worker processes may be started after it)."""
 
     def __init__(self, stream: TextIO, share: Callable[[], float], enabled: bool | None = None) -> None:
         self.stream, self.share = stream, share
         self.enabled = stream.isatty() if enabled is None else enabled
         self.t0 = time.monotonic()
         self.last = 0.0
+        self._bar: Any = None
+        if self.enabled:
+            from rich.console import Console
+            from rich.progress import BarColumn, TaskProgressColumn, TextColumn, TimeRemainingColumn
+            from rich.progress import Progress as Bar
+
+            self._bar = Bar(
+                TaskProgressColumn(),
+                BarColumn(bar_width=30),
+                TextColumn("{task.fields[rows]:,} rows  {task.fields[rate]:,.0f}/s"),
+                TextColumn("eta"),
+                TimeRemainingColumn(),
+                console=Console(file=stream),
+                auto_refresh=False,
+                transient=False,
+            )
+            self._task = self._bar.add_task("", total=1.0, rows=0, rate=0.0)
+            self._bar.start()
 
     def update(self, rows: int, force: bool = False) -> None:
         if not self.enabled:
@@ -318,16 +339,20 @@ class Progress:
         self.last = now
         done = max(0.0, min(self.share(), 1.0))
         rate = rows / max(now - self.t0, 1e-9)
-        eta = (now - self.t0) * (1 - done) / done if done > 0.001 else 0.0
-        bar = "#" * int(done * 30)
-        self.stream.write(f"\r  {done:4.0%} |{bar:<30}| {rows:,} rows  {rate:,.0f}/s  eta {eta:,.0f} s ")
-        self.stream.flush()
+        self._bar.update(self._task, completed=done, rows=rows, rate=rate)
+        self._bar.refresh()
 
     def finish(self, rows: int) -> None:
         if self.enabled:
             self.update(rows, force=True)
-            self.stream.write("\n")
-            self.stream.flush()
+        self.close()
+
+    def close(self) -> None:
+        """Stop drawing (the cursor comes back); also after a failed run."""
+        if self._bar is not None:
+            self._bar.stop()
+            self._bar = None
+            self.enabled = False
 
 
 # ----------------------------------------------------------------------------- the run
@@ -396,12 +421,15 @@ def run_batch(
             columns, renames = output_columns(rb, table, options)
             out_fmt = options.out_format or _default_out_format(target, table.fmt)
             progress = Progress(stderr, table.progress, options.progress)
-            with open_writer(target, columns, out_fmt, metadata=lineage(rb)) as writer:
-                for block, count in records(
-                    rb, table, options, summary, hooks, progress, renames, writer.encoder()
-                ):
-                    writer.write_block(block, count)
-            progress.finish(summary.rows)
+            try:
+                with open_writer(target, columns, out_fmt, metadata=lineage(rb)) as writer:
+                    for block, count in records(
+                        rb, table, options, summary, hooks, progress, renames, writer.encoder()
+                    ):
+                        writer.write_block(block, count)
+                progress.finish(summary.rows)
+            finally:
+                progress.close()
     finally:
         if hooks.close is not None:
             hooks.close()

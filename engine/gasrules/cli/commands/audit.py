@@ -18,10 +18,14 @@ from pathlib import Path
 
 import typer
 
+from gasrules.cli.commands._common import Format, format_option, json_alias, report_format
 from gasrules.cli.commands._governance import SETTINGS_HELP, site_settings
 from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False, help="Verify, replay or repair a decision log.")
+
+FORMATS = (Format.text, Format.json)
+FORMAT_OPTION = format_option(*FORMATS)
 
 
 @app.command()
@@ -37,9 +41,11 @@ def verify(
         "--anchor-key-file",
         help="The anchor key (kept outside the log's folder): the anchor must carry its HMAC.",
     ),
-    as_json: bool = typer.Option(False, "--json", help="Print the report as JSON."),
+    fmt: Format = FORMAT_OPTION,
+    as_json: bool = json_alias(),
 ) -> None:
     """Check every entry's hashes, the chain, sequence numbers and the anchor."""
+    as_json = report_format(fmt, as_json, FORMATS, "audit verify") is Format.json
     from gasrules.governance.audit import render_verify, verify_log
     from gasrules.governance.settings import SettingsError, read_anchor_key
 
@@ -86,9 +92,11 @@ def replay(
         None, "--archive", help="Rulebook archive (default: from settings, RELEASE_DIR/archive)."
     ),
     settings_file: Path | None = typer.Option(None, "--settings", help=SETTINGS_HELP),
-    as_json: bool = typer.Option(False, "--json", help="Print the report as JSON."),
+    fmt: Format = FORMAT_OPTION,
+    as_json: bool = json_alias(),
 ) -> None:
     """Re-run each logged case with the rulebook it names and report any result that would differ."""
+    as_json = report_format(fmt, as_json, FORMATS, "audit replay") is Format.json
     from gasrules.evaluation.evaluator import interpret
     from gasrules.governance.audit import render_replay, replay_log, verify_log
     from gasrules.governance.registry import archive_loader

@@ -22,6 +22,7 @@ from typing import Any
 
 import typer
 
+from gasrules.cli.commands._common import readable
 from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False)
@@ -55,11 +56,11 @@ def runtime_hooks(
         rt = Runtime.from_settings(settings, rulebook)
     except RulebookError as exc:
         typer.echo(render_problems(exc.problems, str(rulebook or "rulebook")), err=True)
-        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK) from None
     except RuntimeRefusal as exc:
-        raise _fail(exitcodes.REFUSED, str(exc))
+        raise _fail(exitcodes.REFUSED, str(exc)) from None
     except SettingsError as exc:
-        raise _fail(exitcodes.USAGE, str(exc))
+        raise _fail(exitcodes.USAGE, str(exc)) from None
     logging, shadow = rt.records_decisions, rt.shadowing
     notes = []
     if rt.admission.suspended_rules:
@@ -102,8 +103,10 @@ def _terminate(signum: int, frame: Any) -> None:
 
 @app.command()
 def batch(
+    ctx: typer.Context,
     source: Path = typer.Argument(
-        ..., help="Input: .csv, .jsonl or .parquet file (a directory: partitioned Parquet)."
+        ...,
+        help="Input: .csv, .jsonl or .parquet file (a directory: partitioned Parquet); - for standard input.",
     ),
     target: str = typer.Argument(
         "-", help="Output file (format from its suffix), a directory with --dask, or - for stdout."
@@ -121,12 +124,12 @@ def batch(
         "-f",
         help="Output format: csv, jsonl, parquet, fhir (a Bundle per case, NDJSON) or hl7 (an ORU^R01 per case) (default: from OUT's suffix; .hl7 is HL7, .fhir.ndjson FHIR).",
     ),
-    in_format: str | None = typer.Option(
+    input_format: str | None = typer.Option(
         None,
-        "--in-format",
         "--input-format",
-        help="Input format when the suffix does not tell: csv, jsonl, parquet, hl7 or fhir (.hl7 is HL7 v2; JSON with a resourceType is FHIR).",
+        help="Input format when the suffix does not tell: csv, jsonl, parquet, hl7 or fhir (.hl7 is HL7 v2; JSON with a resourceType is FHIR; standard input: by content unless given).",
     ),
+    in_format: str | None = typer.Option(None, "--in-format", hidden=True, help="Same as --input-format."),
     full_json: bool = typer.Option(
         False, "--full-json", help="Add a 'result' column with the whole result and its trace."
     ),
@@ -147,7 +150,9 @@ def batch(
         False, "--strict", help="Refuse a rulebook that matches no approved release."
     ),
     summary_json: Path | None = typer.Option(
-        None, "--summary-json", help="Also write the summary as JSON to this file."
+        None,
+        "--summary-json",
+        help="Also write the summary as JSON to this file (- for standard output when OUT is a file).",
     ),
     progress: bool | None = typer.Option(
         None, "--progress/--no-progress", help="Progress bar (default: only on a terminal)."
@@ -172,11 +177,19 @@ def batch(
     from gasrules.integration.messagebatch import message_formats
     from gasrules.tables.readers import FORMATS, TableError, load_mapping
 
-    for name, fmt in (("--format", out_format), ("--in-format", in_format)):
-        if fmt is not None and fmt not in FORMATS + ("hl7", "fhir"):
+    in_format = input_format or in_format
+    accepted = (*FORMATS, "hl7", "fhir")
+    for name, fmt in (("--format", out_format), ("--input-format", in_format)):
+        if fmt is not None and fmt not in accepted:
+            raise _fail(exitcodes.USAGE, f"{name} '{fmt}' is not one of {', '.join(accepted)}")
+    if str(summary_json) == "-" and target == "-":
+        raise _fail(exitcodes.USAGE, "--summary-json - needs an OUT file: the results go to standard output")
+    if str(source) == "-":
+        if dask or dask_local:
             raise _fail(
-                exitcodes.USAGE, f"{name} '{fmt}' is not one of {', '.join(FORMATS + ('hl7', 'fhir'))}"
+                exitcodes.USAGE, "a Dask run reads files its workers can open; standard input cannot be used"
             )
+        source = ctx.with_resource(readable(source, in_format))
     msg_in, msg_out = message_formats(str(source), target, in_format, out_format)
     if (msg_in or msg_out) and (dask or dask_local):
         raise _fail(
@@ -220,10 +233,14 @@ def batch(
         finally:
             signal.signal(signal.SIGTERM, previous)
     except TableError as exc:
-        raise _fail(exitcodes.USAGE, str(exc))
+        raise _fail(exitcodes.USAGE, str(exc)) from None
     typer.echo(summary.render(), err=True)
     if summary_json is not None:
-        summary_json.write_text(json.dumps(summary.as_dict(), indent=2) + "\n", encoding="utf-8")
+        text = json.dumps(summary.as_dict(), indent=2)
+        if str(summary_json) == "-":
+            typer.echo(text)
+        else:
+            summary_json.write_text(text + "\n", encoding="utf-8")
     if summary.rejected and (not allow_rejected or summary.rejected == summary.rows):
         raise typer.Exit(exitcodes.REJECTED)
 
@@ -237,7 +254,7 @@ def _load(rulebook: Path | None) -> Any:
         return load_rulebook(rulebook)
     except RulebookError as exc:
         typer.echo(render_problems(exc.problems, str(rulebook or "rulebook")), err=True)
-        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK) from None
 
 
 def _run_messages(
@@ -258,8 +275,8 @@ def _run_messages(
     try:
         settings = interfaces_section(settings_file)
     except SettingsError as exc:
-        raise _fail(exitcodes.USAGE, str(exc))
+        raise _fail(exitcodes.USAGE, str(exc)) from None
     try:
         return run_message_batch(rb, source, target, options, hooks, msg_in, msg_out, settings)
     except OSError as exc:
-        raise _fail(exitcodes.USAGE, f"cannot read or write: {exc}")
+        raise _fail(exitcodes.USAGE, f"cannot read or write: {exc}") from None

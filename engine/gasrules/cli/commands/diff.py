@@ -6,28 +6,26 @@ Exit 0 when the version bump covers the change class, 1 when it does not (or goe
 
 from __future__ import annotations
 
-from enum import Enum
 from pathlib import Path
 
 import typer
 
+from gasrules.cli.commands._common import Format, format_option, output_option, report_format, write_report
 from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False)
 
-
-class Format(str, Enum):
-    text = "text"
-    json = "json"
-    markdown = "markdown"
+FORMATS = (Format.text, Format.json, Format.markdown)
+FORMAT_OPTION = format_option(*FORMATS)
+OUTPUT_OPTION = output_option()
 
 
 @app.command()
 def diff(
     old: Path = typer.Argument(..., help="The previous rulebook (or overlay) YAML."),
     new: Path = typer.Argument(..., help="The proposed rulebook (or overlay) YAML."),
-    fmt: Format = typer.Option(Format.text, "--format", "-f", help="text, json or markdown."),
-    output: Path | None = typer.Option(None, "--output", "-o", help="Write the report to this file."),
+    fmt: Format = FORMAT_OPTION,
+    output: Path | None = OUTPUT_OPTION,
     releases: Path | None = typer.Option(
         None, "--releases", help="Release directory: show each side's approvals from its release manifests."
     ),
@@ -39,19 +37,16 @@ def diff(
     from gasrules.evaluation.render import render_problems
     from gasrules.governance.diff import RENDERERS, diff_paths
 
+    fmt = report_format(fmt, False, FORMATS, "diff")
     try:
         result = diff_paths(old, new, releases)
     except RulebookError as exc:
         typer.echo(render_problems(exc.problems, ""), err=True)
-        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK) from None
     except ValueError as exc:  # a version that is not MAJOR.MINOR.PATCH
         typer.echo(f"gasrules diff: {exc}", err=True)
-        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
-    text = RENDERERS[fmt.value](result)
-    if output is not None:
-        output.write_text(text + "\n", encoding="utf-8")
-    else:
-        typer.echo(text)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK) from None
+    write_report(RENDERERS[fmt.value](result), output)
     if result.version_error:
         typer.echo(f"gasrules diff: {result.version_error}", err=True)
         raise typer.Exit(exitcodes.FAILED)

@@ -11,20 +11,25 @@ from __future__ import annotations
 
 import os
 import sys
-from enum import Enum
 from pathlib import Path
 
 import typer
 
+from gasrules.cli.commands._common import (
+    Format,
+    format_option,
+    output_option,
+    readable,
+    report_format,
+    write_report,
+)
 from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False)
 
-
-class Format(str, Enum):
-    text = "text"
-    json = "json"
-    html = "html"
+FORMATS = (Format.text, Format.json, Format.html)
+FORMAT_OPTION = format_option(*FORMATS)
+OUTPUT_OPTION = output_option()
 
 
 def _default_workers() -> int:
@@ -43,7 +48,7 @@ def _with_cohorts(
         rows = T.compare(T.table_for(old, rb_old, workers=workers), T.table_for(new, rb_new, workers=workers))
     except CohortError as exc:
         typer.echo(render_problems(exc.problems, ""), err=True)
-        raise typer.Exit(exitcodes.USAGE)
+        raise typer.Exit(exitcodes.USAGE) from None
     return T.append_comparison(fmt, text, rows)
 
 
@@ -51,20 +56,25 @@ def _with_cohorts(
 def impact(
     old: Path = typer.Argument(..., help="The current rulebook (or overlay) YAML."),
     new: Path = typer.Argument(..., help="The proposed rulebook (or overlay) YAML."),
-    corpus: Path = typer.Argument(..., help="Past cases: CSV, JSON Lines or Parquet (file or directory)."),
+    corpus: Path = typer.Argument(
+        ..., help="Past cases: CSV, JSON Lines or Parquet (file or directory; - for standard input)."
+    ),
     expected: Path | None = typer.Option(
         None, "--expected", "-e", help="YAML/JSON file of expected transitions; others exit 1."
     ),
-    fmt: Format = typer.Option(Format.text, "--format", "-f", help="text, json or html."),
-    output: Path | None = typer.Option(None, "--output", "-o", help="Write the report to this file."),
+    fmt: Format = FORMAT_OPTION,
+    output: Path | None = OUTPUT_OPTION,
     workers: int = typer.Option(_default_workers(), "--workers", "-w", min=1, help="Worker processes."),
-    chunk: int = typer.Option(250, "--chunk", min=1, help="Rows per chunk sent to a worker."),
+    chunk_size: int = typer.Option(250, "--chunk-size", min=1, help="Rows per chunk sent to a worker."),
+    chunk: int | None = typer.Option(None, "--chunk", min=1, hidden=True, help="Same as --chunk-size."),
     mapping: Path | None = typer.Option(None, "--mapping", help="Column mapping file (as for batch)."),
     no_cohorts: bool = typer.Option(
         False, "--no-cohorts", help="Leave out the simulated cohorts' figures under both rulebooks."
     ),
     input_format: str | None = typer.Option(
-        None, "--input-format", help="csv, jsonl or parquet (default: by suffix)."
+        None,
+        "--input-format",
+        help="csv, jsonl or parquet (default: by suffix; on standard input by content).",
     ),
     progress: bool | None = typer.Option(
         None, "--progress/--no-progress", help="Progress bar (default: only on a terminal)."
@@ -80,43 +90,47 @@ def impact(
     from gasrules.rulebook.build import load_rulebook
     from gasrules.tables.readers import TableError, load_mapping
 
+    fmt = report_format(fmt, False, FORMATS, "impact")
     try:
         rb_old, rb_new = load_rulebook(old), load_rulebook(new)
     except RulebookError as exc:
         typer.echo(render_problems(exc.problems, ""), err=True)
-        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK) from None
+    bar = Progress(sys.stderr, lambda: 0.0, progress)
     try:
         wanted = load_expected(expected) if expected is not None else None
         cols = load_mapping(mapping) if mapping is not None else None
-        bar = Progress(sys.stderr, lambda: 0.0, progress)
 
         def on_progress(rows: int, share: float) -> None:
             bar.share = lambda: share
             bar.update(rows)
 
-        report = replay(
-            rb_old,
-            rb_new,
-            corpus,
-            workers=workers,
-            chunk_size=chunk,
-            mapping=cols,
-            fmt=input_format,
-            expected=wanted,
-            expected_file=str(expected or ""),
-            on_progress=on_progress,
-        )
+        with readable(corpus, input_format) as source:
+            report = replay(
+                rb_old,
+                rb_new,
+                source,
+                workers=workers,
+                chunk_size=chunk or chunk_size,
+                mapping=cols,
+                fmt=input_format,
+                expected=wanted,
+                expected_file=str(expected or ""),
+                on_progress=on_progress,
+            )
+        if source != corpus:
+            report.corpus = "<stdin>"
         bar.finish(report.rows)
     except (ExpectedError, TableError) as exc:
+        bar.close()  # before the message, so the bar's line is ended
         typer.echo(f"gasrules impact: {exc}", err=True)
-        raise typer.Exit(exitcodes.USAGE)
+        raise typer.Exit(exitcodes.USAGE) from None
+    finally:
+        bar.close()
     text = RENDERERS[fmt.value](report)
     if not no_cohorts:
         text = _with_cohorts(old, new, rb_old, rb_new, fmt.value, text, workers)
-    if output is not None:
-        output.write_text(text + "\n", encoding="utf-8")
-    else:
-        typer.echo(text)
+    write_report(text, output)
     if report.unexpected:
         typer.echo(
             f"gasrules impact: {len(report.unexpected)} unexpected transition(s), "

@@ -101,13 +101,13 @@ def _runtime(settings_file: Path | None, rulebook: Path | None) -> Any:
         return Runtime.from_settings(load_settings(settings_file), rulebook)
     except RulebookError as exc:
         typer.echo(render_problems(exc.problems, str(rulebook or "rulebook")), err=True)
-        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK) from None
     except RuntimeRefusal as exc:
         typer.echo(f"gasrules: {exc}", err=True)
-        raise typer.Exit(exitcodes.REFUSED)
+        raise typer.Exit(exitcodes.REFUSED) from None
     except SettingsError as exc:
         typer.echo(f"gasrules: {exc}", err=True)
-        raise typer.Exit(exitcodes.USAGE)
+        raise typer.Exit(exitcodes.USAGE) from None
 
 
 @app.command()
@@ -119,7 +119,7 @@ def interpret(
         None, "--rulebook", "-r", help="Rulebook YAML (default: the shipped adult rulebook)."
     ),
     as_json: bool = typer.Option(
-        False, "--json", help="Print the result contract as JSON (JSON Lines for several cases)."
+        False, "--json", hidden=True, help="Same as --format json (JSON Lines for several cases)."
     ),
     trace: bool = typer.Option(False, "--trace", help="Add the readable trace of every rule."),
     ph: str | None = typer.Option(None, "--ph", help="pH."),
@@ -154,7 +154,7 @@ def interpret(
         None,
         "--format",
         "-f",
-        help="text, json, fhir (a FHIR Bundle per case) or hl7 (a preliminary ORU^R01 per case) [default: text].",
+        help="text, json (the result contract; JSON Lines for several cases), fhir (a FHIR Bundle per case) or hl7 (a preliminary ORU^R01 per case) [default: text].",
     ),
     allow_rejected: bool = typer.Option(
         False,
@@ -265,7 +265,7 @@ def _read_messages(source: str, fmt: str, rulebook: Path | None, settings: Path 
         rb = load_rulebook(rulebook)
     except RulebookError as exc:
         typer.echo(render_problems(exc.problems, str(rulebook or "default rulebook")), err=True)
-        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK) from None
     try:
         return list(read_incoming(source, fmt, rb.inputs))
     except OSError as exc:
@@ -288,7 +288,7 @@ class _MessageWriter:
                 self.settings = interfaces_section(settings)
             except SettingsError as exc:
                 typer.echo(f"gasrules: {exc}", err=True)
-                raise typer.Exit(exitcodes.USAGE)
+                raise typer.Exit(exitcodes.USAGE) from None
 
     def write(self, n: int, result: dict[str, Any]) -> str:
         from gasrules.integration.interfaces import to_fhir, to_hl7

@@ -2,20 +2,18 @@
 
 from __future__ import annotations
 
-from enum import Enum
 from pathlib import Path
 
 import typer
 
+from gasrules.cli.commands._common import Format, format_option, output_option, report_format, write_report
 from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False)
 
-
-class Format(str, Enum):
-    text = "text"
-    json = "json"
-    markdown = "markdown"
+FORMATS = (Format.text, Format.json, Format.markdown)
+FORMAT_OPTION = format_option(*FORMATS)
+OUTPUT_OPTION = output_option()
 
 
 @app.command()
@@ -35,8 +33,8 @@ def probes(
         300, "--generated", min=0, help="Seeded synthetic base cases tried after them."
     ),
     seed: int = typer.Option(11, "--seed", help="Seed of the synthetic base cases."),
-    fmt: Format = typer.Option(Format.text, "--format", "-f", help="text, json or markdown."),
-    output: Path | None = typer.Option(None, "--output", "-o", help="Write the report to this file."),
+    fmt: Format = FORMAT_OPTION,
+    output: Path | None = OUTPUT_OPTION,
 ) -> None:
     """For each numeric threshold whose value changed, interpret generated cases one reporting step
     below, at and above the old and the new cut-point under both rulebooks, and show where the
@@ -46,19 +44,16 @@ def probes(
     from gasrules.governance.probes import RENDERERS, default_bases, run_probes
     from gasrules.rulebook.build import load_rulebook
 
+    fmt = report_format(fmt, False, FORMATS, "probes")
     try:
         rb_old, rb_new = load_rulebook(old), load_rulebook(new)
     except RulebookError as exc:
         typer.echo(render_problems(exc.problems, ""), err=True)
-        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK) from None
     dirs = list(cases) or [
         d for d in dict.fromkeys([old.parent / "cases", new.parent / "cases"]) if d.is_dir()
     ]
     result = run_probes(rb_old, rb_new, default_bases(dirs, generated, seed), only)
     same = rb_old.id == rb_new.id
     names = [rb.version if same else f"{rb.id} {rb.version}" for rb in (rb_old, rb_new)]
-    text = RENDERERS[fmt.value](result, names[0], names[1])
-    if output is not None:
-        output.write_text(text + "\n", encoding="utf-8")
-    else:
-        typer.echo(text)
+    write_report(RENDERERS[fmt.value](result, names[0], names[1]), output)

@@ -14,10 +14,14 @@ from pathlib import Path
 
 import typer
 
+from gasrules.cli.commands._common import Format, format_option, json_alias, report_format
 from gasrules.cli.commands._governance import SETTINGS_HELP, broken_rulebook, need_release_dir, site_settings
 from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False)
+
+FORMATS = (Format.text, Format.json)
+FORMAT_OPTION = format_option(*FORMATS)
 
 
 @app.command()
@@ -43,7 +47,8 @@ def release(
         None, "--archive", help="Rulebook archive (default: RELEASE_DIR/archive)."
     ),
     settings_file: Path | None = typer.Option(None, "--settings", help=SETTINGS_HELP),
-    as_json: bool = typer.Option(False, "--json", help="Print the manifest (or the refusal) as JSON."),
+    fmt: Format = FORMAT_OPTION,
+    as_json: bool = json_alias(),
     diff_md: Path | None = typer.Option(
         None,
         "--diff-markdown",
@@ -56,6 +61,7 @@ def release(
     from gasrules.governance.release import Approver, ReleaseRefused, render_outcome, render_refusal
     from gasrules.governance.release import release as do_release
 
+    as_json = report_format(fmt, as_json, FORMATS, "release") is Format.json
     if len(approver) != len(role):
         typer.echo(
             f"error: {len(approver)} --approver and {len(role)} --role given; give one --role per --approver",
@@ -77,7 +83,7 @@ def release(
         outcome = do_release(
             rulebook,
             release_dir=target,
-            approvers=[Approver(n, r) for n, r in zip(approver, role)],
+            approvers=[Approver(n, r) for n, r in zip(approver, role, strict=True)],
             authors=author,
             previous=previous,
             archive=settings.archive,

@@ -8,6 +8,7 @@ from typing import Any
 
 import typer
 
+from gasrules.cli.commands._common import missing_extra
 from gasrules.cli.commands._governance import startup_errors
 from gasrules.core.exitcodes import OK, USAGE
 
@@ -133,11 +134,10 @@ def serve(
         from gasrules.service.server import make_server
     except ModuleNotFoundError as exc:
         service.close()
-        typer.echo(
-            f"gasrules serve: {exc.name} is not installed; install the serve extra: "
-            "pip install 'gasrules[serve]'",
-            err=True,
-        )
+        message = missing_extra(exc)
+        if message is None:
+            raise
+        typer.echo(f"gasrules serve: {message}", err=True)
         raise typer.Exit(USAGE) from None
 
     try:

@@ -15,16 +15,20 @@ from pathlib import Path
 
 import typer
 
+from gasrules.cli.commands._common import Format, format_option, json_alias, readable, report_format
 from gasrules.cli.commands._governance import SETTINGS_HELP, broken_rulebook, site_settings
 from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False, help="Run a candidate rulebook in the shadow of the active one.")
 
+FORMATS = (Format.text, Format.json)
+FORMAT_OPTION = format_option(*FORMATS)
+
 
 @app.command()
 def run(
     cases: Path = typer.Argument(
-        ..., help="Cases: CSV, JSON Lines or Parquet (columns named like the inputs)."
+        ..., help="Cases: CSV, JSON Lines or Parquet (columns named like the inputs); - for standard input."
     ),
     candidate: Path | None = typer.Option(
         None, "--candidate", help="Candidate rulebook (or shadow.rulebook)."
@@ -37,9 +41,17 @@ def run(
     strict: bool | None = typer.Option(
         None, "--strict/--no-strict", help="Strict mode for the active rulebook."
     ),
-    as_json: bool = typer.Option(False, "--json", help="Print the active results as JSON Lines."),
+    fmt: Format = FORMAT_OPTION,
+    input_format: str | None = typer.Option(
+        None,
+        "--input-format",
+        help="csv, jsonl or parquet (default: by suffix; on standard input by content).",
+    ),
+    as_json: bool = json_alias(),
 ) -> None:
-    """Interpret with the active rulebook and a candidate; show the active results; record disagreements."""
+    """Interpret with the active rulebook and a candidate; show the active results (json: JSON
+    Lines); record disagreements."""
+    as_json = report_format(fmt, as_json, FORMATS, "shadow run") is Format.json
     from gasrules.core.errors import RulebookError
     from gasrules.governance.runtime import Runtime, RuntimeRefusal
     from gasrules.tables.readers import TableError, analytes_of, open_table, rejected_result
@@ -59,7 +71,11 @@ def run(
         raise typer.Exit(exitcodes.REFUSED) from None
     rows = unreadable = 0
     try:
-        with rt, open_table(cases, analytes_of(rt.rulebook)) as table:
+        with (
+            rt,
+            readable(cases, input_format) as source,
+            open_table(source, analytes_of(rt.rulebook), fmt=input_format) as table,
+        ):
             for row in table:
                 rows += 1
                 if row.errors:
@@ -94,14 +110,21 @@ def run(
 
 @app.command()
 def report(
-    log: Path = typer.Argument(..., help="Disagreement log written by 'shadow run' or a runtime."),
-    as_json: bool = typer.Option(False, "--json", help="Print the summary as JSON."),
+    log: Path = typer.Argument(
+        ..., help="Disagreement log written by 'shadow run' or a runtime; - for standard input."
+    ),
+    fmt: Format = FORMAT_OPTION,
+    as_json: bool = json_alias(),
 ) -> None:
     """Summarise a disagreement log: what differs, disorder transitions with examples, rulebook pairs."""
     from gasrules.governance.shadow import render_summary, summarize
 
-    if not log.exists():
+    as_json = report_format(fmt, as_json, FORMATS, "shadow report") is Format.json
+    if str(log) != "-" and not log.exists():
         typer.echo(f"error: {log} not found", err=True)
         raise typer.Exit(exitcodes.USAGE)
-    summary = summarize(log)
+    with readable(log, "jsonl") as path:
+        summary = summarize(path)
+    if path != log:
+        summary.path = "<stdin>"
     typer.echo(json.dumps(summary.as_dict(), indent=2) if as_json else render_summary(summary))

@@ -16,10 +16,14 @@ from pathlib import Path
 
 import typer
 
+from gasrules.cli.commands._common import Format, format_option, json_alias, report_format
 from gasrules.cli.commands._governance import SETTINGS_HELP, broken_rulebook, need_release_dir, site_settings
 from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False)
+
+FORMATS = (Format.text, Format.json)
+FORMAT_OPTION = format_option(*FORMATS)
 
 
 @app.command()
@@ -41,13 +45,15 @@ def suspend(
         None, "--archive", help="Rulebook archive (default: RELEASE_DIR/archive)."
     ),
     settings_file: Path | None = typer.Option(None, "--settings", help=SETTINGS_HELP),
-    as_json: bool = typer.Option(False, "--json", help="Print the recorded event as JSON."),
+    fmt: Format = FORMAT_OPTION,
+    as_json: bool = json_alias(),
 ) -> None:
     """Suspend or reinstate a rule or a whole rulebook, with a recorded reason."""
     from gasrules.core.errors import RulebookError
     from gasrules.governance.registry import RegistryError
     from gasrules.governance.suspension import SuspensionError, change_suspension, current_state, render_state
 
+    as_json = report_format(fmt, as_json, FORMATS, "suspend") is Format.json
     settings = site_settings(settings_file, release_dir=release_dir, archive_dir=archive)
     target = need_release_dir(settings)
     try:

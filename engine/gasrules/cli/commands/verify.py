@@ -13,9 +13,13 @@ from typing import Any
 
 import typer
 
+from gasrules.cli.commands._common import Format, format_option, json_alias, report_format
 from gasrules.core import exitcodes
 
 app = typer.Typer(add_completion=False)
+
+FORMATS = (Format.text, Format.json)
+FORMAT_OPTION = format_option(*FORMATS)
 
 
 @app.command()
@@ -24,7 +28,8 @@ def verify(
     cases: Path | None = typer.Option(
         None, "--cases", help="Folder of case files (default: cases/ beside the rulebook)."
     ),
-    as_json: bool = typer.Option(False, "--json", help="Print the report as JSON (for CI)."),
+    fmt: Format = FORMAT_OPTION,
+    as_json: bool = json_alias(),
     suggest: bool = typer.Option(
         False, "--suggest", help="Propose input values for missing threshold probes (bisection)."
     ),
@@ -56,17 +61,18 @@ def verify(
     from gasrules.rulebook.build import load_rulebook
     from gasrules.verification import suite as S
 
+    as_json = report_format(fmt, as_json, FORMATS, "verify") is Format.json
     path = rulebook or default_rulebook_path()
     try:
         rb = load_rulebook(path)
     except RulebookError as exc:
         typer.echo(render_problems(exc.problems, str(path)), err=True)
-        raise typer.Exit(exitcodes.BROKEN_RULEBOOK)
+        raise typer.Exit(exitcodes.BROKEN_RULEBOOK) from None
     try:
         suite = S.load_suite(path, cases)
     except S.SuiteError as exc:
         typer.echo(render_problems(exc.problems, str(path)), err=True)
-        raise typer.Exit(exitcodes.FAILED)
+        raise typer.Exit(exitcodes.FAILED) from None
     name_problems = S.check_names(rb, suite)
     if name_problems:
         typer.echo(render_problems(name_problems, str(path)), err=True)
@@ -126,7 +132,7 @@ def _cohorts(path: Path, rb: Any, cases: Path | None, workers: int | None, size:
         return T.table_for(path, rb, cases_dir=cases, workers=workers or T.default_workers(), size=size)
     except CohortError as exc:
         typer.echo(render_problems(exc.problems, str(path)), err=True)
-        raise typer.Exit(exitcodes.FAILED)
+        raise typer.Exit(exitcodes.FAILED) from None
 
 
 def _failure_json(r: Any) -> dict[str, Any]:
